@@ -1,0 +1,41 @@
+# Two commands do all setup on a fresh machine: `make demo` and `make test`.
+SHELL := /bin/bash
+PYTHON ?= python3
+VENV ?= .venv
+PY := $(VENV)/bin/python
+TORCH_SPEC ?= torch==2.13.0
+STAMP := $(VENV)/.qwidgets-installed
+
+.PHONY: setup test lint demo bench clean browser-deps
+
+$(PY):
+	$(PYTHON) -m venv $(VENV)
+	$(PY) -m pip install --upgrade pip
+
+# The CPU build of torch goes in first, so that the open range in pyproject.toml
+# is already satisfied and never pulls a multi-GB CUDA build.
+$(STAMP): pyproject.toml | $(PY)
+	$(PY) -m pip install "$(TORCH_SPEC)"
+	$(PY) -m pip install -e '.[dev]'
+	touch $(STAMP)
+
+setup: $(STAMP)
+
+browser-deps:
+	@bash .ci/browser-deps
+
+lint: setup
+	$(VENV)/bin/ruff check .
+
+test: setup browser-deps
+	$(VENV)/bin/ruff check .
+	$(PY) -m pytest -q
+
+demo: setup
+	$(PY) -m qwidgets.demo
+
+bench: setup
+	$(PY) benchmarks/bench_core.py
+
+clean:
+	rm -rf build .pytest_cache

@@ -1,0 +1,64 @@
+"""qwidgets: choose per-layer bit widths and uniform grids for a trained PyTorch model.
+
+The public API is listed once, here. Names are imported on first use, so ``import qwidgets``
+stays light and the core math never pulls in ipywidgets or matplotlib.
+"""
+
+from __future__ import annotations
+
+import importlib
+
+__version__ = "0.1.0"
+
+_EXPORTS = {
+    # core math
+    "UniformGrid": "grid",
+    "quantize": "quantize",
+    "to_codes": "quantize",
+    "from_codes": "quantize",
+    "bin_probabilities": "relaxed",
+    "expected_quantize": "relaxed",
+    "relaxed_quantize": "relaxed",
+    "ErrorStats": "metrics",
+    "error_stats": "metrics",
+    "GridUsage": "metrics",
+    "grid_usage": "metrics",
+    # probing a model
+    "fit_range": "ranges",
+    "LayerSetting": "setting",
+    "capture_inputs": "probe",
+    "layer_error": "probe",
+    "model_error": "probe",
+    "ModelError": "probe",
+    "learn_grid": "learn",
+    "LearnResult": "learn",
+    # scan, budget, plan
+    "scan": "scan",
+    "SensitivityTable": "scan",
+    "plan_budget": "budget",
+    "pareto_front": "budget",
+    "Plan": "plan",
+    "apply_plan": "plan",
+    "evaluate_plan": "plan",
+    "PlanReport": "plan",
+    "export_codes": "plan",
+    # widgets
+    "GridExplorer": "widgets.explorer",
+    "ScanView": "widgets.scanview",
+    "BudgetPlanner": "widgets.planner",
+}
+
+__all__ = sorted(_EXPORTS) + ["__version__"]
+
+
+def __getattr__(name: str):
+    module = _EXPORTS.get(name)
+    if module is None:
+        raise AttributeError(f"module 'qwidgets' has no attribute {name!r}")
+    value = getattr(importlib.import_module(f".{module}", __name__), name)
+    globals()[name] = value
+    return value
+
+
+def __dir__():
+    return __all__

@@ -1,0 +1,280 @@
+"""UniformGrid: the set of values a uniform quantizer may output.
+
+A grid holds the integers ``k`` in ``[qmin, qmax]`` and maps them to ``scale * k + offset``.
+Scale and offset are plain floats or tensors; tensors that require gradients keep them, so the
+relaxed quantizer can learn them. With ``axis`` set, scale and offset hold one value per index
+of that axis of the tensor being quantized (per-channel quantization).
+"""
+
+from __future__ import annotations
+
+import math
+from numbers import Integral, Real
+
+import torch
+
+__all__ = ["UniformGrid", "as_float_tensor"]
+
+MAX_BITS = 16
+_ZP_TOL = 1e-4  # relative tolerance when deciding that an offset is an integer multiple of scale
+
+
+def check_bits(bits, name: str = "bits") -> int:
+    """Return ``bits`` as an int in 1..16, or raise a clear error."""
+    if isinstance(bits, bool) or not isinstance(bits, Integral):
+        raise TypeError(f"{name} must be an int in 1..{MAX_BITS}, got {bits!r} ({type(bits).__name__})")
+    if not 1 <= int(bits) <= MAX_BITS:
+        raise ValueError(f"{name} must be in 1..{MAX_BITS}, got {bits}")
+    return int(bits)
+
+
+def check_positive(value, name: str):
+    """Check that a float or tensor is finite and > 0 everywhere; return it unchanged."""
+    if isinstance(value, torch.Tensor):
+        if not value.is_floating_point():
+            raise TypeError(f"{name} must be a float tensor, got dtype {value.dtype}")
+        v = value.detach()
+        if not bool(torch.isfinite(v).all()):
+            raise ValueError(f"{name} must be finite, got {_short(v)}")
+        if not bool((v > 0).all()):
+            raise ValueError(f"{name} must be > 0, got {_short(v)}")
+        return value
+    if isinstance(value, bool) or not isinstance(value, Real):
+        raise TypeError(f"{name} must be a float or a float tensor, got {type(value).__name__}")
+    if not math.isfinite(value):
+        raise ValueError(f"{name} must be finite, got {value}")
+    if value <= 0:
+        raise ValueError(f"{name} must be > 0, got {value}")
+    return float(value)
+
+
+def check_finite(value, name: str):
+    """Check that a float or tensor holds only finite numbers; return it (floats as float)."""
+    if isinstance(value, torch.Tensor):
+        if not value.is_floating_point():
+            raise TypeError(f"{name} must be a float tensor, got dtype {value.dtype}")
+        if not bool(torch.isfinite(value.detach()).all()):
+            raise ValueError(f"{name} must be finite, got {_short(value.detach())}")
+        return value
+    if isinstance(value, bool) or not isinstance(value, Real):
+        raise TypeError(f"{name} must be a float or a float tensor, got {type(value).__name__}")
+    if not math.isfinite(value):
+        raise ValueError(f"{name} must be finite, got {value}")
+    return float(value)
+
+
+def _short(t: torch.Tensor) -> str:
+    if t.numel() == 1:
+        return f"{t.item():g}"
+    bad = t[~torch.isfinite(t) | (t <= 0)]
+    show = bad if bad.numel() else t
+    vals = ", ".join(f"{v:g}" for v in show.flatten()[:4].tolist())
+    more = ", ..." if show.numel() > 4 else ""
+    return f"tensor of shape {tuple(t.shape)} holding [{vals}{more}]"
+
+
+def as_float_tensor(value, like: torch.Tensor | None = None, dtype=None) -> torch.Tensor:
+    """A float or tensor as a tensor on ``like``'s device (keeps autograd history)."""
+    if isinstance(value, torch.Tensor):
+        if like is not None:
+            value = value.to(device=like.device, dtype=dtype or like.dtype)
+        elif dtype is not None:
+            value = value.to(dtype)
+        return value
+    return torch.tensor(
+        value,
+        dtype=dtype or (like.dtype if like is not None else torch.get_default_dtype()),
+        device=like.device if like is not None else None,
+    )
+
+
+class UniformGrid:
+    """Grid points ``scale * k + offset`` for integer ``k`` in ``[qmin, qmax]``.
+
+    Parameters
+    ----------
+    bits : int in 1..16
+    scale : float or tensor, > 0 (the grid step)
+    offset : float or tensor (shifts every grid point; ``offset == -zero_point * scale``)
+    signed : ``k`` in ``[-2**(bits-1), 2**(bits-1) - 1]`` if True, else ``[0, 2**bits - 1]``
+    axis : None for one scale / offset for the whole tensor, or the axis along which they vary
+
+    Example
+    -------
+    >>> g = UniformGrid(3, 0.5)
+    >>> g.levels.tolist()
+    [-2.0, -1.5, -1.0, -0.5, 0.0, 0.5, 1.0, 1.5]
+    >>> g.clip_range
+    (-2.0, 1.5)
+    """
+
+    __slots__ = ("bits", "scale", "offset", "signed", "axis")
+
+    def __init__(self, bits: int, scale, offset=0.0, signed: bool = True, axis: int | None = None):
+        bits = check_bits(bits)
+        if not isinstance(signed, bool):
+            raise TypeError(f"signed must be a bool, got {signed!r}")
+        if axis is not None and (isinstance(axis, bool) or not isinstance(axis, Integral)):
+            raise TypeError(f"axis must be None or an int, got {axis!r}")
+        scale = check_positive(scale, "scale")
+        offset = check_finite(offset, "offset")
+        for name, v in (("scale", scale), ("offset", offset)):
+            if isinstance(v, torch.Tensor):
+                if axis is None and v.numel() != 1:
+                    raise ValueError(
+                        f"{name} has {v.numel()} values but axis is None; give one value, "
+                        "or set axis for per-channel quantization"
+                    )
+                if axis is not None and v.dim() > 1:
+                    raise ValueError(f"per-channel {name} must be 1-D, got shape {tuple(v.shape)}")
+        if (
+            isinstance(scale, torch.Tensor)
+            and isinstance(offset, torch.Tensor)
+            and scale.numel() > 1
+            and offset.numel() > 1
+            and scale.numel() != offset.numel()
+        ):
+            raise ValueError(
+                f"scale has {scale.numel()} channels but offset has {offset.numel()}; they must match"
+            )
+        object.__setattr__(self, "bits", bits)
+        object.__setattr__(self, "scale", scale)
+        object.__setattr__(self, "offset", offset)
+        object.__setattr__(self, "signed", signed)
+        object.__setattr__(self, "axis", None if axis is None else int(axis))
+
+    def __setattr__(self, name, value):
+        raise AttributeError("UniformGrid is immutable; use .replace(...) to make a changed copy")
+
+    # ------------------------------------------------------------------ integer range
+    @property
+    def qmin(self) -> int:
+        return -(2 ** (self.bits - 1)) if self.signed else 0
+
+    @property
+    def qmax(self) -> int:
+        return 2 ** (self.bits - 1) - 1 if self.signed else 2**self.bits - 1
+
+    @property
+    def n_levels(self) -> int:
+        return 2**self.bits
+
+    @property
+    def per_channel(self) -> bool:
+        return self.axis is not None
+
+    @property
+    def n_channels(self) -> int | None:
+        """Number of channels the scale / offset carry (None for a per-tensor grid or scalars)."""
+        sizes = [v.numel() for v in (self.scale, self.offset) if isinstance(v, torch.Tensor)]
+        sizes = [s for s in sizes if s > 1]
+        return max(sizes) if sizes else None
+
+    # ------------------------------------------------------------------ values
+    def scale_tensor(self) -> torch.Tensor:
+        """Scale as a tensor: 0-d per tensor, 1-d (one per channel) per channel."""
+        return self._as_tensor(self.scale)
+
+    def offset_tensor(self) -> torch.Tensor:
+        return self._as_tensor(self.offset)
+
+    def _as_tensor(self, v) -> torch.Tensor:
+        t = v if isinstance(v, torch.Tensor) else torch.tensor(float(v))
+        if self.axis is None:
+            return t.reshape(())
+        n = self.n_channels
+        t = t.reshape(-1)
+        return t.expand(n) if (n is not None and t.numel() == 1) else t
+
+    @property
+    def levels(self) -> torch.Tensor:
+        """All grid values, ascending: shape ``(n_levels,)``, or ``(channels, n_levels)``."""
+        k = torch.arange(self.qmin, self.qmax + 1, dtype=torch.float64)
+        s = self.scale_tensor().detach().double()
+        o = self.offset_tensor().detach().double()
+        if s.dim() == 0 and o.dim() == 0:
+            out = s * k + o
+        else:
+            out = s.reshape(-1, 1) * k + o.reshape(-1, 1)
+        return out.to(torch.get_default_dtype())
+
+    @property
+    def clip_range(self) -> tuple:
+        """(lowest, highest) grid value; inputs beyond are saturated to these.
+
+        Floats for a per-tensor grid, a pair of 1-D tensors for a per-channel one.
+        """
+        s = self.scale_tensor().detach()
+        o = self.offset_tensor().detach()
+        lo, hi = s * self.qmin + o, s * self.qmax + o
+        if lo.dim() == 0:
+            return float(lo), float(hi)
+        return lo, hi
+
+    @property
+    def zero_point(self):
+        """The integer Z with ``offset == -Z * scale`` (int, or int64 tensor per channel).
+
+        Raises ValueError when the offset is not an integer multiple of the scale; use
+        :meth:`snapped` for the nearest grid that has an integer zero point.
+        """
+        z = -self.offset_tensor().detach().double() / self.scale_tensor().detach().double()
+        zr = torch.round(z)
+        if not bool((torch.abs(z - zr) <= _ZP_TOL * torch.clamp(torch.abs(z), min=1.0)).all()):
+            raise ValueError(
+                "offset is not an integer multiple of scale, so the grid has no integer zero "
+                f"point (-offset/scale = {_short(z)}); call .snapped() for the nearest grid that has one"
+            )
+        if zr.dim() == 0:
+            return int(zr)
+        return zr.to(torch.int64)
+
+    def has_zero_point(self) -> bool:
+        try:
+            _ = self.zero_point
+        except ValueError:
+            return False
+        return True
+
+    # ------------------------------------------------------------------ copies
+    def replace(self, **changes) -> UniformGrid:
+        """A copy with some fields changed (validated like the constructor)."""
+        fields = {k: getattr(self, k) for k in self.__slots__}
+        unknown = set(changes) - set(fields)
+        if unknown:
+            raise TypeError(f"unknown UniformGrid field(s) {sorted(unknown)}; known: {list(fields)}")
+        fields.update(changes)
+        return UniformGrid(**fields)
+
+    def snapped(self) -> UniformGrid:
+        """A copy whose offset is rounded to the nearest integer multiple of the scale."""
+        s = self.scale
+        if isinstance(self.offset, torch.Tensor) or isinstance(s, torch.Tensor):
+            st = self.scale_tensor().detach()
+            z = torch.round(-self.offset_tensor().detach() / st)
+            off = -z * st
+            if off.dim() == 0 and not isinstance(self.offset, torch.Tensor):
+                off = float(off)
+            return self.replace(offset=off + 0.0)
+        return self.replace(offset=-round(-self.offset / s) * s + 0.0)
+
+    def detached(self) -> UniformGrid:
+        """A copy with scale and offset cut from any autograd graph (floats stay floats)."""
+        d = {k: (v.detach().clone() if isinstance(v, torch.Tensor) else v) for k, v in
+             (("scale", self.scale), ("offset", self.offset))}
+        return self.replace(**d)
+
+    # ------------------------------------------------------------------ display
+    def __repr__(self) -> str:
+        def fmt(v):
+            if isinstance(v, torch.Tensor):
+                if v.numel() == 1:
+                    return f"{float(v):.6g}"
+                return f"<{v.numel()} values, {float(v.detach().min()):.4g}..{float(v.detach().max()):.4g}>"
+            return f"{v:.6g}"
+
+        ax = "" if self.axis is None else f", axis={self.axis}"
+        return (
+            f"UniformGrid(bits={self.bits}, scale={fmt(self.scale)}, offset={fmt(self.offset)}, "
+            f"signed={self.signed}{ax})"
+        )
