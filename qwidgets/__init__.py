@@ -8,6 +8,11 @@ from __future__ import annotations
 
 import importlib
 
+# ``quantize`` names both a submodule and a function: the first import of the submodule (other
+# modules do ``from .quantize import ...``) would bind the module object as ``qwidgets.quantize``
+# and hide the lazy export, so the function is bound here, eagerly.
+from .quantize import quantize  # noqa: F401  (re-exported, see _EXPORTS)
+
 __version__ = "0.1.0"
 
 _EXPORTS = {
