@@ -13,7 +13,7 @@ from numbers import Integral, Real
 
 import torch
 
-__all__ = ["UniformGrid", "as_float_tensor"]
+__all__ = ["UniformGrid", "as_float_tensor", "code_values"]
 
 MAX_BITS = 16
 _ZP_TOL = 1e-4  # relative tolerance when deciding that an offset is an integer multiple of scale
@@ -61,6 +61,41 @@ def check_finite(value, name: str):
     if not math.isfinite(value):
         raise ValueError(f"{name} must be finite, got {value}")
     return float(value)
+
+
+def split_offset(s: torch.Tensor, o: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+    """Write the offset as ``-Z * s + rest``: (Z, rest) in ``s``'s dtype, entry by entry.
+
+    Where the offset is an integer multiple of the scale, Z is that integer and rest is 0;
+    elsewhere Z is 0 and rest is the offset. "Integer" allows the few float roundings that
+    storing ``-Z * scale`` costs (4 machine epsilons of ``|Z|``), so using Z moves no grid
+    value by more than that rounding already did.
+    """
+    with torch.no_grad():
+        s_, o_ = torch.broadcast_tensors(s.detach(), o.detach())
+        z = -o_.double() / s_.double()
+        zr = torch.round(z)
+        tol = 4 * torch.finfo(s.dtype).eps * torch.clamp(torch.abs(zr), min=1.0)
+        whole = torch.abs(z - zr) <= tol
+        return (torch.where(whole, zr, 0.0).to(s.dtype),
+                torch.where(whole, torch.zeros_like(o_), o_).to(s.dtype))
+
+
+def code_values(k: torch.Tensor, s: torch.Tensor, o: torch.Tensor) -> torch.Tensor:
+    """Grid values ``s * k + o`` for (float-typed) integer codes ``k``.
+
+    Computed as ``(k - Z) * s + rest`` (see :func:`split_offset`): where ``o == -Z * s`` that
+    is one rounding, the way integer-arithmetic inference dequantizes, so results equal the
+    reference operators bit for bit, and ``quantize`` always returns an exact member of
+    ``UniformGrid.levels``. The gradient is that of ``s * k + o`` (scale and offset are
+    independent parameters).
+    """
+    z, rest = split_offset(s, o)
+    value = (k - z) * s + rest
+    if not (s.requires_grad or o.requires_grad):
+        return value
+    lin = k * s + o
+    return lin + (value - lin).detach()  # the value of ``value`` (Sterbenz: the difference is exact)
 
 
 def _short(t: torch.Tensor) -> str:
@@ -189,14 +224,14 @@ class UniformGrid:
     @property
     def levels(self) -> torch.Tensor:
         """All grid values, ascending: shape ``(n_levels,)``, or ``(channels, n_levels)``."""
-        k = torch.arange(self.qmin, self.qmax + 1, dtype=torch.float64)
-        s = self.scale_tensor().detach().double()
-        o = self.offset_tensor().detach().double()
-        if s.dim() == 0 and o.dim() == 0:
-            out = s * k + o
-        else:
-            out = s.reshape(-1, 1) * k + o.reshape(-1, 1)
-        return out.to(torch.get_default_dtype())
+        # Same arithmetic as ``quantize`` on default-dtype input, so its outputs are members.
+        dtype = torch.get_default_dtype()
+        k = torch.arange(self.qmin, self.qmax + 1, dtype=dtype)
+        s = self.scale_tensor().detach().to(dtype)
+        o = self.offset_tensor().detach().to(dtype)
+        if s.dim() or o.dim():
+            s, o = s.reshape(-1, 1), o.reshape(-1, 1)
+        return code_values(k, s, o)
 
     @property
     def clip_range(self) -> tuple:
@@ -268,6 +303,7 @@ class UniformGrid:
     def __repr__(self) -> str:
         def fmt(v):
             if isinstance(v, torch.Tensor):
+                v = v.detach()
                 if v.numel() == 1:
                     return f"{float(v):.6g}"
                 return f"<{v.numel()} values, {float(v.detach().min()):.4g}..{float(v.detach().max()):.4g}>"
