@@ -7,6 +7,8 @@ stays light and the core math never pulls in ipywidgets or matplotlib.
 from __future__ import annotations
 
 import importlib
+import sys
+import types
 
 # ``quantize`` names both a submodule and a function: the first import of the submodule (other
 # modules do ``from .quantize import ...``) would bind the module object as ``qwidgets.quantize``
@@ -67,3 +69,17 @@ def __getattr__(name: str):
 
 def __dir__():
     return __all__
+
+
+class _Package(types.ModuleType):
+    """``quantize`` and ``scan`` name both a submodule and the function it exports. Python sets
+    a package attribute to each submodule when it is first imported, which would make
+    ``qwidgets.scan`` the module once anything imported it; the exported function wins."""
+
+    def __setattr__(self, name, value):
+        if isinstance(value, types.ModuleType) and _EXPORTS.get(name) == name:
+            value = getattr(value, name)
+        super().__setattr__(name, value)
+
+
+sys.modules[__name__].__class__ = _Package

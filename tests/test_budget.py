@@ -1,0 +1,215 @@
+"""Costs and the exact bit allocator.
+
+Outside check: the allocator against exhaustive enumeration of every assignment (the
+definition of the optimum) on random small instances, <= 6 layers x 4 options.
+"""
+
+from __future__ import annotations
+
+import itertools
+import math
+import re
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from qwidgets.budget import (
+    _front,
+    _solve,
+    layer_bops,
+    pareto_front,
+    plan_budget,
+    weight_storage_bits,
+)
+from qwidgets.scan import SensitivityTable
+
+BITS4 = (2, 4, 6, 8)
+
+
+def _exhaustive(costs, noise, limit):
+    """Least total noise over every assignment with total cost <= limit (None if none fits)."""
+    best = None
+    layers, k = costs.shape
+    for a in itertools.product(range(k), repeat=layers):
+        c = sum(int(costs[i, a[i]]) for i in range(layers))
+        if c <= limit:
+            n = sum(float(noise[i, a[i]]) for i in range(layers))
+            best = n if best is None else min(best, n)
+    return best
+
+
+@st.composite
+def instances(draw):
+    layers = draw(st.integers(1, 6))
+    k = draw(st.integers(1, 4))
+    costs = np.array(draw(st.lists(st.lists(st.integers(1, 40), min_size=k, max_size=k),
+                                   min_size=layers, max_size=layers)), dtype=np.int64)
+    # noise from a small set of values too, so ties and dominated options occur
+    noise = np.array(draw(st.lists(st.lists(st.sampled_from([0.0, 0.01, 0.1, 0.25, 0.5, 1.0, 2.0])
+                                            | st.floats(0, 3), min_size=k, max_size=k),
+                                   min_size=layers, max_size=layers)))
+    lo, hi = int(costs.min(1).sum()), int(costs.max(1).sum())
+    limit = draw(st.integers(lo, hi + 3))
+    return costs, noise, limit
+
+
+@settings(max_examples=300, deadline=None)
+@given(instances())
+def test_solver_equals_exhaustive_enumeration(inst):
+    # reference: exhaustive enumeration of every assignment
+    costs, noise, limit = inst
+    choice = _solve(costs, noise, limit)
+    rows = np.arange(costs.shape[0])
+    assert int(costs[rows, choice].sum()) <= limit
+    assert float(noise[rows, choice].sum()) == pytest.approx(_exhaustive(costs, noise, limit), abs=1e-12)
+
+
+@settings(max_examples=60, deadline=None)
+@given(instances())
+def test_front_equals_exhaustive_pareto_set(inst):
+    # reference: the non-dominated (cost, noise) pairs among all assignments, by enumeration
+    costs, noise, _ = inst
+    layers, k = costs.shape
+    pts = []
+    for a in itertools.product(range(k), repeat=layers):
+        pts.append((sum(int(costs[i, a[i]]) for i in range(layers)),
+                    sum(float(noise[i, a[i]]) for i in range(layers))))
+    pts.sort()
+    expect, best = [], math.inf
+    for c, n in pts:
+        if n < best:  # same summation order as the allocator: exact comparison
+            expect.append((c, n))
+            best = n
+    fc, fn, choices = _front(costs, noise)
+    assert [int(c) for c in fc] == [c for c, _ in expect]
+    np.testing.assert_allclose(fn, [n for _, n in expect], atol=1e-12)
+    rows = np.arange(layers)
+    for c, ch in zip(fc, choices, strict=True):
+        assert int(costs[rows, ch].sum()) == c
+
+
+def _random_table(rng, layers, bits=BITS4, per_layer_shift=True):
+    params = rng.integers(50, 5000, layers)
+    shift = rng.normal(0, 4, (layers, 1)) if per_layer_shift else 0
+    sq = 6.02 * np.array(bits)[None, :] + shift + rng.normal(0, 1, (layers, len(bits)))
+    return SensitivityTable.synthetic(np.sort(sq, axis=1), params=params.tolist(), bits=bits,
+                                      macs=(params * rng.integers(1, 50, layers)).tolist())
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_plan_budget_equals_exhaustive_for_every_budget_kind(seed):
+    # reference: exhaustive enumeration over the table's options, costs counted by hand
+    rng = np.random.default_rng(seed)
+    layers = int(rng.integers(2, 7))
+    t = _random_table(rng, layers)
+    noise = 10 ** (-t.sqnr_array("model") / 10)
+    params = np.array([t.params(n) for n in t.layers])
+    macs = np.array([t.macs(n) for n in t.layers])
+    b = np.array(t.bits)
+    kib_bits = params[:, None] * b[None, :] + 64  # per-tensor grid: one scale and zero point
+    cases = [
+        ("weight_kib", kib_bits, float(rng.uniform(kib_bits.min(1).sum(), kib_bits.max(1).sum())) / 8192),
+        ("mean_bits", params[:, None] * b[None, :], float(rng.uniform(2, 8))),
+        ("bops", macs[:, None] * b[None, :] * 8, float(rng.uniform((macs * 16).sum(), (macs * 64).sum()))),
+    ]
+    for kind, costs, value in cases:
+        limit = math.floor(value * (8192 if kind == "weight_kib" else params.sum() if kind == "mean_bits" else 1))
+        plan = plan_budget(t, **{kind: value})
+        choice = np.array([t.bits.index(plan.bits[n]) for n in t.layers])
+        rows = np.arange(layers)
+        assert int(costs[rows, choice].sum()) <= limit
+        best = _exhaustive(costs, noise, limit)
+        assert float(noise[rows, choice].sum()) == pytest.approx(best, rel=1e-12)
+        assert plan.predicted_sqnr_db == pytest.approx(-10 * math.log10(best), abs=1e-9)
+        # the plan's own cost figures are the same counts
+        if kind == "weight_kib":
+            assert plan.weight_kib <= value
+        elif kind == "mean_bits":
+            assert plan.mean_weight_bits <= value + 1e-12
+        else:
+            assert plan.bops <= value
+
+
+def test_large_table_is_solved_and_beats_greedy():
+    # 200 layers x 8 options (the benchmark's size); the exact optimum can be no worse than
+    # any feasible plan, e.g. the uniform one at the same budget
+    rng = np.random.default_rng(7)
+    t = _random_table(rng, 200, bits=(2, 3, 4, 5, 6, 8, 10, 12))
+    uniform = t.make_plan({n: 5 for n in t.layers})
+    noise = 10 ** (-t.sqnr_array("model") / 10)
+    uniform_noise = noise[:, t.bits.index(5)].sum()
+    plan = plan_budget(t, mean_bits=5)
+    assert plan.mean_weight_bits <= 5
+    assert plan.predicted_sqnr_db >= -10 * math.log10(uniform_noise) - 1e-9
+    assert uniform.mean_weight_bits == 5
+
+
+def test_pareto_front_points_are_plan_budget_optima():
+    rng = np.random.default_rng(3)
+    t = _random_table(rng, 5)
+    front = pareto_front(t, "mean_bits")
+    costs = [c for c, _, _ in front]
+    sq = [s for _, s, _ in front]
+    assert costs == sorted(costs) and sq == sorted(sq)
+    assert costs[0] == 2.0 and costs[-1] == 8.0
+    for c, s, plan in front:
+        assert plan.mean_weight_bits == pytest.approx(c)
+        assert plan_budget(t, mean_bits=c).predicted_sqnr_db == pytest.approx(s, abs=1e-9)
+    thin = pareto_front(t, "mean_bits", max_points=4)
+    assert len(thin) <= 4 and thin[0][0] == costs[0] and thin[-1][0] == costs[-1]
+    kib = pareto_front(t, "weight_kib")
+    assert all(p.weight_kib == pytest.approx(c) for c, _, p in kib)
+    bops = pareto_front(t, "bops", input_bits=4)
+    assert all(p.bops == c for c, _, p in bops)
+
+
+def test_costs_counted_by_hand():
+    # 1000 weights at 4 bits + 10 channels x (float32 scale + int32 zero point)
+    assert weight_storage_bits(1000, 4, 10) == 4000 + 10 * 64
+    assert weight_storage_bits(1000, None) == 32000
+    assert layer_bops(10, 4, 8) == 320 and layer_bops(10, None, 8) == 2560
+
+
+def test_infeasible_budget_states_the_smallest_feasible_one():
+    t = SensitivityTable.synthetic(np.array([[10.0, 30.0], [20.0, 40.0]]), params=[1000, 3000],
+                                   bits=(4, 8), macs=[5000, 7000])
+    with pytest.raises(ValueError, match=r"smallest feasible budget") as e:
+        plan_budget(t, weight_kib=0.5)
+    need = float(re.search(r"smallest feasible budget is weight_kib=([0-9.]+) ", str(e.value)).group(1))
+    assert need == pytest.approx((4000 * 4 + 128) / 8192, abs=1e-4)
+    assert plan_budget(t, weight_kib=need).bits == {"layer0": 4, "layer1": 4}
+    with pytest.raises(ValueError, match=r"smallest feasible budget is mean_bits=4\.0000"):
+        plan_budget(t, mean_bits=3.9)
+    # (5000 + 7000) MACs x 4 weight bits x 8 input bits
+    with pytest.raises(ValueError, match=r"bops=100 is infeasible; the smallest feasible budget is bops=384000 "):
+        plan_budget(t, bops=100)
+    assert plan_budget(t, bops=(5000 + 7000) * 4 * 8).bits == {"layer0": 4, "layer1": 4}
+
+
+@pytest.mark.parametrize("kwargs, err, msg", [
+    ({}, ValueError, "give exactly one budget .* got none"),
+    ({"weight_kib": 1, "mean_bits": 4}, ValueError, "got weight_kib, mean_bits"),
+    ({"mean_bits": 0}, ValueError, "mean_bits must be a finite number > 0, got 0"),
+    ({"weight_kib": -2.5}, ValueError, "weight_kib must be a finite number > 0, got -2.5"),
+    ({"bops": float("nan")}, ValueError, "bops must be a finite number > 0"),
+    ({"bops": float("inf")}, ValueError, "bops must be a finite number > 0"),
+    ({"mean_bits": True}, TypeError, "mean_bits must be a number"),
+    ({"mean_bits": "4"}, TypeError, "mean_bits must be a number"),
+    ({"mean_bits": 4, "input_bits": 0}, ValueError, "input_bits must be None"),
+])
+def test_bad_budgets(kwargs, err, msg):
+    t = SensitivityTable.synthetic(np.array([[10.0, 30.0]]), params=[100], bits=(4, 8))
+    with pytest.raises(err, match=msg):
+        plan_budget(t, **kwargs)
+
+
+def test_bad_table_and_cost():
+    with pytest.raises(TypeError, match="table must be a SensitivityTable"):
+        plan_budget({"a": 1}, mean_bits=4)
+    t = SensitivityTable.synthetic(np.array([[10.0, 30.0]]), params=[100], bits=(4, 8))
+    with pytest.raises(ValueError, match="cost must be one of"):
+        pareto_front(t, "kib")
+    with pytest.raises(ValueError, match="max_points"):
+        pareto_front(t, max_points=1)

@@ -1,0 +1,325 @@
+"""scan / SensitivityTable, and the end-to-end checks on scikit-learn's digits data.
+
+Outside checks:
+- model scope equals the naive result: deep-copy the model, quantize one layer, run it (the
+  obvious definition, computed independently of scan's hooks), to 1e-4 dB;
+- scikit-learn's bundled optical digits data set (sklearn.datasets.load_digits) with a small
+  trained MLP: plans with every layer >= 6 bits have a measured model-output SQNR within 1.5 dB
+  of the additive-noise prediction (quantization noise of fine grids is additive and
+  independent across layers: Widrow & Kollar, Quantization Noise, 2008; from memory).
+"""
+
+from __future__ import annotations
+
+import copy
+import math
+
+import numpy as np
+import pytest
+import torch
+from torch import nn
+
+from qwidgets.budget import plan_budget
+from qwidgets.metrics import error_stats
+from qwidgets.plan import apply_plan, evaluate_plan
+from qwidgets.probe import layer_error
+from qwidgets.quantize import quantize
+from qwidgets.scan import SensitivityTable, scan
+
+
+# ---------------------------------------------------------------------------- fixtures
+@pytest.fixture(scope="session")
+def digits_mlp():
+    """A 64-96-48-10 MLP trained on sklearn's digits (seeded, about a second)."""
+    from sklearn.datasets import load_digits
+
+    x, y = load_digits(return_X_y=True)
+    x = torch.tensor(x / 16.0, dtype=torch.float32)
+    y = torch.tensor(y, dtype=torch.int64)
+    torch.manual_seed(0)
+    net = nn.Sequential(nn.Linear(64, 96), nn.ReLU(), nn.Linear(96, 48), nn.ReLU(), nn.Linear(48, 10))
+    opt = torch.optim.Adam(net.parameters(), lr=1e-2)
+    threads = torch.get_num_threads()
+    torch.set_num_threads(1)  # a model this small trains faster on one thread of a busy machine
+    try:
+        for _ in range(150):
+            opt.zero_grad()
+            nn.functional.cross_entropy(net(x[:1400]), y[:1400]).backward()
+            opt.step()
+    finally:
+        torch.set_num_threads(threads)
+    net.eval()
+    assert float((net(x[1400:]).argmax(1) == y[1400:]).float().mean()) > 0.85
+    return net, x[1400:], y[1400:]
+
+
+def _snapshot(model: nn.Module):
+    return ({k: v.clone() for k, v in model.state_dict().items()},
+            [(m.training, len(m._forward_hooks), len(m._forward_pre_hooks)) for m in model.modules()])
+
+
+def _assert_untouched(model, snap):
+    state, flags = snap
+    for k, v in model.state_dict().items():
+        assert torch.equal(v, state[k]), k
+    assert [(m.training, len(m._forward_hooks), len(m._forward_pre_hooks)) for m in model.modules()] == flags
+
+
+def _naive_sqnr(model, data, name, wgrid, igrid) -> float:
+    """Deep copy, quantize one layer in the copy, run the whole model (the reference method)."""
+    ref = model(data).detach()
+    c = copy.deepcopy(model)
+    layer = c.get_submodule(name)
+    with torch.no_grad():
+        if wgrid is not None:
+            layer.weight.copy_(quantize(layer.weight.detach(), wgrid))
+    if igrid is not None:
+        layer.register_forward_pre_hook(lambda m, a: (quantize(a[0], igrid),))
+    with torch.no_grad():
+        out = c(data)
+    return error_stats(ref, out).sqnr_db
+
+
+class _Residual(nn.Module):
+    """A skip connection from before conv ``b`` meets b's output (the stacked pass cannot apply)."""
+
+    def __init__(self):
+        super().__init__()
+        self.a = nn.Conv2d(3, 6, 3, padding=1)
+        self.b = nn.Conv2d(6, 6, 3, padding=1)
+        self.bn = nn.BatchNorm2d(6)
+        self.fc = nn.Linear(6 * 6 * 6, 5)
+
+    def forward(self, x):
+        h = torch.relu(self.a(x))
+        h = h + self.bn(self.b(h))
+        return self.fc(h.flatten(1))
+
+
+class _BatchMixing(nn.Module):
+    """Subtracts the batch mean after the first layer: samples are not independent."""
+
+    def __init__(self):
+        super().__init__()
+        self.a = nn.Linear(6, 8)
+        self.b = nn.Linear(8, 3)
+
+    def forward(self, x):
+        h = self.a(x)
+        return self.b(h - h.mean(dim=0, keepdim=True))
+
+
+class _CausalMixing(nn.Module):
+    """A running sum over the batch after the first layer: each sample sees the ones before."""
+
+    def __init__(self):
+        super().__init__()
+        self.a = nn.Linear(6, 8)
+        self.b = nn.Linear(8, 3)
+
+    def forward(self, x):
+        return self.b(torch.cumsum(self.a(x), dim=0))
+
+
+class _Shared(nn.Module):
+    """One Linear layer called twice in a forward."""
+
+    def __init__(self):
+        super().__init__()
+        self.a = nn.Linear(5, 5)
+        self.b = nn.Linear(5, 2)
+
+    def forward(self, x):
+        return self.b(torch.tanh(self.a(torch.tanh(self.a(x)))))
+
+
+# ---------------------------------------------------------------------------- outside checks
+@pytest.mark.parametrize("mode", ["weight", "input", "both"])
+def test_model_scope_equals_naive_deep_copy_digits(digits_mlp, mode):
+    # reference: the naive deep-copy method, same numbers to 1e-4 dB
+    net, x, _ = digits_mlp
+    t = scan(net, x, bits=(2, 4, 6, 8), quantize=mode, progress=False)
+    assert t.layers == ["0", "2", "4"]
+    for name in t.layers:
+        assert t.model_pass(name) == "stacked"
+        for b in t.bits:
+            naive = _naive_sqnr(net, x, name, t.weight_grid(name, b), t.input_grid(name, b))
+            assert abs(t.sqnr_db(name, b) - naive) <= 1e-4, (name, b)
+
+
+@pytest.mark.parametrize("model_cls, shape, expect", [
+    (_Residual, (12, 3, 6, 6), {"a": "stacked", "b": "per bit width", "fc": "stacked"}),
+    (_BatchMixing, (10, 6), {"a": "per bit width", "b": "stacked"}),
+    (_CausalMixing, (10, 6), {"a": "per bit width", "b": "stacked"}),
+    (_Shared, (7, 5), {"a": "stacked", "b": "stacked"}),
+])
+def test_model_scope_equals_naive_when_stacking_does_not_apply(model_cls, shape, expect):
+    # the fallbacks (a skip connection from before the layer, an op mixing samples) and a
+    # layer called twice must all give the naive deep-copy numbers
+    torch.manual_seed(1)
+    model = model_cls().eval()
+    x = torch.randn(shape)
+    snap = _snapshot(model)
+    t = scan(model, x, bits=(2, 3, 8), quantize="both", progress=True)
+    _assert_untouched(model, snap)  # also after stacked passes that failed inside the forward
+    assert {n: t.model_pass(n) for n in t.layers} == expect
+    for name in t.layers:
+        for b in t.bits:
+            naive = _naive_sqnr(model, x, name, t.weight_grid(name, b), t.input_grid(name, b))
+            assert abs(t.sqnr_db(name, b) - naive) <= 1e-4, (name, b)
+
+
+def test_predicted_sqnr_matches_measured_at_six_bits_and_more(digits_mlp):
+    # additive, independent quantization noise at fine steps (Widrow & Kollar 2008, from memory)
+    net, x, y = digits_mlp
+    for mode in ("weight", "both"):
+        t = scan(net, x, bits=(6, 7, 8, 10), quantize=mode, progress=False)
+        for mean_bits in (6.0, 6.6, 7.3, 8.5):
+            plan = plan_budget(t, mean_bits=mean_bits)
+            assert min(plan.bits.values()) >= 6
+            rep = evaluate_plan(net, x, plan, metric=_accuracy, target=y)
+            assert abs(rep.measured_sqnr_db - plan.predicted_sqnr_db) <= 1.5, (mode, mean_bits, rep)
+            # 8-bit-ish plans keep accuracy within a point (common practice)
+            if mean_bits >= 7.3:
+                assert rep.metric_planned >= rep.metric_float - 0.01
+
+
+def _accuracy(out, target):
+    return float((out.argmax(1) == target).float().mean())
+
+
+# ---------------------------------------------------------------------------- the scan itself
+def test_layer_scope_equals_layer_error(digits_mlp):
+    net, x, _ = digits_mlp
+    t = scan(net, x, bits=(3, 8), quantize="both", scope="layer", progress=False)
+    assert t.scopes == ("layer",)
+    h = x
+    for name, layer in [("0", net[0]), ("2", net[2]), ("4", net[4])]:
+        for b in t.bits:
+            ref = layer_error(layer, h, t.weight_grid(name, b), t.input_grid(name, b)).sqnr_db
+            assert t.sqnr_db(name, b, scope="layer") == pytest.approx(ref, abs=1e-5)
+        with torch.no_grad():
+            h = torch.relu(layer(h)) if name != "4" else h
+    with pytest.raises(ValueError, match="model-scope"):
+        plan_budget(t, mean_bits=5)
+
+
+def test_scan_leaves_model_untouched_with_batchnorm_in_training_mode():
+    torch.manual_seed(0)
+    net = nn.Sequential(nn.Conv1d(2, 4, 3), nn.BatchNorm1d(4), nn.ReLU(), nn.Flatten(), nn.Linear(24, 3))
+    net.train()
+    net.register_forward_hook(lambda m, a, o: None)
+    snap = _snapshot(net)
+    t = scan(net, torch.randn(9, 2, 8), bits=(2, 8), quantize="both", progress=False)
+    _assert_untouched(net, snap)
+    assert t.layers == ["0", "4"]
+    # eval-mode BatchNorm during the scan: the stacked pass is valid
+    assert t.model_pass("0") == "stacked"
+
+
+def test_table_costs_shapes_and_round_trip(tmp_path, digits_mlp):
+    net, x, _ = digits_mlp
+    t = scan(net, x[:50], bits=(4, 8), progress=False)
+    assert t.params("0") == 64 * 96 and t.macs("0") == 64 * 96 and t.macs("4") == 48 * 10
+    assert t.weight_channels("2") == 48 and t.n_samples == 50
+    rows = t.to_rows()
+    assert len(rows) == 6 and rows[0]["layer"] == "0" and rows[0]["bits"] == 4
+    assert rows[0]["model_sqnr_db"] == t.sqnr_db("0", 4)
+    html = t._repr_html_()
+    assert "<table>" in html and "8 bits" in html
+    path = tmp_path / "table.json"
+    t.save(path)
+    u = SensitivityTable.load(path)
+    assert u.layers == t.layers and u.bits == t.bits and u.fingerprint == t.fingerprint
+    np.testing.assert_array_equal(u.sqnr_array("model"), t.sqnr_array("model"))
+    np.testing.assert_array_equal(u.sqnr_array("layer"), t.sqnr_array("layer"))
+    for n in t.layers:
+        assert torch.equal(u.weight_grid(n, 4).scale, t.weight_grid(n, 4).scale)
+    assert plan_budget(u, mean_bits=6).bits == plan_budget(t, mean_bits=6).bits
+    fig = t.plot()
+    assert fig.axes and fig.axes[0].get_xlabel() == "bit width"
+
+
+def test_max_samples_and_data_forms(digits_mlp):
+    net, x, _ = digits_mlp
+    a = scan(net, x, bits=(4,), max_samples=40, progress=False)
+    b = scan(net, (x[:40],), bits=4, progress=False)
+    assert a.n_samples == 40
+    np.testing.assert_allclose(a.sqnr_array("model"), b.sqnr_array("model"), atol=1e-9)
+
+
+@pytest.mark.parametrize("kwargs, err, msg", [
+    ({"bits": ()}, ValueError, "bits is empty"),
+    ({"bits": (0, 4)}, ValueError, "bits must be in 1..16, got 0"),
+    ({"bits": (4, 17)}, ValueError, "bits must be in 1..16, got 17"),
+    ({"bits": (4.0,)}, TypeError, "bits must be an int"),
+    ({"quantize": "weights"}, ValueError, "quantize must be one of"),
+    ({"scope": "all"}, ValueError, "scope must be one of"),
+    ({"method": "best"}, ValueError, "method must be one of"),
+    ({"max_samples": 0}, ValueError, "max_samples"),
+])
+def test_bad_input(kwargs, err, msg):
+    net = nn.Sequential(nn.Linear(3, 2))
+    snap = _snapshot(net)
+    with pytest.raises(err, match=msg):
+        scan(net, torch.randn(4, 3), progress=False, **kwargs)
+    _assert_untouched(net, snap)
+
+
+def test_bad_model_and_data():
+    with pytest.raises(TypeError, match="model must be a torch.nn.Module"):
+        scan("net", torch.randn(2, 3), progress=False)
+    with pytest.raises(ValueError, match="no quantizable layers"):
+        scan(nn.Sequential(nn.ReLU()), torch.randn(2, 3), progress=False)
+    net = nn.Linear(3, 2)
+    with pytest.raises(RuntimeError, match="forward failed"):
+        scan(net, torch.randn(2, 4), progress=False)
+
+
+def test_table_load_rejects_malformed(tmp_path):
+    t = SensitivityTable.synthetic(np.array([[10.0, 20.0]]), params=[8], bits=(4, 8))
+    p = tmp_path / "t.json"
+    t.save(p)
+    text = p.read_text()
+    p.write_text(text[: len(text) // 2])
+    with pytest.raises(ValueError, match="not valid JSON"):
+        SensitivityTable.load(p)
+    p.write_text(text.replace('"quantize": "weight"', '"quantize": "weights"'))
+    with pytest.raises(ValueError, match="invalid sensitivity table: quantize"):
+        SensitivityTable.load(p)
+    with pytest.raises(OSError, match="cannot read"):
+        SensitivityTable.load(tmp_path / "missing.json")
+
+
+def test_synthetic_infinite_sqnr_round_trips(tmp_path):
+    t = SensitivityTable.synthetic(np.array([[10.0, math.inf]]), params=[8], bits=(4, 8))
+    t.save(tmp_path / "t.json")
+    assert SensitivityTable.load(tmp_path / "t.json").sqnr_db("layer0", 8) == math.inf
+    assert plan_budget(t, mean_bits=8).predicted_sqnr_db == math.inf
+
+
+def test_apply_plan_from_scan_matches_scan_at_single_layer(digits_mlp):
+    # a plan that quantizes only one layer reproduces that layer's model-scope SQNR
+    net, x, _ = digits_mlp
+    t = scan(net, x, bits=(3, 5), progress=False)
+    plan = t.make_plan({"2": 3})
+    out = apply_plan(net, plan)(x).detach()
+    assert error_stats(net(x).detach(), out).sqnr_db == pytest.approx(t.sqnr_db("2", 3), abs=1e-4)
+
+
+def test_layer_scope_weight_only_equals_layer_error_on_convs():
+    # stacked-weight evaluation (one call for all bit widths) against probe.layer_error, which
+    # evaluates each grid on its own
+    torch.manual_seed(2)
+    net = nn.Sequential(nn.Conv2d(3, 6, 3, padding=1, padding_mode="reflect"), nn.ReLU(),
+                        nn.Conv2d(6, 4, 3, groups=2, bias=False), nn.Flatten(2, 3),
+                        nn.Linear(16, 5)).eval()
+    x = torch.randn(7, 3, 6, 6)
+    t = scan(net, x, bits=(2, 5, 8), scope="layer", progress=False)
+    from qwidgets.probe import capture_inputs
+
+    seen = capture_inputs(net, x)
+    for name in t.layers:
+        for b in t.bits:
+            ref = layer_error(net.get_submodule(name), seen[name], t.weight_grid(name, b)).sqnr_db
+            assert t.sqnr_db(name, b, scope="layer") == pytest.approx(ref, abs=1e-4), (name, b)
