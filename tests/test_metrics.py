@@ -124,3 +124,37 @@ def test_grid_usage_per_channel_counts_levels_per_channel():
     # channel 0 codes {0, 1, -2, 1(clipped)} -> 3 levels; channel 1 codes {0, 0, 1, -2(clipped)} -> 3
     assert (u.bins_used, u.n_bins) == (6, 8)
     assert u.clipped_high == 1 / 8 and u.clipped_low == 1 / 8
+
+
+# ------------------------------------------------------------------ large tensors (sliced path)
+@pytest.mark.parametrize("axis", [None, 0, 1])
+def test_large_tensors_match_numpy_across_slice_boundaries(axis):
+    """Tensors far larger than one slice give the numpy definitions (float64, numpy.round is
+    also round-half-to-even)."""
+    rng = np.random.default_rng(7)
+    x = rng.normal(size=(3, 100_003)).astype(np.float32)
+    if axis is None:
+        g = UniformGrid(3, 0.45, 0.05)
+        s, o = 0.45, 0.05
+    else:
+        n = x.shape[axis]
+        sv = rng.uniform(0.2, 0.6, n).astype(np.float32)
+        ov = rng.uniform(-0.1, 0.1, n).astype(np.float32)
+        g = UniformGrid(3, torch.from_numpy(sv), torch.from_numpy(ov), axis=axis)
+        shape = [1, 1]
+        shape[axis] = n
+        s, o = sv.reshape(shape), ov.reshape(shape)
+    xt = torch.from_numpy(x)
+    app = quantize(xt, g).numpy()
+    st = error_stats(xt, torch.from_numpy(app))
+    for key, val in numpy_stats(x, app).items():
+        assert getattr(st, key) == pytest.approx(val, rel=1e-9), key
+    t = (x - o) / s  # float32, as the quantizer computes it
+    codes = np.clip(np.round(t), g.qmin, g.qmax).astype(np.int64)
+    u = grid_usage(xt, g)
+    assert u.clipped_low == (t < g.qmin - 0.5).mean() and u.clipped_high == (t > g.qmax + 0.5).mean()
+    if axis is None:
+        assert u.bins_used == np.unique(codes).size
+    else:
+        per = np.moveaxis(codes, axis, 0).reshape(x.shape[axis], -1)
+        assert u.bins_used == sum(np.unique(r).size for r in per)

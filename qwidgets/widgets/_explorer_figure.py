@@ -1,0 +1,272 @@
+"""The grid explorer's four plots, built once and updated in place (drawing only, no arithmetic).
+
+:class:`ExplorerFigure` owns the matplotlib artists. The explorer computes every number with
+the core functions and hands them over in a :class:`PlotData`; this module only moves artists.
+Artists that change with the controls are "animated" (blitted over a cached background); axis
+limits change only when the view really has to move (a new source or channel, a grid reaching
+outside the view, a new bit width), which is when the background is redrawn.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import matplotlib
+import numpy as np
+from matplotlib.gridspec import GridSpec
+from matplotlib.patches import Rectangle
+from matplotlib.ticker import MaxNLocator, NullFormatter, NullLocator
+
+from ._render import PlotCanvas
+
+_RC = {
+    "font.size": 8.5,
+    "axes.titlesize": 9,
+    "axes.labelsize": 8.5,
+    "xtick.labelsize": 8,
+    "ytick.labelsize": 8,
+    "legend.fontsize": 7.5,
+    "axes.spines.top": False,
+    "axes.spines.right": False,
+    # a fixed title position: placing titles above tick labels measures every label, each draw
+    "axes.titley": 1.0,
+    "axes.titlepad": 5.0,
+}
+GRID_COLOR = "#d62728"  # grid points and clip range
+HARD_COLOR = "#1f4e9c"
+SOFT_COLOR = "#ff7f0e"
+SAMPLE_COLOR = "#2ca02c"
+CLIP_FILL = "#d62728"
+MAX_TICKS = 65  # grid points drawn as ticks; beyond this, every n-th is drawn
+
+
+@dataclass
+class PlotData:
+    """Everything the four plots show for one state of the controls (numpy arrays, floats)."""
+
+    levels: np.ndarray  # grid values of the shown grid (ascending)
+    clip: tuple  # (lowest, highest) grid value
+    step: float
+    map_image: np.ndarray  # (bins, positions) probabilities
+    map_extent: tuple  # (x0, x1, k0 - 0.5, k1 + 0.5) in grid steps / codes
+    probe_pos: float  # probe position in grid steps
+    probe_codes: np.ndarray  # bins of the bars
+    probe_probs: np.ndarray  # their probabilities
+    curve_x: np.ndarray
+    curve_hard: np.ndarray
+    curve_expected: np.ndarray
+    curve_samples: list  # (x, y) arrays of relaxed samples
+    out_x: np.ndarray  # float output sample (or error positions for a tensor)
+    out_y: np.ndarray  # quantized output sample (or error histogram counts)
+
+
+class ExplorerFigure:
+    """Four panels: values and grid; bin probabilities; transfer curve; output (or error).
+
+    >>> from qwidgets.widgets._render import PlotCanvas
+    >>> fig = ExplorerFigure(PlotCanvas(720, 600), has_layer=True)
+    >>> len(fig.canvas.figure.axes)
+    5
+    """
+
+    def __init__(self, canvas: PlotCanvas, has_layer: bool):
+        self.canvas = canvas
+        self.has_layer = has_layer
+        fig = canvas.figure
+        with matplotlib.rc_context(_RC):
+            gs = GridSpec(2, 3, figure=fig, width_ratios=[1.0, 0.78, 0.22], height_ratios=[1, 1],
+                          left=0.085, right=0.985, bottom=0.085, top=0.92, wspace=0.42, hspace=0.42)
+            self.ax_hist = fig.add_subplot(gs[0, 0])
+            self.ax_map = fig.add_subplot(gs[0, 1])
+            self.ax_bars = fig.add_subplot(gs[0, 2])  # same bins as the map; limits set together
+            self.ax_curve = fig.add_subplot(gs[1, 0])
+            self.ax_out = fig.add_subplot(gs[1, 1:])
+            for ax in fig.axes:
+                ax.tick_params(labelsize=8)
+            self._build_hist()
+            self._build_map()
+            self._build_curve()
+            self._build_out()
+        self._view = None
+
+    # ------------------------------------------------------------------ construction
+    def _build_hist(self):
+        ax = self.ax_hist
+        ax.set_yscale("log")
+        ax.yaxis.set_minor_formatter(NullFormatter())
+        self.hist_patch = ax.stairs([1.0], [0.0, 1.0], fill=True, color="#9db4d6", baseline=0.7,
+                                    label="values")
+        self.hist_clipped = ax.stairs([0.7], [0.0, 1.0], fill=True, color=CLIP_FILL, alpha=0.7,
+                                      baseline=0.7, label="clipped values")
+        xform = ax.get_xaxis_transform()
+        (self.grid_ticks,) = ax.plot([], [], color=GRID_COLOR, lw=0.8, transform=xform,
+                                     label="grid points")
+        self.clip_low = Rectangle((0, 0), 0, 1, transform=xform, color=CLIP_FILL, alpha=0.08, lw=0)
+        self.clip_high = Rectangle((0, 0), 0, 1, transform=xform, color=CLIP_FILL, alpha=0.08, lw=0)
+        ax.add_patch(self.clip_low)
+        ax.add_patch(self.clip_high)
+        (self.clip_lines,) = ax.plot([], [], color=GRID_COLOR, lw=1.0, ls="--", transform=xform)
+        ax.set_ylabel("count (log scale)")
+        self._hist_legend()
+        # Numbers live in the readout panel beside the figure: text is the slowest thing to
+        # blit (several ms a label), so the plots carry no changing text.
+        self.canvas.animate(self.hist_clipped, self.grid_ticks, self.clip_low, self.clip_high,
+                            self.clip_lines)
+
+    def _hist_legend(self):
+        self.ax_hist.legend(handles=[self.hist_patch, self.hist_clipped, self.grid_ticks],
+                            loc="upper right", frameon=False, handlelength=1.2, fontsize=7.5)
+
+    def _build_map(self):
+        ax = self.ax_map
+        self.map_img = ax.imshow(np.zeros((2, 2)), origin="lower", aspect="auto", cmap="viridis",
+                                 vmin=0.0, vmax=1.0, interpolation="nearest", extent=(0, 1, 0, 1))
+        self.probe_line = ax.axvline(0.0, color="white", lw=1.2, ls="--")
+        ax.set_title("Bin probabilities under noise")
+        # integer codes, few labels: this axes is repainted when the bit width changes
+        ax.yaxis.set_major_locator(MaxNLocator(6, integer=True))
+        ax.xaxis.set_major_locator(MaxNLocator(4, integer=True))
+        ax.set_xlabel("input position in grid steps, (x - offset) / step")
+        ax.set_ylabel("grid bin (integer code)")
+        bars = self.ax_bars
+        self.bars = bars.stairs([0.0], [0.0, 1.0], orientation="horizontal", fill=True,
+                                color="#3b75af")
+        bars.set_xlim(0, 1.05)
+        bars.set_xticks([0, 0.5, 1])
+        bars.set_xlabel("probability")
+        bars.set_title("at probe", fontsize=8)
+        bars.yaxis.set_major_locator(NullLocator())  # the map beside it labels the bins
+        self.canvas.animate(self.map_img, self.probe_line, self.bars)
+
+    def _build_curve(self):
+        ax = self.ax_curve
+        (self.identity,) = ax.plot([0, 1], [0, 1], color="#bbbbbb", lw=0.8, label="no quantization")
+        self.sample_lines = [
+            ax.plot([], [], ls="none", marker=".", ms=2.5, color=SAMPLE_COLOR, alpha=0.6,
+                    label="relaxed samples" if i == 0 else None)[0]
+            for i in range(3)
+        ]
+        (self.hard_line,) = ax.plot([], [], color=HARD_COLOR, lw=1.4, drawstyle="steps-mid",
+                                    label="hard (round to nearest)")
+        (self.soft_line,) = ax.plot([], [], color=SOFT_COLOR, lw=1.3, ls="--",
+                                    label="relaxed expectation")
+        ax.set_title("Transfer curve")
+        ax.set_ylabel("quantized value")
+        ax.legend(loc="upper left", frameon=False, handlelength=1.6)
+        self.canvas.animate(*self.sample_lines, self.hard_line, self.soft_line)
+
+    def _build_out(self):
+        ax = self.ax_out
+        if self.has_layer:
+            (self.out_identity,) = ax.plot([0, 1], [0, 1], color="#bbbbbb", lw=0.8)
+            (self.out_points,) = ax.plot([], [], ls="none", marker=".", ms=2.0, color=HARD_COLOR,
+                                         alpha=0.5)
+            ax.set_title("Layer output: quantized vs float")
+            ax.set_xlabel("float output")
+            ax.set_ylabel("output with quantization")
+            self.canvas.animate(self.out_points)
+        else:
+            self.out_points = ax.stairs([0.0], [0.0, 1.0], fill=True, color="#9db4d6")
+            ax.set_title("Quantization error of the values")
+            ax.set_xlabel("error in grid steps, (quantized - value) / step")
+            ax.set_ylabel("share of values")
+            ax.set_xlim(-2.5, 2.5)
+            self.canvas.animate(self.out_points)
+        self.caption = self.canvas.figure.text(0.01, 0.995, "", ha="left", va="top", fontsize=7.5,
+                                               color="#333333")
+
+    # ------------------------------------------------------------------ static parts
+    def set_values(self, counts: np.ndarray, edges: np.ndarray, what: str, unit_label: str) -> None:
+        """The histogram of the shown values (static until the source or channel changes)."""
+        self.hist_patch.set_data(np.maximum(counts, 0.7), edges)
+        self._counts, self._edges = counts, edges
+        ax = self.ax_hist
+        ax.set_title(what, fontsize=9)
+        ax.set_xlabel(unit_label)
+        ax.set_ylim(0.7, max(2.0, float(counts.max())) * 3.0)
+        self.ax_curve.set_xlabel(unit_label)
+        self.canvas.invalidate(self.ax_hist, self.ax_curve)
+
+    def set_view(self, lo: float, hi: float) -> None:
+        """The value range shown by the histogram and the transfer curve."""
+        if self._view == (lo, hi):
+            return
+        self._view = (lo, hi)
+        self.ax_hist.set_xlim(lo, hi)
+        self.ax_curve.set_xlim(lo, hi)
+        self.ax_curve.set_ylim(lo, hi)
+        self.identity.set_data([lo, hi], [lo, hi])
+
+    def set_output_range(self, lo: float, hi: float) -> None:
+        """Axes of the layer-output scatter (the float output's range; static)."""
+        if self.has_layer:
+            self.ax_out.set_xlim(lo, hi)
+            self.ax_out.set_ylim(lo, hi)
+            self.out_identity.set_data([lo, hi], [lo, hi])
+
+    @property
+    def view(self):
+        return self._view
+
+    # ------------------------------------------------------------------ updates
+    def update(self, d: PlotData) -> None:
+        """Move every animated artist to the state in ``d``."""
+        self._update_hist(d)
+        self._update_map(d)
+        self._update_curve(d)
+        self._update_out(d)
+
+    def _update_hist(self, d: PlotData):
+        lo, hi = d.clip
+        v0, v1 = self._view
+        centres = 0.5 * (self._edges[:-1] + self._edges[1:])
+        outside = (centres < lo - 0.5 * d.step) | (centres > hi + 0.5 * d.step)
+        self.hist_clipped.set_data(np.where(outside, np.maximum(self._counts, 0.7), 0.7), self._edges)
+        levels = d.levels[(d.levels >= v0) & (d.levels <= v1)]
+        every = max(1, int(np.ceil(levels.size / MAX_TICKS)))
+        shown = levels[::every]
+        xs = np.repeat(shown, 3)
+        ys = np.tile([0.0, 0.07, np.nan], shown.size)
+        self.grid_ticks.set_data(xs, ys)
+        self.clip_low.set_x(v0)
+        self.clip_low.set_width(max(0.0, lo - v0))
+        self.clip_high.set_x(hi)
+        self.clip_high.set_width(max(0.0, v1 - hi))
+        self.clip_lines.set_data([lo, lo, np.nan, hi, hi], [0, 1, np.nan, 0, 1])
+        label = "grid points" if every == 1 else f"grid points (1 in {every})"
+        if self.grid_ticks.get_label() != label:
+            self.grid_ticks.set_label(label)
+            self._hist_legend()
+            self.canvas.invalidate(self.ax_hist)
+
+    def _update_map(self, d: PlotData):
+        x0, x1, y0, y1 = d.map_extent
+        self.map_img.set_data(d.map_image)
+        self.map_img.set_extent(d.map_extent)
+        self.ax_map.set_xlim(x0, x1)
+        self.ax_map.set_ylim(y0, y1)
+        self.ax_bars.set_ylim(y0, y1)
+        self.probe_line.set_xdata([d.probe_pos, d.probe_pos])
+        edges = np.append(d.probe_codes - 0.5, d.probe_codes[-1] + 0.5)
+        self.bars.set_data(d.probe_probs, edges)
+
+    def _update_curve(self, d: PlotData):
+        self.hard_line.set_data(d.curve_x, d.curve_hard)
+        self.soft_line.set_data(d.curve_x, d.curve_expected)
+        for line, (x, y) in zip(self.sample_lines, d.curve_samples, strict=False):
+            line.set_data(x, y)
+
+    def _update_out(self, d: PlotData):
+        if self.has_layer:
+            self.out_points.set_data(d.out_x, d.out_y)
+        else:
+            self.out_points.set_data(d.out_y, d.out_x)
+            top = float(d.out_y.max()) if d.out_y.size else 1.0
+            if self.ax_out.get_ylim()[1] < top or self.ax_out.get_ylim()[1] > 3 * top:
+                self.ax_out.set_ylim(0, 1.25 * top)
+
+    def set_caption(self, text: str) -> None:
+        """A line of text above the plots (used for saved figures, which have no readout panel)."""
+        if self.caption.get_text() != text:
+            self.caption.set_text(text)
+            self.canvas.invalidate()

@@ -1,0 +1,211 @@
+"""ScanView: the sensitivity heatmap and table; picking a layer opens its grid explorer below.
+
+The view draws a :class:`~qwidgets.scan.SensitivityTable` (made by :func:`qwidgets.scan`, or
+given); it computes nothing itself. Picking a layer (the drop-down, or :meth:`ScanView.pick`)
+marks its row in the heatmap and opens a :class:`~qwidgets.widgets.explorer.GridExplorer` for
+that layer, starting at the picked bit width with the scan's range method.
+"""
+
+from __future__ import annotations
+
+import os
+
+import ipywidgets as widgets
+from matplotlib.patches import Rectangle
+from torch import nn
+
+from ..scan import SensitivityTable, draw_heatmap, scan
+from ._render import MessageLine, PlotCanvas
+
+__all__ = ["ScanView"]
+
+CSS = {
+    "root": "qw-scanview",
+    "plot": "qw-scan-heatmap",
+    "table": "qw-scan-table",
+    "layer": "qw-scan-layer",
+    "bits": "qw-scan-bits",
+    "scope": "qw-scan-scope",
+    "open": "qw-scan-open",
+    "explorer": "qw-scan-explorer",
+}
+SCOPE_LABELS = {"model": "model output", "layer": "layer output"}
+
+
+class ScanView(widgets.VBox):
+    """Heatmap and table of a sensitivity scan; pick a layer to explore its grid below.
+
+    ``ScanView(model, data, ...)`` runs :func:`qwidgets.scan` (keywords ``bits``,
+    ``quantize``, ``method``, ``per_channel``, ``scope``, ``max_samples``, ``progress`` go to
+    it); ``ScanView(table)`` shows a table made before (add ``model=`` and ``data=`` to open
+    explorers from it).
+
+    >>> import torch
+    >>> from torch import nn
+    >>> _ = torch.manual_seed(0)
+    >>> net = nn.Sequential(nn.Linear(8, 16), nn.ReLU(), nn.Linear(16, 4))
+    >>> view = ScanView(net, torch.randn(32, 8), bits=(2, 4, 8), progress=False)
+    >>> view.pick("2", bits=4).explorer.grid.bits, view.selected
+    (4, ('2', 4))
+    """
+
+    def __init__(self, obj, data=None, *, model: nn.Module | None = None, bits=(2, 3, 4, 5, 6, 8),
+                 quantize: str = "weight", method: str = "mse", per_channel: bool = True,
+                 scope: str = "both", max_samples: int | None = None, progress: bool = True,
+                 width: int = 720):
+        super().__init__()
+        if isinstance(obj, SensitivityTable):
+            if (model is None) != (data is None):
+                raise TypeError("to open explorers from a table give both model= and data=")
+            if model is not None and not isinstance(model, nn.Module):
+                raise TypeError(f"model must be a torch.nn.Module, got {type(model).__name__}")
+            self.table, self.model, self.data = obj, model, data
+        elif isinstance(obj, nn.Module):
+            if data is None:
+                raise TypeError("ScanView(model, data): data is missing")
+            if model is not None:
+                raise TypeError("give the model once: ScanView(model, data) or ScanView(table, model=..., data=...)")
+            self.model, self.data = obj, data
+            self.table = scan(obj, data, bits, quantize=quantize, method=method, per_channel=per_channel,
+                              scope=scope, max_samples=max_samples, progress=progress)
+        else:
+            raise TypeError(f"ScanView takes a model and its data, or a SensitivityTable; got {type(obj).__name__}")
+        self._max_samples = max_samples
+        self.explorer = None
+        self.selected: tuple[str, int] | None = None
+        self._scope = "model" if "model" in self.table.scopes else "layer"
+        self._build(width)
+        self._draw_table()
+        self._draw_heatmap()
+
+    # ------------------------------------------------------------------ layout
+    def _build(self, width: int) -> None:
+        t = self.table
+        self.message = MessageLine()
+        self.controls = {
+            "scope": widgets.ToggleButtons(options=[(SCOPE_LABELS[s], s) for s in t.scopes],
+                                           value=self._scope, description="SQNR of",
+                                           style={"description_width": "60px", "button_width": "110px"}),
+            "layer": widgets.Dropdown(options=t.layers, value=t.layers[0], description="layer",
+                                      style={"description_width": "60px"},
+                                      layout=widgets.Layout(width="260px")),
+            "bits": widgets.Dropdown(options=list(t.bits), value=t.bits[len(t.bits) // 2],
+                                     description="bits", style={"description_width": "40px"},
+                                     layout=widgets.Layout(width="130px")),
+            "open": widgets.Button(description="explore layer", icon="search",
+                                   disabled=self.model is None,
+                                   tooltip="open a grid explorer for this layer below"
+                                   if self.model is not None else "give model= and data= to explore",
+                                   layout=widgets.Layout(width="140px")),
+        }
+        for name, w in self.controls.items():
+            w.add_class(CSS[name])
+        self.controls["scope"].observe(lambda ch: self._guard("scope", lambda: self.set_scope(ch["new"])),
+                                       names="value")
+        self.controls["open"].on_click(lambda _b: self._guard("explore", lambda: self.pick(
+            self.controls["layer"].value, bits=self.controls["bits"].value)))
+        rows = len(t.layers)
+        height = int(min(900, max(220, 120 + 26 * rows)))
+        self.canvas = PlotCanvas(width, height)
+        self.canvas.image.add_class(CSS["plot"])
+        self.table_html = widgets.HTML(layout=widgets.Layout(max_height="360px", overflow="auto",
+                                                             width=f"{width}px"))
+        self.table_html.add_class(CSS["table"])
+        self.explorer_box = widgets.VBox([])
+        self.explorer_box.add_class(CSS["explorer"])
+        bar = widgets.HBox([self.controls["layer"], self.controls["bits"], self.controls["open"]],
+                           layout=widgets.Layout(align_items="center"))
+        self.children = [self.controls["scope"], self.canvas.image, self.table_html, bar,
+                         self.message.widget, self.explorer_box]
+        self.add_class(CSS["root"])
+
+    def _guard(self, what: str, fn) -> None:
+        try:
+            fn()
+        except Exception as exc:  # a callback has no caller: show it on the message line
+            self.message.error(exc, what)
+
+    # ------------------------------------------------------------------ drawing
+    def _draw_heatmap(self) -> None:
+        fig = self.canvas.figure
+        fig.clear()
+        ax = fig.add_subplot()
+        arr = self.table.sqnr_array(self._scope)
+        draw_heatmap(ax, arr, self.table.layers, self.table.bits,
+                     f"{SCOPE_LABELS[self._scope]} SQNR (dB), one layer quantized at a time "
+                     f"({self.table.quantize})")
+        self._marker = Rectangle((-0.5, -0.5), len(self.table.bits), 1, fill=False, lw=2.2,
+                                 ec="#d62728", visible=False)
+        self._cell = Rectangle((-0.5, -0.5), 1, 1, fill=False, lw=2.2, ec="white", visible=False)
+        ax.add_patch(self._marker)
+        ax.add_patch(self._cell)
+        self._ax = ax
+        fig.tight_layout()
+        self.canvas.animate(self._marker, self._cell)
+        self.canvas.invalidate()
+        self._place_marker()
+        self.canvas.render()
+
+    def _place_marker(self) -> None:
+        if self.selected is None:
+            self._marker.set_visible(False)
+            self._cell.set_visible(False)
+            return
+        row = self.table.layers.index(self.selected[0])
+        col = self.table.bits.index(self.selected[1])
+        self._marker.set_xy((-0.5, row - 0.5))
+        self._cell.set_xy((col - 0.5, row - 0.5))
+        self._marker.set_visible(True)
+        self._cell.set_visible(True)
+
+    def _draw_table(self) -> None:
+        self.table_html.value = self.table._repr_html_()
+
+    # ------------------------------------------------------------------ actions
+    def set_scope(self, scope: str) -> ScanView:
+        """Show the model-output or the layer-output SQNR (whichever the table holds)."""
+        if scope not in self.table.scopes:
+            raise ValueError(f"scope must be one of {list(self.table.scopes)} for this table, got {scope!r}")
+        self._scope = scope
+        if self.controls["scope"].value != scope:
+            self.controls["scope"].value = scope
+        self._draw_heatmap()
+        return self
+
+    def pick(self, layer: str, bits: int | None = None) -> ScanView:
+        """Mark ``layer`` (at ``bits``) and open a grid explorer for it below the table."""
+        t = self.table
+        if layer not in t.layers:
+            raise ValueError(f"layer {layer!r} is not in the scan; layers: {t.layers}")
+        bits = self.controls["bits"].value if bits is None else bits
+        if bits not in t.bits:
+            raise ValueError(f"bits must be one of the scanned widths {list(t.bits)}, got {bits!r}")
+        self.controls["layer"].value, self.controls["bits"].value = layer, bits
+        self.selected = (layer, int(bits))
+        self._place_marker()
+        self.canvas.render()
+        if self.model is None:
+            self.message.info(f"{layer} at {bits} bits: {_summary(t, layer, bits)} "
+                              "(give model= and data= to explore the grid)")
+            return self
+        from .explorer import GridExplorer
+
+        self.explorer = GridExplorer(self.model, self.data, layer=layer, bits=int(bits),
+                                     method=t.method, per_channel=t.per_channel and t.quantize != "input",
+                                     source="input" if t.quantize == "input" else "weight",
+                                     max_samples=self._max_samples)
+        self.explorer_box.children = [widgets.HTML(f"<b>Grid explorer: layer {layer}</b>"), self.explorer]
+        self.message.info(f"{layer} at {bits} bits: {_summary(t, layer, bits)}")
+        return self
+
+    def save_figure(self, path: str | os.PathLike) -> None:
+        """Write the heatmap as PNG or SVG (by the file's extension)."""
+        self.canvas.save(path)
+
+
+def _summary(t: SensitivityTable, layer: str, bits: int) -> str:
+    parts = [f"{s} SQNR {t.sqnr_db(layer, bits, s):.2f} dB" for s in t.scopes]
+    parts.append(f"{t.params(layer):,} weights, {t.macs(layer):,} MACs per sample")
+    return ", ".join(parts)
+
+

@@ -1,0 +1,169 @@
+"""The shared rendering helper: PNG encoding, blitting, partial repaints, event coalescing."""
+
+from __future__ import annotations
+
+import asyncio
+import io
+
+import numpy as np
+import pytest
+from PIL import Image
+
+from qwidgets.widgets._render import Coalescer, MessageLine, PlotCanvas, encode_png
+
+
+def test_encode_png_decodes_to_the_same_pixels_with_pillow():
+    """Reference: Pillow's PNG decoder reads back exactly the RGB pixels given."""
+    rng = np.random.default_rng(0)
+    rgba = rng.integers(0, 256, size=(37, 53, 4), dtype=np.uint8)
+    for level in (0, 1, 9):
+        with Image.open(io.BytesIO(encode_png(rgba, level))) as im:
+            assert im.mode == "RGB" and im.size == (53, 37)
+            np.testing.assert_array_equal(np.asarray(im), rgba[..., :3])
+    with pytest.raises(ValueError, match="rgba must be an"):
+        encode_png(np.zeros((4, 4), np.uint8))
+    with pytest.raises(ValueError, match="compress_level must be in 0..9"):
+        encode_png(rgba, 10)
+
+
+def _two_panels():
+    canvas = PlotCanvas(400, 200)
+    left, right = canvas.figure.subplots(1, 2, gridspec_kw={"wspace": 0.6})
+    (a,) = left.plot([0, 1, 2], [0, 1, 0], color="C0")
+    (b,) = right.plot([0, 1, 2], [1, 0, 1], color="C1")
+    left.set_title("left")
+    right.set_xlabel("value")
+    canvas.animate(a, b)
+    return canvas, left, right, a, b
+
+
+def _fresh(canvas) -> np.ndarray:
+    canvas.invalidate()
+    return canvas.draw().copy()
+
+
+def test_blitted_frames_equal_a_full_redraw():
+    canvas, left, right, a, b = _two_panels()
+    canvas.render()
+    assert canvas.full_draws == 1
+    a.set_ydata([1, 0, 1])
+    blitted = canvas.draw().copy()
+    assert canvas.full_draws == 1 and canvas.partial_draws == 0  # only the line was drawn
+    np.testing.assert_array_equal(blitted, _fresh(canvas))
+
+
+def test_new_limits_repaint_only_that_axes_and_match_a_full_redraw():
+    canvas, left, right, a, b = _two_panels()
+    canvas.render()
+    right.set_xlim(-5, 50)  # new ticks and labels on the right only
+    partial = canvas.draw().copy()
+    assert canvas.partial_draws == 1 and canvas.full_draws == 1
+    np.testing.assert_array_equal(partial, _fresh(canvas))
+    right.set_xlim(-5, 50)
+    canvas.draw()
+    right.set_xlim(0, 3)  # a view not seen before: repainted, old labels blanked
+    partial = canvas.draw().copy()
+    assert canvas.partial_draws == 2
+    np.testing.assert_array_equal(partial, _fresh(canvas))
+    right.set_xlim(-5, 50)
+    canvas.draw()
+    right.set_xlim(0, 3)
+    canvas.draw()
+    right.set_xlim(-5, 50)  # a view seen before: its kept background is reused, no drawing
+    kept, full = canvas.kept_draws, canvas.full_draws
+    partial = canvas.draw().copy()
+    assert canvas.kept_draws == kept + 1 and canvas.full_draws == full
+    np.testing.assert_array_equal(partial, _fresh(canvas))
+    left.set_title("a longer title now")
+    canvas.invalidate(left)  # a static change announced for one axes
+    partial = canvas.draw().copy()
+    np.testing.assert_array_equal(partial, _fresh(canvas))
+
+
+def test_saved_figure_contains_the_animated_artists(tmp_path):
+    canvas, left, right, a, b = _two_panels()
+    a.set_color("#ff0000")
+    a.set_linewidth(6)
+    canvas.render()
+    canvas.save(tmp_path / "f.png")
+    with Image.open(tmp_path / "f.png") as im:
+        px = np.asarray(im.convert("RGB")).reshape(-1, 3)
+    assert ((px[:, 0] > 240) & (px[:, 1] < 30) & (px[:, 2] < 30)).sum() > 50
+    canvas.save(tmp_path / "f.svg")
+    assert "<svg" in (tmp_path / "f.svg").read_text()
+    assert a.get_animated()  # still blitted afterwards
+    with pytest.raises(ValueError, match=r"\.png or \.svg"):
+        canvas.save(tmp_path / "f.pdf")
+
+
+def test_image_widget_has_a_fixed_pixel_size():
+    canvas = PlotCanvas(640, 300)
+    assert (canvas.image.layout.width, canvas.image.layout.height) == ("640px", "300px")
+    canvas.figure.add_subplot().plot([0, 1])
+    png = canvas.render()
+    assert canvas.image.value == png
+    with Image.open(io.BytesIO(png)) as im:
+        assert im.size == (640, 300)
+    with pytest.raises(ValueError, match="at least 50x50"):
+        PlotCanvas(10, 300)
+
+
+def test_coalescer_runs_one_call_for_a_burst_on_the_event_loop():
+    seen = []
+    state = {"value": 0}
+    c = Coalescer(lambda: seen.append(state["value"]), delay=0.01)
+
+    async def burst():
+        for i in range(200):
+            state["value"] = i
+            c.request()
+            if i % 50 == 0:
+                await asyncio.sleep(0)  # the loop runs between events, as in a kernel
+        await asyncio.sleep(0.05)
+
+    asyncio.run(burst())
+    assert seen == [199]  # one call, and it saw the last value
+    assert c.requests == 200 and c.calls == 1 and not c.pending
+
+
+def test_coalescer_without_a_loop_waits_for_flush_and_reports_errors():
+    calls = []
+    c = Coalescer(lambda: calls.append(1))
+    for _ in range(5):
+        c.request()
+    assert calls == [] and c.pending
+    assert c.flush() and calls == [1] and not c.flush()
+    errors = []
+
+    def boom():
+        raise RuntimeError("no")
+
+    c = Coalescer(boom, on_error=errors.append)
+    c.request()
+    c.flush()
+    assert isinstance(errors[0], RuntimeError)
+    c = Coalescer(boom)
+    c.request()
+    with pytest.raises(RuntimeError):
+        c.flush()
+    c.request()
+    c.cancel()
+    assert not c.pending
+    with pytest.raises(TypeError, match="callback must be callable"):
+        Coalescer(3)
+    with pytest.raises(ValueError, match="delay must be >= 0"):
+        Coalescer(print, delay=-1)
+
+
+def test_message_line_shows_errors_and_notes():
+    m = MessageLine()
+    with m.guard("fit"):
+        raise ValueError("scale must be > 0, got -0.1")
+    assert m.is_error and m.text == "fit failed: ValueError: scale must be > 0, got -0.1"
+    assert "scale must be &gt; 0" in m.widget.value  # escaped HTML
+    assert "Traceback" in m.last_traceback
+    m.info("fitted <range>")
+    assert not m.is_error and "&lt;range&gt;" in m.widget.value
+    m.clear()
+    assert m.text == "" and m.widget.value == ""
+    assert "qw-message" in m.widget._dom_classes
