@@ -1,0 +1,1 @@
+"""Notebook widgets. They draw state computed by the core modules; they never quantize themselves."""
