@@ -26,7 +26,7 @@ import torch
 from ._prep import as_input
 from .grid import UniformGrid, check_positive
 from .metrics import ErrorStats, error_stats
-from .probe import _check_layer, _functional, layer_output
+from .probe import check_layer, layer_forward, layer_output
 from .quantize import quantize
 from .relaxed import relaxed_quantize
 
@@ -116,7 +116,7 @@ def learn_grid(
     >>> r.stats.sqnr_db > r.start_stats.sqnr_db, r.grid.scale < 0.2
     (True, True)
     """
-    _check_layer(layer, "layer")
+    check_layer(layer, "layer")
     if not isinstance(grid, UniformGrid):
         raise TypeError(f"grid must be a UniformGrid, got {type(grid).__name__}")
     if source not in SOURCES:
@@ -219,8 +219,8 @@ class _Adam:
 def _output(layer, x, source, quantized):
     """The layer's arithmetic with the quantized weight or input in place (differentiable)."""
     if source == "weight":
-        return _functional(layer, x, quantized)
-    return _functional(layer, quantized, layer.weight.detach())
+        return layer_forward(layer, x, quantized)
+    return layer_forward(layer, quantized, layer.weight.detach())
 
 
 def _pick_window(window, grid: UniformGrid):

@@ -674,7 +674,7 @@ def evaluate_plan(model: nn.Module, data, plan: Plan, *, metric: Callable | None
     >>> evaluate_plan(lin, torch.randn(16, 8), p).measured_sqnr_db > 35
     True
     """
-    from .probe import _flat_output, _metric, forward_float
+    from .probe import call_metric, flat_output, forward_float
 
     if metric is not None and not callable(metric):
         raise TypeError(f"metric must be a callable metric(output, target) -> float, got {type(metric).__name__}")
@@ -683,10 +683,10 @@ def evaluate_plan(model: nn.Module, data, plan: Plan, *, metric: Callable | None
         planned = apply_plan(model, plan, strict=strict)
     ref = forward_float(model, data)
     out = forward_float(planned, data)
-    stats = error_stats(_flat_output(ref, "float"), _flat_output(out, "planned"))
+    stats = error_stats(flat_output(ref, "float"), flat_output(out, "planned"))
     mf = mp = None
     if metric is not None:
-        mf, mp = _metric(metric, ref, target), _metric(metric, out, target)
+        mf, mp = call_metric(metric, ref, target), call_metric(metric, out, target)
     applied = set(planned.qwidgets_applied)
     sub = Plan({n: plan.layers[n] for n in plan.layers if n in applied},
                {n: plan.bits[n] for n in plan.layers if n in applied}, fingerprint=plan.fingerprint,

@@ -58,7 +58,7 @@ WEIGHT_AXIS = 0  # weights of Linear / Conv layers are quantized per output chan
 _CONV = {nn.Conv1d: F.conv1d, nn.Conv2d: F.conv2d, nn.Conv3d: F.conv3d}
 
 
-class _LayerInputError(ValueError):
+class LayerInputError(ValueError):
     """A problem found by one of our hooks inside the forward (reported as it is, not wrapped)."""
 
 
@@ -84,7 +84,7 @@ def quantizable_layers(model: nn.Module, data: Data | None = None) -> list[str]:
     >>> quantizable_layers(nn.Sequential(nn.Linear(4, 3), nn.ReLU(), nn.Linear(3, 2)))
     ['0', '2']
     """
-    _check_model(model)
+    check_model(model)
     if data is None:
         return [n for n, m in model.named_modules() if is_quantizable(m)]
     order: list[str] = []
@@ -98,7 +98,7 @@ def quantizable_layers(model: nn.Module, data: Data | None = None) -> list[str]:
         if name not in order:
             order.append(name)
 
-    _run(model, _check_data(model, data, None), {m: record for m in targets}, pre=True)
+    run_with_hooks(model, check_data(model, data, None), {m: record for m in targets}, pre=True)
     return order
 
 
@@ -115,7 +115,7 @@ def fit_weight(layer: nn.Module, bits: int, method: str = "mse", *, per_channel:
     >>> g.axis, tuple(g.scale.shape)
     (0, (3,))
     """
-    _check_layer(layer, "layer")
+    check_layer(layer, "layer")
     return fit_range(layer.weight.detach(), bits, method,
                      axis=WEIGHT_AXIS if per_channel else None, **options)
 
@@ -140,7 +140,7 @@ def layer_output(
     >>> torch.allclose(layer_output(lin, x), lin(x))
     True
     """
-    _check_layer(layer, "layer")
+    check_layer(layer, "layer")
     x = _check_tensor(inputs, "inputs")
     w = layer.weight.detach()
     with torch.no_grad():
@@ -151,10 +151,10 @@ def layer_output(
             _check_grid(weight_grid, "weight_grid")
             grid_params(w, weight_grid)  # shape check with a clear message
             w = quantize(w, weight_grid)
-        return _functional(layer, x, w)
+        return layer_forward(layer, x, w)
 
 
-def _functional(layer: nn.Module, x: torch.Tensor, w: torch.Tensor, *, use_bias: bool = True
+def layer_forward(layer: nn.Module, x: torch.Tensor, w: torch.Tensor, *, use_bias: bool = True
                 ) -> torch.Tensor:
     b = None if (layer.bias is None or not use_bias) else layer.bias.detach()
     try:
@@ -182,11 +182,11 @@ def layer_macs(layer: nn.Module, input_shape: Iterable[int]) -> int:
     >>> layer_macs(nn.Linear(10, 4), (1, 10)), layer_macs(nn.Conv2d(3, 8, 3, padding=1), (1, 3, 32, 32))
     (40, 221184)
     """
-    _check_layer(layer, "layer")
+    check_layer(layer, "layer")
     shape = tuple(int(s) for s in input_shape)
     w = layer.weight
     x = torch.empty(shape, device="meta", dtype=w.dtype)
-    out = _functional(layer, x, torch.empty(w.shape, device="meta", dtype=w.dtype), use_bias=False)
+    out = layer_forward(layer, x, torch.empty(w.shape, device="meta", dtype=w.dtype), use_bias=False)
     if isinstance(layer, nn.Linear):
         return out.numel() * layer.in_features
     per_output = (layer.in_channels // layer.groups) * math.prod(layer.kernel_size)
@@ -223,21 +223,21 @@ def capture_inputs(model: nn.Module, data: Data, layers: str | Iterable[str] | N
     >>> {k: tuple(v.shape) for k, v in seen.items()}
     {'0': (6, 4), '2': (6, 3)}
     """
-    _check_model(model)
-    max_samples = _check_max_samples(max_samples)
+    check_model(model)
+    max_samples = check_max_samples(max_samples)
     targets = _resolve_layers(model, layers)
-    data = _check_data(model, data, max_samples)
+    data = check_data(model, data, max_samples)
     names = _name_of(model)
     calls: dict[str, list[torch.Tensor]] = {}
 
     def grab(module, args, kwargs):
         name = names[id(module)]
-        x = _first_input(module, name, args, kwargs)
+        x = first_input(module, name, args, kwargs)
         if x.is_floating_point():
             _finite_or_raise(x, f"the input of layer {name!r} ({_describe(module)})")
         calls.setdefault(name, []).append(x.detach().clone())
 
-    _run(model, data, {m: grab for m in targets}, pre=True)
+    run_with_hooks(model, data, {m: grab for m in targets}, pre=True)
     _require_called(targets, names, calls, explicit=layers is not None)
     return {name: _join(name, tensors, _module(model, name)) for name, tensors in calls.items()}
 
@@ -278,7 +278,7 @@ def layer_error(
     >>> e8.sqnr_db > e4.sqnr_db + 20
     True
     """
-    _check_layer(layer, "layer")
+    check_layer(layer, "layer")
     x = _check_tensor(inputs, "inputs")
     ref = layer_output(layer, x)
     return error_stats(ref, layer_output(layer, x, weight_grid, input_grid))
@@ -346,11 +346,11 @@ def model_error(
         raise TypeError(f"metric must be a callable metric(output, target) -> float, got {type(metric).__name__}")
     ref = forward_float(model, data)
     out, applied = _forward_quantized(model, data, settings)
-    ref_t, out_t = _flat_output(ref, "float"), _flat_output(out, "quantized")
+    ref_t, out_t = flat_output(ref, "float"), flat_output(out, "quantized")
     stats = error_stats(ref_t, out_t)
     mf = mq = None
     if metric is not None:
-        mf, mq = _metric(metric, ref, target), _metric(metric, out, target)
+        mf, mq = call_metric(metric, ref, target), call_metric(metric, out, target)
     return ModelError(stats, mf, mq, applied)
 
 
@@ -365,8 +365,8 @@ def forward_float(model: nn.Module, data: Data) -> Any:
     >>> forward_float(nn.Linear(2, 1, bias=False), torch.zeros(3, 2)).shape
     torch.Size([3, 1])
     """
-    _check_model(model)
-    return _run(model, _check_data(model, data, None), {}, pre=False)
+    check_model(model)
+    return run_with_hooks(model, check_data(model, data, None), {}, pre=False)
 
 
 def forward_quantized(model: nn.Module, data: Data, settings: Mapping[str, LayerSetting]) -> Any:
@@ -383,9 +383,9 @@ def forward_quantized(model: nn.Module, data: Data, settings: Mapping[str, Layer
 
 
 def _forward_quantized(model, data, settings):
-    _check_model(model)
+    check_model(model)
     settings = _check_settings(model, settings)
-    data = _check_data(model, data, None)
+    data = check_data(model, data, None)
     names = _name_of(model)
     weights = {}
     with torch.no_grad():
@@ -398,41 +398,41 @@ def _forward_quantized(model, data, settings):
     def replace(module, args, kwargs, output):
         name = names[id(module)]
         setting = settings[name][1]
-        x = _first_input(module, name, args, kwargs)
+        x = first_input(module, name, args, kwargs)
         if x.is_floating_point():
             _finite_or_raise(x, f"the input of layer {name!r} ({_describe(module)})")
-        if type(module).forward not in _BASE_FORWARDS:
-            _check_same_math(module, name, x, output)
+        if type(module).forward not in BASE_FORWARDS:
+            check_same_math(module, name, x, output)
         if setting.input is not None:
             x = quantize(x, setting.input)
         w = weights.get(name, module.weight.detach())
         if name not in applied:
             applied.append(name)
-        return _functional(module, x, w)
+        return layer_forward(module, x, w)
 
-    out = _run(model, data, {m: replace for m, _ in settings.values()}, pre=False)
+    out = run_with_hooks(model, data, {m: replace for m, _ in settings.values()}, pre=False)
     _require_called([m for m, _ in settings.values()], names, {n: 1 for n in applied}, explicit=True)
     return out, tuple(applied)
 
 
-_BASE_FORWARDS = {nn.Linear.forward, nn.Conv1d.forward, nn.Conv2d.forward, nn.Conv3d.forward}
+BASE_FORWARDS = {nn.Linear.forward, nn.Conv1d.forward, nn.Conv2d.forward, nn.Conv3d.forward}
 
 
-def _check_same_math(module, name, x, output) -> None:
+def check_same_math(module, name, x, output) -> None:
     """A subclass that overrides forward must still compute what layer_output computes."""
-    ref = _functional(module, x, module.weight.detach())
+    ref = layer_forward(module, x, module.weight.detach())
     if not isinstance(output, torch.Tensor) or output.shape != ref.shape or not torch.allclose(
         output, ref, rtol=1e-4, atol=1e-5 * float(ref.abs().max().clamp(min=1))
     ):
-        raise _LayerInputError(
+        raise LayerInputError(
             f"layer {name!r} ({type(module).__name__}) overrides forward and its output differs "
-            f"from the {_base_name(module)} arithmetic qwidgets evaluates; it cannot be "
+            f"from the {base_type_name(module)} arithmetic qwidgets evaluates; it cannot be "
             "evaluated functionally"
         )
 
 
 # ---------------------------------------------------------------------------- running
-def _run(model: nn.Module, data, hooks: dict, *, pre: bool):
+def run_with_hooks(model: nn.Module, data, hooks: dict, *, pre: bool):
     """One forward pass under no_grad and eval(), with temporary hooks; model restored after."""
     flags = [(m, m.training) for m in model.modules()]
     handles = []
@@ -450,7 +450,7 @@ def _run(model: nn.Module, data, hooks: dict, *, pre: bool):
                 if isinstance(data, tuple):
                     return model(*data)
                 return model(data)
-            except _LayerInputError:
+            except LayerInputError:
                 raise
             except Exception as e:
                 raise RuntimeError(
@@ -464,10 +464,10 @@ def _run(model: nn.Module, data, hooks: dict, *, pre: bool):
             m.training = flag
 
 
-def _first_input(module, name, args, kwargs) -> torch.Tensor:
+def first_input(module, name, args, kwargs) -> torch.Tensor:
     x = args[0] if args else kwargs.get("input", next(iter(kwargs.values()), None))
     if not isinstance(x, torch.Tensor):
-        raise _LayerInputError(
+        raise LayerInputError(
             f"layer {name!r} ({type(module).__name__}) was called without a tensor as its first "
             f"input (got {type(x).__name__}); qwidgets cannot capture it"
         )
@@ -485,26 +485,26 @@ def _require_called(targets, names, seen, *, explicit: bool) -> None:
         )
 
 
-def _flat_output(out, which: str) -> torch.Tensor:
-    parts = [t.detach().reshape(-1).double() for t in _tensors(out) if t.is_floating_point()]
+def flat_output(out, which: str) -> torch.Tensor:
+    parts = [t.detach().reshape(-1).double() for t in iter_tensors(out) if t.is_floating_point()]
     if not parts:
         raise ValueError(f"the model's {which} output holds no floating-point tensor to compare "
                          f"(got {type(out).__name__})")
     return parts[0] if len(parts) == 1 else torch.cat(parts)
 
 
-def _tensors(obj):
+def iter_tensors(obj):
     if isinstance(obj, torch.Tensor):
         yield obj
     elif isinstance(obj, Mapping):
         for v in obj.values():
-            yield from _tensors(v)
+            yield from iter_tensors(v)
     elif isinstance(obj, (list, tuple)):
         for v in obj:
-            yield from _tensors(v)
+            yield from iter_tensors(v)
 
 
-def _metric(metric, output, target) -> float:
+def call_metric(metric, output, target) -> float:
     value = metric(output, target)
     if isinstance(value, torch.Tensor) and value.numel() == 1:
         value = value.item()
@@ -514,12 +514,12 @@ def _metric(metric, output, target) -> float:
 
 
 # ---------------------------------------------------------------------------- validation
-def _check_model(model) -> None:
+def check_model(model) -> None:
     if not isinstance(model, nn.Module):
         raise TypeError(f"model must be a torch.nn.Module, got {type(model).__name__}")
 
 
-def _check_layer(layer, name: str) -> None:
+def check_layer(layer, name: str) -> None:
     if not isinstance(layer, nn.Module):
         raise TypeError(f"{name} must be a torch.nn.Module, got {type(layer).__name__}")
     if not is_quantizable(layer):
@@ -544,7 +544,7 @@ def _check_tensor(x, name: str) -> torch.Tensor:
     return x.detach()
 
 
-def _check_max_samples(n):
+def check_max_samples(n):
     if n is None:
         return None
     if isinstance(n, bool) or not isinstance(n, Integral) or n < 1:
@@ -552,7 +552,7 @@ def _check_max_samples(n):
     return int(n)
 
 
-def _check_data(model: nn.Module, data, max_samples):
+def check_data(model: nn.Module, data, max_samples):
     """Data as a tensor, tuple of args or dict of kwargs; sliced, checked for device and finiteness."""
     if isinstance(data, list):
         data = tuple(data)
@@ -597,7 +597,7 @@ def _finite_or_raise(x: torch.Tensor, what: str) -> None:
         return
     n_nan, n_inf = int(torch.isnan(x).sum()), int(torch.isinf(x).sum())
     if n_nan or n_inf:
-        raise _LayerInputError(f"{what} holds {n_nan} NaN and {n_inf} inf value(s) out of "
+        raise LayerInputError(f"{what} holds {n_nan} NaN and {n_inf} inf value(s) out of "
                                f"{x.numel()}; quantization needs finite numbers")
 
 
@@ -661,7 +661,7 @@ def _module(model: nn.Module, name: str) -> nn.Module:
     return model.get_submodule(name) if name else model
 
 
-def _base_name(module) -> str:
+def base_type_name(module) -> str:
     return next(t.__name__ for t in QUANTIZABLE_TYPES if isinstance(module, t))
 
 
@@ -669,7 +669,7 @@ def _describe(layer) -> str:
     if isinstance(layer, nn.Linear):
         return f"Linear(in_features={layer.in_features}, out_features={layer.out_features})"
     if isinstance(layer, QUANTIZABLE_TYPES):
-        return (f"{_base_name(layer)}(in_channels={layer.in_channels}, out_channels="
+        return (f"{base_type_name(layer)}(in_channels={layer.in_channels}, out_channels="
                 f"{layer.out_channels}, kernel_size={layer.kernel_size})")
     return type(layer).__name__
 

@@ -434,7 +434,7 @@ def scan(model: nn.Module, data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8), *, qu
     >>> t.layers, t.sqnr_db("0", 8) > t.sqnr_db("0", 4) + 15
     (['0', '2'], True)
     """
-    probe._check_model(model)
+    probe.check_model(model)
     bits = _check_bits_tuple(bits)
     if quantize not in QUANTIZE_MODES:
         raise ValueError(f"quantize must be one of {', '.join(map(repr, QUANTIZE_MODES))}, got {quantize!r}")
@@ -444,8 +444,8 @@ def scan(model: nn.Module, data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8), *, qu
         raise ValueError(f"scope must be one of {', '.join(map(repr, SCOPES))}, got {scope!r}")
     if not isinstance(per_channel, bool):
         raise TypeError(f"per_channel must be True or False, got {per_channel!r}")
-    max_samples = probe._check_max_samples(max_samples)
-    data = probe._check_data(model, data, max_samples)
+    max_samples = probe.check_max_samples(max_samples)
+    data = probe.check_data(model, data, max_samples)
     inputs = probe.capture_inputs(model, data)
     modules = dict(model.named_modules())
     n_data = _batch_size(data)
@@ -464,7 +464,7 @@ def scan(model: nn.Module, data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8), *, qu
             ig = [fit_range(x, b, method) for b in bits] if qi else None
             wgrids[name], igrids[name] = wg, ig
             configs = [(None if wg is None else wg[j], None if ig is None else ig[j]) for j in range(len(bits))]
-            info[name] = {"type": probe._base_name(layer), "weight_shape": tuple(layer.weight.shape),
+            info[name] = {"type": probe.base_type_name(layer), "weight_shape": tuple(layer.weight.shape),
                           "input_shape": tuple(x.shape[1:]),
                           "macs": probe.layer_macs(layer, tuple(x.shape)) // max(n_data, 1),
                           "model_pass": "-"}
@@ -493,7 +493,7 @@ def _check_bits_tuple(bits) -> tuple[int, ...]:
 
 
 def _batch_size(data) -> int:
-    first = next(probe._tensors(data))
+    first = next(probe.iter_tensors(data))
     return int(first.shape[0]) if first.dim() else 1
 
 
@@ -516,11 +516,11 @@ def _layer_scope(layer: nn.Module, x: torch.Tensor, configs) -> np.ndarray:
             weights = [w] + [w if wg is None else _quantize(w, wg) for wg, _ in configs]
             signal, errors = _stacked_weight_errors(layer, x, weights)
             return np.array([_db(signal, e) for e in errors[1:]])
-        ref = probe._functional(layer, x, w)
+        ref = probe.layer_forward(layer, x, w)
         signal = _power(ref)
         out = []
         for wg, ig in configs:
-            y = probe._functional(layer, x if ig is None else _quantize(x, ig),
+            y = probe.layer_forward(layer, x if ig is None else _quantize(x, ig),
                                   w if wg is None else _quantize(w, wg))
             out.append(_db(signal, _power(y - ref)))
         return np.array(out)
@@ -551,7 +551,7 @@ def _stacked_weight_errors(layer: nn.Module, x: torch.Tensor, weights: list) -> 
     ref, signal, errors = None, 0.0, []
     for i in range(0, len(weights), group):
         ws = weights[i : i + group]
-        y = probe._functional(layer, x, torch.cat(ws, dim=0), use_bias=False)
+        y = probe.layer_forward(layer, x, torch.cat(ws, dim=0), use_bias=False)
         if bias is not None:
             b = bias.repeat(len(ws))
             y = y + (b if linear else b.reshape((-1,) + (1,) * (y.dim() - 2)))
@@ -577,8 +577,8 @@ class _NotStackable(Exception):
 
 
 def _model_scope(model, data, name, layer, configs, ref) -> tuple[np.ndarray, str]:
-    ref_parts = [t for t in probe._tensors(ref) if t.is_floating_point()]
-    ref_flat = probe._flat_output(ref, "float")
+    ref_parts = [t for t in probe.iter_tensors(ref) if t.is_floating_point()]
+    ref_flat = probe.flat_output(ref, "float")
     try:
         return _model_scope_stacked(model, data, name, layer, configs, ref_parts, ref_flat), "stacked"
     except _NotStackable:
@@ -586,7 +586,7 @@ def _model_scope(model, data, name, layer, configs, ref) -> tuple[np.ndarray, st
     out = []
     for wg, ig in configs:
         q = probe.forward_quantized(model, data, {name: LayerSetting(weight=wg, input=ig)})
-        out.append(error_stats(ref_flat, probe._flat_output(q, "quantized")).sqnr_db)
+        out.append(error_stats(ref_flat, probe.flat_output(q, "quantized")).sqnr_db)
     return np.array(out), "per bit width"
 
 
@@ -607,15 +607,15 @@ def _model_scope_stacked(model, data, name, layer, configs, ref_parts, ref_flat)
         raise _NotStackable
 
     def outputs(parts):
-        return [probe._functional(layer, p if ig is None else _quantize(p, ig), wq)
+        return [probe.layer_forward(layer, p if ig is None else _quantize(p, ig), wq)
                 for p, ig, wq in zip(parts, inputs, weights, strict=True)]
 
     def hook(module, args, kwargs, output):
-        x = probe._first_input(module, name, args, kwargs)
+        x = probe.first_input(module, name, args, kwargs)
         calls[0] += 1
         if calls[0] == 1:
-            if type(module).forward not in probe._BASE_FORWARDS:
-                probe._check_same_math(module, name, x, output)
+            if type(module).forward not in probe.BASE_FORWARDS:
+                probe.check_same_math(module, name, x, output)
             if not isinstance(output, torch.Tensor) or output.dim() == 0:
                 raise _NotStackable
             return torch.cat(outputs([x] * n_copies), dim=0)
@@ -625,14 +625,14 @@ def _model_scope_stacked(model, data, name, layer, configs, ref_parts, ref_flat)
         return torch.cat(outputs(x.chunk(n_copies, dim=0)), dim=0)
 
     try:
-        out = probe._run(model, data, {layer: hook}, pre=False)
+        out = probe.run_with_hooks(model, data, {layer: hook}, pre=False)
     except _NotStackable:
         raise
     except (RuntimeError, ValueError) as e:
-        if isinstance(e, probe._LayerInputError):
+        if isinstance(e, probe.LayerInputError):
             raise
         raise _NotStackable from e
-    parts = [t for t in probe._tensors(out) if t.is_floating_point()]
+    parts = [t for t in probe.iter_tensors(out) if t.is_floating_point()]
     if len(parts) != len(ref_parts):
         raise _NotStackable
     per_copy = [[] for _ in range(n_copies)]

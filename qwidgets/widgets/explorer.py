@@ -27,7 +27,7 @@ from .._prep import as_input
 from ..grid import UniformGrid, check_bits, check_positive
 from ..learn import DEFAULT_NOISE, LearnResult, learn_grid
 from ..metrics import ErrorStats, GridUsage, error_stats, grid_usage
-from ..probe import WEIGHT_AXIS, _functional, capture_inputs, is_quantizable, layer_output
+from ..probe import WEIGHT_AXIS, capture_inputs, is_quantizable, layer_forward, layer_output
 from ..quantize import quantize
 from ..ranges import METHODS, fit_range
 from ..relaxed import bin_probabilities, expected_quantize, relaxed_quantize
@@ -520,9 +520,9 @@ class GridExplorer(widgets.VBox):
         def compute():
             with torch.no_grad():
                 if src == "weight":
-                    out = _functional(self._layer, self._inputs, quantize(self._values["weight"], self.grid))
+                    out = layer_forward(self._layer, self._inputs, quantize(self._values["weight"], self.grid))
                 else:
-                    out = _functional(self._layer, quantize(self._inputs, self.grid), self._values["weight"])
+                    out = layer_forward(self._layer, quantize(self._inputs, self.grid), self._values["weight"])
             sample = out.reshape(-1)[self._scatter_idx].double().numpy()
             return error_stats(self._reference, out), sample
 

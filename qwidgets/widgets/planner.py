@@ -239,9 +239,9 @@ class BudgetPlanner(widgets.VBox):
         """Run the float and the planned model on the data: measured SQNR and metric."""
         if self.plan is None:
             raise ValueError("no plan yet")
-        from ..probe import _check_data
+        from ..probe import check_data
 
-        data = _check_data(self.model, self.data, self._max_samples)  # the samples the scan used
+        data = check_data(self.model, self.data, self._max_samples)  # the samples the scan used
         target = self.target
         if self._max_samples is not None and target is not None and hasattr(target, "__getitem__"):
             target = target[: self._max_samples]
