@@ -31,8 +31,10 @@ test: setup browser-deps
 	$(VENV)/bin/ruff check .
 	$(PY) -m pytest -q
 
+# JupyterLab on notebooks/demo.ipynb (127.0.0.1, URL printed); with HEADLESS=1 or CI set,
+# execute the notebook and write build/demo.html instead.
 demo: setup
-	$(PY) -m qwidgets.demo
+	@VENV=$(VENV) bash .ci/demo
 
 bench: setup
 	$(PY) benchmarks/bench_core.py

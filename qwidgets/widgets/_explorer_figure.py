@@ -32,7 +32,7 @@ _RC = {
     "axes.titley": 1.0,
     "axes.titlepad": 5.0,
 }
-GRID_COLOR = "#d62728"  # grid points and clip range
+GRID_COLOR = "#333333"  # grid points and clip range (dark, so they stand apart from the clipped mass)
 HARD_COLOR = "#1f4e9c"
 SOFT_COLOR = "#ff7f0e"
 SAMPLE_COLOR = "#2ca02c"
