@@ -12,11 +12,11 @@ Every figure is compared with a baseline measured in the same run, as a ratio:
 from __future__ import annotations
 
 import json
-import statistics
 import sys
 import time
 from pathlib import Path
 
+import _timing  # benchmarks/_timing.py, beside this script
 import torch
 from torch import nn
 
@@ -26,35 +26,11 @@ RESULTS = Path(__file__).parent / "results" / "probe.json"
 
 
 def timed(fn, repeat: int = 5, warmup: int = 1) -> float:
-    """Median wall time of ``fn()`` in seconds."""
-    for _ in range(warmup):
-        fn()
-    times = []
-    for _ in range(repeat):
-        t0 = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - t0)
-    return statistics.median(times)
+    return _timing.timed(fn, repeat, warmup)
 
 
 def timed_pair(base, other, repeat: int = 9) -> tuple[float, float, float]:
-    """Interleaved timings of two functions: (median base s, median other s, median ratio).
-
-    Alternating the two and taking the median of per-pair ratios keeps the comparison fair on
-    a busy machine, where load drifts between separate timing loops.
-    """
-    base(), other()
-    tb, to, ratios = [], [], []
-    for _ in range(repeat):
-        t0 = time.perf_counter()
-        base()
-        t1 = time.perf_counter()
-        other()
-        t2 = time.perf_counter()
-        tb.append(t1 - t0)
-        to.append(t2 - t1)
-        ratios.append((t2 - t1) / (t1 - t0))
-    return statistics.median(tb), statistics.median(to), statistics.median(ratios)
+    return _timing.timed_pair(base, other, repeat)
 
 
 def small_cnn() -> nn.Module:

@@ -259,14 +259,17 @@ class Plan:
     @classmethod
     def load(cls, path: str | os.PathLike) -> Plan:
         """Read a plan written by :meth:`save` (or by hand, following the same layout)."""
-        try:
-            with open(path, encoding="utf-8") as f:
-                text = f.read()
-        except OSError as e:
-            raise OSError(f"cannot read the plan from {os.fspath(path)!r}: {e.strerror or e}") from e
-        except UnicodeDecodeError as e:
-            raise ValueError(f"{os.fspath(path)!r} is not a UTF-8 text file: {e}") from None
-        return cls.from_json(text)
+        return cls.from_json(_read_text(path, "plan"))
+
+
+def _read_text(path, what: str) -> str:
+    try:
+        with open(path, encoding="utf-8") as f:
+            return f.read()
+    except OSError as e:
+        raise OSError(f"cannot read the {what} from {os.fspath(path)!r}: {e.strerror or e}") from e
+    except UnicodeDecodeError as e:
+        raise ValueError(f"{os.fspath(path)!r} is not a UTF-8 text file: {e}") from None
 
 
 def _write_text(path, text: str, what: str) -> None:

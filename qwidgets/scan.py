@@ -31,7 +31,15 @@ from torch import nn
 from . import probe
 from .grid import UniformGrid, check_bits
 from .metrics import error_stats
-from .plan import Plan, _FieldError, _grid_from_dict, _grid_to_dict, _write_text, model_fingerprint
+from .plan import (
+    Plan,
+    _FieldError,
+    _grid_from_dict,
+    _grid_to_dict,
+    _read_text,
+    _write_text,
+    model_fingerprint,
+)
 from .quantize import quantize as _quantize
 from .ranges import METHODS, fit_range
 from .setting import LayerSetting
@@ -264,11 +272,7 @@ class SensitivityTable:
     @classmethod
     def load(cls, path: str | os.PathLike) -> SensitivityTable:
         """Read a table written by :meth:`save` (JSON only; every field checked)."""
-        try:
-            with open(path, encoding="utf-8") as f:
-                text = f.read()
-        except OSError as e:
-            raise OSError(f"cannot read the table from {os.fspath(path)!r}: {e.strerror or e}") from e
+        text = _read_text(path, "table")
         try:
             data = json.loads(text)
         except json.JSONDecodeError as e:
