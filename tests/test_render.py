@@ -167,3 +167,68 @@ def test_message_line_shows_errors_and_notes():
     m.clear()
     assert m.text == "" and m.widget.value == ""
     assert "qw-message" in m.widget._dom_classes
+
+
+# ------------------------------------------------------------------ front-end echoes
+# ``Widget.set_state`` is what ipywidgets calls for a message from the front end (it holds
+# ``_property_lock`` while the observers run), so it stands in for the browser here. A browser
+# shows a slider at its step and sends back the rounding of a value set between two steps.
+def test_front_end_echo_of_a_kernel_value_is_ignored_and_real_moves_pass():
+    import ipywidgets as widgets
+
+    from qwidgets.widgets._render import observe_value
+
+    s = widgets.FloatSlider(value=0.0, min=0.0, max=1.0, step=0.01)
+    seen = []
+    observe_value(s, lambda ch: seen.append(ch["new"]))
+    s.value = 0.41151  # the kernel sets a value between two steps
+    assert seen == [0.41151]
+    s.set_state({"value": 0.41})  # the browser sends it back rounded to its step
+    assert seen == [0.41151]
+    s.set_state({"value": 0.42})  # a person moved it one step on
+    assert seen == [0.41151, 0.42]
+    s.set_state({"value": 0.41})  # and back: earlier kernel values no longer count as echoes
+    assert seen == [0.41151, 0.42, 0.41]
+
+
+def test_stale_echo_puts_the_control_back_to_the_latest_kernel_value():
+    import ipywidgets as widgets
+
+    from qwidgets.widgets._render import observe_value
+
+    s = widgets.FloatLogSlider(value=0.01, base=10, min=-4, max=0, step=0.01)
+    seen = []
+    observe_value(s, lambda ch: seen.append(ch["new"]))
+    s.value = 0.0123456
+    s.value = 0.0412345  # the kernel moved on (e.g. a learning step)
+    s.set_state({"value": 10 ** -1.91})  # the rounded echo of the first value arrives late
+    assert seen == [0.0123456, 0.0412345]
+    assert s.value == 0.0412345
+    s.set_state({"value": 10 ** -1.29})  # a step the kernel never set: a person's move
+    assert seen[-1] == 10 ** -1.29
+
+
+def test_moves_to_values_the_kernel_set_on_the_step_grid_always_pass():
+    import ipywidgets as widgets
+
+    from qwidgets.widgets._render import observe_value
+
+    s = widgets.IntSlider(value=4, min=1, max=16)
+    seen = []
+    observe_value(s, lambda ch: seen.append(ch["new"]))
+    s.value = 3  # the kernel sets 3 (on the grid: a browser sends nothing back)
+    s.set_state({"value": 4})  # a person moves it to 4, a value the kernel set before
+    s.set_state({"value": 3})
+    assert seen == [3, 4, 3]
+
+
+def test_echo_of_the_value_a_slider_was_made_with_is_ignored():
+    import ipywidgets as widgets
+
+    from qwidgets.widgets._render import observe_value
+
+    s = widgets.FloatLogSlider(value=0.3, base=10, min=-2, max=0.5, step=0.01)
+    seen = []
+    observe_value(s, lambda ch: seen.append(ch["new"]))
+    s.set_state({"value": 10 ** -0.52})  # first drawn: 0.3 shown at its step, sent back
+    assert seen == []

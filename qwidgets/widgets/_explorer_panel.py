@@ -47,7 +47,7 @@ def make_controls(sources: tuple, source: str, method: str, noise: float, temper
                                      readout_format=".4g", style=style, layout=wide)
     c["source"] = widgets.ToggleButtons(
         options=[(SOURCE_LABELS[s], s) for s in sources], value=source,
-        description="quantize", style={"description_width": "60px", "button_width": "90px"},
+        description="quantize", style={"description_width": "60px", "button_width": "100px"},
         disabled=len(sources) == 1,
     )
     c["signed"] = widgets.Checkbox(value=True, description="signed codes", indent=False,

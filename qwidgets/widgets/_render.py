@@ -26,6 +26,9 @@ same in JupyterLab, Notebook 7 and VS Code. The API is small:
     ``.widget`` (an ``ipywidgets.HTML``), ``.text``, ``.error(exc, context)``, ``.info(text)``,
     ``.clear()`` and ``.guard(context)``: a context manager that shows an exception raised inside
     it on the line instead of losing it in the kernel's log.
+``observe_value(widget, handler)``
+    Call ``handler(change)`` when a control's value changes, except when the change is the
+    front end echoing, rounded to the control's step, a value the kernel set (see below).
 ``torch_threads(n)``
     A context manager running torch with ``n`` intra-op threads (None: unchanged), restored
     after: a widget update is many cache-sized slices, which a second thread hardly speeds up
@@ -408,3 +411,84 @@ class MessageLine:
             yield
         except Exception as exc:
             self.error(exc, context)
+
+
+# ------------------------------------------------------------------ slider echoes
+_ECHO_HISTORY = 64  # kernel-set values remembered since the last real move
+_ECHO_TOL = 1e-3  # in steps: how close an echo is to the front end's rounding of a kernel value
+
+
+def observe_value(widget, handler: Callable[[dict], object]) -> None:
+    """Observe ``widget.value``, ignoring the front end's echoes of values the kernel set.
+
+    A browser shows a slider at its step: given a value between two steps it rounds it and
+    sends the rounded value back, often after the kernel has moved on (the sliders follow a
+    learning run; a planner has been measured). Taken as a person's move, that echo would
+    replace what the kernel computed with a rounded or stale value. A value set exactly on the
+    step grid draws no echo, so an echo is recognised as the step rounding of a recent
+    *off-grid* value the kernel set: it is ignored (and if it was stale, the control is put back
+    to the kernel's latest value). Anything else from the front end is a person's move and
+    reaches ``handler``; values set in the kernel (by the widget or a script) always do.
+    """
+    echoes: list = []  # the front end's roundings of recent off-grid values the kernel set
+    latest = [widget.value]  # the kernel's latest value
+    restoring = [False]
+
+    def remember(value) -> None:
+        snapped = _on_step_grid(widget, value)
+        if snapped is not None and not _same_position(widget, value, snapped):
+            echoes.append(snapped)
+            del echoes[:-_ECHO_HISTORY]
+
+    remember(widget.value)  # the value it was made with echoes too, when first drawn
+
+    def observe(change):
+        new = change["new"]
+        if restoring[0]:
+            return None
+        if "value" not in getattr(widget, "_property_lock", {}):  # set in the kernel
+            latest[0] = new
+            remember(new)
+            return handler(change)
+        # (no time limit: while a notebook runs all its cells, the kernel reads the front end's
+        # messages only after the last cell, long after it set the values they echo)
+        if any(_same_position(widget, new, v) for v in echoes):
+            if not _same_position(widget, new, _on_step_grid(widget, latest[0])):
+                restoring[0] = True  # a stale echo: show the kernel's current value again
+                try:
+                    widget.value = latest[0]
+                finally:
+                    restoring[0] = False
+            return None
+        echoes.clear()  # a person moved it: earlier kernel values can no longer echo
+        latest[0] = new
+        return handler(change)
+
+    widget.observe(observe, names="value")
+
+
+def _on_step_grid(widget, v):
+    """The value a front end shows for ``v``: rounded to the slider's step (None: no step)."""
+    step = getattr(widget, "step", None)
+    if isinstance(v, bool) or not isinstance(v, (int, float)) or not step:
+        return None
+    lo = getattr(widget, "min", 0) or 0
+    base = getattr(widget, "base", None)
+    if base is not None:  # a log slider steps in the exponent
+        if v <= 0:
+            return None
+        e = math.log(v, base)
+        return base ** (lo + round((e - lo) / step) * step)
+    return lo + round((v - lo) / step) * step
+
+
+def _same_position(widget, a, b) -> bool:
+    if a is None or b is None:
+        return False
+    step = widget.step
+    base = getattr(widget, "base", None)
+    if base is not None:
+        if a <= 0 or b <= 0:
+            return a == b
+        return abs(math.log(a, base) - math.log(b, base)) <= _ECHO_TOL * step
+    return abs(a - b) <= _ECHO_TOL * step

@@ -34,7 +34,7 @@ from ..relaxed import bin_probabilities, expected_quantize, relaxed_quantize
 from ..setting import LayerSetting
 from ._explorer_figure import ExplorerFigure, PlotData
 from ._explorer_panel import METHOD_LABELS, SOURCE_LABELS, make_controls, readout_html
-from ._render import Coalescer, MessageLine, PlotCanvas, torch_threads
+from ._render import Coalescer, MessageLine, PlotCanvas, observe_value, torch_threads
 
 __all__ = ["GridExplorer"]
 
@@ -207,7 +207,7 @@ class GridExplorer(widgets.VBox):
 
         for name in ("bits", "scale", "offset", "noise", "temperature", "probe", "source",
                      "signed", "per_channel", "channel", "method"):
-            c[name].observe(self._make_observer(name), names="value")
+            observe_value(c[name], self._make_observer(name))
         c["fit"].on_click(lambda _b: self._guarded("fit range", lambda: self.fit()))
         c["learn"].on_click(lambda _b: self._guarded(
             "learn", lambda: self.learn(steps=int(c["steps"].value))))

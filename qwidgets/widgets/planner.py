@@ -22,7 +22,7 @@ from torch import nn
 from ..budget import COSTS, pareto_front, plan_budget
 from ..plan import CAUTION, Plan, PlanReport, evaluate_plan
 from ..scan import SensitivityTable, scan
-from ._render import Coalescer, MessageLine, PlotCanvas
+from ._render import Coalescer, MessageLine, PlotCanvas, observe_value
 
 __all__ = ["BudgetPlanner"]
 
@@ -101,7 +101,7 @@ class BudgetPlanner(widgets.VBox):
                                                                           "button_width": "100px"}),
             "budget": widgets.FloatSlider(value=1.0, min=0.0, max=1.0, step=0.001, description="budget",
                                           readout_format=".4g", continuous_update=True,
-                                          style={"description_width": "70px"},
+                                          style={"description_width": "120px"},
                                           layout=widgets.Layout(width="520px")),
             "measure": widgets.Button(description="measure", icon="flask",
                                       tooltip="run the float and the planned model on the data",
@@ -115,7 +115,7 @@ class BudgetPlanner(widgets.VBox):
             w.add_class(CSS[name])
         c["kind"].observe(lambda ch: self._guard("budget kind", lambda: self._set_kind(ch["new"])),
                           names="value")
-        c["budget"].observe(self._on_budget, names="value")
+        observe_value(c["budget"], self._on_budget)
         c["measure"].on_click(lambda _b: self._guard("measure", self.measure))
         c["save"].on_click(lambda _b: self._guard("save", lambda: self.save(c["path"].value)))
 
