@@ -243,6 +243,8 @@ class SensitivityTable:
             ax = fig.add_subplot()
         else:
             fig = ax.figure
+        from .widgets.heatmap import draw_heatmap  # drawing lives with the widgets
+
         draw_heatmap(ax, arr, self.layers, self.bits, f"{scope}-output SQNR (dB)")
         fig.tight_layout()
         return fig
@@ -304,37 +306,6 @@ class SensitivityTable:
         return cls(layers=names, bits=bits, quantize="weight", method="mse", per_channel=False,
                    fingerprint=fp, info=info, layer_sqnr=None, model_sqnr=arr, weight_grids=grids,
                    input_grids=None, n_samples=1)
-
-
-def draw_heatmap(ax, arr: np.ndarray, layers: Sequence[str], bits: Sequence[int], label: str) -> object:
-    """Draw a layers x bits SQNR heatmap with values in the cells into ``ax``; returns the image.
-
-    >>> from matplotlib.figure import Figure
-    >>> ax = Figure().add_subplot()
-    >>> _ = draw_heatmap(ax, np.array([[10.0, 30.0]]), ["fc"], (4, 8), "model-output SQNR (dB)")
-    >>> [t.get_text() for t in ax.texts]
-    ['10.0', '30.0']
-    """
-    finite = arr[np.isfinite(arr)]
-    vmin, vmax = (float(finite.min()), float(finite.max())) if finite.size else (0.0, 1.0)
-    if vmax == vmin:
-        vmax = vmin + 1.0
-    shown = np.where(np.isfinite(arr), arr, vmax)
-    im = ax.imshow(shown, aspect="auto", cmap="viridis", vmin=vmin, vmax=vmax, interpolation="nearest")
-    ax.set_xticks(range(len(bits)), [str(b) for b in bits])
-    ax.set_yticks(range(len(layers)), list(layers))
-    ax.set_xlabel("bit width")
-    ax.set_ylabel("layer (execution order)")
-    ax.set_title(label, fontsize=10)
-    fs = 8 if len(layers) <= 24 else 6
-    for i in range(arr.shape[0]):
-        for j in range(arr.shape[1]):
-            v = arr[i, j]
-            frac = 1.0 if not np.isfinite(v) else (v - vmin) / (vmax - vmin)
-            ax.text(j, i, _fmt_db(v), ha="center", va="center", fontsize=fs,
-                    color="black" if frac > 0.55 else "white")
-    ax.figure.colorbar(im, ax=ax, label="SQNR (dB)", fraction=0.05, pad=0.02)
-    return im
 
 
 def _fmt_db(v: float) -> str:

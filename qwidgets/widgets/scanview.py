@@ -14,8 +14,9 @@ import ipywidgets as widgets
 from matplotlib.patches import Rectangle
 from torch import nn
 
-from ..scan import SensitivityTable, draw_heatmap, scan
+from ..scan import SensitivityTable, scan
 from ._render import MessageLine, PlotCanvas
+from .heatmap import draw_heatmap
 
 __all__ = ["ScanView"]
 
