@@ -262,6 +262,12 @@ class Plan:
         return cls.from_json(_read_text(path, "plan"))
 
 
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
 def _read_text(path, what: str) -> str:
     try:
         with open(path, encoding="utf-8") as f:
@@ -288,6 +294,7 @@ def _write_text(path, text: str, what: str) -> None:
     try:
         with os.fdopen(fd, "w", encoding="utf-8") as f:
             f.write(text)
+        os.chmod(tmp, 0o666 & ~_umask())  # a temporary file is private; the result is not
         os.replace(tmp, path)
     except OSError as e:
         if os.path.exists(tmp):

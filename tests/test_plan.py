@@ -183,6 +183,11 @@ def test_save_and_load(tmp_path):
     plan.save(path)
     assert Plan.load(path).bits == plan.bits
     assert [p.name for p in tmp_path.iterdir()] == ["plan.json"]  # no temporary file left
+    # the file is for a deployment pipeline: the usual permissions (0666 less the umask), like
+    # open(path, "w") would give, not the private mode of the temporary file it was written to
+    mask = os.umask(0)
+    os.umask(mask)
+    assert path.stat().st_mode & 0o777 == 0o666 & ~mask
 
 
 def test_unwritable_paths_give_clear_errors_and_change_nothing(tmp_path):
