@@ -88,7 +88,7 @@ def test_scanview_errors_reach_the_message_line(setup):
         view.pick("0", bits=3)
     view.pick("0", bits=4)
     assert view.explorer is None and "give model= and data=" in view.message.text
-    view._guard("explore", lambda: view.pick("nope"))
+    view.message.run("explore", lambda: view.pick("nope"))
     assert view.message.is_error and "layer 'nope' is not in the scan" in view.message.text
     with pytest.raises(TypeError, match="ScanView takes a model and its data"):
         ScanView("table")

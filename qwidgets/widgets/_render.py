@@ -24,7 +24,7 @@ same in JupyterLab, Notebook 7 and VS Code. The API is small:
     pending call now. With no running loop (a script, a test) requests wait for ``flush()``.
 ``MessageLine()``
     ``.widget`` (an ``ipywidgets.HTML``), ``.text``, ``.error(exc, context)``, ``.info(text)``,
-    ``.clear()`` and ``.guard(context)``: a context manager that shows an exception raised inside
+    ``.clear()``, ``.run(context, fn)`` and ``.guard(context)``: a context manager that shows an exception raised inside
     it on the line instead of losing it in the kernel's log.
 ``observe_value(widget, handler)``
     Call ``handler(change)`` when a control's value changes, except when the change is the
@@ -403,6 +403,11 @@ class MessageLine:
         self.is_error = False
         self.text = ""
         self.widget.value = ""
+
+    def run(self, context: str, fn: Callable[[], object]) -> None:
+        """Call ``fn()``; an exception is shown on the line (a widget callback has no caller)."""
+        with self.guard(context):
+            fn()
 
     @contextmanager
     def guard(self, context: str = "update"):

@@ -113,11 +113,11 @@ class BudgetPlanner(widgets.VBox):
         self.controls = c
         for name, w in c.items():
             w.add_class(CSS[name])
-        c["kind"].observe(lambda ch: self._guard("budget kind", lambda: self._set_kind(ch["new"])),
+        c["kind"].observe(lambda ch: self.message.run("budget kind", lambda: self._set_kind(ch["new"])),
                           names="value")
         observe_value(c["budget"], self._on_budget)
-        c["measure"].on_click(lambda _b: self._guard("measure", self.measure))
-        c["save"].on_click(lambda _b: self._guard("save", lambda: self.save(c["path"].value)))
+        c["measure"].on_click(lambda _b: self.message.run("measure", self.measure))
+        c["save"].on_click(lambda _b: self.message.run("save", lambda: self.save(c["path"].value)))
 
         self.canvas = PlotCanvas(width, 330)
         self.canvas.image.add_class(CSS["plot"])
@@ -146,12 +146,6 @@ class BudgetPlanner(widgets.VBox):
             self.caution,
         ]
         self.add_class(CSS["root"])
-
-    def _guard(self, what: str, fn) -> None:
-        try:
-            fn()
-        except Exception as exc:  # a callback has no caller: show it on the message line
-            self.message.error(exc, what)
 
     # ------------------------------------------------------------------ state
     def front(self, kind: str | None = None) -> list:

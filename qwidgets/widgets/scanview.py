@@ -101,9 +101,9 @@ class ScanView(widgets.VBox):
         }
         for name, w in self.controls.items():
             w.add_class(CSS[name])
-        self.controls["scope"].observe(lambda ch: self._guard("scope", lambda: self.set_scope(ch["new"])),
+        self.controls["scope"].observe(lambda ch: self.message.run("scope", lambda: self.set_scope(ch["new"])),
                                        names="value")
-        self.controls["open"].on_click(lambda _b: self._guard("explore", lambda: self.pick(
+        self.controls["open"].on_click(lambda _b: self.message.run("explore", lambda: self.pick(
             self.controls["layer"].value, bits=self.controls["bits"].value)))
         rows = len(t.layers)
         height = int(min(900, max(220, 120 + 26 * rows)))
@@ -119,12 +119,6 @@ class ScanView(widgets.VBox):
         self.children = [self.controls["scope"], self.canvas.image, self.table_html, bar,
                          self.message.widget, self.explorer_box]
         self.add_class(CSS["root"])
-
-    def _guard(self, what: str, fn) -> None:
-        try:
-            fn()
-        except Exception as exc:  # a callback has no caller: show it on the message line
-            self.message.error(exc, what)
 
     # ------------------------------------------------------------------ drawing
     def _draw_heatmap(self) -> None:
