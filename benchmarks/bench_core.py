@@ -29,9 +29,9 @@ from pathlib import Path
 import _timing  # benchmarks/_timing.py, beside this script
 import torch
 
-from qwidgets.grid import UniformGrid
-from qwidgets.quantize import quantize
-from qwidgets.relaxed import bin_probabilities, relaxed_quantize
+from qwidgets.core.grid import UniformGrid
+from qwidgets.core.relaxed import bin_probabilities, relaxed_quantize
+from qwidgets.core.rounding import quantize
 
 RESULTS = Path(__file__).parent / "results" / "core.json"
 
@@ -127,8 +127,8 @@ def bench_bins(rows: list, out: dict, repeat: int, quick: bool) -> None:
 
 _MEMORY_CHILD = r"""
 import re, sys, torch
-from qwidgets.grid import UniformGrid
-from qwidgets.relaxed import bin_probabilities
+from qwidgets.core.grid import UniformGrid
+from qwidgets.core.relaxed import bin_probabilities
 torch.set_num_threads(int(sys.argv[3]))
 def kb(key):
     return int(re.search(rf"{key}:\s+(\d+) kB", open("/proc/self/status").read()).group(1))

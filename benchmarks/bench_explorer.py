@@ -41,7 +41,7 @@ from qwidgets import (  # noqa: E402
     quantize,
     relaxed_quantize,
 )
-from qwidgets.widgets._render import torch_threads  # noqa: E402
+from qwidgets.widgets.events import torch_threads  # noqa: E402
 
 RESULTS = Path(__file__).resolve().parent / "results" / "explorer.json"
 CONTROLS = ("bits", "scale", "offset", "noise")

@@ -29,11 +29,12 @@ import numpy as np
 import torch
 from torch import nn
 
-from qwidgets.budget import pareto_front, plan_budget
-from qwidgets.metrics import error_stats
-from qwidgets.probe import fit_weight
-from qwidgets.quantize import quantize
-from qwidgets.scan import SensitivityTable, scan
+from qwidgets.core.metrics import error_stats
+from qwidgets.core.rounding import quantize
+from qwidgets.model.layers import fit_weight
+from qwidgets.planning.scanning import scan
+from qwidgets.planning.solver import pareto_front, plan_budget
+from qwidgets.planning.table import SensitivityTable
 
 RESULTS = Path(__file__).parent / "results" / "scan.json"
 BITS = (2, 3, 4, 5, 6, 8)

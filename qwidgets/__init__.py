@@ -2,53 +2,58 @@
 
 The public API is listed once, here. Names are imported on first use, so ``import qwidgets``
 stays light and the core math never pulls in ipywidgets or matplotlib.
+
+The package is layered; each layer imports only from the layers below it:
+
+``core``      grids, hard and relaxed quantization, metrics, range fitting (no nn.Module)
+``model``     quantizable layers, running the model, capturing inputs, quantized forwards
+``learn``     grids learned by gradient descent through the relaxed quantizer
+``planning``  the scan and its table, costs, the solver, plans, the JSON schema, evaluation
+``viz``       drawing (the only place matplotlib is imported)
+``widgets``   the notebook widgets (the only place ipywidgets is imported)
 """
 
 from __future__ import annotations
 
 import importlib
-import sys
-import types
-
-# ``quantize`` names both a submodule and a function: the first import of the submodule (other
-# modules do ``from .quantize import ...``) would bind the module object as ``qwidgets.quantize``
-# and hide the lazy export, so the function is bound here, eagerly.
-from .quantize import quantize  # noqa: F401  (re-exported, see _EXPORTS)
 
 __version__ = "0.1.0"
 
 _EXPORTS = {
     # core math
-    "UniformGrid": "grid",
-    "quantize": "quantize",
-    "to_codes": "quantize",
-    "from_codes": "quantize",
-    "bin_probabilities": "relaxed",
-    "expected_quantize": "relaxed",
-    "relaxed_quantize": "relaxed",
-    "ErrorStats": "metrics",
-    "error_stats": "metrics",
-    "GridUsage": "metrics",
-    "grid_usage": "metrics",
+    "UniformGrid": "core.grid",
+    "quantize": "core.rounding",
+    "to_codes": "core.rounding",
+    "from_codes": "core.rounding",
+    "bin_probabilities": "core.relaxed",
+    "expected_quantize": "core.relaxed",
+    "relaxed_quantize": "core.relaxed",
+    "ErrorStats": "core.metrics",
+    "error_stats": "core.metrics",
+    "GridUsage": "core.metrics",
+    "grid_usage": "core.metrics",
+    "fit_range": "core.ranges",
+    "LayerSetting": "core.setting",
     # probing a model
-    "fit_range": "ranges",
-    "LayerSetting": "setting",
-    "capture_inputs": "probe",
-    "layer_error": "probe",
-    "model_error": "probe",
-    "ModelError": "probe",
-    "learn_grid": "learn",
-    "LearnResult": "learn",
+    "capture_inputs": "model.capture",
+    "layer_error": "model.forward",
+    "model_error": "model.forward",
+    "ModelError": "model.forward",
+    # learning grids
+    "learn_grid": "learn.one_grid",
+    "LearnResult": "learn.one_grid",
     # scan, budget, plan
-    "scan": "scan",
-    "SensitivityTable": "scan",
-    "plan_budget": "budget",
-    "pareto_front": "budget",
-    "Plan": "plan",
-    "apply_plan": "plan",
-    "evaluate_plan": "plan",
-    "PlanReport": "plan",
-    "export_codes": "plan",
+    "scan": "planning.scanning",
+    "SensitivityTable": "planning.table",
+    "plan_budget": "planning.solver",
+    "pareto_front": "planning.solver",
+    "Plan": "planning.plan",
+    "apply_plan": "planning.apply",
+    "evaluate_plan": "planning.evaluate",
+    "PlanReport": "planning.evaluate",
+    "export_codes": "planning.apply",
+    # drawing
+    "plot_sensitivity": "viz.heatmap",
     # widgets
     "GridExplorer": "widgets.explorer",
     "ScanView": "widgets.scanview",
@@ -69,17 +74,3 @@ def __getattr__(name: str):
 
 def __dir__():
     return __all__
-
-
-class _Package(types.ModuleType):
-    """``quantize`` and ``scan`` name both a submodule and the function it exports. Python sets
-    a package attribute to each submodule when it is first imported, which would make
-    ``qwidgets.scan`` the module once anything imported it; the exported function wins."""
-
-    def __setattr__(self, name, value):
-        if isinstance(value, types.ModuleType) and _EXPORTS.get(name) == name:
-            value = getattr(value, name)
-        super().__setattr__(name, value)
-
-
-sys.modules[__name__].__class__ = _Package

@@ -266,9 +266,9 @@ def main() -> None:
 
 
 def _summary() -> str:
-    from .budget import plan_budget
-    from .plan import evaluate_plan
-    from .scan import scan
+    from .planning.evaluate import evaluate_plan
+    from .planning.scanning import scan
+    from .planning.solver import plan_budget
 
     demo = load_demo()
     calib = demo.x_train[:256]

@@ -15,15 +15,9 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from qwidgets.budget import (
-    _front,
-    _solve,
-    layer_bops,
-    pareto_front,
-    plan_budget,
-    weight_storage_bits,
-)
-from qwidgets.scan import SensitivityTable
+from qwidgets.planning.costs import layer_bops, weight_storage_bits
+from qwidgets.planning.solver import _front, _solve, pareto_front, plan_budget
+from qwidgets.planning.table import SensitivityTable
 
 BITS4 = (2, 4, 6, 8)
 

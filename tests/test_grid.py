@@ -9,7 +9,7 @@ import torch
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from qwidgets.grid import UniformGrid
+from qwidgets.core.grid import UniformGrid
 
 
 # ------------------------------------------------------------------ integer range (affine

@@ -11,7 +11,7 @@ from hypothesis import strategies as st
 from torch import nn
 
 from qwidgets import LearnResult, UniformGrid, fit_range, layer_error, learn_grid
-from qwidgets.learn import _Adam
+from qwidgets.learn.one_grid import _Adam
 
 
 def _layer(seed=0, n_in=24, n_out=12):

@@ -9,9 +9,9 @@ import numpy as np
 import pytest
 import torch
 
-from qwidgets.grid import UniformGrid
-from qwidgets.metrics import ErrorStats, error_stats, grid_usage
-from qwidgets.quantize import quantize
+from qwidgets.core.grid import UniformGrid
+from qwidgets.core.metrics import ErrorStats, error_stats, grid_usage
+from qwidgets.core.rounding import quantize
 
 
 def numpy_stats(ref: np.ndarray, app: np.ndarray) -> dict:

@@ -16,20 +16,15 @@ import pytest
 import torch
 from torch import nn
 
-from qwidgets.grid import UniformGrid
-from qwidgets.plan import (
-    CAUTION,
-    LayerSetting,
-    Plan,
-    PlanReport,
-    apply_plan,
-    evaluate_plan,
-    export_codes,
-    model_fingerprint,
-)
-from qwidgets.probe import fit_weight, model_error
-from qwidgets.quantize import from_codes, quantize
-from qwidgets.ranges import fit_range
+from qwidgets.core.grid import UniformGrid
+from qwidgets.core.ranges import fit_range
+from qwidgets.core.rounding import from_codes, quantize
+from qwidgets.core.setting import LayerSetting
+from qwidgets.model.forward import model_error
+from qwidgets.model.layers import fit_weight
+from qwidgets.planning.apply import apply_plan, export_codes
+from qwidgets.planning.evaluate import PlanReport, evaluate_plan
+from qwidgets.planning.plan import CAUTION, Plan, model_fingerprint
 
 
 def _net(seed=0):
@@ -45,7 +40,7 @@ def _data():
 
 def _plan(net, x, bits=(4, 8, 12), unsigned_input=True):
     """A plan with per-channel weight grids and per-tensor input grids fitted to real inputs."""
-    from qwidgets.probe import capture_inputs
+    from qwidgets.model.capture import capture_inputs
 
     inputs = capture_inputs(net, x)
     names = ["0", "3", "5"]
@@ -240,8 +235,8 @@ def test_apply_plan_copies_and_matches_hook_evaluation():
     with torch.no_grad():
         out = q(x)
     ref = model_error(net, x, plan.layers)
-    from qwidgets.metrics import error_stats
-    from qwidgets.probe import forward_float
+    from qwidgets.core.metrics import error_stats
+    from qwidgets.model.forward import forward_float
 
     assert error_stats(forward_float(net, x), out).sqnr_db == pytest.approx(ref.output.sqnr_db, abs=1e-9)
     assert _untouched(net, snap)

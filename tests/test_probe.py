@@ -22,14 +22,9 @@ from qwidgets import (
     model_error,
     quantize,
 )
-from qwidgets.probe import (
-    fit_weight,
-    forward_float,
-    forward_quantized,
-    layer_macs,
-    layer_output,
-    quantizable_layers,
-)
+from qwidgets.model.capture import quantizable_layers
+from qwidgets.model.forward import forward_float, forward_quantized
+from qwidgets.model.layers import fit_weight, layer_macs, layer_output
 
 _HOOK_DICTS = (
     "_forward_hooks",

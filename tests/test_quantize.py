@@ -10,9 +10,9 @@ import torch
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from qwidgets.grid import UniformGrid
-from qwidgets.metrics import error_stats
-from qwidgets.quantize import from_codes, quantize, to_codes
+from qwidgets.core.grid import UniformGrid
+from qwidgets.core.metrics import error_stats
+from qwidgets.core.rounding import from_codes, quantize, to_codes
 
 F32_EPS = float(torch.finfo(torch.float32).eps)
 
@@ -365,7 +365,7 @@ def test_large_finite_values_are_not_mistaken_for_inf():
 
 
 def test_integer_input_is_cast_to_float32():
-    """Documented behaviour (qwidgets._prep.as_input): integer tensors are cast to float32."""
+    """Documented behaviour (qwidgets.core.checks.as_input): integer tensors are cast to float32."""
     x = torch.tensor([-7, 0, 3, 100], dtype=torch.int32)
     q = quantize(x, UniformGrid(4, 2.0))
     assert q.dtype == torch.float32

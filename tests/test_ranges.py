@@ -11,7 +11,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from qwidgets import UniformGrid, fit_range, quantize
-from qwidgets.ranges import _SortedRows, _Spec, _sse_direct
+from qwidgets.core.ranges import _SortedRows, _Spec, _sse_direct
 
 
 def _mse(x, grid):
@@ -270,7 +270,7 @@ def test_bad_data_is_refused():
 
 
 def test_large_tensors_search_a_seeded_subset(monkeypatch):
-    import qwidgets.ranges as ranges
+    import qwidgets.core.ranges as ranges
 
     x = torch.randn(4, 20_000, generator=torch.Generator().manual_seed(9))
     full = fit_range(x, 3, "mse", axis=0)

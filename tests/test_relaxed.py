@@ -11,9 +11,9 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import stats
 
-from qwidgets.grid import UniformGrid
-from qwidgets.quantize import quantize, to_codes
-from qwidgets.relaxed import bin_probabilities, expected_quantize, relaxed_quantize
+from qwidgets.core.grid import UniformGrid
+from qwidgets.core.relaxed import bin_probabilities, expected_quantize, relaxed_quantize
+from qwidgets.core.rounding import quantize, to_codes
 
 
 def scipy_bin_probabilities(x, grid: UniformGrid, noise) -> np.ndarray:
@@ -325,7 +325,7 @@ def test_low_precision_in_float32_out_in_input_dtype(dtype):
 
 
 def test_integer_input_is_cast_to_float32():
-    """Documented behaviour (qwidgets._prep.as_input): integer tensors are cast to float32."""
+    """Documented behaviour (qwidgets.core.checks.as_input): integer tensors are cast to float32."""
     x = torch.tensor([-1, 0, 2])
     grid = UniformGrid(3, 1.0)
     e = expected_quantize(x, grid, 0.01)

@@ -9,7 +9,9 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from qwidgets.widgets._render import Coalescer, MessageLine, PlotCanvas, encode_png
+from qwidgets.viz.canvas import encode_png
+from qwidgets.widgets.events import Coalescer, MessageLine
+from qwidgets.widgets.image_canvas import PlotCanvas
 
 
 def test_encode_png_decodes_to_the_same_pixels_with_pillow():
@@ -176,7 +178,7 @@ def test_message_line_shows_errors_and_notes():
 def test_front_end_echo_of_a_kernel_value_is_ignored_and_real_moves_pass():
     import ipywidgets as widgets
 
-    from qwidgets.widgets._render import observe_value
+    from qwidgets.widgets.events import observe_value
 
     s = widgets.FloatSlider(value=0.0, min=0.0, max=1.0, step=0.01)
     seen = []
@@ -194,7 +196,7 @@ def test_front_end_echo_of_a_kernel_value_is_ignored_and_real_moves_pass():
 def test_stale_echo_puts_the_control_back_to_the_latest_kernel_value():
     import ipywidgets as widgets
 
-    from qwidgets.widgets._render import observe_value
+    from qwidgets.widgets.events import observe_value
 
     s = widgets.FloatLogSlider(value=0.01, base=10, min=-4, max=0, step=0.01)
     seen = []
@@ -211,7 +213,7 @@ def test_stale_echo_puts_the_control_back_to_the_latest_kernel_value():
 def test_moves_to_values_the_kernel_set_on_the_step_grid_always_pass():
     import ipywidgets as widgets
 
-    from qwidgets.widgets._render import observe_value
+    from qwidgets.widgets.events import observe_value
 
     s = widgets.IntSlider(value=4, min=1, max=16)
     seen = []
@@ -225,7 +227,7 @@ def test_moves_to_values_the_kernel_set_on_the_step_grid_always_pass():
 def test_echo_of_the_value_a_slider_was_made_with_is_ignored():
     import ipywidgets as widgets
 
-    from qwidgets.widgets._render import observe_value
+    from qwidgets.widgets.events import observe_value
 
     s = widgets.FloatLogSlider(value=0.3, base=10, min=-2, max=0.5, step=0.01)
     seen = []

@@ -19,12 +19,14 @@ import pytest
 import torch
 from torch import nn
 
-from qwidgets.budget import plan_budget
-from qwidgets.metrics import error_stats
-from qwidgets.plan import apply_plan, evaluate_plan
-from qwidgets.probe import layer_error
-from qwidgets.quantize import quantize
-from qwidgets.scan import SensitivityTable, scan
+from qwidgets.core.metrics import error_stats
+from qwidgets.core.rounding import quantize
+from qwidgets.model.forward import layer_error
+from qwidgets.planning.apply import apply_plan
+from qwidgets.planning.evaluate import evaluate_plan
+from qwidgets.planning.scanning import scan
+from qwidgets.planning.solver import plan_budget
+from qwidgets.planning.table import SensitivityTable
 
 
 # ---------------------------------------------------------------------------- fixtures
@@ -236,7 +238,9 @@ def test_table_costs_shapes_and_round_trip(tmp_path, digits_mlp):
     for n in t.layers:
         assert torch.equal(u.weight_grid(n, 4).scale, t.weight_grid(n, 4).scale)
     assert plan_budget(u, mean_bits=6).bits == plan_budget(t, mean_bits=6).bits
-    fig = t.plot()
+    from qwidgets.viz.heatmap import plot_sensitivity
+
+    fig = plot_sensitivity(t)
     assert fig.axes and fig.axes[0].get_xlabel() == "bit width"
 
 
@@ -316,7 +320,7 @@ def test_layer_scope_weight_only_equals_layer_error_on_convs():
                         nn.Linear(16, 5)).eval()
     x = torch.randn(7, 3, 6, 6)
     t = scan(net, x, bits=(2, 5, 8), scope="layer", progress=False)
-    from qwidgets.probe import capture_inputs
+    from qwidgets.model.capture import capture_inputs
 
     seen = capture_inputs(net, x)
     for name in t.layers:

@@ -14,9 +14,11 @@ import pytest
 import torch
 from torch import nn
 
-from qwidgets.budget import pareto_front, plan_budget
-from qwidgets.plan import CAUTION, Plan, evaluate_plan
-from qwidgets.scan import SensitivityTable, scan
+from qwidgets.planning.evaluate import evaluate_plan
+from qwidgets.planning.plan import CAUTION, Plan
+from qwidgets.planning.scanning import scan
+from qwidgets.planning.solver import pareto_front, plan_budget
+from qwidgets.planning.table import SensitivityTable
 from qwidgets.widgets.explorer import GridExplorer
 from qwidgets.widgets.planner import BudgetPlanner
 from qwidgets.widgets.scanview import ScanView

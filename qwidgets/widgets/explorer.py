@@ -23,18 +23,20 @@ import numpy as np
 import torch
 from torch import nn
 
-from .._prep import as_input
-from ..grid import UniformGrid, check_bits, check_positive
-from ..learn import DEFAULT_NOISE, LearnResult, learn_grid
-from ..metrics import ErrorStats, GridUsage, error_stats, grid_usage
-from ..probe import WEIGHT_AXIS, capture_inputs, is_quantizable, layer_forward, layer_output
-from ..quantize import quantize
-from ..ranges import METHODS, fit_range
-from ..relaxed import bin_probabilities, expected_quantize, relaxed_quantize
-from ..setting import LayerSetting
-from ._explorer_figure import ExplorerFigure, PlotData
-from ._explorer_panel import METHOD_LABELS, SOURCE_LABELS, make_controls, readout_html
-from ._render import Coalescer, MessageLine, PlotCanvas, observe_value, torch_threads
+from ..core.checks import as_input, check_bits, check_positive
+from ..core.grid import UniformGrid
+from ..core.metrics import ErrorStats, GridUsage, error_stats, grid_usage
+from ..core.ranges import METHODS, fit_range
+from ..core.relaxed import bin_probabilities, expected_quantize, relaxed_quantize
+from ..core.rounding import quantize
+from ..core.setting import LayerSetting
+from ..learn.one_grid import DEFAULT_NOISE, LearnResult, learn_grid
+from ..model.capture import capture_inputs
+from ..model.layers import WEIGHT_AXIS, is_quantizable, layer_forward, layer_output
+from ..viz.explorer_figure import ExplorerFigure, PlotData
+from .events import Coalescer, MessageLine, observe_value, torch_threads
+from .explorer_panel import METHOD_LABELS, SOURCE_LABELS, make_controls, readout_html
+from .image_canvas import PlotCanvas
 
 __all__ = ["GridExplorer"]
 

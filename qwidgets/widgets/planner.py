@@ -19,10 +19,14 @@ import ipywidgets as widgets
 import numpy as np
 from torch import nn
 
-from ..budget import COSTS, pareto_front, plan_budget
-from ..plan import CAUTION, Plan, PlanReport, evaluate_plan
-from ..scan import SensitivityTable, scan
-from ._render import Coalescer, MessageLine, PlotCanvas, observe_value
+from ..planning.costs import COSTS
+from ..planning.evaluate import PlanReport, evaluate_plan
+from ..planning.plan import CAUTION, Plan
+from ..planning.scanning import scan
+from ..planning.solver import pareto_front, plan_budget
+from ..planning.table import SensitivityTable
+from .events import Coalescer, MessageLine, observe_value
+from .image_canvas import PlotCanvas
 
 __all__ = ["BudgetPlanner"]
 
@@ -233,7 +237,7 @@ class BudgetPlanner(widgets.VBox):
         """Run the float and the planned model on the data: measured SQNR and metric."""
         if self.plan is None:
             raise ValueError("no plan yet")
-        from ..probe import check_data
+        from ..model.running import check_data
 
         data = check_data(self.model, self.data, self._max_samples)  # the samples the scan used
         target = self.target

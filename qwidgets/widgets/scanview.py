@@ -14,9 +14,11 @@ import ipywidgets as widgets
 from matplotlib.patches import Rectangle
 from torch import nn
 
-from ..scan import SensitivityTable, scan
-from ._render import MessageLine, PlotCanvas
-from .heatmap import draw_heatmap
+from ..planning.scanning import scan
+from ..planning.table import SensitivityTable
+from ..viz.heatmap import draw_heatmap
+from .events import MessageLine
+from .image_canvas import PlotCanvas
 
 __all__ = ["ScanView"]
 

@@ -31,8 +31,8 @@ from numbers import Integral
 import torch
 import torch.nn.functional as F
 
-from ._prep import as_input, grid_params, noise_param
-from .grid import UniformGrid, check_positive, code_values
+from .checks import as_input, check_positive
+from .grid import UniformGrid, code_values, grid_params, noise_param
 
 __all__ = ["bin_probabilities", "expected_quantize", "relaxed_quantize"]
 

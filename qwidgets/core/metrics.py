@@ -7,8 +7,8 @@ from dataclasses import asdict, dataclass
 
 import torch
 
-from ._prep import as_input, channel_shape, grid_params
-from .grid import UniformGrid
+from .checks import as_input
+from .grid import UniformGrid, channel_shape, grid_params
 
 __all__ = ["ErrorStats", "GridUsage", "error_stats", "grid_usage"]
 

@@ -1,16 +1,4 @@
-"""Costs of a bit allocation and the exact allocator under a size / mean-bits / BOPs budget.
-
-Costs (all exact integers, so budgets compare without rounding):
-
-- weight storage of a layer, in bits: ``params * bits`` for the integer codes plus, per grid
-  channel, one float32 scale and one int32 zero point (``64`` bits; a per-tensor grid has one
-  channel). Float weights cost ``32 * params``. Biases are not counted (they are the same for
-  every choice). KiB = bits / 8192.
-- mean weight bits: ``sum(params * bits) / sum(params)`` over the planned layers (codes only).
-- BOPs of a layer: ``MACs * weight bits * input bits`` per sample (common practice in
-  mixed-precision work); float operands count 32 bits.
-
-The allocator picks one scanned bit width per layer so as to minimise the model-output noise
+"""The allocator picks one scanned bit width per layer so as to minimise the model-output noise
 predicted by the additive noise model: quantizing layer ``i`` at ``b`` bits adds noise power
 ``signal / 10**(SQNR_i(b) / 10)`` (its model-scope SQNR, measured by :func:`qwidgets.scan`), and
 the noise powers of the layers add up, so the predicted SQNR is
@@ -28,51 +16,12 @@ from numbers import Integral, Real
 
 import numpy as np
 
-__all__ = [
-    "COSTS",
-    "SCALE_BITS",
-    "ZERO_POINT_BITS",
-    "FLOAT_BITS",
-    "weight_storage_bits",
-    "layer_bops",
-    "plan_budget",
-    "pareto_front",
-]
+from .costs import COSTS, FLOAT_BITS, layer_bops, weight_storage_bits
+from .table import SensitivityTable
 
-COSTS = ("weight_kib", "mean_bits", "bops")
-SCALE_BITS = 32  # one float32 scale per grid channel
-ZERO_POINT_BITS = 32  # one int32 zero point per grid channel
-FLOAT_BITS = 32  # an unquantized weight or activation
 _MAX_NOISE = 1e12  # noise power relative to the signal, cap (SQNR >= -120 dB) to keep sums finite
 
 
-def weight_storage_bits(n_params: int, bits: int | None, n_channels: int = 1) -> int:
-    """Bits to store a weight tensor: codes plus a float32 scale and int32 zero point per channel.
-
-    ``bits=None`` means the weights stay float32 (no scales stored).
-
-    >>> weight_storage_bits(1000, 4, n_channels=10)  # 4000 code bits + 10 * 64
-    4640
-    >>> weight_storage_bits(1000, None)
-    32000
-    """
-    if bits is None:
-        return FLOAT_BITS * int(n_params)
-    return int(n_params) * int(bits) + int(n_channels) * (SCALE_BITS + ZERO_POINT_BITS)
-
-
-def layer_bops(macs: int, weight_bits: int | None, input_bits: int | None) -> int:
-    """Bit operations of a layer: ``MACs * weight bits * input bits`` (None counts as float32).
-
-    >>> layer_bops(100, 4, 8), layer_bops(100, None, None)
-    (3200, 102400)
-    """
-    wb = FLOAT_BITS if weight_bits is None else int(weight_bits)
-    ib = FLOAT_BITS if input_bits is None else int(input_bits)
-    return int(macs) * wb * ib
-
-
-# ---------------------------------------------------------------------------- public
 def plan_budget(table, *, weight_kib: float | None = None, mean_bits: float | None = None,
                 bops: float | None = None, input_bits: int | None = 8):
     """The plan with the least predicted model-output noise that fits one budget.
@@ -85,7 +34,7 @@ def plan_budget(table, *, weight_kib: float | None = None, mean_bits: float | No
     (see the module docstring); ties go to the cheaper plan.
 
     >>> import numpy as np
-    >>> from qwidgets.scan import SensitivityTable
+    >>> from qwidgets import SensitivityTable
     >>> t = SensitivityTable.synthetic(np.array([[10.0, 30.0], [20.0, 40.0]]), params=[100, 100],
     ...                                bits=(4, 8))
     >>> p = plan_budget(t, mean_bits=6)
@@ -118,7 +67,7 @@ def pareto_front(table, cost: str = "weight_kib", *, input_bits: int | None = 8,
     keeps every point).
 
     >>> import numpy as np
-    >>> from qwidgets.scan import SensitivityTable
+    >>> from qwidgets import SensitivityTable
     >>> t = SensitivityTable.synthetic(np.array([[10.0, 30.0], [20.0, 40.0]]), params=[100, 100],
     ...                                bits=(4, 8))
     >>> [(c, round(s, 2)) for c, s, _ in pareto_front(t, "mean_bits")]
@@ -140,7 +89,6 @@ def pareto_front(table, cost: str = "weight_kib", *, input_bits: int | None = 8,
     return out
 
 
-# ---------------------------------------------------------------------------- inputs
 def _one_budget(**budgets) -> tuple[str, float]:
     given = {k: v for k, v in budgets.items() if v is not None}
     if len(given) != 1:
@@ -170,10 +118,8 @@ def _check_input_bits(input_bits) -> int | None:
 
 
 def _check_table(table):
-    from .scan import SensitivityTable
-
     if not isinstance(table, SensitivityTable):
-        raise TypeError(f"table must be a SensitivityTable (from qwidgets.scan), got {type(table).__name__}")
+        raise TypeError(f"table must be a SensitivityTable, got {type(table).__name__}")
     return table
 
 
@@ -241,7 +187,6 @@ def _ceil_unit(c: int, unit: int, cost: str) -> str:
     return f"{math.ceil(c / unit * 1e4) / 1e4:.4f}"
 
 
-# ---------------------------------------------------------------------------- the solver
 def _pareto_step(c, n, costs_i, noise_i, extra_keep=None):
     """All (state, option) sums, sorted by cost, dominated ones dropped."""
     k = costs_i.shape[0]
@@ -444,7 +389,6 @@ def _thin(front_c: np.ndarray, max_points: int | None) -> list[int]:
     return sorted(set(pick.tolist()) | {0, front_c.size - 1})
 
 
-# ---------------------------------------------------------------------------- plans
 def _plan(table, choice, noise: np.ndarray, input_bits):
     total = float(noise[np.arange(len(choice)), choice].sum())
     predicted = math.inf if total == 0 else -10.0 * math.log10(total)

@@ -30,8 +30,8 @@ from numbers import Integral, Real
 
 import torch
 
-from ._prep import as_input
-from .grid import UniformGrid, check_bits
+from .checks import as_input, check_bits
+from .grid import UniformGrid
 
 __all__ = ["fit_range", "METHODS", "STYLES"]
 

@@ -11,7 +11,7 @@ import html
 
 import ipywidgets as widgets
 
-from ..ranges import METHODS
+from ..core.ranges import METHODS
 
 __all__ = ["METHOD_LABELS", "SOURCE_LABELS", "make_controls", "readout_html"]
 

@@ -11,8 +11,8 @@ from __future__ import annotations
 
 import torch
 
-from ._prep import as_input, grid_params
-from .grid import UniformGrid, code_values, split_offset
+from .checks import as_input
+from .grid import UniformGrid, code_values, grid_params, split_offset
 
 __all__ = ["quantize", "to_codes", "from_codes"]
 

@@ -8,60 +8,15 @@ of that axis of the tensor being quantized (per-channel quantization).
 
 from __future__ import annotations
 
-import math
-from numbers import Integral, Real
+from numbers import Integral
 
 import torch
 
-__all__ = ["UniformGrid", "as_float_tensor", "code_values"]
+from .checks import _short, check_bits, check_finite, check_positive
 
-MAX_BITS = 16
+__all__ = ["UniformGrid", "code_values", "channel_shape", "grid_params", "noise_param"]
+
 _ZP_TOL = 1e-4  # relative tolerance when deciding that an offset is an integer multiple of scale
-
-
-def check_bits(bits, name: str = "bits") -> int:
-    """Return ``bits`` as an int in 1..16, or raise a clear error."""
-    if isinstance(bits, bool) or not isinstance(bits, Integral):
-        raise TypeError(f"{name} must be an int in 1..{MAX_BITS}, got {bits!r} ({type(bits).__name__})")
-    if not 1 <= int(bits) <= MAX_BITS:
-        raise ValueError(f"{name} must be in 1..{MAX_BITS}, got {bits}")
-    return int(bits)
-
-
-def check_positive(value, name: str):
-    """Check that a float or tensor is finite and > 0 everywhere; return it unchanged."""
-    if isinstance(value, torch.Tensor):
-        if not value.is_floating_point():
-            raise TypeError(f"{name} must be a float tensor, got dtype {value.dtype}")
-        v = value.detach()
-        if not bool(torch.isfinite(v).all()):
-            raise ValueError(f"{name} must be finite, got {_short(v)}")
-        if not bool((v > 0).all()):
-            raise ValueError(f"{name} must be > 0, got {_short(v)}")
-        return value
-    if isinstance(value, bool) or not isinstance(value, Real):
-        raise TypeError(f"{name} must be a float or a float tensor, got {type(value).__name__}")
-    if not math.isfinite(value):
-        raise ValueError(f"{name} must be finite, got {value}")
-    if value <= 0:
-        raise ValueError(f"{name} must be > 0, got {value}")
-    return float(value)
-
-
-def check_finite(value, name: str):
-    """Check that a float or tensor holds only finite numbers; return it (floats as float)."""
-    if isinstance(value, torch.Tensor):
-        if not value.is_floating_point():
-            raise TypeError(f"{name} must be a float tensor, got dtype {value.dtype}")
-        if not bool(torch.isfinite(value.detach()).all()):
-            raise ValueError(f"{name} must be finite, got {_short(value.detach())}")
-        return value
-    if isinstance(value, bool) or not isinstance(value, Real):
-        raise TypeError(f"{name} must be a float or a float tensor, got {type(value).__name__}")
-    if not math.isfinite(value):
-        raise ValueError(f"{name} must be finite, got {value}")
-    return float(value)
-
 
 def split_offset(s: torch.Tensor, o: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
     """Write the offset as ``-Z * s + rest``: (Z, rest) in ``s``'s dtype, entry by entry.
@@ -80,7 +35,6 @@ def split_offset(s: torch.Tensor, o: torch.Tensor) -> tuple[torch.Tensor, torch.
         return (torch.where(whole, zr, 0.0).to(s.dtype),
                 torch.where(whole, torch.zeros_like(o_), o_).to(s.dtype))
 
-
 def code_values(k: torch.Tensor, s: torch.Tensor, o: torch.Tensor) -> torch.Tensor:
     """Grid values ``s * k + o`` for (float-typed) integer codes ``k``.
 
@@ -96,32 +50,6 @@ def code_values(k: torch.Tensor, s: torch.Tensor, o: torch.Tensor) -> torch.Tens
         return value
     lin = k * s + o
     return lin + (value - lin).detach()  # the value of ``value`` (Sterbenz: the difference is exact)
-
-
-def _short(t: torch.Tensor) -> str:
-    if t.numel() == 1:
-        return f"{t.item():g}"
-    bad = t[~torch.isfinite(t) | (t <= 0)]
-    show = bad if bad.numel() else t
-    vals = ", ".join(f"{v:g}" for v in show.flatten()[:4].tolist())
-    more = ", ..." if show.numel() > 4 else ""
-    return f"tensor of shape {tuple(t.shape)} holding [{vals}{more}]"
-
-
-def as_float_tensor(value, like: torch.Tensor | None = None, dtype=None) -> torch.Tensor:
-    """A float or tensor as a tensor on ``like``'s device (keeps autograd history)."""
-    if isinstance(value, torch.Tensor):
-        if like is not None:
-            value = value.to(device=like.device, dtype=dtype or like.dtype)
-        elif dtype is not None:
-            value = value.to(dtype)
-        return value
-    return torch.tensor(
-        value,
-        dtype=dtype or (like.dtype if like is not None else torch.get_default_dtype()),
-        device=like.device if like is not None else None,
-    )
-
 
 class UniformGrid:
     """Grid points ``scale * k + offset`` for integer ``k`` in ``[qmin, qmax]``.
@@ -314,3 +242,51 @@ class UniformGrid:
             f"UniformGrid(bits={self.bits}, scale={fmt(self.scale)}, offset={fmt(self.offset)}, "
             f"signed={self.signed}{ax})"
         )
+
+def channel_shape(x: torch.Tensor, grid: UniformGrid) -> tuple[int, ...] | None:
+    """Shape that broadcasts a per-channel vector against ``x`` (None for per-tensor grids)."""
+    if grid.axis is None:
+        return None
+    if x.dim() == 0:
+        raise ValueError(f"axis={grid.axis} needs a tensor with at least one dimension, got a scalar")
+    if not -x.dim() <= grid.axis < x.dim():
+        raise ValueError(f"axis={grid.axis} is out of range for a tensor with {x.dim()} dimension(s)")
+    axis = grid.axis % x.dim()
+    n = grid.n_channels
+    if n is not None and n != x.shape[axis]:
+        raise ValueError(
+            f"the grid has {n} per-channel values but x.shape[{grid.axis}] = {x.shape[axis]}; "
+            "they must match"
+        )
+    shape = [1] * x.dim()
+    shape[axis] = x.shape[axis]
+    return tuple(shape)
+
+def grid_params(x: torch.Tensor, grid: UniformGrid, dtype: torch.dtype | None = None):
+    """Scale and offset as tensors broadcastable against ``x`` (x's device; x's dtype unless given)."""
+    if not isinstance(grid, UniformGrid):
+        raise TypeError(f"grid must be a UniformGrid, got {type(grid).__name__}")
+    shape = channel_shape(x, grid)
+    dtype = dtype or x.dtype
+    return _param(grid.scale, x, shape, dtype), _param(grid.offset, x, shape, dtype)
+
+def _param(v, x: torch.Tensor, shape, dtype) -> torch.Tensor:
+    if isinstance(v, torch.Tensor):
+        t = v.to(device=x.device, dtype=dtype)
+        if shape is None or t.numel() == 1:
+            return t.reshape(())
+        return t.reshape(shape)
+    return torch.tensor(float(v), dtype=dtype, device=x.device)
+
+def noise_param(noise, x: torch.Tensor, grid: UniformGrid, name: str = "noise") -> torch.Tensor:
+    """The logistic noise width as a tensor broadcastable against ``x`` (scalar or per channel)."""
+    check_positive(noise, name)
+    if isinstance(noise, torch.Tensor) and noise.numel() > 1:
+        shape = channel_shape(x, grid)
+        if shape is None:
+            raise ValueError(f"{name} has {noise.numel()} values but the grid is per-tensor; give one")
+        n = shape[grid.axis % x.dim()]
+        if noise.numel() != n:
+            raise ValueError(f"{name} has {noise.numel()} values but the tensor has {n} channels")
+        return noise.to(device=x.device, dtype=x.dtype).reshape(shape)
+    return _param(noise, x, None, x.dtype)

@@ -23,12 +23,12 @@ from numbers import Integral, Real
 
 import torch
 
-from ._prep import as_input
-from .grid import UniformGrid, check_positive
-from .metrics import ErrorStats, error_stats
-from .probe import check_layer, layer_forward, layer_output
-from .quantize import quantize
-from .relaxed import relaxed_quantize
+from ..core.checks import as_input, check_positive
+from ..core.grid import UniformGrid
+from ..core.metrics import ErrorStats, error_stats
+from ..core.relaxed import relaxed_quantize
+from ..core.rounding import quantize
+from ..model.layers import check_layer, layer_forward, layer_output
 
 __all__ = ["learn_grid", "LearnResult", "SOURCES"]
 

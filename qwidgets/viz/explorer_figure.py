@@ -17,7 +17,7 @@ from matplotlib.gridspec import GridSpec
 from matplotlib.patches import Rectangle
 from matplotlib.ticker import MaxNLocator, NullFormatter, NullLocator
 
-from ._render import PlotCanvas
+from .canvas import BlitCanvas
 
 _RC = {
     "font.size": 8.5,
@@ -63,13 +63,13 @@ class PlotData:
 class ExplorerFigure:
     """Four panels: values and grid; bin probabilities; transfer curve; output (or error).
 
-    >>> from qwidgets.widgets._render import PlotCanvas
-    >>> fig = ExplorerFigure(PlotCanvas(720, 600), has_layer=True)
+    >>> from qwidgets.viz.canvas import BlitCanvas
+    >>> fig = ExplorerFigure(BlitCanvas(720, 600), has_layer=True)
     >>> len(fig.canvas.figure.axes)
     5
     """
 
-    def __init__(self, canvas: PlotCanvas, has_layer: bool):
+    def __init__(self, canvas: BlitCanvas, has_layer: bool):
         self.canvas = canvas
         self.has_layer = has_layer
         fig = canvas.figure

@@ -1,0 +1,100 @@
+"""Argument checks shared by every public entry point (one place; TypeError for a wrong type,
+ValueError for a wrong value, each message naming the parameter and what was expected)."""
+
+from __future__ import annotations
+
+import math
+from numbers import Integral, Real
+
+import numpy as np
+import torch
+
+MAX_BITS = 16
+_LOW_PRECISION = (torch.float16, torch.bfloat16)
+
+def check_bits(bits, name: str = "bits") -> int:
+    """Return ``bits`` as an int in 1..16, or raise a clear error."""
+    if isinstance(bits, bool) or not isinstance(bits, Integral):
+        raise TypeError(f"{name} must be an int in 1..{MAX_BITS}, got {bits!r} ({type(bits).__name__})")
+    if not 1 <= int(bits) <= MAX_BITS:
+        raise ValueError(f"{name} must be in 1..{MAX_BITS}, got {bits}")
+    return int(bits)
+
+def check_positive(value, name: str):
+    """Check that a float or tensor is finite and > 0 everywhere; return it unchanged."""
+    if isinstance(value, torch.Tensor):
+        if not value.is_floating_point():
+            raise TypeError(f"{name} must be a float tensor, got dtype {value.dtype}")
+        v = value.detach()
+        if not bool(torch.isfinite(v).all()):
+            raise ValueError(f"{name} must be finite, got {_short(v)}")
+        if not bool((v > 0).all()):
+            raise ValueError(f"{name} must be > 0, got {_short(v)}")
+        return value
+    if isinstance(value, bool) or not isinstance(value, Real):
+        raise TypeError(f"{name} must be a float or a float tensor, got {type(value).__name__}")
+    if not math.isfinite(value):
+        raise ValueError(f"{name} must be finite, got {value}")
+    if value <= 0:
+        raise ValueError(f"{name} must be > 0, got {value}")
+    return float(value)
+
+def check_finite(value, name: str):
+    """Check that a float or tensor holds only finite numbers; return it (floats as float)."""
+    if isinstance(value, torch.Tensor):
+        if not value.is_floating_point():
+            raise TypeError(f"{name} must be a float tensor, got dtype {value.dtype}")
+        if not bool(torch.isfinite(value.detach()).all()):
+            raise ValueError(f"{name} must be finite, got {_short(value.detach())}")
+        return value
+    if isinstance(value, bool) or not isinstance(value, Real):
+        raise TypeError(f"{name} must be a float or a float tensor, got {type(value).__name__}")
+    if not math.isfinite(value):
+        raise ValueError(f"{name} must be finite, got {value}")
+    return float(value)
+
+def _short(t: torch.Tensor) -> str:
+    if t.numel() == 1:
+        return f"{t.item():g}"
+    bad = t[~torch.isfinite(t) | (t <= 0)]
+    show = bad if bad.numel() else t
+    vals = ", ".join(f"{v:g}" for v in show.flatten()[:4].tolist())
+    more = ", ..." if show.numel() > 4 else ""
+    return f"tensor of shape {tuple(t.shape)} holding [{vals}{more}]"
+
+def as_input(x, name: str = "x", *, check_finite: bool = True) -> tuple[torch.Tensor, torch.dtype]:
+    """Validate a tensor to be quantized; return (compute tensor, dtype to return).
+
+    float32 / float64 are used as they are; float16 / bfloat16 are computed in float32 and the
+    result is cast back; integer tensors are cast to float32 (their values are exact there up
+    to 2**24). Bool and complex tensors are refused. The caller's tensor is never modified.
+    """
+    if isinstance(x, np.ndarray):
+        x = torch.from_numpy(x)
+    if not isinstance(x, torch.Tensor):
+        raise TypeError(f"{name} must be a torch.Tensor, got {type(x).__name__}")
+    if x.dtype == torch.bool or x.is_complex():
+        raise TypeError(f"{name} must hold real numbers, got dtype {x.dtype}")
+    out_dtype = x.dtype
+    if x.dtype in _LOW_PRECISION:
+        x = x.float()
+    elif not x.is_floating_point():
+        x = x.float()
+        out_dtype = torch.float32
+    if check_finite:
+        finite_check(x, name)
+    return x, out_dtype
+
+def finite_check(x: torch.Tensor, name: str, error: type[Exception] = ValueError) -> None:
+    """Raise ``error`` (ValueError) saying how many NaN / inf values ``x`` holds, if any."""
+    # A sum is a cheap single read; it is non-finite whenever an element is (or on overflow,
+    # which the exact count below tells apart).
+    if x.numel() == 0 or bool(torch.isfinite(x.detach().sum())):
+        return
+    n_nan = int(torch.isnan(x).sum())
+    n_inf = int(torch.isinf(x).sum())
+    if n_nan or n_inf:
+        raise error(
+            f"{name} holds {n_nan} NaN and {n_inf} inf value(s) out of {x.numel()}; "
+            "quantization needs finite numbers"
+        )

@@ -1,0 +1,161 @@
+"""Applying a plan to a copy of the model, and exporting its integer weight codes."""
+
+from __future__ import annotations
+
+import copy
+import warnings
+
+import torch
+from torch import nn
+
+from ..core.grid import UniformGrid
+from ..core.rounding import quantize, to_codes
+from ..model.layers import is_quantizable
+from .plan import Plan, model_fingerprint
+
+
+def match_plan(model: nn.Module, plan: Plan, strict: bool) -> tuple[dict, list[str]]:
+    """Planned layers found in ``model`` (name -> module) and the skipped ones, with reasons."""
+    if not isinstance(model, nn.Module):
+        raise TypeError(f"model must be a torch.nn.Module, got {type(model).__name__}")
+    if not isinstance(plan, Plan):
+        raise TypeError(f"plan must be a Plan, got {type(plan).__name__}")
+    if not isinstance(strict, bool):
+        raise TypeError(f"strict must be True or False, got {strict!r}")
+
+    modules = dict(model.named_modules())
+    found, skipped = {}, []
+    for name in plan.layers:
+        m = modules.get(name)
+        if m is None:
+            skipped.append(f"{name!r} (not in the model)")
+        elif not is_quantizable(m):
+            skipped.append(f"{name!r} (a {type(m).__name__}, not a Linear / Conv layer)")
+        elif tuple(m.weight.shape) != plan.weight_shapes[name]:
+            skipped.append(f"{name!r} (weight shape {tuple(m.weight.shape)} in the model, "
+                           f"{plan.weight_shapes[name]} in the plan)")
+        else:
+            found[name] = m
+    if strict and model_fingerprint(model) != plan.fingerprint:
+        if skipped:
+            first = ", ".join(skipped[:3]) + (", ..." if len(skipped) > 3 else "")
+            detail = f"first mismatching layers: {first}"
+        else:
+            detail = ("every planned layer matches by name and shape, but other parameters of the "
+                      "model differ (added, removed, renamed or reshaped)")
+        raise ValueError(f"the plan was made for another model (fingerprint {plan.fingerprint[:12]}..., "
+                         f"this model {model_fingerprint(model)[:12]}...); {detail}. Pass strict=False "
+                         "to apply the layers that match by name and shape")
+    if not found:
+        raise ValueError(f"no planned layer matches the model by name and shape: {', '.join(skipped)}")
+    return found, skipped
+
+
+class _QuantizeInput:
+    """Forward pre-hook of a planned copy: fake-quantizes the layer's first input."""
+
+    def __init__(self, grid: UniformGrid):
+        self.grid = grid
+
+    def __call__(self, module, args):
+        if not args or not isinstance(args[0], torch.Tensor):
+            return None
+        return (quantize(args[0], self.grid),) + tuple(args[1:])
+
+
+def apply_plan(model: nn.Module, plan: Plan, *, strict: bool = True) -> nn.Module:
+    """A deep copy of ``model`` with the plan's layers fake-quantized; ``model`` is untouched.
+
+    In the copy each planned layer's weight holds its fake-quantized values and, where the
+    plan has an input grid, a forward pre-hook quantizes the layer's input on every call.
+    ``strict=True`` refuses a plan made for a model with other parameter names or shapes
+    (naming the first mismatching layers); ``strict=False`` applies the layers that match by
+    name and weight shape, warns about the rest and lists them in the copy's
+    ``qwidgets_skipped`` attribute (``qwidgets_applied`` lists the applied ones).
+
+    >>> import torch
+    >>> from torch import nn
+    >>> from qwidgets import LayerSetting, Plan, UniformGrid
+    >>> from qwidgets.planning.plan import model_fingerprint
+    >>> lin = nn.Linear(3, 2)
+    >>> p = Plan({"": LayerSetting(weight=UniformGrid(2, 0.5))}, {"": 2},
+    ...          fingerprint=model_fingerprint(lin), weight_shapes={"": (2, 3)}, macs={"": 6})
+    >>> q = apply_plan(lin, p)
+    >>> set((q.weight.detach() / 0.5).flatten().tolist()) <= {-2.0, -1.0, 0.0, 1.0}, q is lin
+    (True, False)
+    """
+    found, skipped = match_plan(model, plan, strict)
+    new = copy.deepcopy(model)
+    new_modules = dict(new.named_modules())
+    with torch.no_grad():
+        for name in found:
+            layer, setting = new_modules[name], plan.layers[name]
+            if setting.weight is not None:
+                layer.weight.copy_(quantize(layer.weight.detach(), setting.weight))
+            if setting.input is not None:
+                layer.register_forward_pre_hook(_QuantizeInput(setting.input))
+    if skipped:
+        warnings.warn(f"apply_plan skipped {len(skipped)} planned layer(s): {', '.join(skipped)}",
+                      stacklevel=2)
+    new.qwidgets_applied = tuple(found)
+    new.qwidgets_skipped = tuple(skipped)
+    return new
+
+
+def _code_dtype(grid: UniformGrid) -> torch.dtype:
+    for dt in (torch.int8, torch.uint8, torch.int16, torch.int32):
+        info = torch.iinfo(dt)
+        if info.min <= grid.qmin and grid.qmax <= info.max:
+            return dt
+    return torch.int64  # not reached for bits <= 16
+
+
+def export_codes(model: nn.Module, plan: Plan, *, strict: bool = True) -> dict:
+    """Integer weight codes of each planned layer, with what is needed to decode them.
+
+    Per layer: ``codes`` (smallest integer dtype holding the grid's range: int8 / uint8 up to
+    8 bits, int16 up to 16 signed or 15 unsigned, else int32), ``scale`` and ``offset``
+    (float32 tensors, per channel when ``axis`` is set), ``zero_point`` (int32 tensor, or None
+    when the offset is not an integer multiple of the scale), ``axis``, ``bits``, ``signed``,
+    and ``input`` (the input grid as a dict of the same fields, or None). Decoding with
+    :func:`qwidgets.from_codes` gives exactly the weights of :func:`apply_plan`'s model.
+
+    >>> import torch
+    >>> from torch import nn
+    >>> from qwidgets import LayerSetting, Plan, UniformGrid
+    >>> from qwidgets.planning.plan import model_fingerprint
+    >>> lin = nn.Linear(3, 2)
+    >>> p = Plan({"": LayerSetting(weight=UniformGrid(4, 0.05))}, {"": 4},
+    ...          fingerprint=model_fingerprint(lin), weight_shapes={"": (2, 3)}, macs={"": 6})
+    >>> out = export_codes(lin, p)[""]
+    >>> out["codes"].dtype, out["bits"], out["zero_point"].tolist()
+    (torch.int8, 4, 0)
+    """
+    found, skipped = match_plan(model, plan, strict)
+    out = {}
+    for name, layer in found.items():
+        s = plan.layers[name]
+        entry = {"codes": None, **_grid_fields(s.weight)} if s.weight is not None else {
+            "codes": None, "scale": None, "offset": None, "zero_point": None, "axis": None,
+            "bits": None, "signed": None}
+        if s.weight is not None:
+            codes = to_codes(layer.weight.detach(), s.weight)
+            entry["codes"] = codes.to(_code_dtype(s.weight))
+        entry["input"] = None if s.input is None else _grid_fields(s.input)
+        out[name] = entry
+    if skipped:
+        warnings.warn(f"export_codes skipped {len(skipped)} planned layer(s): {', '.join(skipped)}",
+                      stacklevel=2)
+    return out
+
+
+def _grid_fields(g: UniformGrid) -> dict:
+    g = g.detached()
+    scale = g.scale_tensor().to(torch.float32).clone()
+    offset = g.offset_tensor().to(torch.float32).clone()
+    zp = None
+    if g.has_zero_point():
+        z = g.zero_point
+        zp = torch.as_tensor(z, dtype=torch.int32).clone()
+    return {"scale": scale, "offset": offset, "zero_point": zp, "axis": g.axis, "bits": g.bits,
+            "signed": g.signed}

@@ -1,0 +1,220 @@
+"""Plan: the bit width and grids chosen for each layer, its costs, and its JSON form."""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import os
+from collections.abc import Mapping
+from dataclasses import dataclass
+
+from torch import nn
+
+from ..core.checks import check_bits
+from ..core.setting import LayerSetting
+from .costs import FLOAT_BITS, layer_bops, weight_storage_bits
+from .files import read_text, write_text
+from .schema import FORMAT, VERSION, FieldError, NonFinite, grid_to_dict, plan_fields
+
+CAUTION = (
+    "These figures are estimates on the data given: they screen a plan, they do not certify "
+    "the quantized model. For safety-relevant use (vehicles, medical devices) validate the "
+    "deployed model on its target hardware with the full test procedure."
+)
+
+
+def model_fingerprint(model: nn.Module) -> str:
+    """SHA-256 of the model's ordered parameter names and shapes (values do not matter).
+
+    >>> from torch import nn
+    >>> a, b = nn.Linear(3, 2), nn.Linear(3, 2)
+    >>> model_fingerprint(a) == model_fingerprint(b), model_fingerprint(a) == model_fingerprint(nn.Linear(2, 2))
+    (True, False)
+    """
+    if not isinstance(model, nn.Module):
+        raise TypeError(f"model must be a torch.nn.Module, got {type(model).__name__}")
+    h = hashlib.sha256()
+    for name, p in model.named_parameters():
+        h.update(f"{name}:{tuple(p.shape)}\n".encode())
+    return h.hexdigest()
+
+
+@dataclass(frozen=True, eq=False)
+class Plan:
+    """The grids chosen for each planned layer, with what is needed to cost and check them.
+
+    ``layers``: name -> :class:`LayerSetting`; ``bits``: name -> chosen bit width;
+    ``fingerprint``: :func:`model_fingerprint` of the model planned for; ``weight_shapes`` and
+    ``macs`` (per sample) per layer; ``assumed_input_bits``: input width counted in BOPs for
+    layers without an input grid (None: float); ``predicted_sqnr_db``: the allocator's
+    prediction of the model-output SQNR (None when not predicted).
+
+    >>> from torch import nn
+    >>> from qwidgets import LayerSetting, Plan, UniformGrid
+    >>> from qwidgets.planning.plan import model_fingerprint
+    >>> lin = nn.Linear(4, 2)
+    >>> p = Plan({"": LayerSetting(weight=UniformGrid(4, 0.1))}, {"": 4},
+    ...          fingerprint=model_fingerprint(lin), weight_shapes={"": (2, 4)}, macs={"": 8})
+    >>> p.weight_kib * 8192, p.mean_weight_bits, p.bops  # 8 weights x 4 bits + one scale and zero point
+    (96.0, 4.0, 256)
+    >>> Plan.from_json(p.to_json()).bits
+    {'': 4}
+    """
+
+    layers: dict
+    bits: dict
+    fingerprint: str
+    weight_shapes: dict
+    macs: dict
+    assumed_input_bits: int | None = 8
+    predicted_sqnr_db: float | None = None
+
+    def __post_init__(self):
+        if not isinstance(self.layers, Mapping) or not self.layers:
+            raise ValueError("a Plan needs at least one layer (layers: name -> LayerSetting)")
+        layers = dict(self.layers)
+        for name, s in layers.items():
+            if not isinstance(s, LayerSetting):
+                raise TypeError(f"layers[{name!r}] must be a LayerSetting, got {type(s).__name__}")
+            if s.is_empty:
+                raise ValueError(f"layers[{name!r}] has neither a weight nor an input grid")
+        if not isinstance(self.bits, Mapping) or set(self.bits) != set(layers):
+            raise ValueError(f"bits must name the same layers as layers; got "
+                             f"{sorted(self.bits) if isinstance(self.bits, Mapping) else self.bits!r} "
+                             f"and {sorted(layers)}")
+        bits = {n: check_bits(self.bits[n], f"bits[{n!r}]") for n in layers}
+        for what, m in (("weight_shapes", self.weight_shapes), ("macs", self.macs)):
+            missing = [n for n in layers if n not in m]
+            if missing:
+                raise ValueError(f"{what} has no entry for layer(s) {missing}")
+        shapes = {n: tuple(int(d) for d in self.weight_shapes[n]) for n in layers}
+        macs = {n: int(self.macs[n]) for n in layers}
+        object.__setattr__(self, "layers", layers)
+        object.__setattr__(self, "bits", bits)
+        object.__setattr__(self, "weight_shapes", shapes)
+        object.__setattr__(self, "macs", macs)
+        if self.predicted_sqnr_db is not None:
+            object.__setattr__(self, "predicted_sqnr_db", float(self.predicted_sqnr_db))
+
+    # ------------------------------------------------------------------ costs
+    def _params(self, name: str) -> int:
+        return math.prod(self.weight_shapes[name])
+
+    def _channels(self, name: str) -> int:
+        g = self.layers[name].weight
+        if g is None or g.axis is None:
+            return 1
+        return self.weight_shapes[name][g.axis]
+
+    def _weight_bits(self, name: str) -> int | None:
+        g = self.layers[name].weight
+        return None if g is None else g.bits
+
+    def _input_bits(self, name: str) -> int | None:
+        g = self.layers[name].input
+        return self.assumed_input_bits if g is None else g.bits
+
+    @property
+    def weight_kib(self) -> float:
+        """Weight storage of the planned layers in KiB (codes, float32 scales, int32 zero points)."""
+        return sum(weight_storage_bits(self._params(n), self._weight_bits(n), self._channels(n))
+                   for n in self.layers) / 8192
+
+    @property
+    def float_weight_kib(self) -> float:
+        """The same layers' weights in float32, KiB."""
+        return sum(FLOAT_BITS * self._params(n) for n in self.layers) / 8192
+
+    @property
+    def mean_weight_bits(self) -> float:
+        """Mean bits per weight of the planned layers (codes only; float weights count 32)."""
+        total = sum(self._params(n) for n in self.layers)
+        return sum(self._params(n) * (self._weight_bits(n) or FLOAT_BITS) for n in self.layers) / total
+
+    @property
+    def bops(self) -> int:
+        """Bit operations per sample: sum of MACs x weight bits x input bits."""
+        return sum(layer_bops(self.macs[n], self._weight_bits(n), self._input_bits(n)) for n in self.layers)
+
+    @property
+    def float_bops(self) -> int:
+        """Bit operations per sample of the same layers in float32."""
+        return sum(layer_bops(self.macs[n], None, None) for n in self.layers)
+
+    def to_rows(self) -> list[dict]:
+        """One dict per layer: bits, weight storage (bits, KiB) and BOPs, with float32 figures.
+
+        Keys: layer, bits, weight_bits, input_bits (None: float), params, storage_bits,
+        weight_kib, float_weight_kib, bops, float_bops.
+        """
+        rows = []
+        for n, s in self.layers.items():
+            stored = weight_storage_bits(self._params(n), self._weight_bits(n), self._channels(n))
+            rows.append({
+                "layer": n,
+                "bits": self.bits[n],
+                "weight_bits": self._weight_bits(n),
+                "input_bits": None if s.input is None else s.input.bits,
+                "params": self._params(n),
+                "storage_bits": stored,
+                "weight_kib": stored / 8192,
+                "float_weight_kib": FLOAT_BITS * self._params(n) / 8192,
+                "bops": layer_bops(self.macs[n], self._weight_bits(n), self._input_bits(n)),
+                "float_bops": layer_bops(self.macs[n], None, None),
+            })
+        return rows
+
+    def __repr__(self) -> str:
+        pred = "" if self.predicted_sqnr_db is None else f", predicted {self.predicted_sqnr_db:.2f} dB"
+        return (f"Plan({len(self.layers)} layers, {self.weight_kib:.2f} KiB of weights, "
+                f"{self.mean_weight_bits:.2f} mean bits{pred})")
+
+    # ------------------------------------------------------------------ JSON
+    def to_dict(self) -> dict:
+        """The plan as plain JSON-ready data (see the module docstring for the layout)."""
+        pred = self.predicted_sqnr_db
+        return {
+            "format": FORMAT,
+            "version": VERSION,
+            "fingerprint": self.fingerprint,
+            "predicted_sqnr_db": pred if pred is not None and math.isfinite(pred) else None,
+            "assumed_input_bits": self.assumed_input_bits,
+            "layers": {
+                n: {
+                    "bits": self.bits[n],
+                    "weight_shape": list(self.weight_shapes[n]),
+                    "macs": self.macs[n],
+                    "weight": grid_to_dict(s.weight),
+                    "input": grid_to_dict(s.input),
+                }
+                for n, s in self.layers.items()
+            },
+        }
+
+    def to_json(self, indent: int | None = 1) -> str:
+        """The plan as JSON text (strict JSON: no NaN or Infinity)."""
+        return json.dumps(self.to_dict(), indent=indent, allow_nan=False)
+
+    @classmethod
+    def from_json(cls, text: str) -> Plan:
+        """Read a plan from JSON text, checking every field (clear errors name the field)."""
+        if not isinstance(text, (str, bytes, bytearray)):
+            raise TypeError(f"text must be JSON text (str), got {type(text).__name__}")
+        try:
+            data = json.loads(text, parse_constant=NonFinite)
+        except json.JSONDecodeError as e:
+            raise ValueError(f"the plan is not valid JSON (truncated or damaged?): {e}") from None
+        try:
+            return cls(**plan_fields(data))
+        except FieldError as e:
+            raise ValueError(f"invalid plan: {e}") from None
+
+    def save(self, path: str | os.PathLike) -> None:
+        """Write the plan's JSON to ``path`` (atomically: a failed write leaves no partial file)."""
+        write_text(path, self.to_json(), "plan")
+
+    @classmethod
+    def load(cls, path: str | os.PathLike) -> Plan:
+        """Read a plan written by :meth:`save` (or by hand, following the same layout)."""
+        return cls.from_json(read_text(path, "plan"))

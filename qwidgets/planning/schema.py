@@ -1,0 +1,295 @@
+"""The JSON files: one strict schema for plans and sensitivity tables.
+
+Plans
+
+A plan is data, never code: it is written and read as JSON (no pickle), and reading checks
+every field. Its JSON layout (``version`` 1)::
+
+    {
+      "format": "qwidgets plan",
+      "version": 1,
+      "fingerprint": "<sha256 of the model's ordered parameter names and shapes>",
+      "predicted_sqnr_db": 31.4,            # or null; +inf is written as null too
+      "assumed_input_bits": 8,              # input width used for BOPs where no input grid
+      "layers": {                           # in execution order
+        "features.0": {
+          "bits": 6,                        # the chosen width (the weight grid's, else the input's)
+          "weight_shape": [16, 3, 3, 3],
+          "macs": 442368,                   # multiply-accumulates per sample
+          "weight": {"bits": 6, "signed": true, "axis": 0,
+                     "scale": [...], "offset": [...], "zero_point": [...]},   # or null
+          "input": {"bits": 6, "signed": false, "axis": null,
+                    "scale": 0.02, "offset": 0.0, "zero_point": 0}            # or null
+        }
+      }
+    }
+
+Per-channel grids (``axis`` set) hold one scale / offset / zero point per channel; a grid
+whose offset is not an integer multiple of its scale has ``"zero_point": null``.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import torch
+
+from ..core.checks import MAX_BITS, check_bits
+from ..core.grid import UniformGrid
+from ..core.setting import LayerSetting
+
+QUANTIZE_MODES = ("weight", "input", "both")
+SCOPES = ("layer", "model", "both")
+FORMAT = "qwidgets plan"
+
+
+VERSION = 1
+
+
+TABLE_FORMAT = "qwidgets sensitivity table"
+
+
+TABLE_VERSION = 1
+
+
+def grid_to_dict(g: UniformGrid | None) -> dict | None:
+    if g is None:
+        return None
+    g = g.detached()
+    if g.axis is None:  # floats as given (a 0-d tensor's value as a float)
+        scale, offset = float(g.scale), float(g.offset) + 0.0
+    else:
+        scale = [float(v) for v in g.scale_tensor().reshape(-1).tolist()]
+        offset = [float(v) + 0.0 for v in g.offset_tensor().reshape(-1).tolist()]
+        n = max(len(scale), len(offset))
+        scale = scale * n if len(scale) == 1 else scale
+        offset = offset * n if len(offset) == 1 else offset
+    zp = None
+    if g.has_zero_point():
+        z = g.zero_point
+        zp = int(z) if isinstance(z, int) else [int(v) for v in z.reshape(-1).tolist()]
+        if isinstance(zp, list) and isinstance(scale, list) and len(zp) == 1:
+            zp = zp * len(scale)
+    return {"bits": g.bits, "signed": g.signed, "axis": g.axis, "scale": scale, "offset": offset,
+            "zero_point": zp}
+
+
+class FieldError(ValueError):
+    """A malformed field; the reader adds what kind of file it was reading."""
+
+
+class NonFinite:
+    """Stands for a NaN / Infinity literal in the JSON, so the check can name its field."""
+
+    def __init__(self, literal: str):
+        self.literal = literal
+
+
+_TOP = ("format", "version", "fingerprint", "predicted_sqnr_db", "assumed_input_bits", "layers")
+
+
+_LAYER = ("bits", "weight_shape", "macs", "weight", "input")
+
+
+_GRID = ("bits", "signed", "axis", "scale", "offset", "zero_point")
+
+
+def _fields(obj, keys, where: str) -> None:
+    if not isinstance(obj, dict):
+        raise FieldError(f"{where} must be a JSON object, got {_kind(obj)}")
+    missing = [k for k in keys if k not in obj]
+    extra = [k for k in obj if k not in keys]
+    if missing:
+        raise FieldError(f"{where} is missing field(s) {missing}")
+    if extra:
+        raise FieldError(f"{where} has unknown field(s) {extra}; expected {list(keys)}")
+
+
+def _kind(v) -> str:
+    if isinstance(v, NonFinite):
+        return v.literal
+    if v is None:
+        return "null"
+    return {bool: "a boolean", int: "an integer", float: "a number", str: "a string",
+            list: "a list", dict: "an object"}.get(type(v), type(v).__name__) + f" ({v!r})"[:60]
+
+
+def _int(v, where: str, lo: int | None = None, hi: int | None = None) -> int:
+    if isinstance(v, bool) or not isinstance(v, int):
+        raise FieldError(f"{where} must be an integer, got {_kind(v)}")
+    if (lo is not None and v < lo) or (hi is not None and v > hi):
+        rng = f"in {lo}..{hi}" if hi is not None else f">= {lo}"
+        raise FieldError(f"{where} must be {rng}, got {v}")
+    return v
+
+
+def _num(v, where: str, positive: bool = False) -> float:
+    if isinstance(v, NonFinite):
+        raise FieldError(f"{where} must be a finite number, got {v.literal}")
+    if isinstance(v, bool) or not isinstance(v, (int, float)):
+        raise FieldError(f"{where} must be a number, got {_kind(v)}")
+    if not math.isfinite(v):
+        raise FieldError(f"{where} must be a finite number, got {v}")
+    if positive and v <= 0:
+        raise FieldError(f"{where} must be > 0, got {v}")
+    return float(v)
+
+
+def grid_from_dict(d, where: str, channels: int | None) -> UniformGrid | None:
+    if d is None:
+        return None
+    _fields(d, _GRID, where)
+    bits = _int(d["bits"], f"{where}.bits", 1, MAX_BITS)
+    if not isinstance(d["signed"], bool):
+        raise FieldError(f"{where}.signed must be true or false, got {_kind(d['signed'])}")
+    axis = d["axis"]
+    if axis is not None:
+        axis = _int(axis, f"{where}.axis")
+    if axis is None:
+        scale = _num(d["scale"], f"{where}.scale", positive=True)
+        offset = _num(d["offset"], f"{where}.offset")
+        zp = None if d["zero_point"] is None else _int(d["zero_point"], f"{where}.zero_point")
+        if zp is not None and not _zp_matches(zp, scale, offset):
+            raise FieldError(f"{where}.zero_point {zp} does not match offset / scale "
+                             f"(offset must equal -zero_point * scale, got offset {offset}, scale {scale})")
+        return UniformGrid(bits, scale, offset, signed=d["signed"])
+    lists = {}
+    for k in ("scale", "offset") + (("zero_point",) if d["zero_point"] is not None else ()):
+        v = d[k]
+        if not isinstance(v, list) or not v:
+            raise FieldError(f"{where}.{k} must be a non-empty list (one value per "
+                             f"channel, axis={axis}), got {_kind(v)}")
+        lists[k] = v
+    lengths = {k: len(v) for k, v in lists.items()}
+    if len(set(lengths.values())) != 1:
+        raise FieldError(f"{where} per-channel lists differ in length: {lengths}")
+    n = next(iter(lengths.values()))
+    if channels is not None and n != channels:
+        raise FieldError(f"{where}.scale has {n} values but the weight has {channels} "
+                         f"channels along axis {axis}")
+    scale = [_num(v, f"{where}.scale[{i}]", positive=True) for i, v in enumerate(lists["scale"])]
+    offset = [_num(v, f"{where}.offset[{i}]") for i, v in enumerate(lists["offset"])]
+    if "zero_point" in lists:
+        for i, z in enumerate(lists["zero_point"]):
+            z = _int(z, f"{where}.zero_point[{i}]")
+            if not _zp_matches(z, scale[i], offset[i]):
+                raise FieldError(f"{where}.zero_point[{i}] = {z} does not match "
+                                 f"offset / scale (offset {offset[i]}, scale {scale[i]})")
+    return UniformGrid(bits, torch.tensor(scale, dtype=torch.float32),
+                       torch.tensor(offset, dtype=torch.float32), signed=d["signed"], axis=axis)
+
+
+def _zp_matches(z: int, scale: float, offset: float) -> bool:
+    return abs(offset + z * scale) <= 1e-4 * scale * max(1.0, abs(z))
+
+
+def plan_fields(data) -> dict:
+    """Check a plan's JSON data field by field; return the Plan constructor's arguments."""
+    _fields(data, _TOP, "the top level")
+    if data["format"] != FORMAT:
+        raise FieldError(f"format must be {FORMAT!r}, got {_kind(data['format'])}")
+    version = data["version"]
+    if version != VERSION or isinstance(version, bool):
+        raise FieldError(f"version {_kind(version)} is not supported; this qwidgets "
+                         f"reads version {VERSION}")
+    fp = data["fingerprint"]
+    if not isinstance(fp, str) or len(fp) != 64 or any(c not in "0123456789abcdef" for c in fp):
+        raise FieldError(f"fingerprint must be 64 lowercase hex digits, got {_kind(fp)}")
+    pred = data["predicted_sqnr_db"]
+    pred = None if pred is None else _num(pred, "predicted_sqnr_db")
+    aib = data["assumed_input_bits"]
+    aib = None if aib is None else _int(aib, "assumed_input_bits", 1, MAX_BITS)
+    layers_d = data["layers"]
+    if not isinstance(layers_d, dict) or not layers_d:
+        raise FieldError(f"layers must be a non-empty object, got {_kind(layers_d)}")
+    layers, bits, shapes, macs = {}, {}, {}, {}
+    for name, entry in layers_d.items():
+        where = f"layers[{name!r}]"
+        _fields(entry, _LAYER, where)
+        b = _int(entry["bits"], f"{where}.bits", 1, MAX_BITS)
+        shape = entry["weight_shape"]
+        if not isinstance(shape, list) or len(shape) < 2:
+            raise FieldError(f"{where}.weight_shape must be a list of >= 2 sizes, got {_kind(shape)}")
+        shape = tuple(_int(s, f"{where}.weight_shape[{i}]", 1) for i, s in enumerate(shape))
+        m = _int(entry["macs"], f"{where}.macs", 0)
+        wd = entry["weight"]
+        channels = None
+        if isinstance(wd, dict) and isinstance(wd.get("axis"), int) and not isinstance(wd["axis"], bool):
+            if not -len(shape) <= wd["axis"] < len(shape):
+                raise FieldError(f"{where}.weight.axis {wd['axis']} is out of range for "
+                                 f"weight_shape {list(shape)}")
+            channels = shape[wd["axis"]]
+        w = grid_from_dict(wd, f"{where}.weight", channels)
+        x = grid_from_dict(entry["input"], f"{where}.input", None)
+        if w is None and x is None:
+            raise FieldError(f"{where} has neither a weight nor an input grid")
+        main = w if w is not None else x
+        if main.bits != b:
+            raise FieldError(f"{where}.bits is {b} but its "
+                             f"{'weight' if w is not None else 'input'} grid has {main.bits} bits")
+        layers[name] = LayerSetting(weight=w, input=x)
+        bits[name], shapes[name], macs[name] = b, shape, m
+    return dict(layers=layers, bits=bits, fingerprint=fp, weight_shapes=shapes, macs=macs,
+                assumed_input_bits=aib, predicted_sqnr_db=pred)
+
+
+def json_db(v: float):
+    return float(v) if math.isfinite(v) else ("inf" if v > 0 else "-inf")
+
+
+def _db_from_json(v, where: str) -> float:
+    if v in ("inf", "-inf"):
+        return float(v)
+    if isinstance(v, bool) or not isinstance(v, (int, float)):
+        raise FieldError(f"{where} must hold numbers, got {v!r}")
+    return float(v)
+
+
+def table_fields(d) -> dict:
+    """Check a table's JSON data field by field; return the SensitivityTable constructor's arguments."""
+    keys = ("format", "version", "bits", "quantize", "method", "per_channel", "fingerprint",
+            "n_samples", "layers")
+    if not isinstance(d, dict) or set(d) != set(keys):
+        raise FieldError(f"expected an object with fields {list(keys)}")
+    if d["format"] != TABLE_FORMAT or d["version"] != TABLE_VERSION:
+        raise FieldError(f"format / version must be {TABLE_FORMAT!r} / {TABLE_VERSION}, "
+                          f"got {d['format']!r} / {d['version']!r}")
+    bits = tuple(check_bits(b, "bits[]") for b in d["bits"])
+    if d["quantize"] not in QUANTIZE_MODES:
+        raise FieldError(f"quantize must be one of {QUANTIZE_MODES}, got {d['quantize']!r}")
+    names, info, sq, grids = [], {}, {"layer": [], "model": []}, {"weight": {}, "input": {}}
+    for k, e in enumerate(d["layers"]):
+        name = e["name"]
+        if not isinstance(name, str):
+            raise FieldError(f"layers[{k}].name must be a string")
+        names.append(name)
+        info[name] = {"type": str(e["type"]), "weight_shape": tuple(int(s) for s in e["weight_shape"]),
+                      "input_shape": None if e["input_shape"] is None else tuple(e["input_shape"]),
+                      "macs": int(e["macs"]), "model_pass": str(e.get("model_pass", "-"))}
+        for scope in ("layer", "model"):
+            v = e[f"{scope}_sqnr_db"]
+            if v is not None and len(v) != len(bits):
+                raise FieldError(f"layers[{k}].{scope}_sqnr_db must hold {len(bits)} values")
+            sq[scope].append(None if v is None else [_db_from_json(x, f"layers[{k}].{scope}_sqnr_db") for x in v])
+        for kind in ("weight", "input"):
+            v = e[f"{kind}_grids"]
+            if v is not None:
+                if len(v) != len(bits):
+                    raise FieldError(f"layers[{k}].{kind}_grids must hold {len(bits)} grids")
+                ch = info[name]["weight_shape"][0] if kind == "weight" and d["per_channel"] else None
+                grids[kind][name] = [grid_from_dict(g, f"layers[{k}].{kind}_grids[{j}]", ch)
+                                     for j, g in enumerate(v)]
+    arrays = {}
+    for scope in ("layer", "model"):
+        rows = sq[scope]
+        if any(r is None for r in rows) and not all(r is None for r in rows):
+            raise FieldError(f"{scope}_sqnr_db must be given for every layer or for none")
+        arrays[scope] = None if not rows or rows[0] is None else np.array(rows, dtype=float)
+    return dict(
+        layers=names, bits=bits, quantize=d["quantize"], method=str(d["method"]),
+        per_channel=bool(d["per_channel"]), fingerprint=str(d["fingerprint"]), info=info,
+        layer_sqnr=arrays["layer"], model_sqnr=arrays["model"],
+        weight_grids=grids["weight"] if len(grids["weight"]) == len(names) else None,
+        input_grids=grids["input"] if len(grids["input"]) == len(names) else None,
+        n_samples=int(d["n_samples"]))

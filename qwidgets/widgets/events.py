@@ -1,0 +1,264 @@
+"""Event plumbing shared by the widgets: coalesced updates, the message line, echo filtering.
+
+``Coalescer(callback, delay=0.03, on_error=None)``
+    ``.request()`` records that an update is due and schedules one ``callback`` call on the
+    running event loop (the kernel's); more requests before it runs add nothing, so a burst of
+    slider events costs one update and the update sees the latest values. ``.flush()`` runs a
+    pending call now. With no running loop (a script, a test) requests wait for ``flush()``.
+``MessageLine()``
+    ``.widget`` (an ``ipywidgets.HTML``), ``.text``, ``.error(exc, context)``, ``.info(text)``,
+    ``.clear()``, ``.run(context, fn)`` and ``.guard(context)``: a context manager that shows an
+    exception raised inside it on the line instead of losing it in the kernel's log.
+``observe_value(widget, handler)``
+    Call ``handler(change)`` when a control's value changes, except when the change is the
+    front end echoing, rounded to the control's step, a value the kernel set (see below).
+``torch_threads(n)``
+    A context manager running torch with ``n`` intra-op threads (None: unchanged), restored
+    after: a widget update is many cache-sized slices, which a second thread hardly speeds up
+    on an idle machine and stalls several-fold when another process holds the other core.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import html
+import math
+import traceback
+from collections.abc import Callable
+from contextlib import contextmanager
+
+import ipywidgets as widgets
+
+
+@contextmanager
+def torch_threads(n: int | None):
+    """Run the block with ``torch.set_num_threads(n)``; the previous count is restored after.
+
+    >>> import torch
+    >>> before = torch.get_num_threads()
+    >>> with torch_threads(1):
+    ...     torch.get_num_threads()
+    1
+    >>> torch.get_num_threads() == before
+    True
+    """
+    if n is None:
+        yield
+        return
+    import torch
+
+    before = torch.get_num_threads()
+    if before == n:
+        yield
+        return
+    torch.set_num_threads(n)
+    try:
+        yield
+    finally:
+        torch.set_num_threads(before)
+
+
+def _running_loop():
+    try:
+        return asyncio.get_running_loop()
+    except RuntimeError:
+        return None
+
+
+class Coalescer:
+    """Turn many update requests into one call: the latest state wins, no backlog builds.
+
+    >>> calls = []
+    >>> c = Coalescer(lambda: calls.append(1))
+    >>> for _ in range(200):
+    ...     c.request()
+    >>> c.flush(), c.flush(), len(calls)
+    (True, False, 1)
+    """
+
+    def __init__(self, callback: Callable[[], object], delay: float = 0.03,
+                 on_error: Callable[[BaseException], object] | None = None):
+        if not callable(callback):
+            raise TypeError(f"callback must be callable, got {type(callback).__name__}")
+        if not delay >= 0:
+            raise ValueError(f"delay must be >= 0 seconds, got {delay}")
+        self.callback = callback
+        self.delay = float(delay)
+        self.on_error = on_error
+        self.pending = False
+        self.requests = 0
+        self.calls = 0
+        self._handle = None
+
+    def request(self) -> None:
+        """Record that an update is due; schedule it once on the running event loop, if any."""
+        self.requests += 1
+        self.pending = True
+        if self._handle is None:
+            loop = _running_loop()
+            if loop is not None:
+                self._handle = loop.call_later(self.delay, self._fire)
+
+    def _fire(self) -> None:
+        self._handle = None
+        self.flush()
+
+    def cancel(self) -> None:
+        """Drop a pending update without running it."""
+        if self._handle is not None:
+            self._handle.cancel()
+            self._handle = None
+        self.pending = False
+
+    def flush(self) -> bool:
+        """Run the pending update now; return whether one ran."""
+        if self._handle is not None:
+            self._handle.cancel()
+            self._handle = None
+        if not self.pending:
+            return False
+        self.pending = False
+        self.calls += 1
+        try:
+            self.callback()
+        except Exception as exc:  # a scheduled call has no caller to raise to
+            if self.on_error is None:
+                raise
+            self.on_error(exc)
+        return True
+
+
+class MessageLine:
+    """One line of text under a widget for errors and short notes (``.text`` is the plain text).
+
+    >>> m = MessageLine()
+    >>> with m.guard("fit"):
+    ...     raise ValueError("bits must be in 1..16, got 0")
+    >>> m.text
+    'fit failed: ValueError: bits must be in 1..16, got 0'
+    """
+
+    def __init__(self):
+        self.widget = widgets.HTML(value="", layout=widgets.Layout(min_height="1.5em"))
+        self.widget.add_class("qw-message")
+        self.text = ""
+        self.is_error = False
+        self.last_traceback = ""
+
+    def _show(self, text: str, color: str) -> None:
+        self.text = text
+        self.widget.value = (
+            f'<span style="color:{color};font-family:monospace;white-space:pre-wrap">'
+            f"{html.escape(text)}</span>"
+        )
+
+    def error(self, exc: BaseException, context: str = "update") -> None:
+        """Show ``exc`` as ``"<context> failed: <type>: <message>"`` in red."""
+        self.is_error = True
+        self.last_traceback = "".join(traceback.format_exception(type(exc), exc, exc.__traceback__))
+        self._show(f"{context} failed: {type(exc).__name__}: {exc}", "#b00020")
+
+    def info(self, text: str) -> None:
+        """Show a short note in a neutral colour."""
+        self.is_error = False
+        self._show(str(text), "#333333")
+
+    def clear(self) -> None:
+        self.is_error = False
+        self.text = ""
+        self.widget.value = ""
+
+    def run(self, context: str, fn: Callable[[], object]) -> None:
+        """Call ``fn()``; an exception is shown on the line (a widget callback has no caller)."""
+        with self.guard(context):
+            fn()
+
+    @contextmanager
+    def guard(self, context: str = "update"):
+        """Run a block; an exception inside is shown on the line (and not raised)."""
+        try:
+            yield
+        except Exception as exc:
+            self.error(exc, context)
+
+
+_ECHO_HISTORY = 64  # kernel-set values remembered since the last real move
+
+
+_ECHO_TOL = 1e-3  # in steps: how close an echo is to the front end's rounding of a kernel value
+
+
+def observe_value(widget, handler: Callable[[dict], object]) -> None:
+    """Observe ``widget.value``, ignoring the front end's echoes of values the kernel set.
+
+    A browser shows a slider at its step: given a value between two steps it rounds it and
+    sends the rounded value back, often after the kernel has moved on (the sliders follow a
+    learning run; a planner has been measured). Taken as a person's move, that echo would
+    replace what the kernel computed with a rounded or stale value. A value set exactly on the
+    step grid draws no echo, so an echo is recognised as the step rounding of a recent
+    *off-grid* value the kernel set: it is ignored (and if it was stale, the control is put back
+    to the kernel's latest value). Anything else from the front end is a person's move and
+    reaches ``handler``; values set in the kernel (by the widget or a script) always do.
+    """
+    echoes: list = []  # the front end's roundings of recent off-grid values the kernel set
+    latest = [widget.value]  # the kernel's latest value
+    restoring = [False]
+
+    def remember(value) -> None:
+        snapped = _on_step_grid(widget, value)
+        if snapped is not None and not _same_position(widget, value, snapped):
+            echoes.append(snapped)
+            del echoes[:-_ECHO_HISTORY]
+
+    remember(widget.value)  # the value it was made with echoes too, when first drawn
+
+    def observe(change):
+        new = change["new"]
+        if restoring[0]:
+            return None
+        if "value" not in getattr(widget, "_property_lock", {}):  # set in the kernel
+            latest[0] = new
+            remember(new)
+            return handler(change)
+        # (no time limit: while a notebook runs all its cells, the kernel reads the front end's
+        # messages only after the last cell, long after it set the values they echo)
+        if any(_same_position(widget, new, v) for v in echoes):
+            if not _same_position(widget, new, _on_step_grid(widget, latest[0])):
+                restoring[0] = True  # a stale echo: show the kernel's current value again
+                try:
+                    widget.value = latest[0]
+                finally:
+                    restoring[0] = False
+            return None
+        echoes.clear()  # a person moved it: earlier kernel values can no longer echo
+        latest[0] = new
+        return handler(change)
+
+    widget.observe(observe, names="value")
+
+
+def _on_step_grid(widget, v):
+    """The value a front end shows for ``v``: rounded to the slider's step (None: no step)."""
+    step = getattr(widget, "step", None)
+    if isinstance(v, bool) or not isinstance(v, (int, float)) or not step:
+        return None
+    lo = getattr(widget, "min", 0) or 0
+    base = getattr(widget, "base", None)
+    if base is not None:  # a log slider steps in the exponent
+        if v <= 0:
+            return None
+        e = math.log(v, base)
+        return base ** (lo + round((e - lo) / step) * step)
+    return lo + round((v - lo) / step) * step
+
+
+def _same_position(widget, a, b) -> bool:
+    if a is None or b is None:
+        return False
+    step = widget.step
+    base = getattr(widget, "base", None)
+    if base is not None:
+        if a <= 0 or b <= 0:
+            return a == b
+        return abs(math.log(a, base) - math.log(b, base)) <= _ECHO_TOL * step
+    return abs(a - b) <= _ECHO_TOL * step
