@@ -12,7 +12,6 @@ from ..core.checks import finite_check
 from .layers import LayerInputError, describe_layer, is_quantizable
 from .running import (
     Data,
-    check_data,
     check_max_samples,
     check_model,
     first_input,
@@ -23,6 +22,7 @@ from .running import (
     run_with_hooks,
     submodule,
 )
+from .sources import data_source
 
 
 def quantizable_layers(model: nn.Module, data: Data | None = None) -> list[str]:
@@ -50,7 +50,9 @@ def quantizable_layers(model: nn.Module, data: Data | None = None) -> list[str]:
         if name not in order:
             order.append(name)
 
-    run_with_hooks(model, check_data(model, data, None), {m: record for m in targets}, pre=True)
+    for batch in data_source(model, data):
+        run_with_hooks(model, batch, {m: record for m in targets}, pre=True)
+        break  # the order of one batch
     return order
 
 
@@ -62,12 +64,13 @@ def capture_inputs(model: nn.Module, data: Data, layers: str | Iterable[str] | N
     ----------
     model : the user's ``nn.Module`` (left bit-identical: parameters, buffers, training
         flags and hooks)
-    data : a tensor (``model(data)``), a tuple / list (``model(*data)``) or a dict
-        (``model(**data)``)
+    data : a tensor (``model(data)``), a tuple / list (``model(*data)``), a dict
+        (``model(**data)``), a numpy array, or a ``DataLoader`` / iterable of such batches
+        (read batch by batch; the inputs of all batches are joined along axis 0)
     layers : None for every quantizable layer (``nn.Linear``, ``nn.Conv1d/2d/3d``), or names
         from ``model.named_modules()`` (any module type; a single name may be given as a str)
-    max_samples : keep only the first that many items along axis 0 of every data tensor
-        (before the forward; so a layer called k times holds k * max_samples rows)
+    max_samples : read only the first that many samples (axis 0 of every data tensor, across
+        batches; before the forward, so a layer called k times holds k * max_samples rows)
 
     Returns a dict from qualified name to a detached copy of the layer's first positional
     input, in execution order. Layers that did not run are left out (an error if named in
@@ -86,7 +89,7 @@ def capture_inputs(model: nn.Module, data: Data, layers: str | Iterable[str] | N
     check_model(model)
     max_samples = check_max_samples(max_samples)
     targets = resolve_layers(model, layers)
-    data = check_data(model, data, max_samples)
+    source = data_source(model, data, max_samples)
     names = names_by_id(model)
     calls: dict[str, list[torch.Tensor]] = {}
 
@@ -97,7 +100,8 @@ def capture_inputs(model: nn.Module, data: Data, layers: str | Iterable[str] | N
             finite_check(x, f"the input of layer {name!r} ({describe_layer(module)})", LayerInputError)
         calls.setdefault(name, []).append(x.detach().clone())
 
-    run_with_hooks(model, data, {m: grab for m in targets}, pre=True)
+    for batch in source:
+        run_with_hooks(model, batch, {m: grab for m in targets}, pre=True)
     require_called(targets, names, calls, explicit=layers is not None)
     return {name: _join(name, tensors, submodule(model, name)) for name, tensors in calls.items()}
 

@@ -14,41 +14,27 @@ from ..core.grid import UniformGrid, grid_params
 from ..core.metrics import ErrorStats, error_stats
 from ..core.rounding import quantize
 from ..core.setting import LayerSetting
-from .layers import (
-    BASE_FORWARDS,
-    LayerInputError,
-    check_layer,
-    check_same_math,
-    check_tensor,
-    describe_layer,
-    is_quantizable,
-    layer_forward,
-    layer_output,
-)
-from .running import (
-    Data,
-    available_layers,
-    call_metric,
-    check_data,
-    check_model,
-    first_input,
-    flat_output,
-    names_by_id,
-    require_called,
-    run_with_hooks,
-)
+from .entries import Entry, find_entries
+from .layers import LayerInputError, check_layer, check_tensor, describe_layer, layer_output
+from .outputs import OutputComparison, call_metric, check_output_fn, float_parts
+from .running import check_model, first_input, names_by_id, run_with_hooks
+from .sources import Data, data_source
 
 
 def layer_error(
     layer: nn.Module,
-    inputs: torch.Tensor,
+    inputs,
     weight_grid: UniformGrid | None = None,
     input_grid: UniformGrid | None = None,
+    *,
+    max_samples: int | None = None,
 ) -> ErrorStats:
     """How much quantizing the weights and / or the inputs perturbs ``layer``'s output.
 
     Compares :func:`layer_output` in float with :func:`layer_output` on the given grids,
-    functionally, without calling or changing the layer.
+    functionally, without calling or changing the layer. ``inputs``: a tensor, a numpy array,
+    or an iterable of them (a ``DataLoader``), streamed batch by batch (float64 sums);
+    ``max_samples`` caps the samples read.
 
     >>> import torch
     >>> from torch import nn
@@ -61,9 +47,19 @@ def layer_error(
     True
     """
     check_layer(layer, "layer")
-    x = check_tensor(inputs, "inputs")
-    ref = layer_output(layer, x)
-    return error_stats(ref, layer_output(layer, x, weight_grid, input_grid))
+    if isinstance(inputs, torch.Tensor):
+        x = check_tensor(inputs, "inputs")
+        if max_samples is None or x.dim() == 0:
+            return error_stats(layer_output(layer, x), layer_output(layer, x, weight_grid, input_grid))
+    source = data_source(None, inputs, max_samples, name="inputs")
+    sums = OutputComparison()
+    for batch in source:
+        if not isinstance(batch, torch.Tensor):
+            raise TypeError(f"inputs must be a tensor or an iterable of tensors, got a batch of "
+                            f"type {type(batch).__name__}")
+        x = check_tensor(batch, "inputs")
+        sums.add([layer_output(layer, x)], [layer_output(layer, x, weight_grid, input_grid)])
+    return sums.stats()
 
 
 @dataclass(frozen=True)
@@ -107,14 +103,25 @@ def model_error(
     *,
     metric: Callable[[Any, Any], float] | None = None,
     target: Any = None,
+    output: Callable[[Any], Any] | None = None,
+    max_samples: int | None = None,
 ) -> ModelError:
-    """Run ``model`` on ``data`` in float and with the layers in ``settings`` quantized.
+    """Run ``model`` on ``data`` in float and with the entries in ``settings`` quantized.
 
-    ``settings`` maps layer names (from ``model.named_modules()``) to :class:`LayerSetting`.
-    During the quantized pass a forward hook on each of those layers replaces its output by
-    :func:`layer_output` with its weights and / or inputs on the given grids; the hooks are
-    removed afterwards and the model is left bit-identical. ``metric(output, target) ->
-    float`` (for example accuracy) is evaluated on both outputs when given.
+    ``settings`` maps entry names (:func:`qwidgets.model.entries.find_entries`: layer paths,
+    ``<attention>.in_proj``, ``<rnn>.weight_ih_l0``, embedding paths) to
+    :class:`LayerSetting`. The quantized pass substitutes each entry's fake-quantized weight
+    for its parameter (everywhere the tensor is used, tied weights included) and quantizes
+    the inputs of layers with an input grid by a forward pre-hook; the model's parameters are
+    never written, hooks are removed and the model is left bit-identical.
+
+    ``data``: one batch (tensor, tuple / list of args, dict of kwargs, numpy array) or an
+    iterable of batches (a ``DataLoader``), streamed: both passes run batch by batch and only
+    float64 sums are kept. ``max_samples`` caps the samples read. ``output``: a function from
+    the model's output to what is compared (default: every floating-point tensor of the
+    output, nested tuples / lists / dicts / dataclasses included). ``metric(output, target) ->
+    float`` is evaluated on both outputs; with many batches ``target`` is an iterable of
+    per-batch targets and the metric is averaged, weighted by batch size.
 
     >>> import torch
     >>> from torch import nn
@@ -128,21 +135,49 @@ def model_error(
     """
     if metric is not None and not callable(metric):
         raise TypeError(f"metric must be a callable metric(output, target) -> float, got {type(metric).__name__}")
-    ref = forward_float(model, data)
-    out, applied = _forward_quantized(model, data, settings)
-    ref_t, out_t = flat_output(ref, "float"), flat_output(out, "quantized")
-    stats = error_stats(ref_t, out_t)
-    mf = mq = None
-    if metric is not None:
-        mf, mq = call_metric(metric, ref, target), call_metric(metric, out, target)
-    return ModelError(stats, mf, mq, applied)
+    check_model(model)
+    output = check_output_fn(output)
+    chosen = check_settings(model, settings)
+    source = data_source(model, data, max_samples)
+    targets = None if (source.single or metric is None) else iter(_check_targets(target))
+    sums, applied = OutputComparison(), []
+    mf = mq = 0.0
+    n_metric = 0
+    for batch in source:
+        ref = run_with_hooks(model, batch, {}, pre=False)
+        out, ran = quantized_call(model, batch, chosen)
+        applied.extend(n for n in ran if n not in applied)
+        sums.add(float_parts(ref, "float", output), float_parts(out, "quantized", output))
+        if metric is not None:
+            t = target if targets is None else next(targets, None)
+            w = 1 if source.single else _samples(batch)
+            mf += w * call_metric(metric, ref, t)
+            mq += w * call_metric(metric, out, t)
+            n_metric += w
+    if chosen:
+        sums.check_varies()
+    metric_float = None if metric is None else mf / n_metric
+    metric_q = None if metric is None else mq / n_metric
+    return ModelError(sums.stats(), metric_float, metric_q, tuple(applied))
+
+
+def _samples(batch) -> int:
+    from .sources import batch_size
+
+    return batch_size(batch)
+
+
+def _check_targets(target):
+    from collections.abc import Iterable
+
+    if not isinstance(target, Iterable) or isinstance(target, torch.Tensor):
+        raise TypeError("with data given as many batches, target must be an iterable of per-batch "
+                        f"targets (e.g. the labels of each batch), got {type(target).__name__}")
+    return target
 
 
 def forward_float(model: nn.Module, data: Data) -> Any:
-    """The model's output on ``data`` under ``no_grad`` and ``eval()`` (model left untouched).
-
-    The float reference that :func:`model_error` compares with; callers that evaluate many
-    settings on the same data (the scan) compute it once.
+    """The model's output on one batch ``data`` under ``no_grad`` and ``eval()`` (model untouched).
 
     >>> import torch
     >>> from torch import nn
@@ -150,11 +185,15 @@ def forward_float(model: nn.Module, data: Data) -> Any:
     torch.Size([3, 1])
     """
     check_model(model)
-    return run_with_hooks(model, check_data(model, data, None), {}, pre=False)
+    source = data_source(model, data)
+    if not source.single:
+        raise TypeError("forward_float takes one batch (a tensor, tuple or dict); iterate the batches")
+    return run_with_hooks(model, next(iter(source)), {}, pre=False)
 
 
 def forward_quantized(model: nn.Module, data: Data, settings: Mapping[str, LayerSetting]) -> Any:
-    """The model's output on ``data`` with the layers in ``settings`` quantized (see model_error).
+    """The model's output on one batch ``data`` with the entries in ``settings`` quantized
+    (see :func:`model_error`).
 
     >>> import torch
     >>> from torch import nn
@@ -163,58 +202,76 @@ def forward_quantized(model: nn.Module, data: Data, settings: Mapping[str, Layer
     >>> forward_quantized(lin, torch.full((1, 2), 0.4), s).abs().item()
     0.0
     """
-    return _forward_quantized(model, data, settings)[0]
-
-
-def _forward_quantized(model, data, settings):
     check_model(model)
-    settings = _check_settings(model, settings)
-    data = check_data(model, data, None)
+    chosen = check_settings(model, settings)
+    source = data_source(model, data)
+    if not source.single:
+        raise TypeError("forward_quantized takes one batch (a tensor, tuple or dict); iterate the batches")
+    return quantized_call(model, next(iter(source)), chosen)[0]
+
+
+def quantized_call(model: nn.Module, batch, settings: Mapping[Entry, LayerSetting]):
+    """One forward of ``batch`` with each entry's weight / input quantized; (output, names run).
+
+    Weights: the fake-quantized tensor is substituted for the parameter for this call only
+    (tied uses included). Inputs: a forward pre-hook quantizes the owner layer's first input.
+    """
     names = names_by_id(model)
-    weights = {}
+    params = {}
     with torch.no_grad():
-        for name, (module, s) in settings.items():
+        for e, s in settings.items():
             if s.weight is not None:
-                grid_params(module.weight, s.weight)  # per-channel size check, clear message
-                weights[name] = quantize(module.weight.detach(), s.weight)
-    applied: list[str] = []
+                w = e.parameter(model).detach()
+                grid_params(w, s.weight)  # per-channel size check, clear message
+                params[e.param] = quantize(w, s.weight)
+    by_module = {}
+    for e, s in settings.items():
+        if s.input is not None:
+            by_module[id(model.get_submodule(e.module) if e.module else model)] = (e, s.input)
+    ran: list[str] = []
 
-    def replace(module, args, kwargs, output):
-        name = names[id(module)]
-        setting = settings[name][1]
-        x = first_input(module, name, args, kwargs)
+    def pre(module, args, kwargs):
+        e, grid = by_module[id(module)]
+        x = first_input(module, names[id(module)], args, kwargs)
         if x.is_floating_point():
-            finite_check(x, f"the input of layer {name!r} ({describe_layer(module)})", LayerInputError)
-        if type(module).forward not in BASE_FORWARDS:
-            check_same_math(module, name, x, output)
-        if setting.input is not None:
-            x = quantize(x, setting.input)
-        w = weights.get(name, module.weight.detach())
-        if name not in applied:
-            applied.append(name)
-        return layer_forward(module, x, w)
+            finite_check(x, f"the input of layer {e.name!r} ({describe_layer(module)})", LayerInputError)
+        if e.name not in ran:
+            ran.append(e.name)
+        if args:
+            return (quantize(x, grid),) + tuple(args[1:]), kwargs
+        key = "input" if "input" in kwargs else next(iter(kwargs))
+        return args, {**kwargs, key: quantize(x, grid)}
 
-    out = run_with_hooks(model, data, {m: replace for m, _ in settings.values()}, pre=False)
-    require_called([m for m, _ in settings.values()], names, {n: 1 for n in applied}, explicit=True)
-    return out, tuple(applied)
+    hooks = {}
+    for e, _ in by_module.values():
+        hooks[model.get_submodule(e.module) if e.module else model] = pre
+    out = run_with_hooks(model, batch, hooks, pre=True, params=params)
+    need = [e for e, _ in by_module.values()]
+    missing = [e.name for e in need if e.name not in ran]
+    if missing:
+        raise ValueError(f"layer(s) {missing} did not run during the forward pass on this data, so "
+                         "their inputs cannot be quantized (a module whose weight is used directly "
+                         "by its parent never runs as a layer)")
+    order = [n for n in ran] + [e.name for e in settings if e.name not in ran]
+    return out, tuple(order)
 
 
-def _check_settings(model: nn.Module, settings) -> dict:
+def check_settings(model: nn.Module, settings) -> dict:
+    """``settings`` (entry name -> LayerSetting) checked and keyed by :class:`Entry`."""
     if not isinstance(settings, Mapping):
-        raise TypeError(f"settings must be a mapping from layer name to LayerSetting, got {type(settings).__name__}")
-    modules = dict(model.named_modules())
+        raise TypeError(f"settings must be a mapping from entry name to LayerSetting, got {type(settings).__name__}")
+    entries = {e.name: e for e in find_entries(model)}
     out = {}
     for name, s in settings.items():
-        if not isinstance(name, str) or name not in modules:
-            raise ValueError(f"settings names layer {name!r}, which is not in the model; available: {available_layers(model)}")
+        if not isinstance(name, str) or name not in entries:
+            raise ValueError(f"settings names layer {name!r}, which is not in the model; available: "
+                             f"quantizable entries {list(entries)}")
         if not isinstance(s, LayerSetting):
             raise TypeError(f"settings[{name!r}] must be a LayerSetting, got {type(s).__name__}")
-        module = modules[name]
-        if not is_quantizable(module):
-            raise TypeError(
-                f"settings[{name!r}] is for a {type(module).__name__}; qwidgets evaluates only "
-                "nn.Linear and nn.Conv1d/2d/3d (and subclasses) functionally"
-            )
+        e = entries[name]
+        if s.input is not None and not e.runs_as_module:
+            raise ValueError(f"settings[{name!r}] has an input grid, but {name!r} is a weight-only "
+                             f"entry ({e.type_name}): its input cannot be quantized separately")
         if not s.is_empty:
-            out[name] = (module, s)
+            out[e] = s
     return out

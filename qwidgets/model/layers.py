@@ -2,8 +2,11 @@
 
 Conventions (one place, used by the scan, the explorer and the planner):
 
-- quantizable layers are ``nn.Linear`` and ``nn.Conv1d/2d/3d`` and their subclasses;
-- weights are quantized per output channel along axis ``WEIGHT_AXIS = 0``;
+- layers that run as modules with a tensor input are ``nn.Linear``, ``nn.Conv1d/2d/3d`` and
+  ``nn.ConvTranspose1d/2d/3d`` and their subclasses (other weights, attention projections,
+  recurrent matrices and embeddings, are entries of :mod:`qwidgets.model.entries`);
+- weights are quantized per output channel: axis 0 (``WEIGHT_AXIS``), except transposed
+  convolutions, whose weight is ``(in, out / groups, *kernel)``: axis 1 (:func:`weight_axis`);
 - a layer's output under quantization is computed functionally (``layer_output``) from its
   weight, bias and hyper-parameters, never by changing the layer.
 """
@@ -22,7 +25,10 @@ from ..core.grid import UniformGrid, grid_params
 from ..core.ranges import fit_range
 from ..core.rounding import quantize
 
-QUANTIZABLE_TYPES: tuple[type[nn.Module], ...] = (nn.Linear, nn.Conv1d, nn.Conv2d, nn.Conv3d)
+QUANTIZABLE_TYPES: tuple[type[nn.Module], ...] = (
+    nn.Linear, nn.Conv1d, nn.Conv2d, nn.Conv3d,
+    nn.ConvTranspose1d, nn.ConvTranspose2d, nn.ConvTranspose3d,
+)
 
 
 WEIGHT_AXIS = 0  # weights of Linear / Conv layers are quantized per output channel (axis 0)
@@ -31,12 +37,26 @@ WEIGHT_AXIS = 0  # weights of Linear / Conv layers are quantized per output chan
 _CONV = {nn.Conv1d: F.conv1d, nn.Conv2d: F.conv2d, nn.Conv3d: F.conv3d}
 
 
+_CONV_T = {nn.ConvTranspose1d: F.conv_transpose1d, nn.ConvTranspose2d: F.conv_transpose2d,
+           nn.ConvTranspose3d: F.conv_transpose3d}
+
+
+def weight_axis(layer: nn.Module) -> int:
+    """The output-channel axis of a layer's weight: 1 for transposed convolutions, else 0.
+
+    >>> from torch import nn
+    >>> weight_axis(nn.Conv2d(2, 4, 3)), weight_axis(nn.ConvTranspose2d(2, 4, 3))
+    (0, 1)
+    """
+    return 1 if isinstance(layer, tuple(_CONV_T)) else WEIGHT_AXIS
+
+
 class LayerInputError(ValueError):
     """A problem found by one of our hooks inside the forward (reported as it is, not wrapped)."""
 
 
 def is_quantizable(module: nn.Module) -> bool:
-    """True for ``nn.Linear`` and ``nn.Conv1d/2d/3d`` (and subclasses).
+    """True for ``nn.Linear``, ``nn.Conv1d/2d/3d``, ``nn.ConvTranspose1d/2d/3d`` (and subclasses).
 
     >>> from torch import nn
     >>> is_quantizable(nn.Conv2d(1, 2, 3)), is_quantizable(nn.ReLU())
@@ -47,7 +67,7 @@ def is_quantizable(module: nn.Module) -> bool:
 
 def fit_weight(layer: nn.Module, bits: int, method: str = "mse", *, per_channel: bool = True,
                **options) -> UniformGrid:
-    """Fit a grid to a Linear / Conv layer's weight (per output channel, axis 0, by default).
+    """Fit a grid to a layer's weight (per output channel, :func:`weight_axis`, by default).
 
     ``options`` go to :func:`qwidgets.fit_range` (``symmetric``, ``style``, ``percentile``, ...).
 
@@ -60,7 +80,7 @@ def fit_weight(layer: nn.Module, bits: int, method: str = "mse", *, per_channel:
     """
     check_layer(layer, "layer")
     return fit_range(layer.weight.detach(), bits, method,
-                     axis=WEIGHT_AXIS if per_channel else None, **options)
+                     axis=weight_axis(layer) if per_channel else None, **options)
 
 
 def layer_output(
@@ -97,12 +117,16 @@ def layer_output(
         return layer_forward(layer, x, w)
 
 
-def layer_forward(layer: nn.Module, x: torch.Tensor, w: torch.Tensor, *, use_bias: bool = True
-                ) -> torch.Tensor:
+def layer_forward(layer: nn.Module, x: torch.Tensor, w: torch.Tensor, *, use_bias: bool = True,
+                  output_padding=None) -> torch.Tensor:
     b = None if (layer.bias is None or not use_bias) else layer.bias.detach()
     try:
         if isinstance(layer, nn.Linear):
             return F.linear(x, w, b)
+        conv_t = next((f for t, f in _CONV_T.items() if isinstance(layer, t)), None)
+        if conv_t is not None:
+            op = layer.output_padding if output_padding is None else output_padding
+            return conv_t(x, w, b, layer.stride, layer.padding, op, layer.groups, layer.dilation)
         conv = next(f for t, f in _CONV.items() if isinstance(layer, t))
         padding = layer.padding
         if layer.padding_mode != "zeros":
@@ -132,11 +156,13 @@ def layer_macs(layer: nn.Module, input_shape: Iterable[int]) -> int:
     out = layer_forward(layer, x, torch.empty(w.shape, device="meta", dtype=w.dtype), use_bias=False)
     if isinstance(layer, nn.Linear):
         return out.numel() * layer.in_features
+    if isinstance(layer, tuple(_CONV_T)):  # every input value meets (out / groups) * kernel weights
+        return x.numel() * (layer.out_channels // layer.groups) * math.prod(layer.kernel_size)
     per_output = (layer.in_channels // layer.groups) * math.prod(layer.kernel_size)
     return out.numel() * per_output
 
 
-BASE_FORWARDS = {nn.Linear.forward, nn.Conv1d.forward, nn.Conv2d.forward, nn.Conv3d.forward}
+BASE_FORWARDS = {t.forward for t in QUANTIZABLE_TYPES}
 
 
 def check_same_math(module, name, x, output) -> None:
@@ -157,8 +183,8 @@ def check_layer(layer, name: str) -> None:
         raise TypeError(f"{name} must be a torch.nn.Module, got {type(layer).__name__}")
     if not is_quantizable(layer):
         raise TypeError(
-            f"{name} is a {type(layer).__name__}; qwidgets evaluates only nn.Linear and "
-            "nn.Conv1d/2d/3d (and subclasses) functionally"
+            f"{name} is a {type(layer).__name__}; qwidgets evaluates only nn.Linear, "
+            "nn.Conv1d/2d/3d and nn.ConvTranspose1d/2d/3d (and subclasses) functionally"
         )
 
 

@@ -9,21 +9,23 @@ block, also when the forward raises.
 from __future__ import annotations
 
 from collections.abc import Iterable, Mapping
-from numbers import Integral, Real
-from typing import Any
 
 import torch
 from torch import nn
 
 from ..core.checks import finite_check
 from .layers import LayerInputError, is_quantizable
+from .outputs import call_metric, flat_output, iter_tensors  # noqa: F401  (public here too)
+from .sources import Data, call_model, check_max_samples  # noqa: F401
 
-# what a model is run on: model(tensor), model(*tuple), model(**dict)
-Data = torch.Tensor | tuple | list | Mapping[str, Any]
 
+def run_with_hooks(model: nn.Module, data, hooks: dict, *, pre: bool, params: dict | None = None):
+    """One forward pass under no_grad and eval(), with temporary hooks; model restored after.
 
-def run_with_hooks(model: nn.Module, data, hooks: dict, *, pre: bool):
-    """One forward pass under no_grad and eval(), with temporary hooks; model restored after."""
+    ``params`` (qualified parameter name -> tensor) are substituted for the model's own for
+    this pass only (``torch.func.functional_call``, tied parameters kept tied); the model's
+    parameters are never written.
+    """
     flags = [(m, m.training) for m in model.modules()]
     handles = []
     try:
@@ -35,11 +37,13 @@ def run_with_hooks(model: nn.Module, data, hooks: dict, *, pre: bool):
         model.eval()
         with torch.no_grad():
             try:
-                if isinstance(data, dict):
-                    return model(**data)
-                if isinstance(data, tuple):
-                    return model(*data)
-                return model(data)
+                if params:
+                    from torch.func import functional_call
+
+                    args, kwargs = ((), data) if isinstance(data, dict) else (
+                        (data if isinstance(data, tuple) else (data,)), {})
+                    return functional_call(model, params, args, kwargs, tie_weights=True, strict=False)
+                return call_model(model, data)
             except LayerInputError:
                 raise
             except Exception as e:
@@ -75,45 +79,13 @@ def require_called(targets, names, seen, *, explicit: bool) -> None:
         )
 
 
-def flat_output(out, which: str) -> torch.Tensor:
-    parts = [t.detach().reshape(-1).double() for t in iter_tensors(out) if t.is_floating_point()]
-    if not parts:
-        raise ValueError(f"the model's {which} output holds no floating-point tensor to compare "
-                         f"(got {type(out).__name__})")
-    return parts[0] if len(parts) == 1 else torch.cat(parts)
 
-
-def iter_tensors(obj):
-    if isinstance(obj, torch.Tensor):
-        yield obj
-    elif isinstance(obj, Mapping):
-        for v in obj.values():
-            yield from iter_tensors(v)
-    elif isinstance(obj, (list, tuple)):
-        for v in obj:
-            yield from iter_tensors(v)
-
-
-def call_metric(metric, output, target) -> float:
-    value = metric(output, target)
-    if isinstance(value, torch.Tensor) and value.numel() == 1:
-        value = value.item()
-    if isinstance(value, bool) or not isinstance(value, Real):
-        raise TypeError(f"metric(output, target) must return a float, got {type(value).__name__}")
-    return float(value)
 
 
 def check_model(model) -> None:
     if not isinstance(model, nn.Module):
         raise TypeError(f"model must be a torch.nn.Module, got {type(model).__name__}")
 
-
-def check_max_samples(n):
-    if n is None:
-        return None
-    if isinstance(n, bool) or not isinstance(n, Integral) or n < 1:
-        raise ValueError(f"max_samples must be None or an int >= 1, got {n!r}")
-    return int(n)
 
 
 def check_data(model: nn.Module, data, max_samples):

@@ -10,44 +10,66 @@ from torch import nn
 
 from ..core.grid import UniformGrid
 from ..core.rounding import quantize, to_codes
-from ..model.layers import is_quantizable
+from ..model.entries import find_entries, weight_digest
 from .plan import Plan, model_fingerprint
 
 
-def match_plan(model: nn.Module, plan: Plan, strict: bool) -> tuple[dict, list[str]]:
-    """Planned layers found in ``model`` (name -> module) and the skipped ones, with reasons."""
+def match_plan(model: nn.Module, plan: Plan, strict: bool, allow_other_weights: bool = False
+               ) -> tuple[dict, list[str]]:
+    """Planned entries found in ``model`` (name -> :class:`Entry`) and the skipped ones, with reasons.
+
+    ``strict=True`` raises on any planned entry missing from the model (or of another shape)
+    and on a model with other parameter names or shapes; ``strict=False`` skips those. Unless
+    ``allow_other_weights``, a planned entry whose weight values differ from those the plan was
+    made for (its digest) is refused: the plan belongs to another checkpoint.
+    """
     if not isinstance(model, nn.Module):
         raise TypeError(f"model must be a torch.nn.Module, got {type(model).__name__}")
     if not isinstance(plan, Plan):
         raise TypeError(f"plan must be a Plan, got {type(plan).__name__}")
     if not isinstance(strict, bool):
         raise TypeError(f"strict must be True or False, got {strict!r}")
+    if not isinstance(allow_other_weights, bool):
+        raise TypeError(f"allow_other_weights must be True or False, got {allow_other_weights!r}")
 
+    entries = {e.name: e for e in find_entries(model)}
     modules = dict(model.named_modules())
     found, skipped = {}, []
     for name in plan.layers:
-        m = modules.get(name)
-        if m is None:
-            skipped.append(f"{name!r} (not in the model)")
-        elif not is_quantizable(m):
-            skipped.append(f"{name!r} (a {type(m).__name__}, not a Linear / Conv layer)")
-        elif tuple(m.weight.shape) != plan.weight_shapes[name]:
-            skipped.append(f"{name!r} (weight shape {tuple(m.weight.shape)} in the model, "
+        e = entries.get(name)
+        if e is None:
+            m = modules.get(name)
+            why = "not in the model" if m is None else f"a {type(m).__name__}, not a quantizable weight"
+            skipped.append(f"{name!r} ({why})")
+        elif e.shape != plan.weight_shapes[name]:
+            skipped.append(f"{name!r} (weight shape {e.shape} in the model, "
                            f"{plan.weight_shapes[name]} in the plan)")
+        elif plan.layers[name].input is not None and not e.runs_as_module:
+            skipped.append(f"{name!r} (an input grid for a weight-only entry, {e.type_name})")
         else:
-            found[name] = m
+            found[name] = e
+    if strict and skipped:
+        first = ", ".join(skipped[:3]) + (", ..." if len(skipped) > 3 else "")
+        raise ValueError(f"the plan was made for another model ({len(skipped)} planned "
+                         f"entr{'y is' if len(skipped) == 1 else 'ies are'} missing from this model "
+                         f"or do not match: {first}). Pass strict=False to "
+                         "apply the entries that match by name and shape")
     if strict and model_fingerprint(model) != plan.fingerprint:
-        if skipped:
-            first = ", ".join(skipped[:3]) + (", ..." if len(skipped) > 3 else "")
-            detail = f"first mismatching layers: {first}"
-        else:
-            detail = ("every planned layer matches by name and shape, but other parameters of the "
-                      "model differ (added, removed, renamed or reshaped)")
         raise ValueError(f"the plan was made for another model (fingerprint {plan.fingerprint[:12]}..., "
-                         f"this model {model_fingerprint(model)[:12]}...); {detail}. Pass strict=False "
-                         "to apply the layers that match by name and shape")
+                         f"this model {model_fingerprint(model)[:12]}...); every planned layer matches "
+                         "by name and shape, but other parameters of the model differ (added, removed, "
+                         "renamed or reshaped). Pass strict=False to apply the layers that match")
     if not found:
         raise ValueError(f"no planned layer matches the model by name and shape: {', '.join(skipped)}")
+    if not allow_other_weights:
+        for name, e in found.items():
+            want = plan.weight_digest(name)
+            if want is not None and weight_digest(e.parameter(model)) != want:
+                raise ValueError(
+                    f"the weights of planned entry {name!r} differ from those the plan was made for "
+                    "(another checkpoint of the same architecture?); the plan's grids were fitted "
+                    "to other values. Scan this model again, or pass allow_other_weights=True to "
+                    "apply the plan anyway")
     return found, skipped
 
 
@@ -63,15 +85,18 @@ class _QuantizeInput:
         return (quantize(args[0], self.grid),) + tuple(args[1:])
 
 
-def apply_plan(model: nn.Module, plan: Plan, *, strict: bool = True) -> nn.Module:
-    """A deep copy of ``model`` with the plan's layers fake-quantized; ``model`` is untouched.
+def apply_plan(model: nn.Module, plan: Plan, *, strict: bool = True,
+               allow_other_weights: bool = False) -> nn.Module:
+    """A deep copy of ``model`` with the plan's entries fake-quantized; ``model`` is untouched.
 
-    In the copy each planned layer's weight holds its fake-quantized values and, where the
-    plan has an input grid, a forward pre-hook quantizes the layer's input on every call.
-    ``strict=True`` refuses a plan made for a model with other parameter names or shapes
-    (naming the first mismatching layers); ``strict=False`` applies the layers that match by
-    name and weight shape, warns about the rest and lists them in the copy's
-    ``qwidgets_skipped`` attribute (``qwidgets_applied`` lists the applied ones).
+    In the copy each planned entry's weight holds its fake-quantized values (a tied tensor is
+    quantized everywhere it is used) and, where the plan has an input grid, a forward pre-hook
+    quantizes the layer's input on every call. ``strict=True`` refuses a plan with an entry
+    missing from the model or made for a model with other parameter names or shapes (naming
+    the first mismatching entries); ``strict=False`` applies the entries that match by name and
+    weight shape, warns about the rest and lists them in the copy's ``qwidgets_skipped``
+    attribute (``qwidgets_applied`` lists the applied ones). A model whose planned weights
+    differ from those the plan was made for is refused unless ``allow_other_weights=True``.
 
     >>> import torch
     >>> from torch import nn
@@ -84,16 +109,17 @@ def apply_plan(model: nn.Module, plan: Plan, *, strict: bool = True) -> nn.Modul
     >>> set((q.weight.detach() / 0.5).flatten().tolist()) <= {-2.0, -1.0, 0.0, 1.0}, q is lin
     (True, False)
     """
-    found, skipped = match_plan(model, plan, strict)
+    found, skipped = match_plan(model, plan, strict, allow_other_weights)
     new = copy.deepcopy(model)
-    new_modules = dict(new.named_modules())
     with torch.no_grad():
-        for name in found:
-            layer, setting = new_modules[name], plan.layers[name]
+        for name, e in found.items():
+            setting = plan.layers[name]
             if setting.weight is not None:
-                layer.weight.copy_(quantize(layer.weight.detach(), setting.weight))
+                w = e.parameter(new)  # the copy keeps tied parameters tied
+                w.copy_(quantize(w.detach(), setting.weight))
             if setting.input is not None:
-                layer.register_forward_pre_hook(_QuantizeInput(setting.input))
+                owner = new.get_submodule(e.module) if e.module else new
+                owner.register_forward_pre_hook(_QuantizeInput(setting.input))
     if skipped:
         warnings.warn(f"apply_plan skipped {len(skipped)} planned layer(s): {', '.join(skipped)}",
                       stacklevel=2)
@@ -110,8 +136,12 @@ def _code_dtype(grid: UniformGrid) -> torch.dtype:
     return torch.int64  # not reached for bits <= 16
 
 
-def export_codes(model: nn.Module, plan: Plan, *, strict: bool = True) -> dict:
-    """Integer weight codes of each planned layer, with what is needed to decode them.
+def export_codes(model: nn.Module, plan: Plan, *, strict: bool = True,
+                 allow_other_weights: bool = False) -> dict:
+    """Integer weight codes of each planned entry, with what is needed to decode them.
+
+    One item per entry (a tied tensor once, under its entry's name; ``shared_with`` lists the
+    other places that use it). ``strict`` and ``allow_other_weights`` as in :func:`apply_plan`.
 
     Per layer: ``codes`` (smallest integer dtype holding the grid's range: int8 / uint8 up to
     8 bits, int16 up to 16 signed or 15 unsigned, else int32), ``scale`` and ``offset``
@@ -131,17 +161,18 @@ def export_codes(model: nn.Module, plan: Plan, *, strict: bool = True) -> dict:
     >>> out["codes"].dtype, out["bits"], out["zero_point"].tolist()
     (torch.int8, 4, 0)
     """
-    found, skipped = match_plan(model, plan, strict)
+    found, skipped = match_plan(model, plan, strict, allow_other_weights)
     out = {}
-    for name, layer in found.items():
+    for name, e in found.items():
         s = plan.layers[name]
         entry = {"codes": None, **_grid_fields(s.weight)} if s.weight is not None else {
             "codes": None, "scale": None, "offset": None, "zero_point": None, "axis": None,
             "bits": None, "signed": None}
         if s.weight is not None:
-            codes = to_codes(layer.weight.detach(), s.weight)
+            codes = to_codes(e.parameter(model).detach(), s.weight)
             entry["codes"] = codes.to(_code_dtype(s.weight))
         entry["input"] = None if s.input is None else _grid_fields(s.input)
+        entry["shared_with"] = list(e.shared_with)
         out[name] = entry
     if skipped:
         warnings.warn(f"export_codes skipped {len(skipped)} planned layer(s): {', '.join(skipped)}",

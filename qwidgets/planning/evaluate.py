@@ -8,9 +8,10 @@ from dataclasses import dataclass
 
 from torch import nn
 
-from ..core.metrics import ErrorStats, error_stats
-from ..model.forward import forward_float
-from ..model.running import call_metric, flat_output
+from ..core.metrics import ErrorStats
+from ..model.outputs import OutputComparison, call_metric, check_output_fn, float_parts
+from ..model.running import run_with_hooks
+from ..model.sources import batch_size, data_source
 from .apply import apply_plan
 from .plan import CAUTION, Plan
 
@@ -36,6 +37,7 @@ class PlanReport:
     float_bops: int
     skipped: tuple = ()
     caution: str = CAUTION
+    model_kib: float | None = None
 
     @property
     def metric_change(self) -> float | None:
@@ -53,7 +55,8 @@ class PlanReport:
         lines = [
             f"model-output SQNR: measured {self.measured_sqnr_db:.2f} dB, predicted {pred}",
             f"weights: {self.weight_kib:.2f} KiB (float32: {self.float_weight_kib:.2f} KiB), "
-            f"{self.mean_weight_bits:.2f} mean bits",
+            f"{self.mean_weight_bits:.2f} mean bits"
+            + ("" if self.model_kib is None else f"; whole model {self.model_kib:.2f} KiB"),
             f"BOPs per sample: {self.bops:,} (float32: {self.float_bops:,})",
         ]
         if self.metric_float is not None:
@@ -65,11 +68,17 @@ class PlanReport:
 
 
 def evaluate_plan(model: nn.Module, data, plan: Plan, *, metric: Callable | None = None,
-                  target=None, strict: bool = True) -> PlanReport:
+                  target=None, strict: bool = True, output: Callable | None = None,
+                  max_samples: int | None = None, allow_other_weights: bool = False) -> PlanReport:
     """Run the float model and :func:`apply_plan`'s model on ``data`` and compare.
 
-    ``metric(output, target) -> float`` (for example accuracy) is computed for both when given.
-    ``model`` is untouched.
+    ``data``: one batch (tensor, tuple / list of args, dict of kwargs, numpy array) or a
+    ``DataLoader`` / iterable of batches, streamed (float64 sums per batch); ``max_samples``
+    caps the samples read. ``output``: a function from the model's output to what is compared
+    (default: every floating-point tensor of the output). ``metric(output, target) -> float``
+    (for example accuracy) is computed for both when given; with many batches ``target`` is an
+    iterable of per-batch targets and the metric is averaged, weighted by batch size.
+    ``strict`` and ``allow_other_weights`` as in :func:`apply_plan`. ``model`` is untouched.
 
     >>> import torch
     >>> from torch import nn
@@ -85,15 +94,28 @@ def evaluate_plan(model: nn.Module, data, plan: Plan, *, metric: Callable | None
 
     if metric is not None and not callable(metric):
         raise TypeError(f"metric must be a callable metric(output, target) -> float, got {type(metric).__name__}")
+    output = check_output_fn(output)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # the skipped layers are reported in the result
-        planned = apply_plan(model, plan, strict=strict)
-    ref = forward_float(model, data)
-    out = forward_float(planned, data)
-    stats = error_stats(flat_output(ref, "float"), flat_output(out, "planned"))
-    mf = mp = None
-    if metric is not None:
-        mf, mp = call_metric(metric, ref, target), call_metric(metric, out, target)
+        planned = apply_plan(model, plan, strict=strict, allow_other_weights=allow_other_weights)
+    source = data_source(model, data, max_samples)
+    targets = None if (source.single or metric is None) else iter(_per_batch_targets(target))
+    sums = OutputComparison()
+    mf = mp = 0.0
+    weight = 0
+    for batch in source:
+        ref = run_with_hooks(model, batch, {}, pre=False)
+        out = run_with_hooks(planned, batch, {}, pre=False)
+        sums.add(float_parts(ref, "float", output), float_parts(out, "planned", output))
+        if metric is not None:
+            t = target if targets is None else next(targets, None)
+            w = 1 if source.single else batch_size(batch)
+            mf += w * call_metric(metric, ref, t)
+            mp += w * call_metric(metric, out, t)
+            weight += w
+    sums.check_varies()
+    stats = sums.stats()
+    mf, mp = (None, None) if metric is None else (mf / weight, mp / weight)
     applied = set(planned.qwidgets_applied)
     sub = Plan({n: plan.layers[n] for n in plan.layers if n in applied},
                {n: plan.bits[n] for n in plan.layers if n in applied}, fingerprint=plan.fingerprint,
@@ -111,4 +133,16 @@ def evaluate_plan(model: nn.Module, data, plan: Plan, *, metric: Callable | None
         bops=sub.bops,
         float_bops=sub.float_bops,
         skipped=tuple(planned.qwidgets_skipped),
+        model_kib=plan.model_kib,
     )
+
+
+def _per_batch_targets(target):
+    from collections.abc import Iterable
+
+    import torch
+
+    if not isinstance(target, Iterable) or isinstance(target, torch.Tensor):
+        raise TypeError("with data given as many batches, target must be an iterable of per-batch "
+                        f"targets (e.g. the labels of each batch), got {type(target).__name__}")
+    return target

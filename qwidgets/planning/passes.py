@@ -8,14 +8,21 @@ import numpy as np
 import torch
 from torch import nn
 
-from ..core.metrics import error_stats
 from ..core.rounding import quantize as _quantize
 from ..core.setting import LayerSetting
 from ..model import forward, layers, running
+from ..model import outputs as model_outputs
 
 
 def layer_scope(layer: nn.Module, x: torch.Tensor, configs) -> np.ndarray:
-    """Layer-output SQNR of each (weight grid, input grid) config, from the captured input.
+    """Layer-output SQNR of each (weight grid, input grid) config, from the captured input."""
+    signal, noises = layer_scope_powers(layer, x, configs)
+    return np.array([db(signal, e) for e in noises])
+
+
+def layer_scope_powers(layer: nn.Module, x: torch.Tensor, configs) -> tuple[float, list[float]]:
+    """(output power, error power of each config) of ``layer`` on the input ``x`` (float64
+    sums, so the powers of several batches add up).
 
     Configs that quantize only the weights share one call of the layer: their weights (and
     the float weight, for the reference) are stacked along the output channels, so the input
@@ -26,15 +33,21 @@ def layer_scope(layer: nn.Module, x: torch.Tensor, configs) -> np.ndarray:
         if all(ig is None for _, ig in configs) and _stacks_weights(layer):
             weights = [w] + [w if wg is None else _quantize(w, wg) for wg, _ in configs]
             signal, errors = _stacked_weight_errors(layer, x, weights)
-            return np.array([db(signal, e) for e in errors[1:]])
+            return signal, errors[1:]
         ref = layers.layer_forward(layer, x, w)
         signal = _power(ref)
         out = []
         for wg, ig in configs:
             y = layers.layer_forward(layer, x if ig is None else _quantize(x, ig),
                                   w if wg is None else _quantize(w, wg))
-            out.append(db(signal, _power(y - ref)))
-        return np.array(out)
+            out.append(_power(y - ref))
+        return signal, out
+
+
+def weight_scope_powers(w: torch.Tensor, configs) -> tuple[float, list[float]]:
+    """(weight power, error power of each weight grid): the layer scope of a weight-only entry."""
+    with torch.no_grad():
+        return _power(w), [0.0 if wg is None else _power(_quantize(w, wg) - w) for wg, _ in configs]
 
 
 def _power(t: torch.Tensor) -> float:
@@ -49,6 +62,9 @@ _STACK_ELEMENTS = 1 << 24  # at most this many output values (64 MiB in float32)
 
 
 def _stacks_weights(layer: nn.Module) -> bool:
+    # transposed convolutions keep output channels on weight axis 1: not stacked along axis 0
+    if layers.weight_axis(layer) != 0:
+        return False
     return isinstance(layer, nn.Linear) or getattr(layer, "groups", 1) == 1
 
 
@@ -107,22 +123,43 @@ class _NotStackable(Exception):
     """The stacked model-scope pass does not apply to this layer; measure one config at a time."""
 
 
-def model_scope(model, data, name, layer, configs, ref) -> tuple[np.ndarray, str]:
-    ref_parts = [t for t in running.iter_tensors(ref) if t.is_floating_point()]
-    ref_flat = running.flat_output(ref, "float")
-    try:
-        return _model_scope_stacked(model, data, name, layer, configs, ref_parts, ref_flat), "stacked"
-    except _NotStackable:
-        pass
+def model_scope_noise(model, batch, entry, configs, ref_parts, *, stackable: bool, output=None
+                      ) -> tuple[list[float], str]:
+    """Model-output error power of each config on one batch, and how it was measured.
+
+    ``stackable`` entries (a layer run as a module, its weight used nowhere else) try one
+    stacked pass for all configs; otherwise, or when that does not apply, one pass per config
+    with the entry's quantized weight substituted for its parameter (everywhere it is used).
+    """
+    if stackable:
+        layer = model.get_submodule(entry.module) if entry.module else model
+        try:
+            return _model_scope_stacked(model, batch, entry.name, layer, configs, ref_parts,
+                                        output), "stacked"
+        except _NotStackable:
+            pass
     out = []
     for wg, ig in configs:
-        q = forward.forward_quantized(model, data, {name: LayerSetting(weight=wg, input=ig)})
-        out.append(error_stats(ref_flat, running.flat_output(q, "quantized")).sqnr_db)
-    return np.array(out), "per bit width"
+        q, _ = forward.quantized_call(model, batch, {entry: LayerSetting(weight=wg, input=ig)})
+        parts = model_outputs.float_parts(q, "quantized", output)
+        out.append(_error_power(ref_parts, parts))
+    return out, "per bit width"
 
 
-def _model_scope_stacked(model, data, name, layer, configs, ref_parts, ref_flat) -> np.ndarray:
-    """Model-output SQNR of every config from one forward with the layer's output stacked.
+def _error_power(ref_parts, parts) -> float:
+    if len(parts) != len(ref_parts):
+        raise ValueError(f"the quantized output holds {len(parts)} floating-point tensors, the float "
+                         f"output {len(ref_parts)}")
+    total = 0.0
+    for r, a in zip(ref_parts, parts, strict=True):
+        if r.shape != a.shape:
+            raise ValueError(f"output shapes differ: float {tuple(r.shape)}, quantized {tuple(a.shape)}")
+        total += float(torch.linalg.vector_norm((a.double() - r.double()).reshape(-1))) ** 2
+    return total
+
+
+def _model_scope_stacked(model, data, name, layer, configs, ref_parts, output=None) -> list[float]:
+    """Model-output error power of every config from one forward with the layer's output stacked.
 
     The stack along the batch axis holds every config and a float copy between them (two
     configs or more: [config 1, ..., float, ..., config B]; one config: [float, config, float]).
@@ -154,7 +191,10 @@ def _model_scope_stacked(model, data, name, layer, configs, ref_parts, ref_flat)
         calls[0] += 1
         if calls[0] == 1:
             if type(module).forward not in layers.BASE_FORWARDS:
-                layers.check_same_math(module, name, x, output)
+                try:
+                    layers.check_same_math(module, name, x, output)
+                except layers.LayerInputError:
+                    raise _NotStackable from None
             if not isinstance(output, torch.Tensor) or output.dim() == 0:
                 raise _NotStackable
             return torch.cat(outputs([x] * n_copies), dim=0)
@@ -171,7 +211,10 @@ def _model_scope_stacked(model, data, name, layer, configs, ref_parts, ref_flat)
         if isinstance(e, layers.LayerInputError):
             raise
         raise _NotStackable from e
-    parts = [t for t in running.iter_tensors(out) if t.is_floating_point()]
+    try:
+        parts = model_outputs.float_parts(out, "quantized", output)
+    except ValueError as e:
+        raise _NotStackable from e
     if len(parts) != len(ref_parts):
         raise _NotStackable
     per_copy = [[] for _ in range(n_copies)]
@@ -180,8 +223,8 @@ def _model_scope_stacked(model, data, name, layer, configs, ref_parts, ref_flat)
             raise _NotStackable
         for k, chunk in enumerate(t.reshape((n_copies,) + tuple(r.shape))):
             per_copy[k].append(chunk.reshape(-1).double())
+    ref_flat = torch.cat([r.reshape(-1).double() for r in ref_parts])
     errs = [float((torch.cat(p) - ref_flat).pow(2).sum()) for p in per_copy]
-    sig = float(ref_flat.pow(2).sum())
     checks = [e for e, i in zip(errs, order, strict=True) if i is None]
     noises = [e for e, i in zip(errs, order, strict=True) if i is not None]  # in config order
     # the float copies must reproduce the float model far below the smallest quantization noise
@@ -189,7 +232,7 @@ def _model_scope_stacked(model, data, name, layer, configs, ref_parts, ref_flat)
     for c in checks:
         if c > 0 and (not positive or c > 1e-3 * min(positive)):
             raise _NotStackable
-    return np.array([db(sig, e) for e in noises])
+    return noises
 
 
 def db(signal: float, noise: float) -> float:

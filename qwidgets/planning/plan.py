@@ -69,6 +69,8 @@ class Plan:
     macs: dict
     assumed_input_bits: int | None = 8
     predicted_sqnr_db: float | None = None
+    entries: dict | None = None
+    other_weight_bits: int | None = None
 
     def __post_init__(self):
         if not isinstance(self.layers, Mapping) or not self.layers:
@@ -94,6 +96,15 @@ class Plan:
         object.__setattr__(self, "bits", bits)
         object.__setattr__(self, "weight_shapes", shapes)
         object.__setattr__(self, "macs", macs)
+        info = {} if self.entries is None else dict(self.entries)
+        unknown = [n for n in info if n not in layers]
+        if unknown:
+            raise ValueError(f"entries names layer(s) {unknown} that the plan does not hold")
+        object.__setattr__(self, "entries", {n: dict(info.get(n, {})) for n in layers})
+        if self.other_weight_bits is not None:
+            if isinstance(self.other_weight_bits, bool) or int(self.other_weight_bits) < 0:
+                raise ValueError(f"other_weight_bits must be None or an int >= 0, got {self.other_weight_bits!r}")
+            object.__setattr__(self, "other_weight_bits", int(self.other_weight_bits))
         if self.predicted_sqnr_db is not None:
             object.__setattr__(self, "predicted_sqnr_db", float(self.predicted_sqnr_db))
 
@@ -120,6 +131,23 @@ class Plan:
         """Weight storage of the planned layers in KiB (codes, float32 scales, int32 zero points)."""
         return sum(weight_storage_bits(self._params(n), self._weight_bits(n), self._channels(n))
                    for n in self.layers) / 8192
+
+    @property
+    def model_kib(self) -> float | None:
+        """Weight storage of the whole model in KiB: the planned entries as planned, every other
+        floating-point weight at its stored width (None for a plan that does not record them).
+        """
+        if self.other_weight_bits is None:
+            return None
+        return self.weight_kib + self.other_weight_bits / 8192
+
+    def has_input(self, name: str) -> bool:
+        """False for weight-only entries (attention, recurrent, embedding, ...)."""
+        return bool(self.entries[name].get("has_input", True))
+
+    def weight_digest(self, name: str) -> str | None:
+        """Digest of the entry's weight values in the model planned for (None if not recorded)."""
+        return self.entries[name].get("weight_digest")
 
     @property
     def float_weight_kib(self) -> float:
@@ -167,14 +195,17 @@ class Plan:
 
     def __repr__(self) -> str:
         pred = "" if self.predicted_sqnr_db is None else f", predicted {self.predicted_sqnr_db:.2f} dB"
-        return (f"Plan({len(self.layers)} layers, {self.weight_kib:.2f} KiB of weights, "
+        whole = "" if self.model_kib is None else f" ({self.model_kib:.2f} KiB the whole model)"
+        return (f"Plan({len(self.layers)} layers, {self.weight_kib:.2f} KiB of weights{whole}, "
                 f"{self.mean_weight_bits:.2f} mean bits{pred})")
 
     # ------------------------------------------------------------------ JSON
     def to_dict(self) -> dict:
         """The plan as plain JSON-ready data (see the module docstring for the layout)."""
         pred = self.predicted_sqnr_db
+        extra = {} if self.other_weight_bits is None else {"other_weight_bits": self.other_weight_bits}
         return {
+            **extra,
             "format": FORMAT,
             "version": VERSION,
             "fingerprint": self.fingerprint,
@@ -187,6 +218,7 @@ class Plan:
                     "macs": self.macs[n],
                     "weight": grid_to_dict(s.weight),
                     "input": grid_to_dict(s.input),
+                    **self.entries[n],
                 }
                 for n, s in self.layers.items()
             },

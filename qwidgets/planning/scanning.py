@@ -1,24 +1,32 @@
-"""Per-layer sensitivity scan: how much each layer, quantized alone, costs at each bit width.
+"""Per-entry sensitivity scan: how much each weight, quantized alone, costs at each bit width.
 
-Two scopes, measured for every quantizable layer and bit width:
+Entries are every quantizable weight of the model (:mod:`qwidgets.model.entries`: Linear,
+Conv, ConvTranspose, attention projections, recurrent matrices, embeddings; tied tensors once).
+Two scopes, measured for every entry and bit width:
 
-- layer scope: the layer's own output, computed functionally from the input it received in one
-  capturing pass (no further forward passes);
-- model scope: the model's output with only that layer quantized, by an output-replacing hook
-  on the user's model (no copies). For each layer the model runs once with the layer's output
-  replaced by a stack along the batch axis of ``len(bits) + 2`` versions (one per bit width
-  between two float copies), so the part of the model before the layer runs once for all bit
-  widths. That is valid when the rest of the model treats samples independently (eval-mode
-  BatchNorm, pooling, convolutions, residual additions of tensors computed after the layer);
-  the float copies at both ends of the stack are the check: they must reproduce the float
-  model's output. When the stacked pass fails (for example a skip connection from before the
-  layer meets the stacked tensor) or the check fails (operations that mix samples), the layer
-  is measured with one pass per bit width instead. Results are the same either way.
+- layer scope: the layer's own output, computed functionally from the inputs it received
+  (streamed batch by batch; powers summed over batches). A weight-only entry (attention,
+  recurrent, embedding, a layer whose parent uses its weight directly) has no input to measure:
+  its layer scope is the SQNR of the weight itself.
+- model scope: the model's output with only that entry quantized. For a layer run as a module
+  whose weight is used nowhere else, the model runs once per batch with the layer's output
+  replaced by a stack along the batch axis of ``len(bits) + 1`` versions (one per bit width
+  and a float copy), so the part of the model before the layer runs once for all bit widths.
+  That is valid when the rest of the model treats samples independently; the float copy is
+  the check: it must reproduce the float model's output. When the stacked pass fails or the
+  check fails, and for every other entry, the entry is measured with one pass per bit width,
+  its quantized weight substituted for its parameter everywhere the tensor is used (tied
+  weights included). Results are the same either way.
+
+Signal and noise powers are float64 sums over batches, so a scan over a ``DataLoader`` gives
+the table of a scan over the concatenated tensor; what is kept is one batch's activations, the
+float model's outputs per batch (for the model scope) and, when inputs are scanned, a bounded
+sample of each layer's inputs (see :class:`qwidgets.model.statistics.RangeSample`).
 """
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from numbers import Integral
 
 import numpy as np
@@ -26,31 +34,43 @@ from torch import nn
 
 from ..core.checks import check_bits
 from ..core.ranges import METHODS, fit_range
-from ..model import capture, forward, layers, running
-from .passes import layer_scope, model_scope
+from ..model import outputs, running
+from ..model.entries import coverage_of, find_entries, weight_digest
+from ..model.sources import data_source
+from .passes import db, layer_scope_powers, model_scope_noise, weight_scope_powers
 from .plan import model_fingerprint
 from .schema import QUANTIZE_MODES, SCOPES
+from .survey import survey
 from .table import SensitivityTable
 
 
 def scan(model: nn.Module, data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8), *, quantize: str = "weight",
          method: str = "mse", per_channel: bool = True, scope: str = "both",
-         max_samples: int | None = None, progress: bool = True) -> SensitivityTable:
-    """Measure every quantizable layer, quantized alone, at every bit width in ``bits``.
+         max_samples: int | None = None, progress: bool = True,
+         output: Callable | None = None) -> SensitivityTable:
+    """Measure every quantizable weight (entry), quantized alone, at every bit width in ``bits``.
 
     Parameters
     ----------
-    model, data : the user's model and a batch it accepts (tensor, tuple of args or dict of
-        kwargs); the model is left bit-identical
+    model : the user's model (left bit-identical: parameters, buffers, training flags, hooks)
+    data : one batch (a tensor, a tuple / list of args, a dict of kwargs, a numpy array) or a
+        ``DataLoader`` / iterable of such batches, streamed batch by batch
     bits : bit widths to try (ints in 1..16; sorted, duplicates dropped)
-    quantize : ``"weight"`` (weights on a grid fitted to them, per output channel when
-        ``per_channel``), ``"input"`` (the layer's input on a per-tensor grid fitted to what it
-        received) or ``"both"`` (each bit width used for both)
+    quantize : ``"weight"`` (weights on a grid fitted to them, per channel when
+        ``per_channel``: output channels, embedding rows), ``"input"`` (the inputs of layers
+        run as modules, on a per-tensor grid fitted to what they received; weight-only entries
+        are left out) or ``"both"`` (each bit width for both; weight-only entries: weights)
     method : range fitting, as in :func:`qwidgets.fit_range` (``"minmax"``, ``"percentile"``,
-        ``"mse"``)
+        ``"mse"``); input ranges over many batches: min-max exact, percentile and MSE on a
+        bounded sample of each layer's inputs (every value up to 4M values per layer)
     scope : ``"layer"`` (each layer's output), ``"model"`` (the model's output) or ``"both"``
-    max_samples : use only the first that many samples of ``data``
+    max_samples : read only the first that many samples of ``data``
     progress : show a progress bar (tqdm.auto)
+    output : a function from the model's output to what is compared (default: every
+        floating-point tensor of the output, nested structures and dataclasses included)
+
+    The table's :attr:`~SensitivityTable.coverage` says how many weight values were scanned
+    and why the others were not.
 
     >>> import torch
     >>> from torch import nn
@@ -70,42 +90,95 @@ def scan(model: nn.Module, data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8), *, qu
         raise ValueError(f"scope must be one of {', '.join(map(repr, SCOPES))}, got {scope!r}")
     if not isinstance(per_channel, bool):
         raise TypeError(f"per_channel must be True or False, got {per_channel!r}")
-    max_samples = running.check_max_samples(max_samples)
-    data = running.check_data(model, data, max_samples)
-    inputs = capture.capture_inputs(model, data)
-    modules = dict(model.named_modules())
-    n_data = _batch_size(data)
+    output = outputs.check_output_fn(output)
+    source = data_source(model, data, max_samples)
+    entries = find_entries(model)
+    if not entries:
+        raise ValueError(running.no_layers_message(model))
     qw, qi = quantize in ("weight", "both"), quantize in ("input", "both")
-    ref = forward.forward_float(model, data) if scope != "layer" else None
+    found = survey(model, source, entries, want_inputs=qi, keep_refs=scope != "layer", output=output)
+    if scope != "layer":
+        found.reference.check_varies()
+    facts, skipped = [], list(found.skipped)
+    for f in found.facts:
+        if qi and not qw and not f.has_input:
+            skipped.append((f.entry, f"{f.entry.type_name} weight-only entry; quantize='input' "
+                                     "scans layer inputs only"))
+        else:
+            facts.append(f)
+    if not facts:
+        raise ValueError("no entry to scan on this data: " + "; ".join(f"{e.name}: {r}" for e, r in skipped))
 
-    names = list(inputs)
-    info, wgrids, igrids = {}, {}, {}
-    layer_sq = np.full((len(names), len(bits)), np.nan) if scope != "model" else None
-    model_sq = np.full((len(names), len(bits)), np.nan) if scope != "layer" else None
-    bar = _progress(len(names), progress)
-    try:
-        for i, name in enumerate(names):
-            layer, x = modules[name], inputs[name]
-            wg = [layers.fit_weight(layer, b, method, per_channel=per_channel) for b in bits] if qw else None
-            ig = [fit_range(x, b, method) for b in bits] if qi else None
-            wgrids[name], igrids[name] = wg, ig
-            configs = [(None if wg is None else wg[j], None if ig is None else ig[j]) for j in range(len(bits))]
-            info[name] = {"type": layers.base_type_name(layer), "weight_shape": tuple(layer.weight.shape),
-                          "input_shape": tuple(x.shape[1:]),
-                          "macs": layers.layer_macs(layer, tuple(x.shape)) // max(n_data, 1),
-                          "model_pass": "-"}
-            if layer_sq is not None:
-                layer_sq[i] = layer_scope(layer, x, configs)
-            if model_sq is not None:
-                model_sq[i], info[name]["model_pass"] = model_scope(model, data, name, layer, configs, ref)
-            bar.update(1)
-    finally:
-        bar.close()
+    names = [f.entry.name for f in facts]
+    info, wgrids, igrids, configs = {}, {}, {}, {}
+    for f in facts:
+        e = f.entry
+        w = e.parameter(model).detach()
+        wg = [fit_range(w, b, method, axis=e.axis if per_channel else None) for b in bits] if qw else None
+        ig = [f.inputs.fit(b, method) for b in bits] if (qi and f.has_input) else None
+        wgrids[e.name] = wg
+        igrids[e.name] = ig if ig is not None else [None] * len(bits)
+        configs[e.name] = [(None if wg is None else wg[j], None if ig is None else ig[j])
+                           for j in range(len(bits))]
+        info[e.name] = {"type": e.type_name, "weight_shape": e.shape, "input_shape": f.input_shape,
+                        "macs": int(f.macs), "model_pass": "-", "kind": e.kind, "axis": e.axis,
+                        "param": e.param, "has_input": bool(f.has_input),
+                        "shared_with": list(e.shared_with),
+                        "stored_bits": e.numel * w.element_size() * 8, "digest": weight_digest(w)}
+    layer_sq = _layer_scope(model, source, facts, configs) if scope != "model" else None
+    model_sq = None
+    if scope != "layer":
+        model_sq = np.full((len(names), len(bits)), np.nan)
+        bar = _progress(len(names), progress)
+        try:
+            for i, f in enumerate(facts):
+                e = f.entry
+                stackable = f.has_input and not e.shared_with
+                noise = np.zeros(len(bits))
+                modes = set()
+                for batch, ref_parts in zip(source, found.refs, strict=True):
+                    n, mode = model_scope_noise(model, batch, e, configs[e.name], ref_parts,
+                                                stackable=stackable, output=output)
+                    noise += np.asarray(n)
+                    modes.add(mode)
+                model_sq[i] = [db(found.reference.sig, v) for v in noise]
+                info[e.name]["model_pass"] = "stacked" if modes == {"stacked"} else "per bit width"
+                bar.update(1)
+        finally:
+            bar.close()
+    cov = coverage_of(model, [f.entry for f in facts], skipped)
     return SensitivityTable(layers=names, bits=bits, quantize=quantize, method=method,
                             per_channel=per_channel, fingerprint=model_fingerprint(model), info=info,
                             layer_sqnr=layer_sq, model_sqnr=model_sq,
                             weight_grids=wgrids if qw else None, input_grids=igrids if qi else None,
-                            n_samples=n_data)
+                            n_samples=found.n_samples, coverage=cov)
+
+
+def _layer_scope(model, source, facts, configs) -> np.ndarray:
+    """Layer-scope SQNR of every entry: from each layer's inputs, streamed (one forward per batch
+    with hooks that measure in place), or from the weight itself for weight-only entries."""
+    signal = {f.entry.name: 0.0 for f in facts}
+    noise = {f.entry.name: np.zeros(len(configs[f.entry.name])) for f in facts}
+    with_input = {}
+    for f in facts:
+        e = f.entry
+        if f.has_input:
+            with_input[model.get_submodule(e.module) if e.module else model] = e
+        else:
+            s, n = weight_scope_powers(e.parameter(model).detach(), configs[e.name])
+            signal[e.name], noise[e.name] = s, np.asarray(n)
+
+    def measure(module, args, kwargs):
+        e = with_input[module]
+        x = running.first_input(module, e.name, args, kwargs)
+        s, n = layer_scope_powers(module, x.detach(), configs[e.name])
+        signal[e.name] += s
+        noise[e.name] += np.asarray(n)
+
+    if with_input:
+        for batch in source:
+            running.run_with_hooks(model, batch, {m: measure for m in with_input}, pre=True)
+    return np.array([[db(signal[f.entry.name], v) for v in noise[f.entry.name]] for f in facts])
 
 
 def _check_bits_tuple(bits) -> tuple[int, ...]:
@@ -116,11 +189,6 @@ def _check_bits_tuple(bits) -> tuple[int, ...]:
     if len(bits) == 0:
         raise ValueError("bits is empty; give at least one bit width, e.g. bits=(4, 8)")
     return tuple(sorted({check_bits(b, "bits") for b in bits}))
-
-
-def _batch_size(data) -> int:
-    first = next(running.iter_tensors(data))
-    return int(first.shape[0]) if first.dim() else 1
 
 
 def _progress(total: int, show: bool):

@@ -92,14 +92,20 @@ _TOP = ("format", "version", "fingerprint", "predicted_sqnr_db", "assumed_input_
 _LAYER = ("bits", "weight_shape", "macs", "weight", "input")
 
 
+_TOP_OPTIONAL = ("other_weight_bits",)
+
+
+_LAYER_OPTIONAL = ("kind", "has_input", "shared_with", "weight_digest")
+
+
 _GRID = ("bits", "signed", "axis", "scale", "offset", "zero_point")
 
 
-def _fields(obj, keys, where: str) -> None:
+def _fields(obj, keys, where: str, optional=()) -> None:
     if not isinstance(obj, dict):
         raise FieldError(f"{where} must be a JSON object, got {_kind(obj)}")
     missing = [k for k in keys if k not in obj]
-    extra = [k for k in obj if k not in keys]
+    extra = [k for k in obj if k not in keys and k not in optional]
     if missing:
         raise FieldError(f"{where} is missing field(s) {missing}")
     if extra:
@@ -186,7 +192,7 @@ def _zp_matches(z: int, scale: float, offset: float) -> bool:
 
 def plan_fields(data) -> dict:
     """Check a plan's JSON data field by field; return the Plan constructor's arguments."""
-    _fields(data, _TOP, "the top level")
+    _fields(data, _TOP, "the top level", _TOP_OPTIONAL)
     if data["format"] != FORMAT:
         raise FieldError(f"format must be {FORMAT!r}, got {_kind(data['format'])}")
     version = data["version"]
@@ -203,10 +209,13 @@ def plan_fields(data) -> dict:
     layers_d = data["layers"]
     if not isinstance(layers_d, dict) or not layers_d:
         raise FieldError(f"layers must be a non-empty object, got {_kind(layers_d)}")
-    layers, bits, shapes, macs = {}, {}, {}, {}
+    layers, bits, shapes, macs, entries = {}, {}, {}, {}, {}
+    other = data.get("other_weight_bits")
+    other = None if other is None else _int(other, "other_weight_bits", 0)
     for name, entry in layers_d.items():
         where = f"layers[{name!r}]"
-        _fields(entry, _LAYER, where)
+        _fields(entry, _LAYER, where, _LAYER_OPTIONAL)
+        entries[name] = _entry_fields(entry, where)
         b = _int(entry["bits"], f"{where}.bits", 1, MAX_BITS)
         shape = entry["weight_shape"]
         if not isinstance(shape, list) or len(shape) < 2:
@@ -231,7 +240,32 @@ def plan_fields(data) -> dict:
         layers[name] = LayerSetting(weight=w, input=x)
         bits[name], shapes[name], macs[name] = b, shape, m
     return dict(layers=layers, bits=bits, fingerprint=fp, weight_shapes=shapes, macs=macs,
-                assumed_input_bits=aib, predicted_sqnr_db=pred)
+                assumed_input_bits=aib, predicted_sqnr_db=pred, entries=entries,
+                other_weight_bits=other)
+
+
+def _entry_fields(entry: dict, where: str) -> dict:
+    """The optional entry fields of a plan layer (kind, has_input, shared_with, weight_digest)."""
+    out = {}
+    if "kind" in entry:
+        if not isinstance(entry["kind"], str):
+            raise FieldError(f"{where}.kind must be a string, got {_kind(entry['kind'])}")
+        out["kind"] = entry["kind"]
+    if "has_input" in entry:
+        if not isinstance(entry["has_input"], bool):
+            raise FieldError(f"{where}.has_input must be true or false, got {_kind(entry['has_input'])}")
+        out["has_input"] = entry["has_input"]
+    if "shared_with" in entry:
+        v = entry["shared_with"]
+        if not isinstance(v, list) or not all(isinstance(x, str) for x in v):
+            raise FieldError(f"{where}.shared_with must be a list of strings, got {_kind(v)}")
+        out["shared_with"] = list(v)
+    if "weight_digest" in entry:
+        v = entry["weight_digest"]
+        if v is not None and (not isinstance(v, str) or not v or any(c not in "0123456789abcdef" for c in v)):
+            raise FieldError(f"{where}.weight_digest must be lowercase hex digits or null, got {_kind(v)}")
+        out["weight_digest"] = v
+    return out
 
 
 def json_db(v: float):
@@ -250,8 +284,8 @@ def table_fields(d) -> dict:
     """Check a table's JSON data field by field; return the SensitivityTable constructor's arguments."""
     keys = ("format", "version", "bits", "quantize", "method", "per_channel", "fingerprint",
             "n_samples", "layers")
-    if not isinstance(d, dict) or set(d) != set(keys):
-        raise FieldError(f"expected an object with fields {list(keys)}")
+    if not isinstance(d, dict) or not set(keys) <= set(d) <= set(keys) | {"coverage"}:
+        raise FieldError(f"expected an object with fields {list(keys)} (and optionally coverage)")
     if d["format"] != TABLE_FORMAT or d["version"] != TABLE_VERSION:
         raise FieldError(f"format / version must be {TABLE_FORMAT!r} / {TABLE_VERSION}, "
                           f"got {d['format']!r} / {d['version']!r}")
@@ -266,7 +300,11 @@ def table_fields(d) -> dict:
         names.append(name)
         info[name] = {"type": str(e["type"]), "weight_shape": tuple(int(s) for s in e["weight_shape"]),
                       "input_shape": None if e["input_shape"] is None else tuple(e["input_shape"]),
-                      "macs": int(e["macs"]), "model_pass": str(e.get("model_pass", "-"))}
+                      "macs": int(e["macs"]), "model_pass": str(e.get("model_pass", "-")),
+                      "kind": str(e.get("kind", "layer")), "axis": int(e.get("axis", 0)),
+                      "has_input": bool(e.get("has_input", True)),
+                      "shared_with": [str(v) for v in e.get("shared_with", [])],
+                      "stored_bits": e.get("stored_bits"), "digest": e.get("digest")}
         for scope in ("layer", "model"):
             v = e[f"{scope}_sqnr_db"]
             if v is not None and len(v) != len(bits):
@@ -277,7 +315,8 @@ def table_fields(d) -> dict:
             if v is not None:
                 if len(v) != len(bits):
                     raise FieldError(f"layers[{k}].{kind}_grids must hold {len(bits)} grids")
-                ch = info[name]["weight_shape"][0] if kind == "weight" and d["per_channel"] else None
+                ch = (info[name]["weight_shape"][info[name]["axis"]]
+                      if kind == "weight" and d["per_channel"] else None)
                 grids[kind][name] = [grid_from_dict(g, f"layers[{k}].{kind}_grids[{j}]", ch)
                                      for j, g in enumerate(v)]
     arrays = {}
@@ -292,4 +331,19 @@ def table_fields(d) -> dict:
         layer_sqnr=arrays["layer"], model_sqnr=arrays["model"],
         weight_grids=grids["weight"] if len(grids["weight"]) == len(names) else None,
         input_grids=grids["input"] if len(grids["input"]) == len(names) else None,
-        n_samples=int(d["n_samples"]))
+        n_samples=int(d["n_samples"]), coverage=_coverage_from_json(d.get("coverage")))
+
+
+def _coverage_from_json(c):
+    from ..model.entries import Coverage
+
+    if c is None:
+        return None
+    if not isinstance(c, dict) or set(c) != {"scanned", "total", "skipped", "total_bits"}:
+        raise FieldError("coverage must be an object with fields scanned, total, skipped, total_bits")
+    skipped = c["skipped"]
+    if not isinstance(skipped, list) or not all(
+            isinstance(v, list) and len(v) == 2 and all(isinstance(x, str) for x in v) for v in skipped):
+        raise FieldError("coverage.skipped must be a list of [parameter name, reason] pairs")
+    return Coverage(_int(c["scanned"], "coverage.scanned", 0), _int(c["total"], "coverage.total", 0),
+                    tuple((a, b) for a, b in skipped), _int(c["total_bits"], "coverage.total_bits", 0))

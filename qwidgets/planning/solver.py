@@ -23,10 +23,13 @@ _MAX_NOISE = 1e12  # noise power relative to the signal, cap (SQNR >= -120 dB) t
 
 
 def plan_budget(table, *, weight_kib: float | None = None, mean_bits: float | None = None,
-                bops: float | None = None, input_bits: int | None = 8):
+                bops: float | None = None, input_bits: int | None = 8, kib_scope: str = "model"):
     """The plan with the least predicted model-output noise that fits one budget.
 
-    Give exactly one of ``weight_kib`` (weight storage of the scanned layers, KiB),
+    Give exactly one of ``weight_kib`` (weight storage, KiB: with ``kib_scope="model"``, the
+    default, of the whole model, every floating-point weight the table does not plan counted
+    at its stored width (:meth:`SensitivityTable.unplanned_bits`); with ``"planned"``, of the
+    planned entries only),
     ``mean_bits`` (mean weight bits per parameter) or ``bops`` (bit operations per sample).
     ``input_bits`` is the width of the layers' inputs assumed for BOPs when the table chose only
     weight widths (``quantize="weight"``; None: float inputs); tables that scanned input grids
@@ -42,15 +45,22 @@ def plan_budget(table, *, weight_kib: float | None = None, mean_bits: float | No
     ({'layer0': 8, 'layer1': 4}, 19.59)
     """
     cost, value = _one_budget(weight_kib=weight_kib, mean_bits=mean_bits, bops=bops)
+    if kib_scope not in ("model", "planned"):
+        raise ValueError(f"kib_scope must be 'model' or 'planned', got {kib_scope!r}")
     input_bits = _check_input_bits(input_bits)
+    _check_table(table)
     noise = _noise_matrix(table)
     costs, unit = _cost_matrix(table, cost, input_bits)
-    limit = _limit(cost, value, table)
+    fixed = table.unplanned_bits() if (cost == "weight_kib" and kib_scope == "model") else 0
+    limit = _limit(cost, value, table) - fixed
     need = int(costs.min(axis=1).sum())
     if need > limit:
+        rest = (f"; the model's other weights take {fixed / 8192:.4f} KiB at their stored width "
+                "(kib_scope='planned' budgets the planned entries only)") if fixed else ""
         raise ValueError(
             f"{cost}={value:g} is infeasible; the smallest feasible budget is "
-            f"{cost}={_ceil_unit(need, unit, cost)} (every layer at its cheapest scanned option)"
+            f"{cost}={_ceil_unit(need + fixed, unit, cost)} (every layer at its cheapest scanned "
+            f"option{rest})"
         )
     choice = _solve(costs, noise, limit)
     return _plan(table, choice, noise, input_bits)

@@ -12,6 +12,7 @@ import numpy as np
 from ..core.checks import check_bits
 from ..core.grid import UniformGrid
 from ..core.setting import LayerSetting
+from ..model.entries import Coverage
 from .files import read_text, write_text
 from .plan import Plan
 from .schema import (
@@ -38,7 +39,8 @@ class SensitivityTable:
                  per_channel: bool, fingerprint: str, info: Mapping[str, Mapping],
                  layer_sqnr: np.ndarray | None, model_sqnr: np.ndarray | None,
                  weight_grids: Mapping[str, Sequence[UniformGrid]] | None,
-                 input_grids: Mapping[str, Sequence[UniformGrid]] | None, n_samples: int):
+                 input_grids: Mapping[str, Sequence[UniformGrid]] | None, n_samples: int,
+                 coverage: Coverage | None = None):
         self.layers = list(layers)
         self.bits = tuple(int(b) for b in bits)
         self.quantize = quantize
@@ -47,6 +49,12 @@ class SensitivityTable:
         self.fingerprint = fingerprint
         self.n_samples = int(n_samples)
         self._info = {n: dict(info[n]) for n in self.layers}
+        if coverage is None:  # a table from before coverage was recorded: what it holds
+            n = sum(math.prod(self._info[k]["weight_shape"]) for k in self.layers)
+            coverage = Coverage(n, n, (), sum(self.stored_bits(k) for k in self.layers))
+        if not isinstance(coverage, Coverage):
+            raise TypeError(f"coverage must be a Coverage, got {type(coverage).__name__}")
+        self.coverage = coverage
         shape = (len(self.layers), len(self.bits))
         for what, arr in (("layer_sqnr", layer_sqnr), ("model_sqnr", model_sqnr)):
             if arr is not None and np.shape(arr) != shape:
@@ -100,10 +108,57 @@ class SensitivityTable:
     def weight_shape(self, layer: str) -> tuple[int, ...]:
         return tuple(self._info[self.layers[self._row(layer)]]["weight_shape"])
 
+    def weight_axis(self, layer: str) -> int:
+        """The per-channel axis of ``layer``'s weight grids (1 for transposed convolutions)."""
+        return int(self._info[self.layers[self._row(layer)]].get("axis", 0))
+
     def weight_channels(self, layer: str) -> int:
         """Channels of the weight grids (one scale and zero point each): output channels
-        per channel, else 1."""
-        return self.weight_shape(layer)[0] if self.per_channel else 1
+        (embedding rows) per channel, else 1."""
+        return self.weight_shape(layer)[self.weight_axis(layer)] if self.per_channel else 1
+
+    def has_input(self, layer: str) -> bool:
+        """True when ``layer`` runs as a module with a tensor input (its inputs can be
+        quantized); False for weight-only entries (attention, recurrent, embedding, ...).
+
+        >>> t = SensitivityTable.synthetic(np.array([[12.0, 36.0]]), params=[64], bits=(2, 6))
+        >>> t.has_input("layer0")
+        True
+        """
+        return bool(self._info[self.layers[self._row(layer)]].get("has_input", True))
+
+    def shared_with(self, layer: str) -> list[str]:
+        """The other places that use ``layer``'s weight tensor (tied weights), or ``[]``.
+
+        >>> t = SensitivityTable.synthetic(np.array([[12.0, 36.0]]), params=[64], bits=(2, 6))
+        >>> t.shared_with("layer0")
+        []
+        """
+        return list(self._info[self.layers[self._row(layer)]].get("shared_with", ()))
+
+    def stored_bits(self, layer: str) -> int:
+        """Storage of ``layer``'s weight at its stored width, in bits (float32: 32 a value)."""
+        v = self._info[self.layers[self._row(layer)]].get("stored_bits")
+        return int(v) if v is not None else 32 * self.params(layer)
+
+    def unplanned_bits(self, planned=None) -> int:
+        """Storage in bits, at their stored width, of the model's floating-point weights outside
+        ``planned`` (default: every entry of the table), from :attr:`coverage`.
+
+        >>> t = SensitivityTable.synthetic(np.array([[12.0, 36.0]]), params=[64], bits=(2, 6))
+        >>> t.unplanned_bits(), t.unplanned_bits([])
+        (0, 2048)
+        """
+        names = self.layers if planned is None else list(planned)
+        return max(0, int(self.coverage.total_bits) - sum(self.stored_bits(n) for n in names))
+
+    def weight_digest(self, layer: str) -> str | None:
+        """Digest of ``layer``'s weight values when scanned (plans check it against the model)."""
+        return self._info[self.layers[self._row(layer)]].get("digest")
+
+    def kind(self, layer: str) -> str:
+        """``"layer"``, ``"attention"``, ``"recurrent"`` or ``"embedding"``."""
+        return self._info[self.layers[self._row(layer)]].get("kind", "layer")
 
     def macs(self, layer: str) -> int:
         """Multiply-accumulates of ``layer`` per sample (from the shapes captured in the scan)."""
@@ -152,7 +207,11 @@ class SensitivityTable:
                     weight_shapes={n: self.weight_shape(n) for n in settings},
                     macs={n: self.macs(n) for n in settings},
                     assumed_input_bits=None if self.quantize != "weight" else input_bits,
-                    predicted_sqnr_db=predicted_sqnr_db)
+                    predicted_sqnr_db=predicted_sqnr_db,
+                    entries={n: {"kind": self.kind(n), "has_input": self.has_input(n),
+                                 "shared_with": self.shared_with(n),
+                                 "weight_digest": self.weight_digest(n)} for n in settings},
+                    other_weight_bits=self.unplanned_bits(settings))
 
     # ------------------------------------------------------------------ display
     def to_rows(self) -> list[dict]:
@@ -173,7 +232,7 @@ class SensitivityTable:
 
     def __repr__(self) -> str:
         return (f"SensitivityTable({len(self.layers)} layers x bits {list(self.bits)}, "
-                f"quantize={self.quantize!r}, scopes={list(self.scopes)})")
+                f"quantize={self.quantize!r}, scopes={list(self.scopes)}; {self.coverage})")
 
     def _repr_html_(self) -> str:
         import html
@@ -203,6 +262,9 @@ class SensitivityTable:
         layers = []
         for i, name in enumerate(self.layers):
             entry = {"name": name, **{k: self._info[name].get(k) for k in ("type", "weight_shape", "input_shape", "macs", "model_pass")}}
+            entry.update(kind=self.kind(name), axis=self.weight_axis(name), has_input=self.has_input(name),
+                         shared_with=self.shared_with(name), stored_bits=self.stored_bits(name),
+                         digest=self.weight_digest(name))
             entry["weight_shape"] = list(entry["weight_shape"])
             entry["input_shape"] = None if entry["input_shape"] is None else list(entry["input_shape"])
             for scope in ("layer", "model"):
@@ -214,7 +276,8 @@ class SensitivityTable:
             layers.append(entry)
         return {"format": TABLE_FORMAT, "version": TABLE_VERSION, "bits": list(self.bits),
                 "quantize": self.quantize, "method": self.method, "per_channel": self.per_channel,
-                "fingerprint": self.fingerprint, "n_samples": self.n_samples, "layers": layers}
+                "fingerprint": self.fingerprint, "n_samples": self.n_samples,
+                "coverage": self.coverage.to_dict(), "layers": layers}
 
     def save(self, path: str | os.PathLike) -> None:
         """Write the table (SQNRs, shapes, fitted grids) as JSON."""

@@ -1,0 +1,282 @@
+"""Entries: the quantizable weights of a model, one per distinct parameter tensor.
+
+An entry is one weight matrix or kernel that gets its own grid, bit width and row in the
+sensitivity table and the plan:
+
+==========================  =====================================  =====  ==========
+module                      entry name                             axis   inputs
+==========================  =====================================  =====  ==========
+Linear, Conv1d/2d/3d        ``<path>``                             0      yes (*)
+ConvTranspose1d/2d/3d       ``<path>``                             1      yes (*)
+MultiheadAttention          ``<path>.in_proj``, ``<path>.out_proj`` 0      no
+                            (``.q_proj/.k_proj/.v_proj`` when the
+                            projections are separate)
+LSTM, GRU, RNN              ``<path>.<parameter name>``            0      no
+                            (e.g. ``rnn.weight_hh_l0_reverse``)
+Embedding, EmbeddingBag     ``<path>`` (one grid per row)          0      no
+==========================  =====================================  =====  ==========
+
+(*) when the module runs as a module with a tensor input on the data; a Linear whose weight
+its parent uses directly (``nn.TransformerEncoderLayer``'s fast path in eval mode) is a
+weight-only entry.
+
+Tied weights (one tensor used by several modules, e.g. a language model's embedding and output
+layer) make one entry, named after its first owner in registration order; ``shared_with`` lists
+the other places. Quantizing an entry quantizes the tensor everywhere it is used: measurements
+substitute the quantized tensor for the parameter (``torch.func.functional_call`` with tied
+weights kept tied) and never change the user's model.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Iterable
+from dataclasses import dataclass, field
+
+import torch
+from torch import nn
+
+from .layers import is_quantizable, weight_axis
+
+KINDS = ("layer", "attention", "recurrent", "embedding")
+
+_RECURRENT = (nn.RNNBase,)
+
+
+_EMBEDDING = (nn.Embedding, nn.EmbeddingBag)
+
+
+@dataclass(frozen=True)
+class Entry:
+    """One quantizable weight: where it lives and how it is quantized.
+
+    ``name``: the entry's name (table rows, plan keys); ``kind``: ``"layer"`` (Linear / Conv /
+    ConvTranspose), ``"attention"``, ``"recurrent"`` or ``"embedding"``; ``module``: the owner
+    module's path; ``param``: the parameter's qualified name in ``model.named_parameters()``;
+    ``axis``: the per-channel axis of its grids; ``runs_as_module``: the owner is a layer whose
+    output can be computed functionally from its input (inputs can be quantized);
+    ``type_name``: what the table shows; ``shape``; ``shared_with``: other places that use the
+    same tensor.
+
+    >>> from torch import nn
+    >>> [e.name for e in find_entries(nn.Sequential(nn.Embedding(10, 4), nn.LSTM(4, 3)))]
+    ['0', '1.weight_ih_l0', '1.weight_hh_l0']
+    """
+
+    name: str
+    kind: str
+    module: str
+    param: str
+    axis: int
+    runs_as_module: bool
+    type_name: str
+    shape: tuple
+    shared_with: tuple = field(default=())
+
+    @property
+    def numel(self) -> int:
+        return math.prod(self.shape)
+
+    def parameter(self, model: nn.Module) -> torch.Tensor:
+        """The entry's parameter in ``model`` (the same object wherever it is used)."""
+        return model.get_parameter(self.param)
+
+
+@dataclass(frozen=True)
+class Coverage:
+    """How much of the model's floating-point weights a scan covers.
+
+    ``scanned``: values in scanned entries; ``total``: values in every floating-point
+    parameter of the model (tied tensors once); ``skipped``: ``(parameter name, reason)`` for
+    every floating-point parameter not scanned.
+
+    >>> c = Coverage(90, 100, (("fc.bias", "bias, kept in float"),))
+    >>> c.fraction, str(c)
+    (0.9, '90 of 100 weight values scanned (90.0%); 1 parameter(s) not scanned: fc.bias (bias, kept in float)')
+    """
+
+    scanned: int
+    total: int
+    skipped: tuple = ()
+    total_bits: int = 0
+
+    @property
+    def fraction(self) -> float:
+        return self.scanned / self.total if self.total else 1.0
+
+    def to_dict(self) -> dict:
+        return {"scanned": self.scanned, "total": self.total,
+                "skipped": [[n, r] for n, r in self.skipped], "total_bits": self.total_bits}
+
+    def __str__(self) -> str:
+        s = f"{self.scanned:,} of {self.total:,} weight values scanned ({100 * self.fraction:.1f}%)"
+        if self.skipped:
+            shown = ", ".join(f"{n} ({r})" for n, r in self.skipped[:6])
+            more = f", ... ({len(self.skipped) - 6} more)" if len(self.skipped) > 6 else ""
+            s += f"; {len(self.skipped)} parameter(s) not scanned: {shown}{more}"
+        return s
+
+
+def _join(path: str, attr: str) -> str:
+    return f"{path}.{attr}" if path else attr
+
+
+def _candidates(model: nn.Module):
+    """(name, kind, module path, attribute, axis, runs_as_module, type name) in registration order."""
+    attention_out = set()
+    for path, m in model.named_modules():
+        if isinstance(m, nn.MultiheadAttention):
+            attention_out.add(_join(path, "out_proj"))
+    for path, m in model.named_modules():
+        if isinstance(m, nn.MultiheadAttention):
+            if m.in_proj_weight is not None:
+                yield _join(path, "in_proj"), "attention", path, "in_proj_weight", 0, False, \
+                    "MultiheadAttention.in_proj"
+            else:
+                for k in ("q", "k", "v"):
+                    yield _join(path, f"{k}_proj"), "attention", path, f"{k}_proj_weight", 0, False, \
+                        f"MultiheadAttention.{k}_proj"
+        elif path in attention_out and isinstance(m, nn.Linear):
+            yield path, "attention", path, "weight", 0, False, "MultiheadAttention.out_proj"
+        elif isinstance(m, _RECURRENT):
+            for attr in m._flat_weights_names:
+                if attr.startswith("weight"):
+                    yield _join(path, attr), "recurrent", path, attr, 0, False, type(m).__name__
+        elif isinstance(m, _EMBEDDING):
+            yield path, "embedding", path, "weight", 0, False, type(m).__name__
+        elif is_quantizable(m):
+            yield path, "layer", path, "weight", weight_axis(m), True, _base_name(m)
+
+
+def _base_name(m: nn.Module) -> str:
+    from .layers import QUANTIZABLE_TYPES
+
+    return next(t.__name__ for t in QUANTIZABLE_TYPES if isinstance(m, t))
+
+
+def find_entries(model: nn.Module) -> list[Entry]:
+    """Every quantizable weight of ``model`` as an :class:`Entry`, in registration order.
+
+    One entry per distinct floating-point parameter tensor: a tensor used by several modules
+    is named after its first owner, the others are listed in ``shared_with``.
+
+    >>> from torch import nn
+    >>> lm = nn.ModuleDict({"emb": nn.Embedding(50, 8), "head": nn.Linear(8, 50)})
+    >>> lm["head"].weight = lm["emb"].weight
+    >>> [(e.name, e.shared_with) for e in find_entries(lm)]
+    [('emb', ('head',))]
+    """
+    if not isinstance(model, nn.Module):
+        raise TypeError(f"model must be a torch.nn.Module, got {type(model).__name__}")
+    by_tensor: dict[int, dict] = {}
+    order: list[int] = []
+    for name, kind, path, attr, axis, runs, type_name in _candidates(model):
+        owner = model.get_submodule(path) if path else model
+        p = getattr(owner, attr, None)
+        if not isinstance(p, torch.Tensor) or not p.is_floating_point() or p.dim() < 2:
+            continue
+        key = id(p)
+        if key in by_tensor:
+            by_tensor[key]["shared"].append(name)
+            continue
+        by_tensor[key] = dict(name=name, kind=kind, module=path, param=_join(path, attr), axis=axis,
+                              runs_as_module=runs, type_name=type_name, shape=tuple(p.shape),
+                              shared=[])
+        order.append(key)
+    # other registered names of the same tensors (a parameter assigned to a second module)
+    claimed = {d["param"] for d in by_tensor.values()}
+    for pname, p in model.named_parameters(remove_duplicate=False):
+        d = by_tensor.get(id(p))
+        if d is None or pname in claimed:
+            continue
+        owner_path = pname.rsplit(".", 1)[0] if "." in pname else ""
+        if owner_path not in d["shared"] and pname not in d["shared"] and owner_path != d["module"]:
+            known = {e for e in d["shared"]}
+            if not any(pname.startswith(k + ".") or pname == k for k in known):
+                d["shared"].append(pname)
+    entries = []
+    for key in order:
+        d = by_tensor[key]
+        shared = tuple(d.pop("shared"))
+        entries.append(Entry(**d, shared_with=shared))
+    return entries
+
+
+def model_weight_values(model: nn.Module) -> dict[str, torch.Tensor]:
+    """Every floating-point parameter of ``model``, tied tensors once (first name)."""
+    return {n: p for n, p in model.named_parameters() if p.is_floating_point()}
+
+
+def skip_reason(model: nn.Module, pname: str) -> str:
+    """Why a floating-point parameter is not an entry (for :class:`Coverage`)."""
+    owner_path, _, attr = pname.rpartition(".")
+    owner = model.get_submodule(owner_path) if owner_path else model
+    kind = type(owner).__name__
+    if "bias" in attr:
+        return f"bias of a {kind}, kept in float"
+    norms = (nn.modules.batchnorm._NormBase, nn.LayerNorm, nn.GroupNorm, nn.LocalResponseNorm)
+    if isinstance(owner, norms) or "norm" in kind.lower():
+        return f"{kind} parameter, kept in float"
+    p = owner.get_parameter(attr) if attr else None
+    if p is not None and p.dim() < 2:
+        return f"a {p.dim()}-d parameter of a {kind}, kept in float"
+    return f"a parameter of a {kind}, a module type qwidgets does not quantize"
+
+
+def coverage_of(model: nn.Module, scanned: Iterable[Entry], skipped_entries=()) -> Coverage:
+    """:class:`Coverage` of ``scanned`` entries; ``skipped_entries`` are (Entry, reason) pairs.
+
+    >>> from torch import nn
+    >>> net = nn.Sequential(nn.Linear(4, 3), nn.LayerNorm(3))
+    >>> c = coverage_of(net, find_entries(net))
+    >>> c.scanned, c.total, [n for n, _ in c.skipped]
+    (12, 21, ['0.bias', '1.weight', '1.bias'])
+    """
+    scanned = list(scanned)
+    done = {e.param for e in scanned}
+    entry_reason = {e.param: r for e, r in skipped_entries}
+    total, total_bits, skipped = 0, 0, []
+    for pname, p in model_weight_values(model).items():
+        total += p.numel()
+        total_bits += p.numel() * p.element_size() * 8
+        if pname in done:
+            continue
+        skipped.append((pname, entry_reason.get(pname) or skip_reason(model, pname)))
+    return Coverage(sum(e.numel for e in scanned), total, tuple(skipped), total_bits)
+
+
+def resolve_entries(model: nn.Module, names=None) -> list[Entry]:
+    """The entries named in ``names`` (None: all), with a clear error for unknown names."""
+    entries = find_entries(model)
+    if names is None:
+        if not entries:
+            kinds = sorted({type(m).__name__ for m in model.modules()})
+            raise ValueError(
+                "model has no quantizable weights (Linear, Conv, ConvTranspose, MultiheadAttention, "
+                f"LSTM / GRU / RNN, Embedding); it holds only {', '.join(kinds)}")
+        return entries
+    if isinstance(names, str):
+        names = [names]
+    by_name = {e.name: e for e in entries}
+    names = list(dict.fromkeys(names))
+    if not names:
+        raise ValueError("layers is empty; give None for every entry, or some names")
+    bad = [n for n in names if n not in by_name]
+    if bad:
+        raise ValueError(f"layers {bad} not found in the model; entries: {list(by_name)}")
+    return [by_name[n] for n in names]
+
+
+def weight_digest(t: torch.Tensor) -> str:
+    """A short SHA-256 digest of a tensor's values (dtype, shape and bytes).
+
+    >>> import torch
+    >>> weight_digest(torch.zeros(2)) == weight_digest(torch.zeros(2)), len(weight_digest(torch.ones(1)))
+    (True, 16)
+    """
+    import hashlib
+
+    t = t.detach().to("cpu").contiguous()
+    h = hashlib.sha256(f"{t.dtype}:{tuple(t.shape)}:".encode())
+    h.update(t.reshape(-1).view(torch.uint8).numpy().tobytes())
+    return h.hexdigest()[:16]

@@ -1,0 +1,146 @@
+"""The scan's first pass over the data: which entries run, in what order, on what inputs.
+
+One streamed pass (batch by batch) records, per entry: whether its owner module ran, the order
+of first calls, the input shape and multiply-accumulates of layers run as modules, a
+:class:`~qwidgets.model.statistics.RangeSample` of their inputs (when inputs are scanned), and
+the float model's output per batch (kept for the model scope: the model's outputs, not its
+activations).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import torch
+from torch import nn
+
+from ..core.checks import finite_check
+from ..model import layers, outputs, running
+from ..model.entries import Entry
+from ..model.sources import DataSource, batch_size
+from ..model.statistics import RangeSample
+
+
+@dataclass
+class EntryFacts:
+    entry: Entry
+    ran: bool = False  # the owner (or, for a layer used by its parent, the parent) ran
+    has_input: bool = False  # ran as a module with a tensor input
+    order: tuple = (1 << 62, 0)
+    input_shape: tuple | None = None
+    macs: int = 0
+    inputs: RangeSample | None = None
+
+
+@dataclass
+class Survey:
+    facts: list  # EntryFacts of the entries that ran, in execution order
+    skipped: list  # (Entry, reason)
+    refs: list = field(default_factory=list)  # float parts of the model's output per batch
+    reference: outputs.OutputComparison = field(default_factory=outputs.OutputComparison)
+    n_samples: int = 0
+
+
+def survey(model: nn.Module, source: DataSource, entries: list[Entry], *, want_inputs: bool,
+           keep_refs: bool, output=None) -> Survey:
+    modules = dict(model.named_modules())
+    names = running.names_by_id(model)
+    first_call: dict[int, int] = {}
+    call_shapes: dict[int, list] = {}  # module id -> input shapes of the first batch's calls
+    facts = {e.name: EntryFacts(e) for e in entries}
+    layer_of = {id(modules[e.module]): facts[e.name] for e in entries if e.runs_as_module}
+    result = Survey([], [])
+    first_batch = [True]
+
+    def pre(module, args, kwargs):
+        key = id(module)
+        if key not in first_call:
+            first_call[key] = len(first_call)
+        x = args[0] if args else next(iter(kwargs.values()), None)
+        if first_batch[0] and isinstance(x, torch.Tensor):
+            call_shapes.setdefault(key, []).append(tuple(x.shape))
+        f = layer_of.get(key)
+        if f is None or not isinstance(x, torch.Tensor):
+            return None
+        name = names[key]
+        if x.is_floating_point():
+            finite_check(x, f"the input of layer {name!r} ({layers.describe_layer(module)})",
+                         layers.LayerInputError)
+        f.has_input = True
+        if first_batch[0]:
+            f.input_shape = f.input_shape or tuple(x.shape[1:])
+            f.macs += layers.layer_macs(module, tuple(x.shape))
+        if want_inputs:
+            f.inputs = f.inputs or RangeSample()
+            f.inputs.add(x)
+        return None
+
+    hooks = {m: pre for m in modules.values()}
+    n_first = 1
+    for batch in source:
+        out = running.run_with_hooks(model, batch, hooks, pre=True)
+        parts = outputs.float_parts(out, "float", output)
+        result.reference.add_reference(parts)
+        if keep_refs:
+            result.refs.append(parts)
+        if first_batch[0]:
+            n_first = max(1, batch_size(batch))
+        first_batch[0] = False
+        result.n_samples += batch_size(batch)
+
+    for reg, e in enumerate(entries):
+        f = facts[e.name]
+        owner = modules[e.module]
+        key = id(owner)
+        if key in first_call:
+            f.ran, f.order = True, (first_call[key], reg)
+        elif e.runs_as_module or e.kind == "attention":
+            parent = _ran_parent(e.module, modules, first_call)
+            if parent is not None:
+                f.ran, f.order = True, (first_call[id(modules[parent])], reg)
+        if not f.ran:
+            result.skipped.append((e, f"its module {e.module!r} did not run on this data"))
+            continue
+        f.has_input = f.has_input and e.runs_as_module
+        if not f.has_input:
+            f.input_shape = None
+            f.macs = _weight_only_macs(e, modules, first_call, call_shapes)
+        f.macs //= n_first  # per sample
+        result.facts.append(f)
+    result.facts.sort(key=lambda f: f.order)
+    return result
+
+
+def _ran_parent(path: str, modules, first_call) -> str | None:
+    while path:
+        path = path.rpartition(".")[0]
+        if id(modules[path]) in first_call:
+            return path
+    return None
+
+
+def _weight_only_macs(e: Entry, modules, first_call, call_shapes) -> int:
+    """Multiply-accumulates of a weight-only entry in the first batch: positions it is applied to
+    (tokens, time steps; estimated from its owner's, or its parent's, input) times its values."""
+    if e.kind == "embedding":
+        return 0  # a lookup, no multiplications
+    path = e.module
+    key = id(modules[path])
+    if key not in call_shapes:
+        parent = _ran_parent(path, modules, first_call)
+        key = id(modules[parent]) if parent is not None else None
+    shapes = call_shapes.get(key, [])
+    positions = 0
+    for s in shapes:
+        if len(s) >= 2:
+            positions += _prod(s[:-1])  # every position along all axes but the features
+        elif len(s) == 1:
+            positions += 1
+    return positions * e.numel
+
+
+def _prod(t) -> int:
+    out = 1
+    for v in t:
+        out *= int(v)
+    return out
