@@ -16,7 +16,15 @@ import pytest
 import torch
 from torch import nn
 
-from qwidgets import apply_plan, evaluate_plan, export_codes, from_codes, plan_budget, quantize, scan
+from qwidgets import (
+    apply_plan,
+    evaluate_plan,
+    export_codes,
+    from_codes,
+    plan_budget,
+    quantize,
+    scan,
+)
 from qwidgets.model.entries import find_entries
 from tests.test_probe import assert_untouched, snapshot
 

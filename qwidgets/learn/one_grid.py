@@ -92,7 +92,9 @@ def learn_grid(
     Parameters
     ----------
     layer : ``nn.Linear`` or ``nn.Conv1d/2d/3d`` (read only, never modified)
-    inputs : what the layer receives (e.g. from :func:`qwidgets.capture_inputs`)
+    inputs : what the layer receives (e.g. from :func:`qwidgets.capture_inputs`): a tensor,
+        a numpy array, or a ``DataLoader`` / iterable of them (joined along axis 0: every step
+        reads all of them, so they are held in memory)
     grid : starting grid for ``source`` (per-tensor, or per-channel along its ``axis``)
     source : ``"weight"`` quantizes the layer's weights, ``"input"`` what it receives
     noise : starting logistic noise width as a fraction of the grid step (None: 0.3)
@@ -130,7 +132,7 @@ def learn_grid(
         raise TypeError(f"callback must be callable or None, got {type(callback).__name__}")
     if isinstance(noise, Real) and noise < _MIN_NOISE:
         raise ValueError(f"noise must be >= {_MIN_NOISE} (a fraction of the grid step), got {noise}")
-    x, _ = as_input(inputs, "inputs")
+    x, _ = as_input(_joined(inputs, layer), "inputs")
     w = layer.weight.detach().float()
     target = w if source == "weight" else x.detach().float()
     window = _pick_window(window, grid)
@@ -244,3 +246,15 @@ def _progress(steps: int, show: bool):
     from tqdm.auto import tqdm
 
     return tqdm(total=steps, desc="learning the grid", unit="step", leave=False)
+
+
+def _joined(inputs, layer):
+    """A tensor from a tensor, a numpy array or an iterable of them (joined along axis 0)."""
+    if isinstance(inputs, torch.Tensor):
+        return inputs
+    from ..model.sources import data_source
+
+    batches = list(data_source(layer, inputs, name="inputs"))
+    if not all(isinstance(b, torch.Tensor) for b in batches):
+        raise TypeError("inputs must be a tensor, a numpy array or an iterable of tensors")
+    return batches[0] if len(batches) == 1 else torch.cat(batches)

@@ -67,14 +67,15 @@ def plan_budget(table, *, weight_kib: float | None = None, mean_bits: float | No
 
 
 def pareto_front(table, cost: str = "weight_kib", *, input_bits: int | None = 8,
-                 max_points: int | None = 512) -> list:
+                 max_points: int | None = 512, kib_scope: str = "model") -> list:
     """Every Pareto-optimal plan: ``[(cost, predicted_sqnr_db, Plan), ...]`` by rising cost.
 
     ``cost``: ``"weight_kib"``, ``"mean_bits"`` or ``"bops"``. Each point is the exact optimum
     of :func:`plan_budget` at its own cost; no other plan is both cheaper and less noisy.
     The front of a large model can hold tens of thousands of points: with more than
     ``max_points`` it is thinned to that many, spread evenly in cost, both ends kept (``None``
-    keeps every point).
+    keeps every point). ``kib_scope`` as in :func:`plan_budget`: weight KiB of the whole model
+    (default) or of the planned entries only.
 
     >>> import numpy as np
     >>> from qwidgets import SensitivityTable
@@ -85,12 +86,16 @@ def pareto_front(table, cost: str = "weight_kib", *, input_bits: int | None = 8,
     """
     cost = _check_cost(cost)
     input_bits = _check_input_bits(input_bits)
+    if kib_scope not in ("model", "planned"):
+        raise ValueError(f"kib_scope must be 'model' or 'planned', got {kib_scope!r}")
     if max_points is not None and (isinstance(max_points, bool) or not isinstance(max_points, Integral)
                                    or max_points < 2):
         raise ValueError(f"max_points must be None or an int >= 2, got {max_points!r}")
     noise = _noise_matrix(table)
     costs, unit = _cost_matrix(table, cost, input_bits)
     front_c, _, choices = _front(costs, noise)
+    if cost == "weight_kib" and kib_scope == "model":
+        front_c = front_c + table.unplanned_bits()  # exact integers: bits of the other weights
     keep = _thin(front_c, max_points)
     out = []
     for j in keep:

@@ -249,13 +249,17 @@ class SensitivityTable:
                 shade = 0.0 if not np.isfinite(v) or hi == lo else (v - lo) / (hi - lo)
                 bg = f"rgba(46,134,193,{0.08 + 0.5 * shade:.2f})"
                 cells.append(f'<td style="background:{bg};text-align:right">{fmt_db(v)}</td>')
-            body.append(f"<tr><td>{html.escape(name)}</td><td>{html.escape(self.layer_type(name))}</td>"
+            shared = self.shared_with(name)
+            label = html.escape(name) + (f" <small>(also {html.escape(', '.join(shared))})</small>"
+                                         if shared else "")
+            body.append(f"<tr><td>{label}</td><td>{html.escape(self.layer_type(name))}</td>"
+                        f"<td>{'yes' if self.has_input(name) else 'weight only'}</td>"
                         f'<td style="text-align:right">{self.params(name):,}</td>'
                         f'<td style="text-align:right">{self.macs(name):,}</td>' + "".join(cells) + "</tr>")
         return (f"<div><b>{scope.capitalize()}-output SQNR (dB)</b>, {self.quantize} quantized, "
                 f"one layer at a time ({self.n_samples} samples)<table>"
-                f"<tr><th>layer</th><th>type</th><th>weights</th><th>MACs / sample</th>{head}</tr>"
-                + "".join(body) + "</table></div>")
+                f"<tr><th>layer</th><th>type</th><th>input</th><th>weights</th><th>MACs / sample</th>{head}</tr>"
+                + "".join(body) + f"</table><small>{html.escape(str(self.coverage))}</small></div>")
 
     # ------------------------------------------------------------------ JSON
     def to_dict(self) -> dict:

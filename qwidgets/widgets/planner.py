@@ -17,6 +17,7 @@ from collections.abc import Callable
 
 import ipywidgets as widgets
 import numpy as np
+import torch
 from torch import nn
 
 from ..planning.costs import COSTS
@@ -51,7 +52,8 @@ class BudgetPlanner(widgets.VBox):
     """Choose a budget (weight KiB, mean bits or BOPs) and see the least-noise plan for it.
 
     Scans ``model`` on ``data`` (model scope; keywords ``bits``, ``quantize``, ``method``,
-    ``per_channel``, ``max_samples``, ``progress`` go to :func:`qwidgets.scan`) unless a
+    ``per_channel``, ``max_samples``, ``progress``, ``output`` go to :func:`qwidgets.scan`;
+    ``output`` also to :func:`qwidgets.evaluate_plan`) unless a
     ``table`` is given. ``metric(output, target) -> float`` is measured for the float and the
     planned model when "measure" is pressed (:meth:`measure`). ``input_bits`` is the input
     width counted in BOPs when only weights are planned.
@@ -69,7 +71,7 @@ class BudgetPlanner(widgets.VBox):
                  table: SensitivityTable | None = None, bits=(2, 3, 4, 5, 6, 8),
                  quantize: str = "weight", method: str = "mse", per_channel: bool = True,
                  input_bits: int | None = 8, max_samples: int | None = None, progress: bool = True,
-                 width: int = 760):
+                 width: int = 760, output=None):
         super().__init__()
         if not isinstance(model, nn.Module):
             raise TypeError(f"model must be a torch.nn.Module, got {type(model).__name__}")
@@ -77,12 +79,13 @@ class BudgetPlanner(widgets.VBox):
             raise TypeError(f"metric must be a callable metric(output, target) -> float, got {type(metric).__name__}")
         if table is None:
             table = scan(model, data, bits, quantize=quantize, method=method, per_channel=per_channel,
-                         scope="model", max_samples=max_samples, progress=progress)
+                         scope="model", max_samples=max_samples, progress=progress, output=output)
         elif not isinstance(table, SensitivityTable):
             raise TypeError(f"table must be a SensitivityTable, got {type(table).__name__}")
         if "model" not in table.scopes:
             raise ValueError("the table holds no model-scope SQNR; scan with scope='model' or 'both'")
         self.model, self.data, self.metric, self.target = model, data, metric, target
+        self.output = output
         self.table = table
         self.input_bits = input_bits
         self._max_samples = max_samples
@@ -237,13 +240,11 @@ class BudgetPlanner(widgets.VBox):
         """Run the float and the planned model on the data: measured SQNR and metric."""
         if self.plan is None:
             raise ValueError("no plan yet")
-        from ..model.running import check_data
-
-        data = check_data(self.model, self.data, self._max_samples)  # the samples the scan used
         target = self.target
-        if self._max_samples is not None and target is not None and hasattr(target, "__getitem__"):
-            target = target[: self._max_samples]
-        self.report = evaluate_plan(self.model, data, self.plan, metric=self.metric, target=target)
+        if self._max_samples is not None and isinstance(target, torch.Tensor):
+            target = target[: self._max_samples]  # the samples the scan used
+        self.report = evaluate_plan(self.model, self.data, self.plan, metric=self.metric, target=target,
+                                    output=self.output, max_samples=self._max_samples)
         self._draw_readout()
         self.message.info(f"measured: {self.report.measured_sqnr_db:.2f} dB model-output SQNR")
         return self.report
@@ -322,7 +323,8 @@ class BudgetPlanner(widgets.VBox):
             bar.set_width(self.plan.bits.get(name, 0))
 
     def _plan_cost(self, plan: Plan) -> float:
-        return {"weight_kib": plan.weight_kib, "mean_bits": plan.mean_weight_bits, "bops": plan.bops}[self.kind]
+        kib = plan.model_kib if plan.model_kib is not None else plan.weight_kib
+        return {"weight_kib": kib, "mean_bits": plan.mean_weight_bits, "bops": plan.bops}[self.kind]
 
     def _draw_readout(self) -> None:
         p, r = self.plan, self.report
@@ -332,6 +334,9 @@ class BudgetPlanner(widgets.VBox):
             ("measured SQNR", "press measure" if r is None else f"{r.measured_sqnr_db:.2f} dB"),
             ("weights", f"{p.weight_kib:,.2f} KiB (float32 {p.float_weight_kib:,.2f} KiB, "
                         f"{p.float_weight_kib / p.weight_kib:.1f}x smaller)"),
+            ("whole model", "-" if p.model_kib is None else
+             f"{p.model_kib:,.2f} KiB (weights not planned at their stored width)"),
+            ("scanned", str(self.table.coverage)),
             ("mean weight bits", f"{p.mean_weight_bits:.3f}"),
             ("BOPs per sample", f"{p.bops:,} (float32 {p.float_bops:,}, {p.float_bops / max(p.bops, 1):.1f}x fewer)"),
         ]

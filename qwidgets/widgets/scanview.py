@@ -39,8 +39,8 @@ class ScanView(widgets.VBox):
     """Heatmap and table of a sensitivity scan; pick a layer to explore its grid below.
 
     ``ScanView(model, data, ...)`` runs :func:`qwidgets.scan` (keywords ``bits``,
-    ``quantize``, ``method``, ``per_channel``, ``scope``, ``max_samples``, ``progress`` go to
-    it); ``ScanView(table)`` shows a table made before (add ``model=`` and ``data=`` to open
+    ``quantize``, ``method``, ``per_channel``, ``scope``, ``max_samples``, ``progress``,
+    ``output`` go to it); ``ScanView(table)`` shows a table made before (add ``model=`` and ``data=`` to open
     explorers from it).
 
     >>> import torch
@@ -55,7 +55,7 @@ class ScanView(widgets.VBox):
     def __init__(self, obj, data=None, *, model: nn.Module | None = None, bits=(2, 3, 4, 5, 6, 8),
                  quantize: str = "weight", method: str = "mse", per_channel: bool = True,
                  scope: str = "both", max_samples: int | None = None, progress: bool = True,
-                 width: int = 720):
+                 width: int = 720, output=None):
         super().__init__()
         if isinstance(obj, SensitivityTable):
             if (model is None) != (data is None):
@@ -70,7 +70,7 @@ class ScanView(widgets.VBox):
                 raise TypeError("give the model once: ScanView(model, data) or ScanView(table, model=..., data=...)")
             self.model, self.data = obj, data
             self.table = scan(obj, data, bits, quantize=quantize, method=method, per_channel=per_channel,
-                              scope=scope, max_samples=max_samples, progress=progress)
+                              scope=scope, max_samples=max_samples, progress=progress, output=output)
         else:
             raise TypeError(f"ScanView takes a model and its data, or a SensitivityTable; got {type(obj).__name__}")
         self._max_samples = max_samples
@@ -184,6 +184,11 @@ class ScanView(widgets.VBox):
         if self.model is None:
             self.message.info(f"{layer} at {bits} bits: {_summary(t, layer, bits)} "
                               "(give model= and data= to explore the grid)")
+            return self
+        if not t.has_input(layer):
+            self.message.info(f"{layer} at {bits} bits: {_summary(t, layer, bits)} (a weight-only "
+                              f"{t.layer_type(layer)} entry: the grid explorer opens layers run as "
+                              "modules)")
             return self
         from .explorer import GridExplorer
 
