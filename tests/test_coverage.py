@@ -9,7 +9,15 @@ import pytest
 import torch
 from torch import nn
 
-from qwidgets import Plan, SensitivityTable, apply_plan, evaluate_plan, export_codes, plan_budget, scan
+from qwidgets import (
+    Plan,
+    SensitivityTable,
+    apply_plan,
+    evaluate_plan,
+    export_codes,
+    plan_budget,
+    scan,
+)
 from qwidgets.planning.costs import weight_storage_bits
 
 
