@@ -72,6 +72,11 @@ def check_against_naive(model, data, expect_names, *, tol=1e-3):
             grid = t.weight_grid(name, b)
             want = naive_sqnr(model, data, {entries[name].param: grid})
             assert t.sqnr_db(name, b) == pytest.approx(want, abs=tol), (name, b)
+            if not t.has_input(name):  # weight-only: the layer scope is the weight's own SQNR
+                w = entries[name].parameter(model).detach()
+                err, w = quantize(w, grid).double() - w.double(), w.double()
+                own = 10 * math.log10(float((w * w).sum()) / float((err * err).sum()))
+                assert t.sqnr_db(name, b, "layer") == pytest.approx(own, abs=1e-6)
     # a whole plan, applied and evaluated, against the naive loop with every weight overwritten
     plan = plan_budget(t, mean_bits=4.5)
     rep = evaluate_plan(model, data, plan)

@@ -10,6 +10,8 @@ from collections import namedtuple
 import numpy as np
 import pytest
 import torch
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from torch import nn
 from torch.utils.data import DataLoader, TensorDataset
 
@@ -191,3 +193,21 @@ def test_streamed_scan_has_lower_peak_memory():
         peaks[kind] = json.loads(out.stdout.strip().splitlines()[-1])
     assert peaks["tensor"] > 32 << 20, peaks  # the whole batch's activations were resident
     assert peaks["loader"] < 0.6 * peaks["tensor"], peaks
+
+
+@settings(max_examples=25, deadline=None)
+@given(st.lists(st.integers(1, 9), min_size=1, max_size=6), st.integers(2, 8))
+def test_any_split_into_batches_gives_the_same_errors(sizes, bits):
+    # invariant: float64 sums over batches equal the sums over the concatenated tensor
+    torch.manual_seed(sum(sizes))
+    net = nn.Sequential(nn.Linear(3, 4), nn.Tanh(), nn.Linear(4, 2))
+    x = torch.randn(sum(sizes), 3)
+    s = {"0": LayerSetting(weight=UniformGrid(bits, 0.05))}
+    whole = model_error(net, x, s).output
+    split = model_error(net, iter(x.split(sizes)), s).output
+    assert split.sqnr_db == pytest.approx(whole.sqnr_db, abs=1e-9)
+    assert split.n == whole.n and split.max_abs == pytest.approx(whole.max_abs, abs=1e-12)
+    r = RangeSample(limit=10_000)
+    for part in x.split(sizes):
+        r.add(part)
+    assert torch.equal(r.values(), x.reshape(-1))  # under the limit: every value, in order

@@ -19,10 +19,18 @@ every field. Its JSON layout (``version`` 1)::
           "weight": {"bits": 6, "signed": true, "axis": 0,
                      "scale": [...], "offset": [...], "zero_point": [...]},   # or null
           "input": {"bits": 6, "signed": false, "axis": null,
-                    "scale": 0.02, "offset": 0.0, "zero_point": 0}            # or null
+                    "scale": 0.02, "offset": 0.0, "zero_point": 0},           # or null
+          "kind": "layer",                  # optional: layer / attention / recurrent / embedding
+          "has_input": true,                # optional: false for weight-only entries
+          "shared_with": [],                # optional: other places using the same tensor
+          "weight_digest": "<16 hex digits>"  # optional: the planned weight's values (or null)
         }
-      }
+      },
+      "other_weight_bits": 2656             # optional: the model's other float weights, bits
     }
+
+Plans written before entries were recorded (no optional fields) are read as they are: their
+layers have inputs, no digest is checked and ``Plan.model_kib`` is None.
 
 Per-channel grids (``axis`` set) hold one scale / offset / zero point per channel; a grid
 whose offset is not an integer multiple of its scale has ``"zero_point": null``.
