@@ -47,7 +47,8 @@ class Plan:
     ``layers``: name -> :class:`LayerSetting`; ``bits``: name -> chosen bit width;
     ``fingerprint``: :func:`model_fingerprint` of the model planned for; ``weight_shapes`` and
     ``macs`` (per sample) per layer; ``assumed_input_bits``: input width counted in BOPs for
-    layers without an input grid (None: float); ``predicted_sqnr_db``: the allocator's
+    layers without an input grid (None: float); :attr:`input_bits`: each entry's own input
+    width, from its input grid; ``predicted_sqnr_db``: the allocator's
     prediction of the model-output SQNR (None when not predicted).
 
     >>> from torch import nn
@@ -108,6 +109,28 @@ class Plan:
         if self.predicted_sqnr_db is not None:
             object.__setattr__(self, "predicted_sqnr_db", float(self.predicted_sqnr_db))
 
+    @classmethod
+    def unchecked(cls, layers: dict, bits: dict, *, fingerprint: str, weight_shapes: dict, macs: dict,
+                  assumed_input_bits: int | None = 8, predicted_sqnr_db: float | None = None,
+                  entries: dict, other_weight_bits: int | None = None) -> Plan:
+        """A Plan from fields already checked (by :class:`SensitivityTable`, which builds them
+        from its own validated grids): skips the per-entry checks, so a Pareto front's hundreds
+        of plans of hundreds of entries cost milliseconds. Everyone else: use ``Plan(...)``."""
+        plan = object.__new__(cls)
+        for k, v in (("layers", layers), ("bits", bits), ("fingerprint", fingerprint),
+                     ("weight_shapes", weight_shapes), ("macs", macs),
+                     ("assumed_input_bits", assumed_input_bits),
+                     ("predicted_sqnr_db", None if predicted_sqnr_db is None else float(predicted_sqnr_db)),
+                     ("entries", entries),
+                     ("other_weight_bits", None if other_weight_bits is None else int(other_weight_bits))):
+            object.__setattr__(plan, k, v)
+        return plan
+
+    @property
+    def input_bits(self) -> dict:
+        """Each entry's input width (None where its input stays float)."""
+        return {n: None if s.input is None else s.input.bits for n, s in self.layers.items()}
+
     # ------------------------------------------------------------------ costs
     def _params(self, name: str) -> int:
         return math.prod(self.weight_shapes[name])
@@ -162,7 +185,8 @@ class Plan:
 
     @property
     def bops(self) -> int:
-        """Bit operations per sample: sum of MACs x weight bits x input bits."""
+        """Bit operations per sample: sum of MACs x weight bits x input bits, each entry with
+        its own input width (``assumed_input_bits`` where its input stays float)."""
         return sum(layer_bops(self.macs[n], self._weight_bits(n), self._input_bits(n)) for n in self.layers)
 
     @property

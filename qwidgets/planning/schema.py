@@ -47,7 +47,7 @@ from ..core.checks import MAX_BITS, check_bits
 from ..core.grid import UniformGrid
 from ..core.setting import LayerSetting
 
-QUANTIZE_MODES = ("weight", "input", "both")
+QUANTIZE_MODES = ("weight", "input", "both", "separate")
 SCOPES = ("layer", "model", "both")
 FORMAT = "qwidgets plan"
 
@@ -58,7 +58,7 @@ VERSION = 1
 TABLE_FORMAT = "qwidgets sensitivity table"
 
 
-TABLE_VERSION = 1
+TABLE_VERSION = 2  # 2 added input_bits and the input rows of quantize="separate"; 1 still reads
 
 
 def grid_to_dict(g: UniformGrid | None) -> dict | None:
@@ -288,20 +288,61 @@ def _db_from_json(v, where: str) -> float:
     return float(v)
 
 
+def _db_row(v, n: int, where: str):
+    if v is None:
+        return None
+    if not isinstance(v, list) or len(v) != n:
+        raise FieldError(f"{where} must hold {n} values")
+    return [_db_from_json(x, where) for x in v]
+
+
 def table_fields(d) -> dict:
-    """Check a table's JSON data field by field; return the SensitivityTable constructor's arguments."""
-    keys = ("format", "version", "bits", "quantize", "method", "per_channel", "fingerprint",
-            "n_samples", "layers")
-    if not isinstance(d, dict) or not set(keys) <= set(d) <= set(keys) | {"coverage"}:
+    """Check a table's JSON data field by field; return the SensitivityTable constructor's arguments.
+
+    Version 2 layout: the top level holds format, version, bits, input_bits (the input widths
+    of ``quantize="separate"``, else empty), quantize, method, per_channel, fingerprint,
+    n_samples and layers; each entry of layers holds name, type, weight_shape, input_shape,
+    macs, model_pass, layer_sqnr_db / model_sqnr_db (one value per bit width, or null),
+    weight_grids / input_grids (one grid per width, or null) and input_layer_sqnr_db /
+    input_model_sqnr_db (one value per input width; null unless the entry's input was scanned
+    on its own). Version 1 had no input_bits and no input rows.
+    """
+    keys1 = ("format", "version", "bits", "quantize", "method", "per_channel", "fingerprint",
+             "n_samples", "layers")
+    if not isinstance(d, dict):
+        raise FieldError("expected a JSON object at the top level")
+    version = d.get("version")
+    keys = keys1 if version == 1 else keys1 + ("input_bits",)
+    if not set(keys) <= set(d) <= set(keys) | {"coverage"}:
         raise FieldError(f"expected an object with fields {list(keys)} (and optionally coverage)")
-    if d["format"] != TABLE_FORMAT or d["version"] != TABLE_VERSION:
-        raise FieldError(f"format / version must be {TABLE_FORMAT!r} / {TABLE_VERSION}, "
-                          f"got {d['format']!r} / {d['version']!r}")
+    if d["format"] != TABLE_FORMAT or version not in (1, TABLE_VERSION) or isinstance(version, bool):
+        raise FieldError(f"format / version must be {TABLE_FORMAT!r} / 1 or {TABLE_VERSION}, "
+                          f"got {d['format']!r} / {version!r}")
+    if not isinstance(d["bits"], list) or not d["bits"]:
+        raise FieldError("bits must be a non-empty list of widths")
     bits = tuple(check_bits(b, "bits[]") for b in d["bits"])
+    ibits = d.get("input_bits", [])
+    if not isinstance(ibits, list):
+        raise FieldError(f"input_bits must be a list of widths, got {_kind(ibits)}")
+    ibits = tuple(check_bits(b, "input_bits[]") for b in ibits)
     if d["quantize"] not in QUANTIZE_MODES:
         raise FieldError(f"quantize must be one of {QUANTIZE_MODES}, got {d['quantize']!r}")
+    if (d["quantize"] == "separate") != bool(ibits):
+        raise FieldError("input_bits must be non-empty exactly when quantize is 'separate'")
+    entry_keys = {"name", "type", "weight_shape", "input_shape", "macs", "layer_sqnr_db",
+                  "model_sqnr_db", "weight_grids", "input_grids"}
+    if version != 1:
+        entry_keys |= {"input_layer_sqnr_db", "input_model_sqnr_db"}
+    if not isinstance(d["layers"], list) or not d["layers"]:
+        raise FieldError("layers must be a non-empty list")
     names, info, sq, grids = [], {}, {"layer": [], "model": []}, {"weight": {}, "input": {}}
+    isq = {"layer": [], "model": []}
+    separate = d["quantize"] == "separate"
     for k, e in enumerate(d["layers"]):
+        optional = {"model_pass", "kind", "axis", "has_input", "shared_with", "stored_bits", "digest"}
+        if not isinstance(e, dict) or not entry_keys <= set(e) or not set(e) <= entry_keys | optional:
+            raise FieldError(f"layers[{k}] must be an object with fields {sorted(entry_keys)} "
+                             f"(and optionally {sorted(optional)})")
         name = e["name"]
         if not isinstance(name, str):
             raise FieldError(f"layers[{k}].name must be a string")
@@ -314,32 +355,50 @@ def table_fields(d) -> dict:
                       "shared_with": [str(v) for v in e.get("shared_with", [])],
                       "stored_bits": e.get("stored_bits"), "digest": e.get("digest")}
         for scope in ("layer", "model"):
-            v = e[f"{scope}_sqnr_db"]
-            if v is not None and len(v) != len(bits):
-                raise FieldError(f"layers[{k}].{scope}_sqnr_db must hold {len(bits)} values")
-            sq[scope].append(None if v is None else [_db_from_json(x, f"layers[{k}].{scope}_sqnr_db") for x in v])
+            sq[scope].append(_db_row(e[f"{scope}_sqnr_db"], len(bits), f"layers[{k}].{scope}_sqnr_db"))
+            v = e.get(f"input_{scope}_sqnr_db")
+            if v is not None and not separate:
+                raise FieldError(f"layers[{k}].input_{scope}_sqnr_db must be null unless quantize is 'separate'")
+            isq[scope].append(_db_row(v, len(ibits), f"layers[{k}].input_{scope}_sqnr_db"))
         for kind in ("weight", "input"):
             v = e[f"{kind}_grids"]
             if v is not None:
-                if len(v) != len(bits):
-                    raise FieldError(f"layers[{k}].{kind}_grids must hold {len(bits)} grids")
+                n = len(ibits) if kind == "input" and separate else len(bits)
+                if not isinstance(v, list) or len(v) != n:
+                    raise FieldError(f"layers[{k}].{kind}_grids must hold {n} grids")
                 ch = (info[name]["weight_shape"][info[name]["axis"]]
                       if kind == "weight" and d["per_channel"] else None)
-                grids[kind][name] = [grid_from_dict(g, f"layers[{k}].{kind}_grids[{j}]", ch)
+                grids[kind][name] = [None if g is None and kind == "input" else
+                                     grid_from_dict(g, f"layers[{k}].{kind}_grids[{j}]", ch)
                                      for j, g in enumerate(v)]
     arrays = {}
     for scope in ("layer", "model"):
         rows = sq[scope]
         if any(r is None for r in rows) and not all(r is None for r in rows):
             raise FieldError(f"{scope}_sqnr_db must be given for every layer or for none")
-        arrays[scope] = None if not rows or rows[0] is None else np.array(rows, dtype=float)
+        arrays[scope] = None if rows[0] is None else np.array(rows, dtype=float)
+        if separate and arrays[scope] is not None:
+            arrays[f"input_{scope}"] = np.array(
+                [[math.nan] * len(ibits) if r is None else r for r in isq[scope]], dtype=float).reshape(
+                len(names), len(ibits))
+            for k, (n, r) in enumerate(zip(names, isq[scope], strict=True)):
+                if (r is None) != (n not in grids["input"]):
+                    raise FieldError(f"layers[{k}]: input_{scope}_sqnr_db and input_grids must be "
+                                     "given together")
+        elif any(r is not None for r in isq[scope]):
+            raise FieldError(f"input_{scope}_sqnr_db given without {scope}_sqnr_db")
+    if separate:
+        input_grids = {n: grids["input"].get(n) for n in names}
+    else:
+        input_grids = grids["input"] if len(grids["input"]) == len(names) else None
     return dict(
         layers=names, bits=bits, quantize=d["quantize"], method=str(d["method"]),
         per_channel=bool(d["per_channel"]), fingerprint=str(d["fingerprint"]), info=info,
         layer_sqnr=arrays["layer"], model_sqnr=arrays["model"],
         weight_grids=grids["weight"] if len(grids["weight"]) == len(names) else None,
-        input_grids=grids["input"] if len(grids["input"]) == len(names) else None,
-        n_samples=int(d["n_samples"]), coverage=_coverage_from_json(d.get("coverage")))
+        input_grids=input_grids, n_samples=int(d["n_samples"]), input_bits=ibits,
+        coverage=_coverage_from_json(d.get("coverage")),
+        input_layer_sqnr=arrays.get("input_layer"), input_model_sqnr=arrays.get("input_model"))
 
 
 def _coverage_from_json(c):

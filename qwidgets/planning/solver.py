@@ -1,40 +1,54 @@
-"""The allocator picks one scanned bit width per layer so as to minimise the model-output noise
-predicted by the additive noise model: quantizing layer ``i`` at ``b`` bits adds noise power
-``signal / 10**(SQNR_i(b) / 10)`` (its model-scope SQNR, measured by :func:`qwidgets.scan`), and
-the noise powers of the layers add up, so the predicted SQNR is
-``10 log10(signal / sum of noise powers)``. That is a multiple-choice knapsack; it is solved
-exactly by a dynamic programme over Pareto-optimal (cost, noise) states, pruned by
-feasibility and by a linear-programming lower bound (the greedy solution of the convex-hull
-relaxation), which never discards a state that could still beat the best plan found.
+"""The allocator: one option (weight width, input width) per entry, least predicted noise,
+under any combination of budgets.
+
+The objective is the additive-noise prediction (see :mod:`qwidgets.planning.choices`): the
+sum over entries and sides of each choice's model-output noise power; the predicted SQNR is
+``10 log10(signal / that sum)``. With several budgets this is a multiple-choice knapsack with
+several constraints, solved exactly as a mixed-integer linear programme by
+``scipy.optimize.milp`` (HiGHS): one binary variable per (entry, option), one equality row per
+entry (exactly one option), one row per budget. The Pareto front for one budget is the exact
+dynamic programme over (cost, noise) states in :mod:`qwidgets.planning.front`.
 """
 
 from __future__ import annotations
 
 import math
-from fractions import Fraction
-from numbers import Integral, Real
 
 import numpy as np
+from scipy.optimize import Bounds, LinearConstraint, linprog, milp
+from scipy.sparse import csr_matrix
 
-from .costs import COSTS, FLOAT_BITS, layer_bops, weight_storage_bits
-from .table import SensitivityTable
-
-_MAX_NOISE = 1e12  # noise power relative to the signal, cap (SQNR >= -120 dB) to keep sums finite
+from .choices import (
+    Menu,
+    build_menu,
+    ceil_unit,
+    check_budgets,
+    check_cost,
+    in_unit,
+    limit,
+)
+from .front import front, thin
 
 
 def plan_budget(table, *, weight_kib: float | None = None, mean_bits: float | None = None,
-                bops: float | None = None, input_bits: int | None = 8, kib_scope: str = "model"):
-    """The plan with the least predicted model-output noise that fits one budget.
+                bops: float | None = None, fixed=None, allowed_bits=None, input_bits: int | None = 8,
+                kib_scope: str = "model"):
+    """The plan with the least predicted model-output noise that meets every budget given.
 
-    Give exactly one of ``weight_kib`` (weight storage, KiB: with ``kib_scope="model"``, the
-    default, of the whole model, every floating-point weight the table does not plan counted
-    at its stored width (:meth:`SensitivityTable.unplanned_bits`); with ``"planned"``, of the
-    planned entries only),
-    ``mean_bits`` (mean weight bits per parameter) or ``bops`` (bit operations per sample).
-    ``input_bits`` is the width of the layers' inputs assumed for BOPs when the table chose only
-    weight widths (``quantize="weight"``; None: float inputs); tables that scanned input grids
-    use the chosen width. The result is the exact optimum of the additive-noise objective
-    (see the module docstring); ties go to the cheaper plan.
+    Budgets (give one or more; all must hold): ``weight_kib`` (weight storage, KiB: with
+    ``kib_scope="model"``, the default, of the whole model, every floating-point weight the
+    table does not plan counted at its stored width (:meth:`SensitivityTable.unplanned_bits`);
+    with ``"planned"``, of the planned entries only), ``mean_bits`` (mean weight bits per parameter), ``bops`` (bit operations per
+    sample: MACs x weight bits x input bits). With a table scanned with
+    ``quantize="separate"`` each entry gets a weight width and an input width.
+
+    ``fixed`` pins entries: ``{"conv1": 8}`` pins a weight width (the input width of a table
+    that quantized inputs only), ``{"conv1": (8, 8)}`` the weight and the input width.
+    ``allowed_bits`` restricts the menu of the other entries: ``{"weight": (4, 8), "input":
+    (8,)}``, or a plain tuple for the weight widths. ``input_bits`` is the input width counted
+    in BOPs where inputs stay float (None: float32). The result is the exact optimum of the
+    additive-noise objective. A budget that cannot be met raises ValueError naming it and the
+    smallest value that can be met (with the other budgets held).
 
     >>> import numpy as np
     >>> from qwidgets import SensitivityTable
@@ -43,39 +57,46 @@ def plan_budget(table, *, weight_kib: float | None = None, mean_bits: float | No
     >>> p = plan_budget(t, mean_bits=6)
     >>> p.bits, round(p.predicted_sqnr_db, 2)
     ({'layer0': 8, 'layer1': 4}, 19.59)
+    >>> plan_budget(t, mean_bits=8, fixed={"layer0": 4}).bits
+    {'layer0': 4, 'layer1': 8}
     """
-    cost, value = _one_budget(weight_kib=weight_kib, mean_bits=mean_bits, bops=bops)
-    if kib_scope not in ("model", "planned"):
-        raise ValueError(f"kib_scope must be 'model' or 'planned', got {kib_scope!r}")
-    input_bits = _check_input_bits(input_bits)
-    _check_table(table)
-    noise = _noise_matrix(table)
-    costs, unit = _cost_matrix(table, cost, input_bits)
-    fixed = table.unplanned_bits() if (cost == "weight_kib" and kib_scope == "model") else 0
-    limit = _limit(cost, value, table) - fixed
-    need = int(costs.min(axis=1).sum())
-    if need > limit:
-        rest = (f"; the model's other weights take {fixed / 8192:.4f} KiB at their stored width "
-                "(kib_scope='planned' budgets the planned entries only)") if fixed else ""
-        raise ValueError(
-            f"{cost}={value:g} is infeasible; the smallest feasible budget is "
-            f"{cost}={_ceil_unit(need + fixed, unit, cost)} (every layer at its cheapest scanned "
-            f"option{rest})"
-        )
-    choice = _solve(costs, noise, limit)
-    return _plan(table, choice, noise, input_bits)
+    budgets = check_budgets(weight_kib=weight_kib, mean_bits=mean_bits, bops=bops)
+    _check_kib_scope(kib_scope)
+    menu = build_menu(table, fixed=fixed, allowed_bits=allowed_bits, input_bits=input_bits)
+    costs = {k: menu.costs(table, k) for k in budgets}
+    other = {k: table.unplanned_bits() if (k == "weight_kib" and kib_scope == "model") else 0
+             for k in budgets}  # exact integers: bits of the weights the table does not plan
+    limits = {k: limit(k, v, table) - other[k] for k, v in budgets.items()}
+    for k, v in budgets.items():  # each budget alone
+        need = sum(int(c.min()) for c in costs[k])
+        if need > limits[k]:
+            rest = (f"; the model's other weights take {other[k] / 8192:.4f} KiB at their stored width "
+                    "(kib_scope='planned' budgets the planned entries only)") if other[k] else ""
+            raise ValueError(f"{k}={v:g} is infeasible; the smallest feasible budget is "
+                             f"{k}={ceil_unit(need + other[k], k, table)} (every entry at its cheapest "
+                             f"option{rest})")
+    choice = solve(menu.noise, [costs[k] for k in budgets], [limits[k] for k in budgets])
+    if choice is None:  # each budget alone can be met, together they cannot
+        k = next(iter(budgets))
+        others = [j for j in budgets if j != k]
+        need = least_cost(costs[k], [costs[j] for j in others], [limits[j] for j in others]) + other[k]
+        held = " and ".join(f"{j}={budgets[j]:g}" for j in others)
+        raise ValueError(f"{k}={budgets[k]:g} is infeasible together with {held}; with {held} the "
+                         f"smallest feasible budget is {k}={ceil_unit(need, k, table)}")
+    return make_plan(table, menu, choice)
 
 
 def pareto_front(table, cost: str = "weight_kib", *, input_bits: int | None = 8,
-                 max_points: int | None = 512, kib_scope: str = "model") -> list:
-    """Every Pareto-optimal plan: ``[(cost, predicted_sqnr_db, Plan), ...]`` by rising cost.
+                 max_points: int | None = 512, kib_scope: str = "model", fixed=None,
+                 allowed_bits=None) -> list:
+    """Every Pareto-optimal plan for one budget: ``[(cost, predicted_sqnr_db, Plan), ...]`` by
+    rising cost.
 
     ``cost``: ``"weight_kib"``, ``"mean_bits"`` or ``"bops"``. Each point is the exact optimum
     of :func:`plan_budget` at its own cost; no other plan is both cheaper and less noisy.
     The front of a large model can hold tens of thousands of points: with more than
     ``max_points`` it is thinned to that many, spread evenly in cost, both ends kept (``None``
-    keeps every point). ``kib_scope`` as in :func:`plan_budget`: weight KiB of the whole model
-    (default) or of the planned entries only.
+    keeps every point). ``kib_scope``, ``fixed`` and ``allowed_bits`` as in :func:`plan_budget`.
 
     >>> import numpy as np
     >>> from qwidgets import SensitivityTable
@@ -84,328 +105,110 @@ def pareto_front(table, cost: str = "weight_kib", *, input_bits: int | None = 8,
     >>> [(c, round(s, 2)) for c, s, _ in pareto_front(t, "mean_bits")]
     [(4.0, 9.59), (6.0, 19.59), (8.0, 29.59)]
     """
-    cost = _check_cost(cost)
-    input_bits = _check_input_bits(input_bits)
-    if kib_scope not in ("model", "planned"):
-        raise ValueError(f"kib_scope must be 'model' or 'planned', got {kib_scope!r}")
-    if max_points is not None and (isinstance(max_points, bool) or not isinstance(max_points, Integral)
+    cost = check_cost(cost)
+    if max_points is not None and (isinstance(max_points, bool) or not isinstance(max_points, int)
                                    or max_points < 2):
         raise ValueError(f"max_points must be None or an int >= 2, got {max_points!r}")
-    noise = _noise_matrix(table)
-    costs, unit = _cost_matrix(table, cost, input_bits)
-    front_c, _, choices = _front(costs, noise)
+    _check_kib_scope(kib_scope)
+    menu = build_menu(table, fixed=fixed, allowed_bits=allowed_bits, input_bits=input_bits)
+    front_c, _, choices = front(menu.costs(table, cost), menu.noise)
     if cost == "weight_kib" and kib_scope == "model":
         front_c = front_c + table.unplanned_bits()  # exact integers: bits of the other weights
-    keep = _thin(front_c, max_points)
     out = []
-    for j in keep:
-        plan = _plan(table, choices[j], noise, input_bits)
-        out.append((_in_unit(int(front_c[j]), unit, cost), plan.predicted_sqnr_db, plan))
+    for j in thin(front_c, max_points):
+        plan = make_plan(table, menu, choices[j])
+        out.append((in_unit(int(front_c[j]), cost, table), plan.predicted_sqnr_db, plan))
     return out
 
 
-def _one_budget(**budgets) -> tuple[str, float]:
-    given = {k: v for k, v in budgets.items() if v is not None}
-    if len(given) != 1:
-        names = ", ".join(budgets)
-        got = ", ".join(given) if given else "none"
-        raise ValueError(f"give exactly one budget ({names}); got {got}")
-    (name, value), = given.items()
-    if isinstance(value, bool) or not isinstance(value, Real):
-        raise TypeError(f"{name} must be a number, got {value!r} ({type(value).__name__})")
-    if not math.isfinite(value) or value <= 0:
-        raise ValueError(f"{name} must be a finite number > 0, got {value}")
-    return name, float(value)
+def _check_kib_scope(kib_scope) -> None:
+    if kib_scope not in ("model", "planned"):
+        raise ValueError(f"kib_scope must be 'model' or 'planned', got {kib_scope!r}")
 
 
-def _check_cost(cost) -> str:
-    if cost not in COSTS:
-        raise ValueError(f"cost must be one of {', '.join(map(repr, COSTS))}, got {cost!r}")
-    return cost
+def _flat(rows: list) -> np.ndarray:
+    return np.concatenate([np.asarray(r, dtype=float) for r in rows])
 
 
-def _check_input_bits(input_bits) -> int | None:
-    if input_bits is None:
-        return None
-    if isinstance(input_bits, bool) or not isinstance(input_bits, Integral) or not 1 <= input_bits <= 16:
-        raise ValueError(f"input_bits must be None (float inputs) or an int in 1..16, got {input_bits!r}")
-    return int(input_bits)
+def _choice_matrix(sizes: list) -> csr_matrix:
+    """The rows 'exactly one option per entry' over the flattened option variables."""
+    n = int(sum(sizes))
+    entry = np.repeat(np.arange(len(sizes)), sizes)
+    return csr_matrix((np.ones(n), (entry, np.arange(n))), shape=(len(sizes), n))
 
 
-def _check_table(table):
-    if not isinstance(table, SensitivityTable):
-        raise TypeError(f"table must be a SensitivityTable, got {type(table).__name__}")
-    return table
+def _budget_rows(costs: list, limits: list) -> tuple[np.ndarray, np.ndarray]:
+    """Budget rows divided by their limits (each row's scale near 1 for the solver)."""
+    a = np.vstack([_flat(c) for c in costs])
+    lim = np.array(limits, dtype=float)
+    scale = np.maximum(lim, 1.0)
+    return a / scale[:, None], lim / scale
 
 
-def _noise_matrix(table) -> np.ndarray:
-    """Model-output noise power of each (layer, option), relative to the signal power."""
-    _check_table(table)
-    sq = table.sqnr_array("model")
-    if sq is None:
-        raise ValueError("the table holds no model-scope SQNR; plan budgets need it: "
-                         "scan with scope='model' or scope='both'")
-    with np.errstate(over="ignore"):
-        noise = np.power(10.0, -sq / 10.0)
-    return np.minimum(noise, _MAX_NOISE)
+def _objective(noise: list, sizes: list, a_one, a_b, b_b) -> np.ndarray:
+    """Noise shifted by each entry's least noise (a constant) and scaled so the relaxation's
+    optimum is about 1: HiGHS stops within an absolute gap of 1e-6, so the scale sets how
+    close to the optimum the answer is (relative 1e-6 of the shifted objective or better)."""
+    c = _flat([n - n.min() for n in noise])
+    if not np.any(c > 0):
+        return c
+    lp = linprog(c, A_ub=a_b, b_ub=b_b, A_eq=a_one, b_eq=np.ones(len(sizes)), bounds=(0, 1),
+                 method="highs")
+    scale = lp.fun if lp.status == 0 and lp.fun > 0 else float(c[c > 0].min())
+    return c / max(scale, float(c.max()) * 1e-9)  # coefficients within nine decades
 
 
-def _cost_matrix(table, cost: str, input_bits) -> tuple[np.ndarray, int]:
-    """Integer cost of each (layer, option) and the divisor that turns it into the unit."""
-    qw = table.quantize in ("weight", "both")
-    qi = table.quantize in ("input", "both")
-    rows = []
-    for name in table.layers:
-        p, ch, macs = table.params(name), table.weight_channels(name), table.macs(name)
-        row = []
-        for b in table.bits:
-            wb = b if qw else None
-            if cost == "weight_kib":
-                row.append(weight_storage_bits(p, wb, ch))
-            elif cost == "mean_bits":
-                row.append(p * (b if qw else FLOAT_BITS))
-            else:
-                row.append(layer_bops(macs, wb, b if qi else input_bits))
-        rows.append(row)
-    costs = np.array(rows, dtype=np.int64)
-    unit = 8192 if cost == "weight_kib" else (_total_params(table) if cost == "mean_bits" else 1)
-    return costs, unit
-
-
-def _total_params(table) -> int:
-    return sum(table.params(n) for n in table.layers)
-
-
-def _limit(cost: str, value: float, table) -> int:
-    """The budget as an integer bound on the summed integer costs.
-
-    Computed in exact fractions; the factor ``1 + 2**-50`` (a few float ulps) lets a budget
-    that is a float rounding of an exact cost, e.g. ``mean_bits = total_bits / params``, admit
-    that cost.
-    """
-    v = Fraction(value) * (1 + Fraction(1, 2**50))
-    if cost == "weight_kib":
-        return math.floor(v * 8192)
-    if cost == "mean_bits":
-        return math.floor(v * _total_params(table))
-    return math.floor(v)
-
-
-def _in_unit(c: int, unit: int, cost: str):
-    return c if cost == "bops" else c / unit
-
-
-def _ceil_unit(c: int, unit: int, cost: str) -> str:
-    if cost == "bops":
-        return str(c)
-    # round up in the last printed digit, so the stated budget really is feasible
-    return f"{math.ceil(c / unit * 1e4) / 1e4:.4f}"
-
-
-def _pareto_step(c, n, costs_i, noise_i, extra_keep=None):
-    """All (state, option) sums, sorted by cost, dominated ones dropped."""
-    k = costs_i.shape[0]
-    cc = (c[:, None] + costs_i[None, :]).ravel()
-    nn = (n[:, None] + noise_i[None, :]).ravel()
-    par = np.repeat(np.arange(c.shape[0]), k)
-    opt = np.tile(np.arange(k), c.shape[0])
-    if extra_keep is not None:
-        keep = extra_keep(cc, nn)
-        cc, nn, par, opt = cc[keep], nn[keep], par[keep], opt[keep]
-    order = np.lexsort((nn, cc))
-    cc, nn, par, opt = cc[order], nn[order], par[order], opt[order]
-    if cc.size == 0:
-        return cc, nn, par, opt
-    best_before = np.minimum.accumulate(nn)
-    keep = np.empty(cc.size, dtype=bool)
-    keep[0] = True
-    keep[1:] = nn[1:] < best_before[:-1]  # strictly less noise than every cheaper state
-    return cc[keep], nn[keep], par[keep], opt[keep]
-
-
-def _backtrack(parents, idx: np.ndarray) -> np.ndarray:
-    """Option indices (points x layers) of the final states ``idx``."""
-    n_layers = len(parents)
-    out = np.empty((idx.size, n_layers), dtype=np.int64)
-    for i in range(n_layers - 1, -1, -1):
-        par, opt = parents[i]
-        out[:, i] = opt[idx]
-        idx = par[idx]
-    return out
-
-
-def _front(costs: np.ndarray, noise: np.ndarray):
-    """The exact Pareto front: (costs, noises, choices) sorted by rising cost."""
-    c, n = np.zeros(1, np.int64), np.zeros(1)
-    parents = []
-    for i in range(costs.shape[0]):
-        c, n, par, opt = _pareto_step(c, n, costs[i], noise[i])
-        parents.append((par, opt))
-    return c, n, _backtrack(parents, np.arange(c.size))
-
-
-def _solve(costs: np.ndarray, noise: np.ndarray, limit: int) -> np.ndarray:
-    """Exact multiple-choice knapsack: one option per layer, total cost <= limit, least noise.
-
-    A dynamic programme over Pareto-optimal (cost, noise) states, layer by layer, that drops
-    every state whose noise plus the relaxation's lower bound for the remaining layers exceeds
-    a threshold. With the threshold at a known feasible plan's noise that is exact. Tighter
-    thresholds, between the root lower bound and that plan, prune far more: a pass that
-    still ends in a plan at or under its threshold has kept every prefix of the optimum (their
-    bounds are at most the optimum), so its result is optimal too; a pass that ends in
-    nothing is repeated with a doubled margin.
-    """
-    n_layers = costs.shape[0]
-    bound = _LowerBound(costs, noise)
-    incumbent = _complete(costs, noise, limit, bound, 0, np.zeros(0, np.int64))
-    best = float(noise[np.arange(n_layers), incumbent].sum())
-    root = float(bound(0, np.array([limit]))[0])
-    gap = best - root
-    margin = gap / 16
-    while margin < gap:
-        found = _bounded_pass(costs, noise, limit, bound, root + margin)
-        if found is not None:
-            return found
-        margin *= 2
-    found = _bounded_pass(costs, noise, limit, bound, best)
-    return incumbent if found is None else found
-
-
-def _bounded_pass(costs, noise, limit: int, bound: _LowerBound, threshold: float):
-    """The least-noise plan among states whose bound stays within ``threshold`` (None if none)."""
-    min_rest = np.concatenate([np.cumsum(costs.min(axis=1)[::-1])[::-1], [0]])
-    tol = abs(threshold) * 1e-9 + 1e-300  # float slack in the bound's sums: never prune the optimum
-
-    c, n = np.zeros(1, np.int64), np.zeros(1)
-    parents = []
-    for i in range(costs.shape[0]):
-        def keep(cc, nn, i=i):
-            ok = cc + min_rest[i + 1] <= limit
-            ok &= nn + bound(i + 1, limit - cc) <= threshold + tol
-            return ok
-
-        c, n, par, opt = _pareto_step(c, n, costs[i], noise[i], keep)
-        parents.append((par, opt))
-        if c.size == 0:
+def solve(noise: list, costs: list, limits: list) -> np.ndarray | None:
+    """Option index per entry minimising the summed noise with every cost row <= its limit
+    (None when no choice meets every budget). Exact (the integer feasibility is re-checked in
+    integers; the solver's tolerances never let a budget be exceeded)."""
+    sizes = [len(n) for n in noise]
+    a_one = _choice_matrix(sizes)
+    a_b, b_b = _budget_rows(costs, limits)
+    c = _objective(noise, sizes, a_one, a_b, b_b)
+    starts = np.concatenate([[0], np.cumsum(sizes)[:-1]])
+    rhs = b_b.copy()
+    for _ in range(8):
+        res = milp(c, integrality=np.ones(c.size), bounds=Bounds(0, 1),
+                   constraints=[LinearConstraint(a_one, 1, 1), LinearConstraint(a_b, -np.inf, rhs)],
+                   options={"mip_rel_gap": 0.0})
+        if res.status == 2 or res.x is None:  # infeasible
             return None
-    j = int(np.argmin(n))
-    if n[j] > threshold + tol:
-        return None
-    return _backtrack(parents, np.array([j]))[0]
+        choice = np.array([int(np.argmax(res.x[s:s + k])) for s, k in zip(starts, sizes, strict=True)])
+        over = [sum(int(costs[j][i][k]) for i, k in enumerate(choice)) - limits[j]
+                for j in range(len(costs))]
+        if all(o <= 0 for o in over):
+            return choice
+        # within the solver's feasibility tolerance but over in integers: tighten and repeat
+        for j, o in enumerate(over):
+            if o > 0:
+                rhs[j] -= (o + 0.5) / max(float(limits[j]), 1.0)
+    return None
 
 
-def _complete(costs: np.ndarray, noise: np.ndarray, budget: int, bound: _LowerBound, first: int,
-              prefix: np.ndarray) -> np.ndarray:
-    """``prefix`` (options of layers before ``first``) completed greedily within ``budget``.
-
-    The relaxation's greedy order rounded down (hull segments by noise removed per unit cost,
-    each taken while it fits), then single upgrades that remove the most noise within what is
-    left. A feasible choice, the start for the bound's pruning.
-    """
-    sub_c, sub_n = costs[first:], noise[first:]
-    rows = np.arange(sub_c.shape[0])
-    cur = np.array(bound.start[first:], dtype=np.int64)
-    slack = budget - int(sub_c[rows, cur].sum())
-    blocked = set()
-    for layer, a, b in bound.order:
-        layer -= first
-        if layer < 0 or layer in blocked or cur[layer] != a:
-            continue
-        step = int(sub_c[layer, b] - sub_c[layer, a])
-        if step <= slack:
-            cur[layer] = b
-            slack -= step
-        else:
-            blocked.add(layer)  # later segments of this layer build on this one
-    for _ in range(sub_c.size):
-        dc = sub_c - sub_c[rows, cur][:, None]
-        dn = sub_n - sub_n[rows, cur][:, None]
-        dn = np.where((dc <= slack) & (dn < 0), dn, 0.0)
-        flat = int(np.argmin(dn)) if dn.size else 0
-        if not dn.size or dn.flat[flat] >= 0:
-            break
-        i, k = divmod(flat, sub_c.shape[1])
-        slack -= int(dc[i, k])
-        cur[i] = k
-    return np.concatenate([np.asarray(prefix, dtype=np.int64), cur])
+def least_cost(cost: list, other_costs: list, other_limits: list) -> int:
+    """The least total of ``cost`` over choices meeting the other budgets (exact integers)."""
+    choice = solve(cost_as_noise(cost), other_costs, other_limits)
+    if choice is None:
+        raise ValueError("the other budgets cannot be met either")
+    return int(sum(int(c[k]) for c, k in zip(cost, choice, strict=True)))
 
 
-class _LowerBound:
-    """LP-relaxation lower bound on the noise of layers ``i..`` given a remaining budget.
-
-    Each layer's options are reduced to the lower convex hull of its (cost, noise) points;
-    taking hull segments in order of noise removed per unit cost (fractionally for the last)
-    is the optimum of the relaxation, hence a lower bound on any integer choice.
-    """
-
-    def __init__(self, costs: np.ndarray, noise: np.ndarray):
-        n_layers = costs.shape[0]
-        base_c = np.zeros(n_layers)
-        base_n = np.zeros(n_layers)
-        segs = []  # (layer, cost step, noise removed, efficiency)
-        ends = []  # (layer, option at the segment's start, option at its end)
-        self.start = []  # each layer's hull start: its cheapest, least noisy option
-        for i in range(n_layers):
-            hull = _lower_hull(costs[i].astype(float), noise[i])
-            self.start.append(hull[0])
-            base_c[i], base_n[i] = costs[i, hull[0]], noise[i, hull[0]]
-            for a, b in zip(hull[:-1], hull[1:], strict=True):
-                dc = float(costs[i, b] - costs[i, a])
-                dn = float(noise[i, a] - noise[i, b])
-                segs.append((i, dc, dn, dn / dc))
-                ends.append((i, a, b))
-        seg = np.array(segs, dtype=float).reshape(-1, 4)
-        # the relaxation's greedy order (segments of one layer stay in order: convex hull)
-        self.order = [ends[j] for j in np.argsort(-seg[:, 3], kind="stable")]
-        self._stages = []
-        for i in range(n_layers + 1):
-            s = seg[seg[:, 0] >= i]
-            s = s[np.argsort(-s[:, 3], kind="stable")]
-            self._stages.append((base_c[i:].sum(), base_n[i:].sum(), np.cumsum(s[:, 1]),
-                                 np.cumsum(s[:, 2]), s[:, 3]))
-
-    def __call__(self, i: int, remaining: np.ndarray) -> np.ndarray:
-        c0, n0, cum_c, cum_n, eff = self._stages[i]
-        r = remaining.astype(float) - c0
-        if cum_c.size == 0:
-            return np.full(r.shape, n0)
-        k = np.searchsorted(cum_c, r, side="right")
-        prev = np.maximum(k - 1, 0)
-        took_c = np.where(k > 0, cum_c[prev], 0.0)
-        took_n = np.where(k > 0, cum_n[prev], 0.0)
-        part = np.where(k < cum_c.size, eff[np.minimum(k, cum_c.size - 1)], 0.0)
-        gain = took_n + np.maximum(r - took_c, 0.0) * part
-        return np.where(r < 0, np.inf, n0 - gain)
+def cost_as_noise(cost: list) -> list:
+    return [np.asarray(c, dtype=float) for c in cost]
 
 
-def _lower_hull(c: np.ndarray, n: np.ndarray) -> list[int]:
-    """Indices of the lower-left convex hull of points (c, n), by rising cost, falling noise."""
-    pts: list[int] = []
-    for j in np.lexsort((n, c)):
-        if pts and n[j] >= n[pts[-1]]:
-            continue  # no cheaper-or-equal point is noisier: dominated
-        while len(pts) >= 2:
-            a, b = pts[-2], pts[-1]
-            if (n[b] - n[a]) * (c[j] - c[a]) >= (n[j] - n[a]) * (c[b] - c[a]):
-                pts.pop()  # b lies on or above the segment a -> j
-            else:
-                break
-        pts.append(int(j))
-    return pts
-
-
-def _thin(front_c: np.ndarray, max_points: int | None) -> list[int]:
-    if max_points is None or front_c.size <= max_points:
-        return list(range(front_c.size))
-    targets = np.linspace(float(front_c[0]), float(front_c[-1]), max_points)
-    idx = np.clip(np.searchsorted(front_c, targets), 0, front_c.size - 1)
-    lower = np.clip(idx - 1, 0, front_c.size - 1)
-    pick = np.where(np.abs(front_c[lower] - targets) < np.abs(front_c[idx] - targets), lower, idx)
-    return sorted(set(pick.tolist()) | {0, front_c.size - 1})
-
-
-def _plan(table, choice, noise: np.ndarray, input_bits):
-    total = float(noise[np.arange(len(choice)), choice].sum())
-    predicted = math.inf if total == 0 else -10.0 * math.log10(total)
-    bits = {name: table.bits[int(k)] for name, k in zip(table.layers, choice, strict=True)}
-    return table.make_plan(bits, input_bits=input_bits, predicted_sqnr_db=predicted)
+def make_plan(table, menu: Menu, choice):
+    noise = sum(float(n[int(k)]) for n, k in zip(menu.noise, choice, strict=True))
+    predicted = math.inf if noise == 0 else -10.0 * math.log10(noise)
+    picked = [menu.options[i][int(k)] for i, k in enumerate(choice)]
+    q = table.quantize
+    if q == "input":
+        bits = {n: ib for n, (_, ib) in zip(menu.names, picked, strict=True)}
+        return table.make_plan(bits, input_bits=menu.input_bits, predicted_sqnr_db=predicted)
+    bits = {n: wb for n, (wb, _) in zip(menu.names, picked, strict=True)}
+    if q == "separate":
+        inputs = {n: ib for n, (_, ib) in zip(menu.names, picked, strict=True)}
+        return table.make_plan(bits, input_bits=inputs, predicted_sqnr_db=predicted,
+                               assumed_input_bits=menu.input_bits)
+    return table.make_plan(bits, input_bits=menu.input_bits, predicted_sqnr_db=predicted)

@@ -40,8 +40,10 @@ class SensitivityTable:
                  layer_sqnr: np.ndarray | None, model_sqnr: np.ndarray | None,
                  weight_grids: Mapping[str, Sequence[UniformGrid]] | None,
                  input_grids: Mapping[str, Sequence[UniformGrid]] | None, n_samples: int,
-                 coverage: Coverage | None = None):
+                 coverage: Coverage | None = None, input_bits: Sequence[int] = (),
+                 input_layer_sqnr: np.ndarray | None = None, input_model_sqnr: np.ndarray | None = None):
         self.layers = list(layers)
+        self._index = {n: i for i, n in enumerate(self.layers)}
         self.bits = tuple(int(b) for b in bits)
         self.quantize = quantize
         self.method = method
@@ -65,41 +67,89 @@ class SensitivityTable:
         }
         self._grids = {
             "weight": None if weight_grids is None else {n: list(weight_grids[n]) for n in self.layers},
-            "input": None if input_grids is None else {n: list(input_grids[n]) for n in self.layers},
+            "input": None if input_grids is None else {
+                n: None if input_grids.get(n) is None else list(input_grids[n]) for n in self.layers},
         }
+        # quantize="separate": input rows, one column per input width, NaN rows for entries
+        # with no input rows (their input_grids entry is None)
+        self._input_bits = tuple(int(b) for b in input_bits)
+        if (quantize == "separate") != bool(self._input_bits):
+            raise ValueError("input_bits must be given exactly for a table scanned with quantize='separate'")
+        ishape = (len(self.layers), len(self._input_bits))
+        self._input_sqnr = {}
+        for scope, arr in (("layer", input_layer_sqnr), ("model", input_model_sqnr)):
+            if arr is not None and np.shape(arr) != ishape:
+                raise ValueError(f"input_{scope}_sqnr must have shape {ishape} (entries x input bits), "
+                                 f"got {np.shape(arr)}")
+            if (arr is None) != (self._sqnr[scope] is None) and quantize == "separate":
+                raise ValueError(f"input_{scope}_sqnr must be given exactly when {scope}_sqnr is")
+            self._input_sqnr[scope] = None if arr is None else np.asarray(arr, dtype=float).copy()
+        self._settings: dict = {}
 
     # ------------------------------------------------------------------ look-ups
     def _row(self, layer: str) -> int:
         try:
-            return self.layers.index(layer)
-        except ValueError:
+            return self._index[layer]
+        except (KeyError, TypeError):
             raise KeyError(f"layer {layer!r} is not in the table; layers: {self.layers}") from None
 
-    def _col(self, bits: int) -> int:
+    def _col(self, bits: int, source: str = "weight") -> int:
+        widths = self._input_bits if source == "input" and self.quantize == "separate" else self.bits
         try:
-            return self.bits.index(bits)
+            return widths.index(bits)
         except ValueError:
-            raise KeyError(f"bits={bits!r} was not scanned; scanned bit widths: {list(self.bits)}") from None
+            raise KeyError(f"bits={bits!r} was not scanned for the {source}; scanned widths: "
+                           f"{list(widths)}") from None
+
+    @property
+    def input_bits(self) -> tuple[int, ...]:
+        """The scanned input widths: those of ``quantize="separate"``, the table's ``bits`` when
+        inputs were quantized with them ("input", "both"), else empty."""
+        if self.quantize == "separate":
+            return self._input_bits
+        return self.bits if self.quantize in ("input", "both") else ()
+
+    def has_input_rows(self, layer: str) -> bool:
+        """Whether ``layer``'s input was scanned (weight-only entries have no input rows)."""
+        g = self._grids["input"]
+        return g is not None and g[self.layers[self._row(layer)]] is not None
 
     @property
     def scopes(self) -> tuple[str, ...]:
         """The scopes this table holds: ``"layer"`` and / or ``"model"``."""
         return tuple(s for s in ("layer", "model") if self._sqnr[s] is not None)
 
-    def sqnr_array(self, scope: str = "model") -> np.ndarray | None:
-        """SQNR in dB as a (layers x bits) array (a copy), or None when that scope was not scanned."""
+    def _source(self, source: str) -> str:
+        if source not in ("weight", "input"):
+            raise ValueError(f"source must be 'weight' or 'input', got {source!r}")
+        if source == "input" and self.quantize == "weight":
+            raise ValueError("the table holds no input rows (quantize='weight'); scan with "
+                             "quantize='separate' to measure inputs on their own")
+        return source
+
+    def sqnr_array(self, scope: str = "model", source: str = "weight") -> np.ndarray | None:
+        """SQNR in dB as an (entries x widths) array (a copy), or None when that scope was not
+        scanned. ``source="input"`` of a ``quantize="separate"`` table: the input rows, one
+        column per input width (NaN for entries with no input rows); on other tables the one
+        set of rows, measured with the table's ``quantize``."""
         if scope not in ("layer", "model"):
             raise ValueError(f"scope must be 'layer' or 'model', got {scope!r}")
-        arr = self._sqnr[scope]
+        source = self._source(source)
+        arr = self._input_sqnr[scope] if source == "input" and self.quantize == "separate" \
+            else self._sqnr[scope]
         return None if arr is None else arr.copy()
 
-    def sqnr_db(self, layer: str, bits: int, scope: str = "model") -> float:
+    def sqnr_db(self, layer: str, bits: int, scope: str = "model", source: str = "weight") -> float:
         """SQNR (dB) of ``layer``'s output (scope ``"layer"``) or the model's output (``"model"``)
-        with only that layer quantized at ``bits``."""
-        arr = self.sqnr_array(scope)
+        with only that entry quantized at ``bits``: its weights (``source="weight"``) or its
+        input (``"input"``, tables scanned with ``quantize="separate"``; other tables have one
+        set of rows, measured with their ``quantize``)."""
+        arr = self.sqnr_array(scope, source)
         if arr is None:
             raise ValueError(f"the table holds no {scope}-scope SQNR; scan with scope={scope!r} or 'both'")
-        return float(arr[self._row(layer), self._col(bits)])
+        if source == "input" and self.quantize == "separate" and not self.has_input_rows(layer):
+            raise ValueError(f"{layer!r} has no input rows (its input was not scanned)")
+        return float(arr[self._row(layer), self._col(bits, source)])
 
     def params(self, layer: str) -> int:
         """Number of weights of ``layer`` (bias not counted)."""
@@ -177,89 +227,133 @@ class SensitivityTable:
         return None if g is None else g[self.layers[self._row(layer)]][self._col(bits)]
 
     def input_grid(self, layer: str, bits: int) -> UniformGrid | None:
-        """The input grid fitted for ``layer`` at ``bits`` (None if inputs were not scanned)."""
+        """The input grid fitted for ``layer`` at ``bits`` (an input width of
+        :attr:`input_bits`; None if the entry's input was not scanned)."""
         g = self._grids["input"]
-        return None if g is None else g[self.layers[self._row(layer)]][self._col(bits)]
+        if g is None or g[self.layers[self._row(layer)]] is None:
+            return None
+        return g[self.layers[self._row(layer)]][self._col(bits, "input")]
 
     # ------------------------------------------------------------------ plans
-    def make_plan(self, bits: Mapping[str, int], *, input_bits: int | None = 8,
-                  predicted_sqnr_db: float | None = None) -> Plan:
-        """A :class:`Plan` with the scanned grids of the given bit width per layer.
+    def make_plan(self, bits: Mapping[str, int], *, input_bits: int | Mapping[str, int | None] | None = 8,
+                  predicted_sqnr_db: float | None = None, assumed_input_bits: int | None = None) -> Plan:
+        """A :class:`Plan` with the scanned grids of the given width per entry.
+
+        ``bits``: entry -> weight width (the input width for a ``quantize="input"`` table).
+        ``input_bits``: on a ``quantize="separate"`` table, the input width of each entry (a
+        dict; entries left out or set to None keep float inputs) or one width for every entry
+        with input rows; on a ``quantize="weight"`` table, the input width BOPs assume (one
+        number or None). ``assumed_input_bits``: BOPs' input width where inputs stay float
+        (default: ``input_bits`` when it is one number, else 8).
 
         >>> t = SensitivityTable.synthetic(np.array([[12.0, 36.0]]), params=[64], bits=(2, 6))
         >>> t.make_plan({"layer0": 6}).bits
         {'layer0': 6}
+        >>> s = SensitivityTable.synthetic(np.array([[12.0, 36.0]]), params=[64], bits=(2, 6),
+        ...                                input_sqnr_db=np.array([[30.0, 40.0]]), input_bits=(4, 8))
+        >>> p = s.make_plan({"layer0": 2}, input_bits={"layer0": 8})
+        >>> p.bits, p.input_bits
+        ({'layer0': 2}, {'layer0': 8})
         """
         if not isinstance(bits, Mapping) or not bits:
-            raise ValueError("bits must be a non-empty mapping from layer name to bit width")
+            raise ValueError("bits must be a non-empty mapping from entry name to bit width")
+        unknown = [n for n in bits if n not in self._index]
+        if unknown:
+            raise KeyError(f"layers {unknown} are not in the table; layers: {self.layers}")
+        per_entry = isinstance(input_bits, Mapping)
+        if per_entry or self.quantize == "separate":
+            if self.quantize != "separate":
+                raise ValueError("input_bits per entry needs a table scanned with quantize='separate' "
+                                 f"(this one: quantize={self.quantize!r})")
+            if per_entry:
+                extra = [n for n in input_bits if n not in bits]
+                if extra:
+                    raise KeyError(f"input_bits names {extra}, which bits does not plan")
+        elif input_bits is not None:
+            check_bits(input_bits, "input_bits")
+        if assumed_input_bits is None:
+            assumed_input_bits = 8 if per_entry or input_bits is None and self.quantize == "separate" \
+                else input_bits
         settings, chosen = {}, {}
         for name in self.layers:
             if name not in bits:
                 continue
             b = bits[name]
-            self._col(b)
-            settings[name] = LayerSetting(weight=self.weight_grid(name, b), input=self.input_grid(name, b))
+            if self.quantize == "separate":
+                ib = input_bits.get(name) if per_entry else (input_bits if self.has_input_rows(name) else None)
+                if ib is not None and not self.has_input_rows(name):
+                    raise ValueError(f"input_bits[{name!r}]: {name!r} has no input rows")
+            else:
+                ib = b if self.quantize in ("input", "both") else None
+            settings[name] = self._setting(name, b, ib)
             chosen[name] = int(b)
-        unknown = [n for n in bits if n not in self._info]
-        if unknown:
-            raise KeyError(f"layers {unknown} are not in the table; layers: {self.layers}")
-        return Plan(settings, chosen, fingerprint=self.fingerprint,
-                    weight_shapes={n: self.weight_shape(n) for n in settings},
-                    macs={n: self.macs(n) for n in settings},
-                    assumed_input_bits=None if self.quantize != "weight" else input_bits,
-                    predicted_sqnr_db=predicted_sqnr_db,
-                    entries={n: {"kind": self.kind(n), "has_input": self.has_input(n),
-                                 "shared_with": self.shared_with(n),
-                                 "weight_digest": self.weight_digest(n)} for n in settings},
-                    other_weight_bits=self.unplanned_bits(settings))
+        return Plan.unchecked(settings, chosen, fingerprint=self.fingerprint,
+                              weight_shapes={n: self._shape(n) for n in settings},
+                              macs={n: self._info[n]["macs"] for n in settings},
+                              assumed_input_bits=(None if self.quantize in ("input", "both")
+                                                  else assumed_input_bits),
+                              predicted_sqnr_db=predicted_sqnr_db,
+                              entries={n: self._entry_info(n) for n in settings},
+                              other_weight_bits=self.unplanned_bits(settings))
+
+    def _entry_info(self, name: str) -> dict:
+        return {"kind": self.kind(name), "has_input": self.has_input(name),
+                "shared_with": self.shared_with(name), "weight_digest": self.weight_digest(name)}
+
+    def _shape(self, name: str) -> tuple:
+        return tuple(int(d) for d in self._info[name]["weight_shape"])
+
+    def _setting(self, name: str, b: int, ib: int | None) -> LayerSetting:
+        """The LayerSetting of one entry's choice (cached: plans of a front share them)."""
+        key = (name, b, ib)
+        s = self._settings.get(key)
+        if s is None:
+            if self.quantize == "input":
+                s = LayerSetting(input=self.input_grid(name, self.bits[self._col(b)]))
+            else:
+                w = self.weight_grid(name, self.bits[self._col(b)])
+                x = None if ib is None else self.input_grid(name, ib)
+                s = LayerSetting(weight=w, input=x)
+            self._settings[key] = s
+        return s
 
     # ------------------------------------------------------------------ display
     def to_rows(self) -> list[dict]:
-        """One dict per (layer, bit width): layer, type, bits, params, macs, layer / model SQNR."""
+        """One dict per (layer, bit width): layer, type, bits, params, macs, layer / model SQNR
+        (tables scanned with ``quantize="separate"``: weight rows, then input rows, with a
+        ``source`` key)."""
         rows = []
+        sources = [("weight", self.bits, self._sqnr)]
+        if self.quantize == "separate":
+            sources.append(("input", self._input_bits, self._input_sqnr))
         for i, name in enumerate(self.layers):
-            for j, b in enumerate(self.bits):
-                rows.append({
-                    "layer": name,
-                    "type": self.layer_type(name),
-                    "bits": b,
-                    "params": self.params(name),
-                    "macs": self.macs(name),
-                    "layer_sqnr_db": None if self._sqnr["layer"] is None else float(self._sqnr["layer"][i, j]),
-                    "model_sqnr_db": None if self._sqnr["model"] is None else float(self._sqnr["model"][i, j]),
-                })
+            for source, widths, arrs in sources:
+                if source == "input" and not self.has_input_rows(name):
+                    continue
+                for j, b in enumerate(widths):
+                    row = {
+                        "layer": name,
+                        "type": self.layer_type(name),
+                        "bits": b,
+                        "params": self.params(name),
+                        "macs": self.macs(name),
+                        "layer_sqnr_db": None if arrs["layer"] is None else float(arrs["layer"][i, j]),
+                        "model_sqnr_db": None if arrs["model"] is None else float(arrs["model"][i, j]),
+                    }
+                    if self.quantize == "separate":
+                        row["source"] = source
+                    rows.append(row)
         return rows
 
     def __repr__(self) -> str:
-        return (f"SensitivityTable({len(self.layers)} layers x bits {list(self.bits)}, "
+        extra = f", input bits {list(self._input_bits)}" if self.quantize == "separate" else ""
+        return (f"SensitivityTable({len(self.layers)} layers x bits {list(self.bits)}{extra}, "
                 f"quantize={self.quantize!r}, scopes={list(self.scopes)}; {self.coverage})")
 
     def _repr_html_(self) -> str:
-        import html
+        from .table_html import table_html
 
-        scope = "model" if "model" in self.scopes else "layer"
-        arr = self._sqnr[scope]
-        head = "".join(f"<th>{b} bits</th>" for b in self.bits)
-        lo, hi = (np.nanmin(arr[np.isfinite(arr)]), np.nanmax(arr[np.isfinite(arr)])) \
-            if np.isfinite(arr).any() else (0.0, 1.0)
-        body = []
-        for i, name in enumerate(self.layers):
-            cells = []
-            for v in arr[i]:
-                shade = 0.0 if not np.isfinite(v) or hi == lo else (v - lo) / (hi - lo)
-                bg = f"rgba(46,134,193,{0.08 + 0.5 * shade:.2f})"
-                cells.append(f'<td style="background:{bg};text-align:right">{fmt_db(v)}</td>')
-            shared = self.shared_with(name)
-            label = html.escape(name) + (f" <small>(also {html.escape(', '.join(shared))})</small>"
-                                         if shared else "")
-            body.append(f"<tr><td>{label}</td><td>{html.escape(self.layer_type(name))}</td>"
-                        f"<td>{'yes' if self.has_input(name) else 'weight only'}</td>"
-                        f'<td style="text-align:right">{self.params(name):,}</td>'
-                        f'<td style="text-align:right">{self.macs(name):,}</td>' + "".join(cells) + "</tr>")
-        return (f"<div><b>{scope.capitalize()}-output SQNR (dB)</b>, {self.quantize} quantized, "
-                f"one layer at a time ({self.n_samples} samples)<table>"
-                f"<tr><th>layer</th><th>type</th><th>input</th><th>weights</th><th>MACs / sample</th>{head}</tr>"
-                + "".join(body) + f"</table><small>{html.escape(str(self.coverage))}</small></div>")
+        return table_html(self)
 
     # ------------------------------------------------------------------ JSON
     def to_dict(self) -> dict:
@@ -276,9 +370,15 @@ class SensitivityTable:
                 entry[f"{scope}_sqnr_db"] = None if arr is None else [json_db(v) for v in arr[i]]
             for kind in ("weight", "input"):
                 g = self._grids[kind]
-                entry[f"{kind}_grids"] = None if g is None else [grid_to_dict(x) for x in g[name]]
+                entry[f"{kind}_grids"] = None if g is None or g[name] is None else [
+                    grid_to_dict(x) for x in g[name]]
+            for scope in ("layer", "model"):
+                arr = self._input_sqnr[scope]
+                entry[f"input_{scope}_sqnr_db"] = None if arr is None or not self.has_input_rows(name) \
+                    else [json_db(v) for v in arr[i]]
             layers.append(entry)
         return {"format": TABLE_FORMAT, "version": TABLE_VERSION, "bits": list(self.bits),
+                "input_bits": list(self._input_bits),
                 "quantize": self.quantize, "method": self.method, "per_channel": self.per_channel,
                 "fingerprint": self.fingerprint, "n_samples": self.n_samples,
                 "coverage": self.coverage.to_dict(), "layers": layers}
@@ -303,11 +403,19 @@ class SensitivityTable:
     # ------------------------------------------------------------------ synthetic
     @classmethod
     def synthetic(cls, model_sqnr_db, *, params: Sequence[int], bits: Sequence[int],
-                  macs: Sequence[int] | None = None, names: Sequence[str] | None = None
-                  ) -> SensitivityTable:
+                  input_sqnr_db=None, input_bits: Sequence[int] = (), macs: Sequence[int] | None = None,
+                  names: Sequence[str] | None = None) -> SensitivityTable:
         """A table from given model-scope SQNRs (for planning experiments, tests and benchmarks).
 
-        Each layer gets a ``(params, 1)`` weight with per-tensor grids of scale 1.
+        ``model_sqnr_db``: (entries x bits) weight rows. With ``input_sqnr_db`` (entries x
+        input_bits; a row of NaN: an entry with no input rows) the table is a
+        ``quantize="separate"`` one. Each entry gets a ``(params, 1)`` weight with per-tensor
+        grids of scale 1, and input grids of scale 1.
+
+        >>> t = SensitivityTable.synthetic([[10.0, 30.0]], params=[100], bits=(4, 8),
+        ...                                input_sqnr_db=[[25.0, 35.0]], input_bits=(6, 8))
+        >>> t.quantize, t.input_bits, t.sqnr_db("layer0", 6, source="input")
+        ('separate', (6, 8), 25.0)
         """
         arr = np.asarray(model_sqnr_db, dtype=float)
         if arr.ndim != 2 or arr.shape[0] != len(params) or arr.shape[1] != len(bits):
@@ -319,15 +427,22 @@ class SensitivityTable:
                     "model_pass": "-"} for n, p, m in zip(names, params, macs, strict=True)}
         grids = {n: [UniformGrid(b, 1.0) for b in bits] for n in names}
         fp = _hash_lines(f"{n}:{info[n]['weight_shape']}" for n in names)
-        return cls(layers=names, bits=bits, quantize="weight", method="mse", per_channel=False,
+        quantize, igrids, iarr = "weight", None, None
+        if input_sqnr_db is not None:
+            input_bits = tuple(check_bits(b, "input_bits") for b in input_bits)
+            iarr = np.asarray(input_sqnr_db, dtype=float)
+            if iarr.shape != (len(params), len(input_bits)) or not input_bits:
+                raise ValueError(f"input_sqnr_db must be (layers, input_bits) = ({len(params)}, "
+                                 f"{len(input_bits)}) with input_bits given, got {iarr.shape}")
+            quantize = "separate"
+            igrids = {n: None if np.isnan(iarr[i]).all() else [UniformGrid(b, 1.0) for b in input_bits]
+                      for i, n in enumerate(names)}
+        elif input_bits:
+            raise ValueError("input_bits needs input_sqnr_db")
+        return cls(layers=names, bits=bits, quantize=quantize, method="mse", per_channel=False,
                    fingerprint=fp, info=info, layer_sqnr=None, model_sqnr=arr, weight_grids=grids,
-                   input_grids=None, n_samples=1)
-
-
-def fmt_db(v: float) -> str:
-    if not np.isfinite(v):
-        return "exact" if v > 0 else "-inf"
-    return f"{v:.1f}"
+                   input_grids=igrids, n_samples=1, input_bits=input_bits if iarr is not None else (),
+                   input_model_sqnr=iarr)
 
 
 def _hash_lines(lines) -> str:

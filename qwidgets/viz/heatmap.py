@@ -7,7 +7,8 @@ from collections.abc import Sequence
 
 import numpy as np
 
-from ..planning.table import SensitivityTable, fmt_db
+from ..planning.table import SensitivityTable
+from ..planning.table_html import fmt_db
 
 __all__ = ["draw_heatmap", "plot_sensitivity"]
 

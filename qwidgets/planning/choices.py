@@ -1,0 +1,284 @@
+"""The menu the solver chooses from: one option per entry, its predicted noise and its costs.
+
+An option of an entry is a pair (weight width, input width); None stands for a side that
+stays float. What a table offers depends on how it was scanned:
+
+- ``quantize="weight"``: every scanned width for the weights, inputs float (BOPs count the
+  assumed ``input_bits``);
+- ``"input"``: every scanned width for the input, weights float;
+- ``"both"``: the same width for both;
+- ``"separate"``: every pair of a scanned weight width and a scanned input width (entries
+  with no input rows: weight widths only).
+
+The predicted noise of an option is the additive-noise prediction: quantizing a side at
+``b`` bits adds model-output noise power ``signal / 10**(SQNR(b) / 10)`` (its model-scope
+SQNR), and the noise powers of sides and entries add (Widrow & Kollar 2008). Costs are exact
+integers (see :mod:`qwidgets.planning.costs`), so budgets compare without rounding.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from fractions import Fraction
+from numbers import Integral, Real
+
+import numpy as np
+
+from .costs import COSTS, FLOAT_BITS, layer_bops, weight_storage_bits
+from .table import SensitivityTable
+
+MAX_NOISE = 1e12  # noise power relative to the signal, cap (SQNR >= -120 dB) to keep sums finite
+
+SOURCES = ("weight", "input")
+
+
+@dataclass(frozen=True)
+class Menu:
+    """Options per entry: ``options[i]`` lists (weight bits, input bits); ``noise[i]`` their
+    predicted noise (relative to the signal power), same order."""
+
+    names: list
+    options: list
+    noise: list
+    input_bits: int | None  # assumed input width for BOPs where the input stays float
+
+    def costs(self, table: SensitivityTable, cost: str) -> list:
+        """Integer cost of every option of every entry (list of int64 arrays)."""
+        out = []
+        for name, opts in zip(self.names, self.options, strict=True):
+            p, ch, macs = table.params(name), table.weight_channels(name), table.macs(name)
+            row = []
+            for wb, ib in opts:
+                if cost == "weight_kib":
+                    row.append(weight_storage_bits(p, wb, ch))
+                elif cost == "mean_bits":
+                    row.append(p * (FLOAT_BITS if wb is None else wb))
+                else:
+                    row.append(layer_bops(macs, wb, self.input_bits if ib is None else ib))
+            out.append(np.array(row, dtype=np.int64))
+        return out
+
+
+def check_table(table) -> SensitivityTable:
+    if not isinstance(table, SensitivityTable):
+        raise TypeError(f"table must be a SensitivityTable, got {type(table).__name__}")
+    return table
+
+
+def check_cost(cost) -> str:
+    if cost not in COSTS:
+        raise ValueError(f"cost must be one of {', '.join(map(repr, COSTS))}, got {cost!r}")
+    return cost
+
+
+def check_input_bits(input_bits) -> int | None:
+    if input_bits is None:
+        return None
+    if isinstance(input_bits, bool) or not isinstance(input_bits, Integral) or not 1 <= input_bits <= 16:
+        raise ValueError(f"input_bits must be None (float inputs) or an int in 1..16, got {input_bits!r}")
+    return int(input_bits)
+
+
+def check_budgets(**budgets) -> dict:
+    """The budgets given (name -> float), at least one, each a finite number > 0."""
+    given = {k: v for k, v in budgets.items() if v is not None}
+    if not given:
+        raise ValueError(f"give at least one budget ({', '.join(budgets)}); got none")
+    for name, value in given.items():
+        if isinstance(value, bool) or not isinstance(value, Real):
+            raise TypeError(f"{name} must be a number, got {value!r} ({type(value).__name__})")
+        if not math.isfinite(value) or value <= 0:
+            raise ValueError(f"{name} must be a finite number > 0, got {value}")
+    return {k: float(v) for k, v in given.items()}
+
+
+def limit(cost: str, value: float, table) -> int:
+    """The budget as an integer bound on the summed integer costs.
+
+    Computed in exact fractions; the factor ``1 + 2**-50`` (a few float ulps) lets a budget
+    that is a float rounding of an exact cost, e.g. ``mean_bits = total_bits / params``, admit
+    that cost.
+    """
+    v = Fraction(value) * (1 + Fraction(1, 2**50))
+    return math.floor(v * unit(cost, table))
+
+
+def unit(cost: str, table) -> int:
+    """The divisor that turns a summed integer cost into the budget's unit."""
+    if cost == "weight_kib":
+        return 8192
+    if cost == "mean_bits":
+        return sum(table.params(n) for n in table.layers)
+    return 1
+
+
+def in_unit(c: int, cost: str, table):
+    return c if cost == "bops" else c / unit(cost, table)
+
+
+def ceil_unit(c: int, cost: str, table) -> str:
+    """A summed cost in the budget's unit, rounded up in the last printed digit (so the stated
+    budget really is feasible)."""
+    if cost == "bops":
+        return str(int(c))
+    return f"{math.ceil(c / unit(cost, table) * 1e4) / 1e4:.4f}"
+
+
+def _noise(sq: np.ndarray) -> np.ndarray:
+    with np.errstate(over="ignore"):
+        return np.minimum(np.power(10.0, -np.asarray(sq, dtype=float) / 10.0), MAX_NOISE)
+
+
+def _model_rows(table, source: str):
+    sq = table.sqnr_array("model", source=source) if table.quantize == "separate" else table.sqnr_array("model")
+    if sq is None:
+        raise ValueError("the table holds no model-scope SQNR; plan budgets need it: "
+                         "scan with scope='model' or scope='both'")
+    return _noise(sq)
+
+
+def _check_widths(widths, scanned: tuple, where: str) -> tuple:
+    if isinstance(widths, Integral) and not isinstance(widths, bool):
+        widths = (widths,)
+    if isinstance(widths, (str, bytes)) or not isinstance(widths, Sequence) or not widths:
+        raise TypeError(f"{where} must be a non-empty tuple of scanned bit widths, got {widths!r}")
+    for b in widths:
+        if isinstance(b, bool) or not isinstance(b, Integral):
+            raise TypeError(f"{where} must hold ints, got {b!r}")
+        if int(b) not in scanned:
+            raise ValueError(f"{where} holds {b}, which was not scanned; scanned widths: {list(scanned)}")
+    return tuple(sorted({int(b) for b in widths}))
+
+
+def _allowed(table, allowed_bits) -> tuple[tuple, tuple]:
+    """Allowed (weight widths, input widths); a plain tuple restricts the table's own width
+    (the weight width, or the input width of a table that quantized inputs only)."""
+    w_all, i_all = _menus(table)
+    if allowed_bits is None:
+        return w_all, i_all
+    if isinstance(allowed_bits, Mapping):
+        unknown = [k for k in allowed_bits if k not in SOURCES]
+        if unknown:
+            raise ValueError(f"allowed_bits keys must be 'weight' and / or 'input', got {unknown}")
+        w, i = w_all, i_all
+        if "weight" in allowed_bits:
+            if not w_all:
+                raise ValueError("allowed_bits['weight']: this table did not quantize weights "
+                                 f"(quantize={table.quantize!r})")
+            w = _check_widths(allowed_bits["weight"], w_all, "allowed_bits['weight']")
+        if "input" in allowed_bits:
+            if not i_all:
+                raise ValueError("allowed_bits['input']: this table has no input widths; scan with "
+                                 "quantize='separate' (or 'input' / 'both')")
+            i = _check_widths(allowed_bits["input"], i_all, "allowed_bits['input']")
+        if table.quantize == "both" and "weight" in allowed_bits and "input" in allowed_bits:
+            w = i = tuple(sorted(set(w) & set(i)))
+            if not w:
+                raise ValueError("allowed_bits: a table scanned with quantize='both' uses one width "
+                                 "for both sides, and the weight and input menus share none")
+        elif table.quantize == "both":
+            w = i = w if "weight" in allowed_bits else i
+        return w, i
+    if table.quantize == "input":
+        return w_all, _check_widths(allowed_bits, i_all, "allowed_bits")
+    w = _check_widths(allowed_bits, w_all, "allowed_bits")
+    return w, (w if table.quantize == "both" else i_all)
+
+
+def _menus(table) -> tuple[tuple, tuple]:
+    """Scanned (weight widths, input widths) of the table's options."""
+    q = table.quantize
+    if q == "weight":
+        return table.bits, ()
+    if q == "input":
+        return (), table.bits
+    if q == "both":
+        return table.bits, table.bits
+    return table.bits, tuple(table.input_bits)
+
+
+def _pin(table, name: str, value) -> tuple:
+    """``fixed[name]`` as (weight bits, input bits), None where not pinned."""
+    where = f"fixed[{name!r}]"
+    if isinstance(value, Integral) and not isinstance(value, bool):
+        pw, pi = (None, int(value)) if table.quantize == "input" else (int(value), None)
+    elif isinstance(value, tuple) and len(value) == 2 and all(
+            isinstance(b, Integral) and not isinstance(b, bool) for b in value):
+        pw, pi = int(value[0]), int(value[1])
+    else:
+        raise TypeError(f"{where} must be a width (int) or a (weight bits, input bits) pair of ints, "
+                        f"got {value!r}")
+    w_all, i_all = _menus(table)
+    if pw is not None and pw not in w_all:
+        raise ValueError(f"{where}: weight width {pw} is not among the table's weight widths {list(w_all)}")
+    if pi is not None and pi not in i_all:
+        raise ValueError(f"{where}: input width {pi} is not among the table's input widths {list(i_all)}"
+                         + ("; scan with quantize='separate' to plan inputs" if not i_all else ""))
+    if table.quantize == "both" and pw is not None and pi is not None and pw != pi:
+        raise ValueError(f"{where}: a table scanned with quantize='both' uses one width for weights "
+                         f"and input, got {value!r}")
+    if table.quantize == "both":
+        pw = pi = pw if pw is not None else pi
+    if pi is not None and not has_input_rows(table, name):
+        raise ValueError(f"{where}: {name!r} has no input rows; pin its weight width only")
+    return pw, pi
+
+
+def has_input_rows(table, name: str) -> bool:
+    """Whether the table offers input widths for entry ``name``."""
+    if table.quantize in ("input", "both"):
+        return True
+    return table.quantize == "separate" and table.has_input_rows(name)
+
+
+def _all_options(table, name: str) -> list:
+    q, bits = table.quantize, table.bits
+    if q == "weight":
+        return [(b, None) for b in bits]
+    if q == "input":
+        return [(None, b) for b in bits]
+    if q == "both":
+        return [(b, b) for b in bits]
+    if table.has_input_rows(name):
+        return [(w, i) for w in bits for i in table.input_bits]
+    return [(w, None) for w in bits]
+
+
+def build_menu(table, *, fixed=None, allowed_bits=None, input_bits: int | None = 8) -> Menu:
+    """Every entry's options after ``fixed`` pins and the ``allowed_bits`` menu, with noise."""
+    check_table(table)
+    input_bits = check_input_bits(input_bits)
+    w_ok, i_ok = _allowed(table, allowed_bits)
+    if fixed is None:
+        fixed = {}
+    if not isinstance(fixed, Mapping):
+        raise TypeError(f"fixed must be a dict of entry name -> width or (weight, input) pair, got {fixed!r}")
+    unknown = [n for n in fixed if n not in table.layers]
+    if unknown:
+        raise ValueError(f"fixed names {unknown}, not in the table; entries: {table.layers}")
+    q = table.quantize
+    main = _model_rows(table, "weight")  # the rows over table.bits, whatever they quantized
+    extra = _model_rows(table, "input") if q == "separate" else None
+    col = {b: j for j, b in enumerate(table.bits)}
+    i_col = {b: j for j, b in enumerate(table.input_bits)} if q == "separate" else {}
+    options, noise = [], []
+    for r, name in enumerate(table.layers):
+        opts = _all_options(table, name)
+        if name in fixed:
+            pw, pi = _pin(table, name, fixed[name])
+            opts = [o for o in opts if (pw is None or o[0] == pw) and (pi is None or o[1] == pi)]
+        else:
+            opts = [o for o in opts if (o[0] is None or o[0] in w_ok) and (o[1] is None or o[1] in i_ok)]
+        if not opts:
+            raise ValueError(f"no option is left for {name!r} after fixed and allowed_bits")
+        n = []
+        for wb, ib in opts:
+            v = float(main[r, col[ib if q == "input" else wb]])
+            if q == "separate" and ib is not None:
+                v += float(extra[r, i_col[ib]])
+            n.append(v)
+        options.append(opts)
+        noise.append(np.array(n, dtype=float))
+    return Menu(list(table.layers), options, noise, input_bits)

@@ -1,0 +1,53 @@
+"""The notebook view of a SensitivityTable (HTML, no drawing library)."""
+
+from __future__ import annotations
+
+import html
+
+import numpy as np
+
+
+def table_html(table) -> str:
+    """The table as HTML: model-scope SQNR (else layer scope) per entry and width, shaded; a
+    table scanned with ``quantize="separate"`` shows its weight rows, then its input rows."""
+    scope = "model" if "model" in table.scopes else "layer"
+    blocks = [("weight", table.bits)]
+    if table.quantize == "separate":
+        blocks.append(("input", table.input_bits))
+    out = []
+    for source, widths in blocks:
+        arr = table.sqnr_array(scope, source)
+        head = "".join(f"<th>{b} bits</th>" for b in widths)
+        ok = np.isfinite(arr)
+        lo, hi = (float(arr[ok].min()), float(arr[ok].max())) if ok.any() else (0.0, 1.0)
+        body = []
+        for i, name in enumerate(table.layers):
+            if source == "input" and not table.has_input_rows(name):
+                continue
+            cells = []
+            for v in arr[i]:
+                shade = 0.0 if not np.isfinite(v) or hi == lo else (v - lo) / (hi - lo)
+                bg = f"rgba(46,134,193,{0.08 + 0.5 * shade:.2f})"
+                cells.append(f'<td style="background:{bg};text-align:right">{fmt_db(v)}</td>')
+            shared = table.shared_with(name)
+            label = html.escape(name) + (f" <small>(also {html.escape(', '.join(shared))})</small>"
+                                         if shared else "")
+            body.append(f"<tr><td>{label}</td><td>{html.escape(table.layer_type(name))}</td>"
+                        f"<td>{'yes' if table.has_input(name) else 'weight only'}</td>"
+                        f'<td style="text-align:right">{table.params(name):,}</td>'
+                        f'<td style="text-align:right">{table.macs(name):,}</td>' + "".join(cells) + "</tr>")
+        what = (f"{table.quantize} quantized" if table.quantize != "separate"
+                else f"{source}s quantized on their own")
+        out.append(f"<div><b>{scope.capitalize()}-output SQNR (dB)</b>, {what}, "
+                   f"one layer at a time ({table.n_samples} samples)<table>"
+                   f"<tr><th>layer</th><th>type</th><th>input</th><th>weights</th><th>MACs / sample</th>"
+                   f"{head}</tr>" + "".join(body) + "</table></div>")
+    return "".join(out) + f"<div><small>{html.escape(str(table.coverage))}</small></div>"
+
+
+def fmt_db(v: float) -> str:
+    if not np.isfinite(v):
+        return "exact" if v > 0 else "-inf"
+    return f"{v:.1f}"
+
+
