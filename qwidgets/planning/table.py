@@ -16,11 +16,7 @@ from ..model.entries import Coverage
 from .files import read_text, write_text
 from .plan import Plan
 from .schema import (
-    TABLE_FORMAT,
-    TABLE_VERSION,
     FieldError,
-    grid_to_dict,
-    json_db,
     table_fields,
 )
 
@@ -357,31 +353,10 @@ class SensitivityTable:
 
     # ------------------------------------------------------------------ JSON
     def to_dict(self) -> dict:
-        layers = []
-        for i, name in enumerate(self.layers):
-            entry = {"name": name, **{k: self._info[name].get(k) for k in ("type", "weight_shape", "input_shape", "macs", "model_pass")}}
-            entry.update(kind=self.kind(name), axis=self.weight_axis(name), has_input=self.has_input(name),
-                         shared_with=self.shared_with(name), stored_bits=self.stored_bits(name),
-                         digest=self.weight_digest(name))
-            entry["weight_shape"] = list(entry["weight_shape"])
-            entry["input_shape"] = None if entry["input_shape"] is None else list(entry["input_shape"])
-            for scope in ("layer", "model"):
-                arr = self._sqnr[scope]
-                entry[f"{scope}_sqnr_db"] = None if arr is None else [json_db(v) for v in arr[i]]
-            for kind in ("weight", "input"):
-                g = self._grids[kind]
-                entry[f"{kind}_grids"] = None if g is None or g[name] is None else [
-                    grid_to_dict(x) for x in g[name]]
-            for scope in ("layer", "model"):
-                arr = self._input_sqnr[scope]
-                entry[f"input_{scope}_sqnr_db"] = None if arr is None or not self.has_input_rows(name) \
-                    else [json_db(v) for v in arr[i]]
-            layers.append(entry)
-        return {"format": TABLE_FORMAT, "version": TABLE_VERSION, "bits": list(self.bits),
-                "input_bits": list(self._input_bits),
-                "quantize": self.quantize, "method": self.method, "per_channel": self.per_channel,
-                "fingerprint": self.fingerprint, "n_samples": self.n_samples,
-                "coverage": self.coverage.to_dict(), "layers": layers}
+        """The table as JSON-ready data (layout: :func:`qwidgets.planning.schema.table_fields`)."""
+        from .table_json import table_to_dict
+
+        return table_to_dict(self)
 
     def save(self, path: str | os.PathLike) -> None:
         """Write the table (SQNRs, shapes, fitted grids) as JSON."""
@@ -417,38 +392,7 @@ class SensitivityTable:
         >>> t.quantize, t.input_bits, t.sqnr_db("layer0", 6, source="input")
         ('separate', (6, 8), 25.0)
         """
-        arr = np.asarray(model_sqnr_db, dtype=float)
-        if arr.ndim != 2 or arr.shape[0] != len(params) or arr.shape[1] != len(bits):
-            raise ValueError(f"model_sqnr_db must be (layers, bits) = ({len(params)}, {len(bits)}), got {arr.shape}")
-        names = list(names) if names is not None else [f"layer{i}" for i in range(len(params))]
-        macs = list(macs) if macs is not None else list(params)
-        bits = tuple(check_bits(b) for b in bits)
-        info = {n: {"type": "Linear", "weight_shape": (int(p), 1), "input_shape": (1,), "macs": int(m),
-                    "model_pass": "-"} for n, p, m in zip(names, params, macs, strict=True)}
-        grids = {n: [UniformGrid(b, 1.0) for b in bits] for n in names}
-        fp = _hash_lines(f"{n}:{info[n]['weight_shape']}" for n in names)
-        quantize, igrids, iarr = "weight", None, None
-        if input_sqnr_db is not None:
-            input_bits = tuple(check_bits(b, "input_bits") for b in input_bits)
-            iarr = np.asarray(input_sqnr_db, dtype=float)
-            if iarr.shape != (len(params), len(input_bits)) or not input_bits:
-                raise ValueError(f"input_sqnr_db must be (layers, input_bits) = ({len(params)}, "
-                                 f"{len(input_bits)}) with input_bits given, got {iarr.shape}")
-            quantize = "separate"
-            igrids = {n: None if np.isnan(iarr[i]).all() else [UniformGrid(b, 1.0) for b in input_bits]
-                      for i, n in enumerate(names)}
-        elif input_bits:
-            raise ValueError("input_bits needs input_sqnr_db")
-        return cls(layers=names, bits=bits, quantize=quantize, method="mse", per_channel=False,
-                   fingerprint=fp, info=info, layer_sqnr=None, model_sqnr=arr, weight_grids=grids,
-                   input_grids=igrids, n_samples=1, input_bits=input_bits if iarr is not None else (),
-                   input_model_sqnr=iarr)
+        from .synthetic import synthetic_table
 
-
-def _hash_lines(lines) -> str:
-    import hashlib
-
-    h = hashlib.sha256()
-    for line in lines:
-        h.update((line + "\n").encode())
-    return h.hexdigest()
+        return synthetic_table(cls, model_sqnr_db, params=params, bits=bits, input_sqnr_db=input_sqnr_db,
+                               input_bits=input_bits, macs=macs, names=names)

@@ -1,0 +1,34 @@
+"""A SensitivityTable as JSON-ready data (read back by :func:`qwidgets.planning.schema.table_fields`)."""
+
+from __future__ import annotations
+
+from .schema import TABLE_FORMAT, TABLE_VERSION, grid_to_dict, json_db
+
+
+def table_to_dict(self) -> dict:
+    """The table as JSON-ready data (layout: :func:`qwidgets.planning.schema.table_fields`)."""
+    layers = []
+    for i, name in enumerate(self.layers):
+        entry = {"name": name, **{k: self._info[name].get(k) for k in ("type", "weight_shape", "input_shape", "macs", "model_pass")}}
+        entry.update(kind=self.kind(name), axis=self.weight_axis(name), has_input=self.has_input(name),
+                     shared_with=self.shared_with(name), stored_bits=self.stored_bits(name),
+                     digest=self.weight_digest(name))
+        entry["weight_shape"] = list(entry["weight_shape"])
+        entry["input_shape"] = None if entry["input_shape"] is None else list(entry["input_shape"])
+        for scope in ("layer", "model"):
+            arr = self._sqnr[scope]
+            entry[f"{scope}_sqnr_db"] = None if arr is None else [json_db(v) for v in arr[i]]
+        for kind in ("weight", "input"):
+            g = self._grids[kind]
+            entry[f"{kind}_grids"] = None if g is None or g[name] is None else [
+                grid_to_dict(x) for x in g[name]]
+        for scope in ("layer", "model"):
+            arr = self._input_sqnr[scope]
+            entry[f"input_{scope}_sqnr_db"] = None if arr is None or not self.has_input_rows(name) \
+                else [json_db(v) for v in arr[i]]
+        layers.append(entry)
+    return {"format": TABLE_FORMAT, "version": TABLE_VERSION, "bits": list(self.bits),
+            "input_bits": list(self._input_bits),
+            "quantize": self.quantize, "method": self.method, "per_channel": self.per_channel,
+            "fingerprint": self.fingerprint, "n_samples": self.n_samples,
+            "coverage": self.coverage.to_dict(), "layers": layers}
