@@ -110,7 +110,7 @@ def test_transformer_encoder_layer_entries_match_the_naive_loop():
     x = torch.randn(6, 5, 16)
     t, _ = check_against_naive(net, x, ["layer.self_attn.in_proj", "layer.self_attn.out_proj",
                                         "layer.linear1", "layer.linear2", "head"])
-    assert not t.has_input("layer.self_attn.in_proj") and t.kind("layer.self_attn.in_proj") == "attention"
+    assert t.kind("layer.self_attn.in_proj") == "attention" and not t.has_input("layer.self_attn.out_proj")
     assert t.has_input("head")
 
 
@@ -244,3 +244,42 @@ def test_find_entries_registration_order_and_names():
     names = [e.name for e in find_entries(net)]
     assert names[0] == "emb" and names[-1] == "out" and "rnn.weight_hh_l1_reverse" in names
     assert all(e.axis == 0 for e in find_entries(net))
+
+
+def test_attention_inputs_quantized_as_the_naive_loop_does():
+    # naive loop: deep copy, overwrite the packed projection, quantize query / key / value by hand
+    torch.manual_seed(7)
+
+    class SelfAttention(nn.Module):
+        def __init__(self):
+            super().__init__()
+            self.att = nn.MultiheadAttention(8, 2)
+            self.head = nn.Linear(8, 3)
+
+        def forward(self, x):
+            return self.head(self.att(x, x, x, need_weights=False)[0])
+
+    net = SelfAttention()
+    x = torch.randn(5, 4, 8)
+    before = snapshot(net)
+    t = scan(net, x, bits=BITS, quantize="both", progress=False)
+    assert_untouched(net, before)
+    assert t.has_input("att.in_proj") and not t.has_input("att.out_proj")
+    for b in BITS:
+        wg, ig = t.weight_grid("att.in_proj", b), t.input_grid("att.in_proj", b)
+        ref_model, q_model = copy.deepcopy(net).eval(), copy.deepcopy(net).eval()
+        with torch.no_grad():
+            q_model.att.in_proj_weight.copy_(quantize(q_model.att.in_proj_weight, wg))
+            xq = quantize(x, ig)
+            ref = ref_model(x).double()
+            out = q_model.head(q_model.att(xq, xq, xq, need_weights=False)[0]).double()
+        want = 10 * math.log10(float((ref * ref).sum()) / float(((out - ref) ** 2).sum()))
+        assert t.sqnr_db("att.in_proj", b) == pytest.approx(want, abs=1e-3)
+    plan = plan_budget(t, mean_bits=5)
+    q = apply_plan(net, plan)
+    with torch.no_grad():
+        g = plan.layers["att.in_proj"].input
+        xq = quantize(x, g)
+        naive = copy.deepcopy(q)
+        naive.att._forward_pre_hooks.clear()
+        assert torch.equal(q(x), naive.head(naive.att(xq, xq, xq, need_weights=False)[0]))

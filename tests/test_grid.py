@@ -202,3 +202,14 @@ def test_channel_count_errors():
         UniformGrid(4, 0.1, axis=True)
     with pytest.raises(TypeError, match="signed must be a bool"):
         UniformGrid(4, 0.1, signed=1)
+
+
+def test_grid_copies_and_pickles():
+    import copy
+    import pickle
+
+    g = UniformGrid(4, torch.tensor([0.1, 0.2]), torch.tensor([0.0, 0.2]), signed=False, axis=1)
+    assert copy.deepcopy(g) is g and copy.copy(g) is g  # immutable: the copy is the grid
+    back = pickle.loads(pickle.dumps(g))
+    assert (back.bits, back.signed, back.axis) == (4, False, 1)
+    assert torch.equal(back.scale, g.scale) and torch.equal(back.offset, g.offset)

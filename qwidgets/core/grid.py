@@ -109,6 +109,17 @@ class UniformGrid:
     def __setattr__(self, name, value):
         raise AttributeError("UniformGrid is immutable; use .replace(...) to make a changed copy")
 
+    # immutable, so a copy is the grid itself; pickling rebuilds it through __init__ (a planned
+    # model copy holding grids in its hooks can be deep-copied and saved)
+    def __copy__(self) -> UniformGrid:
+        return self
+
+    def __deepcopy__(self, memo) -> UniformGrid:
+        return self
+
+    def __reduce__(self):
+        return (UniformGrid, (self.bits, self.scale, self.offset, self.signed, self.axis))
+
     # ------------------------------------------------------------------ integer range
     @property
     def qmin(self) -> int:

@@ -8,9 +8,11 @@ module                      entry name                             axis   inputs
 ==========================  =====================================  =====  ==========
 Linear, Conv1d/2d/3d        ``<path>``                             0      yes (*)
 ConvTranspose1d/2d/3d       ``<path>``                             1      yes (*)
-MultiheadAttention          ``<path>.in_proj``, ``<path>.out_proj`` 0      no
+MultiheadAttention          ``<path>.in_proj`` (query, key, value)  0      yes (**)
+                            ``<path>.out_proj``                    0      no
                             (``.q_proj/.k_proj/.v_proj`` when the
-                            projections are separate)
+                            projections are separate: each its own
+                            input)
 LSTM, GRU, RNN              ``<path>.<parameter name>``            0      no
                             (e.g. ``rnn.weight_hh_l0_reverse``)
 Embedding, EmbeddingBag     ``<path>`` (one grid per row)          0      no
@@ -18,7 +20,8 @@ Embedding, EmbeddingBag     ``<path>`` (one grid per row)          0      no
 
 (*) when the module runs as a module with a tensor input on the data; a Linear whose weight
 its parent uses directly (``nn.TransformerEncoderLayer``'s fast path in eval mode) is a
-weight-only entry.
+weight-only entry. (**) the attention module's query / key / value arguments, when it runs as
+a module; its output projection's input is internal to the attention (weight only).
 
 Tied weights (one tensor used by several modules, e.g. a language model's embedding and output
 layer) make one entry, named after its first owner in registration order; ``shared_with`` lists
@@ -56,7 +59,9 @@ class Entry:
     ``axis``: the per-channel axis of its grids; ``runs_as_module``: the owner is a layer whose
     output can be computed functionally from its input (inputs can be quantized);
     ``type_name``: what the table shows; ``shape``; ``shared_with``: other places that use the
-    same tensor.
+    same tensor; ``input_args``: the owner's call arguments that are the entry's inputs (a
+    layer's first argument; an attention projection's query / key / value), empty for
+    weight-only entries.
 
     >>> from torch import nn
     >>> [e.name for e in find_entries(nn.Sequential(nn.Embedding(10, 4), nn.LSTM(4, 3)))]
@@ -72,6 +77,7 @@ class Entry:
     type_name: str
     shape: tuple
     shared_with: tuple = field(default=())
+    input_args: tuple = field(default=())
 
     @property
     def numel(self) -> int:
@@ -117,6 +123,47 @@ class Coverage:
         return s
 
 
+_ATTENTION_ARGS = ("query", "key", "value")  # nn.MultiheadAttention.forward's first three
+
+
+def call_inputs(entry: Entry, args: tuple, kwargs: dict) -> list:
+    """The tensors of one call of the entry's owner that are the entry's inputs."""
+    out = []
+    for k, name in enumerate(entry.input_args):
+        pos = _ATTENTION_ARGS.index(name) if name in _ATTENTION_ARGS else k
+        v = args[pos] if pos < len(args) else kwargs.get(name)
+        if v is None and not args and k == 0 and name == "input":
+            v = next(iter(kwargs.values()), None)
+        if isinstance(v, torch.Tensor):
+            out.append(v)
+    return out
+
+
+def replace_inputs(entry: Entry, args: tuple, kwargs: dict, fn) -> tuple[tuple, dict]:
+    """``(args, kwargs)`` with ``fn`` applied to each of the entry's input tensors (each distinct
+    tensor once: self-attention passes the same tensor as query, key and value)."""
+    args, kwargs = list(args), dict(kwargs)
+    done: dict[int, torch.Tensor] = {}
+
+    def apply(v):
+        if not isinstance(v, torch.Tensor):
+            return v
+        if id(v) not in done:
+            done[id(v)] = fn(v)
+        return done[id(v)]
+
+    for k, name in enumerate(entry.input_args):
+        pos = _ATTENTION_ARGS.index(name) if name in _ATTENTION_ARGS else k
+        if pos < len(args):
+            args[pos] = apply(args[pos])
+        elif name in kwargs:
+            kwargs[name] = apply(kwargs[name])
+        elif not args and k == 0 and name == "input" and kwargs:
+            first = next(iter(kwargs))
+            kwargs[first] = apply(kwargs[first])
+    return tuple(args), kwargs
+
+
 def _join(path: str, attr: str) -> str:
     return f"{path}.{attr}" if path else attr
 
@@ -131,21 +178,21 @@ def _candidates(model: nn.Module):
         if isinstance(m, nn.MultiheadAttention):
             if m.in_proj_weight is not None:
                 yield _join(path, "in_proj"), "attention", path, "in_proj_weight", 0, False, \
-                    "MultiheadAttention.in_proj"
+                    "MultiheadAttention.in_proj", _ATTENTION_ARGS
             else:
-                for k in ("q", "k", "v"):
+                for k, arg in zip(("q", "k", "v"), _ATTENTION_ARGS, strict=True):
                     yield _join(path, f"{k}_proj"), "attention", path, f"{k}_proj_weight", 0, False, \
-                        f"MultiheadAttention.{k}_proj"
+                        f"MultiheadAttention.{k}_proj", (arg,)
         elif path in attention_out and isinstance(m, nn.Linear):
-            yield path, "attention", path, "weight", 0, False, "MultiheadAttention.out_proj"
+            yield path, "attention", path, "weight", 0, False, "MultiheadAttention.out_proj", ()
         elif isinstance(m, _RECURRENT):
             for attr in m._flat_weights_names:
                 if attr.startswith("weight"):
-                    yield _join(path, attr), "recurrent", path, attr, 0, False, type(m).__name__
+                    yield _join(path, attr), "recurrent", path, attr, 0, False, type(m).__name__, ()
         elif isinstance(m, _EMBEDDING):
-            yield path, "embedding", path, "weight", 0, False, type(m).__name__
+            yield path, "embedding", path, "weight", 0, False, type(m).__name__, ()
         elif is_quantizable(m):
-            yield path, "layer", path, "weight", weight_axis(m), True, _base_name(m)
+            yield path, "layer", path, "weight", weight_axis(m), True, _base_name(m), ("input",)
 
 
 def _base_name(m: nn.Module) -> str:
@@ -170,7 +217,7 @@ def find_entries(model: nn.Module) -> list[Entry]:
         raise TypeError(f"model must be a torch.nn.Module, got {type(model).__name__}")
     by_tensor: dict[int, dict] = {}
     order: list[int] = []
-    for name, kind, path, attr, axis, runs, type_name in _candidates(model):
+    for name, kind, path, attr, axis, runs, type_name, input_args in _candidates(model):
         owner = model.get_submodule(path) if path else model
         p = getattr(owner, attr, None)
         if not isinstance(p, torch.Tensor) or not p.is_floating_point() or p.dim() < 2:
@@ -181,7 +228,7 @@ def find_entries(model: nn.Module) -> list[Entry]:
             continue
         by_tensor[key] = dict(name=name, kind=kind, module=path, param=_join(path, attr), axis=axis,
                               runs_as_module=runs, type_name=type_name, shape=tuple(p.shape),
-                              shared=[])
+                              input_args=input_args, shared=[])
         order.append(key)
     # other registered names of the same tensors (a parameter assigned to a second module)
     claimed = {d["param"] for d in by_tensor.values()}

@@ -14,10 +14,10 @@ from ..core.grid import UniformGrid, grid_params
 from ..core.metrics import ErrorStats, error_stats
 from ..core.rounding import quantize
 from ..core.setting import LayerSetting
-from .entries import Entry, find_entries
+from .entries import Entry, call_inputs, find_entries, replace_inputs
 from .layers import LayerInputError, check_layer, check_tensor, describe_layer, layer_output
 from .outputs import OutputComparison, call_metric, check_output_fn, float_parts
-from .running import check_model, first_input, names_by_id, run_with_hooks
+from .running import check_model, run_with_hooks
 from .sources import Data, data_source
 
 
@@ -216,7 +216,6 @@ def quantized_call(model: nn.Module, batch, settings: Mapping[Entry, LayerSettin
     Weights: the fake-quantized tensor is substituted for the parameter for this call only
     (tied uses included). Inputs: a forward pre-hook quantizes the owner layer's first input.
     """
-    names = names_by_id(model)
     params = {}
     with torch.no_grad():
         for e, s in settings.items():
@@ -224,30 +223,32 @@ def quantized_call(model: nn.Module, batch, settings: Mapping[Entry, LayerSettin
                 w = e.parameter(model).detach()
                 grid_params(w, s.weight)  # per-channel size check, clear message
                 params[e.param] = quantize(w, s.weight)
-    by_module = {}
+    by_module: dict[int, list] = {}
     for e, s in settings.items():
         if s.input is not None:
-            by_module[id(model.get_submodule(e.module) if e.module else model)] = (e, s.input)
+            owner = model.get_submodule(e.module) if e.module else model
+            by_module.setdefault(id(owner), [owner]).append((e, s.input))
     ran: list[str] = []
 
     def pre(module, args, kwargs):
-        e, grid = by_module[id(module)]
-        x = first_input(module, names[id(module)], args, kwargs)
-        if x.is_floating_point():
-            finite_check(x, f"the input of layer {e.name!r} ({describe_layer(module)})", LayerInputError)
-        if e.name not in ran:
-            ran.append(e.name)
-        if args:
-            return (quantize(x, grid),) + tuple(args[1:]), kwargs
-        key = "input" if "input" in kwargs else next(iter(kwargs))
-        return args, {**kwargs, key: quantize(x, grid)}
+        for e, grid in by_module[id(module)][1:]:
+            xs = call_inputs(e, args, kwargs)
+            if not xs:
+                raise LayerInputError(
+                    f"{e.name!r} ({type(module).__name__}) was called without a tensor input "
+                    f"(got {type(args[0]).__name__ if args else 'keyword arguments'}); qwidgets "
+                    "cannot quantize it")
+            for x in xs:
+                if x.is_floating_point():
+                    finite_check(x, f"the input of layer {e.name!r} ({describe_layer(module)})", LayerInputError)
+            if e.name not in ran:
+                ran.append(e.name)
+            args, kwargs = replace_inputs(e, args, kwargs, lambda v, g=grid: quantize(v, g))
+        return args, kwargs
 
-    hooks = {}
-    for e, _ in by_module.values():
-        hooks[model.get_submodule(e.module) if e.module else model] = pre
+    hooks = {items[0]: pre for items in by_module.values()}
     out = run_with_hooks(model, batch, hooks, pre=True, params=params)
-    need = [e for e, _ in by_module.values()]
-    missing = [e.name for e in need if e.name not in ran]
+    missing = [e.name for items in by_module.values() for e, _ in items[1:] if e.name not in ran]
     if missing:
         raise ValueError(f"layer(s) {missing} did not run during the forward pass on this data, so "
                          "their inputs cannot be quantized (a module whose weight is used directly "
@@ -269,7 +270,7 @@ def check_settings(model: nn.Module, settings) -> dict:
         if not isinstance(s, LayerSetting):
             raise TypeError(f"settings[{name!r}] must be a LayerSetting, got {type(s).__name__}")
         e = entries[name]
-        if s.input is not None and not e.runs_as_module:
+        if s.input is not None and not e.input_args:
             raise ValueError(f"settings[{name!r}] has an input grid, but {name!r} is a weight-only "
                              f"entry ({e.type_name}): its input cannot be quantized separately")
         if not s.is_empty:

@@ -10,7 +10,7 @@ from torch import nn
 
 from ..core.grid import UniformGrid
 from ..core.rounding import quantize, to_codes
-from ..model.entries import find_entries, weight_digest
+from ..model.entries import find_entries, replace_inputs, weight_digest
 from .plan import Plan, model_fingerprint
 
 
@@ -44,7 +44,7 @@ def match_plan(model: nn.Module, plan: Plan, strict: bool, allow_other_weights: 
         elif e.shape != plan.weight_shapes[name]:
             skipped.append(f"{name!r} (weight shape {e.shape} in the model, "
                            f"{plan.weight_shapes[name]} in the plan)")
-        elif plan.layers[name].input is not None and not e.runs_as_module:
+        elif plan.layers[name].input is not None and not e.input_args:
             skipped.append(f"{name!r} (an input grid for a weight-only entry, {e.type_name})")
         else:
             found[name] = e
@@ -74,15 +74,14 @@ def match_plan(model: nn.Module, plan: Plan, strict: bool, allow_other_weights: 
 
 
 class _QuantizeInput:
-    """Forward pre-hook of a planned copy: fake-quantizes the layer's first input."""
+    """Forward pre-hook of a planned copy: fake-quantizes the entry's inputs (a layer's first
+    argument; an attention projection's query / key / value)."""
 
-    def __init__(self, grid: UniformGrid):
-        self.grid = grid
+    def __init__(self, entry, grid: UniformGrid):
+        self.entry, self.grid = entry, grid
 
-    def __call__(self, module, args):
-        if not args or not isinstance(args[0], torch.Tensor):
-            return None
-        return (quantize(args[0], self.grid),) + tuple(args[1:])
+    def __call__(self, module, args, kwargs):
+        return replace_inputs(self.entry, args, kwargs, lambda v: quantize(v, self.grid))
 
 
 def apply_plan(model: nn.Module, plan: Plan, *, strict: bool = True,
@@ -119,7 +118,7 @@ def apply_plan(model: nn.Module, plan: Plan, *, strict: bool = True,
                 w.copy_(quantize(w.detach(), setting.weight))
             if setting.input is not None:
                 owner = new.get_submodule(e.module) if e.module else new
-                owner.register_forward_pre_hook(_QuantizeInput(setting.input))
+                owner.register_forward_pre_hook(_QuantizeInput(e, setting.input), with_kwargs=True)
     if skipped:
         warnings.warn(f"apply_plan skipped {len(skipped)} planned layer(s): {', '.join(skipped)}",
                       stacklevel=2)

@@ -6,6 +6,7 @@ import math
 
 import numpy as np
 import torch
+import torch.nn.functional as F
 from torch import nn
 
 from ..core.rounding import quantize as _quantize
@@ -42,6 +43,35 @@ def layer_scope_powers(layer: nn.Module, x: torch.Tensor, configs) -> tuple[floa
                                   w if wg is None else _quantize(w, wg))
             out.append(_power(y - ref))
         return signal, out
+
+
+def attention_scope_powers(mha: nn.Module, entry, xs, configs) -> tuple[float, list[float]]:
+    """(output power, error power of each config) of an attention module's input projection(s)
+    on its query / key / value ``xs``: ``x @ W_i.T + b_i`` for each, summed."""
+    w = getattr(mha, entry.param.rpartition(".")[2]).detach()
+    bias = None if mha.in_proj_bias is None else mha.in_proj_bias.detach()
+    if len(entry.input_args) == 3:  # packed: rows [query; key; value]
+        parts = list(zip(xs if len(xs) == 3 else xs * 3, range(3), strict=True))
+    else:
+        parts = [(xs[0], ("query", "key", "value").index(entry.input_args[0]))]
+    e = mha.embed_dim
+
+    def project(weight, grid_in):
+        outs = []
+        for x, k in parts:
+            rows = weight if len(entry.input_args) == 1 else weight[k * e : (k + 1) * e]
+            b = None if bias is None else bias[k * e : (k + 1) * e]
+            outs.append(F.linear(x if grid_in is None else _quantize(x, grid_in), rows, b))
+        return outs
+
+    with torch.no_grad():
+        ref = project(w, None)
+        signal = sum(_power(r) for r in ref)
+        noises = []
+        for wg, ig in configs:
+            out = project(w if wg is None else _quantize(w, wg), ig)
+            noises.append(sum(_power(o - r) for o, r in zip(out, ref, strict=True)))
+    return signal, noises
 
 
 def weight_scope_powers(w: torch.Tensor, configs) -> tuple[float, list[float]]:

@@ -35,9 +35,15 @@ from torch import nn
 from ..core.checks import check_bits
 from ..core.ranges import METHODS, fit_range
 from ..model import outputs, running
-from ..model.entries import coverage_of, find_entries, weight_digest
+from ..model.entries import call_inputs, coverage_of, find_entries, weight_digest
 from ..model.sources import data_source
-from .passes import db, layer_scope_powers, model_scope_noise, weight_scope_powers
+from .passes import (
+    attention_scope_powers,
+    db,
+    layer_scope_powers,
+    model_scope_noise,
+    weight_scope_powers,
+)
 from .plan import model_fingerprint
 from .schema import QUANTIZE_MODES, SCOPES
 from .survey import survey
@@ -133,7 +139,7 @@ def scan(model: nn.Module, data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8), *, qu
         try:
             for i, f in enumerate(facts):
                 e = f.entry
-                stackable = f.has_input and not e.shared_with
+                stackable = f.has_input and e.runs_as_module and not e.shared_with
                 noise = np.zeros(len(bits))
                 modes = set()
                 for batch, ref_parts in zip(source, found.refs, strict=True):
@@ -159,21 +165,26 @@ def _layer_scope(model, source, facts, configs) -> np.ndarray:
     with hooks that measure in place), or from the weight itself for weight-only entries."""
     signal = {f.entry.name: 0.0 for f in facts}
     noise = {f.entry.name: np.zeros(len(configs[f.entry.name])) for f in facts}
-    with_input = {}
+    with_input: dict = {}  # owner module -> entries measured from its inputs
     for f in facts:
         e = f.entry
         if f.has_input:
-            with_input[model.get_submodule(e.module) if e.module else model] = e
+            with_input.setdefault(model.get_submodule(e.module) if e.module else model, []).append(e)
         else:
             s, n = weight_scope_powers(e.parameter(model).detach(), configs[e.name])
             signal[e.name], noise[e.name] = s, np.asarray(n)
 
     def measure(module, args, kwargs):
-        e = with_input[module]
-        x = running.first_input(module, e.name, args, kwargs)
-        s, n = layer_scope_powers(module, x.detach(), configs[e.name])
-        signal[e.name] += s
-        noise[e.name] += np.asarray(n)
+        for e in with_input[module]:
+            xs = [x.detach() for x in call_inputs(e, args, kwargs)]
+            if not xs:
+                continue
+            if e.kind == "attention":
+                s, n = attention_scope_powers(module, e, xs, configs[e.name])
+            else:
+                s, n = layer_scope_powers(module, xs[0], configs[e.name])
+            signal[e.name] += s
+            noise[e.name] += np.asarray(n)
 
     if with_input:
         for batch in source:

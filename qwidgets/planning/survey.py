@@ -16,7 +16,7 @@ from torch import nn
 
 from ..core.checks import finite_check
 from ..model import layers, outputs, running
-from ..model.entries import Entry
+from ..model.entries import Entry, call_inputs
 from ..model.sources import DataSource, batch_size
 from ..model.statistics import RangeSample
 
@@ -44,11 +44,13 @@ class Survey:
 def survey(model: nn.Module, source: DataSource, entries: list[Entry], *, want_inputs: bool,
            keep_refs: bool, output=None) -> Survey:
     modules = dict(model.named_modules())
-    names = running.names_by_id(model)
     first_call: dict[int, int] = {}
     call_shapes: dict[int, list] = {}  # module id -> input shapes of the first batch's calls
     facts = {e.name: EntryFacts(e) for e in entries}
-    layer_of = {id(modules[e.module]): facts[e.name] for e in entries if e.runs_as_module}
+    layer_of: dict[int, list] = {}  # owner id -> facts of the entries whose inputs it receives
+    for e in entries:
+        if e.input_args:
+            layer_of.setdefault(id(modules[e.module]), []).append(facts[e.name])
     result = Survey([], [])
     first_batch = [True]
 
@@ -59,20 +61,23 @@ def survey(model: nn.Module, source: DataSource, entries: list[Entry], *, want_i
         x = args[0] if args else next(iter(kwargs.values()), None)
         if first_batch[0] and isinstance(x, torch.Tensor):
             call_shapes.setdefault(key, []).append(tuple(x.shape))
-        f = layer_of.get(key)
-        if f is None or not isinstance(x, torch.Tensor):
-            return None
-        name = names[key]
-        if x.is_floating_point():
-            finite_check(x, f"the input of layer {name!r} ({layers.describe_layer(module)})",
-                         layers.LayerInputError)
-        f.has_input = True
-        if first_batch[0]:
-            f.input_shape = f.input_shape or tuple(x.shape[1:])
-            f.macs += layers.layer_macs(module, tuple(x.shape))
-        if want_inputs:
-            f.inputs = f.inputs or RangeSample()
-            f.inputs.add(x)
+        for f in layer_of.get(key, ()):
+            xs = call_inputs(f.entry, args, kwargs)
+            if not xs:
+                continue
+            for v in xs:
+                if v.is_floating_point():
+                    finite_check(v, f"the input of layer {f.entry.name!r} ({layers.describe_layer(module)})",
+                                 layers.LayerInputError)
+            f.has_input = True
+            if first_batch[0]:
+                f.input_shape = f.input_shape or tuple(xs[0].shape[1:])
+                if f.entry.kind == "layer":
+                    f.macs += layers.layer_macs(module, tuple(xs[0].shape))
+            if want_inputs:
+                f.inputs = f.inputs or RangeSample()
+                for v in {id(v): v for v in xs}.values():  # self-attention: one tensor, thrice
+                    f.inputs.add(v)
         return None
 
     hooks = {m: pre for m in modules.values()}
@@ -101,9 +106,10 @@ def survey(model: nn.Module, source: DataSource, entries: list[Entry], *, want_i
         if not f.ran:
             result.skipped.append((e, f"its module {e.module!r} did not run on this data"))
             continue
-        f.has_input = f.has_input and e.runs_as_module
+        f.has_input = f.has_input and bool(e.input_args)
         if not f.has_input:
             f.input_shape = None
+        if e.kind != "layer" or not f.has_input:
             f.macs = _weight_only_macs(e, modules, first_call, call_shapes)
         f.macs //= n_first  # per sample
         result.facts.append(f)

@@ -185,8 +185,8 @@ class ScanView(widgets.VBox):
             self.message.info(f"{layer} at {bits} bits: {_summary(t, layer, bits)} "
                               "(give model= and data= to explore the grid)")
             return self
-        if not t.has_input(layer):
-            self.message.info(f"{layer} at {bits} bits: {_summary(t, layer, bits)} (a weight-only "
+        if not t.has_input(layer) or t.kind(layer) != "layer":
+            self.message.info(f"{layer} at {bits} bits: {_summary(t, layer, bits)} (a "
                               f"{t.layer_type(layer)} entry: the grid explorer opens layers run as "
                               "modules)")
             return self
