@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import html
 import json
+import re
 
 import numpy as np
 import pytest
@@ -125,9 +126,9 @@ def test_planner_plans_equal_plan_budget_for_each_kind(setup):
         assert p.plan.predicted_sqnr_db == expect.predicted_sqnr_db
         assert f"{expect.predicted_sqnr_db:.2f} dB" in p.readout.value
         # the figure shows the chosen plan at its cost and predicted SQNR
-        xs, ys = p._chosen.get_data()
+        xs, ys = p.figure.chosen.get_data()
         assert ys[0] == pytest.approx(expect.predicted_sqnr_db)
-        assert [b.get_width() for b in p._bars] == [expect.bits[n] for n in table.layers]
+        assert [b.get_width() for b in p.figure.weight_bars] == [expect.bits[n] for n in table.layers]
     assert _untouched(net, snap)
 
 
@@ -141,7 +142,7 @@ def test_planner_measure_equals_evaluate_plan(setup):
     assert p.report.measured_sqnr_db == ref.measured_sqnr_db
     assert p.report.metric_planned == ref.metric_planned and p.report.metric_float == ref.metric_float
     assert f"{ref.measured_sqnr_db:.2f} dB" in p.readout.value
-    assert list(p._measured.get_data()[1]) == [ref.measured_sqnr_db]
+    assert list(p.figure.measured.get_data()[1]) == [ref.measured_sqnr_db]
 
 
 def test_planner_slider_burst_coalesces_to_the_last_value(setup):
@@ -209,3 +210,151 @@ def test_synthetic_table_in_planner_needs_no_scan():
     net = nn.Linear(1, 1)
     p = BudgetPlanner(net, torch.zeros(1, 1), table=t)
     assert p.plan.bits == plan_budget(t, weight_kib=p.budget).bits
+
+
+# ---------------------------------------------------------------------------- issue-10 behaviour
+def _pixel(canvas, ax, x, y):
+    """The rendered RGB at data point (x, y) of ``ax`` (read from the PNG's pixel buffer)."""
+    rgba = canvas.draw()
+    px, py = ax.transData.transform((x, y))
+    return tuple(int(v) for v in rgba[int(round(canvas.size_px[1] - py)), int(round(px)), :3])
+
+
+def test_scanview_scope_switches_table_and_heatmap_with_one_colour_scale(setup):
+    net, x, _, table = setup
+    view = ScanView(table)
+    for scope in ("layer", "model"):
+        view.controls["scope"].value = scope  # the toggle, as a click sets it
+        arr = table.sqnr_array(scope)
+        ax = view.canvas.figure.axes[0]
+        assert f"{scope} output SQNR" in ax.get_title()
+        # the table shows this scope's numbers and header
+        assert f"{scope.capitalize()}-output SQNR" in view.table_html.value
+        cells = re.findall(r'<td style="background:(#[0-9a-f]{6});color:#[0-9a-f]{6};text-align:right">'
+                           r"([^<]*)</td>", view.table_html.value)
+        assert [v for _, v in cells] == [("exact" if np.isposinf(v) else f"{v:.1f}") for v in arr.ravel()]
+        # reference: the pixels the heatmap really drew, left of each cell's centre (off its text)
+        for (bg, _), (i, j) in zip(cells, np.ndindex(arr.shape), strict=True):
+            want = tuple(int(bg[k:k + 2], 16) for k in (1, 3, 5))
+            got = _pixel(view.canvas, ax, j - 0.38, i)
+            assert max(abs(a - b) for a, b in zip(got, want, strict=True)) <= 3, (scope, i, j, got, want)
+
+
+def test_planner_kind_switch_keeps_the_plan(setup):
+    net, x, _, table = setup
+    p = BudgetPlanner(net, x, table=table)
+    p.set_budget("weight_kib", p.front()[len(p.front()) // 2][0])
+    plan = p.plan
+    p.controls["kind"].value = "bops"
+    assert p.plan is plan and p.kind == "bops"
+    # BOPs = MACs x weight bits x input bits (common practice), summed by hand here
+    bops = sum(table.macs(n) * plan.bits[n] * 8 for n in plan.layers)
+    assert p.budget == bops
+    assert p.controls["budget"].value * p._scale == pytest.approx(bops)
+    assert "kept the plan" in p.message.text
+    p.controls["kind"].value = "mean_bits"
+    assert p.plan is plan
+    weights = {n: table.params(n) for n in plan.layers}
+    assert p.budget == pytest.approx(sum(weights[n] * plan.bits[n] for n in plan.layers) / sum(weights.values()))
+
+
+def test_planner_keyboard_step_is_about_one_percent(setup):
+    net, x, _, table = setup
+    p = BudgetPlanner(net, x, table=table)
+    for kind in ("weight_kib", "mean_bits", "bops"):
+        p.controls["kind"].value = kind
+        s = p.controls["budget"]
+        assert 0.004 <= s.step / (s.max - s.min) <= 0.025, kind
+
+
+def test_planner_markers_stay_inside_the_plot(setup):
+    net, x, target, table = setup
+    p = BudgetPlanner(net, x, table=table)
+    for kind in ("weight_kib", "bops"):
+        front = p.front(kind)
+        for value in (front[0][0], front[-1][0]):  # the two ends, where markers used to be cut
+            p.set_budget(kind, value)
+            p.measure()
+            pos = p.figure.marker_positions()
+            assert set(pos) == {"chosen", "measured"}
+            assert p.figure.marker_boxes_inside(), (kind, value)
+
+
+def test_planner_save_never_overwrites_silently(setup, tmp_path):
+    net, x, _, table = setup
+    p = BudgetPlanner(net, x, table=table)
+    path = tmp_path / "plan.json"
+    path.write_text("the user's own file")
+    p.controls["path"].value = str(path)
+    p.controls["save"].click()
+    assert path.read_text() == "the user's own file"
+    numbered = tmp_path / "plan-1.json"
+    assert Plan.load(numbered).bits == p.plan.bits
+    assert str(numbered) in p.message.text and "left as it was" in p.message.text
+    p.controls["save"].click()
+    assert (tmp_path / "plan-2.json").exists() and path.read_text() == "the user's own file"
+    p.controls["overwrite"].value = True
+    assert p.message.text == ""  # the note was about the last save
+    p.controls["save"].click()
+    assert Plan.load(path).bits == p.plan.bits and "replaced" in p.message.text
+
+
+def test_planner_notes_clear_when_the_plan_changes(setup):
+    net, x, target, table = setup
+    p = BudgetPlanner(net, x, table=table)
+    p.measure()
+    assert p.message.text.startswith("measured:")
+    s = p.controls["budget"]
+    s.value = s.min + 0.3 * (s.max - s.min)
+    p.refresh()
+    assert p.message.text == "" and p.report is None and "press measure" in p.readout.value
+
+
+def test_planner_measures_on_held_out_data(setup):
+    net, x, target, table = setup
+    x_test, y_test = torch.randn(30, 1, 16), torch.arange(30) % 3
+    p = BudgetPlanner(net, x, table=table, metric=_accuracy, target=target, eval_data=x_test, eval_target=y_test)
+    p.measure()
+    ref = evaluate_plan(net, x_test, p.plan, metric=_accuracy, target=y_test)
+    assert p.report.measured_sqnr_db == ref.measured_sqnr_db and p.report.metric_planned == ref.metric_planned
+    assert "held-out" in p.readout.value and "held-out" in p.message.text
+    with pytest.raises(ValueError, match="eval_target needs eval_data"):
+        BudgetPlanner(net, x, table=table, eval_target=y_test)
+
+
+def test_explorer_grid_reaches_the_planner_plan(setup):
+    net, x, _, table = setup
+    p = BudgetPlanner(net, x, table=table)
+    view = ScanView(table, x, model=net)
+    assert view.controls["use_grid"].disabled and p.controls["use_grid"].disabled
+    view.link_planner(p)
+    assert view.controls["use_grid"].disabled  # no explorer open yet
+    layer = next(iter(p.plan.layers))
+    view.pick(layer, bits=p.plan.bits[layer])
+    assert not view.controls["use_grid"].disabled and not p.controls["use_grid"].disabled
+    ex = view.explorer
+    grid = ex.to_setting("weight").weight
+    view.controls["use_grid"].click()
+    assert not view.message.is_error, view.message.text
+    got = p.plan.layers[layer].weight
+    assert torch.equal(torch.as_tensor(got.scale), torch.as_tensor(grid.scale)) and got.bits == grid.bits
+    assert p.plan.predicted_sqnr_db is None and p.report is not None  # measured at once
+    assert "learned grid" in p.table_html.value
+    # reference: evaluate_plan of the plan with that setting, made here
+    assert p.report.measured_sqnr_db == evaluate_plan(net, x, p.plan).measured_sqnr_db
+    # the planner's own button takes the view's open explorer too
+    p.controls["use_grid"].click()
+    assert not p.message.is_error, p.message.text
+
+
+@pytest.mark.parametrize("dtype", [torch.float16, torch.bfloat16])
+def test_half_precision_models_work(dtype):
+    torch.manual_seed(0)
+    net = nn.Sequential(nn.Linear(8, 16), nn.ReLU(), nn.Linear(16, 4)).to(dtype)
+    x = torch.randn(32, 8).to(dtype)
+    view = ScanView(net, x, bits=(2, 4, 8), progress=False)
+    assert np.isfinite(view.table.sqnr_array("model")).all()
+    p = BudgetPlanner(net, x, table=view.table)
+    p.controls["measure"].click()
+    assert not p.message.is_error, p.message.text
+    assert str(dtype).replace("torch.", "") in p.readout.value

@@ -7,7 +7,7 @@ import json
 import math
 import os
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 from torch import nn
 
@@ -130,6 +130,47 @@ class Plan:
     def input_bits(self) -> dict:
         """Each entry's input width (None where its input stays float)."""
         return {n: None if s.input is None else s.input.bits for n, s in self.layers.items()}
+
+    # ------------------------------------------------------------------ edits
+    def with_setting(self, layer_name: str, setting: LayerSetting) -> Plan:
+        """A new plan with ``layer_name``'s grids replaced by ``setting``'s (a learned grid, say).
+
+        The setting's grids replace the plan's (one it leaves None keeps the plan's grid); the
+        layer's bit width follows the new weight grid. The allocator's prediction was made for
+        the old grids, so the new plan's ``predicted_sqnr_db`` is None (no longer valid):
+        measure it with :func:`qwidgets.evaluate_plan`. The plan itself is unchanged.
+
+        >>> from qwidgets import LayerSetting, Plan, UniformGrid
+        >>> p = Plan({"fc": LayerSetting(weight=UniformGrid(4, 0.1))}, {"fc": 4}, fingerprint="-",
+        ...          weight_shapes={"fc": (2, 4)}, macs={"fc": 8}, predicted_sqnr_db=20.0)
+        >>> q = p.with_setting("fc", LayerSetting(weight=UniformGrid(6, 0.02)))
+        >>> q.bits, q.layers["fc"].weight.scale, q.predicted_sqnr_db, p.bits
+        ({'fc': 6}, 0.02, None, {'fc': 4})
+        """
+        if not isinstance(layer_name, str):
+            raise TypeError(f"layer_name must be a str, got {type(layer_name).__name__}")
+        if layer_name not in self.layers:
+            raise ValueError(f"layer_name {layer_name!r} is not in the plan; planned layers: {list(self.layers)}")
+        if not isinstance(setting, LayerSetting):
+            raise TypeError(f"setting must be a LayerSetting, got {type(setting).__name__}")
+        if setting.is_empty:
+            raise ValueError("setting has neither a weight nor an input grid")
+        old = self.layers[layer_name]
+        weight = old.weight if setting.weight is None else setting.weight.detached()
+        inp = old.input if setting.input is None else setting.input.detached()
+        shape = self.weight_shapes[layer_name]
+        if setting.weight is not None and weight.axis is not None:
+            if not -len(shape) <= weight.axis < len(shape):
+                raise ValueError(f"setting.weight.axis {weight.axis} does not fit layer {layer_name!r}'s "
+                                 f"weight shape {shape}")
+            if weight.n_channels not in (None, 1, shape[weight.axis]):
+                raise ValueError(f"setting.weight has {weight.n_channels} channels on axis {weight.axis}, "
+                                 f"layer {layer_name!r}'s weight has {shape[weight.axis]} (shape {shape})")
+        bits = dict(self.bits)
+        bits[layer_name] = (weight if weight is not None else inp).bits
+        layers = dict(self.layers)
+        layers[layer_name] = LayerSetting(weight=weight, input=inp)
+        return replace(self, layers=layers, bits=bits, predicted_sqnr_db=None)
 
     # ------------------------------------------------------------------ costs
     def _params(self, name: str) -> int:

@@ -4,6 +4,7 @@
     ``.figure``  a matplotlib ``Figure`` made without pyplot (it never shows itself);
     ``.animate(*artists)``  artists that change on updates: they are drawn over a cached
                  background (blitting) instead of redrawing the whole figure;
+    ``.forget(*artists)``  stop drawing artists given to ``animate`` (after ``figure.clear()``);
     ``.invalidate(*axes)``  repaint the background of those axes (of the whole figure when none
                  is given) on the next render, after changing a title, ticks, a legend or other
                  non-animated artists; a change of an axes' limits is noticed by itself
@@ -114,6 +115,10 @@ class BlitCanvas:
             a.set_animated(True)
             if a not in self._animated:
                 self._animated.append(a)
+
+    def forget(self, *artists) -> None:
+        """Stop drawing artists marked by :meth:`animate` (for example after ``figure.clear()``)."""
+        self._animated = [a for a in self._animated if a not in artists]
 
     def invalidate(self, *axes) -> None:
         """Repaint the background on the next :meth:`render`: of the given axes, or of all."""

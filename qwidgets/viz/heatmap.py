@@ -1,20 +1,72 @@
-"""The layers x bit widths SQNR heatmap, drawn with matplotlib (shared by ScanView and
-:func:`plot_sensitivity`; the scan itself never imports matplotlib)."""
+"""The layers x bit widths SQNR heatmap, drawn with matplotlib, and the same colours for an HTML
+table (shared by ScanView and :func:`plot_sensitivity`; the scan itself never imports matplotlib).
+
+One colour scale serves the figure and the table: :func:`sqnr_limits` picks it from one or more
+arrays (ScanView passes both scopes, so toggling the scope keeps the scale), and
+:func:`draw_heatmap` and :func:`cell_colors` both map a value to the same colour with it.
+"""
 
 from __future__ import annotations
 
+import html
 from collections.abc import Sequence
 
 import numpy as np
+from matplotlib import colormaps
+from matplotlib.colors import to_hex
 
 from ..planning.table import SensitivityTable
 from ..planning.table_html import fmt_db
 
-__all__ = ["draw_heatmap", "plot_sensitivity"]
+__all__ = ["CMAP", "cell_colors", "draw_heatmap", "plot_sensitivity", "sqnr_limits", "sqnr_table_html"]
+
+CMAP = "viridis"
+TEXT_DARK_ABOVE = 0.55  # fraction of the scale above which cell text is black (viridis is light there)
 
 
-def draw_heatmap(ax, arr: np.ndarray, layers: Sequence[str], bits: Sequence[int], label: str) -> object:
+def sqnr_limits(*arrays: np.ndarray | None) -> tuple[float, float]:
+    """The colour scale ``(vmin, vmax)`` covering every finite value of the given arrays.
+
+    >>> sqnr_limits(np.array([[10.0, np.inf]]), np.array([[30.0]]), None)
+    (10.0, 30.0)
+    >>> sqnr_limits(np.array([[5.0]]))  # one value: a 1 dB wide scale
+    (5.0, 6.0)
+    """
+    finite = [a[np.isfinite(a)] for a in arrays if a is not None]
+    finite = np.concatenate(finite) if finite else np.zeros(0)
+    if not finite.size:
+        return 0.0, 1.0
+    vmin, vmax = float(finite.min()), float(finite.max())
+    return (vmin, vmax) if vmax > vmin else (vmin, vmin + 1.0)
+
+
+def _fractions(arr: np.ndarray, vmin: float, vmax: float) -> np.ndarray:
+    """Position of each value on the scale, 0..1; +inf ("exact") at the top, -inf at the bottom."""
+    a = np.where(np.isposinf(arr), vmax, np.where(np.isneginf(arr), vmin, arr))
+    a = np.where(np.isnan(a), vmin, a)
+    return np.clip((a - vmin) / (vmax - vmin), 0.0, 1.0)
+
+
+def cell_colors(arr: np.ndarray, vmin: float, vmax: float) -> tuple[list[list[str]], list[list[str]]]:
+    """Background and text colours (hex) of each cell, as :func:`draw_heatmap` paints them.
+
+    >>> bg, fg = cell_colors(np.array([[10.0, 30.0]]), 10.0, 30.0)
+    >>> bg, fg
+    ([['#440154', '#fde725']], [['#ffffff', '#000000']])
+    """
+    cmap = colormaps[CMAP]
+    frac = _fractions(np.asarray(arr, dtype=float), vmin, vmax)
+    bg = [[to_hex(cmap(float(f))) for f in row] for row in frac]
+    fg = [["#000000" if f > TEXT_DARK_ABOVE else "#ffffff" for f in row] for row in frac]
+    return bg, fg
+
+
+def draw_heatmap(ax, arr: np.ndarray, layers: Sequence[str], bits: Sequence[int], label: str, *,
+                 vmin: float | None = None, vmax: float | None = None) -> object:
     """Draw a layers x bits SQNR heatmap with values in the cells into ``ax``; returns the image.
+
+    ``vmin`` / ``vmax``: the colour scale (default: :func:`sqnr_limits` of ``arr``). Every label
+    is literal text (a layer named ``$x$`` is not read as math).
 
     >>> from matplotlib.figure import Figure
     >>> ax = Figure().add_subplot()
@@ -22,26 +74,55 @@ def draw_heatmap(ax, arr: np.ndarray, layers: Sequence[str], bits: Sequence[int]
     >>> [t.get_text() for t in ax.texts]
     ['10.0', '30.0']
     """
-    finite = arr[np.isfinite(arr)]
-    vmin, vmax = (float(finite.min()), float(finite.max())) if finite.size else (0.0, 1.0)
-    if vmax == vmin:
-        vmax = vmin + 1.0
-    shown = np.where(np.isfinite(arr), arr, vmax)
-    im = ax.imshow(shown, aspect="auto", cmap="viridis", vmin=vmin, vmax=vmax, interpolation="nearest")
+    arr = np.asarray(arr, dtype=float)
+    if vmin is None or vmax is None:
+        vmin, vmax = sqnr_limits(arr)
+    frac = _fractions(arr, vmin, vmax)
+    shown = vmin + frac * (vmax - vmin)
+    im = ax.imshow(shown, aspect="auto", cmap=CMAP, vmin=vmin, vmax=vmax, interpolation="nearest")
     ax.set_xticks(range(len(bits)), [str(b) for b in bits])
     ax.set_yticks(range(len(layers)), list(layers))
+    for t in ax.get_yticklabels():
+        t.set_usetex(False)
+        t.set_parse_math(False)
     ax.set_xlabel("bit width")
     ax.set_ylabel("layer (execution order)")
-    ax.set_title(label, fontsize=10)
+    ax.set_title(label, fontsize=10, parse_math=False)
     fs = 8 if len(layers) <= 24 else 6
     for i in range(arr.shape[0]):
         for j in range(arr.shape[1]):
-            v = arr[i, j]
-            frac = 1.0 if not np.isfinite(v) else (v - vmin) / (vmax - vmin)
-            ax.text(j, i, fmt_db(v), ha="center", va="center", fontsize=fs,
-                    color="black" if frac > 0.55 else "white")
+            ax.text(j, i, fmt_db(arr[i, j]), ha="center", va="center", fontsize=fs, parse_math=False,
+                    color="black" if frac[i, j] > TEXT_DARK_ABOVE else "white")
     ax.figure.colorbar(im, ax=ax, label="SQNR (dB)", fraction=0.05, pad=0.02)
     return im
+
+
+def sqnr_table_html(table: SensitivityTable, scope: str, vmin: float | None = None,
+                    vmax: float | None = None) -> str:
+    """The table's SQNR for one scope as an HTML table, cells in the heatmap's colours.
+
+    >>> t = SensitivityTable.synthetic(np.array([[12.0, 36.0]]), params=[64], bits=(2, 6))
+    >>> "#440154" in sqnr_table_html(t, "model") and "Model-output SQNR" in sqnr_table_html(t, "model")
+    True
+    """
+    arr = table.sqnr_array(scope)
+    if arr is None:
+        raise ValueError(f"the table holds no {scope}-scope SQNR; it holds {list(table.scopes)}")
+    if vmin is None or vmax is None:
+        vmin, vmax = sqnr_limits(arr)
+    bg, fg = cell_colors(arr, vmin, vmax)
+    head = "".join(f"<th>{b} bits</th>" for b in table.bits)
+    body = []
+    for i, name in enumerate(table.layers):
+        cells = "".join(f'<td style="background:{bg[i][j]};color:{fg[i][j]};text-align:right">'
+                        f"{fmt_db(v)}</td>" for j, v in enumerate(arr[i]))
+        body.append(f"<tr><td>{html.escape(name)}</td><td>{html.escape(table.layer_type(name))}</td>"
+                    f'<td style="text-align:right">{table.params(name):,}</td>'
+                    f'<td style="text-align:right">{table.macs(name):,}</td>{cells}</tr>')
+    return (f"<div><b>{scope.capitalize()}-output SQNR (dB)</b>, {html.escape(table.quantize)} quantized, "
+            f"one layer at a time ({table.n_samples} samples)<table>"
+            f"<tr><th>layer</th><th>type</th><th>weights</th><th>MACs / sample</th>{head}</tr>"
+            + "".join(body) + "</table></div>")
 
 
 def plot_sensitivity(table: SensitivityTable, scope: str = "model", ax=None):

@@ -2,21 +2,23 @@
 
 The view draws a :class:`~qwidgets.scan.SensitivityTable` (made by :func:`qwidgets.scan`, or
 given); it computes nothing itself. Picking a layer (the drop-down, or :meth:`ScanView.pick`)
-marks its row in the heatmap and opens a :class:`~qwidgets.widgets.explorer.GridExplorer` for
+marks its row in the heatmap (:class:`~qwidgets.viz.scan_figure.ScanFigure`) and opens a :class:`~qwidgets.widgets.explorer.GridExplorer` for
 that layer, starting at the picked bit width with the scan's range method.
 """
 
 from __future__ import annotations
 
+import html
 import os
+from collections.abc import Callable
 
 import ipywidgets as widgets
-from matplotlib.patches import Rectangle
 from torch import nn
 
 from ..planning.scanning import scan
 from ..planning.table import SensitivityTable
-from ..viz.heatmap import draw_heatmap
+from ..viz.heatmap import sqnr_limits, sqnr_table_html
+from ..viz.scan_figure import ScanFigure
 from .events import MessageLine
 from .image_canvas import PlotCanvas
 
@@ -30,6 +32,7 @@ CSS = {
     "bits": "qw-scan-bits",
     "scope": "qw-scan-scope",
     "open": "qw-scan-open",
+    "use_grid": "qw-scan-use-grid",
     "explorer": "qw-scan-explorer",
 }
 SCOPE_LABELS = {"model": "model output", "layer": "layer output"}
@@ -39,9 +42,11 @@ class ScanView(widgets.VBox):
     """Heatmap and table of a sensitivity scan; pick a layer to explore its grid below.
 
     ``ScanView(model, data, ...)`` runs :func:`qwidgets.scan` (keywords ``bits``,
-    ``quantize``, ``method``, ``per_channel``, ``scope``, ``max_samples``, ``progress``,
-    ``output`` go to it); ``ScanView(table)`` shows a table made before (add ``model=`` and ``data=`` to open
-    explorers from it).
+    ``quantize``, ``method``, ``per_channel``, ``scope``, ``max_samples``, ``progress`` go to
+    it, and ``output`` too); ``ScanView(table)`` shows a table made before (add ``model=`` and
+    ``data=`` to open explorers from it). The scope toggle switches heatmap and table together;
+    both use one colour scale (the same for both scopes). With a planner linked
+    (:meth:`link_planner`), "use grid in plan" puts the open explorer's grid into its plan.
 
     >>> import torch
     >>> from torch import nn
@@ -54,8 +59,8 @@ class ScanView(widgets.VBox):
 
     def __init__(self, obj, data=None, *, model: nn.Module | None = None, bits=(2, 3, 4, 5, 6, 8),
                  quantize: str = "weight", method: str = "mse", per_channel: bool = True,
-                 scope: str = "both", max_samples: int | None = None, progress: bool = True,
-                 width: int = 720, output=None):
+                 scope: str = "both", max_samples: int | None = None, output: Callable | None = None,
+                 progress: bool = True, width: int = 720):
         super().__init__()
         if isinstance(obj, SensitivityTable):
             if (model is None) != (data is None):
@@ -69,17 +74,21 @@ class ScanView(widgets.VBox):
             if model is not None:
                 raise TypeError("give the model once: ScanView(model, data) or ScanView(table, model=..., data=...)")
             self.model, self.data = obj, data
+            if output is not None and not callable(output):
+                raise TypeError(f"output must be a callable picking the tensor to compare, got {type(output).__name__}")
             self.table = scan(obj, data, bits, quantize=quantize, method=method, per_channel=per_channel,
                               scope=scope, max_samples=max_samples, progress=progress, output=output)
         else:
             raise TypeError(f"ScanView takes a model and its data, or a SensitivityTable; got {type(obj).__name__}")
         self._max_samples = max_samples
         self.explorer = None
+        self.planner = None
         self.selected: tuple[str, int] | None = None
         self._scope = "model" if "model" in self.table.scopes else "layer"
+        # one colour scale for heatmap and table, and for both scopes
+        self.color_limits = sqnr_limits(*(self.table.sqnr_array(s) for s in self.table.scopes))
         self._build(width)
-        self._draw_table()
-        self._draw_heatmap()
+        self._draw()
 
     # ------------------------------------------------------------------ layout
     def _build(self, width: int) -> None:
@@ -100,6 +109,9 @@ class ScanView(widgets.VBox):
                                    tooltip="open a grid explorer for this layer below"
                                    if self.model is not None else "give model= and data= to explore",
                                    layout=widgets.Layout(width="140px")),
+            "use_grid": widgets.Button(description="use grid in plan", icon="arrow-down", disabled=True,
+                                       tooltip="link a BudgetPlanner first: view.link_planner(planner)",
+                                       layout=widgets.Layout(width="150px")),
         }
         for name, w in self.controls.items():
             w.add_class(CSS[name])
@@ -107,56 +119,35 @@ class ScanView(widgets.VBox):
                                        names="value")
         self.controls["open"].on_click(lambda _b: self.message.run("explore", lambda: self.pick(
             self.controls["layer"].value, bits=self.controls["bits"].value)))
+        self.controls["use_grid"].on_click(lambda _b: self.message.run("use grid in plan", self.use_grid))
+        for name in ("layer", "bits"):  # a note about the picked layer no longer matches the choice
+            self.controls[name].observe(lambda _ch: self.message.clear(), names="value")
         rows = len(t.layers)
         height = int(min(900, max(220, 120 + 26 * rows)))
         self.canvas = PlotCanvas(width, height)
         self.canvas.image.add_class(CSS["plot"])
+        self.figure = ScanFigure(self.canvas)
         self.table_html = widgets.HTML(layout=widgets.Layout(max_height="360px", overflow="auto",
                                                              width=f"{width}px"))
         self.table_html.add_class(CSS["table"])
         self.explorer_box = widgets.VBox([])
         self.explorer_box.add_class(CSS["explorer"])
-        bar = widgets.HBox([self.controls["layer"], self.controls["bits"], self.controls["open"]],
+        bar = widgets.HBox([self.controls["layer"], self.controls["bits"], self.controls["open"],
+                            self.controls["use_grid"]],
                            layout=widgets.Layout(align_items="center"))
         self.children = [self.controls["scope"], self.canvas.image, self.table_html, bar,
                          self.message.widget, self.explorer_box]
         self.add_class(CSS["root"])
 
     # ------------------------------------------------------------------ drawing
-    def _draw_heatmap(self) -> None:
-        fig = self.canvas.figure
-        fig.clear()
-        ax = fig.add_subplot()
-        arr = self.table.sqnr_array(self._scope)
-        draw_heatmap(ax, arr, self.table.layers, self.table.bits,
-                     f"{SCOPE_LABELS[self._scope]} SQNR (dB), one layer quantized at a time "
-                     f"({self.table.quantize})")
-        self._marker = Rectangle((-0.5, -0.5), len(self.table.bits), 1, fill=False, lw=2.2,
-                                 ec="#d62728", visible=False)
-        self._cell = Rectangle((-0.5, -0.5), 1, 1, fill=False, lw=2.2, ec="white", visible=False)
-        ax.add_patch(self._marker)
-        ax.add_patch(self._cell)
-        self._ax = ax
-        fig.tight_layout()
-        self.canvas.animate(self._marker, self._cell)
-        self.canvas.invalidate()
-        self._place_marker()
+    def _draw(self) -> None:
+        """Heatmap and table of the current scope, with the one colour scale."""
+        t, (vmin, vmax) = self.table, self.color_limits
+        self.figure.show(t.sqnr_array(self._scope), t.layers, t.bits,
+                         f"{SCOPE_LABELS[self._scope]} SQNR (dB), one layer quantized at a time ({t.quantize})",
+                         vmin=vmin, vmax=vmax)
+        self.table_html.value = sqnr_table_html(t, self._scope, vmin, vmax)
         self.canvas.render()
-
-    def _place_marker(self) -> None:
-        if self.selected is None:
-            self._marker.set_visible(False)
-            self._cell.set_visible(False)
-            return
-        row = self.table.layers.index(self.selected[0])
-        col = self.table.bits.index(self.selected[1])
-        self._marker.set_xy((-0.5, row - 0.5))
-        self._cell.set_xy((col - 0.5, row - 0.5))
-        self._marker.set_visible(True)
-        self._cell.set_visible(True)
-
-    def _draw_table(self) -> None:
-        self.table_html.value = self.table._repr_html_()
 
     # ------------------------------------------------------------------ actions
     def set_scope(self, scope: str) -> ScanView:
@@ -166,7 +157,7 @@ class ScanView(widgets.VBox):
         self._scope = scope
         if self.controls["scope"].value != scope:
             self.controls["scope"].value = scope
-        self._draw_heatmap()
+        self._draw()
         return self
 
     def pick(self, layer: str, bits: int | None = None) -> ScanView:
@@ -179,8 +170,9 @@ class ScanView(widgets.VBox):
             raise ValueError(f"bits must be one of the scanned widths {list(t.bits)}, got {bits!r}")
         self.controls["layer"].value, self.controls["bits"].value = layer, bits
         self.selected = (layer, int(bits))
-        self._place_marker()
+        self.figure.mark(t.layers.index(layer), t.bits.index(bits))
         self.canvas.render()
+        self.message.clear()
         if self.model is None:
             self.message.info(f"{layer} at {bits} bits: {_summary(t, layer, bits)} "
                               "(give model= and data= to explore the grid)")
@@ -196,9 +188,36 @@ class ScanView(widgets.VBox):
                                      method=t.method, per_channel=t.per_channel and t.quantize != "input",
                                      source="input" if t.quantize == "input" else "weight",
                                      max_samples=self._max_samples)
-        self.explorer_box.children = [widgets.HTML(f"<b>Grid explorer: layer {layer}</b>"), self.explorer]
+        self.explorer_box.children = [widgets.HTML(f"<b>Grid explorer: layer {html.escape(layer)}</b>"),
+                                      self.explorer]
+        self.controls["use_grid"].disabled = self.planner is None
         self.message.info(f"{layer} at {bits} bits: {_summary(t, layer, bits)}")
         return self
+
+    def link_planner(self, planner) -> ScanView:
+        """Let "use grid in plan" put the open explorer's grid into ``planner``'s plan; the
+        planner's own "use explorer's grid" button then takes this view's open explorer too."""
+        from .planner import BudgetPlanner
+
+        if not isinstance(planner, BudgetPlanner):
+            raise TypeError(f"planner must be a BudgetPlanner, got {type(planner).__name__}")
+        self.planner = planner
+        planner.link_explorer(self)
+        b = self.controls["use_grid"]
+        b.disabled = self.explorer is None
+        b.tooltip = "put the explorer's grid into the linked planner's plan"
+        return self
+
+    def use_grid(self):
+        """Put the open explorer's grid into the linked planner's plan (see
+        :meth:`BudgetPlanner.use_grid`); returns the planner's new plan."""
+        if self.planner is None:
+            raise ValueError("no planner linked: call view.link_planner(planner) first")
+        if self.explorer is None:
+            raise ValueError("no explorer open: pick a layer and press explore layer")
+        plan = self.planner.use_grid(self.explorer)
+        self.message.info(self.planner.message.text)
+        return plan
 
     def save_figure(self, path: str | os.PathLike) -> None:
         """Write the heatmap as PNG or SVG (by the file's extension)."""

@@ -1,0 +1,159 @@
+"""PlannerFigure: the budget planner's figure, the Pareto front and the bits per layer.
+
+Drawn on a :class:`~qwidgets.viz.canvas.BlitCanvas` (the widget shows its PNG). The front, axes
+and labels are the static background; the budget line, the chosen-plan dot, the measured
+diamond and the bars are blitted on top, so moving the budget redraws only them. The limits
+always leave room for a whole marker, so no marker is cut at the plot's edge.
+
+>>> from qwidgets.viz.canvas import BlitCanvas
+>>> f = PlannerFigure(BlitCanvas(600, 300), ["a", "b"], (2, 4, 8))
+>>> f.show_front([1.0, 2.0, 3.0], [10.0, 20.0, 30.0], "weight storage (KiB)")
+>>> f.show_choice(2.0, 2.0, 20.0, measured_db=18.5, weight_bits=[4, 8])
+>>> [b.get_width() for b in f.weight_bars], f.marker_positions()
+([4, 8], {'chosen': (2.0, 20.0), 'measured': (2.0, 18.5)})
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+
+import numpy as np
+
+from .canvas import BlitCanvas
+
+__all__ = ["PlannerFigure"]
+
+FRONT_COLOR = "#1f77b4"
+CHOSEN_COLOR = "#d62728"
+MEASURED_COLOR = "#2ca02c"
+WEIGHT_COLOR = "#4c72b0"
+INPUT_COLOR = "#dd8452"
+X_PAD = 0.06  # of the cost span, each side: more than a marker's radius at the widget's size
+Y_PAD = 0.10  # of the SQNR span (at least 1 dB), each side
+
+
+class PlannerFigure:
+    """The Pareto front (cost against predicted SQNR) beside a bar chart of bits per layer.
+
+    ``layers``: the table's layers, top to bottom; ``bits``: the widths on the bar axis;
+    ``inputs``: draw an input-width bar beside each weight bar (tables with both).
+    """
+
+    def __init__(self, canvas: BlitCanvas, layers: Sequence[str], bits: Sequence[int], *,
+                 inputs: bool = False):
+        self.canvas = canvas
+        self.layers = list(layers)
+        fig = canvas.figure
+        self.ax_front = fig.add_axes((0.09, 0.15, 0.50, 0.74))
+        self.ax_bits = fig.add_axes((0.72, 0.15, 0.25, 0.74))
+        ax = self.ax_front
+        (self.front_line,) = ax.plot([], [], drawstyle="steps-post", color=FRONT_COLOR, lw=1.4,
+                                     label="Pareto front")
+        (self.front_dots,) = ax.plot([], [], ".", color=FRONT_COLOR, ms=3)
+        self.budget_line = ax.axvline(0.0, color="#888888", ls="--", lw=1, label="budget")
+        (self.chosen,) = ax.plot([], [], "o", color=CHOSEN_COLOR, ms=10, label="chosen plan",
+                                 clip_on=False)
+        (self.measured,) = ax.plot([], [], "D", color=MEASURED_COLOR, ms=6, label="measured",
+                                   clip_on=False)
+        ax.set_ylabel("predicted model-output SQNR (dB)")
+        ax.set_title("best predicted SQNR for each budget", fontsize=10)
+        ax.grid(alpha=0.3)
+        ax.legend(loc="lower right", fontsize=8)
+        axb = self.ax_bits
+        y = np.arange(len(self.layers), dtype=float)
+        h = 0.38 if inputs else 0.7
+        self.weight_bars = list(axb.barh(y - (h / 2 if inputs else 0), np.zeros(len(y)), color=WEIGHT_COLOR,
+                                         height=h, label="weight"))
+        self.input_bars = list(axb.barh(y + h / 2, np.zeros(len(y)), color=INPUT_COLOR, height=h,
+                                        label="input")) if inputs else []
+        axb.set_yticks(y, self.layers, fontsize=8 if len(y) <= 30 else 6)
+        for t in axb.get_yticklabels():
+            t.set_parse_math(False)  # layer names are literal text
+        axb.invert_yaxis()
+        axb.set_xlim(0, max(bits) + 0.5)
+        axb.set_xticks(list(bits))
+        axb.set_xlabel("bits")
+        axb.set_title("bits per layer", fontsize=10)
+        axb.grid(axis="x", alpha=0.3)
+        if inputs:
+            axb.legend(loc="lower right", fontsize=7)
+        self._front_limits = (0.0, 1.0, 0.0, 1.0)
+        canvas.animate(self.budget_line, self.chosen, self.measured, *self.weight_bars, *self.input_bars)
+
+    def show_front(self, costs: Sequence[float], sqnr_db: Sequence[float], xlabel: str) -> None:
+        """Draw the front's points (infinite SQNR is left out of the line)."""
+        xs = np.asarray(costs, dtype=float)
+        ys = np.asarray(sqnr_db, dtype=float)
+        finite = np.isfinite(ys)
+        self.front_line.set_data(xs[finite], ys[finite])
+        self.front_dots.set_data(xs[finite], ys[finite])
+        self.ax_front.set_xlabel(xlabel)
+        ylo, yhi = (float(ys[finite].min()), float(ys[finite].max())) if finite.any() else (0.0, 1.0)
+        self._front_limits = (float(xs.min()), float(xs.max()), ylo, yhi)
+        self._set_limits([], [])
+        self.canvas.invalidate()
+
+    def _set_limits(self, px: list, py: list) -> None:
+        """Limits covering the front and the given points, each padded by more than a marker."""
+        x0, x1, y0, y1 = self._front_limits
+        x0, x1 = min([x0, *px]), max([x1, *px])
+        y0, y1 = min([y0, *py]), max([y1, *py])
+        xpad = X_PAD * (x1 - x0) or max(abs(x0) * 0.05, 0.5)
+        ypad = max(1.0, Y_PAD * (y1 - y0))
+        self.ax_front.set_xlim(x0 - xpad, x1 + xpad)
+        self.ax_front.set_ylim(y0 - ypad, y1 + ypad)
+
+    def show_choice(self, budget: float, cost: float, predicted_db: float | None, *,
+                    measured_db: float | None = None, weight_bits: Sequence[int | None] = (),
+                    input_bits: Sequence[int | None] | None = None) -> None:
+        """The budget line, the chosen plan at (cost, predicted), the measurement, the bars.
+
+        ``predicted_db`` None (a plan with edited grids has no prediction): no dot; +inf: at
+        the top of the plot. Widths of None draw no bar (float).
+        """
+        self.budget_line.set_xdata([budget, budget])
+        px, py = [budget, cost], []
+        if measured_db is not None and math.isfinite(measured_db):
+            py.append(measured_db)
+        if predicted_db is not None and math.isfinite(predicted_db):
+            py.append(predicted_db)
+        self._set_limits(px, py)
+        if predicted_db is None or math.isnan(predicted_db):
+            self.chosen.set_data([], [])
+        else:
+            y = predicted_db if math.isfinite(predicted_db) else self.ax_front.get_ylim()[1] - 0.5 * max(
+                1.0, Y_PAD * (self._front_limits[3] - self._front_limits[2]))
+            self.chosen.set_data([cost], [y])
+        if measured_db is None:
+            self.measured.set_data([], [])
+        else:
+            y = measured_db if math.isfinite(measured_db) else self.ax_front.get_ylim()[1]
+            self.measured.set_data([cost], [y])
+        for bar, b in zip(self.weight_bars, weight_bits, strict=True):
+            bar.set_width(b or 0)
+        for bar, b in zip(self.input_bars, input_bits or [None] * len(self.input_bars), strict=True):
+            bar.set_width(b or 0)
+
+    def marker_positions(self) -> dict:
+        """Where the chosen-plan dot and the measured diamond are drawn (data units; tests)."""
+        out = {}
+        for name, line in (("chosen", self.chosen), ("measured", self.measured)):
+            xs, ys = line.get_data()
+            if len(xs):
+                out[name] = (float(xs[0]), float(ys[0]))
+        return out
+
+    def marker_boxes_inside(self) -> bool:
+        """Whether every shown marker lies wholly inside the front's axes (in pixels)."""
+        self.canvas.draw()
+        box = self.ax_front.get_window_extent()
+        for line in (self.chosen, self.measured):
+            xs, ys = line.get_data()
+            if not len(xs):
+                continue
+            cx, cy = self.ax_front.transData.transform((xs[0], ys[0]))
+            r = line.get_markersize() / 72 * self.canvas.dpi / 2 + line.get_markeredgewidth()
+            if not (box.x0 <= cx - r and cx + r <= box.x1 and box.y0 <= cy - r and cy + r <= box.y1):
+                return False
+        return True

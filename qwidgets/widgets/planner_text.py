@@ -1,0 +1,139 @@
+"""Text of the budget planner: the readout and the per-layer table as HTML, slider steps, units.
+
+Plain functions of the planner's state (no ipywidgets, no matplotlib), so the widget stays a
+holder of state and the text can be checked on its own.
+"""
+
+from __future__ import annotations
+
+import html
+import math
+
+from ..planning.evaluate import PlanReport
+from ..planning.plan import Plan
+from ..planning.table import SensitivityTable
+
+__all__ = ["KIND_LABELS", "AXIS_LABELS", "plan_cost", "nice_step", "si_prefix", "fmt_cost",
+           "readout_html", "layers_html", "initial_budget"]
+
+KIND_LABELS = {"weight_kib": "weight KiB", "mean_bits": "mean bits", "bops": "BOPs"}
+AXIS_LABELS = {"weight_kib": "weight storage (KiB)", "mean_bits": "mean weight bits",
+               "bops": "bit operations per sample"}
+
+
+def plan_cost(plan: Plan, kind: str) -> float:
+    """A plan's cost in one budget kind.
+
+    >>> from qwidgets import LayerSetting, UniformGrid
+    >>> p = Plan({"": LayerSetting(weight=UniformGrid(4, 0.1))}, {"": 4}, fingerprint="-",
+    ...          weight_shapes={"": (2, 4)}, macs={"": 8})
+    >>> plan_cost(p, "mean_bits"), plan_cost(p, "bops")
+    (4.0, 256)
+    """
+    if kind == "weight_kib":  # the whole model's KiB when the plan counts it (budget's scope)
+        return plan.model_kib if plan.model_kib is not None else plan.weight_kib
+    return {"mean_bits": lambda: plan.mean_weight_bits, "bops": lambda: plan.bops}[kind]()
+
+
+def nice_step(span: float, fraction: float = 0.01) -> float:
+    """A round slider step (1, 2 or 5 times a power of ten) close to ``fraction`` of ``span``.
+
+    >>> nice_step(6.3), nice_step(1.9e6), nice_step(0.0)
+    (0.05, 20000.0, 1e-06)
+    """
+    target = span * fraction
+    if not target > 0 or not math.isfinite(target):
+        return 1e-6
+    p = 10.0 ** math.floor(math.log10(target))
+    best = min((1, 2, 5, 10), key=lambda m: abs(math.log(m * p / target)))
+    return float(f"{best * p:.12g}")
+
+
+def si_prefix(scale: float) -> str:
+    return {1.0: "", 1e3: "k", 1e6: "M", 1e9: "G", 1e12: "T", 1e15: "P"}.get(scale, f"x{scale:g} ")
+
+
+def fmt_cost(v: float, kind: str) -> str:
+    """A cost as the readout prints it.
+
+    >>> fmt_cost(5.4321, "weight_kib"), fmt_cost(1234567.0, "bops")
+    ('5.43', '1,234,567')
+    """
+    if kind == "bops":
+        return f"{v:,.0f}"
+    return f"{v:,.3f}" if kind == "mean_bits" else f"{v:,.2f}"
+
+
+def initial_budget(front: list) -> float:
+    """A starting budget: the cheapest plan predicted within 1 dB of the best, if any."""
+    best = max(s for _, s, _ in front)
+    if not math.isfinite(best):
+        return front[-1][0]
+    for c, s, _ in front:
+        if s >= best - 1.0:
+            return c
+    return front[-1][0]
+
+
+def _db(v: float | None) -> str:
+    if v is None:
+        return "-"
+    return "exact (no error)" if v == math.inf else f"{v:.2f} dB"
+
+
+def readout_html(plan: Plan, report: PlanReport | None, *, kind: str, budget: float,
+                 predicted_db: float | None, edited: dict, metric: bool, measured_on: str,
+                 dtype: str, coverage: str = "") -> str:
+    """The planner's readout: budget, predicted and measured SQNR, costs, metric, model dtype.
+
+    ``edited``: layer -> note, for layers whose grids came from an explorer (the prediction
+    was made for the scan's grids); ``measured_on``: which data "measure" runs on.
+    """
+    pred = _db(predicted_db)
+    if edited:
+        pred += f" (for the scan's grids; learned grids in {', '.join(edited)}: measure to check)"
+    rows = [
+        ("budget", f"{fmt_cost(budget, kind)} {KIND_LABELS[kind]}"),
+        ("predicted SQNR", pred),
+        ("measured SQNR", "press measure" if report is None else
+         f"{_db(report.measured_sqnr_db)} on {measured_on}"),
+        ("weights", f"{plan.weight_kib:,.2f} KiB (float32 {plan.float_weight_kib:,.2f} KiB, "
+                    f"{plan.float_weight_kib / plan.weight_kib:.1f}x smaller)"),
+        ("whole model", "-" if plan.model_kib is None else
+         f"{plan.model_kib:,.2f} KiB (weights not planned at their stored width)"),
+        ("scanned", coverage or "-"),
+        ("mean weight bits", f"{plan.mean_weight_bits:.3f}"),
+        ("BOPs per sample", f"{plan.bops:,} (float32 {plan.float_bops:,}, "
+                            f"{plan.float_bops / max(plan.bops, 1):.1f}x fewer)"),
+    ]
+    if metric:
+        rows.append(("metric", "press measure" if report is None or report.metric_float is None else
+                     f"float {report.metric_float:.4g}, planned {report.metric_planned:.4g} "
+                     f"({report.metric_planned - report.metric_float:+.4g}) on {measured_on}"))
+    rows.append(("model", f"{dtype} weights"))
+    cells = "".join(f"<tr><td style='padding-right:12px;color:#555'>{html.escape(k)}</td>"
+                    f"<td><b>{html.escape(v)}</b></td></tr>" for k, v in rows)
+    return f"<table>{cells}</table>"
+
+
+def layers_html(table: SensitivityTable, plan: Plan, edited: dict) -> str:
+    """One row per planned layer: bits (weight, and input where planned), size, BOPs, SQNR alone."""
+    rows = plan.to_rows()
+    with_inputs = any(r["input_bits"] is not None for r in rows)
+    body = []
+    for row in rows:
+        name = row["layer"]
+        w = row["weight_bits"]
+        alone = table.sqnr_db(name, w, "model") if w in table.bits and name in table.layers else None
+        note = f" ({edited[name]})" if name in edited else ""
+        inp = f"<td style='text-align:right'>{row['input_bits'] or 'float'}</td>" if with_inputs else ""
+        body.append(
+            f"<tr><td>{html.escape(name + note)}</td><td style='text-align:right'>{w or 'float'}</td>{inp}"
+            f"<td style='text-align:right'>{row['params']:,}</td>"
+            f"<td style='text-align:right'>{row['weight_kib']:,.3f}</td>"
+            f"<td style='text-align:right'>{row['bops']:,}</td>"
+            f"<td style='text-align:right'>{'-' if alone is None else f'{alone:.1f}'}</td></tr>")
+    head_in = "<th>input bits</th>" if with_inputs else ""
+    return ("<table><tr><th>layer</th><th>weight bits</th>" + head_in +
+            "<th>weights</th><th>KiB</th><th>BOPs</th><th>model SQNR alone (dB)</th></tr>"
+            + "".join(body) + "</table>")
