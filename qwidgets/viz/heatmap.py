@@ -17,6 +17,7 @@ from matplotlib.colors import to_hex
 
 from ..planning.table import SensitivityTable
 from ..planning.table_html import fmt_db
+from .labels import literal
 
 __all__ = ["CMAP", "cell_colors", "draw_heatmap", "plot_sensitivity", "sqnr_limits", "sqnr_table_html"]
 
@@ -81,10 +82,7 @@ def draw_heatmap(ax, arr: np.ndarray, layers: Sequence[str], bits: Sequence[int]
     shown = vmin + frac * (vmax - vmin)
     im = ax.imshow(shown, aspect="auto", cmap=CMAP, vmin=vmin, vmax=vmax, interpolation="nearest")
     ax.set_xticks(range(len(bits)), [str(b) for b in bits])
-    ax.set_yticks(range(len(layers)), list(layers))
-    for t in ax.get_yticklabels():
-        t.set_usetex(False)
-        t.set_parse_math(False)
+    ax.set_yticks(range(len(layers)), [literal(n) for n in layers])
     ax.set_xlabel("bit width")
     ax.set_ylabel("layer (execution order)")
     ax.set_title(label, fontsize=10, parse_math=False)

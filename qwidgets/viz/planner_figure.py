@@ -21,6 +21,7 @@ from collections.abc import Sequence
 import numpy as np
 
 from .canvas import BlitCanvas
+from .labels import literal
 
 __all__ = ["PlannerFigure"]
 
@@ -37,16 +38,24 @@ class PlannerFigure:
     """The Pareto front (cost against predicted SQNR) beside a bar chart of bits per layer.
 
     ``layers``: the table's layers, top to bottom; ``bits``: the widths on the bar axis;
-    ``inputs``: draw an input-width bar beside each weight bar (tables with both).
+    ``inputs``: draw an input-width bar beside each weight bar (tables with both); ``curve``:
+    a second plot under the front for the user's metric along it (:meth:`show_curve`).
     """
 
     def __init__(self, canvas: BlitCanvas, layers: Sequence[str], bits: Sequence[int], *,
-                 inputs: bool = False):
+                 inputs: bool = False, curve: bool = False):
         self.canvas = canvas
         self.layers = list(layers)
         fig = canvas.figure
-        self.ax_front = fig.add_axes((0.09, 0.15, 0.50, 0.74))
-        self.ax_bits = fig.add_axes((0.72, 0.15, 0.25, 0.74))
+        if curve:  # front on top, the metric curve under it on the same cost axis
+            self.ax_front = fig.add_axes((0.09, 0.50, 0.50, 0.44))
+            self.ax_curve = fig.add_axes((0.09, 0.09, 0.50, 0.30), sharex=self.ax_front)
+            self.ax_bits = fig.add_axes((0.72, 0.09, 0.25, 0.85))
+            self._curve_placeholder()
+        else:
+            self.ax_front = fig.add_axes((0.09, 0.15, 0.50, 0.74))
+            self.ax_bits = fig.add_axes((0.72, 0.15, 0.25, 0.74))
+            self.ax_curve = None
         ax = self.ax_front
         (self.front_line,) = ax.plot([], [], drawstyle="steps-post", color=FRONT_COLOR, lw=1.4,
                                      label="Pareto front")
@@ -67,9 +76,7 @@ class PlannerFigure:
                                          height=h, label="weight"))
         self.input_bars = list(axb.barh(y + h / 2, np.zeros(len(y)), color=INPUT_COLOR, height=h,
                                         label="input")) if inputs else []
-        axb.set_yticks(y, self.layers, fontsize=8 if len(y) <= 30 else 6)
-        for t in axb.get_yticklabels():
-            t.set_parse_math(False)  # layer names are literal text
+        axb.set_yticks(y, [literal(n) for n in self.layers], fontsize=8 if len(y) <= 30 else 6)
         axb.invert_yaxis()
         axb.set_xlim(0, max(bits) + 0.5)
         axb.set_xticks(list(bits))
@@ -79,6 +86,7 @@ class PlannerFigure:
         if inputs:
             axb.legend(loc="lower right", fontsize=7)
         self._front_limits = (0.0, 1.0, 0.0, 1.0)
+        self._xlabel = ""
         canvas.animate(self.budget_line, self.chosen, self.measured, *self.weight_bars, *self.input_bars)
 
     def show_front(self, costs: Sequence[float], sqnr_db: Sequence[float], xlabel: str) -> None:
@@ -88,7 +96,8 @@ class PlannerFigure:
         finite = np.isfinite(ys)
         self.front_line.set_data(xs[finite], ys[finite])
         self.front_dots.set_data(xs[finite], ys[finite])
-        self.ax_front.set_xlabel(xlabel)
+        self._xlabel = xlabel
+        (self.ax_curve or self.ax_front).set_xlabel(xlabel, parse_math=False)
         ylo, yhi = (float(ys[finite].min()), float(ys[finite].max())) if finite.any() else (0.0, 1.0)
         self._front_limits = (float(xs.min()), float(xs.max()), ylo, yhi)
         self._set_limits([], [])
@@ -134,6 +143,43 @@ class PlannerFigure:
             bar.set_width(b or 0)
         for bar, b in zip(self.input_bars, input_bits or [None] * len(self.input_bars), strict=True):
             bar.set_width(b or 0)
+
+    def _curve_placeholder(self) -> None:
+        ax = self.ax_curve
+        ax.set_ylabel("metric")
+        ax.set_title("metric along the front: press \"metric curve\"", fontsize=9, parse_math=False)
+        ax.grid(alpha=0.3)
+
+    def show_curve(self, costs: Sequence[float], planned: Sequence[float], low: Sequence[float],
+                   high: Sequence[float], float_value: float | None, *, label: str = "metric",
+                   xlabel: str = "") -> None:
+        """The user's metric of the planned model at points along the front, with interval bars
+        from ``low`` to ``high``, and the float model's value as a dashed line."""
+        if self.ax_curve is None:
+            raise ValueError("this figure was made without a curve plot (curve=False)")
+        ax = self.ax_curve
+        ax.cla()
+        x = np.asarray(costs, dtype=float)
+        y = np.asarray(planned, dtype=float)
+        lo, hi = np.asarray(low, dtype=float), np.asarray(high, dtype=float)
+        if len(x):
+            err = np.vstack([np.clip(y - lo, 0, None), np.clip(hi - y, 0, None)])
+            ax.errorbar(x, y, yerr=err, fmt="o-", color=CHOSEN_COLOR, ms=4, lw=1.2, capsize=3,
+                        label="planned (interval)")
+        if float_value is not None:
+            ax.axhline(float_value, color="#555555", ls="--", lw=1, label="float model")
+        ax.set_ylabel(label)
+        ax.set_title("metric along the front, on the measurement data", fontsize=9, parse_math=False)
+        ax.grid(alpha=0.3)
+        if len(x) or float_value is not None:
+            ax.legend(loc="lower right", fontsize=7)
+        vals = [v for v in [*lo, *hi, *([] if float_value is None else [float_value])] if math.isfinite(v)]
+        if vals:
+            pad = max(0.1 * (max(vals) - min(vals)), 1e-3 * max(1.0, abs(max(vals))))
+            ax.set_ylim(min(vals) - pad, max(vals) + pad)
+        self.ax_front.set_xlabel("")
+        ax.set_xlabel(xlabel or self._xlabel, parse_math=False)
+        self.canvas.invalidate()
 
     def marker_positions(self) -> dict:
         """Where the chosen-plan dot and the measured diamond are drawn (data units; tests)."""

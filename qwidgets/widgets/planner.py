@@ -29,6 +29,7 @@ from ..planning.table import SensitivityTable
 from ..viz.planner_figure import PlannerFigure
 from .events import Coalescer, MessageLine, observe_value
 from .image_canvas import PlotCanvas
+from .plan_saving import save_plan
 from .planner_text import (
     AXIS_LABELS,
     KIND_LABELS,
@@ -365,27 +366,17 @@ class BudgetPlanner(widgets.VBox):
         """
         if self.plan is None:
             raise ValueError("no plan yet")
-        if not isinstance(path, (str, os.PathLike)) or not str(path).strip():
-            raise ValueError("type a file path to save the plan to, e.g. plans/board.json")
         if overwrite is None:
             overwrite = self.controls["overwrite"].value
-        path = os.path.expanduser(str(path).strip())
-        target, existed = path, os.path.isfile(path)
-        if existed and not overwrite:
-            stem, ext = os.path.splitext(path)
-            n = 1
-            while os.path.exists(f"{stem}-{n}{ext}"):
-                n += 1
-            target = f"{stem}-{n}{ext}"
-        self.plan.save(target)
-        what = (f"wrote the plan ({len(self.plan.layers)} layers, {self.plan.weight_kib:,.2f} KiB of weights) "
-                f"to {os.path.abspath(target)}")
-        if target != path:
-            what += f"; {os.path.basename(path)} exists and was left as it was (tick overwrite to replace it)"
-        elif existed:
-            what = what.replace("wrote", "replaced with", 1)
-        self.message.info(what)
+        target, note = save_plan(self.plan, path, bool(overwrite))
+        self.message.info(note)
         return target
+
+    snapshot_title = "Budget planner"
+
+    def snapshot(self) -> tuple[bytes, str]:
+        """The figure as PNG and readout, table and caution as HTML (a static copy)."""
+        return self.canvas.last_png, self.readout.value + self.table_html.value + self.caution.value
 
     def save_figure(self, path: str | os.PathLike) -> None:
         """Write the Pareto curve and the bits-per-layer chart as PNG or SVG."""

@@ -219,6 +219,16 @@ class ScanView(widgets.VBox):
         self.message.info(self.planner.message.text)
         return plan
 
+    @property
+    def snapshot_title(self) -> str:
+        return f"Sensitivity scan: {SCOPE_LABELS[self._scope]} SQNR, {len(self.table.layers)} layers"
+
+    def snapshot(self) -> tuple[bytes, str]:
+        """The heatmap as PNG and the table (with the message line) as HTML: a static copy of
+        what the view shows, for notebooks viewed without a kernel."""
+        note = f"<div>{html.escape(self.message.text)}</div>" if self.message.text else ""
+        return self.canvas.last_png, self.table_html.value + note
+
     def save_figure(self, path: str | os.PathLike) -> None:
         """Write the heatmap as PNG or SVG (by the file's extension)."""
         self.canvas.save(path)
