@@ -358,3 +358,23 @@ def test_half_precision_models_work(dtype):
     p.controls["measure"].click()
     assert not p.message.is_error, p.message.text
     assert str(dtype).replace("torch.", "") in p.readout.value
+
+
+def test_layer_names_are_drawn_as_literal_text(tmp_path):
+    # matplotlib reads "$...$" as math and fails on "$^$" (its mathtext parser, checked first)
+    from matplotlib.figure import Figure
+
+    names = ["w$^$", "conv_$a$", "fc"]
+    fig = Figure()
+    fig.add_subplot().set_yticks([0], ["w$^$"])
+    with pytest.raises(ValueError):
+        fig.savefig(tmp_path / "bad.png")
+    t = SensitivityTable.synthetic(np.array([[5.0, 20.0], [8.0, 25.0], [9.0, 30.0]]), params=[10, 20, 30],
+                                   bits=(2, 4), names=names)
+    view = ScanView(t)
+    view.pick("w$^$", 4)
+    assert not view.message.is_error
+    assert [x.get_text().replace("\\$", "$") for x in view.canvas.figure.axes[0].get_yticklabels()] == names
+    p = BudgetPlanner(nn.Linear(1, 1), torch.zeros(1, 1), table=t)
+    p.save_figure(tmp_path / "planner.png")
+    assert (tmp_path / "planner.png").read_bytes()[:4] == b"\x89PNG"
