@@ -111,3 +111,18 @@ def test_notebook_learning_does_not_lose_to_the_fitted_range(executed):
     m = re.search(r"MSE range ([\d.]+) dB -> learned ([\d.]+) dB", _stream_text(executed))
     assert m, "the notebook should print the fitted and learned layer-output SQNR"
     assert float(m.group(2)) >= float(m.group(1))
+
+
+def _widget_snapshots(nb, widget: str) -> list[dict]:
+    return [o["data"] for c in nb.cells for o in c.get("outputs", [])
+            if "text/html" in o.get("data", {}) and f"data-widget='{widget}'" in o["data"]["text/html"]]
+
+
+def test_scan_view_and_planner_outputs_carry_static_snapshots(executed):
+    # what an exported notebook shows without a kernel: the figure and the readout
+    for widget in ("ScanView", "BudgetPlanner"):
+        (data,) = _widget_snapshots(executed, widget)
+        assert data["image/png"] and "<img src='data:image/png;base64," in data["text/html"], widget
+    (planner,) = _widget_snapshots(executed, "BudgetPlanner")
+    # the planner's metric was measured on the held-out snippets, not the calibration batch
+    assert "on the held-out data" in planner["text/html"] and "planned" in planner["text/html"]

@@ -378,3 +378,21 @@ def test_layer_names_are_drawn_as_literal_text(tmp_path):
     p = BudgetPlanner(nn.Linear(1, 1), torch.zeros(1, 1), table=t)
     p.save_figure(tmp_path / "planner.png")
     assert (tmp_path / "planner.png").read_bytes()[:4] == b"\x89PNG"
+
+
+def test_display_bundle_carries_a_static_snapshot(setup):
+    import base64
+
+    net, x, _, table = setup
+    view = ScanView(table)
+    view.pick("4", 6)
+    bundle = view._repr_mimebundle_()
+    assert "application/vnd.jupyter.widget-view+json" in bundle  # the live widget stays first
+    assert base64.b64decode(bundle["image/png"]) == view.canvas.last_png
+    assert f"{table.sqnr_db('4', 6, 'model'):.1f}" in bundle["text/html"]
+    assert "data-widget='ScanView'" in bundle["text/html"] and "<img src='data:image/png;base64," in bundle["text/html"]
+    p = BudgetPlanner(net, x, table=table)
+    p.measure()
+    bundle = p._repr_mimebundle_()
+    assert base64.b64decode(bundle["image/png"]) == p.canvas.last_png
+    assert f"{p.report.measured_sqnr_db:.2f} dB" in bundle["text/html"]  # the readout as it stands

@@ -27,6 +27,7 @@ from ..planning.scanning import scan
 from ..planning.solver import pareto_front, plan_budget
 from ..planning.table import SensitivityTable
 from ..viz.planner_figure import PlannerFigure
+from .display_snapshot import SnapshotDisplay
 from .events import Coalescer, MessageLine, observe_value
 from .image_canvas import PlotCanvas
 from .plan_saving import save_plan
@@ -60,7 +61,7 @@ CSS = {
 }
 
 
-class BudgetPlanner(widgets.VBox):
+class BudgetPlanner(SnapshotDisplay, widgets.VBox):
     """Choose a budget (weight KiB, mean bits or BOPs) and see the least-noise plan for it.
 
     Scans ``model`` on ``data`` (model scope; keywords ``bits``, ``quantize``, ``method``,

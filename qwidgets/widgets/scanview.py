@@ -19,6 +19,7 @@ from ..planning.scanning import scan
 from ..planning.table import SensitivityTable
 from ..viz.heatmap import sqnr_limits, sqnr_table_html
 from ..viz.scan_figure import ScanFigure
+from .display_snapshot import SnapshotDisplay
 from .events import MessageLine
 from .image_canvas import PlotCanvas
 
@@ -38,7 +39,7 @@ CSS = {
 SCOPE_LABELS = {"model": "model output", "layer": "layer output"}
 
 
-class ScanView(widgets.VBox):
+class ScanView(SnapshotDisplay, widgets.VBox):
     """Heatmap and table of a sensitivity scan; pick a layer to explore its grid below.
 
     ``ScanView(model, data, ...)`` runs :func:`qwidgets.scan` (keywords ``bits``,
