@@ -112,3 +112,15 @@ def test_strict_raises_on_a_missing_entry(scanned):
     with pytest.warns(UserWarning, match="skipped 1 planned layer"):
         q = apply_plan(net, edited, strict=False)
     assert "renamed" not in q.qwidgets_applied
+
+
+def test_parametrized_weights_are_listed_as_skipped_not_scanned():
+    from torch.nn.utils import parametrizations
+
+    torch.manual_seed(1)
+    net = nn.Sequential(nn.Linear(4, 8), nn.ReLU(), parametrizations.weight_norm(nn.Linear(8, 3)))
+    t = scan(net, torch.randn(16, 4), bits=(4,), progress=False)
+    assert t.layers == ["0"]
+    skipped = dict(t.coverage.skipped)
+    assert "parametrized weight" in skipped["2.parametrizations.weight.original1"]
+    assert t.coverage.total == sum(p.numel() for p in net.parameters())

@@ -220,7 +220,9 @@ def find_entries(model: nn.Module) -> list[Entry]:
     for name, kind, path, attr, axis, runs, type_name, input_args in _candidates(model):
         owner = model.get_submodule(path) if path else model
         p = getattr(owner, attr, None)
-        if not isinstance(p, torch.Tensor) or not p.is_floating_point() or p.dim() < 2:
+        # a registered parameter only: a weight computed from others (parametrizations, weight
+        # norm) has no tensor of its own to substitute; its parameters show up as skipped
+        if not isinstance(p, nn.Parameter) or not p.is_floating_point() or p.dim() < 2:
             continue
         key = id(p)
         if key in by_tensor:
@@ -259,6 +261,8 @@ def skip_reason(model: nn.Module, pname: str) -> str:
     owner_path, _, attr = pname.rpartition(".")
     owner = model.get_submodule(owner_path) if owner_path else model
     kind = type(owner).__name__
+    if ".parametrizations." in f".{owner_path}.":
+        return "a parametrized weight's parameter (the weight is computed from it), not quantized"
     if "bias" in attr:
         return f"bias of a {kind}, kept in float"
     norms = (nn.modules.batchnorm._NormBase, nn.LayerNorm, nn.GroupNorm, nn.LocalResponseNorm)
