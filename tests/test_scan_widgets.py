@@ -396,3 +396,39 @@ def test_display_bundle_carries_a_static_snapshot(setup):
     bundle = p._repr_mimebundle_()
     assert base64.b64decode(bundle["image/png"]) == p.canvas.last_png
     assert f"{p.report.measured_sqnr_db:.2f} dB" in bundle["text/html"]  # the readout as it stands
+
+
+def test_planner_second_budget_holds_with_the_first(setup):
+    net, x, _, table = setup
+    p = BudgetPlanner(net, x, table=table)
+    front = p.front("weight_kib")
+    kib = front[-1][0]  # weight storage alone would allow the largest plan
+    p.set_budget("weight_kib", kib)
+    p.controls["limit_kind"].value = "bops"
+    assert not p.controls["limit"].disabled
+    bops_front = p.front("bops")
+    limit = bops_front[len(bops_front) // 3][0]
+    p.controls["limit"].value = limit / p.limit.scale
+    p.refresh()
+    assert not p.message.is_error, p.message.text
+    want = plan_budget(table, weight_kib=kib, bops=p.limit.value())
+    assert p.plan.bits == want.bits
+    # both budgets hold, counted here: BOPs = MACs x weight bits x 8 input bits (common practice)
+    assert sum(table.macs(n) * p.plan.bits[n] * 8 for n in p.plan.layers) <= p.limit.value()
+    assert p.plan.weight_kib <= kib + 1e-9 and "BOPs" in p.readout.value
+    p.controls["limit_kind"].value = "weight_kib"  # the first budget's kind: refused, reset
+    assert p.message.is_error and "already in weight KiB" in p.message.text
+    assert p.controls["limit_kind"].value == ""
+
+
+def test_planner_shows_input_widths_for_a_separate_table():
+    # a table with weight and input rows (as quantize="separate" scans make), built by hand
+    t = SensitivityTable.synthetic(np.array([[5.0, 20.0, 40.0], [8.0, 25.0, 45.0]]), params=[100, 400],
+                                   bits=(2, 4, 8), input_sqnr_db=np.array([[15.0, 40.0], [12.0, 36.0]]),
+                                   input_bits=(4, 8))
+    p = BudgetPlanner(nn.Linear(1, 1), torch.zeros(1, 1), table=t)
+    p.set_budget("weight_kib", p.front()[len(p.front()) // 2][0])
+    assert p.figure.input_bars and "input bits" in p.table_html.value
+    widths = [b.get_width() for b in p.figure.input_bars]
+    assert widths == [p.plan.input_bits[n] or 0 for n in t.layers]
+    assert all(w in (4, 8) for w in widths)

@@ -81,10 +81,13 @@ class PlannerFigure:
         axb.set_xlim(0, max(bits) + 0.5)
         axb.set_xticks(list(bits))
         axb.set_xlabel("bits")
-        axb.set_title("bits per layer", fontsize=10)
         axb.grid(axis="x", alpha=0.3)
-        if inputs:
-            axb.legend(loc="lower right", fontsize=7)
+        if inputs:  # above the bars (which are drawn over anything inside the axes)
+            axb.set_title("bits per layer", fontsize=10, pad=16)
+            axb.legend(loc="lower center", bbox_to_anchor=(0.5, 1.0), ncol=2, fontsize=7, frameon=False,
+                       handlelength=1.0, borderaxespad=0.1)
+        else:
+            axb.set_title("bits per layer", fontsize=10)
         self._front_limits = (0.0, 1.0, 0.0, 1.0)
         self._xlabel = ""
         canvas.animate(self.budget_line, self.chosen, self.measured, *self.weight_bars, *self.input_bars)
@@ -141,8 +144,9 @@ class PlannerFigure:
             self.measured.set_data([cost], [y])
         for bar, b in zip(self.weight_bars, weight_bits, strict=True):
             bar.set_width(b or 0)
-        for bar, b in zip(self.input_bars, input_bits or [None] * len(self.input_bars), strict=True):
-            bar.set_width(b or 0)
+        if self.input_bars:
+            for bar, b in zip(self.input_bars, input_bits or [None] * len(self.input_bars), strict=True):
+                bar.set_width(b or 0)
 
     def _curve_placeholder(self) -> None:
         ax = self.ax_curve

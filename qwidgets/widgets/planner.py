@@ -31,13 +31,15 @@ from .display_snapshot import SnapshotDisplay
 from .events import Coalescer, MessageLine, observe_value
 from .image_canvas import PlotCanvas
 from .plan_saving import save_plan
+from .planner_grids import GridTaking
+from .planner_limit import SecondBudget
 from .planner_text import (
     AXIS_LABELS,
     KIND_LABELS,
+    configure_slider,
     fmt_cost,
     initial_budget,
     layers_html,
-    nice_step,
     plan_cost,
     readout_html,
     si_prefix,
@@ -55,13 +57,15 @@ CSS = {
     "path": "qw-planner-path",
     "overwrite": "qw-planner-overwrite",
     "save": "qw-planner-save",
+    "limit_kind": "qw-planner-limit-kind",
+    "limit": "qw-planner-limit",
     "readout": "qw-planner-readout",
     "table": "qw-planner-table",
     "caution": "qw-planner-caution",
 }
 
 
-class BudgetPlanner(SnapshotDisplay, widgets.VBox):
+class BudgetPlanner(SnapshotDisplay, GridTaking, widgets.VBox):
     """Choose a budget (weight KiB, mean bits or BOPs) and see the least-noise plan for it.
 
     Scans ``model`` on ``data`` (model scope; keywords ``bits``, ``quantize``, ``method``,
@@ -149,12 +153,17 @@ class BudgetPlanner(SnapshotDisplay, widgets.VBox):
                                           layout=widgets.Layout(width="100px")),
             "save": widgets.Button(description="save plan", icon="save", layout=widgets.Layout(width="110px")),
         }
+        self.limit = SecondBudget(self._on_budget)
+        c["limit_kind"], c["limit"] = self.limit.kind_control, self.limit.slider
         self.controls = c
         for name, w in c.items():
             w.add_class(CSS[name])
         c["kind"].observe(lambda ch: self.message.run("budget kind", lambda: self._set_kind(ch["new"])),
                           names="value")
         observe_value(c["budget"], self._on_budget)
+        observe_value(c["limit"], self._on_budget)
+        c["limit_kind"].observe(lambda ch: self.message.run("also within", lambda: self._set_limit(ch["new"] or None)),
+                                names="value")
         c["measure"].on_click(lambda _b: self.message.run("measure", self.measure))
         c["use_grid"].on_click(lambda _b: self.message.run("use explorer's grid", self.use_grid))
         c["save"].on_click(lambda _b: self.message.run("save", lambda: self.save(c["path"].value)))
@@ -163,7 +172,8 @@ class BudgetPlanner(SnapshotDisplay, widgets.VBox):
 
         self.canvas = PlotCanvas(width, 330)
         self.canvas.image.add_class(CSS["plot"])
-        self.figure = PlannerFigure(self.canvas, self.table.layers, self.table.bits)
+        self.figure = PlannerFigure(self.canvas, self.table.layers, self.table.bits,
+                                    inputs=bool(getattr(self.table, "input_bits", ())))
         self.readout = widgets.HTML(layout=widgets.Layout(width=f"{width}px"))
         self.readout.add_class(CSS["readout"])
         self.table_html = widgets.HTML(layout=widgets.Layout(max_height="300px", overflow="auto",
@@ -179,6 +189,7 @@ class BudgetPlanner(SnapshotDisplay, widgets.VBox):
         self.children = [
             c["kind"],
             widgets.HBox([c["budget"], c["measure"], c["use_grid"]], layout=row),
+            widgets.HBox([c["limit_kind"], c["limit"]], layout=row),
             self.canvas.image,
             self.readout,
             self.table_html,
@@ -211,24 +222,16 @@ class BudgetPlanner(SnapshotDisplay, widgets.VBox):
         if kind == self.kind and not initial:
             return
         self.kind = kind
+        if self.limit.kind == kind:  # one budget per kind
+            self.controls["limit_kind"].value = ""
         front = self.front(kind)
         lo, hi = front[0][0], front[-1][0]
         if self.plan is not None:
             lo, hi = min(lo, plan_cost(self.plan, kind)), max(hi, plan_cost(self.plan, kind))
-        self._scale = 10.0 ** (3 * math.floor(math.log10(hi) / 3)) if kind == "bops" and hi >= 1e3 else 1.0
-        s = self.controls["budget"]
         value = initial_budget(front) if self.plan is None else plan_cost(self.plan, kind)
         self._syncing = True
         try:
-            if kind == "bops":
-                s.description = f"budget ({si_prefix(self._scale)}BOPs)"
-            else:
-                s.description = {"weight_kib": "budget (KiB)", "mean_bits": "budget (bits)"}[kind]
-            s.max = max(hi / self._scale, s.min)
-            s.min = lo / self._scale
-            s.max = hi / self._scale
-            s.step = nice_step((hi - lo) / self._scale)  # keyboard steps of about 1% of the range
-            s.value = value / self._scale
+            self._scale = configure_slider(self.controls["budget"], kind, lo, hi, value)
             if self.controls["kind"].value != kind:
                 self.controls["kind"].value = kind
         finally:
@@ -279,7 +282,7 @@ class BudgetPlanner(SnapshotDisplay, widgets.VBox):
         if value is None:
             value = exact if exact is not None else self.controls["budget"].value * self._scale
         value = max(value, self.front()[0][0])  # the slider's rounding must not make it infeasible
-        plan = plan_budget(self.table, **{self.kind: value}, input_bits=self.input_bits)
+        plan = plan_budget(self.table, **{self.kind: value}, **self.limit.kwargs(), input_bits=self.input_bits)
         self._predicted = plan.predicted_sqnr_db
         for name in plan.layers:  # grids taken from an explorer come back at their width
             setting = self._taken.get((name, plan.bits[name]))
@@ -290,6 +293,19 @@ class BudgetPlanner(SnapshotDisplay, widgets.VBox):
         self.report = None
         self.message.clear()  # any note was about the previous plan
         self._draw()
+
+    def _set_limit(self, kind: str | None) -> None:
+        """A second budget that plans must meet too (None: none); it starts at the plan's cost."""
+        if kind == self.kind:
+            self.controls["limit_kind"].value = ""
+            raise ValueError(f"the budget is already in {KIND_LABELS[kind]}; pick another kind")
+        self._syncing = True
+        try:
+            self.limit.set_kind(kind, None if kind is None else self.front(kind),
+                                None if kind is None or self.plan is None else plan_cost(self.plan, kind))
+        finally:
+            self._syncing = False
+        self._update(self._budget_value)
 
     def _edited(self) -> dict:
         return {n: "learned grid" for n in self.plan.layers if (n, self.plan.bits[n]) in self._taken}
@@ -314,48 +330,6 @@ class BudgetPlanner(SnapshotDisplay, widgets.VBox):
 
     def _measured_on(self) -> str:
         return "the held-out data" if self.eval_data is not None else "the scan's data"
-
-    # ------------------------------------------------------------------ grids from an explorer
-    def link_explorer(self, source) -> BudgetPlanner:
-        """Let "use explorer's grid" take grids from ``source``: a GridExplorer, or a ScanView
-        (its currently open explorer)."""
-        if not (hasattr(source, "to_setting") or hasattr(source, "explorer")):
-            raise TypeError(f"source must be a GridExplorer or a ScanView, got {type(source).__name__}")
-        self._explorer_source = source
-        b = self.controls["use_grid"]
-        b.disabled = False
-        b.tooltip = "put the linked explorer's grid into this plan (at the explorer's bit width)"
-        return self
-
-    def use_grid(self, explorer=None) -> Plan:
-        """Put ``explorer``'s grid (default: the linked one) into the plan for its layer.
-
-        The plan becomes :meth:`Plan.with_setting` of the explorer's layer and grid; the layer
-        takes the explorer's bit width. The grid is remembered for that (layer, bits): moving
-        the budget away and back brings it again. The new plan is measured at once (its
-        prediction was for the scan's grids).
-        """
-        if explorer is None:
-            explorer = self._explorer_source
-            if explorer is not None and not hasattr(explorer, "to_setting"):
-                explorer = explorer.explorer  # a ScanView: its open explorer
-        if explorer is None:
-            raise ValueError("no explorer: open one (ScanView: explore layer) or link one with link_explorer")
-        name = explorer.layer_name
-        if name is None:
-            raise ValueError("the explorer shows a bare tensor, not a layer of this model")
-        if name not in self.plan.layers:
-            raise ValueError(f"layer {name!r} is not in the plan; planned layers: {list(self.plan.layers)}")
-        setting = explorer.to_setting(explorer.source)
-        old = self.plan.bits[name]
-        self.plan = self.plan.with_setting(name, setting)
-        self._taken[(name, self.plan.bits[name])] = setting
-        self.report = None
-        self.measure()
-        self.message.info(f"{name}: now uses the explorer's {explorer.source} grid at {self.plan.bits[name]} bits"
-                          f"{'' if old == self.plan.bits[name] else f' (was {old})'}; measured "
-                          f"{self.report.measured_sqnr_db:.2f} dB on {self._measured_on()}")
-        return self.plan
 
     # ------------------------------------------------------------------ files
     def save(self, path, overwrite: bool | None = None) -> str:
@@ -391,9 +365,10 @@ class BudgetPlanner(SnapshotDisplay, widgets.VBox):
             self._budget_value / self._scale, plan_cost(p, self.kind) / self._scale,
             self._predicted, measured_db=None if r is None else r.measured_sqnr_db,
             weight_bits=[p.layers[n].weight.bits if n in p.layers and p.layers[n].weight is not None
-                         else None for n in self.table.layers])
+                         else None for n in self.table.layers],
+            input_bits=[p.input_bits.get(n) for n in self.table.layers])
         self.readout.value = readout_html(
-            p, r, kind=self.kind, budget=self._budget_value, predicted_db=self._predicted, edited=edited,
+            p, r, kind=self.kind, budget=self._budget_value, also=self.limit.text(), predicted_db=self._predicted, edited=edited,
             metric=self.metric is not None, measured_on=self._measured_on(), dtype=self.dtype,
             coverage=str(self.table.coverage))
         self.table_html.value = layers_html(self.table, p, edited)

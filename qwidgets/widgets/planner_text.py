@@ -49,6 +49,26 @@ def nice_step(span: float, fraction: float = 0.01) -> float:
     return float(f"{best * p:.12g}")
 
 
+def configure_slider(slider, kind: str, lo: float, hi: float, value: float, label: str = "budget") -> float:
+    """Set a budget slider's range, step (about 1% of the range), label and value for ``kind``;
+    returns the unit scale of its values (BOPs are shown in k / M / G units).
+
+    >>> from types import SimpleNamespace
+    >>> s = SimpleNamespace(min=0.0, max=1.0, step=0.1, value=0.5, description="")
+    >>> configure_slider(s, "bops", 2e6, 9e6, 5e6), s.min, s.max, s.step, s.description
+    (1000000.0, 2.0, 9.0, 0.05, 'budget (MBOPs)')
+    """
+    scale = 10.0 ** (3 * math.floor(math.log10(hi) / 3)) if kind == "bops" and hi >= 1e3 else 1.0
+    unit = {"weight_kib": "KiB", "mean_bits": "bits", "bops": f"{si_prefix(scale)}BOPs"}[kind]
+    slider.description = f"{label} ({unit})"
+    slider.max = max(hi / scale, slider.min)
+    slider.min = lo / scale
+    slider.max = hi / scale
+    slider.step = nice_step((hi - lo) / scale)  # keyboard steps of about 1% of the range
+    slider.value = min(max(value / scale, slider.min), slider.max)
+    return scale
+
+
 def si_prefix(scale: float) -> str:
     return {1.0: "", 1e3: "k", 1e6: "M", 1e9: "G", 1e12: "T", 1e15: "P"}.get(scale, f"x{scale:g} ")
 
@@ -81,7 +101,7 @@ def _db(v: float | None) -> str:
     return "exact (no error)" if v == math.inf else f"{v:.2f} dB"
 
 
-def readout_html(plan: Plan, report: PlanReport | None, *, kind: str, budget: float,
+def readout_html(plan: Plan, report: PlanReport | None, *, kind: str, budget: float, also: str = "",
                  predicted_db: float | None, edited: dict, metric: bool, measured_on: str,
                  dtype: str, coverage: str = "") -> str:
     """The planner's readout: budget, predicted and measured SQNR, costs, metric, model dtype.
@@ -93,7 +113,7 @@ def readout_html(plan: Plan, report: PlanReport | None, *, kind: str, budget: fl
     if edited:
         pred += f" (for the scan's grids; learned grids in {', '.join(edited)}: measure to check)"
     rows = [
-        ("budget", f"{fmt_cost(budget, kind)} {KIND_LABELS[kind]}"),
+        ("budget", f"{fmt_cost(budget, kind)} {KIND_LABELS[kind]}{also}"),
         ("predicted SQNR", pred),
         ("measured SQNR", "press measure" if report is None else
          f"{_db(report.measured_sqnr_db)} on {measured_on}"),
