@@ -416,9 +416,12 @@ def test_planner_second_budget_holds_with_the_first(setup):
     # both budgets hold, counted here: BOPs = MACs x weight bits x 8 input bits (common practice)
     assert sum(table.macs(n) * p.plan.bits[n] * 8 for n in p.plan.layers) <= p.limit.value()
     assert p.plan.weight_kib <= kib + 1e-9 and "BOPs" in p.readout.value
-    p.controls["limit_kind"].value = "weight_kib"  # the first budget's kind: refused, reset
-    assert p.message.is_error and "already in weight KiB" in p.message.text
-    assert p.controls["limit_kind"].value == ""
+    # one budget per kind: the first budget's kind is not offered; switching to it drops the second
+    assert "weight_kib" not in [v for _, v in p.controls["limit_kind"].options]
+    plan = p.plan
+    p.controls["kind"].value = "bops"
+    assert p.controls["limit_kind"].value == "" and p.controls["limit"].disabled and p.plan is plan
+    assert "weight_kib" in [v for _, v in p.controls["limit_kind"].options]
 
 
 def test_planner_shows_input_widths_for_a_separate_table():

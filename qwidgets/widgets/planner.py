@@ -162,8 +162,8 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, widgets.VBox):
                           names="value")
         observe_value(c["budget"], self._on_budget)
         observe_value(c["limit"], self._on_budget)
-        c["limit_kind"].observe(lambda ch: self.message.run("also within", lambda: self._set_limit(ch["new"] or None)),
-                                names="value")
+        c["limit_kind"].observe(lambda ch: None if self._syncing else self.message.run(
+            "also within", lambda: self._set_limit(ch["new"] or None)), names="value")
         c["measure"].on_click(lambda _b: self.message.run("measure", self.measure))
         c["use_grid"].on_click(lambda _b: self.message.run("use explorer's grid", self.use_grid))
         c["save"].on_click(lambda _b: self.message.run("save", lambda: self.save(c["path"].value)))
@@ -222,8 +222,12 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, widgets.VBox):
         if kind == self.kind and not initial:
             return
         self.kind = kind
-        if self.limit.kind == kind:  # one budget per kind
-            self.controls["limit_kind"].value = ""
+        self._syncing = True
+        try:
+            if self.limit.offer(kind):  # one budget per kind: the second one went
+                self.limit.set_kind(None, None, None)
+        finally:
+            self._syncing = False
         front = self.front(kind)
         lo, hi = front[0][0], front[-1][0]
         if self.plan is not None:
@@ -296,9 +300,6 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, widgets.VBox):
 
     def _set_limit(self, kind: str | None) -> None:
         """A second budget that plans must meet too (None: none); it starts at the plan's cost."""
-        if kind == self.kind:
-            self.controls["limit_kind"].value = ""
-            raise ValueError(f"the budget is already in {KIND_LABELS[kind]}; pick another kind")
         self._syncing = True
         try:
             self.limit.set_kind(kind, None if kind is None else self.front(kind),

@@ -26,6 +26,13 @@ class SecondBudget:
         self.scale = 1.0
         self._on_change = on_change
 
+    def offer(self, primary: str) -> bool:
+        """Offer every kind but the first budget's; returns True when the chosen one had to go."""
+        keep = self.kind_control.value
+        self.kind_control.options = [("nothing else", "")] + [(KIND_LABELS[k], k) for k in COSTS if k != primary]
+        self.kind_control.value = keep if keep != primary else ""
+        return keep == primary
+
     @property
     def kind(self) -> str | None:
         return self.kind_control.value or None
