@@ -243,7 +243,9 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, widgets.VBox):
         self._budget_value = value
         xs = [c / self._scale for c, _, _ in front]
         unit = f" ({si_prefix(self._scale)}BOPs)" if kind == "bops" and self._scale != 1 else ""
-        self.figure.show_front(xs, [d for _, d, _ in front], AXIS_LABELS[kind] + unit)
+        label = AXIS_LABELS[kind] if kind != "weight_kib" or front[0][2].model_kib is not None else \
+            "weight storage of the planned layers (KiB)"
+        self.figure.show_front(xs, [d for _, d, _ in front], label + unit)
         if self.plan is None:
             self._update(value)
         else:

@@ -17,7 +17,7 @@ __all__ = ["KIND_LABELS", "AXIS_LABELS", "plan_cost", "nice_step", "si_prefix", 
            "readout_html", "layers_html", "initial_budget"]
 
 KIND_LABELS = {"weight_kib": "weight KiB", "mean_bits": "mean bits", "bops": "BOPs"}
-AXIS_LABELS = {"weight_kib": "weight storage (KiB)", "mean_bits": "mean weight bits",
+AXIS_LABELS = {"weight_kib": "weight storage of the whole model (KiB)", "mean_bits": "mean weight bits",
                "bops": "bit operations per sample"}
 
 
