@@ -14,42 +14,57 @@ import torch
 
 from .checks import _short, check_bits, check_finite, check_positive
 
-__all__ = ["UniformGrid", "code_values", "channel_shape", "grid_params", "noise_param"]
+__all__ = ["UniformGrid", "ZP_TOLERANCE", "integer_zero_point", "code_values", "channel_shape",
+           "grid_params", "zero_point_param", "noise_param"]
 
-_ZP_TOL = 1e-4  # relative tolerance when deciding that an offset is an integer multiple of scale
+# One rule decides whether a grid has an integer zero point Z (offset == -Z * scale): -offset /
+# scale must lie within ZP_TOLERANCE * max(1, |Z|) of an integer. That is 4 float32 machine
+# epsilons: the rounding that storing -Z * scale in float32 may cost, and nothing more, so a
+# grid that has Z computes every value as (k - Z) * scale exactly. Grids decide it once, when
+# they are made (``UniformGrid.zero_point``); quantization, export and the plan files all use
+# that decision.
+ZP_TOLERANCE = 4 * torch.finfo(torch.float32).eps
 
-def split_offset(s: torch.Tensor, o: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
-    """Write the offset as ``-Z * s + rest``: (Z, rest) in ``s``'s dtype, entry by entry.
 
-    Where the offset is an integer multiple of the scale, Z is that integer and rest is 0;
-    elsewhere Z is 0 and rest is the offset. "Integer" allows the few float roundings that
-    storing ``-Z * scale`` costs (4 machine epsilons of ``|Z|``), so using Z moves no grid
-    value by more than that rounding already did.
+def integer_zero_point(scale, offset):
+    """The integer Z with ``offset == -Z * scale`` under the one tolerance, or None.
+
+    ``scale`` and ``offset`` are floats or tensors (broadcast against each other). Returns an
+    int for scalars, an int64 tensor for tensors, or None when any entry is not an integer
+    multiple (a grid has a zero point for all its channels or it has none).
+
+    >>> integer_zero_point(0.1, -0.3), integer_zero_point(0.1, -(0.3 + 2e-5))
+    (3, None)
     """
+    tensors = isinstance(scale, torch.Tensor) or isinstance(offset, torch.Tensor)
+    # the decision is made in float64 on the stored values, whatever dtype later computes with them
     with torch.no_grad():
-        s_, o_ = torch.broadcast_tensors(s.detach(), o.detach())
-        z = -o_.double() / s_.double()
+        s = torch.as_tensor(scale.detach() if isinstance(scale, torch.Tensor) else scale, dtype=torch.float64)
+        o = torch.as_tensor(offset.detach() if isinstance(offset, torch.Tensor) else offset, dtype=torch.float64)
+        z = -o / s
         zr = torch.round(z)
-        tol = 4 * torch.finfo(s.dtype).eps * torch.clamp(torch.abs(zr), min=1.0)
-        whole = torch.abs(z - zr) <= tol
-        return (torch.where(whole, zr, 0.0).to(s.dtype),
-                torch.where(whole, torch.zeros_like(o_), o_).to(s.dtype))
+        if not bool((torch.abs(z - zr) <= ZP_TOLERANCE * torch.clamp(torch.abs(zr), min=1.0)).all()):
+            return None
+    if zr.dim() == 0 or not tensors:
+        return int(zr)
+    return zr.to(torch.int64)
 
-def code_values(k: torch.Tensor, s: torch.Tensor, o: torch.Tensor) -> torch.Tensor:
+
+def code_values(k: torch.Tensor, s: torch.Tensor, o: torch.Tensor, z: torch.Tensor | None = None) -> torch.Tensor:
     """Grid values ``s * k + o`` for (float-typed) integer codes ``k``.
 
-    Computed as ``(k - Z) * s + rest`` (see :func:`split_offset`): where ``o == -Z * s`` that
-    is one rounding, the way integer-arithmetic inference dequantizes, so results equal the
-    reference operators bit for bit, and ``quantize`` always returns an exact member of
-    ``UniformGrid.levels``. The gradient is that of ``s * k + o`` (scale and offset are
-    independent parameters).
+    With the grid's integer zero point ``z`` (see :func:`zero_point_param`) they are computed as
+    ``(k - z) * s``: one rounding, the way integer-arithmetic inference dequantizes, so results
+    equal the reference operators bit for bit; without one, as ``k * s + o``. Either way
+    ``quantize`` returns an exact member of ``UniformGrid.levels``. The gradient is that of
+    ``s * k + o`` (scale and offset are independent parameters).
     """
-    z, rest = split_offset(s, o)
-    value = (k - z) * s + rest
-    if not (s.requires_grad or o.requires_grad):
+    value = (k - z) * s if z is not None else k * s + o
+    if z is None or not (s.requires_grad or o.requires_grad):
         return value
     lin = k * s + o
-    return lin + (value - lin).detach()  # the value of ``value`` (Sterbenz: the difference is exact)
+    return lin + (value - lin).detach()  # the value of ``value``
+
 
 class UniformGrid:
     """Grid points ``scale * k + offset`` for integer ``k`` in ``[qmin, qmax]``.
@@ -71,7 +86,8 @@ class UniformGrid:
     (-2.0, 1.5)
     """
 
-    __slots__ = ("bits", "scale", "offset", "signed", "axis")
+    __slots__ = ("bits", "scale", "offset", "signed", "axis", "_zp")
+    _FIELDS = ("bits", "scale", "offset", "signed", "axis")
 
     def __init__(self, bits: int, scale, offset=0.0, signed: bool = True, axis: int | None = None):
         bits = check_bits(bits)
@@ -100,6 +116,10 @@ class UniformGrid:
             raise ValueError(
                 f"scale has {scale.numel()} channels but offset has {offset.numel()}; they must match"
             )
+        zp = integer_zero_point(scale, offset)
+        if zp is not None:
+            offset = _derived_offset(zp, scale, offset)
+        object.__setattr__(self, "_zp", zp)
         object.__setattr__(self, "bits", bits)
         object.__setattr__(self, "scale", scale)
         object.__setattr__(self, "offset", offset)
@@ -168,9 +188,11 @@ class UniformGrid:
         k = torch.arange(self.qmin, self.qmax + 1, dtype=dtype)
         s = self.scale_tensor().detach().to(dtype)
         o = self.offset_tensor().detach().to(dtype)
+        z = None if self._zp is None else torch.as_tensor(self._zp, dtype=dtype)
         if s.dim() or o.dim():
             s, o = s.reshape(-1, 1), o.reshape(-1, 1)
-        return code_values(k, s, o)
+            z = None if z is None else z.reshape(-1, 1)
+        return code_values(k, s, o, z)
 
     @property
     def clip_range(self) -> tuple:
@@ -189,31 +211,27 @@ class UniformGrid:
     def zero_point(self):
         """The integer Z with ``offset == -Z * scale`` (int, or int64 tensor per channel).
 
-        Raises ValueError when the offset is not an integer multiple of the scale; use
+        Decided once, when the grid is made, by :func:`integer_zero_point` (the one tolerance,
+        ``ZP_TOLERANCE``); a grid that has Z stores its offset as ``-Z * scale``. Raises
+        ValueError when the offset is not an integer multiple of the scale; use
         :meth:`snapped` for the nearest grid that has an integer zero point.
         """
-        z = -self.offset_tensor().detach().double() / self.scale_tensor().detach().double()
-        zr = torch.round(z)
-        if not bool((torch.abs(z - zr) <= _ZP_TOL * torch.clamp(torch.abs(z), min=1.0)).all()):
+        if self._zp is None:
+            z = -self.offset_tensor().detach().double() / self.scale_tensor().detach().double()
             raise ValueError(
                 "offset is not an integer multiple of scale, so the grid has no integer zero "
                 f"point (-offset/scale = {_short(z)}); call .snapped() for the nearest grid that has one"
             )
-        if zr.dim() == 0:
-            return int(zr)
-        return zr.to(torch.int64)
+        return self._zp if isinstance(self._zp, int) else self._zp.clone()
 
     def has_zero_point(self) -> bool:
-        try:
-            _ = self.zero_point
-        except ValueError:
-            return False
-        return True
+        """Whether the grid has an integer zero point (see :attr:`zero_point`)."""
+        return self._zp is not None
 
     # ------------------------------------------------------------------ copies
     def replace(self, **changes) -> UniformGrid:
         """A copy with some fields changed (validated like the constructor)."""
-        fields = {k: getattr(self, k) for k in self.__slots__}
+        fields = {k: getattr(self, k) for k in self._FIELDS}
         unknown = set(changes) - set(fields)
         if unknown:
             raise TypeError(f"unknown UniformGrid field(s) {sorted(unknown)}; known: {list(fields)}")
@@ -254,6 +272,21 @@ class UniformGrid:
             f"signed={self.signed}{ax})"
         )
 
+def _derived_offset(zp, scale, offset):
+    """``-zp * scale`` in the type the offset was given in (a learned offset keeps its graph)."""
+    if isinstance(offset, torch.Tensor) and offset.requires_grad:
+        return offset  # learning: the value stays as given, quantization computes (k - Z) * s
+    if not isinstance(scale, torch.Tensor) and not isinstance(offset, torch.Tensor):
+        return -zp * scale + 0.0
+    s = scale.detach() if isinstance(scale, torch.Tensor) else torch.tensor(float(scale), dtype=offset.dtype)
+    z = torch.as_tensor(zp, dtype=s.dtype)
+    value = (-(z * s) + 0.0)
+    if isinstance(offset, torch.Tensor):
+        value = torch.broadcast_to(value, torch.broadcast_shapes(value.shape, offset.shape))
+        return value.to(offset.dtype).reshape(offset.shape) if value.numel() == offset.numel() else value
+    return float(value) if value.numel() == 1 else value
+
+
 def channel_shape(x: torch.Tensor, grid: UniformGrid) -> tuple[int, ...] | None:
     """Shape that broadcasts a per-channel vector against ``x`` (None for per-tensor grids)."""
     if grid.axis is None:
@@ -288,6 +321,19 @@ def _param(v, x: torch.Tensor, shape, dtype) -> torch.Tensor:
             return t.reshape(())
         return t.reshape(shape)
     return torch.tensor(float(v), dtype=dtype, device=x.device)
+
+def zero_point_param(x: torch.Tensor, grid: UniformGrid, dtype: torch.dtype | None = None):
+    """The grid's integer zero point as a float tensor broadcastable against ``x``, or None."""
+    zp = grid._zp
+    if zp is None:
+        return None
+    shape = channel_shape(x, grid)
+    dtype = dtype or x.dtype
+    t = torch.as_tensor(zp, dtype=dtype, device=x.device)
+    if shape is None or t.numel() == 1:
+        return t.reshape(())
+    return t.reshape(shape)
+
 
 def noise_param(noise, x: torch.Tensor, grid: UniformGrid, name: str = "noise") -> torch.Tensor:
     """The logistic noise width as a tensor broadcastable against ``x`` (scalar or per channel)."""

@@ -32,7 +32,7 @@ import torch
 import torch.nn.functional as F
 
 from .checks import as_input, check_positive
-from .grid import UniformGrid, code_values, grid_params, noise_param
+from .grid import UniformGrid, code_values, grid_params, noise_param, zero_point_param
 
 __all__ = ["bin_probabilities", "expected_quantize", "relaxed_quantize"]
 
@@ -121,7 +121,7 @@ def relaxed_quantize(
         return soft.to(b.out_dtype)
     with torch.no_grad():
         k = b.start + logits.argmax(dim=0).to(logp.dtype)
-        chosen = code_values(k, b.s.detach(), b.o.detach())  # a member of grid.levels
+        chosen = code_values(k, b.s.detach(), b.o.detach(), b.z)  # a member of grid.levels
     return (chosen + (soft - soft.detach())).to(b.out_dtype)
 
 
@@ -147,14 +147,14 @@ class _Bins:
     Column ``j`` is code ``start + j``; for a window ``logp`` is not yet renormalised.
     """
 
-    __slots__ = ("logp", "start", "s", "o", "window", "out_dtype")
+    __slots__ = ("logp", "start", "s", "o", "z", "window", "out_dtype")
 
-    def __init__(self, logp, start, s, o, window, out_dtype):
-        self.logp, self.start, self.s, self.o = logp, start, s, o
+    def __init__(self, logp, start, s, o, z, window, out_dtype):
+        self.logp, self.start, self.s, self.o, self.z = logp, start, s, o, z
         self.window, self.out_dtype = window, out_dtype
 
     def grid_value(self, code: torch.Tensor) -> torch.Tensor:
-        return code_values(code, self.s, self.o)
+        return code_values(code, self.s, self.o, self.z)
 
 
 def _log_probs(x, grid: UniformGrid, noise, window) -> _Bins:
@@ -206,7 +206,7 @@ def _log_probs(x, grid: UniformGrid, noise, window) -> _Bins:
         rows[0] = torch.where(first_open, -up[1], rows[0])
         rows[-1] = torch.where(last_open, -down[k - 1], rows[-1])
         logp = torch.stack(rows)
-    return _Bins(logp, start, s, o, window, out_dtype)
+    return _Bins(logp, start, s, o, zero_point_param(x, grid), window, out_dtype)
 
 
 def _softplus(b: torch.Tensor) -> torch.Tensor:

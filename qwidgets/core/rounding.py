@@ -12,7 +12,7 @@ from __future__ import annotations
 import torch
 
 from .checks import as_input
-from .grid import UniformGrid, code_values, grid_params, split_offset
+from .grid import UniformGrid, code_values, grid_params, zero_point_param
 
 __all__ = ["quantize", "to_codes", "from_codes"]
 
@@ -32,8 +32,10 @@ def quantize(x: torch.Tensor, grid: UniformGrid) -> torch.Tensor:
     s, o = grid_params(x, grid)
     if x.requires_grad or s.requires_grad or o.requires_grad:
         k = torch.clamp(torch.round((x - o) / s), grid.qmin, grid.qmax)
-        return code_values(k, s, o).to(out_dtype)
-    return _chunked(x, s, o, grid.qmin, grid.qmax, codes=False).to(out_dtype)
+        return code_values(k, s, o, zero_point_param(x, grid)).to(out_dtype)
+    z = zero_point_param(x, grid)
+    shift = (z, None) if z is not None else (None, o)
+    return _chunked(x, s, o, grid.qmin, grid.qmax, shift).to(out_dtype)
 
 
 def to_codes(x: torch.Tensor, grid: UniformGrid) -> torch.Tensor:
@@ -48,7 +50,7 @@ def to_codes(x: torch.Tensor, grid: UniformGrid) -> torch.Tensor:
     with torch.no_grad():
         if x.numel() <= _CHUNK:
             return torch.clamp(torch.round((x - o) / s), grid.qmin, grid.qmax).to(torch.int64)
-        return _chunked(x, s, o, grid.qmin, grid.qmax, codes=True).to(torch.int64)
+        return _chunked(x, s, o, grid.qmin, grid.qmax, None).to(torch.int64)
 
 
 def from_codes(codes: torch.Tensor, grid: UniformGrid, dtype: torch.dtype = torch.float32) -> torch.Tensor:
@@ -70,18 +72,20 @@ def from_codes(codes: torch.Tensor, grid: UniformGrid, dtype: torch.dtype = torc
                 f"got values in [{lo}, {hi}]"
             )
     s, o = grid_params(codes, grid, dtype)
-    return code_values(codes.to(dtype), s, o)
+    return code_values(codes.to(dtype), s, o, zero_point_param(codes, grid, dtype))
 
 
 # ---------------------------------------------------------------------------- internals
-def _chunked(x, s, o, qmin, qmax, *, codes: bool) -> torch.Tensor:
-    """round / clamp (and rescale) in cache-sized slices: each element is read and written once."""
+def _chunked(x, s, o, qmin, qmax, shift) -> torch.Tensor:
+    """round / clamp in cache-sized slices, each element read and written once; with
+    ``shift = (Z, rest)`` (Z the grid's zero point, or rest its offset) also rescale to values."""
     # Both contiguous, so the flat views below alias ``out`` (a strided ``out`` would make
     # ``reshape`` return a copy and the results would be lost).
     x = x.contiguous()
     out = torch.empty_like(x, memory_format=torch.contiguous_format)
-    # rescale as (k - Z) * s + rest, the arithmetic of grid.code_values
-    z, rest = (None, None) if codes else split_offset(s, o)
+    # rescale as (k - Z) * s or k * s + offset, the arithmetic of grid.code_values
+    codes = shift is None
+    z, rest = (None, None) if codes else shift
     if (s.dim() or o.dim()) and x.dim():
         # per-channel: slice along the leading axis so each slice keeps its broadcast shape
         lead = x.shape[0]
@@ -92,15 +96,16 @@ def _chunked(x, s, o, qmin, qmax, *, codes: bool) -> torch.Tensor:
                     out[i : i + rows], qmin, qmax)
         return out
     if not codes:  # per-tensor: skip the operations that would add or subtract 0
-        z, rest = (None if float(z) == 0 else z), (None if float(rest) == 0 else rest)
+        z = None if z is None or float(z) == 0 else z
+        rest = None if rest is None or float(rest) == 0 else rest
     xf, of = x.reshape(-1), out.reshape(-1)
     for i in range(0, xf.numel(), _CHUNK):
         _kernel(xf[i : i + _CHUNK], s, o, None if codes else (z, rest), of[i : i + _CHUNK], qmin, qmax)
     return out
 
 
-def _rows(p: torch.Tensor, i: int, rows: int) -> torch.Tensor:
-    return p if p.dim() == 0 or p.shape[0] == 1 else p[i : i + rows]
+def _rows(p: torch.Tensor | None, i: int, rows: int) -> torch.Tensor | None:
+    return p if p is None or p.dim() == 0 or p.shape[0] == 1 else p[i : i + rows]
 
 
 def _kernel(x, s, o, shift, out, qmin, qmax) -> None:

@@ -145,9 +145,12 @@ def export_codes(model: nn.Module, plan: Plan, *, strict: bool = True,
     Per layer: ``codes`` (smallest integer dtype holding the grid's range: int8 / uint8 up to
     8 bits, int16 up to 16 signed or 15 unsigned, else int32), ``scale`` and ``offset``
     (float32 tensors, per channel when ``axis`` is set), ``zero_point`` (int32 tensor, or None
-    when the offset is not an integer multiple of the scale), ``axis``, ``bits``, ``signed``,
-    and ``input`` (the input grid as a dict of the same fields, or None). Decoding with
-    :func:`qwidgets.from_codes` gives exactly the weights of :func:`apply_plan`'s model.
+    when the grid has no integer zero point: see :attr:`UniformGrid.zero_point`), ``axis``,
+    ``bits``, ``signed``, and ``input`` (the input grid as a dict of the same fields, or None).
+
+    Where ``zero_point`` is given, ``(codes - zero_point) * scale`` in float64, cast to the
+    weight's dtype, is exactly the weight of :func:`apply_plan`'s model (integer arithmetic,
+    then one rounding); without one, ``codes * scale + offset`` in the weight's dtype is.
 
     >>> import torch
     >>> from torch import nn
@@ -185,7 +188,8 @@ def _grid_fields(g: UniformGrid) -> dict:
     offset = g.offset_tensor().to(torch.float32).clone()
     zp = None
     if g.has_zero_point():
-        z = g.zero_point
-        zp = torch.as_tensor(z, dtype=torch.int32).clone()
+        zp = torch.as_tensor(g.zero_point, dtype=torch.int32).clone()
+        if g.axis is not None and zp.dim() == 0:
+            zp = zp.expand(scale.shape).clone()
     return {"scale": scale, "offset": offset, "zero_point": zp, "axis": g.axis, "bits": g.bits,
             "signed": g.signed}

@@ -164,10 +164,11 @@ def grid_from_dict(d, where: str, channels: int | None) -> UniformGrid | None:
         scale = _num(d["scale"], f"{where}.scale", positive=True)
         offset = _num(d["offset"], f"{where}.offset")
         zp = None if d["zero_point"] is None else _int(d["zero_point"], f"{where}.zero_point")
-        if zp is not None and not _zp_matches(zp, scale, offset):
+        grid = UniformGrid(bits, scale, offset, signed=d["signed"])
+        if zp is not None and not _zp_matches(zp, grid, None):
             raise FieldError(f"{where}.zero_point {zp} does not match offset / scale "
                              f"(offset must equal -zero_point * scale, got offset {offset}, scale {scale})")
-        return UniformGrid(bits, scale, offset, signed=d["signed"])
+        return grid
     lists = {}
     for k in ("scale", "offset") + (("zero_point",) if d["zero_point"] is not None else ()):
         v = d[k]
@@ -184,18 +185,23 @@ def grid_from_dict(d, where: str, channels: int | None) -> UniformGrid | None:
                          f"channels along axis {axis}")
     scale = [_num(v, f"{where}.scale[{i}]", positive=True) for i, v in enumerate(lists["scale"])]
     offset = [_num(v, f"{where}.offset[{i}]") for i, v in enumerate(lists["offset"])]
+    grid = UniformGrid(bits, torch.tensor(scale, dtype=torch.float32),
+                       torch.tensor(offset, dtype=torch.float32), signed=d["signed"], axis=axis)
     if "zero_point" in lists:
         for i, z in enumerate(lists["zero_point"]):
             z = _int(z, f"{where}.zero_point[{i}]")
-            if not _zp_matches(z, scale[i], offset[i]):
+            if not _zp_matches(z, grid, i):
                 raise FieldError(f"{where}.zero_point[{i}] = {z} does not match "
                                  f"offset / scale (offset {offset[i]}, scale {scale[i]})")
-    return UniformGrid(bits, torch.tensor(scale, dtype=torch.float32),
-                       torch.tensor(offset, dtype=torch.float32), signed=d["signed"], axis=axis)
+    return grid
 
 
-def _zp_matches(z: int, scale: float, offset: float) -> bool:
-    return abs(offset + z * scale) <= 1e-4 * scale * max(1.0, abs(z))
+def _zp_matches(z: int, grid: UniformGrid, i: int | None) -> bool:
+    """The file's zero point is the grid's own (the one rule of ``UniformGrid.zero_point``)."""
+    if not grid.has_zero_point():
+        return False
+    own = grid.zero_point
+    return int(own if i is None else own.reshape(-1)[i]) == z
 
 
 def plan_fields(data) -> dict:
