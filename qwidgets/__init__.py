@@ -34,6 +34,7 @@ _EXPORTS = {
     "grid_usage": "core.metrics",
     "fit_range": "core.ranges",
     "LayerSetting": "core.setting",
+    "DeviceRules": "core.device_rules",
     # probing a model
     "capture_inputs": "model.capture",
     "layer_error": "model.forward",

@@ -31,6 +31,7 @@ from numbers import Integral, Real
 import torch
 
 from .checks import as_input, check_bits
+from .device_rules import DeviceRules, check_rules, power_of_two_fit
 from .grid import UniformGrid
 
 __all__ = ["fit_range", "METHODS", "STYLES"]
@@ -56,6 +57,8 @@ def fit_range(
     style: str = "midtread",
     axis: int | None = None,
     percentile: float = 99.99,
+    rules: DeviceRules | None = None,
+    role: str = "weight",
 ) -> UniformGrid:
     """Fit a ``bits``-bit uniform grid to ``x``.
 
@@ -76,6 +79,11 @@ def fit_range(
     axis : None for one grid for the whole tensor, or the axis of per-channel grids. Weights
         of Linear / Conv layers are quantized per output channel along axis 0.
     percentile : in (0, 100], used by ``method="percentile"``
+    rules : :class:`DeviceRules` the grid must obey (None: none). ``bits`` must be in the
+        ``role``'s menu, and options that conflict with the rules are refused; with
+        ``pow2_scales`` the scale is the power of two with the least squared error on ``x``
+        among those around the fitted scale (see :func:`power_of_two_fit`), not the nearest.
+    role : ``"weight"`` or ``"input"``: which of the rules apply (used only with ``rules``)
 
     Returns a :class:`UniformGrid`; per tensor its scale and offset are floats, per channel
     1-D float32 tensors on ``x``'s device. A channel whose values are all zero gets the
@@ -95,6 +103,9 @@ def fit_range(
     bits = check_bits(bits)
     method = _check_choice(method, METHODS, "method")
     style = _check_choice(style, STYLES, "style")
+    if check_rules(rules) is not None:
+        bits = rules.check_bits(bits, role)
+        symmetric, style, axis = rules.fit_options(role, symmetric=symmetric, style=style, axis=axis)
     if signed is not None and not isinstance(signed, bool):
         raise TypeError(f"signed must be None, True or False, got {signed!r}")
     if not isinstance(symmetric, bool):
@@ -120,7 +131,10 @@ def fit_range(
             if method == "mse":
                 lo, hi = _search_asymmetric(_search_sample(xf), spec, lo, hi)
             scale, offset = spec.asymmetric_grid(lo, hi)
-    return _make_grid(spec, scale, offset, axis, x.device)
+    grid = _make_grid(spec, scale, offset, axis, x.device)
+    if rules is not None and rules.pow2_scales:
+        grid = power_of_two_fit(x, grid, method)
+    return grid
 
 
 # ---------------------------------------------------------------------------- grid rule
