@@ -33,10 +33,12 @@ import numpy as np
 from torch import nn
 
 from ..core.checks import check_bits
+from ..core.device_rules import DeviceRules, check_rules
 from ..core.ranges import METHODS, fit_range
 from ..model import outputs, running
 from ..model.entries import call_inputs, coverage_of, find_entries, weight_digest
 from ..model.sources import data_source
+from .device_checks import scan_bits
 from .passes import (
     attention_scope_powers,
     db,
@@ -53,7 +55,7 @@ from .table import SensitivityTable
 def scan(model: nn.Module, data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8), *, quantize: str = "weight",
          method: str = "mse", per_channel: bool = True, scope: str = "both",
          max_samples: int | None = None, progress: bool = True,
-         output: Callable | None = None) -> SensitivityTable:
+         output: Callable | None = None, rules: DeviceRules | None = None) -> SensitivityTable:
     """Measure every quantizable weight (entry), quantized alone, at every bit width in ``bits``.
 
     Parameters
@@ -74,6 +76,8 @@ def scan(model: nn.Module, data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8), *, qu
     progress : show a progress bar (tqdm.auto)
     output : a function from the model's output to what is compared (default: every
         floating-point tensor of the output, nested structures and dataclasses included)
+    rules : :class:`qwidgets.DeviceRules` every fitted grid obeys (widths outside the menus are
+        skipped with a warning; weights per tensor where the device needs it)
 
     The table's :attr:`~SensitivityTable.coverage` says how many weight values were scanned
     and why the others were not.
@@ -97,6 +101,9 @@ def scan(model: nn.Module, data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8), *, qu
     if not isinstance(per_channel, bool):
         raise TypeError(f"per_channel must be True or False, got {per_channel!r}")
     output = outputs.check_output_fn(output)
+    bits = scan_bits(bits, check_rules(rules), quantize)
+    if rules is not None:
+        per_channel = per_channel and rules.per_channel_weights
     source = data_source(model, data, max_samples)
     entries = find_entries(model)
     if not entries:
@@ -120,8 +127,9 @@ def scan(model: nn.Module, data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8), *, qu
     for f in facts:
         e = f.entry
         w = e.parameter(model).detach()
-        wg = [fit_range(w, b, method, axis=e.axis if per_channel else None) for b in bits] if qw else None
-        ig = [f.inputs.fit(b, method) for b in bits] if (qi and f.has_input) else None
+        wg = [fit_range(w, b, method, axis=e.axis if per_channel else None, rules=rules)
+              for b in bits] if qw else None
+        ig = [f.inputs.fit(b, method, rules=rules, role="input") for b in bits] if (qi and f.has_input) else None
         wgrids[e.name] = wg
         igrids[e.name] = ig if ig is not None else [None] * len(bits)
         configs[e.name] = [(None if wg is None else wg[j], None if ig is None else ig[j])

@@ -27,12 +27,13 @@ from .choices import (
     in_unit,
     limit,
 )
+from .device_checks import rules_allowed_bits
 from .front import front, thin
 
 
 def plan_budget(table, *, weight_kib: float | None = None, mean_bits: float | None = None,
                 bops: float | None = None, fixed=None, allowed_bits=None, input_bits: int | None = 8,
-                kib_scope: str = "model"):
+                kib_scope: str = "model", rules=None):
     """The plan with the least predicted model-output noise that meets every budget given.
 
     Budgets (give one or more; all must hold): ``weight_kib`` (weight storage, KiB: with
@@ -47,7 +48,8 @@ def plan_budget(table, *, weight_kib: float | None = None, mean_bits: float | No
     ``allowed_bits`` restricts the menu of the other entries: ``{"weight": (4, 8), "input":
     (8,)}``, or a plain tuple for the weight widths. ``input_bits`` is the input width counted
     in BOPs where inputs stay float (None: float32). The result is the exact optimum of the
-    additive-noise objective. A budget that cannot be met raises ValueError naming it and the
+    additive-noise objective. With ``rules`` (:class:`qwidgets.DeviceRules`) only the widths
+    in the device's menus are chosen, and a table whose grids break the rules is refused. A budget that cannot be met raises ValueError naming it and the
     smallest value that can be met (with the other budgets held).
 
     >>> import numpy as np
@@ -62,6 +64,7 @@ def plan_budget(table, *, weight_kib: float | None = None, mean_bits: float | No
     """
     budgets = check_budgets(weight_kib=weight_kib, mean_bits=mean_bits, bops=bops)
     _check_kib_scope(kib_scope)
+    allowed_bits = rules_allowed_bits(table, rules, allowed_bits, input_bits)
     menu = build_menu(table, fixed=fixed, allowed_bits=allowed_bits, input_bits=input_bits)
     costs = {k: menu.costs(table, k) for k in budgets}
     other = {k: table.unplanned_bits() if (k == "weight_kib" and kib_scope == "model") else 0
@@ -88,7 +91,7 @@ def plan_budget(table, *, weight_kib: float | None = None, mean_bits: float | No
 
 def pareto_front(table, cost: str = "weight_kib", *, input_bits: int | None = 8,
                  max_points: int | None = 512, kib_scope: str = "model", fixed=None,
-                 allowed_bits=None) -> list:
+                 allowed_bits=None, rules=None) -> list:
     """Every Pareto-optimal plan for one budget: ``[(cost, predicted_sqnr_db, Plan), ...]`` by
     rising cost.
 
@@ -96,7 +99,8 @@ def pareto_front(table, cost: str = "weight_kib", *, input_bits: int | None = 8,
     of :func:`plan_budget` at its own cost; no other plan is both cheaper and less noisy.
     The front of a large model can hold tens of thousands of points: with more than
     ``max_points`` it is thinned to that many, spread evenly in cost, both ends kept (``None``
-    keeps every point). ``kib_scope``, ``fixed`` and ``allowed_bits`` as in :func:`plan_budget`.
+    keeps every point). ``kib_scope``, ``fixed``, ``allowed_bits`` and ``rules`` as in
+    :func:`plan_budget`.
 
     >>> import numpy as np
     >>> from qwidgets import SensitivityTable
@@ -110,6 +114,7 @@ def pareto_front(table, cost: str = "weight_kib", *, input_bits: int | None = 8,
                                    or max_points < 2):
         raise ValueError(f"max_points must be None or an int >= 2, got {max_points!r}")
     _check_kib_scope(kib_scope)
+    allowed_bits = rules_allowed_bits(table, rules, allowed_bits, input_bits)
     menu = build_menu(table, fixed=fixed, allowed_bits=allowed_bits, input_bits=input_bits)
     front_c, _, choices = front(menu.costs(table, cost), menu.noise)
     if cost == "weight_kib" and kib_scope == "model":
