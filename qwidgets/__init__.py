@@ -40,6 +40,8 @@ _EXPORTS = {
     "layer_error": "model.forward",
     "model_error": "model.forward",
     "ModelError": "model.forward",
+    "fold_batchnorm": "model.folding",
+    "foldable_batchnorm": "model.folding",
     # learning grids
     "learn_grid": "learn.one_grid",
     "LearnResult": "learn.one_grid",
