@@ -55,6 +55,7 @@ _EXPORTS = {
     "evaluate_plan": "planning.evaluate",
     "PlanReport": "planning.evaluate",
     "export_codes": "planning.apply",
+    "export_onnx": "planning.onnx_export",
     # drawing
     "plot_sensitivity": "viz.heatmap",
     # widgets
