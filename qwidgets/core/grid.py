@@ -276,6 +276,8 @@ def _derived_offset(zp, scale, offset):
     """``-zp * scale`` in the type the offset was given in (a learned offset keeps its graph)."""
     if isinstance(offset, torch.Tensor) and offset.requires_grad:
         return offset  # learning: the value stays as given, quantization computes (k - Z) * s
+    if not bool(torch.as_tensor(zp).any()):  # Z = 0: offset 0, in the type it was given
+        return torch.zeros_like(offset) if isinstance(offset, torch.Tensor) else 0.0
     if not isinstance(scale, torch.Tensor) and not isinstance(offset, torch.Tensor):
         return -zp * scale + 0.0
     s = scale.detach() if isinstance(scale, torch.Tensor) else torch.tensor(float(scale), dtype=offset.dtype)
