@@ -196,3 +196,35 @@ def test_residual_block_exports(tmp_path):
     x = torch.randn(10, 4, 5, 5)
     plan = _plan(net, x, {"a": 4, "b": 8}, (8, 4))
     _check(net, plan, x, tmp_path / "res.onnx")
+
+
+def test_other_entries_export_embedding_and_transposed_convolution(tmp_path):
+    from qwidgets.model.entries import find_entries
+
+    torch.manual_seed(4)
+
+    class Tokens(nn.Module):
+        def __init__(self):
+            super().__init__()
+            self.emb, self.up = nn.Embedding(11, 6), nn.ConvTranspose1d(6, 3, 3, stride=2)
+
+        def forward(self, idx):
+            return self.up(self.emb(idx).transpose(1, 2))
+
+    net = Tokens().eval()
+    x = torch.randint(0, 11, (12, 5))
+    entries = {e.name: e for e in find_entries(net)}
+    assert set(entries) == {"emb", "up"}
+    layers = {n: LayerSetting(weight=fit_range(e.parameter(net).detach(), 4, "mse", axis=e.axis))
+              for n, e in entries.items()}
+    plan = Plan(layers, {n: 4 for n in layers}, fingerprint=model_fingerprint(net),
+                weight_shapes={n: e.shape for n, e in entries.items()}, macs={n: 1 for n in layers})
+    proto = export_onnx(net, plan, tmp_path / "t.onnx", x[:2])
+    onnx.checker.check_model(proto, full_check=True)
+    with torch.no_grad():
+        want = apply_plan(net, plan)(x[2:]).numpy()
+    feed = {"input_0": x[2:].numpy()}
+    assert _rel_rms(ReferenceEvaluator(str(tmp_path / "t.onnx")).run(None, feed)[0], want) < 1e-4
+    assert _rel_rms(_ort(tmp_path / "t.onnx").run(None, feed)[0], want) < 1e-4
+    axes = sorted(a.i for n in _node_inputs(proto, "DequantizeLinear") for a in n.attribute)
+    assert axes == sorted(e.axis for e in entries.values())  # per-channel axis of each entry

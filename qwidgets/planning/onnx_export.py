@@ -3,7 +3,8 @@
 The float model is exported with torch's TorchScript-based ONNX exporter (``dynamo=False``: it
 needs no package beyond ``onnx``), then converted to the requested opset and rewritten:
 
-- each planned weight is stored as integer codes (int4 / uint4 up to 4 bits, int8 / uint8 up to
+- each planned weight (any entry: layers, attention projections, recurrent matrices,
+  embeddings) is stored as integer codes (int4 / uint4 up to 4 bits, int8 / uint8 up to
   8, int16 / uint16 up to 16; the grid's own, possibly narrower, range is what the codes use)
   followed by ``DequantizeLinear`` with the plan's scale and zero point (``axis`` where the grid
   is per channel), so the deployed weights are ``(q - Z) * S``, exactly ``apply_plan``'s;
@@ -39,7 +40,7 @@ __all__ = ["export_onnx", "onnx_code_type"]
 
 _TRACE_OPSET = 18  # what the TorchScript exporter writes; converted to ``opset`` afterwards
 _PASS_THROUGH = ("Identity", "Transpose", "Cast", "Reshape", "Unsqueeze", "Squeeze")
-_USERS = ("Conv", "Gemm", "MatMul")
+_USERS = ("Conv", "ConvTranspose", "Gemm", "MatMul")
 
 
 def onnx_code_type(grid: UniformGrid) -> str:
@@ -97,16 +98,17 @@ def export_onnx(model: nn.Module, plan: Plan, path: str | os.PathLike, example_i
     proto = _export_float(model, args)
     proto = onnx.version_converter.convert_version(proto, opset)
     graph = _Graph(proto)
-    for name, layer in found.items():
+    for name, entry in found.items():
         setting = plan.layers[name]
-        wname = graph.weight_name(name, layer)
-        users = graph.users_of(wname)
-        if not users:
-            raise ValueError(f"the exported graph does not use layer {name!r}'s weight in a Conv, Gemm "
-                             "or MatMul node; it cannot be exported with this plan")
+        weight = entry.parameter(model).detach()
+        wname = graph.weight_name(name, entry.param, weight)
+        users = graph.users_of(wname) if setting.input is not None else []
+        if setting.input is not None and not users:
+            raise ValueError(f"the exported graph does not use {name!r}'s weight in a Conv, "
+                             "ConvTranspose, Gemm or MatMul node; its input grid cannot be exported")
         if setting.weight is not None:
-            codes = to_codes(layer.weight.detach(), setting.weight)
-            graph.dequantized_weight(wname, codes, setting.weight, layer.weight.dim())
+            codes = to_codes(weight, setting.weight)
+            graph.dequantized_weight(wname, codes, setting.weight, weight.dim())
         if setting.input is not None:
             for node, data_index in users:
                 graph.quantized_input(node, data_index, setting.input, f"{name or 'model'}.input")
@@ -173,13 +175,12 @@ class _Graph:
         del self.graph.node[:]
         self.graph.node.extend(self.nodes)
 
-    def weight_name(self, layer_name: str, layer: nn.Module) -> str:
+    def weight_name(self, layer_name: str, param: str, weight: torch.Tensor) -> str:
         from onnx import numpy_helper
 
-        name = f"{layer_name}.weight" if layer_name else "weight"
-        if name in self.inits:
-            return name
-        w = layer.weight.detach().cpu().numpy()  # renamed by the exporter: find it by value
+        if param in self.inits:
+            return param
+        w = weight.cpu().numpy()  # renamed by the exporter: find it by value
         hits = [n for n, t in self.inits.items() if tuple(t.dims) == w.shape
                 and np.array_equal(numpy_helper.to_array(t), w)]
         if len(hits) != 1:
