@@ -122,3 +122,22 @@ def test_violations_name_each_broken_rule():
 def test_no_rules_gives_the_plain_fit():
     x = torch.randn(3, 50)
     assert torch.equal(fit_range(x, 4, axis=0, rules=DeviceRules()).scale, fit_range(x, 4, axis=0).scale)
+
+
+@settings(max_examples=40, deadline=None)
+@given(seed=st.integers(0, 2**16), bits=st.sampled_from([4, 8]), scale=st.floats(1e-3, 1.0),
+       offset=st.floats(-1.0, 1.0), role=st.sampled_from(["weight", "input"]), per_channel=st.booleans())
+def test_conform_grid_always_obeys_the_rules(seed, bits, scale, offset, role, per_channel):
+    from qwidgets.core.device_rules import conform_grid
+
+    g = torch.Generator().manual_seed(seed)
+    x = torch.randn(3, 50, generator=g) + offset
+    rules = DeviceRules(pow2_scales=True, symmetric_weights=True, per_tensor_inputs=not per_channel,
+                        weight_bits=(4, 8))
+    if per_channel:
+        grid = UniformGrid(bits, torch.full((3,), scale), torch.full((3,), offset), axis=0)
+    else:
+        grid = UniformGrid(bits, scale, offset)
+    out = conform_grid(grid, x, rules, role)
+    assert rules.obeys(out, role)
+    assert all(_pow2(v) for v in out.scale_tensor().reshape(-1).tolist())

@@ -17,7 +17,7 @@ from .checks import check_bits
 from .grid import UniformGrid
 from .rounding import quantize
 
-__all__ = ["DeviceRules", "ROLES", "power_of_two_fit", "is_power_of_two"]
+__all__ = ["DeviceRules", "ROLES", "power_of_two_fit", "is_power_of_two", "conform_grid"]
 
 ROLES = ("weight", "input")
 
@@ -204,6 +204,36 @@ def power_of_two_fit(x: torch.Tensor, grid: UniformGrid, method: str) -> Uniform
                 best_s = torch.where(better, cand_s, best_s)
                 best_o = torch.where(better, cand_o, best_o)
         return _like(grid, best_s, best_o)
+
+
+def conform_grid(grid: UniformGrid, x: torch.Tensor, rules: DeviceRules, role: str) -> UniformGrid:
+    """The grid nearest to ``grid`` (a learned or hand-set one) that obeys ``rules``, fitted on ``x``.
+
+    The zero point is rounded to an integer (0 for symmetric weights); with power-of-two
+    scales the scale is the power with the least squared error on ``x`` among those around it
+    (as :func:`power_of_two_fit` with the MSE candidates). Widths outside the menu and
+    per-channel grids the device cannot take are refused (they are choices, not roundings).
+
+    >>> rules = DeviceRules(pow2_scales=True, symmetric_weights=True)
+    >>> g = conform_grid(UniformGrid(4, 0.3, offset=0.05), torch.linspace(-2, 2, 101), rules, "weight")
+    >>> g.scale, g.zero_point
+    (0.25, 0)
+    """
+    if not isinstance(grid, UniformGrid):
+        raise TypeError(f"grid must be a UniformGrid, got {type(grid).__name__}")
+    if check_rules(rules) is None:
+        raise TypeError("rules must be a DeviceRules, got None")
+    role = check_role(role)
+    rules.check_bits(grid.bits, role, "grid.bits")
+    rules.fit_options(role, symmetric=True, style="midtread", axis=grid.axis)
+    g = grid.detached()
+    if role == "weight" and rules.symmetric_weights:
+        g = g.replace(offset=torch.zeros_like(g.offset) if isinstance(g.offset, torch.Tensor) else 0.0)
+    elif not g.has_zero_point():
+        g = g.snapped()
+    if rules.pow2_scales and not is_power_of_two(g.scale_tensor()):
+        g = power_of_two_fit(x, g, "mse")
+    return g
 
 
 def _like(grid: UniformGrid, s: torch.Tensor, o: torch.Tensor) -> UniformGrid:
