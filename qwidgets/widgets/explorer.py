@@ -24,6 +24,7 @@ import torch
 from torch import nn
 
 from ..core.checks import as_input, check_bits, check_positive
+from ..core.device_rules import DeviceRules, check_rules, conform_grid
 from ..core.grid import UniformGrid
 from ..core.metrics import ErrorStats, GridUsage, error_stats, grid_usage
 from ..core.ranges import METHODS, fit_range
@@ -72,7 +73,10 @@ class GridExplorer(widgets.VBox):
     ``.layer_stats`` and ``.readouts`` the current state; ``.refresh()``, ``.fit()``,
     ``.learn()``, ``.reset()``, ``.save_figure()`` and ``.to_setting()`` act on it. Changing
     the bit width keeps the clipping range (the step is rescaled); the scale and offset sliders
-    of a per-channel grid edit the channel shown.
+    of a per-channel grid edit the channel shown. With ``rules`` (:class:`qwidgets.DeviceRules`)
+    the controls offer only what the device runs: widths from its menus, the step in powers of
+    two, the offset in whole steps (fixed at 0 for symmetric weights), and fitted or learned
+    grids moved onto the rules.
 
     >>> import torch
     >>> from torch import nn
@@ -99,9 +103,11 @@ class GridExplorer(widgets.VBox):
         max_samples: int | None = None,
         width: int = 720,
         height: int = 600,
+        rules: DeviceRules | None = None,
     ):
         super().__init__()
         bits = check_bits(bits)
+        self._rules = check_rules(rules)
         if method not in METHODS:
             raise ValueError(f"method must be one of {', '.join(map(repr, METHODS))}; got {method!r}")
         self._noise = float(check_positive(noise, "noise"))
@@ -121,7 +127,7 @@ class GridExplorer(widgets.VBox):
         self._grids = {}
         for s in self._sources:
             pc = per_channel and self._can_per_channel(s)
-            self._grids[s] = self._fit_grid(s, bits, method, None, pc)
+            self._grids[s] = self._fit_grid(s, self._allowed_bits(s, bits), method, None, pc)
         self._initial = dict(self._grids)
         self._probe = {s: self._default_probe(s) for s in self._sources}
         self._caches: dict = {}
@@ -195,7 +201,31 @@ class GridExplorer(widgets.VBox):
 
     def _fit_grid(self, source, bits, method, signed, per_channel) -> UniformGrid:
         axis = WEIGHT_AXIS if per_channel else None
-        return fit_range(self._values[source], bits, method, signed=signed, axis=axis)
+        if self._rules is None:
+            return fit_range(self._values[source], bits, method, signed=signed, axis=axis)
+        return fit_range(self._values[source], bits, method, signed=signed, axis=axis,
+                         rules=self._rules, role=_role(source))
+
+    # ================================================================== device rules
+    def _allowed_bits(self, source: str, bits: int, up: bool = True) -> int:
+        """``bits`` if the rules allow it for ``source``, else the next allowed width in the
+        direction of the change (the nearest one at the ends of the menu)."""
+        menu = None if self._rules is None else self._rules.bits_menu(_role(source))
+        if menu is None or bits in menu:
+            return bits
+        ahead = [b for b in menu if (b > bits if up else b < bits)]
+        if ahead:
+            return min(ahead) if up else max(ahead)
+        return min(menu, key=lambda b: (abs(b - bits), b))
+
+    def _symmetric_only(self, source: str) -> bool:
+        return self._rules is not None and self._rules.symmetric_weights and _role(source) == "weight"
+
+    def _obeying(self, grid: UniformGrid, source: str) -> UniformGrid:
+        """``grid`` moved onto the device rules (zero point, power-of-two scale), if any."""
+        if self._rules is None:
+            return grid
+        return conform_grid(grid, self._values[source], self._rules, _role(source))
 
     def _default_probe(self, source: str) -> float:
         v = self._values[source]
@@ -289,22 +319,35 @@ class GridExplorer(widgets.VBox):
 
     def _set_bits(self, bits) -> None:
         g = self.grid
-        bits = check_bits(int(bits))
+        bits = self._allowed_bits(self._source, check_bits(int(bits)), up=int(bits) > g.bits)
         if bits == g.bits:
+            self._sync_controls()  # a width the device does not run: the slider goes back
             return
         # keep the clipping range: the same span is cut into more (or fewer) steps
         old_span = (g.qmax - g.qmin)
         new = g.replace(bits=bits)
         ratio = max(old_span, 1) / max(new.qmax - new.qmin, 1)
         scale = g.scale * ratio if isinstance(g.scale, torch.Tensor) else float(g.scale) * ratio
-        self._set_grid(g.replace(bits=bits, scale=scale))
+        new = g.replace(bits=bits, scale=scale)
+        if self._rules is not None and self._rules.pow2_scales:  # keep the step a power of two
+            new = new.replace(scale=_pow2_like(new.scale))
+        self._set_grid(self._obeying(new, self._source))
         self._sync_controls()
 
     def _set_scale(self, value) -> None:
-        self._set_channel_param("scale", float(check_positive(float(value), "scale")))
+        value = float(check_positive(float(value), "scale"))
+        if self._rules is not None and self._rules.pow2_scales:  # the step moves in powers of two
+            value = 2.0 ** round(math.log2(value))
+        self._set_channel_param("scale", value)
 
     def _set_offset(self, value) -> None:
-        self._set_channel_param("offset", float(value))
+        value = float(value)
+        if self._symmetric_only(self._source):
+            value = 0.0  # symmetric weights: zero point 0
+        elif self._rules is not None:  # an integer zero point: the offset moves in whole steps
+            step = float(self._shown_grid().scale)
+            value = -round(-value / step) * step + 0.0
+        self._set_channel_param("offset", value)
 
     def _set_channel_param(self, name: str, value: float) -> None:
         g = self.grid
@@ -410,7 +453,7 @@ class GridExplorer(widgets.VBox):
             self._sync_controls()
             raise
         self.progress.clear_output()
-        self._set_grid(result.grid, source)
+        self._set_grid(self._obeying(result.grid, source), source)
         self._noise = result.noise
         self._sync_controls()
         self._schedule_or_note(
@@ -610,11 +653,13 @@ class GridExplorer(widgets.VBox):
                 off.min = -r
                 off.step = r / 2000
                 off.value = float(g.offset)
+                off.disabled = self._symmetric_only(self._source)
                 c["noise"].value = self._noise
                 c["temperature"].value = self._temperature
                 c["signed"].value = g.signed
                 c["per_channel"].value = self.grid.axis is not None
-                c["per_channel"].disabled = not self._can_per_channel(self._source)
+                c["per_channel"].disabled = not self._can_per_channel(self._source) or (
+                    self._rules is not None and not self._rules.per_channel_weights)
                 n = self._n_channels()
                 c["channel"].max = max(n - 1, 0)
                 c["channel"].value = self._channel
@@ -760,3 +805,15 @@ class GridExplorer(widgets.VBox):
 
     def _readout_html(self) -> str:
         return readout_html(f"{SOURCE_LABELS[self._source]} on the grid", self._readout_rows())
+
+
+def _role(source: str) -> str:
+    """Which device rules apply to a source: inputs follow the input rules, the rest the weight rules."""
+    return "input" if source == "input" else "weight"
+
+
+def _pow2_like(scale):
+    """The nearest power of two (in log scale) of a float or of each value of a tensor."""
+    if isinstance(scale, torch.Tensor):
+        return torch.exp2(torch.round(torch.log2(scale.detach().double()))).to(scale.dtype)
+    return 2.0 ** round(math.log2(float(scale)))

@@ -20,6 +20,7 @@ import ipywidgets as widgets
 import torch
 from torch import nn
 
+from ..core.device_rules import DeviceRules, check_rules
 from ..planning.costs import COSTS
 from ..planning.evaluate import PlanReport, evaluate_plan
 from ..planning.plan import CAUTION, Plan
@@ -74,7 +75,8 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, widgets.VBox):
     model on ``eval_data`` (held-out data: give it when you have it) or else on ``data``, and
     computes ``metric(output, target) -> float`` for both, with ``eval_target`` (or ``target``
     for ``data``). ``input_bits`` is the input width counted in BOPs when only weights are
-    planned. A grid learned in a :class:`~qwidgets.GridExplorer` reaches the plan with
+    planned. ``rules`` (:class:`qwidgets.DeviceRules`) go to the scan, the budget and the Pareto
+    front: only grids and widths the device runs. A grid learned in a :class:`~qwidgets.GridExplorer` reaches the plan with
     :meth:`use_grid` (or the "use explorer's grid" button once :meth:`link_explorer` is called).
 
     >>> import torch
@@ -90,7 +92,8 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, widgets.VBox):
                  eval_data=None, eval_target=None, table: SensitivityTable | None = None,
                  bits=(2, 3, 4, 5, 6, 8), quantize: str = "weight", method: str = "mse",
                  per_channel: bool = True, input_bits: int | None = 8, max_samples: int | None = None,
-                 output: Callable | None = None, progress: bool = True, width: int = 760):
+                 output: Callable | None = None, progress: bool = True, width: int = 760,
+                 rules: DeviceRules | None = None):
         super().__init__()
         if not isinstance(model, nn.Module):
             raise TypeError(f"model must be a torch.nn.Module, got {type(model).__name__}")
@@ -102,7 +105,7 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, widgets.VBox):
             raise ValueError("eval_target needs eval_data (the held-out inputs it belongs to)")
         if table is None:
             table = scan(model, data, bits, quantize=quantize, method=method, per_channel=per_channel,
-                         scope="model", max_samples=max_samples, progress=progress, output=output)
+                         scope="model", max_samples=max_samples, progress=progress, output=output, rules=rules)
         elif not isinstance(table, SensitivityTable):
             raise TypeError(f"table must be a SensitivityTable, got {type(table).__name__}")
         if "model" not in table.scopes:
@@ -112,6 +115,7 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, widgets.VBox):
         self.eval_data, self.eval_target = eval_data, eval_target
         self.table = table
         self.input_bits = input_bits
+        self.rules = check_rules(rules)
         self._max_samples = max_samples
         self._fronts: dict[str, list] = {}
         self.kind = "weight_kib"
@@ -207,7 +211,7 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, widgets.VBox):
         """The Pareto front for a budget kind (cached): ``[(cost, predicted dB, Plan), ...]``."""
         kind = self.kind if kind is None else kind
         if kind not in self._fronts:
-            self._fronts[kind] = pareto_front(self.table, kind, input_bits=self.input_bits)
+            self._fronts[kind] = pareto_front(self.table, kind, input_bits=self.input_bits, rules=self.rules)
         return self._fronts[kind]
 
     @property
@@ -288,7 +292,8 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, widgets.VBox):
         if value is None:
             value = exact if exact is not None else self.controls["budget"].value * self._scale
         value = max(value, self.front()[0][0])  # the slider's rounding must not make it infeasible
-        plan = plan_budget(self.table, **{self.kind: value}, **self.limit.kwargs(), input_bits=self.input_bits)
+        plan = plan_budget(self.table, **{self.kind: value}, **self.limit.kwargs(), input_bits=self.input_bits,
+                           rules=self.rules)
         self._predicted = plan.predicted_sqnr_db
         for name in plan.layers:  # grids taken from an explorer come back at their width
             setting = self._taken.get((name, plan.bits[name]))
