@@ -14,7 +14,7 @@ import torch
 
 from .checks import _short, check_bits, check_finite, check_positive
 
-__all__ = ["UniformGrid", "ZP_TOLERANCE", "integer_zero_point", "code_values", "channel_shape",
+__all__ = ["UniformGrid", "ZP_TOLERANCE", "integer_zero_point", "zero_points", "code_values", "channel_shape",
            "grid_params", "zero_point_param", "noise_param"]
 
 # One rule decides whether a grid has an integer zero point Z (offset == -Z * scale): -offset /
@@ -36,6 +36,14 @@ def integer_zero_point(scale, offset):
     >>> integer_zero_point(0.1, -0.3), integer_zero_point(0.1, -(0.3 + 2e-5))
     (3, None)
     """
+    z, whole = zero_points(scale, offset)
+    return z if whole is True else None
+
+
+def zero_points(scale, offset):
+    """Entry by entry: ``(Z, whole)``, Z the nearest integer to ``-offset / scale`` where it is one
+    under the tolerance (0 elsewhere) and ``whole`` True when every entry is, False when none
+    is, else a bool tensor (a per-channel grid may have integer zero points on some channels)."""
     tensors = isinstance(scale, torch.Tensor) or isinstance(offset, torch.Tensor)
     # the decision is made in float64 on the stored values, whatever dtype later computes with them
     with torch.no_grad():
@@ -43,24 +51,35 @@ def integer_zero_point(scale, offset):
         o = torch.as_tensor(offset.detach() if isinstance(offset, torch.Tensor) else offset, dtype=torch.float64)
         z = -o / s
         zr = torch.round(z)
-        if not bool((torch.abs(z - zr) <= ZP_TOLERANCE * torch.clamp(torch.abs(zr), min=1.0)).all()):
-            return None
+        mask = torch.abs(z - zr) <= ZP_TOLERANCE * torch.clamp(torch.abs(zr), min=1.0)
+        zr = torch.where(mask, zr, 0.0) + 0.0
+    if bool(mask.all()):
+        whole = True
+    elif not bool(mask.any()):
+        whole = False
+    else:
+        whole = mask
     if zr.dim() == 0 or not tensors:
-        return int(zr)
-    return zr.to(torch.int64)
+        return int(zr), whole
+    return zr.to(torch.int64), whole
 
 
-def code_values(k: torch.Tensor, s: torch.Tensor, o: torch.Tensor, z: torch.Tensor | None = None) -> torch.Tensor:
+def code_values(k: torch.Tensor, s: torch.Tensor, o: torch.Tensor, shift=None) -> torch.Tensor:
     """Grid values ``s * k + o`` for (float-typed) integer codes ``k``.
 
-    With the grid's integer zero point ``z`` (see :func:`zero_point_param`) they are computed as
-    ``(k - z) * s``: one rounding, the way integer-arithmetic inference dequantizes, so results
-    equal the reference operators bit for bit; without one, as ``k * s + o``. Either way
-    ``quantize`` returns an exact member of ``UniformGrid.levels``. The gradient is that of
-    ``s * k + o`` (scale and offset are independent parameters).
+    With the grid's integer zero point, ``shift = (z, rest)`` (see :func:`zero_point_param`),
+    they are computed as ``(k - z) * s``: one rounding, the way integer-arithmetic inference
+    dequantizes, so results equal the reference operators bit for bit (``rest`` holds the offset
+    of channels without an integer zero point, where z is 0, or is None); without one, as
+    ``k * s + o``. Either way ``quantize`` returns an exact member of ``UniformGrid.levels``. The
+    gradient is that of ``s * k + o`` (scale and offset are independent parameters).
     """
-    value = (k - z) * s if z is not None else k * s + o
-    if z is None or not (s.requires_grad or o.requires_grad):
+    if shift is None:
+        value = k * s + o
+    else:
+        z, rest = shift
+        value = (k - z) * s if rest is None else (k - z) * s + rest
+    if shift is None or not (s.requires_grad or o.requires_grad):
         return value
     lin = k * s + o
     return lin + (value - lin).detach()  # the value of ``value``
@@ -86,7 +105,7 @@ class UniformGrid:
     (-2.0, 1.5)
     """
 
-    __slots__ = ("bits", "scale", "offset", "signed", "axis", "_zp")
+    __slots__ = ("bits", "scale", "offset", "signed", "axis", "_zp", "_whole")
     _FIELDS = ("bits", "scale", "offset", "signed", "axis")
 
     def __init__(self, bits: int, scale, offset=0.0, signed: bool = True, axis: int | None = None):
@@ -116,10 +135,11 @@ class UniformGrid:
             raise ValueError(
                 f"scale has {scale.numel()} channels but offset has {offset.numel()}; they must match"
             )
-        zp = integer_zero_point(scale, offset)
-        if zp is not None:
-            offset = _derived_offset(zp, scale, offset)
-        object.__setattr__(self, "_zp", zp)
+        zp, whole = zero_points(scale, offset)
+        if whole is not False:
+            offset = _derived_offset(zp, whole, scale, offset)
+        object.__setattr__(self, "_zp", None if whole is False else zp)
+        object.__setattr__(self, "_whole", whole)
         object.__setattr__(self, "bits", bits)
         object.__setattr__(self, "scale", scale)
         object.__setattr__(self, "offset", offset)
@@ -188,11 +208,10 @@ class UniformGrid:
         k = torch.arange(self.qmin, self.qmax + 1, dtype=dtype)
         s = self.scale_tensor().detach().to(dtype)
         o = self.offset_tensor().detach().to(dtype)
-        z = None if self._zp is None else torch.as_tensor(self._zp, dtype=dtype)
+        shift = _shift(self, dtype, k.device, None if not (s.dim() or o.dim()) else (-1, 1))
         if s.dim() or o.dim():
             s, o = s.reshape(-1, 1), o.reshape(-1, 1)
-            z = None if z is None else z.reshape(-1, 1)
-        return code_values(k, s, o, z)
+        return code_values(k, s, o, shift)
 
     @property
     def clip_range(self) -> tuple:
@@ -216,7 +235,7 @@ class UniformGrid:
         ValueError when the offset is not an integer multiple of the scale; use
         :meth:`snapped` for the nearest grid that has an integer zero point.
         """
-        if self._zp is None:
+        if not self.has_zero_point():
             z = -self.offset_tensor().detach().double() / self.scale_tensor().detach().double()
             raise ValueError(
                 "offset is not an integer multiple of scale, so the grid has no integer zero "
@@ -226,7 +245,7 @@ class UniformGrid:
 
     def has_zero_point(self) -> bool:
         """Whether the grid has an integer zero point (see :attr:`zero_point`)."""
-        return self._zp is not None
+        return self._whole is True
 
     # ------------------------------------------------------------------ copies
     def replace(self, **changes) -> UniformGrid:
@@ -272,10 +291,17 @@ class UniformGrid:
             f"signed={self.signed}{ax})"
         )
 
-def _derived_offset(zp, scale, offset):
-    """``-zp * scale`` in the type the offset was given in (a learned offset keeps its graph)."""
+def _derived_offset(zp, whole, scale, offset):
+    """``-zp * scale`` in the type the offset was given in (a learned offset keeps its graph),
+    on the entries that have an integer zero point (``whole``)."""
     if isinstance(offset, torch.Tensor) and offset.requires_grad:
         return offset  # learning: the value stays as given, quantization computes (k - Z) * s
+    if whole is not True:  # some channels only: derive those, keep the others
+        s = scale.detach() if isinstance(scale, torch.Tensor) else torch.tensor(float(scale))
+        o = offset.detach() if isinstance(offset, torch.Tensor) else torch.tensor(float(offset), dtype=s.dtype)
+        derived = -(torch.as_tensor(zp, dtype=s.dtype) * s) + 0.0
+        shape = torch.broadcast_shapes(derived.shape, o.shape, whole.shape)
+        return torch.where(whole.reshape(shape) if whole.numel() > 1 else whole, derived.to(o.dtype), o)
     if not bool(torch.as_tensor(zp).any()):  # Z = 0: offset 0, in the type it was given
         return torch.zeros_like(offset) if isinstance(offset, torch.Tensor) else 0.0
     if not isinstance(scale, torch.Tensor) and not isinstance(offset, torch.Tensor):
@@ -325,16 +351,26 @@ def _param(v, x: torch.Tensor, shape, dtype) -> torch.Tensor:
     return torch.tensor(float(v), dtype=dtype, device=x.device)
 
 def zero_point_param(x: torch.Tensor, grid: UniformGrid, dtype: torch.dtype | None = None):
-    """The grid's integer zero point as a float tensor broadcastable against ``x``, or None."""
-    zp = grid._zp
-    if zp is None:
+    """``(z, rest)`` for :func:`code_values`, broadcastable against ``x``, or None when no
+    entry of the grid has an integer zero point (``rest`` is None when every entry has one)."""
+    if grid._zp is None:
         return None
-    shape = channel_shape(x, grid)
-    dtype = dtype or x.dtype
-    t = torch.as_tensor(zp, dtype=dtype, device=x.device)
-    if shape is None or t.numel() == 1:
-        return t.reshape(())
-    return t.reshape(shape)
+    return _shift(grid, dtype or x.dtype, x.device, channel_shape(x, grid))
+
+
+def _shift(grid: UniformGrid, dtype, device, shape):
+    if grid._zp is None:
+        return None
+
+    def shaped(t):
+        return t.reshape(()) if shape is None or t.numel() == 1 else t.reshape(shape)
+
+    z = shaped(torch.as_tensor(grid._zp, dtype=dtype, device=device))
+    if grid._whole is True:
+        return z, None
+    o = grid.offset_tensor().detach().to(device=device, dtype=dtype)
+    rest = torch.where(grid._whole.to(device), torch.zeros_like(o), o)
+    return z, shaped(rest)
 
 
 def noise_param(noise, x: torch.Tensor, grid: UniformGrid, name: str = "noise") -> torch.Tensor:

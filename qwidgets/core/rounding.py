@@ -33,8 +33,9 @@ def quantize(x: torch.Tensor, grid: UniformGrid) -> torch.Tensor:
     if x.requires_grad or s.requires_grad or o.requires_grad:
         k = torch.clamp(torch.round((x - o) / s), grid.qmin, grid.qmax)
         return code_values(k, s, o, zero_point_param(x, grid)).to(out_dtype)
-    z = zero_point_param(x, grid)
-    shift = (z, None) if z is not None else (None, o)
+    shift = zero_point_param(x, grid)
+    if shift is None:
+        shift = (None, o)
     return _chunked(x, s, o, grid.qmin, grid.qmax, shift).to(out_dtype)
 
 

@@ -150,7 +150,8 @@ def export_codes(model: nn.Module, plan: Plan, *, strict: bool = True,
 
     Where ``zero_point`` is given, ``(codes - zero_point) * scale`` in float64, cast to the
     weight's dtype, is exactly the weight of :func:`apply_plan`'s model (integer arithmetic,
-    then one rounding); without one, ``codes * scale + offset`` in the weight's dtype is.
+    then one rounding); without one, :func:`qwidgets.from_codes` with the grid decodes them
+    (``codes * scale + offset`` in the weight's dtype for a per-tensor grid).
 
     >>> import torch
     >>> from torch import nn
