@@ -70,3 +70,18 @@ def test_budget_planner_plans_only_what_the_device_runs():
     assert set(plan.bits.values()) <= {4, 8}
     assert all(rules.obeys(s.weight, "weight") for s in plan.layers.values())
     assert all(_pow2(v) for s in plan.layers.values() for v in s.weight.scale_tensor().reshape(-1))
+
+
+def test_scan_view_and_planner_note_unfolded_batchnorm_after_planned_layers():
+    from qwidgets import BudgetPlanner, ScanView, fold_batchnorm
+
+    torch.manual_seed(3)
+    net = nn.Sequential(nn.Conv2d(3, 4, 3), nn.BatchNorm2d(4), nn.ReLU(), nn.Flatten(), nn.Linear(4 * 16, 2)).eval()
+    x = torch.randn(16, 3, 6, 6)
+    view = ScanView(net, x, bits=(4, 8), progress=False)
+    planner = BudgetPlanner(net, x, bits=(4, 8), progress=False)
+    for w in (view, planner):
+        assert "1 after 0" in w.batchnorm_note.value and "fold_batchnorm" in w.batchnorm_note.value
+    folded = fold_batchnorm(net)
+    assert ScanView(folded, x, bits=(4, 8), progress=False).batchnorm_note.value == ""
+    assert BudgetPlanner(folded, x, bits=(4, 8), progress=False).batchnorm_note.value == ""

@@ -30,6 +30,7 @@ from ..planning.table import SensitivityTable
 from ..viz.planner_figure import PlannerFigure
 from .display_snapshot import SnapshotDisplay
 from .events import Coalescer, MessageLine, observe_value
+from .fold_note import batchnorm_note
 from .image_canvas import PlotCanvas
 from .plan_saving import save_plan
 from .planner_grids import GridTaking
@@ -189,6 +190,7 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, widgets.VBox):
             layout=widgets.Layout(width=f"{width}px"))
         self.caution.add_class(CSS["caution"])
         self.message = MessageLine()
+        self.batchnorm_note = batchnorm_note(self.model, self.table.layers, width)
         row = widgets.Layout(align_items="center")
         self.children = [
             c["kind"],
@@ -199,6 +201,7 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, widgets.VBox):
             self.table_html,
             widgets.HBox([c["path"], c["overwrite"], c["save"]], layout=row),
             self.message.widget,
+            self.batchnorm_note,
             self.caution,
         ]
         self.add_class(CSS["root"])

@@ -21,6 +21,7 @@ from ..viz.heatmap import sqnr_limits, sqnr_table_html
 from ..viz.scan_figure import ScanFigure
 from .display_snapshot import SnapshotDisplay
 from .events import MessageLine
+from .fold_note import batchnorm_note
 from .image_canvas import PlotCanvas
 
 __all__ = ["ScanView"]
@@ -136,8 +137,9 @@ class ScanView(SnapshotDisplay, widgets.VBox):
         bar = widgets.HBox([self.controls["layer"], self.controls["bits"], self.controls["open"],
                             self.controls["use_grid"]],
                            layout=widgets.Layout(align_items="center"))
+        self.batchnorm_note = batchnorm_note(self.model, t.layers, width)
         self.children = [self.controls["scope"], self.canvas.image, self.table_html, bar,
-                         self.message.widget, self.explorer_box]
+                         self.message.widget, self.batchnorm_note, self.explorer_box]
         self.add_class(CSS["root"])
 
     # ------------------------------------------------------------------ drawing
