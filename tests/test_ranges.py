@@ -11,7 +11,9 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from qwidgets import UniformGrid, fit_range, quantize
-from qwidgets.core.ranges import _SortedRows, _Spec, _sse_direct
+from qwidgets.core.clip_search import GridSpec as _Spec
+from qwidgets.core.clip_search import SortedRows as _SortedRows
+from qwidgets.core.clip_search import sse_direct as _sse_direct
 
 
 def _mse(x, grid):
@@ -270,14 +272,43 @@ def test_bad_data_is_refused():
 
 
 def test_large_tensors_search_a_seeded_subset(monkeypatch):
-    import qwidgets.core.ranges as ranges
+    import qwidgets.core.clip_search as ranges
 
     x = torch.randn(4, 20_000, generator=torch.Generator().manual_seed(9))
     full = fit_range(x, 3, "mse", axis=0)
-    monkeypatch.setattr(ranges, "_SEARCH_CAP", 4 * 5000)
+    monkeypatch.setattr(ranges, "SEARCH_CAP", 4 * 5000)
     sub = fit_range(x, 3, "mse", axis=0)
     assert torch.equal(sub.scale, fit_range(x, 3, "mse", axis=0).scale)  # deterministic
     # the error curve is flat at its minimum: the subset's grid is near-optimal on all values
     for i in range(4):
         on_all = _mse(x[i], UniformGrid(3, float(sub.scale[i])))
         assert on_all <= _mse(x[i], UniformGrid(3, float(full.scale[i]))) * 1.01
+
+
+# ---------------------------------------------------------------------------- several widths at once
+@settings(max_examples=25, deadline=None)
+@given(seed=st.integers(0, 10_000), method=st.sampled_from(["minmax", "percentile", "mse"]),
+       symmetric=st.booleans(), style=st.sampled_from(["midtread", "midrise"]),
+       per_channel=st.booleans(), cols=st.sampled_from([7, 300, 3000]))
+def test_fit_ranges_equals_fitting_each_width_separately(seed, method, symmetric, style, per_channel, cols):
+    # source: fit_range itself, called once per bit width (the grids must be identical, bit for bit)
+    from qwidgets.core.ranges import fit_ranges
+
+    x = torch.randn(3, cols, generator=torch.Generator().manual_seed(seed)) * 2 + 0.3
+    bits = (1, 2, 3, 4, 6, 8)
+    kw = dict(symmetric=symmetric, style=style, axis=0 if per_channel else None)
+    together = fit_ranges(x, bits, method, **kw)
+    for b, g in zip(bits, together, strict=True):
+        alone = fit_range(x, b, method, **kw)
+        assert g.bits == alone.bits and g.signed == alone.signed
+        assert torch.equal(torch.as_tensor(g.scale), torch.as_tensor(alone.scale))
+        assert torch.equal(torch.as_tensor(g.offset), torch.as_tensor(alone.offset))
+
+
+def test_fit_ranges_checks_bits():
+    from qwidgets.core.ranges import fit_ranges
+
+    with pytest.raises(TypeError, match="bits must be a sequence"):
+        fit_ranges(torch.randn(10), 4)
+    with pytest.raises(ValueError, match="bits"):
+        fit_ranges(torch.randn(10), (4, 0))

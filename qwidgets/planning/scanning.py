@@ -26,7 +26,10 @@ sample of each layer's inputs (see :class:`qwidgets.model.statistics.RangeSample
 
 from __future__ import annotations
 
+import copy
+import threading
 from collections.abc import Callable, Sequence
+from concurrent.futures import Executor
 from numbers import Integral
 
 import numpy as np
@@ -34,28 +37,33 @@ from torch import nn
 
 from ..core.checks import check_bits
 from ..core.device_rules import DeviceRules, check_rules
-from ..core.ranges import METHODS, fit_range
+from ..core.ranges import METHODS, fit_ranges
 from ..model import outputs, running
+from ..model.batching import cut_batches
 from ..model.entries import call_inputs, coverage_of, find_entries, weight_digest
 from ..model.sources import data_source
 from .device_checks import scan_bits
+from .distribute import merge_shares, worker_count
+from .model_scope import model_scope as _model_scope
 from .passes import (
     attention_scope_powers,
     db,
     layer_scope_powers,
-    model_scope_noise,
     weight_scope_powers,
 )
 from .plan import model_fingerprint
-from .schema import QUANTIZE_MODES, SCOPES
+from .schema import ESTIMATES, QUANTIZE_MODES, SCOPES
 from .survey import survey
 from .table import SensitivityTable
+from .threads import fastest_threads, threads, torch_threads
 
 
 def scan(model: nn.Module, data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8), *, quantize: str = "weight",
          method: str = "mse", per_channel: bool = True, scope: str = "both",
          max_samples: int | None = None, progress: bool = True,
-         output: Callable | None = None, rules: DeviceRules | None = None) -> SensitivityTable:
+         output: Callable | None = None, estimate: str = "exact",
+         batch_size: int | None = None, executor: Executor | None = None,
+         rules: DeviceRules | None = None) -> SensitivityTable:
     """Measure every quantizable weight (entry), quantized alone, at every bit width in ``bits``.
 
     Parameters
@@ -76,6 +84,21 @@ def scan(model: nn.Module, data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8), *, qu
     progress : show a progress bar (tqdm.auto)
     output : a function from the model's output to what is compared (default: every
         floating-point tensor of the output, nested structures and dataclasses included)
+    estimate : how the model scope is found. ``"exact"``: measured at every bit width.
+        ``"gain"``: each entry's output-noise gain is measured once, at the widest bit width
+        (one pass per entry, averaged over random-sign versions of its weight error), and the
+        model noise at every width predicted as that gain times the exact layer-scope noise
+        (additive quantization noise, Widrow & Kollar 2008). It predicts the typical effect
+        of a width; the exact value for one particular weight error can differ by a dB or two
+        on models with few outputs. Entries that cannot be replayed are measured exactly.
+        ``table.estimate`` records which.
+    batch_size : cut data given as one batch into batches of this many samples (None: one
+        batch); only power sums are kept between batches, so memory is about one batch of
+        activations, and the table is the same
+    executor : a ``concurrent.futures.Executor`` (a process pool, a thread pool, or a
+        ``dask.distributed`` client's ``get_executor()``): the model-scope work is split across
+        its workers by entry, each receives the model and the data once, and the parts are
+        merged into the table a serial scan gives
     rules : :class:`qwidgets.DeviceRules` every fitted grid obeys (widths outside the menus are
         skipped with a warning; weights per tensor where the device needs it)
 
@@ -100,11 +123,45 @@ def scan(model: nn.Module, data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8), *, qu
         raise ValueError(f"scope must be one of {', '.join(map(repr, SCOPES))}, got {scope!r}")
     if not isinstance(per_channel, bool):
         raise TypeError(f"per_channel must be True or False, got {per_channel!r}")
+    if estimate not in ESTIMATES:
+        raise ValueError(f"estimate must be one of {', '.join(map(repr, ESTIMATES))}, got {estimate!r}")
+    if executor is not None and not isinstance(executor, Executor):
+        raise TypeError(f"executor must be None or a concurrent.futures.Executor, got {type(executor).__name__}")
+    if batch_size is not None and (isinstance(batch_size, bool) or not isinstance(batch_size, Integral)):
+        raise TypeError(f"batch_size must be None or an int >= 1, got {batch_size!r}")
+    if batch_size is not None and batch_size < 1:
+        raise ValueError(f"batch_size must be None or an int >= 1, got {batch_size!r}")
     output = outputs.check_output_fn(output)
     bits = scan_bits(bits, check_rules(rules), quantize)
     if rules is not None:
         per_channel = per_channel and rules.per_channel_weights
-    source = data_source(model, data, max_samples)
+    options = dict(rules=rules, bits=bits, quantize=quantize, method=method, per_channel=per_channel, scope=scope,
+                   max_samples=max_samples, output=output, estimate=estimate, batch_size=batch_size)
+    if executor is None or scope == "layer":
+        return SensitivityTable(**_run_scan(model, data, options, progress, None))
+    k = worker_count(executor)
+    futures = [executor.submit(scan_share, copy.deepcopy(model), data, options, (i, k)) for i in range(k)]
+    return SensitivityTable(**merge_shares([f.result() for f in futures], k))
+
+
+def scan_share(model: nn.Module, data, options: dict, share: tuple[int, int]) -> dict:
+    """What one executor task runs: the scan with the model scope of entries ``i % k == j`` only.
+
+    Tasks in one process run one at a time (tracing patches module calls process-wide).
+    """
+    with _SHARE_LOCK:
+        return _run_scan(model, data, options, False, share)
+
+
+_SHARE_LOCK = threading.Lock()
+
+
+def _run_scan(model, data, options: dict, progress: bool, share) -> dict:
+    bits, quantize, method = options["bits"], options["quantize"], options["method"]
+    per_channel, scope, max_samples = options["per_channel"], options["scope"], options["max_samples"]
+    estimate, batch_size, output = options["estimate"], options["batch_size"], options["output"]
+    rules = options["rules"]
+    source = data_source(model, cut_batches(data, batch_size), max_samples)
     entries = find_entries(model)
     if not entries:
         raise ValueError(running.no_layers_message(model))
@@ -124,48 +181,42 @@ def scan(model: nn.Module, data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8), *, qu
 
     names = [f.entry.name for f in facts]
     info, wgrids, igrids, configs = {}, {}, {}, {}
-    for f in facts:
-        e = f.entry
-        w = e.parameter(model).detach()
-        wg = [fit_range(w, b, method, axis=e.axis if per_channel else None, rules=rules)
-              for b in bits] if qw else None
-        ig = [f.inputs.fit(b, method, rules=rules, role="input") for b in bits] if (qi and f.has_input) else None
-        wgrids[e.name] = wg
-        igrids[e.name] = ig if ig is not None else [None] * len(bits)
-        configs[e.name] = [(None if wg is None else wg[j], None if ig is None else ig[j])
-                           for j in range(len(bits))]
-        info[e.name] = {"type": e.type_name, "weight_shape": e.shape, "input_shape": f.input_shape,
-                        "macs": int(f.macs), "model_pass": "-", "kind": e.kind, "axis": e.axis,
-                        "param": e.param, "has_input": bool(f.has_input),
-                        "shared_with": list(e.shared_with),
-                        "stored_bits": e.numel * w.element_size() * 8, "digest": weight_digest(w)}
-    layer_sq = _layer_scope(model, source, facts, configs) if scope != "model" else None
-    model_sq = None
-    if scope != "layer":
-        model_sq = np.full((len(names), len(bits)), np.nan)
-        bar = _progress(len(names), progress)
-        try:
-            for i, f in enumerate(facts):
-                e = f.entry
-                stackable = f.has_input and e.runs_as_module and not e.shared_with
-                noise = np.zeros(len(bits))
-                modes = set()
-                for batch, ref_parts in zip(source, found.refs, strict=True):
-                    n, mode = model_scope_noise(model, batch, e, configs[e.name], ref_parts,
-                                                stackable=stackable, output=output)
-                    noise += np.asarray(n)
-                    modes.add(mode)
-                model_sq[i] = [db(found.reference.sig, v) for v in noise]
-                info[e.name]["model_pass"] = "stacked" if modes == {"stacked"} else "per bit width"
-                bar.update(1)
-        finally:
-            bar.close()
+    with torch_threads("fit"):  # many small operations: one thread (see threads.py)
+        for f in facts:
+            e = f.entry
+            w = e.parameter(model).detach()
+            # one sort of the weight serves every bit width (the same grids as fitting each alone)
+            wg = fit_ranges(w, bits, method, axis=e.axis if per_channel else None,
+                            rules=rules) if qw else None
+            ig = [f.inputs.fit(b, method, rules=rules, role="input") for b in bits] \
+                if (qi and f.has_input) else None
+            wgrids[e.name] = wg
+            igrids[e.name] = ig if ig is not None else [None] * len(bits)
+            configs[e.name] = [(None if wg is None else wg[j], None if ig is None else ig[j])
+                               for j in range(len(bits))]
+            info[e.name] = {"type": e.type_name, "weight_shape": e.shape, "input_shape": f.input_shape,
+                            "macs": int(f.macs), "model_pass": "-", "kind": e.kind, "axis": e.axis,
+                            "param": e.param, "has_input": bool(f.has_input),
+                            "shared_with": list(e.shared_with),
+                            "stored_bits": e.numel * w.element_size() * 8, "digest": weight_digest(w)}
+    # the passes: the faster of one thread and torch's setting, timed on a float forward
+    first = next(iter(source))
+    with threads(fastest_threads(lambda: running.run_with_hooks(model, first, {}, pre=False))):
+        layer_sq = _layer_scope(model, source, facts, configs) \
+            if scope != "model" or estimate == "gain" else None
+        model_sq = None
+        if scope != "layer":
+            model_sq = _model_scope(model, source, found, facts, configs, len(bits), layer_sq, info,
+                                    estimate=estimate, output=output, progress=progress, share=share)
+    if scope == "model":
+        layer_sq = None
     cov = coverage_of(model, [f.entry for f in facts], skipped)
-    return SensitivityTable(layers=names, bits=bits, quantize=quantize, method=method,
-                            per_channel=per_channel, fingerprint=model_fingerprint(model), info=info,
-                            layer_sqnr=layer_sq, model_sqnr=model_sq,
-                            weight_grids=wgrids if qw else None, input_grids=igrids if qi else None,
-                            n_samples=found.n_samples, coverage=cov)
+    return dict(layers=names, bits=bits, quantize=quantize, method=method,
+                per_channel=per_channel, fingerprint=model_fingerprint(model), info=info,
+                layer_sqnr=layer_sq, model_sqnr=model_sq,
+                weight_grids=wgrids if qw else None, input_grids=igrids if qi else None,
+                n_samples=found.n_samples, coverage=cov,
+                estimate=estimate if scope != "layer" else "exact")
 
 
 def _layer_scope(model, source, facts, configs) -> np.ndarray:

@@ -49,6 +49,7 @@ from ..core.setting import LayerSetting
 
 QUANTIZE_MODES = ("weight", "input", "both", "separate")
 SCOPES = ("layer", "model", "both")
+ESTIMATES = ("exact", "gain")  # how a table's model scope was found (see scan)
 FORMAT = "qwidgets plan"
 
 
@@ -319,8 +320,12 @@ def table_fields(d) -> dict:
         raise FieldError("expected a JSON object at the top level")
     version = d.get("version")
     keys = keys1 if version == 1 else keys1 + ("input_bits",)
-    if not set(keys) <= set(d) <= set(keys) | {"coverage"}:
-        raise FieldError(f"expected an object with fields {list(keys)} (and optionally coverage)")
+    if not set(keys) <= set(d) <= set(keys) | {"coverage", "estimate"}:
+        raise FieldError(f"expected an object with fields {list(keys)} (and optionally coverage, "
+                         "estimate)")
+    # tables written before "estimate" existed hold exact model scopes
+    if d.get("estimate", "exact") not in ESTIMATES:
+        raise FieldError(f"estimate must be one of {ESTIMATES}, got {d.get('estimate')!r}")
     if d["format"] != TABLE_FORMAT or version not in (1, TABLE_VERSION) or isinstance(version, bool):
         raise FieldError(f"format / version must be {TABLE_FORMAT!r} / 1 or {TABLE_VERSION}, "
                           f"got {d['format']!r} / {version!r}")
@@ -403,7 +408,7 @@ def table_fields(d) -> dict:
         layer_sqnr=arrays["layer"], model_sqnr=arrays["model"],
         weight_grids=grids["weight"] if len(grids["weight"]) == len(names) else None,
         input_grids=input_grids, n_samples=int(d["n_samples"]), input_bits=ibits,
-        coverage=_coverage_from_json(d.get("coverage")),
+        coverage=_coverage_from_json(d.get("coverage")), estimate=d.get("estimate", "exact"),
         input_layer_sqnr=arrays.get("input_layer"), input_model_sqnr=arrays.get("input_model"))
 
 

@@ -16,6 +16,7 @@ from ..model.entries import Coverage
 from .files import read_text, write_text
 from .plan import Plan
 from .schema import (
+    ESTIMATES,
     FieldError,
     table_fields,
 )
@@ -37,7 +38,11 @@ class SensitivityTable:
                  weight_grids: Mapping[str, Sequence[UniformGrid]] | None,
                  input_grids: Mapping[str, Sequence[UniformGrid]] | None, n_samples: int,
                  coverage: Coverage | None = None, input_bits: Sequence[int] = (),
-                 input_layer_sqnr: np.ndarray | None = None, input_model_sqnr: np.ndarray | None = None):
+                 input_layer_sqnr: np.ndarray | None = None, input_model_sqnr: np.ndarray | None = None,
+                 estimate: str = "exact"):
+        if estimate not in ESTIMATES:
+            raise ValueError(f"estimate must be one of {ESTIMATES}, got {estimate!r}")
+        self.estimate = estimate  #: model scope "exact" or "gain" (estimated from noise gains)
         self.layers = list(layers)
         self._index = {n: i for i, n in enumerate(self.layers)}
         self.bits = tuple(int(b) for b in bits)
@@ -344,7 +349,8 @@ class SensitivityTable:
     def __repr__(self) -> str:
         extra = f", input bits {list(self._input_bits)}" if self.quantize == "separate" else ""
         return (f"SensitivityTable({len(self.layers)} layers x bits {list(self.bits)}{extra}, "
-                f"quantize={self.quantize!r}, scopes={list(self.scopes)}; {self.coverage})")
+                f"quantize={self.quantize!r}, scopes={list(self.scopes)}, estimate={self.estimate!r}; "
+                f"{self.coverage})")
 
     def _repr_html_(self) -> str:
         from .table_html import table_html

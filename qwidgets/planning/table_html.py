@@ -38,7 +38,8 @@ def table_html(table) -> str:
                         f'<td style="text-align:right">{table.macs(name):,}</td>' + "".join(cells) + "</tr>")
         what = (f"{table.quantize} quantized" if table.quantize != "separate"
                 else f"{source}s quantized on their own")
-        out.append(f"<div><b>{scope.capitalize()}-output SQNR (dB)</b>, {what}, "
+        how = " (estimated from noise gains)" if scope == "model" and table.estimate == "gain" else ""
+        out.append(f"<div><b>{scope.capitalize()}-output SQNR (dB)</b>{how}, {what}, "
                    f"one layer at a time ({table.n_samples} samples)<table>"
                    f"<tr><th>layer</th><th>type</th><th>input</th><th>weights</th><th>MACs / sample</th>"
                    f"{head}</tr>" + "".join(body) + "</table></div>")

@@ -1,0 +1,183 @@
+"""Re-running only the part of a model that follows one layer, from values captured once.
+
+The model is traced once with ``torch.fx`` (quantizable layers and the standard ``torch.nn``
+modules stay single calls). ``GraphReplay.record`` runs the graph on one batch and keeps the
+value of every node; ``GraphReplay.rerun`` then replaces a layer's output and recomputes only
+the nodes that depend on it, taking every other value (the skip connections from before the
+layer among them) from the record. That is the same arithmetic as a full forward with the
+layer's output replaced, at the cost of the part after the layer only.
+
+A model that does not trace (data-dependent control flow, unsupported calls), or whose traced
+graph does not reproduce its own output on the first batch, is not replayed: ``trace`` returns
+None and callers use full forward passes instead. The user's model is not changed: tracing
+reads its code and modules, the replay calls the same module objects under ``no_grad`` with
+every training flag set to eval and restored after.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import operator
+import threading
+from collections.abc import Callable, Mapping
+
+import torch
+from torch import fx, nn
+
+from .layers import is_quantizable
+
+# symbolic tracing patches torch.nn.Module.__call__ for the whole process while it runs: two
+# traces at once in one process break each other (and a forward in another thread meanwhile)
+_TRACE_LOCK = threading.Lock()
+
+
+class _Tracer(fx.Tracer):
+    """Keeps quantizable layers (also subclasses with their own forward) as single calls."""
+
+    def is_leaf_module(self, m: nn.Module, qualname: str) -> bool:
+        return is_quantizable(m) or super().is_leaf_module(m, qualname)
+
+
+@contextlib.contextmanager
+def evaluating(model: nn.Module):
+    """``no_grad`` and ``eval()`` for the block; every module's training flag restored after."""
+    flags = [(m, m.training) for m in model.modules()]
+    try:
+        model.eval()
+        with torch.no_grad():
+            yield
+    finally:
+        for m, flag in flags:
+            m.training = flag
+
+
+class GraphReplay:
+    """A traced model: record every value on a batch, then rerun what follows one layer."""
+
+    def __init__(self, model: nn.Module, graph: fx.Graph):
+        self.model = model
+        self.nodes = list(graph.nodes)
+        self._modules = dict(model.named_modules())
+        self.layer_nodes: dict[str, list[fx.Node]] = {}
+        for node in self.nodes:
+            if node.op == "call_module" and is_quantizable(self._modules[node.target]):
+                self.layer_nodes.setdefault(node.target, []).append(node)
+        self._after: dict[str, list[fx.Node]] = {}
+        self.values: dict[fx.Node, object] = {}
+
+    # ------------------------------------------------------------------ one batch
+    def record(self, data) -> object:
+        """Run the graph on ``data`` (tensor, tuple of args or dict of kwargs), keep every value.
+
+        Returns the output. Call inside :func:`evaluating`.
+        """
+        env: dict[fx.Node, object] = {}
+        placeholders = [n for n in self.nodes if n.op == "placeholder"]
+        args, kwargs = _as_call(data)
+        for i, node in enumerate(placeholders):
+            if i < len(args):
+                env[node] = args[i]
+            elif node.target in kwargs:
+                env[node] = kwargs[node.target]
+            elif node.args:
+                env[node] = node.args[0]
+            else:
+                raise ValueError(f"the data gives no value for the model's argument {node.target!r}")
+        out = None
+        for node in self.nodes:
+            if node.op == "placeholder":
+                continue
+            if node.op == "output":
+                out = fx.node.map_arg(node.args[0], env.__getitem__)
+                break
+            env[node] = self._run(node, env)
+        self.values = env
+        return out
+
+    def layer_inputs(self, name: str) -> list[torch.Tensor]:
+        """The first positional input of each call of layer ``name`` in the recorded pass."""
+        out = []
+        for node in self.layer_nodes.get(name, []):
+            x = fx.node.map_arg(node.args[0], self.values.__getitem__) if node.args else None
+            out.append(x)
+        return out
+
+    def rerun(self, name: str, replace: Callable[[torch.Tensor], torch.Tensor]) -> object:
+        """The output with each call of layer ``name`` computing ``replace(its input)`` instead.
+
+        Only the nodes that depend on the layer's outputs are recomputed; the rest come from
+        the last :meth:`record`. Call inside :func:`evaluating` (eval mode, no gradient).
+        """
+        env = self.values
+        local: dict[fx.Node, object] = {}
+
+        def get(n: fx.Node):
+            return local[n] if n in local else env[n]
+
+        for node in self._suffix(name):
+            if node.op == "output":
+                return fx.node.map_arg(node.args[0], get)
+            if node.op == "call_module" and node.target == name:
+                local[node] = replace(fx.node.map_arg(node.args[0], get))
+            else:
+                local[node] = self._run(node, get)
+        raise RuntimeError("the traced graph has no output node")
+
+    # ------------------------------------------------------------------ internals
+    def _suffix(self, name: str) -> list[fx.Node]:
+        """The layer's call nodes and every node downstream of them, in graph order."""
+        if name not in self._after:
+            start = set(self.layer_nodes[name])
+            dirty: set[fx.Node] = set()
+            order = []
+            for node in self.nodes:
+                if node in start or any(a in dirty for a in node.all_input_nodes):
+                    dirty.add(node)
+                    order.append(node)
+                elif node.op == "output":
+                    order.append(node)
+            self._after[name] = order
+        return self._after[name]
+
+    def _run(self, node: fx.Node, env):
+        get = env.__getitem__ if isinstance(env, Mapping) else env
+        args = fx.node.map_arg(node.args, get)
+        kwargs = fx.node.map_arg(node.kwargs, get)
+        if node.op == "call_module":
+            return self._modules[node.target](*args, **kwargs)
+        if node.op == "call_function":
+            return node.target(*args, **kwargs)
+        if node.op == "call_method":
+            obj, *rest = args
+            return getattr(obj, node.target)(*rest, **kwargs)
+        if node.op == "get_attr":
+            return operator.attrgetter(node.target)(self.model)
+        raise RuntimeError(f"unexpected graph node {node.op!r}")
+
+
+def trace(model: nn.Module) -> GraphReplay | None:
+    """A :class:`GraphReplay` of ``model``, or None when it does not trace.
+
+    Tracing patches module calls process-wide while it runs: do not run a forward of any
+    model in another thread of this process meanwhile (the scan traces before it starts a
+    thread pool's tasks).
+
+    >>> from torch import nn
+    >>> r = trace(nn.Sequential(nn.Linear(4, 3), nn.ReLU(), nn.Linear(3, 2)))
+    >>> sorted(r.layer_nodes)
+    ['0', '2']
+    """
+    try:
+        with _TRACE_LOCK:
+            graph = _Tracer().trace(model)
+    except Exception:  # noqa: BLE001 - any tracing failure means: use full forward passes
+        return None
+    return GraphReplay(model, graph)
+
+
+def _as_call(data) -> tuple[tuple, dict]:
+    if isinstance(data, Mapping):
+        return (), dict(data)
+    if isinstance(data, (tuple, list)):
+        return tuple(data), {}
+    return (data,), {}
