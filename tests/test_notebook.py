@@ -126,3 +126,42 @@ def test_scan_view_and_planner_outputs_carry_static_snapshots(executed):
     (planner,) = _widget_snapshots(executed, "BudgetPlanner")
     # the planner's metric was measured on the held-out snippets, not the calibration batch
     assert "on the held-out data" in planner["text/html"] and "planned" in planner["text/html"]
+
+
+def _exported_html(nb) -> str:
+    """The executed notebook as HTML, exported as ``HEADLESS=1 make demo`` does (.ci/demo,
+    with the configuration in .ci/demo_html.py)."""
+    from nbconvert import HTMLExporter
+    from traitlets.config.loader import PyFileConfigLoader
+
+    config = PyFileConfigLoader("demo_html.py", path=str(REPO / ".ci")).load_config()
+    body, _ = HTMLExporter(config=config).from_notebook_node(nb)
+    return body
+
+
+def _snapshots(page: str, widget: str) -> list:
+    """The static snapshots of one widget class in an exported page: the text from each
+    snapshot's outer ``<div class="qw-snapshot" data-widget=...>`` to the next output (the
+    exporter rewrites attribute quotes and order, so the tag is matched loosely)."""
+    parts = re.split(r"<div[^>]*\bqw-snapshot\b", page)[1:]
+    mine = [p for p in parts if re.match(rf"[^>]*data-widget=[\"']{widget}[\"']", p)]
+    return [p.split("jp-OutputArea-output", 1)[0] for p in mine]
+
+
+def test_exported_html_shows_the_explorer_plots(executed):
+    """Without a kernel the live widget cannot draw: the page shows its static snapshot."""
+    import base64
+    import io
+
+    from PIL import Image
+
+    page = _exported_html(executed)
+    shots = _snapshots(page, "GridExplorer")
+    assert len(shots) == 1, "the demo displays one explorer"
+    shot = shots[0]
+    assert re.search(r"class=[\"']qw-r-layer-output-sqnr", shot)  # the readout table is in it
+    assert "layer-output SQNR" in shot
+    encoded = re.search(r"data:image/png;base64,([A-Za-z0-9+/=]+)", shot).group(1)
+    with Image.open(io.BytesIO(base64.b64decode(encoded))) as im:  # decoded by Pillow
+        assert im.size[0] >= 400 and im.size[1] >= 300
+        assert len(im.convert("L").getcolors(1 << 16)) > 8  # a drawn plot, not a blank image

@@ -38,6 +38,7 @@ from ..viz.explorer_figure import ExplorerFigure, PlotData
 from .events import Coalescer, MessageLine, observe_value, torch_threads
 from .explorer_panel import METHOD_LABELS, SOURCE_LABELS, make_controls, readout_html
 from .image_canvas import PlotCanvas
+from .snapshot import SnapshotMixin
 
 __all__ = ["GridExplorer"]
 
@@ -58,7 +59,7 @@ CSS = {
 }
 
 
-class GridExplorer(widgets.VBox):
+class GridExplorer(SnapshotMixin, widgets.VBox):
     """Explore a uniform grid for a tensor or for one layer's weights or inputs, live.
 
     ``GridExplorer(tensor)`` explores a tensor; ``GridExplorer(layer, data)`` a Linear / Conv
@@ -504,6 +505,16 @@ class GridExplorer(widgets.VBox):
             self.canvas.save(path)
         finally:
             self.figure.set_caption("")
+
+    def snapshot(self) -> tuple[bytes, str]:
+        """The current plots (PNG) and readout (HTML): the static copy in the display bundle."""
+        if self._updater.pending:
+            self.refresh()
+        return self.canvas.last_png, self.readout.value
+
+    @property
+    def snapshot_title(self) -> str:
+        return f"Grid explorer: layer {self.layer_name!r}" if self.layer_name else "Grid explorer"
 
     def to_setting(self, sources=None) -> LayerSetting:
         """The grids as a :class:`LayerSetting` for the plan.
