@@ -446,6 +446,71 @@ def test_explorer_bits_slider_moves_plot_and_readout(session):
     assert changed_fraction(before_png, after_png) > 0.002
 
 
+def _explorer(page):
+    explorer = cell_with_source(page, "GridExplorer(").locator(".qw-explorer").first
+    explorer.wait_for(state="visible", timeout=60_000)
+    explorer.scroll_into_view_if_needed()
+    return explorer
+
+
+def test_explorer_layer_input_shows_no_failure(session):
+    page = session.page
+    explorer = _explorer(page)
+    explorer.locator(".qw-source button", has_text="layer input").first.click()
+    wait_until(lambda: ask_kernel(page, "print(explorer.source)").strip() == "input", UPDATE_S,
+               "the kernel to switch to the layer input")
+    page.wait_for_timeout(1500)  # the coalesced redraw and its messages
+    message = explorer.locator(".qw-message").first.inner_text()
+    assert "failed" not in message, message
+    assert ask_kernel(page, "print(explorer.message.is_error)").strip() == "False"
+    explorer.screenshot(path=str(OUT / "explorer-input.png"))
+    explorer.locator(".qw-source button", has_text="weights").first.click()
+    wait_until(lambda: ask_kernel(page, "print(explorer.source)").strip() == "weight", UPDATE_S,
+               "the kernel to switch back to the weights")
+
+
+def test_explorer_step_slider_drag_of_20_px_is_a_fine_move(session):
+    page = session.page
+    explorer = _explorer(page)
+    handle = explorer.locator(".qw-scale [role=slider]").first
+    before = float(ask_kernel(page, "print(float(explorer.state.shown_grid().scale))"))
+    box = handle.bounding_box()
+    x, y = box["x"] + box["width"] / 2, box["y"] + box["height"] / 2
+    page.mouse.move(x, y)
+    page.mouse.down()
+    for dx in range(2, 21, 2):  # a person's drag: several small moves
+        page.mouse.move(x + dx, y)
+    page.mouse.up()
+    after = {}
+
+    def moved():
+        after["step"] = float(ask_kernel(page, "print(float(explorer.state.shown_grid().scale))"))
+        return after["step"] != before
+
+    wait_until(moved, UPDATE_S, "the step to change after the drag", interval_s=0.5)
+    ratio = after["step"] / before
+    assert 1.0 < ratio < 2.0, (before, after["step"])
+    page.wait_for_timeout(1000)
+    shown = explorer.locator(".qw-scale .widget-readout").first.inner_text().strip()
+    readout = explorer.locator(".qw-readout .qw-r-step").first.inner_text().strip()
+    assert shown == readout, (shown, readout)  # control and readout: same value, same digits
+
+
+def test_explorer_learn_button_offers_to_stop(session):
+    page = session.page
+    explorer = _explorer(page)
+    button = explorer.locator("button.qw-learn").first
+    ask_kernel(page, "explorer.controls['steps'].value = 100000")  # long enough to stop it
+    button.click()
+    wait_until(lambda: "stop" in button.inner_text(), UPDATE_S, "the learn button to offer to stop")
+    assert explorer.locator(".qw-bits [role=slider]").count() >= 1
+    button.click()  # stop: the best grid so far is kept
+    wait_until(lambda: button.inner_text().strip() == "learn", UPDATE_S * 2,
+               "the learning run to stop")
+    message = explorer.locator(".qw-message").first.inner_text()
+    assert "failed" not in message and "stopped after" in message, message
+
+
 def test_planner_measure_button_shows_kernel_measurement(session):
     page = session.page
     planner = cell_with_source(page, "BudgetPlanner(").locator(".qw-planner").first

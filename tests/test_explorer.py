@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import asyncio
 import json
+import math
 
 import numpy as np
 import pytest
@@ -22,6 +23,7 @@ from qwidgets import (
     layer_error,
     quantize,
 )
+from qwidgets.widgets import events
 
 
 @pytest.fixture(scope="module")
@@ -49,16 +51,23 @@ def _assert_untouched(module: nn.Module, snap) -> None:
     assert all(p.grad is None for p in module.parameters())
 
 
+def _assert_stats_close(a, b):
+    """Two ErrorStats equal to float64 rounding (one from sorted prefix sums, one direct)."""
+    for name in ("mse", "rmse", "max_abs", "rel_err", "cosine"):
+        assert getattr(a, name) == pytest.approx(getattr(b, name), rel=1e-7, abs=1e-12), name
+    assert a.sqnr_db == pytest.approx(b.sqnr_db, abs=1e-6) and a.n == b.n
+
+
 def _check_readouts_match_core(ex, layer, x):
     """Readouts equal the core functions' results for the explorer's grid (the main contract)."""
     values = layer.weight.detach() if ex.source == "weight" else x
     g = ex.grid
-    assert ex.stats == error_stats(values, quantize(values, g))
+    _assert_stats_close(ex.stats, error_stats(values, quantize(values, g)))
     assert ex.usage == grid_usage(values, g)
     kw = {"weight_grid": g} if ex.source == "weight" else {"input_grid": g}
     assert ex.layer_stats == layer_error(layer, x, **kw)
     r = ex.readouts
-    assert r["tensor SQNR"] == f"{ex.stats.sqnr_db:.2f} dB"
+    assert r["tensor SQNR"] == f"{error_stats(values, quantize(values, g)).sqnr_db:.2f} dB"
     assert r["layer-output SQNR"] == f"{layer_error(layer, x, **kw).sqnr_db:.2f} dB"
     assert r["cosine similarity"] == f"{ex.layer_stats.cosine:.6f}"
     assert r["bins used"].startswith(f"{ex.usage.bins_used:,} of {ex.usage.n_bins:,}")
@@ -89,9 +98,28 @@ def test_controls_drive_the_grid_and_readouts_equal_core_results(subject):
     _assert_untouched(layer, snap)
 
 
-def test_changing_bits_keeps_the_clip_range(subject):
+@pytest.mark.parametrize("method", ["minmax", "percentile", "mse"])
+def test_changing_bits_refits_the_range_with_the_selected_method(subject, method):
+    layer, x = subject
+    ex = GridExplorer(layer, x, bits=2)
+    ex.controls["method"].value = method  # used from the next fit on
+    sqnr = {}
+    for b in (3, 5, 8, 4):
+        ex.controls["bits"].value = b
+        ref = fit_range(layer.weight.detach(), b, method, signed=True)  # the core's fit
+        assert (ex.grid.bits, ex.grid.scale, ex.grid.offset) == (b, ref.scale, ref.offset)
+        ex.refresh()
+        sqnr[b] = ex.layer_stats.sqnr_db
+        _check_readouts_match_core(ex, layer, x)
+    # about 6 dB a bit (6.02 b + c for a fine grid: textbook formula for uniform quantizers)
+    assert 6.02 * 3 - 4 <= sqnr[8] - sqnr[5] <= 6.02 * 3 + 4
+    assert sqnr[3] < sqnr[4] < sqnr[5] < sqnr[8]
+
+
+def test_keep_clip_range_keeps_the_clip_range(subject):
     layer, x = subject
     ex = GridExplorer(layer, x, bits=4, method="minmax")
+    ex.controls["keep_clip"].value = True
     lo, hi = ex.grid.clip_range
     ex.controls["bits"].value = 8
     lo8, hi8 = ex.grid.clip_range
@@ -136,27 +164,59 @@ def test_plot_artists_change_with_the_controls(subject):
     np.testing.assert_allclose(f.map_img.get_array().sum(axis=0), 1.0, atol=1e-5)
 
 
-def test_a_burst_of_200_changes_costs_a_few_renders_and_ends_in_the_last_value(subject):
+class FakeLoop:
+    """A stand-in for the kernel's event loop with a clock the test moves (deterministic)."""
+
+    def __init__(self):
+        self.now = 0.0
+        self.calls = []
+
+    def call_later(self, delay, fn, *args):
+        handle = FakeHandle(self.now + delay, fn, args)
+        self.calls.append(handle)
+        return handle
+
+    def advance(self, dt):
+        end = self.now + dt
+        while True:
+            due = sorted((h for h in self.calls if not h.cancelled and h.when <= end),
+                         key=lambda h: h.when)
+            if not due:
+                break
+            h = due[0]
+            self.calls.remove(h)
+            self.now = h.when
+            h.fn(*h.args)
+        self.now = end
+
+
+class FakeHandle:
+    def __init__(self, when, fn, args):
+        self.when, self.fn, self.args, self.cancelled = when, fn, args, False
+
+    def cancel(self):
+        self.cancelled = True
+
+
+def test_a_burst_of_200_changes_costs_a_few_renders_and_ends_in_the_last_value(subject, monkeypatch):
     layer, x = subject
     ex = GridExplorer(layer, x)
     scale0 = ex.grid.scale
     values = [scale0 * (1 + 0.002 * i) for i in range(200)]
 
-    async def drag():
-        # as a kernel sees a dragged slider: events arrive one by one, the loop runs between them
-        for i, v in enumerate(values):
-            ex.controls["scale"].value = v
-            if i % 10 == 0:
-                await asyncio.sleep(0.001)
-        while ex._updater.pending:
-            await asyncio.sleep(0.01)
-
+    loop = FakeLoop()
+    monkeypatch.setattr(events, "_running_loop", lambda: loop)
     renders = ex.canvas.renders
-    asyncio.run(drag())
+    # as a kernel sees a dragged slider: one event a millisecond for 200 ms, the loop running
+    # between them; the coalescer (30 ms delay) draws once per 30 ms window that saw a change
+    for v in values:
+        ex.controls["scale"].value = v
+        loop.advance(0.001)
+    loop.advance(1.0)
     spent = ex.canvas.renders - renders
-    assert 1 <= spent <= 10, spent
+    assert spent == math.ceil(0.2 / 0.03), spent
     assert ex.grid.scale == pytest.approx(values[-1])
-    assert ex.stats == error_stats(layer.weight, quantize(layer.weight.detach(), ex.grid))
+    _assert_stats_close(ex.stats, error_stats(layer.weight, quantize(layer.weight.detach(), ex.grid)))
     assert ex.readouts["tensor SQNR"] in ex.readout.value
 
 
@@ -226,7 +286,7 @@ def test_learn_from_a_poor_scale_improves_the_hard_layer_output_sqnr(subject):
     layer, x = subject
     snap = _snapshot(layer)
     ex = GridExplorer(layer, x, bits=4)
-    ex.controls["scale"].value = ex.grid.scale * 8  # deliberately poor
+    ex.controls["scale"].value = ex.grid.scale * 6  # deliberately poor
     ex.refresh()
     start = ex.layer_stats.sqnr_db
     result = ex.learn(steps=120)
@@ -237,6 +297,12 @@ def test_learn_from_a_poor_scale_improves_the_hard_layer_output_sqnr(subject):
     assert ex.controls["offset"].value == pytest.approx(ex.grid.offset)
     assert ex.controls["noise"].value == pytest.approx(result.noise)
     assert "learned 120 steps" in ex.message.text
+    ex.controls["bits"].value = 6  # another width: fitted; back at 4 bits, the learned grid
+    assert ex.grid is not result.grid
+    ex.controls["bits"].value = 4
+    assert ex.grid is result.grid
+    ex.reset()  # reset: the fitted grid of the current width
+    assert ex.grid.scale == fit_range(layer.weight.detach(), 4, "mse", signed=True).scale
     _assert_untouched(layer, snap)
 
 
@@ -350,8 +416,11 @@ def test_to_setting_reset_and_source_memory(subject):
     assert ex.to_setting("weight").input is None
     with pytest.raises(ValueError, match="sources must name"):
         ex.to_setting("bias")
+    ex.controls["bits"].value = 4
+    assert ex.grid.scale == w0.scale  # the fitted grid of that width again
+    ex.controls["scale"].value = w0.scale * 2
     ex.reset()
-    assert ex.grid is w0 and ex.controls["bits"].value == 4
+    assert ex.grid.scale == w0.scale and ex.controls["bits"].value == 4
 
 
 def test_save_figure_png_and_svg(subject, tmp_path):
@@ -451,6 +520,7 @@ def test_slider_messages_from_a_front_end_coalesce_in_a_real_kernel():
             kc.shell_channel.send(kc.session.msg("comm_msg", {"comm_id": model_id, "data": state}))
         out = run(
             "import json\n"
+            "pending = ex._updater.pending\n"
             "ex._updater.flush()\n"
             "print(json.dumps([ex.grid.bits, ex.canvas.renders, ex._updater.requests, ex.message.text]))"
         )

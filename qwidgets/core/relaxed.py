@@ -209,15 +209,27 @@ def _log_probs(x, grid: UniformGrid, noise, window) -> _Bins:
     return _Bins(logp, start, s, o, zero_point_param(x, grid), window, out_dtype)
 
 
+_FLOOR = {torch.float64: -700.0}  # below this, exp(b) would leave the normal range
+_FLOOR_DEFAULT = -80.0  # float32: exp(-80) = 1.8e-35, still a normal number
+
+
 def _softplus(b: torch.Tensor) -> torch.Tensor:
     """``log(1 + exp(b))``; its linear cut-off sits where the dropped term is below the dtype's
-    resolution (softplus is several times faster than logsigmoid here)."""
+    resolution (softplus is several times faster than logsigmoid here). Arguments far below
+    zero (values clipped hundreds of steps past the grid) are clamped where ``exp(b)`` would
+    turn subnormal: a subnormal exp costs several times a normal one, and every result it
+    feeds is already exact (a term of 1e-35 next to terms of order one, or inside an ``exp``
+    that rounds to 1)."""
+    b = b.clamp_min(_FLOOR.get(b.dtype, _FLOOR_DEFAULT))
     return F.softplus(b, threshold=20.0 if b.dtype != torch.float64 else 40.0)
 
 
 def _normalised(logp: torch.Tensor) -> torch.Tensor:
     """Probabilities from unnormalised log probabilities over dim 0 (the window)."""
-    p = (logp - logp.detach().amax(dim=0, keepdim=True)).exp()  # the shift cancels exactly
+    shifted = logp - logp.detach().amax(dim=0, keepdim=True)  # the shift cancels exactly
+    # far bins of far-clipped values: exp would go subnormal (slow); 1e-35 next to the
+    # largest term, 1, is below float32's resolution, so the normalised result is unchanged
+    p = shifted.clamp_min(_FLOOR.get(shifted.dtype, _FLOOR_DEFAULT)).exp()
     return p / p.sum(dim=0, keepdim=True)
 
 

@@ -107,7 +107,8 @@ def learn_grid(
     learn_offset : also learn the offset (False keeps it, e.g. to keep an integer zero point)
     seed : seeds the relaxed samples, so a run is repeatable
     callback : called after every step as ``callback(step, grid, noise, hard_stats)`` (for a
-        widget to follow the learning); its return value is ignored
+        widget to follow the learning); when it returns True, learning stops after that step
+        and the best grid so far is returned
 
     >>> import torch
     >>> torch.manual_seed(0) and None
@@ -182,11 +183,15 @@ def learn_grid(
             sqnr.append(stats.sqnr_db)
             if stats.sqnr_db > best[0].sqnr_db:
                 best = (stats, current, float(torch.exp(log_noise.detach()).clamp(min=_MIN_NOISE)), step)
+            stop = False
             if callback is not None:
-                callback(step, current, float(torch.exp(log_noise.detach()).clamp(min=_MIN_NOISE)), stats)
+                stop = callback(step, current, float(torch.exp(log_noise.detach()).clamp(min=_MIN_NOISE)),
+                                stats) is True
             if bar is not None:
                 bar.update(1)
                 bar.set_postfix(hard_sqnr=f"{stats.sqnr_db:.2f} dB", best=f"{best[0].sqnr_db:.2f} dB")
+            if stop:
+                break
     finally:
         if bar is not None:
             bar.close()

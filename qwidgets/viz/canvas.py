@@ -13,6 +13,8 @@
     ``.save(path)``  a full-quality PNG or SVG, by the file's extension;
     ``.renders`` / ``.full_draws`` / ``.partial_draws`` / ``.kept_draws``  counters (tests,
                  benchmarks); the last counts backgrounds reused for limits seen before.
+Every text is drawn literally (``parse_math`` off): layer names and numbers may hold ``$``,
+``_`` or ``^``, which math text would try to parse (and fail on).
 ``encode_png(rgba, compress_level=1) -> bytes``
     Low compression: at notebook sizes it encodes several times faster than the default level
     for a few kilobytes more.
@@ -36,15 +38,18 @@ import struct
 import zlib
 from collections import OrderedDict
 
+import matplotlib
 import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 from matplotlib.patches import Rectangle
+from matplotlib.text import Text
 from matplotlib.transforms import Bbox, IdentityTransform
 
 __all__ = ["BlitCanvas", "encode_png"]
 
 
+_LITERAL = {"text.parse_math": False}
 BACKGROUNDS_KEPT = 8  # drawn backgrounds kept by axes limits (about 1.7 MB each at 720x600)
 
 
@@ -162,8 +167,16 @@ class BlitCanvas:
                 a.draw(renderer)
         return np.asarray(self._canvas.buffer_rgba())
 
+    def literal_text(self) -> None:
+        """Draw every text of the figure as it is written (no math text)."""
+        for t in self.figure.findobj(Text):
+            if t.get_parse_math():
+                t.set_parse_math(False)
+
     def _full_draw(self) -> None:
-        self._canvas.draw()  # animated artists are skipped here
+        self.literal_text()
+        with matplotlib.rc_context(_LITERAL):  # tick labels made during the draw, too
+            self._canvas.draw()  # animated artists are skipped here
         renderer = self._canvas.get_renderer()
         # where each axes' labels are now: a later partial repaint must blank these pixels
         self._boxes = {ax: ax.get_tightbbox(renderer) for ax in self.figure.axes}
@@ -185,6 +198,11 @@ class BlitCanvas:
 
     def _redraw_axes(self, changed: list) -> bool:
         """Repaint a few axes into the background; False when that would be the whole figure."""
+        with matplotlib.rc_context(_LITERAL):
+            self.literal_text()
+            return self._redraw_axes_literal(changed)
+
+    def _redraw_axes_literal(self, changed: list) -> bool:
         fig = self.figure
         renderer = self._canvas.get_renderer()
         old = [self._box(ax, renderer) for ax in changed]  # where their old labels were drawn
@@ -232,8 +250,10 @@ class BlitCanvas:
             raise ValueError(f"path must end in .png or .svg, got {os.fspath(path)!r}")
         for a in self._animated:
             a.set_animated(False)  # a saved figure must contain everything
+        self.literal_text()
         try:
-            self.figure.savefig(path, dpi=self.dpi, facecolor="white")
+            with matplotlib.rc_context(_LITERAL):
+                self.figure.savefig(path, dpi=self.dpi, facecolor="white")
         finally:
             for a in self._animated:
                 a.set_animated(True)

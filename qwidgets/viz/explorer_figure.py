@@ -15,7 +15,7 @@ import matplotlib
 import numpy as np
 from matplotlib.gridspec import GridSpec
 from matplotlib.patches import Rectangle
-from matplotlib.ticker import MaxNLocator, NullFormatter, NullLocator
+from matplotlib.ticker import FuncFormatter, NullFormatter, NullLocator
 
 from .canvas import BlitCanvas
 
@@ -31,6 +31,7 @@ _RC = {
     # a fixed title position: placing titles above tick labels measures every label, each draw
     "axes.titley": 1.0,
     "axes.titlepad": 5.0,
+    "text.parse_math": False,  # every label literal: layer names may hold $, _ or ^
 }
 GRID_COLOR = "#333333"  # grid points and clip range (dark, so they stand apart from the clipped mass)
 HARD_COLOR = "#1f4e9c"
@@ -38,6 +39,18 @@ SOFT_COLOR = "#ff7f0e"
 SAMPLE_COLOR = "#2ca02c"
 CLIP_FILL = "#d62728"
 MAX_TICKS = 65  # grid points drawn as ticks; beyond this, every n-th is drawn
+
+
+def _count_label(v: float, _pos=None) -> str:
+    """Tick labels of the log count axis as plain text: 1, 10, 100, 1k, 10k, 100k, 1M, ...
+
+    >>> [_count_label(v) for v in (1, 10, 1000, 2e6, 0.5)]
+    ['1', '10', '1k', '2M', '0.5']
+    """
+    for unit, name in ((1e9, "G"), (1e6, "M"), (1e3, "k")):
+        if v >= unit:
+            return f"{v / unit:g}{name}"
+    return f"{v:g}"
 
 
 @dataclass
@@ -88,11 +101,14 @@ class ExplorerFigure:
             self._build_curve()
             self._build_out()
         self._view = None
+        self.ticks_every = 1
+        self.map_codes = None  # (lowest, highest) code the bin map shows
 
     # ------------------------------------------------------------------ construction
     def _build_hist(self):
         ax = self.ax_hist
         ax.set_yscale("log")
+        ax.yaxis.set_major_formatter(FuncFormatter(_count_label))  # plain text, no math text
         ax.yaxis.set_minor_formatter(NullFormatter())
         self.hist_patch = ax.stairs([1.0], [0.0, 1.0], fill=True, color="#9db4d6", baseline=0.7,
                                     label="values")
@@ -114,21 +130,29 @@ class ExplorerFigure:
                             self.clip_lines)
 
     def _hist_legend(self):
+        with matplotlib.rc_context(_RC):
+            self._legend()
+
+    def _legend(self):
         self.ax_hist.legend(handles=[self.hist_patch, self.hist_clipped, self.grid_ticks],
                             loc="upper right", frameon=False, handlelength=1.2, fontsize=7.5)
 
     def _build_map(self):
         ax = self.ax_map
+        # Fixed axes limits (0..1 both ways): the bins shown are stretched over the axes, so a
+        # new bit width moves no tick and repaints no background; the readout names the codes.
         self.map_img = ax.imshow(np.zeros((2, 2)), origin="lower", aspect="auto", cmap="viridis",
                                  vmin=0.0, vmax=1.0, interpolation="nearest", extent=(0, 1, 0, 1))
         self.probe_line = ax.axvline(0.0, color="white", lw=1.2, ls="--")
         ax.set_title("Bin probabilities under noise")
-        # integer codes, few labels: this axes is repainted when the bit width changes
-        ax.yaxis.set_major_locator(MaxNLocator(6, integer=True))
-        ax.xaxis.set_major_locator(MaxNLocator(4, integer=True))
-        ax.set_xlabel("input position in grid steps, (x - offset) / step")
-        ax.set_ylabel("grid bin (integer code)")
+        ax.set_xlim(0, 1)
+        ax.set_ylim(0, 1)
+        ax.xaxis.set_major_locator(NullLocator())
+        ax.yaxis.set_major_locator(NullLocator())
+        ax.set_xlabel("input position across the grid (dashed: probe)")
+        ax.set_ylabel("grid bin, lowest to highest")
         bars = self.ax_bars
+        bars.set_ylim(0, 1)
         self.bars = bars.stairs([0.0], [0.0, 1.0], orientation="horizontal", fill=True,
                                 color="#3b75af")
         bars.set_xlim(0, 1.05)
@@ -208,6 +232,10 @@ class ExplorerFigure:
     def view(self):
         return self._view
 
+    def reset_view(self) -> None:
+        """Forget the value range shown: the next :meth:`set_view` applies whatever it gets."""
+        self._view = None
+
     # ------------------------------------------------------------------ updates
     def update(self, d: PlotData) -> None:
         """Move every animated artist to the state in ``d``."""
@@ -233,22 +261,16 @@ class ExplorerFigure:
         self.clip_high.set_x(hi)
         self.clip_high.set_width(max(0.0, v1 - hi))
         self.clip_lines.set_data([lo, lo, np.nan, hi, hi], [0, 1, np.nan, 0, 1])
-        label = "grid points" if every == 1 else f"grid points (1 in {every})"
-        if self.grid_ticks.get_label() != label:
-            self.grid_ticks.set_label(label)
-            self._hist_legend()
-            self.canvas.invalidate(self.ax_hist)
+        self.ticks_every = every  # 1 in ``every`` grid points drawn (the readout says so)
 
     def _update_map(self, d: PlotData):
-        x0, x1, y0, y1 = d.map_extent
+        x0, x1, y0, y1 = d.map_extent  # in grid steps and codes; drawn stretched over 0..1
+        self.map_codes = (int(round(y0 + 0.5)), int(round(y1 - 0.5)))
         self.map_img.set_data(d.map_image)
-        self.map_img.set_extent(d.map_extent)
-        self.ax_map.set_xlim(x0, x1)
-        self.ax_map.set_ylim(y0, y1)
-        self.ax_bars.set_ylim(y0, y1)
-        self.probe_line.set_xdata([d.probe_pos, d.probe_pos])
+        px = (d.probe_pos - x0) / (x1 - x0)
+        self.probe_line.set_xdata([px, px])
         edges = np.append(d.probe_codes - 0.5, d.probe_codes[-1] + 0.5)
-        self.bars.set_data(d.probe_probs, edges)
+        self.bars.set_data(d.probe_probs, (edges - y0) / (y1 - y0))
 
     def _update_curve(self, d: PlotData):
         self.hard_line.set_data(d.curve_x, d.curve_hard)

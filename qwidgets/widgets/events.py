@@ -196,19 +196,31 @@ def observe_value(widget, handler: Callable[[dict], object]) -> None:
     learning run; a planner has been measured). Taken as a person's move, that echo would
     replace what the kernel computed with a rounded or stale value. A value set exactly on the
     step grid draws no echo, so an echo is recognised as the step rounding of a recent
-    *off-grid* value the kernel set: it is ignored (and if it was stale, the control is put back
-    to the kernel's latest value). Anything else from the front end is a person's move and
-    reaches ``handler``; values set in the kernel (by the widget or a script) always do.
+    *off-grid* value: it is ignored (and if it was stale, the control is put back to the
+    latest value). Any other value reaches ``handler``; a person's move (always on the step
+    grid) also forgets the earlier off-grid values, which can no longer echo.
+
+    >>> import ipywidgets as widgets
+    >>> s = widgets.FloatSlider(min=0, max=1, step=0.1)
+    >>> seen = []
+    >>> observe_value(s, lambda c: seen.append(c["new"]))
+    >>> s.value = 0.123   # set by the kernel, off the step grid
+    >>> s.value = 0.1     # the front end's rounded echo of it: ignored, 0.123 shown again
+    >>> s.value = 0.7     # a person's move
+    >>> seen, s.value
+    ([0.123, 0.7], 0.7)
     """
-    echoes: list = []  # the front end's roundings of recent off-grid values the kernel set
-    latest = [widget.value]  # the kernel's latest value
+    echoes: list = []  # step roundings of recent off-grid values
+    latest = [widget.value]  # the latest value taken
     restoring = [False]
 
-    def remember(value) -> None:
+    def remember(value) -> bool:
         snapped = _on_step_grid(widget, value)
         if snapped is not None and not _same_position(widget, value, snapped):
             echoes.append(snapped)
             del echoes[:-_ECHO_HISTORY]
+            return True
+        return False
 
     remember(widget.value)  # the value it was made with echoes too, when first drawn
 
@@ -216,21 +228,21 @@ def observe_value(widget, handler: Callable[[dict], object]) -> None:
         new = change["new"]
         if restoring[0]:
             return None
-        if "value" not in getattr(widget, "_property_lock", {}):  # set in the kernel
-            latest[0] = new
-            remember(new)
-            return handler(change)
-        # (no time limit: while a notebook runs all its cells, the kernel reads the front end's
-        # messages only after the last cell, long after it set the values they echo)
         if any(_same_position(widget, new, v) for v in echoes):
             if not _same_position(widget, new, _on_step_grid(widget, latest[0])):
-                restoring[0] = True  # a stale echo: show the kernel's current value again
+                restoring[0] = True  # a stale echo: show the latest value again
                 try:
                     widget.value = latest[0]
                 finally:
                     restoring[0] = False
             return None
-        echoes.clear()  # a person moved it: earlier kernel values can no longer echo
+        # (no time limit: while a notebook runs all its cells, the kernel reads the front end's
+        # messages only after the last cell, long after it set the values they echo)
+        if getattr(widget, "step", None) and _same_position(widget, new, latest[0]):
+            latest[0] = new  # the same slider position (an echo of an on-grid value): no move
+            return None
+        if not remember(new):
+            echoes.clear()  # on the step grid: a person's move; old values can no longer echo
         latest[0] = new
         return handler(change)
 
@@ -255,7 +267,10 @@ def _on_step_grid(widget, v):
 def _same_position(widget, a, b) -> bool:
     if a is None or b is None:
         return False
-    step = widget.step
+    step = getattr(widget, "step", None)
+    if not step or isinstance(a, bool) or not isinstance(a, (int, float)) \
+            or not isinstance(b, (int, float)):
+        return a == b
     base = getattr(widget, "base", None)
     if base is not None:
         if a <= 0 or b <= 0:

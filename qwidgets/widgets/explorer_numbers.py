@@ -1,0 +1,188 @@
+"""The grid explorer's numbers for one state: readout figures and plot data, all from the core.
+
+:class:`ExplorerNumbers` answers "what does the current state measure?" with the core and
+model functions and caches what does not depend on the control that moved:
+
+- tensor error and grid usage from :class:`qwidgets.core.sorted_values.SortedValues` (one
+  sorted copy per source and layout, about a millisecond a grid instead of a pass over every
+  value);
+- the layer-output error from :func:`qwidgets.model.layers.layer_output` against the float
+  output computed once; while a control moves, a large layer may use a sample of the input
+  rows (``rows``), with the sampling error of the SQNR estimated from the per-row sums;
+- the bin-probability map, which in grid steps depends only on the bit width, signedness and
+  noise.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import torch
+
+from ..core.grid import UniformGrid
+from ..core.metrics import ErrorStats, error_stats
+from ..core.relaxed import bin_probabilities, expected_quantize, relaxed_quantize
+from ..core.rounding import quantize
+from ..core.sorted_values import SortedValues
+from ..model.layers import layer_output
+from ..viz.explorer_figure import PlotData
+from .explorer_state import ExplorerState
+from .explorer_subject import ExplorerSubject
+
+__all__ = ["ExplorerNumbers", "SampledError"]
+
+FULL_MAP_LEVELS = 64  # up to this many levels the map shows every bin; beyond, 33 around the probe
+ZOOM_BINS = 33
+CURVE_POINTS = 1200
+SAMPLE_POINTS = 300
+ERROR_SAMPLE = 20000
+
+
+class SampledError:
+    """A layer-output SQNR measured on a sample of rows, with its standard error in dB."""
+
+    def __init__(self, stats: ErrorStats, rows: int, total: int, sqnr_se_db: float):
+        self.stats, self.rows, self.total, self.sqnr_se_db = stats, rows, total, sqnr_se_db
+
+
+class ExplorerNumbers:
+    """Numbers and plot data for an :class:`ExplorerState` of an :class:`ExplorerSubject`."""
+
+    def __init__(self, subject: ExplorerSubject):
+        self.subject = subject
+        self._sorted: dict = {}
+        self._caches: dict = {}
+
+    def _cached(self, name: str, key, compute):
+        hit = self._caches.get(name)
+        if hit is not None and hit[0] == key:
+            return hit[1]
+        value = compute()
+        self._caches[name] = (key, value)
+        return value
+
+    # ------------------------------------------------------------------ readout figures
+    def tensor(self, st: ExplorerState):
+        """(ErrorStats, GridUsage) of the current source's tensor on the current grid."""
+        src, g = st.source, st.grid
+
+        def compute():
+            key = (src, g.axis)
+            if key not in self._sorted:
+                self._sorted[key] = SortedValues(self.subject.values[src], axis=g.axis)
+            return self._sorted[key].measure(g)
+
+        return self._cached("tensor", (src, st.version[src], id(g)), compute)
+
+    def layer(self, st: ExplorerState, rows: int | None = None):
+        """(ErrorStats or SampledError, output sample for the scatter) with the current grid.
+
+        ``rows``: measure on that many evenly spread input rows (None: all of them)."""
+        sub, src, g = self.subject, st.source, st.grid
+        n = sub.inputs.shape[0]
+        sampled = rows is not None and rows < n
+
+        def compute():
+            kw = {"weight_grid": g} if src == "weight" else {"input_grid": g}
+            if not sampled:
+                out = layer_output(sub.layer, sub.inputs, **kw)
+                sample = out.reshape(-1)[sub.scatter_idx].double().numpy()
+                return error_stats(sub.reference, out), sample
+            idx = torch.linspace(0, n - 1, rows).round().long().unique()
+            out = layer_output(sub.layer, sub.inputs[idx], **kw)
+            ref = sub.reference[idx]
+            stats = error_stats(ref, out)
+            per = out.shape[0]
+            e = (out - ref).double().reshape(per, -1).square().sum(1)
+            s = ref.double().reshape(per, -1).square().sum(1)
+            se = _ratio_se_db(e, s, per, n)
+            flat = out.reshape(-1)
+            pick = torch.randperm(flat.numel(), generator=torch.Generator().manual_seed(0))
+            pick = pick[: min(len(sub.scatter_x), flat.numel())]
+            xs = ref.reshape(-1)[pick].double().numpy()
+            return SampledError(stats, idx.numel(), n, se), (xs, flat[pick].double().numpy())
+
+        return self._cached("layer", (src, st.version[src], id(g), rows if sampled else None), compute)
+
+    # ------------------------------------------------------------------ plot data
+    def plot_data(self, st: ExplorerState, view: tuple, error_sample: torch.Tensor,
+                  layer_sample=None) -> PlotData:
+        g = st.shown_grid()
+        step, offset = float(g.scale), float(g.offset)
+        noise_w = st.noise_steps * step
+        window = _window(g)
+        probe = st.probe[st.source]
+        probe_pos = (probe - offset) / step
+        image, extent = self._map(g, probe_pos, st.noise_steps)
+        pp, pk = bin_probabilities(torch.tensor([probe]), g, noise_w, window=window)
+        pk = pk.reshape(-1).numpy()
+        pp = pp.reshape(-1).double().numpy()
+        k0, k1 = extent[2] + 0.5, extent[3] - 0.5
+        keep = (pk >= k0) & (pk <= k1)
+        codes = np.arange(int(k0), int(k1) + 1)
+        probs = np.zeros(codes.size)
+        probs[(pk[keep] - int(k0)).astype(int)] = pp[keep]
+        v0, v1 = view
+        xs = torch.linspace(v0, v1, CURVE_POINTS)
+        hard = quantize(xs, g).numpy()
+        expected = expected_quantize(xs, g, noise_w, window=window).numpy()
+        gen = torch.Generator().manual_seed(2)
+        xs_few = torch.linspace(v0, v1, SAMPLE_POINTS)
+        samples = relaxed_quantize(xs_few.expand(3, -1), g, noise_w, st.temperature,
+                                   window=window, generator=gen).numpy()
+        if self.subject.has_layer:
+            out_x, out_y = layer_sample
+        else:
+            ev = error_sample
+            err = ((quantize(ev, g) - ev) / step).double()
+            edges = np.linspace(-2.5, 2.5, 51)
+            counts = torch.histc(err.clamp(-2.5, 2.5), bins=50, min=-2.5, max=2.5).numpy()
+            out_x, out_y = edges, counts / max(err.numel(), 1)
+        lo, hi = g.clip_range
+        return PlotData(
+            levels=g.levels.double().numpy(), clip=(lo, hi), step=step, map_image=image,
+            map_extent=extent, probe_pos=probe_pos, probe_codes=codes, probe_probs=probs,
+            curve_x=xs.numpy(), curve_hard=hard, curve_expected=expected,
+            curve_samples=[(xs_few.numpy(), y) for y in samples], out_x=out_x, out_y=out_y,
+        )
+
+    def _map(self, g: UniformGrid, probe_pos: float, noise_steps: float):
+        """Bin probabilities for positions across the grid (in steps): depends only on the bit
+        width, signedness and noise (and, for big grids, the zoom), so it is cached on those."""
+        if g.n_levels <= FULL_MAP_LEVELS:
+            k0, k1 = g.qmin, g.qmax
+        else:
+            centre = int(round(min(max(probe_pos, g.qmin), g.qmax)))
+            k0 = min(max(centre - ZOOM_BINS // 2, g.qmin), g.qmax - ZOOM_BINS + 1)
+            k1 = k0 + ZOOM_BINS - 1
+        key = (g.bits, g.signed, noise_steps, k0)
+
+        def compute():
+            positions = torch.linspace(k0 - 1.5, k1 + 1.5, 360, dtype=torch.float64)
+            unit = UniformGrid(g.bits, 1.0, 0.0, signed=g.signed)  # the map in grid steps
+            probs, codes = bin_probabilities(positions, unit, noise_steps, window=_window(g))
+            image = np.zeros((k1 - k0 + 1, positions.numel()))
+            codes = codes.expand(probs.shape).numpy() - k0
+            probs = probs.numpy()
+            r, c = np.nonzero((codes >= 0) & (codes <= k1 - k0))
+            image[codes[r, c], r] = probs[r, c]
+            return image, (k0 - 1.5, k1 + 1.5, k0 - 0.5, k1 + 0.5)
+
+        return self._cached("map", key, compute)
+
+
+def _window(grid: UniformGrid):
+    return None if grid.n_levels <= FULL_MAP_LEVELS else ZOOM_BINS
+
+
+def _ratio_se_db(e: torch.Tensor, s: torch.Tensor, n: int, total: int) -> float:
+    """Standard error, in dB, of 10 log10(sum s / sum e) estimated from ``n`` of ``total`` rows
+    (ratio estimator, linearised; finite-population corrected)."""
+    se_sum, s_sum = float(e.sum()), float(s.sum())
+    if n < 2 or se_sum <= 0 or s_sum <= 0:
+        return 0.0
+    r = se_sum / s_sum
+    resid = e - r * s
+    var = float(resid.var()) / (n * float(s.mean()) ** 2) * max(0.0, 1.0 - n / total)
+    return 10.0 / math.log(10.0) * math.sqrt(var) / r

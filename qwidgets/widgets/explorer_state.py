@@ -1,0 +1,207 @@
+"""The grid explorer's state in one place: grids per source, fitted and learned grids, settings.
+
+:class:`ExplorerState` is plain Python (no widgets, no drawing). The explorer's controls edit
+it through its methods, and the figure and readouts are drawn from it. Grids come from the
+core (:func:`qwidgets.fit_range`); the state only decides *which* grid is current:
+
+- a new bit width refits the range with the selected method (unless ``keep_clip`` is set, in
+  which case the clip range is kept and cut into the new number of steps), or brings back
+  the grid learned earlier for that (source, bit width);
+- ``reset()`` returns to the fitted grid of the current bit width;
+- every change bumps ``version[source]``, the key the numbers are cached on.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import torch
+
+from ..core.checks import check_bits, check_positive
+from ..core.grid import UniformGrid
+from ..core.ranges import METHODS, fit_range
+from ..model.layers import WEIGHT_AXIS
+
+__all__ = ["ExplorerState"]
+
+
+@dataclass
+class ExplorerState:
+    """What the explorer shows: one grid per source and the settings around it.
+
+    >>> import torch
+    >>> _ = torch.manual_seed(0)
+    >>> st = ExplorerState({"values": torch.randn(500)}, "values", method="minmax")
+    >>> st.start(4, per_channel=False)
+    >>> g4 = st.grid
+    >>> st.set_bits(6); st.grid.bits, st.grid.clip_range == g4.clip_range
+    (6, False)
+    >>> st.set_bits(4); st.grid is g4  # back to the fitted 4-bit grid
+    True
+    """
+
+    values: dict  # source -> float32 tensor
+    source: str
+    method: str = "mse"
+    noise_steps: float = 0.3
+    temperature: float = 0.5
+    keep_clip: bool = False
+    channel: int = 0
+    grids: dict = field(default_factory=dict)  # source -> current grid
+    learned: dict = field(default_factory=dict)  # (source, bits) -> learned grid
+    probe: dict = field(default_factory=dict)  # source -> probe value
+    version: dict = field(default_factory=dict)  # source -> edit counter
+    _fitted: dict = field(default_factory=dict)  # (source, bits, method, signed, axis) -> grid
+
+    @property
+    def sources(self) -> tuple:
+        return tuple(self.values)
+
+    @property
+    def grid(self) -> UniformGrid:
+        return self.grids[self.source]
+
+    # ------------------------------------------------------------------ fitting
+    def can_per_channel(self, source: str) -> bool:
+        # Per-channel grids are offered for weights (one per output channel, the layout integer
+        # kernels use) and for a tensor's first axis; activations get one grid (common practice).
+        v = self.values[source]
+        return source != "input" and v.dim() >= 2 and v.shape[0] > 1
+
+    def fitted(self, source: str, bits: int, signed: bool | None, per_channel: bool,
+               method: str | None = None) -> UniformGrid:
+        """The range fitted by ``method`` (default: the selected one), cached."""
+        method = self.method if method is None else method
+        axis = WEIGHT_AXIS if per_channel else None
+        key = (source, bits, method, signed, axis)
+        if key not in self._fitted:
+            g = fit_range(self.values[source], bits, method, signed=signed, axis=axis)
+            self._fitted[key] = self._fitted[(source, bits, method, g.signed, axis)] = g
+        return self._fitted[key]
+
+    def start(self, bits: int, per_channel: bool) -> None:
+        """Fit every source's starting grid."""
+        for s in self.sources:
+            pc = per_channel and self.can_per_channel(s)
+            self.grids[s] = self.fitted(s, bits, None, pc)
+            self.version.setdefault(s, 0)
+            v = self.values[s]
+            self.probe.setdefault(s, float(v.mean() + v.std()) if v.numel() > 1 else float(v.reshape(-1)[0]))
+
+    def fitted_now(self) -> UniformGrid:
+        """The fitted grid for the current source, bits, signedness and per-channel choice."""
+        g = self.grid
+        return self.fitted(self.source, g.bits, g.signed, g.axis is not None)
+
+    # ------------------------------------------------------------------ edits
+    def set_grid(self, grid: UniformGrid, source: str | None = None) -> None:
+        source = source or self.source
+        if not isinstance(grid, UniformGrid):
+            raise TypeError(f"grid must be a UniformGrid, got {type(grid).__name__}")
+        self.grids[source] = grid
+        self.version[source] = self.version.get(source, 0) + 1
+
+    def set_bits(self, bits: int) -> None:
+        bits = check_bits(int(bits))
+        g = self.grid
+        if bits == g.bits:
+            return
+        learned = self.learned.get((self.source, bits))
+        if learned is not None and learned.signed == g.signed and (learned.axis is None) == (g.axis is None):
+            self.set_grid(learned)
+        elif self.keep_clip:  # the same clip range cut into more (or fewer) steps
+            new = g.replace(bits=bits)
+            ratio = max(g.qmax - g.qmin, 1) / max(new.qmax - new.qmin, 1)
+            scale = g.scale * ratio if isinstance(g.scale, torch.Tensor) else float(g.scale) * ratio
+            self.set_grid(g.replace(bits=bits, scale=scale))
+        else:
+            self.set_grid(self.fitted(self.source, bits, g.signed, g.axis is not None))
+
+    def set_channel_param(self, name: str, value: float) -> None:
+        """Set the scale or offset (of the channel shown, for a per-channel grid)."""
+        if name == "scale":
+            value = float(check_positive(float(value), "scale"))
+        g = self.grid
+        if g.axis is None:
+            self.set_grid(g.replace(**{name: float(value)}))
+        else:
+            t = (g.scale_tensor() if name == "scale" else g.offset_tensor()).detach().clone()
+            t[self.channel] = float(value)
+            self.set_grid(g.replace(**{name: t}))
+
+    def set_signed(self, signed: bool) -> None:
+        g = self.grid
+        if bool(signed) != g.signed:
+            self.set_grid(self.fitted(self.source, g.bits, bool(signed), g.axis is not None))
+
+    def set_per_channel(self, per_channel: bool) -> None:
+        if per_channel and not self.can_per_channel(self.source):
+            raise ValueError("per-channel grids are offered for weights, not for "
+                             f"{'the layer input' if self.source == 'input' else self.source}")
+        g = self.grid
+        self.set_grid(self.fitted(self.source, g.bits, g.signed, bool(per_channel)))
+        self.channel = 0
+
+    def set_method(self, method: str) -> None:
+        if method not in METHODS:
+            raise ValueError(f"method must be one of {', '.join(map(repr, METHODS))}; got {method!r}")
+        self.method = method
+
+    def set_source(self, source: str) -> None:
+        if source not in self.values:
+            raise ValueError(f"source must be one of {self.sources}, got {source!r}")
+        self.source = source
+        self.channel = 0
+
+    def set_channel(self, channel: int) -> None:
+        n = self.n_channels()
+        if not 0 <= int(channel) < n:
+            raise ValueError(f"channel must be in 0..{n - 1}, got {channel}")
+        self.channel = int(channel)
+
+    def set_noise_steps(self, value: float) -> None:
+        self.noise_steps = float(check_positive(float(value), "noise"))
+
+    def set_temperature(self, value: float) -> None:
+        self.temperature = float(check_positive(float(value), "temperature"))
+
+    def fit(self, method: str | None = None) -> UniformGrid:
+        if method is not None:
+            self.set_method(method)
+        self.set_grid(self.fitted_now())
+        return self.grid
+
+    def remember_learned(self, grid: UniformGrid, source: str) -> None:
+        self.learned[(source, grid.bits)] = grid
+        self.set_grid(grid, source)
+
+    def reset(self) -> None:
+        """Back to the fitted grid of the current bit width (the learned one is forgotten)."""
+        g = self.grid
+        self.learned.pop((self.source, g.bits), None)
+        self.set_grid(self.fitted_now())
+
+    # ------------------------------------------------------------------ views
+    def n_channels(self) -> int:
+        g = self.grid
+        return 1 if g.axis is None else int(self.values[self.source].shape[g.axis])
+
+    def shown_grid(self) -> UniformGrid:
+        """The grid of the channel shown (the grid itself when it is per-tensor)."""
+        g = self.grid
+        if g.axis is None:
+            return g
+        return UniformGrid(g.bits, float(g.scale_tensor()[self.channel]),
+                           float(g.offset_tensor()[self.channel]) + 0.0, signed=g.signed)
+
+    def shown_values(self) -> torch.Tensor:
+        v = self.values[self.source]
+        if self.grid.axis is not None:
+            return v.movedim(self.grid.axis, 0)[self.channel].reshape(-1)
+        return v.reshape(-1)
+
+    def fitted_step(self) -> float:
+        """The fitted step of the channel shown (the centre of the step control's window)."""
+        g = self.fitted_now()
+        s = g.scale_tensor()
+        return float(s[self.channel] if g.axis is not None else s.reshape(-1)[0])
