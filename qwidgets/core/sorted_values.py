@@ -16,13 +16,11 @@ Values exactly on a decision threshold may land one code away from :func:`quanti
 
 from __future__ import annotations
 
-import math
-
 import torch
 
 from .checks import as_input
 from .grid import UniformGrid
-from .metrics import ErrorStats, GridUsage, error_stats, grid_usage
+from .metrics import ErrorStats, GridUsage, error_stats, grid_usage, stats_from_sums
 from .rounding import quantize
 
 __all__ = ["MAX_LEVELS", "SortedValues"]
@@ -96,27 +94,9 @@ class SortedValues:
         lo_err = (self.sorted.gather(1, lo_idx) - q).abs()
         hi_err = (self.sorted.gather(1, hi_idx) - q).abs()
         top = torch.where(nonempty, torch.maximum(lo_err, hi_err), 0.0).max().item()
-        stats = _stats(sig, err, app, cross, top, self.n)
+        stats = stats_from_sums(sig, err, app, cross, top, self.n)
         low = int(edge[:, 0].sum())
         high = int((m - edge[:, 1]).sum())
         usage = GridUsage((low + high) / self.n, low / self.n, high / self.n,
                           int(nonempty.sum()), c * grid.n_levels)
         return stats, usage
-
-
-def _stats(sig: float, err: float, app: float, cross: float, top: float, n: int) -> ErrorStats:
-    """:class:`ErrorStats` from the sums, with :func:`error_stats`'s conventions."""
-    mse = err / n
-    if err == 0.0:
-        sqnr = math.inf
-    elif sig == 0.0:
-        sqnr = -math.inf
-    else:
-        sqnr = 10.0 * math.log10(sig / err)
-    rel = math.sqrt(err / sig) if sig > 0 else (0.0 if err == 0 else math.inf)
-    if sig > 0 and app > 0:
-        cosine = max(-1.0, min(1.0, cross / math.sqrt(sig * app)))
-    else:
-        cosine = 1.0 if sig == app == 0 else 0.0
-    return ErrorStats(mse=mse, rmse=math.sqrt(mse), max_abs=top, sqnr_db=sqnr, rel_err=rel,
-                      cosine=cosine, n=n)

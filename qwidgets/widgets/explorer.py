@@ -23,22 +23,18 @@ from ..core.metrics import ErrorStats, GridUsage
 from ..core.ranges import METHODS
 from ..core.setting import LayerSetting
 from ..learn.one_grid import DEFAULT_NOISE, LearnResult
-from ..viz.explorer_figure import ExplorerFigure
-from .events import Coalescer, MessageLine, observe_value, torch_threads
+from .events import Coalescer, torch_threads
+from .explorer_controls import ExplorerControls
 from .explorer_learning import LearnRunner
 from .explorer_numbers import ERROR_SAMPLE, ExplorerNumbers
 from .explorer_panel import (
     METHOD_LABELS,
     SOURCE_LABELS,
-    fmt_value,
-    make_controls,
     readout_html,
     readout_rows,
-    step_window,
 )
 from .explorer_state import ExplorerState
 from .explorer_subject import ExplorerSubject
-from .image_canvas import PlotCanvas
 from .snapshot import SnapshotMixin
 
 __all__ = ["GridExplorer"]
@@ -47,11 +43,9 @@ HIST_BINS = 160
 SAMPLED_ROWS = 32  # rows measured while a control of a large layer moves (exact when it stops)
 LARGE_LAYER_MACS = 100_000_000  # above this many multiply-adds per update, sample while moving
 SETTLE_S = 0.35  # after this long without a change, a sampled readout is made exact
-CSS = {"root": "qw-explorer", "plot": "qw-plot", "readout": "qw-readout",
-       "message": "qw-message", "heading": "qw-heading"}
 
 
-class GridExplorer(SnapshotMixin, widgets.VBox):
+class GridExplorer(SnapshotMixin, ExplorerControls, widgets.VBox):
     """Explore a uniform grid for a tensor or for one layer's weights or inputs, live.
 
     ``GridExplorer(tensor)`` explores a tensor; ``GridExplorer(layer, data)`` a Linear / Conv
@@ -185,113 +179,6 @@ class GridExplorer(SnapshotMixin, widgets.VBox):
         """The readout panel as plain text, name -> shown text (what a browser test can read)."""
         return {k: v for k, v in self._rows() if v is not None}
 
-    # ================================================================== widgets
-    def _build_widgets(self, width: int, height: int, output) -> None:
-        st = self.state
-        c = make_controls(self.subject.sources, st.source, st.method, st.noise_steps,
-                          st.temperature, has_layer=self.subject.has_layer)
-        self.controls = c
-        for name in ("bits", "scale", "offset", "noise", "temperature", "probe", "source",
-                     "signed", "per_channel", "channel", "method", "keep_clip"):
-            observe_value(c[name], self._make_observer(name))
-        self.message = MessageLine()
-        c["fit"].on_click(lambda _b: self.message.run("fit range", self.fit))
-        c["learn"].on_click(lambda _b: self.message.run("learn", self._learn_clicked))
-        c["reset"].on_click(lambda _b: self.message.run("reset", self.reset))
-        self.heading = widgets.HTML(f"<b>{_escape(self.subject.heading)}</b>")
-        self.heading.add_class(CSS["heading"])
-        self.canvas = PlotCanvas(width, height)
-        self.canvas.image.add_class(CSS["plot"])
-        self.figure = ExplorerFigure(self.canvas, has_layer=self.subject.has_layer)
-        self.readout = widgets.HTML(layout=widgets.Layout(width="270px", margin="0 0 0 8px"))
-        self.readout.add_class(CSS["readout"])
-        self.progress = output if output is not None else widgets.Output(
-            layout=widgets.Layout(min_height="0px"))
-        self.progress_bar = widgets.FloatProgress(value=0.0, min=0.0, max=1.0,
-                                                  layout=widgets.Layout(width="300px"))
-        self.progress_label = widgets.Label("")
-        self.progress_box = widgets.HBox([self.progress_bar, self.progress_label],
-                                         layout=widgets.Layout(display="none"))
-        row1 = widgets.HBox([c["source"], c["signed"], c["per_channel"], c["channel"]],
-                            layout=widgets.Layout(align_items="center"))
-        row2 = widgets.HBox([c["method"], c["keep_clip"], c["fit"], c["steps"], c["learn"],
-                             c["reset"]], layout=widgets.Layout(align_items="center"))
-        self.children = [
-            self.heading, row1,
-            widgets.HBox([widgets.VBox([c["bits"], c["scale"], c["offset"]]),
-                          widgets.VBox([c["noise"], c["temperature"], c["probe"]])]),
-            row2, self.progress_box,
-            # the readouts sit beside the plots, and wrap below them in a narrow notebook
-            widgets.HBox([self.canvas.image, self.readout],
-                         layout=widgets.Layout(flex_flow="row wrap", align_items="flex-start")),
-            self.progress, self.message.widget,
-        ]
-        self.add_class(CSS["root"])
-
-    _syncing = False
-
-    def _make_observer(self, name: str):
-        handler = getattr(self, f"_set_{name}")
-
-        def observe(change):
-            if self._syncing:
-                return
-            self.message.clear()  # a message describes a state that has just changed
-            try:
-                handler(change["new"])
-            except Exception as exc:
-                self.message.error(exc, f"setting {name}")
-                self._sync_controls()  # put the controls back to the state that is still valid
-                return
-            self._updater.request()
-
-        return observe
-
-    # ================================================================== edits from controls
-    def _set_bits(self, value) -> None:
-        self.state.set_bits(value)
-        self._sync_controls()
-
-    def _set_scale(self, value) -> None:
-        self.state.set_channel_param("scale", float(value))
-
-    def _set_offset(self, value) -> None:
-        self.state.set_channel_param("offset", float(value))
-
-    def _set_noise(self, value) -> None:
-        self.state.set_noise_steps(value)
-
-    def _set_temperature(self, value) -> None:
-        self.state.set_temperature(value)
-
-    def _set_probe(self, value) -> None:
-        self.state.probe[self.state.source] = float(value)
-
-    def _set_source(self, value) -> None:
-        self.state.set_source(value)
-        self._select_static()
-        self._sync_controls()
-
-    def _set_signed(self, value) -> None:
-        self.state.set_signed(bool(value))
-        self._sync_controls()
-
-    def _set_per_channel(self, value) -> None:
-        self.state.set_per_channel(bool(value))
-        self._select_static()
-        self._sync_controls()
-
-    def _set_channel(self, value) -> None:
-        self.state.set_channel(value)
-        self._select_static()
-        self._sync_controls()
-
-    def _set_method(self, value) -> None:
-        self.state.set_method(value)
-
-    def _set_keep_clip(self, value) -> None:
-        self.state.keep_clip = bool(value)
-
     # ================================================================== actions
     def fit(self, method: str | None = None) -> UniformGrid:
         """Fit the current source's range with ``method`` (``"minmax"``, ``"percentile"``,
@@ -385,16 +272,6 @@ class GridExplorer(SnapshotMixin, widgets.VBox):
         finally:
             self.figure.set_caption("")
 
-    def snapshot(self) -> tuple[bytes, str]:
-        """The current plots (PNG) and readout (HTML): the static copy in the display bundle."""
-        if self._updater.pending:
-            self.refresh()
-        return self.canvas.last_png, self.readout.value
-
-    @property
-    def snapshot_title(self) -> str:
-        return f"Grid explorer: layer {self.layer_name!r}" if self.layer_name else "Grid explorer"
-
     def to_setting(self, sources=None) -> LayerSetting:
         """The grids as a :class:`LayerSetting` for the plan.
 
@@ -455,65 +332,6 @@ class GridExplorer(SnapshotMixin, widgets.VBox):
         pad = 0.06 * (need_hi - need_lo)
         self.figure.set_view(need_lo - pad, need_hi + pad)
         self._sync_probe_range()
-
-    # ================================================================== controls <- state
-    def _sync_controls(self) -> None:
-        c, st = self.controls, self.state
-        g = st.shown_grid()
-        self._syncing = True
-        try:
-            with self.hold_sync():
-                c["source"].value = st.source
-                c["bits"].value = g.bits
-                step_window(c["scale"], st.fitted_step(), float(g.scale))
-                off = c["offset"]
-                r = max(abs(self._data_range[0]), abs(self._data_range[1]), 2 * abs(float(g.offset)), 1e-12)
-                off.min, off.max = -r, r
-                off.min = -r
-                off.step = r / 2000
-                # an offset within rounding of zero is shown as 0 (as the readout prints it)
-                zero = fmt_value(float(g.offset), float(g.scale)) == "0"
-                off.value = 0.0 if zero else float(g.offset)
-                c["noise"].value = st.noise_steps
-                c["temperature"].value = st.temperature
-                c["signed"].value = g.signed
-                c["per_channel"].value = st.grid.axis is not None
-                c["per_channel"].disabled = not st.can_per_channel(st.source)
-                c["channel"].max = max(st.n_channels() - 1, 0)
-                c["channel"].value = st.channel
-                c["channel"].disabled = st.grid.axis is None
-                c["method"].value = st.method
-                c["keep_clip"].value = st.keep_clip
-            self._sync_probe_range()
-        finally:
-            self._syncing = False
-
-    def _sync_probe_range(self) -> None:
-        view = self.figure.view
-        if view is None:
-            return
-        p = self.controls["probe"]
-        was, self._syncing = self._syncing, True
-        try:
-            lo, hi = view
-            if p.min > hi:
-                p.min = lo
-            p.max, p.min = hi, lo
-            p.step = (hi - lo) / 2000
-            value = min(max(self.state.probe[self.source], lo), hi)
-            self.state.probe[self.source] = value
-            p.value = value
-        finally:
-            self._syncing = was
-
-    def set_controls_enabled(self, enabled: bool) -> None:
-        """Enable or disable every control but the learn / stop button (while learning)."""
-        for name, w in self.controls.items():
-            if name != "learn" and hasattr(w, "disabled"):
-                w.disabled = not enabled
-        if enabled:
-            self._sync_controls()  # per-channel and channel enablement follow the state
-            self.controls["source"].disabled = len(self.subject.sources) == 1
 
     # ================================================================== drawing
     def _work(self) -> int:
@@ -583,10 +401,3 @@ def _loop():
         return asyncio.get_running_loop()
     except RuntimeError:
         return None
-
-
-def _escape(text: str) -> str:
-    import html
-
-    return html.escape(text)
-
