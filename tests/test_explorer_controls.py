@@ -208,6 +208,9 @@ def test_show_setting_takes_a_plans_grids():
     ex.refresh()
     assert ex.layer_stats == layer_error(layer, x, weight_grid=w)
     assert GridExplorer(layer, x, grid=w).grid is w
+    with pytest.raises(ValueError):  # 5 channel scales for a 6-channel weight
+        ex.show_setting(LayerSetting(weight=UniformGrid(4, torch.ones(5), axis=0)))
+    assert ex.grid is w
 
 
 def test_snapshot_is_in_the_display_bundle():

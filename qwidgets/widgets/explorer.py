@@ -18,7 +18,7 @@ import numpy as np
 import torch
 
 from ..core.checks import check_bits, check_positive
-from ..core.grid import UniformGrid
+from ..core.grid import UniformGrid, grid_params
 from ..core.metrics import ErrorStats, GridUsage
 from ..core.ranges import METHODS
 from ..core.setting import LayerSetting
@@ -118,8 +118,7 @@ class GridExplorer(SnapshotMixin, ExplorerControls, widgets.VBox):
                                   on_error=lambda e: self.message.error(e, "update"))
         self.learner = LearnRunner(self, clock=clock)
         if grid is not None:
-            self.show_setting(LayerSetting(weight=grid) if self.subject.has_layer
-                              else LayerSetting(weight=grid), note=False)
+            self.show_setting(LayerSetting(weight=grid), note=False)
         self._select_static()
         self._sync_controls()
         self._redraw()
@@ -225,6 +224,9 @@ class GridExplorer(SnapshotMixin, ExplorerControls, widgets.VBox):
         pairs = [("weight" if self.subject.has_layer else "values", setting.weight)]
         if self.subject.has_layer:
             pairs.append(("input", setting.input))
+        for source, g in pairs:
+            if g is not None:
+                grid_params(self.subject.values[source], g)  # a grid that fits (clear error)
         for source, g in pairs:
             if g is not None:
                 self.state.set_grid(g, source)
