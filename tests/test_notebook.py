@@ -148,14 +148,17 @@ def _snapshots(page: str, widget: str) -> list:
     return [p.split("jp-OutputArea-output", 1)[0] for p in mine]
 
 
-def test_exported_html_shows_the_explorer_plots(executed):
-    """Without a kernel the live widget cannot draw: the page shows its static snapshot."""
+def test_exported_html_shows_the_widgets_plots(executed):
+    """Without a kernel the live widgets cannot draw: the page shows their static snapshots."""
     import base64
     import io
 
     from PIL import Image
 
     page = _exported_html(executed)
+    for widget in ("ScanView", "BudgetPlanner"):
+        (shot,) = _snapshots(page, widget)
+        assert "data:image/png;base64," in shot, widget
     shots = _snapshots(page, "GridExplorer")
     assert len(shots) == 1, "the demo displays one explorer"
     shot = shots[0]

@@ -13,8 +13,9 @@
     ``.save(path)``  a full-quality PNG or SVG, by the file's extension;
     ``.renders`` / ``.full_draws`` / ``.partial_draws`` / ``.kept_draws``  counters (tests,
                  benchmarks); the last counts backgrounds reused for limits seen before.
-Every text is drawn literally (``parse_math`` off): layer names and numbers may hold ``$``,
-``_`` or ``^``, which math text would try to parse (and fail on).
+With ``.literal = True`` every text is drawn as written (``parse_math`` off, tick labels made
+during a draw included): layer names and numbers may hold ``$``, ``_`` or ``^``, which math
+text would try to parse (and fail on).
 ``encode_png(rgba, compress_level=1) -> bytes``
     Low compression: at notebook sizes it encodes several times faster than the default level
     for a few kilobytes more.
@@ -167,15 +168,22 @@ class BlitCanvas:
                 a.draw(renderer)
         return np.asarray(self._canvas.buffer_rgba())
 
+    literal = False  # True: every text drawn as written (no math text)
+
+    def _rc(self):
+        return matplotlib.rc_context(_LITERAL if self.literal else {})
+
     def literal_text(self) -> None:
-        """Draw every text of the figure as it is written (no math text)."""
+        """Draw every text of the figure as it is written (no math text), when :attr:`literal`."""
+        if not self.literal:
+            return
         for t in self.figure.findobj(Text):
             if t.get_parse_math():
                 t.set_parse_math(False)
 
     def _full_draw(self) -> None:
         self.literal_text()
-        with matplotlib.rc_context(_LITERAL):  # tick labels made during the draw, too
+        with self._rc():  # tick labels made during the draw, too
             self._canvas.draw()  # animated artists are skipped here
         renderer = self._canvas.get_renderer()
         # where each axes' labels are now: a later partial repaint must blank these pixels
@@ -198,7 +206,7 @@ class BlitCanvas:
 
     def _redraw_axes(self, changed: list) -> bool:
         """Repaint a few axes into the background; False when that would be the whole figure."""
-        with matplotlib.rc_context(_LITERAL):
+        with self._rc():
             self.literal_text()
             return self._redraw_axes_literal(changed)
 
@@ -252,7 +260,7 @@ class BlitCanvas:
             a.set_animated(False)  # a saved figure must contain everything
         self.literal_text()
         try:
-            with matplotlib.rc_context(_LITERAL):
+            with self._rc():
                 self.figure.savefig(path, dpi=self.dpi, facecolor="white")
         finally:
             for a in self._animated:

@@ -84,6 +84,7 @@ class ExplorerFigure:
 
     def __init__(self, canvas: BlitCanvas, has_layer: bool):
         self.canvas = canvas
+        canvas.literal = True  # layer names and numbers drawn as written
         self.has_layer = has_layer
         fig = canvas.figure
         with matplotlib.rc_context(_RC):

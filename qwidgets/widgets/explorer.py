@@ -23,6 +23,7 @@ from ..core.metrics import ErrorStats, GridUsage
 from ..core.ranges import METHODS
 from ..core.setting import LayerSetting
 from ..learn.one_grid import DEFAULT_NOISE, LearnResult
+from .display_snapshot import SnapshotDisplay
 from .events import Coalescer, torch_threads
 from .explorer_controls import ExplorerControls
 from .explorer_learning import LearnRunner
@@ -35,7 +36,6 @@ from .explorer_panel import (
 )
 from .explorer_state import ExplorerState
 from .explorer_subject import ExplorerSubject
-from .snapshot import SnapshotMixin
 
 __all__ = ["GridExplorer"]
 
@@ -45,7 +45,7 @@ LARGE_LAYER_MACS = 100_000_000  # above this many multiply-adds per update, samp
 SETTLE_S = 0.35  # after this long without a change, a sampled readout is made exact
 
 
-class GridExplorer(SnapshotMixin, ExplorerControls, widgets.VBox):
+class GridExplorer(SnapshotDisplay, ExplorerControls, widgets.VBox):
     """Explore a uniform grid for a tensor or for one layer's weights or inputs, live.
 
     ``GridExplorer(tensor)`` explores a tensor; ``GridExplorer(layer, data)`` a Linear / Conv
