@@ -18,6 +18,7 @@ import numpy as np
 import torch
 
 from ..core.checks import check_bits, check_positive
+from ..core.device_rules import DeviceRules, check_rules
 from ..core.grid import UniformGrid, grid_params
 from ..core.metrics import ErrorStats, GridUsage
 from ..core.ranges import METHODS
@@ -62,7 +63,10 @@ class GridExplorer(SnapshotDisplay, ExplorerControls, widgets.VBox):
     ``.layer_stats`` and ``.readouts`` the current state; ``.refresh()``, ``.fit()``,
     ``.learn()``, ``.reset()``, ``.save_figure()`` and ``.to_setting()`` act on it. A new bit
     width refits the range with the selected method (tick *keep clip range* to keep it), or
-    brings back the grid learned for that width.
+    brings back the grid learned for that width. With ``rules`` (:class:`qwidgets.DeviceRules`)
+    the controls offer only what the device runs: widths from its menus, the step in powers of
+    two, the offset in whole steps (fixed at 0 for symmetric weights), and fitted or learned
+    grids moved onto the rules.
 
     >>> import torch
     >>> from torch import nn
@@ -84,7 +88,8 @@ class GridExplorer(SnapshotDisplay, ExplorerControls, widgets.VBox):
                  noise: float | None = None, noise_steps: float | None = None,
                  temperature: float = 0.5, max_samples: int | None = None,
                  grid: UniformGrid | None = None, output: widgets.Output | None = None,
-                 width: int = 720, height: int = 600, clock=None):
+                 width: int = 720, height: int = 600, clock=None,
+                 rules: DeviceRules | None = None):
         super().__init__()
         bits = check_bits(bits)
         if method not in METHODS:
@@ -106,7 +111,7 @@ class GridExplorer(SnapshotDisplay, ExplorerControls, widgets.VBox):
         if source not in sources:
             raise ValueError(f"source must be one of {sources} here, got {source!r}")
         self.state = ExplorerState(self.subject.values, source, method=method, noise_steps=ns,
-                                   temperature=temperature)
+                                   temperature=temperature, rules=check_rules(rules))
         self.state.start(bits, per_channel)
         self._start = (ns, temperature)
         self.numbers = ExplorerNumbers(self.subject)

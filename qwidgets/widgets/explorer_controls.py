@@ -91,7 +91,7 @@ class ExplorerControls:
     # ================================================================== edits from controls
     def _set_bits(self, value) -> None:
         self.state.set_bits(value)
-        self._sync_controls()
+        self._sync_controls()  # a width the device does not run: the slider shows the one taken
 
     def _set_scale(self, value) -> None:
         self.state.set_channel_param("scale", float(value))
@@ -155,7 +155,9 @@ class ExplorerControls:
                 c["temperature"].value = st.temperature
                 c["signed"].value = g.signed
                 c["per_channel"].value = st.grid.axis is not None
-                c["per_channel"].disabled = not st.can_per_channel(st.source)
+                c["per_channel"].disabled = not st.can_per_channel(st.source) or (
+                    st.rules is not None and not st.rules.per_channel_weights)
+                off.disabled = st.symmetric_only(st.source)
                 c["channel"].max = max(st.n_channels() - 1, 0)
                 c["channel"].value = st.channel
                 c["channel"].disabled = st.grid.axis is None

@@ -13,11 +13,13 @@ core (:func:`qwidgets.fit_range`); the state only decides *which* grid is curren
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 
 import torch
 
 from ..core.checks import check_bits, check_positive
+from ..core.device_rules import DeviceRules, conform_grid
 from ..core.grid import UniformGrid
 from ..core.ranges import METHODS, fit_range
 from ..model.layers import WEIGHT_AXIS
@@ -51,6 +53,7 @@ class ExplorerState:
     learned: dict = field(default_factory=dict)  # (source, bits) -> learned grid
     probe: dict = field(default_factory=dict)  # source -> probe value
     version: dict = field(default_factory=dict)  # source -> edit counter
+    rules: DeviceRules | None = None  # what the device runs (None: anything)
     _fitted: dict = field(default_factory=dict)  # (source, bits, method, signed, axis) -> grid
 
     @property
@@ -75,7 +78,8 @@ class ExplorerState:
         axis = WEIGHT_AXIS if per_channel else None
         key = (source, bits, method, signed, axis)
         if key not in self._fitted:
-            g = fit_range(self.values[source], bits, method, signed=signed, axis=axis)
+            extra = {} if self.rules is None else {"rules": self.rules, "role": role(source)}
+            g = fit_range(self.values[source], bits, method, signed=signed, axis=axis, **extra)
             self._fitted[key] = self._fitted[(source, bits, method, g.signed, axis)] = g
         return self._fitted[key]
 
@@ -83,7 +87,7 @@ class ExplorerState:
         """Fit every source's starting grid."""
         for s in self.sources:
             pc = per_channel and self.can_per_channel(s)
-            self.grids[s] = self.fitted(s, bits, None, pc)
+            self.grids[s] = self.fitted(s, self.allowed_bits(s, bits), None, pc)
             self.version.setdefault(s, 0)
             v = self.values[s]
             self.probe.setdefault(s, float(v.mean() + v.std()) if v.numel() > 1 else float(v.reshape(-1)[0]))
@@ -101,9 +105,30 @@ class ExplorerState:
         self.grids[source] = grid
         self.version[source] = self.version.get(source, 0) + 1
 
+    # ------------------------------------------------------------------ device rules
+    def allowed_bits(self, source: str, bits: int, up: bool = True) -> int:
+        """``bits`` if the rules allow it for ``source``, else the next allowed width in the
+        direction of the change (the nearest one at the ends of the menu)."""
+        menu = None if self.rules is None else self.rules.bits_menu(role(source))
+        if menu is None or bits in menu:
+            return bits
+        ahead = [b for b in menu if (b > bits if up else b < bits)]
+        if ahead:
+            return min(ahead) if up else max(ahead)
+        return min(menu, key=lambda b: (abs(b - bits), b))
+
+    def symmetric_only(self, source: str) -> bool:
+        return self.rules is not None and self.rules.symmetric_weights and role(source) == "weight"
+
+    def obeying(self, grid: UniformGrid, source: str) -> UniformGrid:
+        """``grid`` moved onto the device rules (zero point, power-of-two scale), if any."""
+        if self.rules is None:
+            return grid
+        return conform_grid(grid, self.values[source], self.rules, role(source))
+
     def set_bits(self, bits: int) -> None:
-        bits = check_bits(int(bits))
         g = self.grid
+        bits = self.allowed_bits(self.source, check_bits(int(bits)), up=int(bits) > g.bits)
         if bits == g.bits:
             return
         learned = self.learned.get((self.source, bits))
@@ -113,7 +138,7 @@ class ExplorerState:
             new = g.replace(bits=bits)
             ratio = max(g.qmax - g.qmin, 1) / max(new.qmax - new.qmin, 1)
             scale = g.scale * ratio if isinstance(g.scale, torch.Tensor) else float(g.scale) * ratio
-            self.set_grid(g.replace(bits=bits, scale=scale))
+            self.set_grid(self.obeying(g.replace(bits=bits, scale=scale), self.source))
         else:
             self.set_grid(self.fitted(self.source, bits, g.signed, g.axis is not None))
 
@@ -121,6 +146,13 @@ class ExplorerState:
         """Set the scale or offset (of the channel shown, for a per-channel grid)."""
         if name == "scale":
             value = float(check_positive(float(value), "scale"))
+            if self.rules is not None and self.rules.pow2_scales:  # steps in powers of two
+                value = 2.0 ** round(math.log2(value))
+        elif self.symmetric_only(self.source):
+            value = 0.0  # symmetric weights: zero point 0
+        elif self.rules is not None:  # an integer zero point: the offset moves in whole steps
+            step = float(self.shown_grid().scale)
+            value = -round(-float(value) / step) * step + 0.0
         g = self.grid
         if g.axis is None:
             self.set_grid(g.replace(**{name: float(value)}))
@@ -172,6 +204,7 @@ class ExplorerState:
         return self.grid
 
     def remember_learned(self, grid: UniformGrid, source: str) -> None:
+        grid = self.obeying(grid, source)
         self.learned[(source, grid.bits)] = grid
         self.set_grid(grid, source)
 
@@ -205,3 +238,8 @@ class ExplorerState:
         g = self.fitted_now()
         s = g.scale_tensor()
         return float(s[self.channel] if g.axis is not None else s.reshape(-1)[0])
+
+
+def role(source: str) -> str:
+    """Which device rules apply to a source: inputs follow the input rules, the rest the weight rules."""
+    return "input" if source == "input" else "weight"
