@@ -10,7 +10,6 @@ from __future__ import annotations
 import json
 import math
 import os
-import stat
 
 import pytest
 import torch
@@ -193,27 +192,53 @@ def test_unwritable_paths_give_clear_errors_and_change_nothing(tmp_path):
         plan.save(tmp_path)
     with pytest.raises(ValueError, match="path must be a non-empty file path"):
         plan.save("")
-    # a folder the process may not write into: /proc refuses new files even for root (Linux)
-    if os.path.isdir("/proc"):
-        with pytest.raises(PermissionError, match="cannot write the plan to '/proc/plan.json'"):
-            plan.save("/proc/plan.json")
-    # a read-only folder holding an older plan, which must survive the failed save
-    locked = tmp_path / "locked"
-    locked.mkdir()
-    (locked / "plan.json").write_text("old")
-    os.chmod(locked, stat.S_IRUSR | stat.S_IXUSR)
+    with pytest.raises(TypeError, match="path must be a file path"):
+        plan.save(3)
+    # sysfs refuses new files even for root (Linux): the kernel's EACCES stays a PermissionError
+    if os.path.isdir("/sys/kernel"):
+        with pytest.raises(PermissionError, match="cannot write the plan to '/sys/kernel/plan.json'"):
+            plan.save("/sys/kernel/plan.json")
+
+
+def test_a_failed_write_keeps_the_old_file_and_leaves_no_temporary(tmp_path):
+    # A write the kernel cuts short, which root cannot bypass either: a file-size limit
+    # (RLIMIT_FSIZE; with SIGXFSZ ignored, write(2) fails with EFBIG, POSIX setrlimit(2)).
+    resource = pytest.importorskip("resource")
+    import errno
+    import signal
+
+    plan = _plan(_net(), _data())
+    (tmp_path / "plan.json").write_text("old")
+    soft, hard = resource.getrlimit(resource.RLIMIT_FSIZE)
+    previous = signal.signal(signal.SIGXFSZ, signal.SIG_IGN)
+    resource.setrlimit(resource.RLIMIT_FSIZE, (16, hard))
     try:
-        if not os.access(locked, os.W_OK):  # root may write anyway; /proc covered that case
-            with pytest.raises(PermissionError, match="cannot write the plan"):
-                plan.save(locked / "plan.json")
-        assert (locked / "plan.json").read_text() == "old"
+        with pytest.raises(OSError, match="cannot write the plan") as info:
+            plan.save(tmp_path / "plan.json")
     finally:
-        os.chmod(locked, stat.S_IRWXU)
+        resource.setrlimit(resource.RLIMIT_FSIZE, (soft, hard))
+        signal.signal(signal.SIGXFSZ, previous)
+    assert info.value.errno == errno.EFBIG and not isinstance(info.value, PermissionError)
+    assert (tmp_path / "plan.json").read_text() == "old"
+    assert [p.name for p in tmp_path.iterdir()] == ["plan.json"]
+
+
+def test_save_never_touches_the_process_umask(tmp_path, monkeypatch):
+    # os.umask is process-wide: setting it, even for a moment, races other threads' file creation
+    def refuse(*_):
+        raise AssertionError("os.umask called")
+
+    monkeypatch.setattr(os, "umask", refuse)
+    _plan(_net(), _data()).save(tmp_path / "plan.json")
+    assert (tmp_path / "plan.json").exists()
 
 
 def test_load_errors(tmp_path):
-    with pytest.raises(OSError, match="cannot read the plan"):
+    # a missing file stays a FileNotFoundError (Python's class for ENOENT), with a clear message
+    with pytest.raises(FileNotFoundError, match="cannot read the plan"):
         Plan.load(tmp_path / "missing.json")
+    with pytest.raises(IsADirectoryError, match="cannot read the plan"):
+        Plan.load(tmp_path)
     (tmp_path / "bin.json").write_bytes(b"\xff\xfe\x00")
     with pytest.raises(ValueError, match="not a UTF-8 text file"):
         Plan.load(tmp_path / "bin.json")

@@ -310,7 +310,7 @@ def test_table_load_rejects_malformed(tmp_path):
     p.write_text(text.replace('"quantize": "weight"', '"quantize": "weights"'))
     with pytest.raises(ValueError, match="invalid sensitivity table: quantize"):
         SensitivityTable.load(p)
-    with pytest.raises(OSError, match="cannot read"):
+    with pytest.raises(FileNotFoundError, match="cannot read the table"):
         SensitivityTable.load(tmp_path / "missing.json")
 
 

@@ -200,10 +200,6 @@ class BlitCanvas:
         while len(self._kept) > BACKGROUNDS_KEPT:
             self._kept.popitem(last=False)
 
-    def _box(self, ax, renderer):
-        """An axes' extent with its labels, as last drawn (measured once: text is slow)."""
-        return self._boxes[ax]
-
     def _redraw_axes(self, changed: list) -> bool:
         """Repaint a few axes into the background; False when that would be the whole figure."""
         with self._rc():
@@ -213,18 +209,19 @@ class BlitCanvas:
     def _redraw_axes_literal(self, changed: list) -> bool:
         fig = self.figure
         renderer = self._canvas.get_renderer()
-        old = [self._box(ax, renderer) for ax in changed]  # where their old labels were drawn
+        # extents with labels as last drawn (measured once per draw: text is slow)
+        old = [self._boxes[ax] for ax in changed]  # where their old labels were drawn
         for ax in changed:
             self._boxes[ax] = ax.get_tightbbox(renderer)  # where the new ones will be
         region = Bbox.union(old + [self._boxes[ax] for ax in changed])
         todo = set(changed)
         while True:  # grow the region until no other axes comes near it (antialiasing spills)
             near = region.padded(5)
-            more = {a for a in fig.axes if a not in todo and self._box(a, renderer).overlaps(near)}
+            more = {a for a in fig.axes if a not in todo and self._boxes[a].overlaps(near)}
             if not more:
                 break
             todo |= more
-            region = Bbox.union([region] + [self._box(a, renderer) for a in more])
+            region = Bbox.union([region] + [self._boxes[a] for a in more])
         if len(todo) == len(fig.axes):
             return False
         region = region.padded(1)
