@@ -27,9 +27,9 @@ def check_positive(value, name: str):
             raise TypeError(f"{name} must be a float tensor, got dtype {value.dtype}")
         v = value.detach()
         if not bool(torch.isfinite(v).all()):
-            raise ValueError(f"{name} must be finite, got {_short(v)}")
+            raise ValueError(f"{name} must be finite, got {describe_values(v)}")
         if not bool((v > 0).all()):
-            raise ValueError(f"{name} must be > 0, got {_short(v)}")
+            raise ValueError(f"{name} must be > 0, got {describe_values(v)}")
         return value
     if isinstance(value, bool) or not isinstance(value, Real):
         raise TypeError(f"{name} must be a float or a float tensor, got {type(value).__name__}")
@@ -45,7 +45,7 @@ def check_finite(value, name: str):
         if not value.is_floating_point():
             raise TypeError(f"{name} must be a float tensor, got dtype {value.dtype}")
         if not bool(torch.isfinite(value.detach()).all()):
-            raise ValueError(f"{name} must be finite, got {_short(value.detach())}")
+            raise ValueError(f"{name} must be finite, got {describe_values(value.detach())}")
         return value
     if isinstance(value, bool) or not isinstance(value, Real):
         raise TypeError(f"{name} must be a float or a float tensor, got {type(value).__name__}")
@@ -53,7 +53,8 @@ def check_finite(value, name: str):
         raise ValueError(f"{name} must be finite, got {value}")
     return float(value)
 
-def _short(t: torch.Tensor) -> str:
+def describe_values(t: torch.Tensor) -> str:
+    """A short text for an error message: the value, or the offending values of a tensor."""
     if t.numel() == 1:
         return f"{t.item():g}"
     bad = t[~torch.isfinite(t) | (t <= 0)]

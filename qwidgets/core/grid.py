@@ -12,7 +12,7 @@ from numbers import Integral
 
 import torch
 
-from .checks import _short, check_bits, check_finite, check_positive
+from .checks import check_bits, check_finite, check_positive, describe_values
 
 __all__ = ["UniformGrid", "ZP_TOLERANCE", "integer_zero_point", "zero_points", "code_values", "channel_shape",
            "grid_params", "zero_point_param", "noise_param"]
@@ -239,7 +239,7 @@ class UniformGrid:
             z = -self.offset_tensor().detach().double() / self.scale_tensor().detach().double()
             raise ValueError(
                 "offset is not an integer multiple of scale, so the grid has no integer zero "
-                f"point (-offset/scale = {_short(z)}); call .snapped() for the nearest grid that has one"
+                f"point (-offset/scale = {describe_values(z)}); call .snapped() for the nearest grid that has one"
             )
         return self._zp if isinstance(self._zp, int) else self._zp.clone()
 
