@@ -181,11 +181,14 @@ def test_progress_bar_runs(capsys):
     [
         (dict(source="bias"), ValueError, "source must be 'weight' or 'input'"),
         (dict(steps=-1), ValueError, "steps must be an int >= 0"),
-        (dict(steps=2.5), ValueError, "steps must be an int >= 0"),
+        (dict(steps=2.5), TypeError, "steps must be an int >= 0"),
+        (dict(steps="3"), TypeError, "steps must be an int >= 0"),
         (dict(lr=0.0), ValueError, "lr must be > 0"),
         (dict(temperature=-1.0), ValueError, "temperature must be > 0"),
-        (dict(noise=0.001), ValueError, "noise must be >= 0.02"),
-        (dict(noise=float("nan")), ValueError, "noise must be finite"),
+        (dict(noise_steps=0.001), ValueError, r"noise_steps must be >= 0.02 \(a fraction of the grid step\)"),
+        (dict(noise_steps=float("nan")), ValueError, "noise_steps must be finite"),
+        (dict(noise_steps="0.3"), TypeError, "noise_steps must be a float"),
+        (dict(noise_steps=torch.tensor(0.3)), TypeError, "noise_steps must be a float"),
         (dict(window=4), ValueError, "window must be an odd int"),
     ],
 )
@@ -193,6 +196,23 @@ def test_bad_arguments_are_named(kwargs, error, words):
     layer, x = _layer()
     with pytest.raises(error, match=words):
         learn_grid(layer, x, UniformGrid(4, 0.05), progress=False, **kwargs)
+
+
+def test_noise_steps_is_a_fraction_of_the_step_and_noise_a_deprecated_alias():
+    layer, x = _layer(11)
+    grid = UniformGrid(4, 0.05)
+    new = learn_grid(layer, x, grid, noise_steps=0.5, steps=3, progress=False)
+    with pytest.warns(DeprecationWarning, match="noise_steps"):
+        old = learn_grid(layer, x, grid, noise=0.5, steps=3, progress=False)
+    assert old.loss == new.loss and old.noise_steps == new.noise_steps
+    # the unit: the value-unit width the core functions take is noise_steps * scale
+    assert new.noise_width == pytest.approx(new.noise_steps * new.grid.scale)
+    with pytest.warns(DeprecationWarning, match="noise_steps"):
+        assert new.noise == new.noise_steps
+    with pytest.raises(TypeError, match="not both"):
+        learn_grid(layer, x, grid, noise=0.5, noise_steps=0.5, progress=False)
+    with pytest.warns(DeprecationWarning), pytest.raises(ValueError, match="noise must be >= 0.02"):
+        learn_grid(layer, x, grid, noise=0.001, progress=False)
 
 
 def test_bad_layer_grid_and_inputs():

@@ -7,19 +7,23 @@ minimises that error with Adam and, after every step, measures the *hard* (round
 quantizer's layer-output error; it returns the grid that was best by that measure, the starting
 grid included, so learning never leaves the user worse off than where they started.
 
+Units: the core functions (:func:`qwidgets.relaxed_quantize`, ...) take ``noise``, the logistic
+noise width in the units of the values; here the width is learned relative to the grid step,
+as ``noise_steps`` (a fraction of the step: ``noise = noise_steps * scale``).
+
 Parametrisation (so one learning rate suits any layer): ``scale = scale0 * exp(a)``,
-``offset = offset0 + scale0 * b`` and ``noise = scale * exp(c)``, with ``a``, ``b`` (per channel
-for a per-channel grid) and ``c`` (one value: the noise as a fraction of the step) the learned
-numbers. The learning rate follows a cosine decay to zero over the steps (common practice).
+``offset = offset0 + scale0 * b`` and ``noise_steps = exp(c)``, with ``a``, ``b`` (per channel
+for a per-channel grid) and ``c`` (one value) the learned numbers. The learning rate follows a cosine decay to zero over the steps (common practice).
 The user's layer is only read: its weights are detached and never receive gradients.
 """
 
 from __future__ import annotations
 
 import math
+import warnings
 from collections.abc import Callable
 from dataclasses import dataclass, field
-from numbers import Integral, Real
+from numbers import Integral
 
 import torch
 
@@ -33,8 +37,9 @@ from ..model.layers import check_layer, layer_forward, layer_output
 __all__ = ["learn_grid", "LearnResult", "SOURCES"]
 
 SOURCES = ("weight", "input")
-DEFAULT_NOISE = 0.3  # fraction of the grid step: nearest bin ~0.68 for a value at a bin centre
-_MIN_NOISE = 0.02  # fraction of the step; below it the relaxed gradients vanish
+DEFAULT_NOISE_STEPS = 0.3  # fraction of the grid step: nearest bin ~0.68 for a value at a bin centre
+MIN_NOISE_STEPS = 0.02  # fraction of the step; below it the relaxed gradients vanish
+_NOT_GIVEN = object()
 
 
 @dataclass(frozen=True)
@@ -43,8 +48,8 @@ class LearnResult:
 
     grid: the best grid by the hard quantizer's layer-output error (scale / offset as floats,
     or 1-D tensors for a per-channel grid; nothing attached to an autograd graph);
-    noise: its logistic noise width as a fraction of the grid step (``noise_width`` in the
-    values' units); loss: the relaxed quantizer's relative output error (mean squared error over
+    noise_steps: its logistic noise width as a fraction of the grid step (``noise_width``: the
+    same width in the values' units, the ``noise`` the core functions take); loss: the relaxed quantizer's relative output error (mean squared error over
     the mean squared float output) at each step; hard_sqnr_db: the hard quantizer's layer-output
     SQNR of the starting grid (index 0) and after each step; best_step: the index in
     ``hard_sqnr_db`` of the grid returned; stats / start_stats: hard layer-output
@@ -52,7 +57,7 @@ class LearnResult:
     """
 
     grid: UniformGrid
-    noise: float
+    noise_steps: float
     source: str
     loss: list = field(repr=False)
     hard_sqnr_db: list = field(repr=False)
@@ -62,8 +67,15 @@ class LearnResult:
 
     @property
     def noise_width(self):
-        """The noise in the values' units (``noise * scale``), as the core functions take it."""
-        return self.noise * self.grid.scale
+        """The noise in the values' units (``noise_steps * scale``), as the core functions take it."""
+        return self.noise_steps * self.grid.scale
+
+    @property
+    def noise(self) -> float:
+        """Deprecated: the fraction of the step, now ``noise_steps`` (``noise_width`` is in value units)."""
+        warnings.warn("LearnResult.noise is deprecated: use noise_steps (a fraction of the grid "
+                      "step) or noise_width (value units)", DeprecationWarning, stacklevel=2)
+        return self.noise_steps
 
     @property
     def improvement_db(self) -> float:
@@ -77,7 +89,7 @@ def learn_grid(
     grid: UniformGrid,
     *,
     source: str = "weight",
-    noise: float | None = None,
+    noise_steps: float | None = None,
     temperature: float = 0.5,
     steps: int = 200,
     lr: float = 0.2,
@@ -86,6 +98,7 @@ def learn_grid(
     learn_offset: bool = True,
     seed: int = 0,
     callback: Callable[[int, UniformGrid, float, ErrorStats], object] | None = None,
+    noise=_NOT_GIVEN,
 ) -> LearnResult:
     """Learn ``grid``'s scale and offset and a noise width for one layer (relaxed quantization).
 
@@ -97,7 +110,8 @@ def learn_grid(
         reads all of them, so they are held in memory)
     grid : starting grid for ``source`` (per-tensor, or per-channel along its ``axis``)
     source : ``"weight"`` quantizes the layer's weights, ``"input"`` what it receives
-    noise : starting logistic noise width as a fraction of the grid step (None: 0.3)
+    noise_steps : starting logistic noise width as a fraction of the grid step, >= 0.02
+        (None: 0.3); the core functions' ``noise`` is ``noise_steps * scale``, in value units
     temperature : concrete (Gumbel-softmax) temperature of the relaxed samples, > 0
     steps : Adam steps (>= 0; 0 only measures the starting grid)
     lr : Adam's peak learning rate, in log-scale / grid-step units, cosine-decayed to 0
@@ -106,9 +120,10 @@ def learn_grid(
     progress : show a tqdm progress bar
     learn_offset : also learn the offset (False keeps it, e.g. to keep an integer zero point)
     seed : seeds the relaxed samples, so a run is repeatable
-    callback : called after every step as ``callback(step, grid, noise, hard_stats)`` (for a
-        widget to follow the learning); when it returns True, learning stops after that step
-        and the best grid so far is returned
+    callback : called after every step as ``callback(step, grid, noise_steps, hard_stats)``
+        (``noise_steps`` a fraction of the step; for a widget to follow the learning); when it
+        returns True, learning stops after that step and the best grid so far is returned
+    noise : deprecated alias of ``noise_steps`` (same unit: a fraction of the grid step; warns)
 
     >>> import torch
     >>> torch.manual_seed(0) and None
@@ -124,15 +139,30 @@ def learn_grid(
         raise TypeError(f"grid must be a UniformGrid, got {type(grid).__name__}")
     if source not in SOURCES:
         raise ValueError(f"source must be 'weight' or 'input', got {source!r}")
-    if isinstance(steps, bool) or not isinstance(steps, Integral) or steps < 0:
-        raise ValueError(f"steps must be an int >= 0, got {steps!r}")
+    if isinstance(steps, bool) or not isinstance(steps, Integral):
+        raise TypeError(f"steps must be an int >= 0, got {steps!r} ({type(steps).__name__})")
+    if steps < 0:
+        raise ValueError(f"steps must be an int >= 0, got {steps}")
     lr = check_positive(lr, "lr")
     temperature = check_positive(temperature, "temperature")
-    noise = DEFAULT_NOISE if noise is None else check_positive(noise, "noise")
+    name = "noise_steps"
+    if noise is not _NOT_GIVEN:
+        if noise_steps is not None:
+            raise TypeError("give noise_steps only (noise is its deprecated alias), not both")
+        warnings.warn("learn_grid(noise=...) is deprecated: call it noise_steps (a fraction of "
+                      "the grid step; the core functions' noise is in value units)",
+                      DeprecationWarning, stacklevel=2)
+        noise_steps, name = noise, "noise"
+    if noise_steps is None:
+        noise_steps = DEFAULT_NOISE_STEPS
+    noise_steps = check_positive(noise_steps, name)
+    if isinstance(noise_steps, torch.Tensor):
+        raise TypeError(f"{name} must be a float (a fraction of the grid step), got a tensor")
+    if noise_steps < MIN_NOISE_STEPS:
+        raise ValueError(f"{name} must be >= {MIN_NOISE_STEPS} (a fraction of the grid step), "
+                         f"got {noise_steps}")
     if callback is not None and not callable(callback):
         raise TypeError(f"callback must be callable or None, got {type(callback).__name__}")
-    if isinstance(noise, Real) and noise < _MIN_NOISE:
-        raise ValueError(f"noise must be >= {_MIN_NOISE} (a fraction of the grid step), got {noise}")
     x, _ = as_input(_joined(inputs, layer), "inputs")
     w = layer.weight.detach().float()
     target = w if source == "weight" else x.detach().float()
@@ -150,7 +180,7 @@ def learn_grid(
 
     start = grid.detached()
     start_stats = hard_stats(start)
-    best = (start_stats, start, float(noise), 0)
+    best = (start_stats, start, float(noise_steps), 0)
     losses: list[float] = []
     sqnr = [start_stats.sqnr_db]
 
@@ -158,7 +188,7 @@ def learn_grid(
     o0 = start.offset_tensor().float()
     log_scale = torch.zeros_like(s0, requires_grad=True)
     shift = torch.zeros_like(o0, requires_grad=True)
-    log_noise = torch.tensor(math.log(float(noise)), requires_grad=True)
+    log_noise = torch.tensor(math.log(float(noise_steps)), requires_grad=True)
     params = [log_scale, log_noise] + ([shift] if learn_offset else [])
     opt = _Adam(params)
     gen = torch.Generator(device=target.device).manual_seed(int(seed))
@@ -167,7 +197,7 @@ def learn_grid(
         for step in range(1, steps + 1):
             scale = s0 * torch.exp(log_scale)
             offset = o0 + s0 * shift
-            frac = torch.exp(log_noise).clamp(min=_MIN_NOISE)
+            frac = torch.exp(log_noise).clamp(min=MIN_NOISE_STEPS)
             g = start.replace(scale=scale, offset=offset)
             relaxed = relaxed_quantize(target, g, frac * scale,
                                        temperature, window=window, generator=gen)
@@ -182,10 +212,10 @@ def learn_grid(
             stats = hard_stats(current)
             sqnr.append(stats.sqnr_db)
             if stats.sqnr_db > best[0].sqnr_db:
-                best = (stats, current, float(torch.exp(log_noise.detach()).clamp(min=_MIN_NOISE)), step)
+                best = (stats, current, float(torch.exp(log_noise.detach()).clamp(min=MIN_NOISE_STEPS)), step)
             stop = False
             if callback is not None:
-                stop = callback(step, current, float(torch.exp(log_noise.detach()).clamp(min=_MIN_NOISE)),
+                stop = callback(step, current, float(torch.exp(log_noise.detach()).clamp(min=MIN_NOISE_STEPS)),
                                 stats) is True
             if bar is not None:
                 bar.update(1)
