@@ -43,7 +43,7 @@ import math
 import numpy as np
 import torch
 
-from ..core.checks import MAX_BITS, check_bits
+from ..core.checks import MAX_BITS
 from ..core.grid import UniformGrid
 from ..core.setting import LayerSetting
 
@@ -288,11 +288,9 @@ def json_db(v: float):
 
 
 def _db_from_json(v, where: str) -> float:
-    if v in ("inf", "-inf"):
+    if isinstance(v, str) and v in ("inf", "-inf"):
         return float(v)
-    if isinstance(v, bool) or not isinstance(v, (int, float)):
-        raise FieldError(f"{where} must hold numbers, got {v!r}")
-    return float(v)
+    return _num(v, where)
 
 
 def _db_row(v, n: int, where: str):
@@ -331,13 +329,8 @@ def table_fields(d) -> dict:
                           f"got {d['format']!r} / {version!r}")
     if not isinstance(d["bits"], list) or not d["bits"]:
         raise FieldError("bits must be a non-empty list of widths")
-    bits = tuple(check_bits(b, "bits[]") for b in d["bits"])
-    ibits = d.get("input_bits", [])
-    if not isinstance(ibits, list):
-        raise FieldError(f"input_bits must be a list of widths, got {_kind(ibits)}")
-    ibits = tuple(check_bits(b, "input_bits[]") for b in ibits)
-    if d["quantize"] not in QUANTIZE_MODES:
-        raise FieldError(f"quantize must be one of {QUANTIZE_MODES}, got {d['quantize']!r}")
+    bits, ibits = _widths(d["bits"], "bits"), _widths(d.get("input_bits", []), "input_bits")
+    _table_header(d)
     if (d["quantize"] == "separate") != bool(ibits):
         raise FieldError("input_bits must be non-empty exactly when quantize is 'separate'")
     entry_keys = {"name", "type", "weight_shape", "input_shape", "macs", "layer_sqnr_db",
@@ -354,9 +347,7 @@ def table_fields(d) -> dict:
         if not isinstance(e, dict) or not entry_keys <= set(e) or not set(e) <= entry_keys | optional:
             raise FieldError(f"layers[{k}] must be an object with fields {sorted(entry_keys)} "
                              f"(and optionally {sorted(optional)})")
-        name = e["name"]
-        if not isinstance(name, str):
-            raise FieldError(f"layers[{k}].name must be a string")
+        name = _table_entry(e, f"layers[{k}]", info)
         names.append(name)
         info[name] = {"type": str(e["type"]), "weight_shape": tuple(int(s) for s in e["weight_shape"]),
                       "input_shape": None if e["input_shape"] is None else tuple(e["input_shape"]),
@@ -410,6 +401,53 @@ def table_fields(d) -> dict:
         input_grids=input_grids, n_samples=int(d["n_samples"]), input_bits=ibits,
         coverage=_coverage_from_json(d.get("coverage")), estimate=d.get("estimate", "exact"),
         input_layer_sqnr=arrays.get("input_layer"), input_model_sqnr=arrays.get("input_model"))
+
+
+def _widths(v, where: str) -> tuple:
+    if not isinstance(v, list):
+        raise FieldError(f"{where} must be a list of widths, got {_kind(v)}")
+    out = tuple(_int(b, f"{where}[{i}]", 1, MAX_BITS) for i, b in enumerate(v))
+    if any(a >= b for a, b in zip(out[:-1], out[1:], strict=True)):
+        raise FieldError(f"{where} must ascend strictly (sorted, no duplicates), got {list(out)}")
+    return out
+
+
+def _table_header(d) -> None:
+    """The top-level fields of a table other than the widths, as strictly as a plan's."""
+    from ..core.ranges import METHODS
+
+    for key, options in (("quantize", QUANTIZE_MODES), ("method", METHODS)):
+        if d[key] not in options:
+            raise FieldError(f"{key} must be one of {list(options)}, got {_kind(d[key])}")
+    if not isinstance(d["per_channel"], bool):
+        raise FieldError(f"per_channel must be true or false, got {_kind(d['per_channel'])}")
+    fp = d["fingerprint"]
+    if not isinstance(fp, str) or len(fp) != 64 or any(c not in "0123456789abcdef" for c in fp):
+        raise FieldError(f"fingerprint must be 64 lowercase hex digits, got {_kind(fp)}")
+    _int(d["n_samples"], "n_samples", 1)
+
+
+def _table_entry(e, where: str, info: dict) -> str:
+    """An entry's name (unique), type, shapes and MACs, checked as a plan's are."""
+    name = e["name"]
+    if not isinstance(name, str) or not name:
+        raise FieldError(f"{where}.name must be a non-empty string, got {_kind(name)}")
+    if name in info:
+        raise FieldError(f"{where}.name {name!r} appears twice; layer names must be unique")
+    if not isinstance(e["type"], str):
+        raise FieldError(f"{where}.type must be a string, got {_kind(e['type'])}")
+    for key in ("weight_shape", "input_shape"):
+        v = e[key]
+        if not (v is None and key == "input_shape"):
+            if not isinstance(v, list):
+                raise FieldError(f"{where}.{key} must be a list of sizes, got {_kind(v)}")
+            for i, s in enumerate(v):
+                _int(s, f"{where}.{key}[{i}]", 0)
+    _int(e["macs"], f"{where}.macs", 0)
+    for key in ("has_input",):
+        if key in e and not isinstance(e[key], bool):
+            raise FieldError(f"{where}.{key} must be true or false, got {_kind(e[key])}")
+    return name
 
 
 def _coverage_from_json(c):
