@@ -6,7 +6,7 @@ PY := $(VENV)/bin/python
 TORCH_SPEC ?= torch==2.13.0
 STAMP := $(VENV)/.qwidgets-installed
 
-.PHONY: setup test lint demo bench clean browser-deps
+.PHONY: setup test test-quick lint demo bench clean browser-deps screenshots
 
 $(PY):
 	$(PYTHON) -m venv $(VENV)
@@ -30,6 +30,17 @@ lint: setup
 test: setup browser-deps
 	$(VENV)/bin/ruff check .
 	$(PY) -m pytest -q
+
+# Without the slow (fresh kernels and interpreters) and browser tests: a quick check while editing.
+test-quick: setup
+	$(PY) -m pytest -q -m "not slow and not browser"
+
+# Refresh the README screenshots in docs/ from the browser test (the test itself never writes
+# into the repository: its screenshots go to a temporary folder, here build/screenshots).
+screenshots: setup browser-deps
+	rm -rf build/screenshots
+	QWIDGETS_SCREENSHOT_DIR=build/screenshots $(PY) -m pytest -q -p no:cacheprovider tests/test_browser.py
+	cp build/screenshots/explorer.png build/screenshots/planner.png docs/
 
 # JupyterLab on notebooks/demo.ipynb (127.0.0.1, URL printed); with HEADLESS=1 or CI set,
 # execute the notebook and write build/demo.html instead.

@@ -175,6 +175,7 @@ def test_no_module_shares_its_name_with_a_top_level_function():
     assert not leaf_names & set(qwidgets.__all__), leaf_names & set(qwidgets.__all__)
 
 
+@pytest.mark.slow  # a fresh interpreter
 def test_scan_plan_and_evaluate_load_neither_matplotlib_nor_ipywidgets():
     # a fresh interpreter, so nothing another test imported counts
     code = textwrap.dedent("""

@@ -7,9 +7,10 @@ kernel is this environment's; that pressing ArrowRight on the explorer's focused
 changes the plot's pixels and the SQNR readout to what the kernel computed (asked of the kernel
 directly, and recomputed there with the core functions); that the planner's measure button shows
 the kernel's measurement; that rendering the widgets did not change the kernel's state; and that
-the repo's notebook file was not written. Screenshots go to ``build/browser/``; the explorer and
-planner shots are copied to ``docs/`` for the README when missing there, or always with
-``QWIDGETS_DOCS_SCREENSHOTS=1``.
+the repo's notebook file was not written. Screenshots and the server log go to a new temporary
+folder, or to ``$QWIDGETS_SCREENSHOT_DIR`` when set; a test run never writes into the
+repository. ``make screenshots`` runs this module with that folder set and copies the explorer
+and planner shots into ``docs/`` for the README.
 
 The tests fail, never skip, when the server or the browser cannot start: the product lives in a
 notebook, so a broken front end is a broken product. Server, kernel and browser are stopped
@@ -40,8 +41,8 @@ from PIL import Image
 
 REPO = Path(__file__).resolve().parents[1]
 NOTEBOOK = "notebooks/demo.ipynb"
-OUT = REPO / "build" / "browser"
-DOCS = REPO / "docs"
+pytestmark = pytest.mark.browser
+OUT = Path(os.environ.get("QWIDGETS_SCREENSHOT_DIR") or tempfile.mkdtemp(prefix="qwidgets-browser-"))
 CHROMIUM = "/usr/bin/chromium"
 CHROMIUM_ARGS = [
     "--headless",
@@ -548,12 +549,3 @@ def test_page_clean_and_notebook_file_untouched(session):
     assert not session.page_errors, session.page_errors
     # Running the cells must not have written into the repo's notebook (autosave is off).
     assert hashlib.sha256((REPO / NOTEBOOK).read_bytes()).hexdigest() == session.nb_hash
-    _copy_docs_screenshots()
-
-
-def _copy_docs_screenshots() -> None:
-    update = os.environ.get("QWIDGETS_DOCS_SCREENSHOTS") == "1"
-    for name in ("explorer.png", "planner.png"):
-        if update or not (DOCS / name).exists():
-            DOCS.mkdir(exist_ok=True)
-            shutil.copyfile(OUT / name, DOCS / name)

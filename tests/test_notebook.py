@@ -15,6 +15,7 @@ from nbclient import NotebookClient
 
 REPO = Path(__file__).resolve().parents[1]
 NOTEBOOK = REPO / "notebooks" / "demo.ipynb"
+pytestmark = pytest.mark.slow  # a fresh kernel runs the whole notebook
 OUT = REPO / "build" / "demo"
 
 

@@ -1,8 +1,10 @@
 """Plan JSON I/O and validation, apply_plan, export_codes, evaluate_plan.
 
-Outside checks: export_codes decoded with from_codes equals apply_plan's weights exactly;
+Outside checks: export_codes decoded by integer arithmetic written in the test equals apply_plan's
+weights exactly;
 apply_plan's quantized model equals the probe's hook-based model_error pass (an independent
-evaluation of the same settings); Python's own json module reads what to_json writes.
+evaluation of the same settings); Python's own json module reads what to_json writes, and the
+values it reads are the plan's grids.
 """
 
 from __future__ import annotations
@@ -17,7 +19,7 @@ from torch import nn
 
 from qwidgets.core.grid import UniformGrid
 from qwidgets.core.ranges import fit_range
-from qwidgets.core.rounding import from_codes, quantize
+from qwidgets.core.rounding import quantize
 from qwidgets.core.setting import LayerSetting
 from qwidgets.model.forward import model_error
 from qwidgets.model.layers import fit_weight
@@ -66,16 +68,36 @@ def _untouched(model, snap) -> bool:
 
 
 # ---------------------------------------------------------------------------- JSON
+def test_json_read_by_the_json_module_holds_the_plan_values():
+    # outside reader: Python's json module; the values it reads are compared with the grids
+    net, x = _net(), _data()
+    plan = _plan(net, x)
+    data = json.loads(plan.to_json())
+    assert data["format"] == "qwidgets plan" and data["version"] == 1
+    assert list(data["layers"]) == ["0", "3", "5"]
+    for name, setting in plan.layers.items():
+        entry = data["layers"][name]
+        assert entry["bits"] == plan.bits[name] and entry["macs"] == plan.macs[name]
+        assert tuple(entry["weight_shape"]) == plan.weight_shapes[name]
+        w = setting.weight
+        assert entry["weight"]["axis"] == 0 and entry["weight"]["bits"] == w.bits
+        # float32 values survive a trip through JSON's decimal text exactly (repr round trip)
+        assert entry["weight"]["scale"] == w.scale_tensor().reshape(-1).tolist()
+        assert entry["weight"]["offset"] == w.offset_tensor().reshape(-1).tolist()
+        assert entry["weight"]["zero_point"] == [0] * len(entry["weight"]["scale"])
+        if setting.input is None:
+            assert entry["input"] is None
+        else:
+            assert entry["input"]["scale"] == float(setting.input.scale)
+            assert entry["input"]["signed"] is setting.input.signed
+    assert data["predicted_sqnr_db"] == 30.5
+
+
 def test_json_round_trip_is_exact():
+    # qwidgets against itself: what to_json writes, from_json reads back unchanged
     net, x = _net(), _data()
     plan = _plan(net, x)
     text = plan.to_json()
-    data = json.loads(text)  # Python's json module reads it: plain JSON
-    assert data["format"] == "qwidgets plan" and data["version"] == 1
-    assert list(data["layers"]) == ["0", "3", "5"]
-    entry = data["layers"]["3"]
-    assert entry["weight"]["axis"] == 0 and len(entry["weight"]["scale"]) == 4
-    assert entry["weight"]["zero_point"] == [0, 0, 0, 0]
     back = Plan.from_json(text)
     assert back.bits == plan.bits and back.fingerprint == plan.fingerprint
     assert back.predicted_sqnr_db == 30.5 and back.weight_shapes == plan.weight_shapes
@@ -268,7 +290,20 @@ def test_apply_plan_copies_and_matches_hook_evaluation():
     assert q.qwidgets_applied == ("0", "3", "5") and q.qwidgets_skipped == ()
 
 
-def test_export_codes_decode_to_apply_plan_weights_exactly():
+def _decode_by_hand(e) -> torch.Tensor:
+    """Affine dequantization written out (Jacob et al. 2018: r = S (q - Z)): float64
+    (codes - zero_point) * scale, per channel along ``axis``, cast to the weight dtype."""
+    codes = e["codes"].to(torch.float64)
+    scale = e["scale"].to(torch.float64)
+    zero = e["zero_point"].to(torch.float64)
+    if e["axis"] is not None and scale.numel() > 1:
+        shape = [1] * codes.dim()
+        shape[e["axis"]] = -1
+        scale, zero = scale.reshape(shape), zero.reshape(shape)
+    return ((codes - zero) * scale).to(torch.float32)
+
+
+def test_export_codes_decoded_by_integer_arithmetic_equal_apply_plan_weights():
     net, x = _net(), _data()
     plan = _plan(net, x, bits=(4, 8, 12))
     codes = export_codes(net, plan)
@@ -276,13 +311,30 @@ def test_export_codes_decode_to_apply_plan_weights_exactly():
     dtypes = {"0": torch.int8, "3": torch.int8, "5": torch.int16}
     for name, e in codes.items():
         assert e["codes"].dtype == dtypes[name]
-        grid = UniformGrid(e["bits"], e["scale"], e["offset"], signed=e["signed"], axis=e["axis"])
-        assert torch.equal(from_codes(e["codes"], grid), q.get_submodule(name).weight.detach())
         assert e["zero_point"].dtype == torch.int32 and e["zero_point"].tolist() == [0] * e["scale"].numel()
+        lo, hi = (-(2 ** (e["bits"] - 1)), 2 ** (e["bits"] - 1) - 1)
+        assert int(e["codes"].min()) >= lo and int(e["codes"].max()) <= hi
+        assert torch.equal(_decode_by_hand(e), q.get_submodule(name).weight.detach()), name
     assert codes["0"]["input"] is None and codes["5"]["input"]["bits"] == 12
 
 
+@pytest.mark.xfail(strict=True, reason="issue 14: an offset within the zero-point tolerance of "
+                   "-Z*S (0.3 + 2e-5 on a step of 0.1) exports Z = -3, and (q - Z) * S misses "
+                   "apply_plan's weights by 2e-5")
+def test_export_codes_with_an_offset_near_a_zero_point_decode_to_apply_plan_weights():
+    torch.manual_seed(0)
+    lin = nn.Linear(4, 3)
+    g = UniformGrid(8, 0.1, offset=0.3 + 2e-5)
+    p = Plan({"": LayerSetting(weight=g)}, {"": 8}, fingerprint=model_fingerprint(lin),
+             weight_shapes={"": (3, 4)}, macs={"": 12})
+    e = export_codes(lin, p)[""]
+    if e["zero_point"] is None:  # no integer zero point claimed: nothing to decode wrongly
+        return
+    assert torch.equal(_decode_by_hand(e), apply_plan(lin, p).weight.detach())
+
+
 def test_export_codes_unsigned_grids_use_unsigned_bytes():
+    torch.manual_seed(0)
     lin = nn.Linear(4, 3)
     for bits, dt in ((8, torch.uint8), (12, torch.int16), (16, torch.int32)):
         g = fit_range(lin.weight.detach(), bits, "minmax", signed=False, symmetric=False)
@@ -290,8 +342,8 @@ def test_export_codes_unsigned_grids_use_unsigned_bytes():
                  weight_shapes={"": (3, 4)}, macs={"": 12})
         e = export_codes(lin, p)[""]
         assert e["codes"].dtype == dt
-        grid = UniformGrid(bits, e["scale"], e["offset"], signed=False)
-        assert torch.equal(from_codes(e["codes"], grid), apply_plan(lin, p).weight.detach())
+        assert int(e["codes"].min()) >= 0 and int(e["codes"].max()) <= 2 ** bits - 1
+        assert torch.equal(_decode_by_hand(e), apply_plan(lin, p).weight.detach()), bits
 
 
 def test_plan_for_another_model_is_refused_with_names():

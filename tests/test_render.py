@@ -110,22 +110,77 @@ def test_image_widget_has_a_fixed_pixel_size():
         PlotCanvas(10, 300)
 
 
-def test_coalescer_runs_one_call_for_a_burst_on_the_event_loop():
+class _ManualLoop:
+    """An event loop stand-in with a clock that moves only when the test says so: the
+    coalescer's scheduling is checked without depending on how fast this machine is."""
+
+    def __init__(self):
+        self.now = 0.0
+        self.timers = []  # [due time, callback, handle]
+
+    def time(self):
+        return self.now
+
+    def call_later(self, delay, callback, *args):
+        loop = self
+
+        class Handle:
+            cancelled = False
+
+            def cancel(self):
+                self.cancelled = True
+                loop.timers = [t for t in loop.timers if t[2] is not self]
+
+        h = Handle()
+        self.timers.append([self.now + delay, lambda: callback(*args), h])
+        return h
+
+    def advance(self, seconds):
+        self.now += seconds
+        due = sorted((t for t in self.timers if t[0] <= self.now), key=lambda t: t[0])
+        self.timers = [t for t in self.timers if t[0] > self.now]
+        for _, run, _ in due:
+            run()
+
+
+def test_coalescer_runs_one_call_for_a_burst_on_the_event_loop(monkeypatch):
+    import qwidgets.widgets.events as events
+
+    loop = _ManualLoop()
+    monkeypatch.setattr(events, "_running_loop", lambda: loop)
     seen = []
     state = {"value": 0}
     c = Coalescer(lambda: seen.append(state["value"]), delay=0.01)
+    for i in range(200):  # a burst arriving faster than the delay, however slow the machine
+        state["value"] = i
+        c.request()
+        loop.advance(0.00001)
+    assert seen == [] and c.pending and len(loop.timers) == 1  # one call scheduled, not 200
+    loop.advance(0.01)
+    assert seen == [199]  # one call, and it saw the last value
+    assert c.requests == 200 and c.calls == 1 and not c.pending and loop.timers == []
+    # a request after the call schedules the next one
+    c.request()
+    loop.advance(0.005)
+    assert seen == [199]
+    loop.advance(0.005)
+    assert seen == [199, 199] and c.calls == 2
+
+
+def test_coalescer_on_a_real_asyncio_loop_calls_once_after_the_burst():
+    # the real loop, with no timing assumption: the burst runs without yielding, so the
+    # scheduled call cannot run before the burst ends, however long the burst takes
+    seen = []
+    c = Coalescer(lambda: seen.append(len(seen)), delay=0.01)
 
     async def burst():
-        for i in range(200):
-            state["value"] = i
+        for _ in range(200):
             c.request()
-            if i % 50 == 0:
-                await asyncio.sleep(0)  # the loop runs between events, as in a kernel
-        await asyncio.sleep(0.05)
+        while c.pending:
+            await asyncio.sleep(0.005)
 
     asyncio.run(burst())
-    assert seen == [199]  # one call, and it saw the last value
-    assert c.requests == 200 and c.calls == 1 and not c.pending
+    assert seen == [0] and c.requests == 200 and c.calls == 1
 
 
 def test_coalescer_without_a_loop_waits_for_flush_and_reports_errors():

@@ -1,0 +1,102 @@
+"""Shared fixtures and settings for the test suite.
+
+- Every test starts from the same global random state (Python's ``random``, NumPy's legacy
+  global generator and torch's default generator, all seeded with 0), so a test's outcome does
+  not depend on which tests ran before it or in what order.
+- ``digits_mlp``: a small MLP trained on scikit-learn's bundled optical digits data
+  (``sklearn.datasets.load_digits``, offline), trained deterministically: one thread, torch's
+  deterministic algorithms, a seeded generator for the initial weights.
+- ``untouched``: records a model's parameters, buffers, training flags and hooks; calling
+  ``.check()`` asserts they are bit-identical afterwards.
+
+Markers (registered in pyproject.toml): ``slow`` (a fresh kernel, interpreter or long
+training; deselect with ``-m "not slow"``) and ``browser`` (needs chromium; ``-m "not browser"``).
+"""
+
+from __future__ import annotations
+
+import random
+
+import numpy as np
+import pytest
+import torch
+from torch import nn
+
+SEED = 0
+
+
+@pytest.fixture(autouse=True)
+def _seeded_random_state():
+    random.seed(SEED)
+    np.random.seed(SEED)
+    torch.manual_seed(SEED)
+    yield
+
+
+class deterministic_torch:
+    """One thread and torch's deterministic algorithms inside the block (restored after)."""
+
+    def __enter__(self):
+        self._threads = torch.get_num_threads()
+        self._strict = torch.are_deterministic_algorithms_enabled()
+        torch.set_num_threads(1)  # float sums split across threads round differently
+        torch.use_deterministic_algorithms(True)
+        return self
+
+    def __exit__(self, *exc):
+        torch.use_deterministic_algorithms(self._strict)
+        torch.set_num_threads(self._threads)
+        return False
+
+
+def train_digits_mlp(steps: int = 150):
+    """A 64-96-48-10 MLP trained full-batch on the first 1400 digits (about a second)."""
+    from sklearn.datasets import load_digits
+
+    x, y = load_digits(return_X_y=True)
+    x = torch.tensor(x / 16.0, dtype=torch.float32)
+    y = torch.tensor(y, dtype=torch.int64)
+    with deterministic_torch():
+        torch.manual_seed(SEED)
+        net = nn.Sequential(nn.Linear(64, 96), nn.ReLU(), nn.Linear(96, 48), nn.ReLU(),
+                            nn.Linear(48, 10))
+        opt = torch.optim.Adam(net.parameters(), lr=1e-2)
+        for _ in range(steps):
+            opt.zero_grad()
+            nn.functional.cross_entropy(net(x[:1400]), y[:1400]).backward()
+            opt.step()
+    for p in net.parameters():
+        p.grad = None
+    return net.eval(), x[1400:], y[1400:]
+
+
+@pytest.fixture(scope="session")
+def digits_mlp():
+    """(model, held-out inputs, held-out labels); the model is shared: tests must not change it."""
+    net, x, y = train_digits_mlp()
+    assert float((net(x).argmax(1) == y).float().mean()) > 0.85
+    return net, x, y
+
+
+class _Untouched:
+    def __init__(self, model: nn.Module):
+        self.model = model
+        self.state = {k: v.clone() for k, v in model.state_dict(keep_vars=False).items()}
+        self.flags = self._flags()
+
+    def _flags(self):
+        return [(m.training, list(m._forward_hooks), list(m._forward_pre_hooks),
+                 list(m._backward_hooks)) for m in self.model.modules()]
+
+    def check(self) -> None:
+        now = self.model.state_dict()
+        assert list(now) == list(self.state)
+        for k, v in now.items():
+            assert torch.equal(v, self.state[k]), f"{k} changed"
+        assert self._flags() == self.flags, "training flags or hooks changed"
+
+
+@pytest.fixture
+def untouched():
+    """``keep = untouched(model)`` ... ``keep.check()``: the model is bit-identical."""
+    return _Untouched
