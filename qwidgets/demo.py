@@ -37,6 +37,8 @@ import numpy as np
 import torch
 from torch import nn
 
+from .core.checks import check_int
+
 __all__ = [
     "SAMPLE_RATE_HZ",
     "SNIPPET_SAMPLES",
@@ -81,8 +83,7 @@ def make_snippets(n: int, seed: int = 0) -> tuple[torch.Tensor, torch.Tensor]:
     >>> bool(torch.equal(x1, x2)), round(float(x1.std()), 1) > 0
     (True, True)
     """
-    if isinstance(n, bool) or not isinstance(n, int) or n < 1:
-        raise ValueError(f"n must be a positive int, got {n!r}")
+    check_int(n, "n", minimum=1)
     if isinstance(seed, bool) or not isinstance(seed, int):
         raise TypeError(f"seed must be an int, got {seed!r}")
     rng = np.random.default_rng(seed)

@@ -39,9 +39,11 @@ def test_training_and_held_out_sets_do_not_overlap(bundle):
     assert not any(tuple(r[:8].tolist()) in train_rows for r in bundle.x_test[:, 0])
 
 
-@pytest.mark.parametrize("n", [0, -3, 2.5, True])
-def test_snippets_reject_bad_n(n):
-    with pytest.raises(ValueError, match="n must be a positive int"):
+@pytest.mark.parametrize("n, error", [(0, ValueError), (-3, ValueError), (2.5, TypeError),
+                                      (True, TypeError), ("3", TypeError)])
+def test_snippets_reject_bad_n(n, error):
+    # a wrong type is a TypeError, a wrong value a ValueError
+    with pytest.raises(error, match="n must be an int >= 1"):
         demo.make_snippets(n)
 
 

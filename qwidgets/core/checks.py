@@ -99,3 +99,76 @@ def finite_check(x: torch.Tensor, name: str, error: type[Exception] = ValueError
             f"{name} holds {n_nan} NaN and {n_inf} inf value(s) out of {x.numel()}; "
             "quantization needs finite numbers"
         )
+
+
+def check_int(value, name: str, *, minimum: int | None = None, maximum: int | None = None,
+              none_ok: bool = False) -> int | None:
+    """Return ``value`` as an int within [minimum, maximum]: TypeError for a non-int (bools
+    included), ValueError for an int out of range.
+
+    >>> check_int(3, "steps", minimum=0)
+    3
+    >>> check_int(2.5, "steps")
+    Traceback (most recent call last):
+    ...
+    TypeError: steps must be an int, got 2.5 (float)
+    """
+    if value is None and none_ok:
+        return None
+    want = _int_words(minimum, maximum, none_ok)
+    if isinstance(value, bool) or not isinstance(value, Integral):
+        raise TypeError(f"{name} must be {want}, got {value!r} ({type(value).__name__})")
+    if (minimum is not None and value < minimum) or (maximum is not None and value > maximum):
+        raise ValueError(f"{name} must be {want}, got {value}")
+    return int(value)
+
+
+def _int_words(minimum, maximum, none_ok) -> str:
+    if minimum is not None and maximum is not None:
+        words = f"an int in {minimum}..{maximum}"
+    elif minimum is not None:
+        words = f"an int >= {minimum}"
+    elif maximum is not None:
+        words = f"an int <= {maximum}"
+    else:
+        words = "an int"
+    return f"None or {words}" if none_ok else words
+
+
+def check_choice(value, options: tuple, name: str) -> str:
+    """Return ``value`` if it is one of the strings ``options``: TypeError for a non-string,
+    ValueError for another string.
+
+    >>> check_choice("mse", ("minmax", "mse"), "method")
+    'mse'
+    """
+    listed = ", ".join(map(repr, options))
+    if not isinstance(value, str):
+        raise TypeError(f"{name} must be one of {listed} (a str), got {value!r} ({type(value).__name__})")
+    if value not in options:
+        raise ValueError(f"{name} must be one of {listed}, got {value!r}")
+    return value
+
+
+def check_bool(value, name: str) -> bool:
+    """Return ``value`` if it is True or False (TypeError otherwise: 0, 1 and "false" too)."""
+    if not isinstance(value, bool):
+        raise TypeError(f"{name} must be True or False, got {value!r} ({type(value).__name__})")
+    return value
+
+
+def check_axis(axis, ndim: int, name: str = "axis") -> int | None:
+    """Return ``axis`` (None or an int valid for a tensor of ``ndim`` dimensions) unchanged.
+
+    >>> check_axis(-1, 2), check_axis(None, 0)
+    (-1, None)
+    """
+    if axis is None:
+        return None
+    if isinstance(axis, bool) or not isinstance(axis, Integral):
+        raise TypeError(f"{name} must be None or an int, got {axis!r} ({type(axis).__name__})")
+    if ndim == 0:
+        raise ValueError(f"{name}={axis} needs a tensor with at least one dimension, got a scalar")
+    if not -ndim <= axis < ndim:
+        raise ValueError(f"{name}={axis} is out of range for a tensor with {ndim} dimension(s)")
+    return int(axis)

@@ -12,7 +12,7 @@ from numbers import Integral
 
 import torch
 
-from .checks import check_bits, check_finite, check_positive, describe_values
+from .checks import check_axis, check_bits, check_finite, check_positive, describe_values
 
 __all__ = ["UniformGrid", "ZP_TOLERANCE", "integer_zero_point", "zero_points", "code_values", "channel_shape",
            "grid_params", "zero_point_param", "noise_param"]
@@ -319,11 +319,7 @@ def channel_shape(x: torch.Tensor, grid: UniformGrid) -> tuple[int, ...] | None:
     """Shape that broadcasts a per-channel vector against ``x`` (None for per-tensor grids)."""
     if grid.axis is None:
         return None
-    if x.dim() == 0:
-        raise ValueError(f"axis={grid.axis} needs a tensor with at least one dimension, got a scalar")
-    if not -x.dim() <= grid.axis < x.dim():
-        raise ValueError(f"axis={grid.axis} is out of range for a tensor with {x.dim()} dimension(s)")
-    axis = grid.axis % x.dim()
+    axis = check_axis(grid.axis, x.dim()) % x.dim()
     n = grid.n_channels
     if n is not None and n != x.shape[axis]:
         raise ValueError(

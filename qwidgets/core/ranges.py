@@ -28,11 +28,11 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from numbers import Integral, Real
+from numbers import Real
 
 import torch
 
-from .checks import as_input, check_bits
+from .checks import as_input, check_axis, check_bits, check_choice
 from .clip_search import GridSpec, SortedRows, search_asymmetric, search_sample, search_symmetric
 from .device_rules import DeviceRules, check_rules, power_of_two_fit
 from .grid import UniformGrid
@@ -129,8 +129,8 @@ def fit_ranges(
     if isinstance(bits, (str, bytes)) or not isinstance(bits, Sequence):
         raise TypeError(f"bits must be a sequence of ints in 1..16, got {bits!r}")
     bits = [check_bits(b, "bits") for b in bits]
-    method = _check_choice(method, METHODS, "method")
-    style = _check_choice(style, STYLES, "style")
+    method = check_choice(method, METHODS, "method")
+    style = check_choice(style, STYLES, "style")
     if check_rules(rules) is not None:
         bits = [rules.check_bits(b, role) for b in bits]
         symmetric, style, axis = rules.fit_options(role, symmetric=symmetric, style=style, axis=axis)
@@ -226,12 +226,6 @@ def _quantile_rows(x2d: torch.Tensor, pct: float) -> torch.Tensor:
 
 
 # ---------------------------------------------------------------------------- validation
-def _check_choice(value, options: tuple, name: str) -> str:
-    if not isinstance(value, str) or value not in options:
-        raise ValueError(f"{name} must be one of {', '.join(map(repr, options))}; got {value!r}")
-    return value
-
-
 def _check_percentile(p) -> float:
     if isinstance(p, bool) or not isinstance(p, Real):
         raise TypeError(f"percentile must be a number in (0, 100], got {p!r}")
@@ -243,12 +237,7 @@ def _check_percentile(p) -> float:
 
 def _channels_first(x: torch.Tensor, axis):
     """``x`` as (channels, values): one row for a per-tensor fit."""
+    axis = check_axis(axis, x.dim())
     if axis is None:
         return x.reshape(1, -1), None
-    if isinstance(axis, bool) or not isinstance(axis, Integral):
-        raise TypeError(f"axis must be None or an int, got {axis!r}")
-    if x.dim() == 0:
-        raise ValueError(f"axis={axis} needs a tensor with at least one dimension, got a scalar")
-    if not -x.dim() <= axis < x.dim():
-        raise ValueError(f"axis={axis} is out of range for a tensor with {x.dim()} dimension(s)")
-    return x.movedim(int(axis), 0).reshape(x.shape[axis], -1), int(axis)
+    return x.movedim(axis, 0).reshape(x.shape[axis], -1), axis

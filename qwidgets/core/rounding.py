@@ -14,7 +14,7 @@ import torch
 from .checks import as_input
 from .grid import UniformGrid, code_values, grid_params, zero_point_param
 
-__all__ = ["quantize", "to_codes", "from_codes"]
+__all__ = ["quantize", "quantize_unchecked", "to_codes", "from_codes"]
 
 _CHUNK = 1 << 17  # elements per chunk: 512 KiB of float32, fits in L2; fewer chunks, fewer thread dispatches
 
@@ -29,6 +29,16 @@ def quantize(x: torch.Tensor, grid: UniformGrid) -> torch.Tensor:
     [-2.0, 0.5, 0.5, 1.5]
     """
     x, out_dtype = as_input(x)
+    return quantize_unchecked(x, grid, out_dtype)
+
+
+def quantize_unchecked(x: torch.Tensor, grid: UniformGrid, out_dtype: torch.dtype | None = None):
+    """:func:`quantize` for a caller that checked ``x`` at its own public boundary (a real
+    tensor with finite values): no second NaN / inf scan. Low-precision floats are computed
+    in float32 and returned as ``out_dtype`` (default: ``x``'s dtype)."""
+    out_dtype = x.dtype if out_dtype is None else out_dtype
+    if x.dtype in (torch.float16, torch.bfloat16) or not x.is_floating_point():
+        x = x.float()
     s, o = grid_params(x, grid)
     if x.requires_grad or s.requires_grad or o.requires_grad:
         k = torch.clamp(torch.round((x - o) / s), grid.qmin, grid.qmax)

@@ -32,7 +32,7 @@ from ..core.grid import UniformGrid
 from ..core.metrics import ErrorStats, error_stats
 from ..core.relaxed import relaxed_quantize
 from ..core.rounding import quantize
-from ..model.layers import check_layer, layer_forward, layer_output
+from ..model.layers import check_layer, layer_forward, output_on_grids
 
 __all__ = ["learn_grid", "LearnResult", "SOURCES"]
 
@@ -170,7 +170,7 @@ def learn_grid(
     window = _pick_window(window, grid)
 
     with torch.no_grad():
-        reference = layer_output(layer, x).float()
+        reference = output_on_grids(layer, x).float()
     ref_power = float(reference.double().square().mean())
     if ref_power == 0.0:
         raise ValueError("the layer's float output is all zeros; there is no error to learn against")

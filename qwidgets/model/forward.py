@@ -15,7 +15,14 @@ from ..core.metrics import ErrorStats, error_stats
 from ..core.rounding import quantize
 from ..core.setting import LayerSetting
 from .entries import Entry, call_inputs, find_entries, replace_inputs
-from .layers import LayerInputError, check_layer, check_tensor, describe_layer, layer_output
+from .layers import (
+    LayerInputError,
+    check_layer,
+    check_layer_grids,
+    check_tensor,
+    describe_layer,
+    output_on_grids,
+)
 from .outputs import OutputComparison, call_metric, check_output_fn, float_parts
 from .running import check_model, run_with_hooks
 from .sources import Data, data_source
@@ -47,10 +54,12 @@ def layer_error(
     True
     """
     check_layer(layer, "layer")
+    check_layer_grids(layer, weight_grid, input_grid)  # once; the batches below trust them
     if isinstance(inputs, torch.Tensor):
         x = check_tensor(inputs, "inputs")
         if max_samples is None or x.dim() == 0:
-            return error_stats(layer_output(layer, x), layer_output(layer, x, weight_grid, input_grid))
+            return error_stats(output_on_grids(layer, x),
+                               output_on_grids(layer, x, weight_grid, input_grid))
     source = data_source(None, inputs, max_samples, name="inputs")
     sums = OutputComparison()
     for batch in source:
@@ -58,7 +67,7 @@ def layer_error(
             raise TypeError(f"inputs must be a tensor or an iterable of tensors, got a batch of "
                             f"type {type(batch).__name__}")
         x = check_tensor(batch, "inputs")
-        sums.add([layer_output(layer, x)], [layer_output(layer, x, weight_grid, input_grid)])
+        sums.add([output_on_grids(layer, x)], [output_on_grids(layer, x, weight_grid, input_grid)])
     return sums.stats()
 
 

@@ -23,7 +23,7 @@ from torch import nn
 from ..core.checks import as_input
 from ..core.grid import UniformGrid, grid_params
 from ..core.ranges import fit_range
-from ..core.rounding import quantize
+from ..core.rounding import quantize, quantize_unchecked
 
 QUANTIZABLE_TYPES: tuple[type[nn.Module], ...] = (
     nn.Linear, nn.Conv1d, nn.Conv2d, nn.Conv3d,
@@ -105,15 +105,28 @@ def layer_output(
     """
     check_layer(layer, "layer")
     x = check_tensor(inputs, "inputs")
+    check_layer_grids(layer, weight_grid, input_grid)
+    return output_on_grids(layer, x, weight_grid, input_grid)
+
+
+def check_layer_grids(layer: nn.Module, weight_grid, input_grid) -> None:
+    """Both grids None or a UniformGrid; a per-channel weight grid fits the weight's shape."""
+    if input_grid is not None:
+        check_grid(input_grid, "input_grid")
+    if weight_grid is not None:
+        check_grid(weight_grid, "weight_grid")
+        grid_params(layer.weight.detach(), weight_grid)  # shape check with a clear message
+
+
+def output_on_grids(layer: nn.Module, x: torch.Tensor, weight_grid=None, input_grid=None):
+    """:func:`layer_output` for arguments already checked (by :func:`check_layer`,
+    :func:`check_tensor` and :func:`check_layer_grids` at the public entry point)."""
     w = layer.weight.detach()
     with torch.no_grad():
         if input_grid is not None:
-            check_grid(input_grid, "input_grid")
-            x = quantize(x, input_grid)
+            x = quantize_unchecked(x, input_grid)
         if weight_grid is not None:
-            check_grid(weight_grid, "weight_grid")
-            grid_params(w, weight_grid)  # shape check with a clear message
-            w = quantize(w, weight_grid)
+            w = quantize(w, weight_grid)  # the first look at the weight's values
         return layer_forward(layer, x, w)
 
 

@@ -13,14 +13,13 @@ batches are kept, because several passes read the data again; give a re-iterable
 from __future__ import annotations
 
 from collections.abc import Iterable, Iterator, Mapping
-from numbers import Integral
 from typing import Any
 
 import numpy as np
 import torch
 from torch import nn
 
-from ..core.checks import finite_check
+from ..core.checks import check_int, finite_check
 from .layers import LayerInputError
 
 # one batch: model(tensor), model(*tuple), model(**dict); or an iterable of such batches
@@ -28,11 +27,7 @@ Data = Any
 
 
 def check_max_samples(n):
-    if n is None:
-        return None
-    if isinstance(n, bool) or not isinstance(n, Integral) or n < 1:
-        raise ValueError(f"max_samples must be None or an int >= 1, got {n!r}")
-    return int(n)
+    return check_int(n, "max_samples", minimum=1, none_ok=True)
 
 
 def is_one_batch(data) -> bool:

@@ -26,6 +26,7 @@ from numbers import Integral, Real
 
 import numpy as np
 
+from ..core.checks import check_choice, check_int
 from .costs import COSTS, FLOAT_BITS, layer_bops, weight_storage_bits
 from .table import SensitivityTable
 
@@ -68,17 +69,12 @@ def check_table(table) -> SensitivityTable:
 
 
 def check_cost(cost) -> str:
-    if cost not in COSTS:
-        raise ValueError(f"cost must be one of {', '.join(map(repr, COSTS))}, got {cost!r}")
-    return cost
+    return check_choice(cost, COSTS, "cost")
 
 
 def check_input_bits(input_bits) -> int | None:
-    if input_bits is None:
-        return None
-    if isinstance(input_bits, bool) or not isinstance(input_bits, Integral) or not 1 <= input_bits <= 16:
-        raise ValueError(f"input_bits must be None (float inputs) or an int in 1..16, got {input_bits!r}")
-    return int(input_bits)
+    # None: float inputs
+    return check_int(input_bits, "input_bits", minimum=1, maximum=16, none_ok=True)
 
 
 def check_budgets(**budgets) -> dict:

@@ -35,7 +35,7 @@ from numbers import Integral
 import numpy as np
 from torch import nn
 
-from ..core.checks import check_bits
+from ..core.checks import check_bits, check_bool, check_choice
 from ..core.device_rules import DeviceRules, check_rules
 from ..core.ranges import METHODS, fit_ranges
 from ..model import outputs, running
@@ -115,16 +115,12 @@ def scan(model: nn.Module, data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8), *, qu
     """
     running.check_model(model)
     bits = _check_bits_tuple(bits)
-    if quantize not in QUANTIZE_MODES:
-        raise ValueError(f"quantize must be one of {', '.join(map(repr, QUANTIZE_MODES))}, got {quantize!r}")
-    if method not in METHODS:
-        raise ValueError(f"method must be one of {', '.join(map(repr, METHODS))}, got {method!r}")
-    if scope not in SCOPES:
-        raise ValueError(f"scope must be one of {', '.join(map(repr, SCOPES))}, got {scope!r}")
-    if not isinstance(per_channel, bool):
-        raise TypeError(f"per_channel must be True or False, got {per_channel!r}")
-    if estimate not in ESTIMATES:
-        raise ValueError(f"estimate must be one of {', '.join(map(repr, ESTIMATES))}, got {estimate!r}")
+    check_choice(quantize, QUANTIZE_MODES, "quantize")
+    check_choice(method, METHODS, "method")
+    check_choice(scope, SCOPES, "scope")
+    check_bool(per_channel, "per_channel")
+    check_bool(progress, "progress")
+    check_choice(estimate, ESTIMATES, "estimate")
     if executor is not None and not isinstance(executor, Executor):
         raise TypeError(f"executor must be None or a concurrent.futures.Executor, got {type(executor).__name__}")
     if batch_size is not None and (isinstance(batch_size, bool) or not isinstance(batch_size, Integral)):

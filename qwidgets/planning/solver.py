@@ -18,6 +18,7 @@ import numpy as np
 from scipy.optimize import Bounds, LinearConstraint, linprog, milp
 from scipy.sparse import csr_matrix
 
+from ..core.checks import check_int
 from .choices import (
     Menu,
     build_menu,
@@ -110,9 +111,7 @@ def pareto_front(table, cost: str = "weight_kib", *, input_bits: int | None = 8,
     [(4.0, 9.59), (6.0, 19.59), (8.0, 29.59)]
     """
     cost = check_cost(cost)
-    if max_points is not None and (isinstance(max_points, bool) or not isinstance(max_points, int)
-                                   or max_points < 2):
-        raise ValueError(f"max_points must be None or an int >= 2, got {max_points!r}")
+    check_int(max_points, "max_points", minimum=2, none_ok=True)
     _check_kib_scope(kib_scope)
     allowed_bits = rules_allowed_bits(table, rules, allowed_bits, input_bits)
     menu = build_menu(table, fixed=fixed, allowed_bits=allowed_bits, input_bits=input_bits)

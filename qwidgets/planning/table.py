@@ -18,7 +18,6 @@ from .plan import Plan
 from .schema import (
     ESTIMATES,
     FieldError,
-    NonFinite,
     table_fields,
 )
 
@@ -257,7 +256,9 @@ class SensitivityTable:
         >>> p.bits, p.input_bits
         ({'layer0': 2}, {'layer0': 8})
         """
-        if not isinstance(bits, Mapping) or not bits:
+        if not isinstance(bits, Mapping):
+            raise TypeError(f"bits must be a mapping from entry name to bit width, got {type(bits).__name__}")
+        if not bits:
             raise ValueError("bits must be a non-empty mapping from entry name to bit width")
         unknown = [n for n in bits if n not in self._index]
         if unknown:
@@ -374,7 +375,7 @@ class SensitivityTable:
         """Read a table written by :meth:`save` (JSON only; every field checked)."""
         text = read_text(path, "table")
         try:
-            data = json.loads(text, parse_constant=NonFinite)  # NaN / Infinity: named, refused
+            data = json.loads(text)
         except json.JSONDecodeError as e:
             raise ValueError(f"the table is not valid JSON (truncated or damaged?): {e}") from None
         try:

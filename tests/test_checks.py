@@ -1,0 +1,115 @@
+"""One validation layer (qwidgets/core/checks.py): TypeError for a wrong type, ValueError for a
+wrong value, each naming the parameter; layer_error checks its inputs once."""
+
+from __future__ import annotations
+
+import pytest
+import torch
+from torch import nn
+
+import qwidgets
+from qwidgets.core.checks import check_axis, check_bool, check_choice, check_int
+
+
+# ---------------------------------------------------------------------------- the helpers
+@pytest.mark.parametrize("value, error, words", [
+    (2.5, TypeError, r"steps must be an int >= 0, got 2.5 \(float\)"),
+    (True, TypeError, r"steps must be an int >= 0, got True \(bool\)"),
+    ("3", TypeError, r"steps must be an int >= 0, got '3' \(str\)"),
+    (None, TypeError, r"steps must be an int >= 0, got None"),
+    (-1, ValueError, r"steps must be an int >= 0, got -1"),
+])
+def test_check_int(value, error, words):
+    with pytest.raises(error, match=words):
+        check_int(value, "steps", minimum=0)
+
+
+def test_check_int_ranges_and_none():
+    assert check_int(None, "n", minimum=1, none_ok=True) is None
+    assert check_int(16, "b", minimum=1, maximum=16) == 16
+    with pytest.raises(ValueError, match=r"b must be an int in 1..16, got 17"):
+        check_int(17, "b", minimum=1, maximum=16)
+    with pytest.raises(TypeError, match=r"n must be None or an int >= 1"):
+        check_int(1.0, "n", minimum=1, none_ok=True)
+
+
+def test_check_choice_bool_and_axis():
+    assert check_choice("mse", ("mse",), "method") == "mse"
+    with pytest.raises(TypeError, match=r"method must be one of 'mse' \(a str\), got 3 \(int\)"):
+        check_choice(3, ("mse",), "method")
+    with pytest.raises(ValueError, match=r"method must be one of 'mse', got 'kmeans'"):
+        check_choice("kmeans", ("mse",), "method")
+    for bad in (0, 1, "false", None):
+        with pytest.raises(TypeError, match="per_channel must be True or False"):
+            check_bool(bad, "per_channel")
+    assert check_axis(-2, 2) == -2 and check_axis(None, 0) is None
+    with pytest.raises(TypeError, match="axis must be None or an int"):
+        check_axis("0", 2)
+    with pytest.raises(ValueError, match="axis=2 is out of range for a tensor with 2 dimension"):
+        check_axis(2, 2)
+    with pytest.raises(ValueError, match="needs a tensor with at least one dimension"):
+        check_axis(0, 0)
+
+
+# ---------------------------------------------------------------------------- public API
+def _net():
+    torch.manual_seed(0)
+    return nn.Sequential(nn.Linear(6, 8), nn.ReLU(), nn.Linear(8, 3)).eval()
+
+
+@pytest.mark.parametrize("call, error, words", [
+    (lambda n, x: qwidgets.scan(n, x, max_samples=2.5, progress=False), TypeError, "max_samples must be None or an int >= 1"),
+    (lambda n, x: qwidgets.scan(n, x, max_samples=0, progress=False), ValueError, "max_samples must be None or an int >= 1"),
+    (lambda n, x: qwidgets.capture_inputs(n, x, max_samples="4"), TypeError, "max_samples must be None or an int >= 1"),
+    (lambda n, x: qwidgets.scan(n, x, method=3, progress=False), TypeError, "method must be one of"),
+    (lambda n, x: qwidgets.scan(n, x, method="kmeans", progress=False), ValueError, "method must be one of"),
+    (lambda n, x: qwidgets.scan(n, x, scope=None, progress=False), TypeError, "scope must be one of"),
+    (lambda n, x: qwidgets.scan(n, x, per_channel=1, progress=False), TypeError, "per_channel must be True or False"),
+    (lambda n, x: qwidgets.scan(n, x, progress="no"), TypeError, "progress must be True or False"),
+    (lambda n, x: qwidgets.scan(n, x, bits=(2, 4.0), progress=False), TypeError, "bits must be an int"),
+    (lambda n, x: qwidgets.scan(n, [1, 2], progress=False), ValueError, "data holds no tensor"),
+    (lambda n, x: qwidgets.scan(n, "x", progress=False), TypeError, "data must be a tensor"),
+    (lambda n, x: qwidgets.fit_range(x, 4, axis="0"), TypeError, "axis must be None or an int"),
+    (lambda n, x: qwidgets.fit_range(x, 4, axis=2), ValueError, "axis=2 is out of range"),
+    (lambda n, x: qwidgets.fit_range(x, 4, method=None), TypeError, "method must be one of"),
+    (lambda n, x: qwidgets.layer_error(n[0], x, weight_grid=4), TypeError, "weight_grid must be a UniformGrid"),
+    (lambda n, x: qwidgets.model_error(n, x, [("0", None)]), TypeError, "settings must be a mapping"),
+    (lambda n, x: qwidgets.evaluate_plan(n, x, None, metric=3), TypeError, "metric must be a callable"),
+])
+def test_public_entry_points_name_the_parameter_and_use_the_right_class(call, error, words):
+    net, x = _net(), torch.randn(12, 6)
+    with pytest.raises(error, match=words):
+        call(net, x)
+
+
+def test_budget_arguments():
+    import numpy as np
+
+    t = qwidgets.SensitivityTable.synthetic(np.array([[10.0, 30.0]]), params=[64], bits=(4, 8))
+    with pytest.raises(TypeError, match=r"input_bits must be None or an int in 1..16"):
+        qwidgets.plan_budget(t, mean_bits=6, input_bits=8.0)
+    with pytest.raises(ValueError, match=r"input_bits must be None or an int in 1..16, got 17"):
+        qwidgets.plan_budget(t, mean_bits=6, input_bits=17)
+    with pytest.raises(TypeError, match=r"max_points must be None or an int >= 2"):
+        qwidgets.pareto_front(t, max_points=2.5)
+    with pytest.raises(TypeError, match="cost must be one of"):
+        qwidgets.pareto_front(t, cost=None)
+    with pytest.raises(TypeError, match="bits must be a mapping"):
+        t.make_plan([("layer0", 4)])
+
+
+# ---------------------------------------------------------------------------- checked once
+def test_layer_error_checks_its_inputs_once(monkeypatch):
+    import qwidgets.model.layers as layers
+
+    net, x = _net(), torch.randn(16, 6)
+    seen = []
+    real = layers.as_input
+    monkeypatch.setattr(layers, "as_input", lambda t, name="x", **k: seen.append(name) or real(t, name, **k))
+    grid = qwidgets.fit_range(x, 4)
+    qwidgets.layer_error(net[0], x, input_grid=grid)
+    assert seen == ["inputs"]
+    bad = x.clone()
+    bad[3, 2] = float("nan")
+    with pytest.raises(ValueError, match="inputs holds 1 NaN and 0 inf value"):
+        qwidgets.layer_error(net[0], bad, input_grid=grid)
