@@ -18,8 +18,11 @@ The physics is simplified but keeps what makes the task non-trivial:
 * healthy snippets sometimes carry one stray knock (a parcel landing on the belt), so a
   single impulse is not evidence of wear; some worn snippets are faint.
 
-Everything is seeded: the same ``seed`` gives bit-identical data and, on the same torch build,
-the same trained weights.
+Everything is seeded and deterministic on one machine: the same ``seed`` gives bit-identical
+data and, on the same torch build, the same trained weights (training and the summary run on
+one thread with torch's deterministic algorithms: :func:`deterministic`). The README's demo
+figures come from :func:`demo_figures` (``python -m qwidgets.demo --readme`` prints the
+paragraph) and a test checks that the README says what it prints.
 
 >>> x, y = make_snippets(6, seed=1)
 >>> tuple(x.shape), x.dtype, y.tolist()
@@ -29,7 +32,9 @@ the same trained weights.
 from __future__ import annotations
 
 import math
+import sys
 from collections import OrderedDict
+from contextlib import contextmanager
 from functools import lru_cache
 from typing import NamedTuple
 
@@ -170,6 +175,24 @@ def build_model(seed: int = 0) -> nn.Sequential:
     return nn.Sequential(OrderedDict(layers))
 
 
+@contextmanager
+def deterministic():
+    """One torch thread and torch's deterministic algorithms inside the block (restored after).
+
+    Float sums split across threads round differently, so a thread count is part of the
+    result; one thread is also faster for convolutions this small on a busy machine.
+    """
+    threads = torch.get_num_threads()
+    strict = torch.are_deterministic_algorithms_enabled()
+    torch.set_num_threads(1)
+    torch.use_deterministic_algorithms(True)
+    try:
+        yield
+    finally:
+        torch.use_deterministic_algorithms(strict)
+        torch.set_num_threads(threads)
+
+
 def train_model(
     model: nn.Module,
     x: torch.Tensor,
@@ -195,10 +218,7 @@ def train_model(
         opt, max_lr=lr, total_steps=epochs * math.ceil(x.shape[0] / batch_size)
     )
     loss_fn = nn.CrossEntropyLoss()
-    threads = torch.get_num_threads()
-    # Convolutions this small run faster on one thread than split across busy cores.
-    torch.set_num_threads(1)
-    try:
+    with deterministic():
         model.train()
         for _ in range(epochs):
             order = torch.randperm(x.shape[0], generator=gen)
@@ -208,8 +228,6 @@ def train_model(
                 loss_fn(model(x[idx]), y[idx]).backward()
                 opt.step()
                 sched.step()
-    finally:
-        torch.set_num_threads(threads)
     return model.eval()
 
 
@@ -262,36 +280,71 @@ def load_demo(seed: int = 0) -> BearingDemo:
 
 
 # ----------------------------------------------------------------------------- summary
-def main() -> None:
-    """Print the headless quantization summary (what ``python -m qwidgets.demo`` shows)."""
-    print(_summary())
-
-
-def _summary() -> str:
+def demo_figures(seed: int = 0) -> dict:
+    """The demo's headline numbers (the README's): scan on 256 training snippets, plan for the
+    board's budget, check on the held-out snippets; computed deterministically."""
     from .planning.evaluate import evaluate_plan
     from .planning.scanning import scan
     from .planning.solver import plan_budget
 
-    demo = load_demo()
-    calib = demo.x_train[:256]
-    with torch.no_grad():
-        float_acc = accuracy(demo.model(demo.x_test), demo.y_test)
+    demo = load_demo(seed)
+    with deterministic(), torch.no_grad():
+        table = scan(demo.model, demo.x_train[:256], progress=False)
+        plan = plan_budget(table, weight_kib=BOARD_WEIGHT_BUDGET_KIB)
+        report = evaluate_plan(demo.model, demo.x_test, plan, metric=accuracy, target=demo.y_test)
     n_weights = sum(p.numel() for n, p in demo.model.named_parameters() if p.dim() > 1)
+    return {
+        "table": table, "plan": plan, "report": report, "n_weights": n_weights,
+        "n_test": len(demo.y_test), "float_accuracy": report.metric_float,
+        "planned_accuracy": report.metric_planned, "bits": dict(plan.bits),
+        "mean_bits": report.mean_weight_bits, "weight_kib": report.weight_kib,
+        "smaller": report.float_weight_kib / report.weight_kib,
+    }
+
+
+def readme_paragraph(figures: dict | None = None) -> str:
+    """The README's sentence on the plan, from :func:`demo_figures` (so it cannot drift)."""
+    f = demo_figures() if figures is None else figures
+    bits = f["bits"]
+    spread = ", ".join(f"{name} {b}" for name, b in bits.items())
+    return (f"At {BOARD_WEIGHT_BUDGET_KIB:g} KiB for the whole model (codes, scales and zero points, "
+            f"and the biases and BatchNorm values that stay in float32) the planner gives the "
+            f"layers {min(bits.values())} to "
+            f"{max(bits.values())} bits ({spread}; {f['mean_bits']:.2f} on average), "
+            f"{f['smaller']:.1f} times smaller than the planned weights in float32, and held-out "
+            f"accuracy goes from "
+            f"{f['float_accuracy']:.1%} in float to {f['planned_accuracy']:.1%} "
+            f"(`python -m qwidgets.demo --readme` prints this sentence).")
+
+
+def main(argv: list[str] | None = None) -> None:
+    """``python -m qwidgets.demo``: the headless quantization summary; ``--readme``: the
+    README's sentence on the plan."""
+    args = sys.argv[1:] if argv is None else argv
+    if args == ["--readme"]:
+        print(readme_paragraph())
+    elif args in ([], ["--summary"]):
+        print(_summary())
+    else:
+        raise SystemExit("usage: python -m qwidgets.demo [--summary | --readme]")
+
+
+def _summary() -> str:
+    f = demo_figures()
+    table, plan, report = f["table"], f["plan"], f["report"]
+    n_weights = f["n_weights"]
     lines = [
         "qwidgets demo: bearing-wear classifier for a conveyor motor's sensor board",
         f"  {n_weights} weights ({n_weights * 4 / 1024:.1f} KiB in float32); "
-        f"held-out accuracy in float: {float_acc:.2%} on {len(demo.y_test)} snippets",
+        f"held-out accuracy in float: {f['float_accuracy']:.2%} on {f['n_test']} snippets",
         "",
         "Model-output SQNR (dB) with one layer's weights quantized (per-channel, MSE range):",
     ]
-    table = scan(demo.model, calib, progress=False)
     head = "  layer " + "".join(f"{b:>7d}b" for b in table.bits)
     lines.append(head)
     for name in table.layers:
         row = "".join(f"{table.sqnr_db(name, b):8.1f}" for b in table.bits)
         lines.append(f"  {name:>5s} {row}")
-    plan = plan_budget(table, weight_kib=BOARD_WEIGHT_BUDGET_KIB)
-    report = evaluate_plan(demo.model, demo.x_test, plan, metric=accuracy, target=demo.y_test)
     bits = ", ".join(f"{k}:{v}" for k, v in plan.bits.items())
     lines += [
         "",
