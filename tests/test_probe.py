@@ -505,7 +505,7 @@ def test_empty_data(convbn):
 
 
 def test_unknown_method_or_style_through_fit_weight():
-    with pytest.raises(ValueError, match="method must be one of 'minmax', 'percentile', 'mse'; got 'max'"):
+    with pytest.raises(ValueError, match="method must be one of 'minmax', 'percentile', 'mse', got 'max'"):
         fit_weight(nn.Linear(2, 2), 4, "max")
     with pytest.raises(ValueError, match="style must be one of"):
         fit_weight(nn.Linear(2, 2), 4, style="floor")
