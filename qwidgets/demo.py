@@ -320,7 +320,7 @@ def readme_paragraph(figures: dict | None = None) -> str:
 def main(argv: list[str] | None = None) -> None:
     """``python -m qwidgets.demo``: the headless quantization summary; ``--readme``: the
     README's sentence on the plan."""
-    args = sys.argv[1:] if argv is None else argv
+    args = [] if argv is None else list(argv)
     if args == ["--readme"]:
         print(readme_paragraph())
     elif args in ([], ["--summary"]):
@@ -357,4 +357,4 @@ def _summary() -> str:
 
 
 if __name__ == "__main__":
-    main()
+    main(sys.argv[1:])
