@@ -18,6 +18,7 @@ from .plan import Plan
 from .schema import (
     ESTIMATES,
     FieldError,
+    NonFinite,
     table_fields,
 )
 
@@ -375,7 +376,7 @@ class SensitivityTable:
         """Read a table written by :meth:`save` (JSON only; every field checked)."""
         text = read_text(path, "table")
         try:
-            data = json.loads(text)
+            data = json.loads(text, parse_constant=NonFinite)  # NaN / Infinity: named, refused
         except json.JSONDecodeError as e:
             raise ValueError(f"the table is not valid JSON (truncated or damaged?): {e}") from None
         try:
