@@ -28,7 +28,6 @@ ALLOWED_PRIVATE = {
     ("qwidgets.widgets.tasks", "_running_loop"),
 }
 ALLOWED_LONG = {
-    "qwidgets.widgets.explorer",  # removed by the widgets work (issue 10): split by concern
     "qwidgets.planning.schema",  # plans and tables in one strict schema (~450 lines): to split
 }
 
