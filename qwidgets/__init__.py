@@ -54,6 +54,8 @@ _EXPORTS = {
     "apply_plan": "planning.apply",
     "evaluate_plan": "planning.evaluate",
     "PlanReport": "planning.evaluate",
+    "metric_curve": "planning.curve",
+    "CurvePoint": "planning.curve",
     "export_codes": "planning.apply",
     "export_onnx": "planning.onnx_export",
     # drawing

@@ -13,6 +13,7 @@ from ..model.outputs import OutputComparison, call_metric, check_output_fn, floa
 from ..model.running import run_with_hooks
 from ..model.sources import batch_size, data_source
 from .apply import apply_plan
+from .bootstrap import check_confidence, concat, paired_drop_interval
 from .plan import CAUTION, Plan
 
 
@@ -22,7 +23,9 @@ class PlanReport:
 
     ``output``: :class:`ErrorStats` of the planned model's output against the float model's;
     ``measured_sqnr_db`` is its SQNR; ``metric_float`` / ``metric_planned``: the user's
-    metric on each (None without one); ``skipped``: planned layers not applied (strict=False).
+    metric on each (None without one); ``skipped``: planned layers not applied (strict=False);
+    ``drop_low`` / ``drop_high``: the paired bootstrap interval of :attr:`drop` at
+    ``confidence`` (when asked for).
     """
 
     measured_sqnr_db: float
@@ -38,6 +41,16 @@ class PlanReport:
     skipped: tuple = ()
     caution: str = CAUTION
     model_kib: float | None = None
+    drop_low: float | None = None
+    drop_high: float | None = None
+    confidence: float | None = None
+
+    @property
+    def drop(self) -> float | None:
+        """``metric_float - metric_planned`` (None without a metric)."""
+        if self.metric_float is None or self.metric_planned is None:
+            return None
+        return self.metric_float - self.metric_planned
 
     @property
     def metric_change(self) -> float | None:
@@ -61,6 +74,9 @@ class PlanReport:
         ]
         if self.metric_float is not None:
             lines.append(f"metric: float {self.metric_float:.6g}, planned {self.metric_planned:.6g}")
+        if self.drop_low is not None:
+            lines.append(f"drop {self.drop:.4g}, {self.confidence:.0%} interval "
+                         f"[{self.drop_low:.4g}, {self.drop_high:.4g}] (paired bootstrap over samples)")
         if self.skipped:
             lines.append(f"skipped layers: {', '.join(self.skipped)}")
         lines.append(self.caution)
@@ -69,7 +85,8 @@ class PlanReport:
 
 def evaluate_plan(model: nn.Module, data, plan: Plan, *, metric: Callable | None = None,
                   target=None, strict: bool = True, output: Callable | None = None,
-                  max_samples: int | None = None, allow_other_weights: bool = False) -> PlanReport:
+                  max_samples: int | None = None, allow_other_weights: bool = False,
+                  confidence: float | None = None, n_boot: int = 1000, seed: int = 0) -> PlanReport:
     """Run the float model and :func:`apply_plan`'s model on ``data`` and compare.
 
     ``data``: one batch (tensor, tuple / list of args, dict of kwargs, numpy array) or a
@@ -79,6 +96,14 @@ def evaluate_plan(model: nn.Module, data, plan: Plan, *, metric: Callable | None
     (for example accuracy) is computed for both when given; with many batches ``target`` is an
     iterable of per-batch targets and the metric is averaged, weighted by batch size.
     ``strict`` and ``allow_other_weights`` as in :func:`apply_plan`. ``model`` is untouched.
+
+    ``confidence`` (e.g. 0.95, with a metric): the report's ``drop_low`` / ``drop_high`` give a
+    paired percentile bootstrap interval of the drop ``metric_float - metric_planned``
+    (Efron & Tibshirani 1993): ``n_boot`` times, the samples are drawn with replacement, the
+    same indices for both models, and the metric is recomputed on both models' outputs of
+    those samples, ``metric(output[idx], target[idx])`` (axis 0 of every output tensor and of
+    the target is the sample axis; many batches are joined along it). The interval reflects
+    the sampling of the data only: measure it on held-out data, not the calibration data.
 
     >>> import torch
     >>> from torch import nn
@@ -100,6 +125,11 @@ def evaluate_plan(model: nn.Module, data, plan: Plan, *, metric: Callable | None
         planned = apply_plan(model, plan, strict=strict, allow_other_weights=allow_other_weights)
     source = data_source(model, data, max_samples)
     targets = None if (source.single or metric is None) else iter(_per_batch_targets(target))
+    if confidence is not None:
+        if metric is None:
+            raise ValueError("confidence needs a metric: the interval is of the metric's drop")
+        check_confidence(confidence, n_boot)
+    kept: list = []  # (float output, planned output, target) per batch, for the bootstrap
     sums = OutputComparison()
     mf = mp = 0.0
     weight = 0
@@ -113,7 +143,16 @@ def evaluate_plan(model: nn.Module, data, plan: Plan, *, metric: Callable | None
             mf += w * call_metric(metric, ref, t)
             mp += w * call_metric(metric, out, t)
             weight += w
+            if confidence is not None:
+                kept.append((ref, out, t))
     sums.check_varies()
+    low = high = None
+    if confidence is not None:
+        ref_all = concat([k[0] for k in kept]) if len(kept) > 1 else kept[0][0]
+        out_all = concat([k[1] for k in kept]) if len(kept) > 1 else kept[0][1]
+        tgt_all = concat([k[2] for k in kept]) if len(kept) > 1 else kept[0][2]
+        low, high = paired_drop_interval(metric, ref_all, out_all, tgt_all, confidence=confidence,
+                                         n_boot=n_boot, seed=seed)
     stats = sums.stats()
     mf, mp = (None, None) if metric is None else (mf / weight, mp / weight)
     applied = set(planned.qwidgets_applied)
@@ -134,6 +173,9 @@ def evaluate_plan(model: nn.Module, data, plan: Plan, *, metric: Callable | None
         float_bops=sub.float_bops,
         skipped=tuple(planned.qwidgets_skipped),
         model_kib=plan.model_kib,
+        drop_low=low,
+        drop_high=high,
+        confidence=None if confidence is None else float(confidence),
     )
 
 

@@ -298,11 +298,19 @@ class SensitivityTable:
                                                   else assumed_input_bits),
                               predicted_sqnr_db=predicted_sqnr_db,
                               entries={n: self._entry_info(n) for n in settings},
-                              other_weight_bits=self.unplanned_bits(settings))
+                              other_weight_bits=max(0, int(self.coverage.total_bits) - sum(
+                                  self._settings[("stored", n)] for n in settings)))
 
     def _entry_info(self, name: str) -> dict:
-        return {"kind": self.kind(name), "has_input": self.has_input(name),
-                "shared_with": self.shared_with(name), "weight_digest": self.weight_digest(name)}
+        """What a plan records of an entry (cached: a front's plans share it; read-only)."""
+        key = ("info", name)
+        d = self._settings.get(key)
+        if d is None:
+            d = {"kind": self.kind(name), "has_input": self.has_input(name),
+                 "shared_with": self.shared_with(name), "weight_digest": self.weight_digest(name)}
+            self._settings[("stored", name)] = self.stored_bits(name)
+            self._settings[key] = d
+        return d
 
     def _shape(self, name: str) -> tuple:
         return tuple(int(d) for d in self._info[name]["weight_shape"])
