@@ -58,6 +58,15 @@ def torch_threads(n: int | None):
         torch.set_num_threads(before)
 
 
+def running_loop():
+    """The running event loop (a kernel's), or None in a script or a test.
+
+    >>> running_loop() is None
+    True
+    """
+    return _running_loop()
+
+
 def _running_loop():
     try:
         return asyncio.get_running_loop()

@@ -18,7 +18,7 @@ from collections.abc import Callable
 
 import ipywidgets as widgets
 
-from .events import MessageLine, _running_loop
+from .events import MessageLine, running_loop
 
 __all__ = ["TaskRunner"]
 
@@ -81,7 +81,7 @@ class TaskRunner:
             finally:
                 self._finish()
 
-        if _running_loop() is None:
+        if running_loop() is None:
             run()
         else:
             self.thread = threading.Thread(target=run, name=f"qwidgets {self.what}", daemon=True)
