@@ -58,6 +58,8 @@ _EXPORTS = {
     "CurvePoint": "planning.curve",
     "export_codes": "planning.apply",
     "export_onnx": "planning.onnx_export",
+    "refine_plan": "planning.refining",
+    "RefineResult": "planning.refining",
     # drawing
     "plot_sensitivity": "viz.heatmap",
     # widgets

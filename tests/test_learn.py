@@ -11,7 +11,7 @@ from hypothesis import strategies as st
 from torch import nn
 
 from qwidgets import LearnResult, UniformGrid, fit_range, layer_error, learn_grid
-from qwidgets.learn.one_grid import _Adam
+from qwidgets.learn.optim import Adam
 
 
 def _layer(seed=0, n_in=24, n_out=12):
@@ -47,7 +47,7 @@ def test_adam_matches_torch_optim_adam():
     torch.manual_seed(3)
     a = torch.randn(5, requires_grad=True)
     b = a.detach().clone().requires_grad_(True)
-    ours = _Adam([a])
+    ours = Adam([a])
     ref = torch.optim.Adam([b], lr=0.1)
     for i in range(25):
         lr = 0.1 * (1 + math.cos(math.pi * i / 25)) / 2

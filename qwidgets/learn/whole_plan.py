@@ -1,0 +1,272 @@
+"""Every planned entry's grids as learnable numbers, and a copy of the model run with them.
+
+:class:`PlanGrids` is the machinery behind :func:`qwidgets.refine_plan`: it deep-copies the
+model (eval mode, parameters frozen), parameterises each entry's weight grid and input grid as
+:func:`qwidgets.learn_grid` does, and runs the copy either with *relaxed* grids (concrete
+samples through :func:`qwidgets.relaxed_quantize`, differentiable in every scale, offset and
+noise width at once) or with *hard* grids (round to nearest, what :func:`qwidgets.apply_plan`
+computes).
+
+Entries are named as in a plan: a module name whose module holds a ``weight`` parameter
+(its input is the module's first positional input), or the full name of a parameter (for
+tensors used by their parent's forward; such an entry has no input grid). Weights are
+substituted with :func:`torch.func.functional_call`, inputs by forward pre-hooks on the copy;
+the user's model is only read (deep-copied once).
+
+Parametrisation, per entry and source: ``scale = scale0 * exp(a)``, ``offset = offset0 +
+scale0 * b`` (``a`` and ``b`` per channel for a per-channel grid) and the noise width
+``exp(c) * scale`` (``c`` one value: the noise as a fraction of the step), so one learning rate
+suits every entry whatever its range.
+"""
+
+from __future__ import annotations
+
+import copy
+import math
+from collections.abc import Iterable, Mapping
+from dataclasses import dataclass
+
+import torch
+from torch import nn
+
+from ..core.grid import UniformGrid, grid_params
+from ..core.relaxed import relaxed_quantize
+from ..core.rounding import quantize
+from ..core.setting import LayerSetting
+from .one_grid import DEFAULT_NOISE
+
+__all__ = ["PlanGrids", "GridEntry", "LEARNABLE", "SOURCES", "MIN_NOISE", "resolve_entry"]
+
+LEARNABLE = ("scale", "offset", "noise")
+SOURCES = ("weight", "input")
+MIN_NOISE = 0.02  # fraction of the grid step; below it the relaxed gradients vanish
+
+
+def resolve_entry(model: nn.Module, name: str) -> tuple[nn.Module, str]:
+    """The module an entry's input goes into and the full name of its weight parameter.
+
+    >>> from torch import nn
+    >>> net = nn.Sequential(nn.Linear(2, 3))
+    >>> resolve_entry(net, "0")[1], resolve_entry(net, "0.bias")[1]
+    ('0.weight', '0.bias')
+    """
+    modules = dict(model.named_modules())
+    module = modules.get(name)
+    if module is not None and isinstance(getattr(module, "weight", None), torch.Tensor):
+        return module, f"{name}.weight" if name else "weight"
+    params = dict(model.named_parameters(remove_duplicate=False))
+    if name in params:
+        owner = name.rpartition(".")[0]
+        return modules[owner], name
+    raise ValueError(f"plan entry {name!r} is neither a module with a weight nor a parameter of the model")
+
+
+@dataclass(eq=False)
+class GridEntry:
+    """One learned grid: ``name`` (the plan's entry), ``source`` ("weight" / "input"), the
+    starting grid, the weight's parameter name, and the learned numbers ``a`` (log scale
+    factor), ``b`` (offset shift in starting steps) and ``c`` (log noise fraction)."""
+
+    name: str
+    source: str
+    start: UniformGrid
+    param: str
+    a: torch.Tensor
+    b: torch.Tensor
+    c: torch.Tensor
+    zero_point: bool
+
+    def grid(self, a=None, b=None) -> UniformGrid:
+        """The grid for the current (or the given) numbers, attached to the autograd graph."""
+        a = self.a if a is None else a
+        b = self.b if b is None else b
+        scale = self._s0() * torch.exp(a)
+        return self.start.replace(scale=scale, offset=self._offset(scale, b))
+
+    def _offset(self, scale: torch.Tensor, b: torch.Tensor) -> torch.Tensor:
+        s0 = self._s0()
+        if not self.zero_point:
+            return self._o0() + s0 * b
+        # keep an integer zero point: Z = round(Z0 - b), with the straight-through gradient of
+        # Z0 - b, so the relaxed and the hard quantizer see the same grid (common practice)
+        z = -self._o0() / s0 - b
+        z = z + (torch.round(z) - z).detach()
+        return -z * scale
+
+    def noise_width(self, grid: UniformGrid, factor: float, c=None) -> torch.Tensor:
+        """The logistic noise in the values' units: ``max(exp(c) * factor, MIN_NOISE) * scale``."""
+        c = self.c if c is None else c
+        return (torch.exp(c) * factor).clamp(min=MIN_NOISE) * grid.scale_tensor()
+
+    def final(self) -> UniformGrid:
+        """The current grid, detached (an integer zero point where the start had one)."""
+        with torch.no_grad():
+            scale = (self._s0() * torch.exp(self.a)).clone()
+            offset = self._offset(scale, self.b).clone()
+        if self.start.axis is None and not isinstance(self.start.scale, torch.Tensor):
+            g = self.start.replace(scale=float(scale), offset=float(offset) + 0.0)
+        else:
+            g = self.start.replace(scale=scale, offset=offset)
+        return g.snapped() if self.zero_point else g  # snapped: exact multiples after rounding
+
+    def _s0(self) -> torch.Tensor:
+        return self.start.scale_tensor().to(self.a.dtype)
+
+    def _o0(self) -> torch.Tensor:
+        return self.start.offset_tensor().to(self.b.dtype)
+
+
+class _InputHook:
+    """Forward pre-hook on the copy: quantizes the module's first input (relaxed or hard)."""
+
+    def __init__(self, owner: PlanGrids, name: str):
+        self.owner, self.name = owner, name
+
+    def __call__(self, module, args):
+        if not args or not isinstance(args[0], torch.Tensor):
+            return None
+        q = self.owner._quantize_input(self.name, args[0])
+        return None if q is None else (q,) + tuple(args[1:])
+
+
+class PlanGrids:
+    """A frozen, eval-mode copy of ``model`` whose planned grids are learnable.
+
+    ``settings``: entry name -> :class:`qwidgets.LayerSetting` (a plan's ``layers``);
+    ``learn``: which of "scale", "offset", "noise" get gradients; ``sources``: which of
+    "weight", "input" are learned (the other grids still quantize, fixed); ``noise``: the
+    starting noise as a fraction of the step.
+
+    >>> import torch
+    >>> from torch import nn
+    >>> from qwidgets import LayerSetting, UniformGrid
+    >>> net = nn.Sequential(nn.Linear(4, 3), nn.ReLU(), nn.Linear(3, 2))
+    >>> pg = PlanGrids(net, {"0": LayerSetting(weight=UniformGrid(3, 0.1)),
+    ...                      "2": LayerSetting(input=UniformGrid(4, 0.05, signed=False))})
+    >>> x = torch.randn(5, 4)
+    >>> out = pg.relaxed(x, temperature=0.5, noise_factor=1.0, generator=torch.Generator())
+    >>> out.requires_grad, len(pg.parameters())
+    (True, 6)
+    >>> torch.equal(pg.hard(x, pg.settings()), pg.hard(x, pg.settings()))
+    True
+    """
+
+    def __init__(self, model: nn.Module, settings: Mapping[str, LayerSetting], *,
+                 learn: Iterable[str] = LEARNABLE, sources: Iterable[str] = SOURCES,
+                 noise: float = DEFAULT_NOISE):
+        learn, sources = set(learn), set(sources)
+        self.model = copy.deepcopy(model).eval()
+        for p in self.model.parameters():
+            p.requires_grad_(False)
+            p.grad = None
+        params = dict(self.model.named_parameters(remove_duplicate=False))
+        self.entries: list[GridEntry] = []
+        self._inputs: dict[str, GridEntry] = {}
+        self._mode: tuple | None = None  # how the input hooks quantize during a forward
+        for name, setting in settings.items():
+            module, pname = resolve_entry(self.model, name)
+            w = params[pname]
+            for source in SOURCES:
+                grid = getattr(setting, source)
+                if grid is None:
+                    continue
+                if source == "weight":
+                    grid_params(w, grid)  # per-channel size check, with a clear message
+                elif pname == name:  # a parameter entry: its parent's forward uses it directly
+                    raise ValueError(f"plan entry {name!r} names a parameter, which has no input to quantize")
+                self.entries.append(self._entry(name, source, grid.detached(), pname, w.dtype,
+                                                noise, learn if source in sources else set()))
+            if setting.input is not None:
+                self._inputs[name] = next(e for e in self.entries if e.name == name and e.source == "input")
+                module.register_forward_pre_hook(_InputHook(self, name))
+
+    @staticmethod
+    def _entry(name, source, start, pname, dtype, noise, learn) -> GridEntry:
+        dtype = dtype if dtype in (torch.float32, torch.float64) else torch.float32
+        s0 = start.scale_tensor().to(dtype)
+        o0 = start.offset_tensor().to(dtype)
+        a = torch.zeros_like(s0, requires_grad="scale" in learn)
+        b = torch.zeros_like(o0, requires_grad="offset" in learn)
+        c = torch.tensor(math.log(noise), dtype=dtype, requires_grad="noise" in learn)
+        return GridEntry(name, source, start, pname, a, b, c, start.has_zero_point())
+
+    # ------------------------------------------------------------------ numbers
+    def parameters(self) -> list[torch.Tensor]:
+        """The learned numbers (those with gradients), for an optimiser."""
+        return [t for e in self.entries for t in (e.a, e.b, e.c) if t.requires_grad]
+
+    def settings(self) -> dict[str, LayerSetting]:
+        """The current grids as settings (detached, integer zero points kept where they were)."""
+        out: dict[str, dict] = {}
+        for e in self.entries:
+            out.setdefault(e.name, {})[e.source] = e.final()
+        return {n: LayerSetting(**g) for n, g in out.items()}
+
+    def noise_fractions(self) -> dict[tuple[str, str], float]:
+        """(entry, source) -> learned noise as a fraction of the step (before annealing)."""
+        return {(e.name, e.source): float(torch.exp(e.c.detach())) for e in self.entries}
+
+    # ------------------------------------------------------------------ forwards
+    def relaxed(self, data, *, temperature: float, noise_factor: float,
+                generator: torch.Generator | None, window: int | None = None):
+        """The copy's output with every grid relaxed (concrete samples), differentiable."""
+        grids = {id(e): e.grid() for e in self.entries}
+        weights = {}
+        for e in self.entries:
+            if e.source == "weight":
+                g = grids[id(e)]
+                w = self.model.get_parameter(e.param)
+                weights[e.param] = relaxed_quantize(w, g, e.noise_width(g, noise_factor), temperature,
+                                                    window=_window(g, window), generator=generator)
+        self._mode = ("relaxed", grids, temperature, noise_factor, generator, window)
+        try:
+            return _call(self.model, weights, data)
+        finally:
+            self._mode = None
+
+    @torch.no_grad()
+    def hard(self, data, settings: Mapping[str, LayerSetting]):
+        """The copy's output with ``settings``' grids, rounded to nearest (as apply_plan does)."""
+        weights = {}
+        for e in self.entries:
+            if e.source == "weight":
+                w = self.model.get_parameter(e.param)
+                weights[e.param] = quantize(w, settings[e.name].weight)
+        self._mode = ("hard", settings)
+        try:
+            return _call(self.model, weights, data)
+        finally:
+            self._mode = None
+
+    @torch.no_grad()
+    def float(self, data):
+        """The copy's float output (no grid applied)."""
+        return _call(self.model, {}, data)
+
+    def _quantize_input(self, name: str, x: torch.Tensor):
+        mode = self._mode
+        if mode is None:
+            return None
+        if mode[0] == "hard":
+            return quantize(x, mode[1][name].input)
+        _, grids, temperature, factor, generator, window = mode
+        e = self._inputs[name]
+        g = grids[id(e)]
+        return relaxed_quantize(x, g, e.noise_width(g, factor), temperature,
+                                window=_window(g, window), generator=generator)
+
+
+def _window(grid: UniformGrid, window):
+    if window is not None:
+        return window
+    return None if grid.n_levels <= 8 else 5  # the cost then does not grow with the bit width
+
+
+def _call(model: nn.Module, weights: dict, data):
+    from torch.func import functional_call
+
+    if isinstance(data, Mapping):
+        return functional_call(model, weights, (), dict(data))
+    if isinstance(data, tuple):
+        return functional_call(model, weights, data)
+    return functional_call(model, weights, (data,))
