@@ -48,7 +48,7 @@ demo: setup
 	@VENV=$(VENV) bash .ci/demo
 
 bench: setup
-	for b in core probe explorer scan scale planning; do $(PY) benchmarks/bench_$$b.py || exit 1; done
+	for b in core probe explorer scan scale planning refine; do $(PY) benchmarks/bench_$$b.py || exit 1; done
 
 clean:
 	rm -rf build .pytest_cache
