@@ -361,6 +361,9 @@ def test_bad_input_errors():
         refine_plan(model, x, plan, loss=nn.functional.cross_entropy, target=torch.zeros(3, dtype=torch.long))
     with pytest.raises(TypeError, match="loss\\(output, target\\) must return"):
         refine_plan(model, x, plan, steps=1, progress=False, loss=lambda o, t: 1.0)
+    with pytest.raises(ValueError, match="output tensors must have one row per sample \\(128\\)"):
+        flat = nn.Sequential(model, nn.Flatten(0))  # the output has no sample dimension
+        refine_plan(flat, x, make_plan(flat, {f"0.{n}": s for n, s in plan.layers.items()}))
     other = nn.Sequential(nn.Linear(10, 24), nn.ReLU(), nn.Linear(24, 5))
     with pytest.raises(ValueError, match="made for another model"):
         refine_plan(other, x, plan)

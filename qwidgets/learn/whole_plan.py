@@ -202,10 +202,6 @@ class PlanGrids:
             out.setdefault(e.name, {})[e.source] = e.final()
         return {n: LayerSetting(**g) for n, g in out.items()}
 
-    def noise_fractions(self) -> dict[tuple[str, str], float]:
-        """(entry, source) -> learned noise as a fraction of the step (before annealing)."""
-        return {(e.name, e.source): float(torch.exp(e.c.detach())) for e in self.entries}
-
     # ------------------------------------------------------------------ forwards
     def relaxed(self, data, *, temperature: float, noise_factor: float,
                 generator: torch.Generator | None, window: int | None = None):
@@ -239,7 +235,7 @@ class PlanGrids:
             self._mode = None
 
     @torch.no_grad()
-    def float(self, data):
+    def float_output(self, data):
         """The copy's float output (no grid applied)."""
         return _call(self.model, {}, data)
 

@@ -165,11 +165,15 @@ def refine_plan(
 def _refine(model, data, n, plan, *, steps, lr, loss, target, batch_size, learn, sources,
             progress, seed, callback) -> RefineResult:
     grids = PlanGrids(model, plan.layers, learn=learn, sources=sources)
-    reference = grids.float(data)
+    reference = grids.float_output(data)
     ref_flat = flat_output(reference, "float")
     power = float(ref_flat.double().square().mean())
     if power == 0.0 and loss is None:
         raise ValueError("the model's float output is all zeros on this data; there is no error to learn against")
+    shapes = [tuple(t.shape) for t in iter_tensors(reference) if t.is_floating_point()]
+    if any(len(sh) == 0 or sh[0] != n for sh in shapes):
+        raise ValueError(f"the model's output tensors must have one row per sample ({n}) to be compared "
+                         f"batch by batch, got shapes {shapes}")
 
     def measure(settings) -> float:
         return error_stats(ref_flat, flat_output(grids.hard(data, settings), "quantized")).sqnr_db
