@@ -7,11 +7,11 @@ samples through :func:`qwidgets.relaxed_quantize`, differentiable in every scale
 noise width at once) or with *hard* grids (round to nearest, what :func:`qwidgets.apply_plan`
 computes).
 
-Entries are named as in a plan: a module name whose module holds a ``weight`` parameter
-(its input is the module's first positional input), or the full name of a parameter (for
-tensors used by their parent's forward; such an entry has no input grid). Weights are
-substituted with :func:`torch.func.functional_call`, inputs by forward pre-hooks on the copy;
-the user's model is only read (deep-copied once).
+Entries are the plan's, found with :func:`qwidgets.model.entries.find_entries` (Linear, Conv,
+ConvTranspose, attention projections, recurrent matrices, embeddings; a tied tensor once):
+weights are substituted by parameter name with :func:`torch.func.functional_call` (tied
+weights kept tied), inputs (for entries that run as modules) quantized by forward pre-hooks on
+the copy. The user's model is only read (deep-copied once).
 
 Parametrisation, per entry and source: ``scale = scale0 * exp(a)``, ``offset = offset0 +
 scale0 * b`` (``a`` and ``b`` per channel for a per-channel grid) and the noise width
@@ -33,32 +33,14 @@ from ..core.grid import UniformGrid, grid_params
 from ..core.relaxed import relaxed_quantize
 from ..core.rounding import quantize
 from ..core.setting import LayerSetting
+from ..model.entries import find_entries
 from .one_grid import DEFAULT_NOISE
 
-__all__ = ["PlanGrids", "GridEntry", "LEARNABLE", "SOURCES", "MIN_NOISE", "resolve_entry"]
+__all__ = ["PlanGrids", "GridEntry", "LEARNABLE", "SOURCES", "MIN_NOISE"]
 
 LEARNABLE = ("scale", "offset", "noise")
 SOURCES = ("weight", "input")
 MIN_NOISE = 0.02  # fraction of the grid step; below it the relaxed gradients vanish
-
-
-def resolve_entry(model: nn.Module, name: str) -> tuple[nn.Module, str]:
-    """The module an entry's input goes into and the full name of its weight parameter.
-
-    >>> from torch import nn
-    >>> net = nn.Sequential(nn.Linear(2, 3))
-    >>> resolve_entry(net, "0")[1], resolve_entry(net, "0.bias")[1]
-    ('0.weight', '0.bias')
-    """
-    modules = dict(model.named_modules())
-    module = modules.get(name)
-    if module is not None and isinstance(getattr(module, "weight", None), torch.Tensor):
-        return module, f"{name}.weight" if name else "weight"
-    params = dict(model.named_parameters(remove_duplicate=False))
-    if name in params:
-        owner = name.rpartition(".")[0]
-        return modules[owner], name
-    raise ValueError(f"plan entry {name!r} is neither a module with a weight nor a parameter of the model")
 
 
 @dataclass(eq=False)
@@ -159,26 +141,31 @@ class PlanGrids:
         for p in self.model.parameters():
             p.requires_grad_(False)
             p.grad = None
-        params = dict(self.model.named_parameters(remove_duplicate=False))
+        found = {e.name: e for e in find_entries(self.model)}
         self.entries: list[GridEntry] = []
         self._inputs: dict[str, GridEntry] = {}
         self._mode: tuple | None = None  # how the input hooks quantize during a forward
         for name, setting in settings.items():
-            module, pname = resolve_entry(self.model, name)
-            w = params[pname]
+            entry = found.get(name)
+            if entry is None:
+                raise ValueError(f"plan entry {name!r} is not a quantizable weight of the model; "
+                                 f"entries: {list(found)}")
+            w = entry.parameter(self.model)
             for source in SOURCES:
                 grid = getattr(setting, source)
                 if grid is None:
                     continue
                 if source == "weight":
                     grid_params(w, grid)  # per-channel size check, with a clear message
-                elif pname == name:  # a parameter entry: its parent's forward uses it directly
-                    raise ValueError(f"plan entry {name!r} names a parameter, which has no input to quantize")
-                self.entries.append(self._entry(name, source, grid.detached(), pname, w.dtype,
+                elif not entry.runs_as_module:  # its owner's forward uses the weight directly
+                    raise ValueError(f"plan entry {name!r} ({entry.type_name}) is weight-only; "
+                                     "it has no input to quantize")
+                self.entries.append(self._entry(name, source, grid.detached(), entry.param, w.dtype,
                                                 noise, learn if source in sources else set()))
             if setting.input is not None:
                 self._inputs[name] = next(e for e in self.entries if e.name == name and e.source == "input")
-                module.register_forward_pre_hook(_InputHook(self, name))
+                owner = self.model.get_submodule(entry.module) if entry.module else self.model
+                owner.register_forward_pre_hook(_InputHook(self, name))
 
     @staticmethod
     def _entry(name, source, start, pname, dtype, noise, learn) -> GridEntry:

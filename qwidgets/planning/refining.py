@@ -9,6 +9,7 @@ best, the starting plan included.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from collections.abc import Callable, Mapping
 from contextlib import contextmanager
@@ -23,7 +24,8 @@ from ..core.checks import check_positive
 from ..core.metrics import error_stats
 from ..learn.optim import Adam
 from ..learn.whole_plan import LEARNABLE, SOURCES, PlanGrids
-from ..model.running import check_data, check_model, flat_output, iter_tensors
+from ..model.outputs import flat_output, iter_tensors
+from ..model.running import check_data, check_model
 from .apply import match_plan
 from .plan import Plan
 
@@ -291,6 +293,9 @@ def _take(obj, idx: torch.Tensor, n: int):
         return tuple(_take(v, idx, n) for v in obj)
     if isinstance(obj, list):
         return [_take(v, idx, n) for v in obj]
+    if dataclasses.is_dataclass(obj) and not isinstance(obj, type):
+        return dataclasses.replace(obj, **{f.name: _take(getattr(obj, f.name), idx, n)
+                                           for f in dataclasses.fields(obj) if f.init})
     return obj
 
 
