@@ -205,23 +205,39 @@ def observe_value(widget, handler: Callable[[dict], object]) -> None:
     learning run; a planner has been measured). Taken as a person's move, that echo would
     replace what the kernel computed with a rounded or stale value. A value set exactly on the
     step grid draws no echo, so an echo is recognised as the step rounding of a recent
-    *off-grid* value: it is ignored (and if it was stale, the control is put back to the
-    latest value). Any other value reaches ``handler``; a person's move (always on the step
-    grid) also forgets the earlier off-grid values, which can no longer echo.
+    *off-grid* value the kernel set: it is ignored (and if it was stale, the control is put back
+    to the latest value). Values set in the kernel (by the widget or a script) always reach
+    ``handler``; a value from the front end (it arrives through ``Widget.set_state``) reaches it
+    when it moves the slider, and a person's move forgets the earlier kernel values, which can
+    no longer echo.
 
     >>> import ipywidgets as widgets
     >>> s = widgets.FloatSlider(min=0, max=1, step=0.1)
     >>> seen = []
     >>> observe_value(s, lambda c: seen.append(c["new"]))
     >>> s.value = 0.123   # set by the kernel, off the step grid
-    >>> s.value = 0.1     # the front end's rounded echo of it: ignored, 0.123 shown again
-    >>> s.value = 0.7     # a person's move
+    >>> s.set_state({"value": 0.1})  # the browser's rounded echo of it: ignored
+    >>> s.set_state({"value": 0.7})  # a person's move
     >>> seen, s.value
     ([0.123, 0.7], 0.7)
     """
-    echoes: list = []  # step roundings of recent off-grid values
+    echoes: list = []  # step roundings of recent off-grid values the kernel set
     latest = [widget.value]  # the latest value taken
     restoring = [False]
+    from_front = [False]  # True while ipywidgets applies a message from the front end
+
+    # ``Widget.set_state`` is ipywidgets' public entry for state sent by the front end: wrapping
+    # it on this instance tells a browser's value from one set in the kernel.
+    apply_front = widget.set_state
+
+    def set_state(sync_data):
+        from_front[0] = True
+        try:
+            return apply_front(sync_data)
+        finally:
+            from_front[0] = False
+
+    widget.set_state = set_state
 
     def remember(value) -> bool:
         snapped = _on_step_grid(widget, value)
@@ -237,6 +253,12 @@ def observe_value(widget, handler: Callable[[dict], object]) -> None:
         new = change["new"]
         if restoring[0]:
             return None
+        if not from_front[0]:  # set in the kernel (by the widget or a script): always taken
+            latest[0] = new
+            remember(new)
+            return handler(change)
+        # (no time limit: while a notebook runs all its cells, the kernel reads the front end's
+        # messages only after the last cell, long after it set the values they echo)
         if any(_same_position(widget, new, v) for v in echoes):
             if not _same_position(widget, new, _on_step_grid(widget, latest[0])):
                 restoring[0] = True  # a stale echo: show the latest value again
@@ -245,13 +267,9 @@ def observe_value(widget, handler: Callable[[dict], object]) -> None:
                 finally:
                     restoring[0] = False
             return None
-        # (no time limit: while a notebook runs all its cells, the kernel reads the front end's
-        # messages only after the last cell, long after it set the values they echo)
         if getattr(widget, "step", None) and _same_position(widget, new, latest[0]):
-            latest[0] = new  # the same slider position (an echo of an on-grid value): no move
-            return None
-        if not remember(new):
-            echoes.clear()  # on the step grid: a person's move; old values can no longer echo
+            return None  # the slider's position did not move: an echo, not a person's move
+        echoes.clear()  # a person moved it: earlier kernel values can no longer echo
         latest[0] = new
         return handler(change)
 
