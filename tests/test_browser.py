@@ -319,7 +319,7 @@ _STATE_AFTER_RUN = (
     "import json\n"
     "print(json.dumps({\n"
     "  'grid': repr(explorer.grid), 'learned_grid': repr(result.grid),\n"
-    "  'noise': explorer.noise, 'learned_noise': result.noise,\n"
+    "  'noise': explorer.noise_steps, 'learned_noise': result.noise_steps,\n"
     "  'measured': planner.report is not None,\n"
     "}))"
 )

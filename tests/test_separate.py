@@ -1,7 +1,11 @@
-"""Weights and inputs planned on their own: tables with input rows (quantize="separate"),
+"""Weights and inputs planned on their own: scan(quantize="separate"), tables with input rows,
 plans with an input width per entry, apply / evaluate.
 
 Outside checks:
+- every scanned number equals the naive method written here: deep-copy the model, quantize
+  that one entry's weight (overwrite it) or its input (a pre-hook), run the whole model and
+  compare with the float output (SQNR by hand), to 1e-4 dB; a conv net and an MLP, each
+  written here;
 - plan_budget on a "separate" table equals exhaustive enumeration of every (weight width,
   input width) per entry, costs counted here by hand (BOPs = MACs x weight bits x input bits,
   common practice);
@@ -25,6 +29,7 @@ from torch import nn
 from qwidgets.core.rounding import quantize
 from qwidgets.planning.apply import apply_plan
 from qwidgets.planning.evaluate import evaluate_plan
+from qwidgets.planning.scanning import scan
 from qwidgets.planning.solver import pareto_front, plan_budget
 from qwidgets.planning.table import SensitivityTable
 
@@ -52,34 +57,70 @@ def _conv_net():
                          nn.Flatten(), nn.Linear(4 * 4 * 4, 3)).eval(), torch.randn(16, 2, 6, 6)
 
 
-def test_separate_table_json_round_trip(tmp_path):
-    t = SensitivityTable.synthetic([[10.0, 30.0], [12.0, 33.0]], params=[10, 20], bits=(4, 8),
-                                   input_sqnr_db=[[20.0, 25.0, 40.0], [np.nan] * 3], input_bits=(4, 6, 8))
-    assert t.has_input_rows("layer0") and not t.has_input_rows("layer1")
+def _mlp():
+    torch.manual_seed(4)
+    return nn.Sequential(nn.Linear(6, 12), nn.Tanh(), nn.Linear(12, 4)).eval(), torch.randn(40, 6)
+
+
+@pytest.mark.parametrize("make", [_conv_net, _mlp])
+def test_separate_scan_equals_naive_deep_copy(make):
+    model, x = make()
+    state = {k: v.clone() for k, v in model.state_dict().items()}
+    t = scan(model, x, bits=(2, 4, 8), quantize="separate", input_bits=(3, 6), progress=False)
+    for k, v in model.state_dict().items():
+        assert torch.equal(v, state[k])  # the user's model is untouched
+    assert t.quantize == "separate" and t.input_bits == (3, 6) and t.bits == (2, 4, 8)
+    ref = model(x).detach()
+    for name in t.layers:
+        for b in t.bits:
+            naive = _sqnr(ref, _naive(model, x, name, wgrid=t.weight_grid(name, b)))
+            assert t.sqnr_db(name, b, source="weight") == pytest.approx(naive, abs=1e-4)
+            assert t.weight_grid(name, b).bits == b
+        for b in t.input_bits:
+            g = t.input_grid(name, b)
+            assert g.bits == b
+            naive = _sqnr(ref, _naive(model, x, name, igrid=g))
+            assert t.sqnr_db(name, b, source="input") == pytest.approx(naive, abs=1e-4)
+            # layer scope: the layer's output with its input quantized, by a hook written here
+            lay = model.get_submodule(name)
+            seen = []
+            h = lay.register_forward_pre_hook(lambda m, a, seen=seen: seen.append(a[0].detach()))
+            model(x)
+            h.remove()
+            xin = seen[0]
+            naive_layer = _sqnr(lay(xin).detach(), lay(quantize(xin, g)).detach())
+            assert t.sqnr_db(name, b, scope="layer", source="input") == pytest.approx(naive_layer, abs=1e-4)
+        with pytest.raises(KeyError, match="not scanned for the input"):
+            t.sqnr_db(name, 4, source="input")
+    assert len(t.to_rows()) == len(t.layers) * (len(t.bits) + len(t.input_bits))
+
+
+def test_separate_table_json_round_trip_and_old_modes(tmp_path):
+    model, x = _mlp()
+    t = scan(model, x, bits=(4, 8), quantize="separate", input_bits=(4, 6, 8), progress=False)
     t.save(tmp_path / "t.json")
     u = SensitivityTable.load(tmp_path / "t.json")
     assert u.input_bits == (4, 6, 8) and u.quantize == "separate"
-    np.testing.assert_array_equal(u.sqnr_array("model", "input"), t.sqnr_array("model", "input"))
-    assert u.sqnr_db("layer0", 6, source="input") == 25.0
-    with pytest.raises(ValueError, match="no input rows"):
-        u.sqnr_db("layer1", 6, source="input")
-    with pytest.raises(KeyError, match="not scanned for the input"):
-        u.sqnr_db("layer0", 5, source="input")
+    for scope in ("layer", "model"):
+        for source in ("weight", "input"):
+            np.testing.assert_array_equal(u.sqnr_array(scope, source), t.sqnr_array(scope, source))
+    assert u.input_grid("2", 6).scale_tensor().item() == pytest.approx(t.input_grid("2", 6).scale_tensor().item())
+    # the input rows are in the JSON; the schema is strict about them
     d = json.loads((tmp_path / "t.json").read_text())
-    assert len(d["layers"][0]["input_model_sqnr_db"]) == 3 and d["layers"][1]["input_model_sqnr_db"] is None
+    assert len(d["layers"][0]["input_model_sqnr_db"]) == 3
     d["layers"][0]["input_model_sqnr_db"] = [1.0]
     (tmp_path / "bad.json").write_text(json.dumps(d))
     with pytest.raises(ValueError, match="input_model_sqnr_db must hold 3 values"):
         SensitivityTable.load(tmp_path / "bad.json")
-    # weight-only entries keep float inputs in every plan
-    p = plan_budget(t, mean_bits=8)
-    assert p.input_bits == {"layer0": 8, "layer1": None}
-    w = SensitivityTable.synthetic([[10.0, 30.0]], params=[10], bits=(4, 8))
+    # the older modes: input widths are their bits or none
+    w = scan(model, x, bits=(4, 8), progress=False)
     assert w.input_bits == ()
     with pytest.raises(ValueError, match="no input rows"):
-        w.sqnr_db("layer0", 4, source="input")
+        w.sqnr_db("0", 4, source="input")
+    both = scan(model, x, bits=(4, 8), quantize="both", progress=False)
+    assert both.input_bits == (4, 8) and both.sqnr_db("0", 4, source="input") == both.sqnr_db("0", 4)
     with pytest.raises(ValueError, match="source must be 'weight' or 'input'"):
-        w.sqnr_db("layer0", 4, source="bias")
+        both.sqnr_db("0", 4, source="bias")
 
 
 def _separate_table(rng, n, wbits=(2, 4, 8), ibits=(4, 8)):
@@ -180,25 +221,10 @@ def test_bops_budget_chooses_input_widths_and_front():
 
 
 def test_apply_and_evaluate_quantize_the_planned_inputs():
-    from qwidgets import LayerSetting, Plan, fit_range
-    from qwidgets.planning.plan import model_fingerprint
-
     model, x = _conv_net()
-    seen = {}
-    hooks = [model.get_submodule(n).register_forward_pre_hook(
-        lambda m, a, n=n: seen.setdefault(n, a[0].detach())) for n in ("0", "2", "5")]
-    model(x)
-    for h in hooks:
-        h.remove()
-    widths = {"0": (4, 8), "2": (8, 4), "5": (6, None)}
-    layers = {n: LayerSetting(weight=fit_range(model.get_submodule(n).weight.detach(), wb),
-                              input=None if ib is None else fit_range(seen[n], ib))
-              for n, (wb, ib) in widths.items()}
-    macs = {"0": 5 * 2 * 9 * 36, "2": 4 * 5 * 9 * 16, "5": 64 * 3}  # counted by hand
-    plan = Plan(layers, {n: wb for n, (wb, _) in widths.items()}, fingerprint=model_fingerprint(model),
-                weight_shapes={n: tuple(model.get_submodule(n).weight.shape) for n in widths}, macs=macs)
-    assert plan.input_bits == {"0": 8, "2": 4, "5": None}
-    assert plan.bops == macs["0"] * 4 * 8 + macs["2"] * 8 * 4 + macs["5"] * 6 * 8
+    t = scan(model, x, bits=(4, 8), quantize="separate", input_bits=(4, 8), progress=False)
+    plan = plan_budget(t, bops=0.5 * sum(t.macs(n) * 8 * 8 for n in t.layers) + 1)
+    assert any(v == 4 for v in plan.input_bits.values())
     out = apply_plan(model, plan)(x).detach()
     # naive: deep copy, overwrite every planned weight, pre-hooks on the planned inputs
     c = copy.deepcopy(model)

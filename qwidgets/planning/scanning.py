@@ -63,7 +63,7 @@ def scan(model: nn.Module, data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8), *, qu
          max_samples: int | None = None, progress: bool = True,
          output: Callable | None = None, estimate: str = "exact",
          batch_size: int | None = None, executor: Executor | None = None,
-         rules: DeviceRules | None = None) -> SensitivityTable:
+         rules: DeviceRules | None = None, input_bits: Sequence[int] = (4, 6, 8)) -> SensitivityTable:
     """Measure every quantizable weight (entry), quantized alone, at every bit width in ``bits``.
 
     Parameters
@@ -75,7 +75,10 @@ def scan(model: nn.Module, data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8), *, qu
     quantize : ``"weight"`` (weights on a grid fitted to them, per channel when
         ``per_channel``: output channels, embedding rows), ``"input"`` (the inputs of layers
         run as modules, on a per-tensor grid fitted to what they received; weight-only entries
-        are left out) or ``"both"`` (each bit width for both; weight-only entries: weights)
+        are left out), ``"both"`` (each bit width for both; weight-only entries: weights) or
+        ``"separate"`` (the weights at each of ``bits`` and, each on its own, the input at each
+        of ``input_bits``; weight-only entries have no input rows): :func:`qwidgets.plan_budget`
+        then chooses a weight width and an input width per entry
     method : range fitting, as in :func:`qwidgets.fit_range` (``"minmax"``, ``"percentile"``,
         ``"mse"``); input ranges over many batches: min-max exact, percentile and MSE on a
         bounded sample of each layer's inputs (every value up to 4M values per layer)
@@ -128,16 +131,58 @@ def scan(model: nn.Module, data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8), *, qu
     if batch_size is not None and batch_size < 1:
         raise ValueError(f"batch_size must be None or an int >= 1, got {batch_size!r}")
     output = outputs.check_output_fn(output)
-    bits = scan_bits(bits, check_rules(rules), quantize)
+    separate = quantize == "separate"
+    ibits = scan_bits(_check_bits_tuple(input_bits, "input_bits"), check_rules(rules), "input") \
+        if separate else ()
+    bits = scan_bits(bits, check_rules(rules), "weight" if separate else quantize)
     if rules is not None:
         per_channel = per_channel and rules.per_channel_weights
     options = dict(rules=rules, bits=bits, quantize=quantize, method=method, per_channel=per_channel, scope=scope,
                    max_samples=max_samples, output=output, estimate=estimate, batch_size=batch_size)
-    if executor is None or scope == "layer":
-        return SensitivityTable(**_run_scan(model, data, options, progress, None))
+    if not separate:
+        return SensitivityTable(**_scan_parts(model, data, options, progress, executor))
+    # each side quantized alone: a weight scan at ``bits`` and an input scan at ``input_bits``
+    weights = _scan_parts(model, data, {**options, "quantize": "weight"}, progress, executor)
+    try:
+        inputs = _scan_parts(model, data, {**options, "quantize": "input", "bits": ibits}, progress,
+                             executor)
+    except NoInputEntries:
+        inputs = None  # only weight-only entries: no input rows at all
+    return SensitivityTable(**_join_sides(weights, inputs, ibits))
+
+
+def _scan_parts(model, data, options: dict, progress: bool, executor) -> dict:
+    """The table's fields, from this process or split across ``executor``'s workers."""
+    if executor is None or options["scope"] == "layer":
+        return _run_scan(model, data, options, progress, None)
     k = worker_count(executor)
     futures = [executor.submit(scan_share, copy.deepcopy(model), data, options, (i, k)) for i in range(k)]
-    return SensitivityTable(**merge_shares([f.result() for f in futures], k))
+    return merge_shares([f.result() for f in futures], k)
+
+
+class NoInputEntries(ValueError):
+    """A scan of inputs found no entry whose input can be measured (all weight-only)."""
+
+
+def _join_sides(weights: dict, inputs: dict | None, ibits: tuple) -> dict:
+    """One "separate" table from a weight scan and an input scan of the same model and data."""
+    names = weights["layers"]
+    pos = {} if inputs is None else {n: j for j, n in enumerate(inputs["layers"])}
+
+    def rows(key):
+        if weights[key] is None:
+            return None
+        arr = np.full((len(names), len(ibits)), np.nan)
+        for r, name in enumerate(names):
+            if name in pos:
+                arr[r] = inputs[key][pos[name]]
+        return arr
+
+    out = dict(weights)
+    out.update(quantize="separate", input_bits=ibits, input_layer_sqnr=rows("layer_sqnr"),
+               input_model_sqnr=rows("model_sqnr"),
+               input_grids={n: (list(inputs["input_grids"][n]) if n in pos else None) for n in names})
+    return out
 
 
 def scan_share(model: nn.Module, data, options: dict, share: tuple[int, int]) -> dict:
@@ -173,6 +218,9 @@ def _run_scan(model, data, options: dict, progress: bool, share) -> dict:
         else:
             facts.append(f)
     if not facts:
+        if qi and not qw:
+            raise NoInputEntries("no entry to scan on this data: "
+                                 + "; ".join(f"{e.name}: {r}" for e, r in skipped))
         raise ValueError("no entry to scan on this data: " + "; ".join(f"{e.name}: {r}" for e, r in skipped))
 
     names = [f.entry.name for f in facts]
@@ -247,14 +295,14 @@ def _layer_scope(model, source, facts, configs) -> np.ndarray:
     return np.array([[db(signal[f.entry.name], v) for v in noise[f.entry.name]] for f in facts])
 
 
-def _check_bits_tuple(bits) -> tuple[int, ...]:
+def _check_bits_tuple(bits, name: str = "bits") -> tuple[int, ...]:
     if isinstance(bits, Integral) and not isinstance(bits, bool):
         bits = (bits,)
     if isinstance(bits, (str, bytes)) or not isinstance(bits, Sequence):
-        raise TypeError(f"bits must be a tuple of ints in 1..16, got {bits!r}")
+        raise TypeError(f"{name} must be a tuple of ints in 1..16, got {bits!r}")
     if len(bits) == 0:
-        raise ValueError("bits is empty; give at least one bit width, e.g. bits=(4, 8)")
-    return tuple(sorted({check_bits(b, "bits") for b in bits}))
+        raise ValueError(f"{name} is empty; give at least one bit width, e.g. {name}=(4, 8)")
+    return tuple(sorted({check_bits(b, name) for b in bits}))
 
 
 def _progress(total: int, show: bool):

@@ -203,13 +203,16 @@ def observe_value(widget, handler: Callable[[dict], object]) -> None:
     A browser shows a slider at its step: given a value between two steps it rounds it and
     sends the rounded value back, often after the kernel has moved on (the sliders follow a
     learning run; a planner has been measured). Taken as a person's move, that echo would
-    replace what the kernel computed with a rounded or stale value. A value set exactly on the
-    step grid draws no echo, so an echo is recognised as the step rounding of a recent
-    *off-grid* value the kernel set: it is ignored (and if it was stale, the control is put back
-    to the latest value). Values set in the kernel (by the widget or a script) always reach
+    replace what the kernel computed with a rounded or stale value. A front end also re-sends
+    its old value when it redraws a slider whose window (min, max, step) changed. So an echo
+    is recognised as a value the kernel set since the last person's move (the step rounding of
+    it, for an off-grid value, under the window then shown), or a value off the slider's
+    current step grid: it is ignored (and if it was stale, the control is put back to the
+    latest value). Values set in the kernel (by the widget or a script) always reach
     ``handler``; a value from the front end (it arrives through ``Widget.set_state``) reaches it
-    when it moves the slider, and a person's move forgets the earlier kernel values, which can
-    no longer echo.
+    when it moves the slider to a new position, and a person's move forgets the earlier kernel
+    values, which can no longer echo. (The one move lost: a single click landing exactly where
+    the kernel put the slider earlier; the slider then shows the kernel's value again.)
 
     >>> import ipywidgets as widgets
     >>> s = widgets.FloatSlider(min=0, max=1, step=0.1)
@@ -221,7 +224,7 @@ def observe_value(widget, handler: Callable[[dict], object]) -> None:
     >>> seen, s.value
     ([0.123, 0.7], 0.7)
     """
-    echoes: list = []  # step roundings of recent off-grid values the kernel set
+    echoes: list = []  # values the kernel set (off-grid ones as the front end rounds them)
     latest = [widget.value]  # the latest value taken
     restoring = [False]
     from_front = [False]  # True while ipywidgets applies a message from the front end
@@ -255,7 +258,9 @@ def observe_value(widget, handler: Callable[[dict], object]) -> None:
             return None
         if not from_front[0]:  # set in the kernel (by the widget or a script): always taken
             latest[0] = new
-            remember(new)
+            if not remember(new):  # on the step grid: the front end may still send it back late
+                echoes.append(new)  # (it re-sends its old value when it redraws the slider)
+                del echoes[:-_ECHO_HISTORY]
             return handler(change)
         # (no time limit: while a notebook runs all its cells, the kernel reads the front end's
         # messages only after the last cell, long after it set the values they echo)
@@ -269,11 +274,28 @@ def observe_value(widget, handler: Callable[[dict], object]) -> None:
             return None
         if getattr(widget, "step", None) and _same_position(widget, new, latest[0]):
             return None  # the slider's position did not move: an echo, not a person's move
+        snapped = _on_step_grid(widget, new)
+        if snapped is not None and not _same_position(widget, new, snapped):
+            # off this slider's step grid, so no person put it there: the late echo of a value
+            # shown under an earlier min / step (the window moved since). Show the latest again.
+            restoring[0] = True
+            try:
+                widget.value = latest[0]
+            finally:
+                restoring[0] = False
+            return None
         echoes.clear()  # a person moved it: earlier kernel values can no longer echo
         latest[0] = new
         return handler(change)
 
+    def regrid(change):
+        # the kernel moved the slider's window: the front end shows the latest value at its
+        # rounding under the new min / step, which echoes too
+        if not from_front[0] and not restoring[0]:
+            remember(latest[0])
+
     widget.observe(observe, names="value")
+    widget.observe(regrid, names=[n for n in ("min", "max", "step") if widget.has_trait(n)])
 
 
 def _on_step_grid(widget, v):

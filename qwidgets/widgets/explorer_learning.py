@@ -177,7 +177,7 @@ class LearnRunner:
         else:
             self.result = result
             st.remember_learned(result.grid, self._source)
-            st.noise_steps = result.noise
+            st.noise_steps = result.noise_steps
         ex.set_controls_enabled(True)
         ex._select_static()
         ex._sync_controls()
