@@ -21,6 +21,7 @@ import torch
 from torch import nn
 
 from ..core.checks import check_positive
+from ..core.device_rules import DeviceRules, check_rules
 from ..core.metrics import error_stats
 from ..learn.optim import Adam
 from ..learn.whole_plan import LEARNABLE, SOURCES, PlanGrids
@@ -83,6 +84,7 @@ def refine_plan(
     progress: bool = True,
     seed: int = 0,
     callback: Callable[[int, RefineResult], object] | None = None,
+    rules: DeviceRules | None = None,
 ) -> RefineResult:
     """Learn every planned grid together on the model's output (relaxed quantization).
 
@@ -96,6 +98,12 @@ def refine_plan(
     the float model's (computed once), over the float output's mean square; with ``loss``,
     ``loss(output, target)`` is minimised instead (``target`` sliced along with the data;
     without ``target`` the float output is passed as the target).
+
+    ``rules`` (:class:`qwidgets.DeviceRules`): the starting plan must obey them (else a
+    ValueError lists what breaks them), and refining keeps it so: with power-of-two scales
+    the scales are not learned (they stay the plan's powers of two), with symmetric weights
+    the offsets are not learned (zero points stay as planned, 0 for the weights); widths,
+    per-channel choices and integer zero points are never changed by refining.
 
     Annealing (common practice): the concrete temperature falls geometrically from 0.5 to 0.1
     and the noise width is multiplied by a factor falling geometrically from 1 to 0.25 over the
@@ -146,6 +154,15 @@ def refine_plan(
     lr = DEFAULT_LR if lr is None else check_positive(lr, "lr")
     learn = _check_names(learn, "learn", LEARNABLE)
     sources = _check_names(sources, "sources", SOURCES)
+    if check_rules(rules) is not None:
+        broken = [f"{name} {role}: {why}" for name, s in plan.layers.items()
+                  for role, g in (("weight", s.weight), ("input", s.input)) if g is not None
+                  for why in rules.violations(g, role)]
+        if broken:
+            raise ValueError("the plan breaks the device rules, so refining cannot keep them: "
+                             + "; ".join(broken[:5]) + ("; ..." if len(broken) > 5 else ""))
+        learn = tuple(k for k in learn if not (k == "scale" and rules.pow2_scales)
+                      and not (k == "offset" and rules.symmetric_weights))
     if not isinstance(progress, bool):
         raise TypeError(f"progress must be True or False, got {progress!r}")
     for name, fn in (("loss", loss), ("callback", callback)):
