@@ -60,7 +60,8 @@ def test_scanview_shows_the_scan_and_opens_an_explorer(setup):
     view = ScanView(net, x, bits=BITS, progress=False)
     assert "qw-scanview" in view._dom_classes
     assert view.canvas.image.value[:4] == b"\x89PNG"
-    # the same numbers as an independent scan
+    # the view shows what the core scan computes (a second call of scan is the reference for the
+    # display; scan itself is checked against a naive loop in test_scan.py)
     np.testing.assert_array_equal(view.table.sqnr_array("model"), table.sqnr_array("model"))
     assert all(name in view.table_html.value for name in table.layers)
     ax = view.canvas.figure.axes[0]
