@@ -114,6 +114,8 @@ def test_every_control_moves_without_a_failure(cases, case, tmp_path):
     moved_view |= _move_all(view, tmp_path, skip=set(view.controls) - {"use_grid"})
     assert moved_view == set(view.controls)
     assert view.planner.plan.layers[view.table.layers[-1]] is not None
+    planner.refine_steps, planner.curve_points = 20, 3  # the buttons' long tasks, kept short here
     moved_planner = _move_all(planner, tmp_path)
-    assert moved_planner == set(planner.controls)
+    # "metric curve" is disabled by design without a metric
+    assert moved_planner == set(planner.controls) - ({"curve"} if metric is None else set())
     assert all(torch.equal(v, before[k]) for k, v in model.state_dict().items())

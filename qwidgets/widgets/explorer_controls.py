@@ -77,16 +77,25 @@ class ExplorerControls:
         def observe(change):
             if self._syncing:
                 return
-            self.message.clear()  # a message describes a state that has just changed
+            before = self._state_key()
             try:
                 handler(change["new"])
             except Exception as exc:
                 self.message.error(exc, f"setting {name}")
                 self._sync_controls()  # put the controls back to the state that is still valid
                 return
+            if self._state_key() != before:
+                self.message.clear()  # a message describes a state that has just changed
             self._updater.request()
 
         return observe
+
+    def _state_key(self) -> tuple:
+        """What the explorer shows, to tell a change of state from a control event that changed
+        nothing (a front end re-sending a value): only a change clears the message."""
+        st = self.state
+        return (repr(st.shown_grid()), st.source, st.noise_steps, st.temperature, st.method,
+                st.keep_clip, st.channel, st.grid.axis)
 
     # ================================================================== edits from controls
     def _set_bits(self, value) -> None:

@@ -35,6 +35,7 @@ from .image_canvas import PlotCanvas
 from .plan_saving import save_plan
 from .planner_grids import GridTaking
 from .planner_limit import SecondBudget
+from .planner_tasks import PlannerTasks
 from .planner_text import (
     AXIS_LABELS,
     KIND_LABELS,
@@ -61,13 +62,15 @@ CSS = {
     "save": "qw-planner-save",
     "limit_kind": "qw-planner-limit-kind",
     "limit": "qw-planner-limit",
+    "refine": "qw-planner-refine",
+    "curve": "qw-planner-curve",
     "readout": "qw-planner-readout",
     "table": "qw-planner-table",
     "caution": "qw-planner-caution",
 }
 
 
-class BudgetPlanner(SnapshotDisplay, GridTaking, widgets.VBox):
+class BudgetPlanner(SnapshotDisplay, GridTaking, PlannerTasks, widgets.VBox):
     """Choose a budget (weight KiB, mean bits or BOPs) and see the least-noise plan for it.
 
     Scans ``model`` on ``data`` (model scope; keywords ``bits``, ``quantize``, ``method``,
@@ -175,10 +178,11 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, widgets.VBox):
         c["path"].observe(lambda _ch: self._clear_note(), names="value")
         c["overwrite"].observe(lambda _ch: self._clear_note(), names="value")
 
-        self.canvas = PlotCanvas(width, 330)
+        with_curve = self.metric is not None  # the metric curve goes under the front
+        self.canvas = PlotCanvas(width, 470 if with_curve else 330)
         self.canvas.image.add_class(CSS["plot"])
         self.figure = PlannerFigure(self.canvas, self.table.layers, self.table.bits,
-                                    inputs=bool(getattr(self.table, "input_bits", ())))
+                                    inputs=bool(getattr(self.table, "input_bits", ())), curve=with_curve)
         self.readout = widgets.HTML(layout=widgets.Layout(width=f"{width}px"))
         self.readout.add_class(CSS["readout"])
         self.table_html = widgets.HTML(layout=widgets.Layout(max_height="300px", overflow="auto",
@@ -190,12 +194,14 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, widgets.VBox):
             layout=widgets.Layout(width=f"{width}px"))
         self.caution.add_class(CSS["caution"])
         self.message = MessageLine()
+        tasks = self._build_tasks()
         self.batchnorm_note = batchnorm_note(self.model, self.table.layers, width)
         row = widgets.Layout(align_items="center")
         self.children = [
             c["kind"],
             widgets.HBox([c["budget"], c["measure"], c["use_grid"]], layout=row),
             widgets.HBox([c["limit_kind"], c["limit"]], layout=row),
+            tasks,
             self.canvas.image,
             self.readout,
             self.table_html,
