@@ -295,7 +295,7 @@ def test_learn_from_a_poor_scale_improves_the_hard_layer_output_sqnr(subject):
     assert ex.layer_stats == layer_error(layer, x, weight_grid=ex.grid)
     assert ex.controls["scale"].value == pytest.approx(ex.grid.scale)  # sliders follow
     assert ex.controls["offset"].value == pytest.approx(ex.grid.offset)
-    assert ex.controls["noise"].value == pytest.approx(result.noise)
+    assert ex.controls["noise"].value == pytest.approx(result.noise_steps)
     assert "learned 120 steps" in ex.message.text
     ex.controls["bits"].value = 6  # another width: fitted; back at 4 bits, the learned grid
     assert ex.grid is not result.grid

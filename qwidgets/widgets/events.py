@@ -29,6 +29,8 @@ from contextlib import contextmanager
 
 import ipywidgets as widgets
 
+from ..planning.threads import threads
+
 
 @contextmanager
 def torch_threads(n: int | None):
@@ -45,17 +47,8 @@ def torch_threads(n: int | None):
     if n is None:
         yield
         return
-    import torch
-
-    before = torch.get_num_threads()
-    if before == n:
+    with threads(n):
         yield
-        return
-    torch.set_num_threads(n)
-    try:
-        yield
-    finally:
-        torch.set_num_threads(before)
 
 
 def running_loop():
