@@ -10,7 +10,8 @@ non-trivial BatchNorm statistics, on 8 images of 3x112x112, bit widths 2-8.
 Baseline, measured in the same run and interleaved with the others: the naive loop, for every
 layer and bit width, deep-copies the model, overwrites that layer's weight with its quantized
 version and runs the full model. Against it: scan(scope="model") exact (only what follows each
-layer reruns, from one recorded pass) and estimate="gain" (one suffix pass per layer). Grids
+layer reruns, from one recorded pass) and estimate="gain" (one forward with gradients and a few
+back-propagated probes per batch, for all layers together). Grids
 are min-max in all three so the ratios measure the passes. Everything runs on one thread (the
 machine is two cores shared with other processes; the scan would pick one thread there too),
 so the ratios compare the same arithmetic. The gain estimate's error against the exact model

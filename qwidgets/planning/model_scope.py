@@ -7,29 +7,25 @@ the record, so residual networks need no full forward per bit width. Every other
 model that does not trace) is measured by :func:`.passes.model_scope_noise` (``"stacked"`` or
 ``"per bit width"``). Results are the same either way.
 
-``estimate="gain"``: for replayed layers one rerun per batch measures the layer's output-noise
-gain at the widest bit width (:func:`.passes.gain_noise`), and every width's model-scope SQNR
-is predicted as its exact layer-scope SQNR plus ``10 log10(model signal / (gain x layer
-signal))``: output noise = gain x layer noise (quantization noise of fine grids is additive and
-uncorrelated: Widrow & Kollar 2008). Entries that are not replayed, or have no noise at the
-widest width, are measured exactly.
+``estimate="gain"``: the layers whose error is their module's output error are estimated
+together by back-propagated probes (:mod:`.gain_probes`: one forward with gradients and a few
+backward passes per batch for all of them); every other entry, and any whose output does not
+reach the model's output through gradients, is measured exactly as above.
 """
 
 from __future__ import annotations
-
-import math
 
 import numpy as np
 import torch
 
 from ..model import outputs
 from ..model.replay import evaluating, trace
-from .passes import db, gain_noise, model_scope_noise, suffix_noise
+from .gain_probes import probe_noise, probeable
+from .passes import db, model_scope_noise, suffix_noise
 
 
-def model_scope(model, source, found, facts, configs, n_bits: int, layer_sq, info, *,
-                estimate: str, output, progress: bool, share: tuple[int, int] | None = None
-                ) -> np.ndarray:
+def model_scope(model, source, found, facts, configs, n_bits: int, info, *, estimate: str, output,
+                progress: bool, share: tuple[int, int] | None = None) -> np.ndarray:
     """Model-scope SQNR (entries x bits) in dB; ``info[name]["model_pass"]`` set for each entry.
 
     ``share=(j, k)``: only the entries ``i % k == j`` (the other rows stay NaN): one executor
@@ -39,39 +35,35 @@ def model_scope(model, source, found, facts, configs, n_bits: int, layer_sq, inf
 
     names = [f.entry.name for f in facts]
     model_sq = np.full((len(names), n_bits), np.nan)
-    replay = _checked_replay(model, source, found.refs, output)
+    sig = found.reference.sig
     mine = [i for i in range(len(facts)) if share is None or i % share[1] == share[0]]
-    replayed = [i for i in mine if replay is not None and _replayable(facts[i], replay)]
-    gain_rows = {i for i in replayed if estimate == "gain" and np.isfinite(layer_sq[i, -1])}
-    bar = tqdm(total=len(mine), desc="scan", unit="layer", disable=not progress, leave=False)
+    probed: dict = {}
+    if estimate == "gain":
+        wanted = {i: facts[i].entry for i in mine if facts[i].has_input and probeable(facts[i].entry)}
+        probed = probe_noise(model, source, wanted, configs, output, found.n_samples) if wanted else {}
+        for i, noise_i in probed.items():
+            model_sq[i] = [db(sig, v) for v in noise_i]
+            info[names[i]]["model_pass"] = "probes"
+    rest = [i for i in mine if i not in probed]
+    replay = _checked_replay(model, source, found.refs, output) if rest else None
+    replayed = [i for i in rest if replay is not None and _replayable(facts[i], replay)]
+    bar = tqdm(total=len(rest), desc="scan", unit="layer", disable=not progress, leave=False)
     try:
         if replayed:
             noise = {i: np.zeros(n_bits) for i in replayed}
-            gain = {i: np.zeros(3) for i in gain_rows}
             for batch, ref_parts in zip(source, found.refs, strict=True):
                 with evaluating(model):
                     replay.record(batch)
                     for i in replayed:
                         e = facts[i].entry
-                        layer = model.get_submodule(e.module)
-                        if i in gain_rows:
-                            gain[i] += gain_noise(replay, layer, e.module, configs[e.name][-1],
-                                                  ref_parts, output)
-                        else:
-                            noise[i] += suffix_noise(replay, layer, e.module, configs[e.name],
-                                                     ref_parts, output)
+                        noise[i] += suffix_noise(replay, model.get_submodule(e.module), e.module,
+                                                 configs[e.name], ref_parts, output)
             replay.values = {}  # the last batch's record
-            sig = found.reference.sig
             for i in replayed:
                 info[names[i]]["model_pass"] = "suffix"
-                if i in gain_rows:
-                    m_noise, l_noise, l_sig = gain[i]
-                    shift = _ratio_db(sig * l_noise, m_noise * l_sig)
-                    model_sq[i] = layer_sq[i] + shift
-                else:
-                    model_sq[i] = [db(sig, v) for v in noise[i]]
+                model_sq[i] = [db(sig, v) for v in noise[i]]
                 bar.update(1)
-        for i in mine:
+        for i in rest:
             if i in replayed:
                 continue
             f = facts[i]
@@ -118,10 +110,3 @@ def _checked_replay(model, source, refs, output):
         return None
     return replay
 
-
-def _ratio_db(num: float, den: float) -> float:
-    if den == 0.0:
-        return math.inf if num > 0 else 0.0
-    if num == 0.0:
-        return -math.inf
-    return 10.0 * math.log10(num / den)

@@ -293,36 +293,3 @@ def suffix_noise(replay, layer: nn.Module, name: str, configs, ref_parts, output
     return out
 
 
-_REALIZATIONS = 16  # independent weight-error patterns per gain measurement, at most
-
-
-def gain_noise(replay, layer: nn.Module, name: str, config, ref_parts, output=None
-               ) -> tuple[float, float, float]:
-    """(model-output noise, layer-output noise, layer-output signal) of one gain measurement.
-
-    The batch is cut into up to 16 chunks; each chunk's layer output gets its own weight error:
-    the config's quantization error with a random sign per weight (same magnitudes, independent
-    patterns), and what follows the layer runs once. ``model noise / layer noise`` is then an
-    average over independent patterns rather than the projection of one pattern, which on a
-    model with few outputs varies by decibels from pattern to pattern.
-    """
-    wg, ig = config
-    w = layer.weight.detach()
-    dw = _quantize(w, wg) - w if wg is not None else torch.zeros_like(w)
-    gen = torch.Generator(device=w.device).manual_seed(0)
-    layer_noise, layer_signal = [0.0], [0.0]
-
-    def replace(x):
-        clean = layers.layer_forward(layer, x, w)
-        xq = x if ig is None else _quantize(x, ig)
-        outs = []
-        for chunk in xq.tensor_split(min(_REALIZATIONS, max(1, x.shape[0]))):
-            signs = torch.randint(0, 2, w.shape, generator=gen, device=w.device).to(w.dtype) * 2 - 1
-            outs.append(layers.layer_forward(layer, chunk, w + dw * signs))
-        y = torch.cat(outs)
-        layer_noise[0] += _power(y - clean)
-        layer_signal[0] += _power(clean)
-        return y
-
-    parts = model_outputs.float_parts(replay.rerun(name, replace), "quantized", output)
-    return _error_power(ref_parts, parts), layer_noise[0], layer_signal[0]

@@ -88,12 +88,13 @@ def scan(model: nn.Module, data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8), *, qu
     output : a function from the model's output to what is compared (default: every
         floating-point tensor of the output, nested structures and dataclasses included)
     estimate : how the model scope is found. ``"exact"``: measured at every bit width.
-        ``"gain"``: each entry's output-noise gain is measured once, at the widest bit width
-        (one pass per entry, averaged over random-sign versions of its weight error), and the
-        model noise at every width predicted as that gain times the exact layer-scope noise
-        (additive quantization noise, Widrow & Kollar 2008). It predicts the typical effect
-        of a width; the exact value for one particular weight error can differ by a dB or two
-        on models with few outputs. Entries that cannot be replayed are measured exactly.
+        ``"gain"``: every layer's output error is pulled through the rest of the model by a
+        few back-propagated probes (one forward with gradients and 8-64 backward passes per
+        batch for all layers and bit widths together; :mod:`qwidgets.planning.gain_probes`):
+        the model's first-order response to each width's actual error (additive
+        quantization noise, Widrow & Kollar 2008). Exact where the rest of the model is
+        linear; it departs most at 2-3 bits, where errors switch ReLUs. Entries that are not
+        a module's own weight (attention, recurrent, embedding, tied) are measured exactly.
         ``table.estimate`` records which.
     batch_size : cut data given as one batch into batches of this many samples (None: one
         batch); only power sums are kept between batches, so memory is about one batch of
@@ -246,14 +247,11 @@ def _run_scan(model, data, options: dict, progress: bool, share) -> dict:
     # the passes: the faster of one thread and torch's setting, timed on a float forward
     first = next(iter(source))
     with threads(fastest_threads(lambda: running.run_with_hooks(model, first, {}, pre=False))):
-        layer_sq = _layer_scope(model, source, facts, configs) \
-            if scope != "model" or estimate == "gain" else None
+        layer_sq = _layer_scope(model, source, facts, configs) if scope != "model" else None
         model_sq = None
         if scope != "layer":
-            model_sq = _model_scope(model, source, found, facts, configs, len(bits), layer_sq, info,
+            model_sq = _model_scope(model, source, found, facts, configs, len(bits), info,
                                     estimate=estimate, output=output, progress=progress, share=share)
-    if scope == "model":
-        layer_sq = None
     cov = coverage_of(model, [f.entry for f in facts], skipped)
     return dict(layers=names, bits=bits, quantize=quantize, method=method,
                 per_channel=per_channel, fingerprint=model_fingerprint(model), info=info,

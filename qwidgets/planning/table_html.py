@@ -38,7 +38,7 @@ def table_html(table) -> str:
                         f'<td style="text-align:right">{table.macs(name):,}</td>' + "".join(cells) + "</tr>")
         what = (f"{table.quantize} quantized" if table.quantize != "separate"
                 else f"{source}s quantized on their own")
-        how = " (estimated from noise gains)" if scope == "model" and table.estimate == "gain" else ""
+        how = " (estimated to first order by back-propagated probes)" if scope == "model" and table.estimate == "gain" else ""
         out.append(f"<div><b>{scope.capitalize()}-output SQNR (dB)</b>{how}, {what}, "
                    f"one layer at a time ({table.n_samples} samples)<table>"
                    f"<tr><th>layer</th><th>type</th><th>input</th><th>weights</th><th>MACs / sample</th>"
