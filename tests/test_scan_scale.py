@@ -149,8 +149,9 @@ class _MixBatch(nn.Module):
         return self.b(h + h.mean(0, keepdim=True))
 
 
+@pytest.mark.parametrize("device", DEVICES)
 @pytest.mark.parametrize("rest", ["times 3", "linear head", "batch-mixing linear head"])
-def test_gain_estimate_is_exact_where_the_rest_of_the_model_is_linear(rest):
+def test_gain_estimate_is_exact_where_the_rest_of_the_model_is_linear(rest, device):
     # additive-noise model (Widrow & Kollar 2008): when what follows layer "0" / "a" is linear,
     # the model's output error is exactly J e for every bit width and every noise pattern, so
     # the estimate (one-hot probes: few output values) equals the naive loop written here
@@ -158,8 +159,8 @@ def test_gain_estimate_is_exact_where_the_rest_of_the_model_is_linear(rest):
     net, name = {"times 3": (nn.Sequential(nn.Linear(6, 8), _Times3()), "0"),
                  "linear head": (nn.Sequential(nn.Linear(6, 8), nn.Linear(8, 5)), "0"),
                  "batch-mixing linear head": (_MixBatch(), "a")}[rest]
-    net = net.eval()
-    x = torch.randn(7, 6)
+    net = net.eval().to(device)
+    x = torch.randn(7, 6).to(device)
     snap = _state(net)
     gain = scan(net, x, bits=(2, 3, 5, 8), progress=False, estimate="gain")
     assert _same_state(net, snap) and all(p.grad is None for p in net.parameters())
