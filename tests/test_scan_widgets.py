@@ -241,6 +241,18 @@ def test_scanview_scope_switches_table_and_heatmap_with_one_colour_scale(setup):
             assert max(abs(a - b) for a, b in zip(got, want, strict=True)) <= 3, (scope, i, j, got, want)
 
 
+def test_scanview_says_where_the_model_scope_was_estimated(setup):
+    net, x, _, table = setup
+    gain = scan(net, x, BITS, progress=False, estimate="gain")
+    for t, says in ((table, False), (gain, True)):
+        view = ScanView(t)
+        for scope in ("model", "layer"):  # only the model scope is estimated
+            view.controls["scope"].value = scope
+            shown = ("estimated" in view.canvas.figure.axes[0].get_title(),
+                     "estimated" in view.table_html.value)
+            assert shown == (says and scope == "model",) * 2, (t.estimate, scope)
+
+
 def test_planner_kind_switch_keeps_the_plan(setup):
     net, x, _, table = setup
     p = BudgetPlanner(net, x, table=table)

@@ -38,12 +38,19 @@ def table_html(table) -> str:
                         f'<td style="text-align:right">{table.macs(name):,}</td>' + "".join(cells) + "</tr>")
         what = (f"{table.quantize} quantized" if table.quantize != "separate"
                 else f"{source}s quantized on their own")
-        how = " (estimated to first order by back-propagated probes)" if scope == "model" and table.estimate == "gain" else ""
+        how = f" ({how_measured(table, scope)})" if how_measured(table, scope) else ""
         out.append(f"<div><b>{scope.capitalize()}-output SQNR (dB)</b>{how}, {what}, "
                    f"one layer at a time ({table.n_samples} samples)<table>"
                    f"<tr><th>layer</th><th>type</th><th>input</th><th>weights</th><th>MACs / sample</th>"
                    f"{head}</tr>" + "".join(body) + "</table></div>")
     return "".join(out) + f"<div><small>{html.escape(str(table.coverage))}</small></div>"
+
+
+def how_measured(table, scope: str) -> str:
+    """"" for measured numbers; a short note where the model scope was estimated."""
+    if scope == "model" and table.estimate == "gain":
+        return "estimated to first order by back-propagated probes"
+    return ""
 
 
 def fmt_db(v: float) -> str:

@@ -16,7 +16,7 @@ from matplotlib import colormaps
 from matplotlib.colors import to_hex
 
 from ..planning.table import SensitivityTable
-from ..planning.table_html import fmt_db
+from ..planning.table_html import fmt_db, how_measured
 from .labels import literal
 
 __all__ = ["CMAP", "cell_colors", "draw_heatmap", "plot_sensitivity", "sqnr_limits", "sqnr_table_html"]
@@ -117,7 +117,8 @@ def sqnr_table_html(table: SensitivityTable, scope: str, vmin: float | None = No
         body.append(f"<tr><td>{html.escape(name)}</td><td>{html.escape(table.layer_type(name))}</td>"
                     f'<td style="text-align:right">{table.params(name):,}</td>'
                     f'<td style="text-align:right">{table.macs(name):,}</td>{cells}</tr>')
-    return (f"<div><b>{scope.capitalize()}-output SQNR (dB)</b>, {html.escape(table.quantize)} quantized, "
+    how = f" ({html.escape(how_measured(table, scope))})" if how_measured(table, scope) else ""
+    return (f"<div><b>{scope.capitalize()}-output SQNR (dB)</b>{how}, {html.escape(table.quantize)} quantized, "
             f"one layer at a time ({table.n_samples} samples)<table>"
             f"<tr><th>layer</th><th>type</th><th>weights</th><th>MACs / sample</th>{head}</tr>"
             + "".join(body) + "</table></div>")
@@ -146,6 +147,7 @@ def plot_sensitivity(table: SensitivityTable, scope: str = "model", ax=None):
         ax = fig.add_subplot()
     else:
         fig = ax.figure
-    draw_heatmap(ax, arr, table.layers, table.bits, f"{scope}-output SQNR (dB)")
+    how = ", estimated" if how_measured(table, scope) else ""
+    draw_heatmap(ax, arr, table.layers, table.bits, f"{scope}-output SQNR (dB{how})")
     fig.tight_layout()
     return fig

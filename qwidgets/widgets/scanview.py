@@ -17,6 +17,7 @@ from torch import nn
 
 from ..planning.scanning import scan
 from ..planning.table import SensitivityTable
+from ..planning.table_html import how_measured
 from ..viz.heatmap import sqnr_limits, sqnr_table_html
 from ..viz.scan_figure import ScanFigure
 from .display_snapshot import SnapshotDisplay
@@ -146,8 +147,9 @@ class ScanView(SnapshotDisplay, widgets.VBox):
     def _draw(self) -> None:
         """Heatmap and table of the current scope, with the one colour scale."""
         t, (vmin, vmax) = self.table, self.color_limits
+        how = ", estimated" if how_measured(t, self._scope) else ""
         self.figure.show(t.sqnr_array(self._scope), t.layers, t.bits,
-                         f"{SCOPE_LABELS[self._scope]} SQNR (dB), one layer quantized at a time ({t.quantize})",
+                         f"{SCOPE_LABELS[self._scope]} SQNR (dB{how}), one layer quantized at a time ({t.quantize})",
                          vmin=vmin, vmax=vmax)
         self.table_html.value = sqnr_table_html(t, self._scope, vmin, vmax)
         self.canvas.render()
