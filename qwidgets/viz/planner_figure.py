@@ -32,6 +32,7 @@ WEIGHT_COLOR = "#4c72b0"
 INPUT_COLOR = "#dd8452"
 X_PAD = 0.06  # of the cost span, each side: more than a marker's radius at the widget's size
 Y_PAD = 0.10  # of the SQNR span (at least 1 dB), each side
+MAX_LABELS = 45  # layer names on the bar axis at most (every k-th beyond: they would overlap)
 
 
 class PlannerFigure:
@@ -76,7 +77,9 @@ class PlannerFigure:
                                          height=h, label="weight"))
         self.input_bars = list(axb.barh(y + h / 2, np.zeros(len(y)), color=INPUT_COLOR, height=h,
                                         label="input")) if inputs else []
-        axb.set_yticks(y, [literal(n) for n in self.layers], fontsize=8 if len(y) <= 30 else 6)
+        step = max(1, math.ceil(len(y) / MAX_LABELS))  # at most MAX_LABELS names on the axis
+        axb.set_yticks(y[::step], [literal(n) for n in self.layers[::step]],
+                       fontsize=8 if len(y) <= 30 else 6)
         axb.invert_yaxis()
         axb.set_xlim(0, max(bits) + 0.5)
         axb.set_xticks(list(bits))
@@ -88,9 +91,43 @@ class PlannerFigure:
                        handlelength=1.0, borderaxespad=0.1)
         else:
             axb.set_title("bits per layer", fontsize=10)
+        self._fit_names()
         self._front_limits = (0.0, 1.0, 0.0, 1.0)
         self._xlabel = ""
         canvas.animate(self.budget_line, self.chosen, self.measured, *self.weight_bars, *self.input_bars)
+
+    def _fit_names(self) -> None:
+        """Room for the layer names left of the bars: the front narrows to make it (to 0.36 of
+        the figure at least); longer names drop the dotted prefix all names share, then
+        characters from their middle."""
+        fig, axb = self.canvas.figure, self.ax_bits
+        renderer = fig.canvas.get_renderer()
+        fig_w = fig.get_size_inches()[0] * fig.dpi
+        left = axb.get_position().x0
+        room = (left - 0.03 - (0.09 + 0.36)) * fig_w - 6  # pixels the names may take
+        labels = axb.get_yticklabels()
+        texts = [t.get_text() for t in labels]
+
+        def width(t, text) -> float:
+            t.set_text(text)
+            return t.get_window_extent(renderer).width
+
+        if any(width(t, text) > room for t, text in zip(labels, texts, strict=True)):
+            cut = len(_common_path(self.layers))  # drop what every name shares ("encoder.layers.")
+            texts = [("\u2026" + text[cut:]) if cut else text for text in texts]
+        for k, t in enumerate(labels):
+            name, keep = texts[k], len(texts[k])
+            while keep > 4 and width(t, texts[k]) > room:
+                keep -= 1
+                texts[k] = _elide(name, keep)
+        axb.set_yticks(axb.get_yticks(), texts, fontsize=labels[0].get_fontsize() if labels else 8)
+        widest = max((width(t, text) for t, text in zip(axb.get_yticklabels(), texts, strict=True)),
+                     default=0.0)
+        right = min(0.59, left - (widest + 6) / fig_w - 0.03)
+        for ax in (self.ax_front, self.ax_curve):
+            if ax is not None:
+                box = ax.get_position()
+                ax.set_position((box.x0, box.y0, right - box.x0, box.height))
 
     def show_front(self, costs: Sequence[float], sqnr_db: Sequence[float], xlabel: str) -> None:
         """Draw the front's points (infinite SQNR is left out of the line)."""
@@ -207,3 +244,32 @@ class PlannerFigure:
             if not (box.x0 <= cx - r and cx + r <= box.x1 and box.y0 <= cy - r and cy + r <= box.y1):
                 return False
         return True
+
+
+def _elide(name: str, keep: int) -> str:
+    """``name`` cut to ``keep`` characters around an ellipsis in its middle (both ends kept:
+    the start and the end of a dotted module path tell layers apart).
+
+    >>> _elide("encoder.layers.3.attention.out_proj", 20)
+    'encoder.la….out_proj'
+    """
+    if len(name) <= keep:
+        return name
+    head = keep // 2
+    return name[:head] + "\u2026" + name[len(name) - (keep - 1 - head):]
+
+
+def _common_path(names) -> str:
+    """The dotted prefix every name shares, up to and including its last dot.
+
+    >>> _common_path(["enc.layers.0.fc", "enc.layers.1.fc"]), _common_path(["a.x", "b.x"])
+    ('enc.layers.', '')
+    """
+    names = [str(n) for n in names]
+    if len(names) < 2:
+        return ""
+    first, last = min(names), max(names)
+    k = 0
+    while k < min(len(first), len(last)) and first[k] == last[k]:
+        k += 1
+    return first[:first.rfind(".", 0, k) + 1]
