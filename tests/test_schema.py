@@ -1,4 +1,5 @@
-"""The table loader is as strict as the plan loader: one schema module (planning/schema.py).
+"""The table loader is as strict as the plan loader: planning/table_schema.py (tables) and
+planning/schema.py (plans) check their fields with the same checks (planning/fields.py).
 
 Each case damages one field of a table written by ``SensitivityTable.save`` and checks that
 ``SensitivityTable.load`` refuses it with a ValueError naming the field. The JSON is edited

@@ -18,8 +18,8 @@ from qwidgets.core.grid import ZP_TOLERANCE, UniformGrid, integer_zero_point
 from qwidgets.core.rounding import quantize
 from qwidgets.core.setting import LayerSetting
 from qwidgets.planning.apply import apply_plan, export_codes
+from qwidgets.planning.fields import grid_from_dict, grid_to_dict
 from qwidgets.planning.plan import Plan, model_fingerprint
-from qwidgets.planning.schema import grid_from_dict, grid_to_dict
 
 
 def _plan_for(layer, weight, inp=None):

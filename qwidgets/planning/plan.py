@@ -14,8 +14,9 @@ from torch import nn
 from ..core.checks import check_bits
 from ..core.setting import LayerSetting
 from .costs import FLOAT_BITS, layer_bops, weight_storage_bits
+from .fields import FieldError, NonFinite, grid_to_dict
 from .files import read_text, write_text
-from .schema import FORMAT, VERSION, FieldError, NonFinite, grid_to_dict, plan_fields
+from .schema import FORMAT, VERSION, plan_fields
 
 CAUTION = (
     "These figures are estimates on the data given: they screen a plan, they do not certify "

@@ -52,9 +52,9 @@ from .passes import (
     weight_scope_powers,
 )
 from .plan import model_fingerprint
-from .schema import ESTIMATES, QUANTIZE_MODES, SCOPES
 from .survey import survey
 from .table import SensitivityTable
+from .table_schema import ESTIMATES, QUANTIZE_MODES, SCOPES
 from .threads import fastest_threads, threads, torch_threads
 
 

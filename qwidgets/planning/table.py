@@ -15,12 +15,7 @@ from ..core.setting import LayerSetting
 from ..model.entries import Coverage
 from .files import read_text, write_text
 from .plan import Plan
-from .schema import (
-    ESTIMATES,
-    FieldError,
-    NonFinite,
-    table_fields,
-)
+from .table_schema import ESTIMATES
 
 
 class SensitivityTable:
@@ -334,28 +329,9 @@ class SensitivityTable:
         """One dict per (layer, bit width): layer, type, bits, params, macs, layer / model SQNR
         (tables scanned with ``quantize="separate"``: weight rows, then input rows, with a
         ``source`` key)."""
-        rows = []
-        sources = [("weight", self.bits, self._sqnr)]
-        if self.quantize == "separate":
-            sources.append(("input", self._input_bits, self._input_sqnr))
-        for i, name in enumerate(self.layers):
-            for source, widths, arrs in sources:
-                if source == "input" and not self.has_input_rows(name):
-                    continue
-                for j, b in enumerate(widths):
-                    row = {
-                        "layer": name,
-                        "type": self.layer_type(name),
-                        "bits": b,
-                        "params": self.params(name),
-                        "macs": self.macs(name),
-                        "layer_sqnr_db": None if arrs["layer"] is None else float(arrs["layer"][i, j]),
-                        "model_sqnr_db": None if arrs["model"] is None else float(arrs["model"][i, j]),
-                    }
-                    if self.quantize == "separate":
-                        row["source"] = source
-                    rows.append(row)
-        return rows
+        from .table_html import table_rows
+
+        return table_rows(self)
 
     def __repr__(self) -> str:
         extra = f", input bits {list(self._input_bits)}" if self.quantize == "separate" else ""
@@ -370,7 +346,7 @@ class SensitivityTable:
 
     # ------------------------------------------------------------------ JSON
     def to_dict(self) -> dict:
-        """The table as JSON-ready data (layout: :func:`qwidgets.planning.schema.table_fields`)."""
+        """The table as JSON-ready data (layout: :mod:`qwidgets.planning.table_schema`)."""
         from .table_json import table_to_dict
 
         return table_to_dict(self)
@@ -382,15 +358,9 @@ class SensitivityTable:
     @classmethod
     def load(cls, path: str | os.PathLike) -> SensitivityTable:
         """Read a table written by :meth:`save` (JSON only; every field checked)."""
-        text = read_text(path, "table")
-        try:
-            data = json.loads(text, parse_constant=NonFinite)  # NaN / Infinity: named, refused
-        except json.JSONDecodeError as e:
-            raise ValueError(f"the table is not valid JSON (truncated or damaged?): {e}") from None
-        try:
-            return cls(**table_fields(data))
-        except (FieldError, KeyError, TypeError) as e:
-            raise ValueError(f"invalid sensitivity table: {e}") from None
+        from .table_json import table_from_text
+
+        return table_from_text(cls, read_text(path, "table"))
 
     # ------------------------------------------------------------------ synthetic
     @classmethod

@@ -59,3 +59,32 @@ def fmt_db(v: float) -> str:
     return f"{v:.1f}"
 
 
+
+
+def table_rows(table) -> list[dict]:
+    """:meth:`SensitivityTable.to_rows`: one dict per (entry, width)."""
+    sources = [("weight", table.bits)]
+    if table.quantize == "separate":
+        sources.append(("input", table.input_bits))
+    arrays = {source: {scope: table.sqnr_array(scope, source) for scope in ("layer", "model")}
+              for source, _ in sources}
+    rows = []
+    for i, name in enumerate(table.layers):
+        for source, widths in sources:
+            if source == "input" and not table.has_input_rows(name):
+                continue
+            arrs = arrays[source]
+            for j, b in enumerate(widths):
+                row = {
+                    "layer": name,
+                    "type": table.layer_type(name),
+                    "bits": b,
+                    "params": table.params(name),
+                    "macs": table.macs(name),
+                    "layer_sqnr_db": None if arrs["layer"] is None else float(arrs["layer"][i, j]),
+                    "model_sqnr_db": None if arrs["model"] is None else float(arrs["model"][i, j]),
+                }
+                if table.quantize == "separate":
+                    row["source"] = source
+                rows.append(row)
+    return rows

@@ -1,12 +1,15 @@
-"""A SensitivityTable as JSON-ready data (read back by :func:`qwidgets.planning.schema.table_fields`)."""
+"""A SensitivityTable as JSON and back (the layout and its checks: :mod:`qwidgets.planning.table_schema`)."""
 
 from __future__ import annotations
 
-from .schema import TABLE_FORMAT, TABLE_VERSION, grid_to_dict, json_db
+import json
+
+from .fields import FieldError, NonFinite, grid_to_dict, json_db
+from .table_schema import TABLE_FORMAT, TABLE_VERSION, table_fields
 
 
 def table_to_dict(self) -> dict:
-    """The table as JSON-ready data (layout: :func:`qwidgets.planning.schema.table_fields`)."""
+    """The table as JSON-ready data (layout: :func:`qwidgets.planning.table_schema.table_fields`)."""
     layers = []
     for i, name in enumerate(self.layers):
         entry = {"name": name, **{k: self._info[name].get(k) for k in ("type", "weight_shape", "input_shape", "macs", "model_pass")}}
@@ -32,3 +35,16 @@ def table_to_dict(self) -> dict:
             "quantize": self.quantize, "method": self.method, "per_channel": self.per_channel,
             "fingerprint": self.fingerprint, "n_samples": self.n_samples,
             "coverage": self.coverage.to_dict(), "estimate": self.estimate, "layers": layers}
+
+
+def table_from_text(cls, text: str):
+    """A table of class ``cls`` from the text :meth:`SensitivityTable.save` writes (every field
+    checked; ValueError naming the field)."""
+    try:
+        data = json.loads(text, parse_constant=NonFinite)  # NaN / Infinity: named, refused
+    except json.JSONDecodeError as e:
+        raise ValueError(f"the table is not valid JSON (truncated or damaged?): {e}") from None
+    try:
+        return cls(**table_fields(data))
+    except (FieldError, KeyError, TypeError) as e:
+        raise ValueError(f"invalid sensitivity table: {e}") from None

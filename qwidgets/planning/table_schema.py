@@ -1,0 +1,221 @@
+"""The sensitivity table's JSON schema, as strict as the plan's (schema.py); the field checks
+both use are in fields.py.
+
+Version 2 layout: the top level holds format, version, bits, input_bits (the input widths of
+``quantize="separate"``, else empty), quantize, method, per_channel, fingerprint, n_samples
+and layers (optionally coverage and estimate); each entry of layers holds name, type,
+weight_shape, input_shape, macs, layer_sqnr_db / model_sqnr_db (one value per bit width, or
+null), weight_grids / input_grids (one grid per width, or null: the grid of column ``j`` has
+the width ``bits[j]``, an input grid of ``quantize="separate"`` the width ``input_bits[j]``)
+and input_layer_sqnr_db / input_model_sqnr_db (one value per input width; null unless the
+entry's input was scanned on its own). Optional entry fields: model_pass and kind (strings),
+axis (the weight's per-channel axis, default 0: with ``per_channel`` every weight grid has
+this axis, without it weight grids are whole-tensor, axis null), has_input (boolean),
+shared_with (a list of names), stored_bits (an integer or null) and digest (hex or null).
+Version 1 had no input_bits and no input rows.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from ..core.checks import MAX_BITS
+from .fields import (
+    FieldError,
+    bool_field,
+    db_row,
+    digest_field,
+    fingerprint_field,
+    grid_from_dict,
+    int_field,
+    kind_of,
+    string_field,
+    string_list_field,
+)
+
+QUANTIZE_MODES = ("weight", "input", "both", "separate")
+SCOPES = ("layer", "model", "both")
+ESTIMATES = ("exact", "gain")  # how a table's model scope was found (see scan)
+TABLE_FORMAT = "qwidgets sensitivity table"
+TABLE_VERSION = 2  # 2 added input_bits and the input rows of quantize="separate"; 1 still reads
+
+_TOP = ("format", "version", "bits", "quantize", "method", "per_channel", "fingerprint",
+        "n_samples", "layers")
+_ENTRY = ("name", "type", "weight_shape", "input_shape", "macs", "layer_sqnr_db",
+          "model_sqnr_db", "weight_grids", "input_grids")
+_ENTRY_OPTIONAL = ("model_pass", "kind", "axis", "has_input", "shared_with", "stored_bits", "digest")
+
+
+def table_fields(d) -> dict:
+    """Check a table's JSON data field by field; return the SensitivityTable constructor's
+    arguments (the layout: this module's docstring)."""
+    if not isinstance(d, dict):
+        raise FieldError("expected a JSON object at the top level")
+    version = d.get("version")
+    keys = _TOP if version == 1 else _TOP + ("input_bits",)
+    if not set(keys) <= set(d) <= set(keys) | {"coverage", "estimate"}:
+        raise FieldError(f"expected an object with fields {list(keys)} (and optionally coverage, "
+                         "estimate)")
+    # tables written before "estimate" existed hold exact model scopes
+    if d.get("estimate", "exact") not in ESTIMATES:
+        raise FieldError(f"estimate must be one of {ESTIMATES}, got {d.get('estimate')!r}")
+    if d["format"] != TABLE_FORMAT or version not in (1, TABLE_VERSION) or isinstance(version, bool):
+        raise FieldError(f"format / version must be {TABLE_FORMAT!r} / 1 or {TABLE_VERSION}, "
+                         f"got {d['format']!r} / {version!r}")
+    if not isinstance(d["bits"], list) or not d["bits"]:
+        raise FieldError("bits must be a non-empty list of widths")
+    bits, ibits = _widths(d["bits"], "bits"), _widths(d.get("input_bits", []), "input_bits")
+    _table_header(d)
+    separate = d["quantize"] == "separate"
+    if separate != bool(ibits):
+        raise FieldError("input_bits must be non-empty exactly when quantize is 'separate'")
+    entry_keys = set(_ENTRY) | ({"input_layer_sqnr_db", "input_model_sqnr_db"} if version != 1 else set())
+    if not isinstance(d["layers"], list) or not d["layers"]:
+        raise FieldError("layers must be a non-empty list")
+    names, info, sq, grids = [], {}, {"layer": [], "model": []}, {"weight": {}, "input": {}}
+    isq = {"layer": [], "model": []}
+    widths = {"weight": (bits, "bits"), "input": (ibits, "input_bits") if separate else (bits, "bits")}
+    for k, e in enumerate(d["layers"]):
+        where = f"layers[{k}]"
+        if not isinstance(e, dict) or not entry_keys <= set(e) or not set(e) <= entry_keys | set(_ENTRY_OPTIONAL):
+            raise FieldError(f"{where} must be an object with fields {sorted(entry_keys)} "
+                             f"(and optionally {sorted(_ENTRY_OPTIONAL)})")
+        name = _table_entry(e, where, info)
+        names.append(name)
+        info[name] = _entry_info(e, where)
+        for scope in ("layer", "model"):
+            sq[scope].append(db_row(e[f"{scope}_sqnr_db"], len(bits), f"{where}.{scope}_sqnr_db"))
+            v = e.get(f"input_{scope}_sqnr_db")
+            if v is not None and not separate:
+                raise FieldError(f"{where}.input_{scope}_sqnr_db must be null unless quantize is 'separate'")
+            isq[scope].append(db_row(v, len(ibits), f"{where}.input_{scope}_sqnr_db"))
+        for kind in ("weight", "input"):
+            if e[f"{kind}_grids"] is not None:
+                axis = info[name]["axis"] if d["per_channel"] and kind == "weight" else None
+                grids[kind][name] = _grids(e[f"{kind}_grids"], f"{where}.{kind}_grids", *widths[kind],
+                                           kind, axis, info[name]["weight_shape"])
+    arrays = {}
+    for scope in ("layer", "model"):
+        rows = sq[scope]
+        if any(r is None for r in rows) and not all(r is None for r in rows):
+            raise FieldError(f"{scope}_sqnr_db must be given for every layer or for none")
+        arrays[scope] = None if rows[0] is None else np.array(rows, dtype=float)
+        if separate and arrays[scope] is not None:
+            arrays[f"input_{scope}"] = np.array(
+                [[math.nan] * len(ibits) if r is None else r for r in isq[scope]], dtype=float).reshape(
+                len(names), len(ibits))
+            for k, (n, r) in enumerate(zip(names, isq[scope], strict=True)):
+                if (r is None) != (n not in grids["input"]):
+                    raise FieldError(f"layers[{k}]: input_{scope}_sqnr_db and input_grids must be "
+                                     "given together")
+        elif any(r is not None for r in isq[scope]):
+            raise FieldError(f"input_{scope}_sqnr_db given without {scope}_sqnr_db")
+    if separate:
+        input_grids = {n: grids["input"].get(n) for n in names}
+    else:
+        input_grids = grids["input"] if len(grids["input"]) == len(names) else None
+    return dict(
+        layers=names, bits=bits, quantize=d["quantize"], method=str(d["method"]),
+        per_channel=bool(d["per_channel"]), fingerprint=str(d["fingerprint"]), info=info,
+        layer_sqnr=arrays["layer"], model_sqnr=arrays["model"],
+        weight_grids=grids["weight"] if len(grids["weight"]) == len(names) else None,
+        input_grids=input_grids, n_samples=int(d["n_samples"]), input_bits=ibits,
+        coverage=_coverage_from_json(d.get("coverage")), estimate=d.get("estimate", "exact"),
+        input_layer_sqnr=arrays.get("input_layer"), input_model_sqnr=arrays.get("input_model"))
+
+
+def _widths(v, where: str) -> tuple:
+    if not isinstance(v, list):
+        raise FieldError(f"{where} must be a list of widths, got {kind_of(v)}")
+    out = tuple(int_field(b, f"{where}[{i}]", 1, MAX_BITS) for i, b in enumerate(v))
+    if any(a >= b for a, b in zip(out[:-1], out[1:], strict=True)):
+        raise FieldError(f"{where} must ascend strictly (sorted, no duplicates), got {list(out)}")
+    return out
+
+
+def _table_header(d) -> None:
+    """The top-level fields of a table other than the widths, as strictly as a plan's."""
+    from ..core.ranges import METHODS
+
+    for key, options in (("quantize", QUANTIZE_MODES), ("method", METHODS)):
+        if d[key] not in options:
+            raise FieldError(f"{key} must be one of {list(options)}, got {kind_of(d[key])}")
+    bool_field(d["per_channel"], "per_channel")
+    fingerprint_field(d["fingerprint"])
+    int_field(d["n_samples"], "n_samples", 1)
+
+
+def _table_entry(e, where: str, info: dict) -> str:
+    """An entry's name (unique), type, shapes and MACs, checked as a plan's are."""
+    name = e["name"]
+    if not isinstance(name, str) or not name:
+        raise FieldError(f"{where}.name must be a non-empty string, got {kind_of(name)}")
+    if name in info:
+        raise FieldError(f"{where}.name {name!r} appears twice; layer names must be unique")
+    string_field(e["type"], f"{where}.type")
+    for key in ("weight_shape", "input_shape"):
+        v = e[key]
+        if not (v is None and key == "input_shape"):
+            if not isinstance(v, list) or (key == "weight_shape" and not v):
+                raise FieldError(f"{where}.{key} must be a list of sizes, got {kind_of(v)}")
+            for i, s in enumerate(v):
+                int_field(s, f"{where}.{key}[{i}]", 0)
+    int_field(e["macs"], f"{where}.macs", 0)
+    return name
+
+
+def _entry_info(e: dict, where: str) -> dict:
+    """What the table keeps of an entry: its type, shapes and MACs (checked by _table_entry)
+    and the optional fields, each checked as the plan reader checks its own."""
+    shape = tuple(e["weight_shape"])
+    axis = int_field(e.get("axis", 0), f"{where}.axis")
+    if not 0 <= axis < len(shape):
+        raise FieldError(f"{where}.axis {axis} is out of range for weight_shape {list(shape)}")
+    stored = e.get("stored_bits")
+    return {"type": e["type"], "weight_shape": shape,
+            "input_shape": None if e["input_shape"] is None else tuple(e["input_shape"]),
+            "macs": e["macs"], "model_pass": string_field(e.get("model_pass", "-"), f"{where}.model_pass"),
+            "kind": string_field(e.get("kind", "layer"), f"{where}.kind"), "axis": axis,
+            "has_input": bool_field(e.get("has_input", True), f"{where}.has_input"),
+            "shared_with": string_list_field(e.get("shared_with", []), f"{where}.shared_with"),
+            "stored_bits": None if stored is None else int_field(stored, f"{where}.stored_bits", 0),
+            "digest": digest_field(e.get("digest"), f"{where}.digest")}
+
+
+def _grids(v, where: str, widths: tuple, column: str, kind: str, axis: int | None,
+           shape: tuple) -> list:
+    """One entry's weight or input grids: one per width, grid ``j`` of width ``widths[j]``;
+    weight grids per channel along ``axis`` (None: whole-tensor grids, axis null)."""
+    if not isinstance(v, list) or len(v) != len(widths):
+        raise FieldError(f"{where} must hold {len(widths)} grids")
+    out = []
+    for j, g in enumerate(v):
+        at = f"{where}[{j}]"
+        if isinstance(g, dict) and kind == "weight" and "axis" in g and (
+                g["axis"] != axis or isinstance(g["axis"], bool)):
+            want = "null (per_channel is false)" if axis is None else \
+                f"{axis} (the entry's per-channel axis)"
+            raise FieldError(f"{at}.axis must be {want}, got {kind_of(g['axis'])}")
+        grid = grid_from_dict(g, at, None if axis is None else shape[axis])
+        if grid is not None and grid.bits != widths[j]:
+            raise FieldError(f"{at}.bits must be {widths[j]} (its column, {column}[{j}]), "
+                             f"got {grid.bits}")
+        out.append(grid)
+    return out
+
+
+def _coverage_from_json(c):
+    from ..model.entries import Coverage
+
+    if c is None:
+        return None
+    if not isinstance(c, dict) or set(c) != {"scanned", "total", "skipped", "total_bits"}:
+        raise FieldError("coverage must be an object with fields scanned, total, skipped, total_bits")
+    skipped = c["skipped"]
+    if not isinstance(skipped, list) or not all(
+            isinstance(v, list) and len(v) == 2 and all(isinstance(x, str) for x in v) for v in skipped):
+        raise FieldError("coverage.skipped must be a list of [parameter name, reason] pairs")
+    return Coverage(int_field(c["scanned"], "coverage.scanned", 0), int_field(c["total"], "coverage.total", 0),
+                    tuple((a, b) for a, b in skipped), int_field(c["total_bits"], "coverage.total_bits", 0))
