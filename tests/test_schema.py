@@ -45,6 +45,19 @@ def _drop(key, layer=None):
     return change
 
 
+def _grid(k, kind, j, **fields):
+    def change(d):
+        d["layers"][k][f"{kind}_grids"][j].update(fields)
+    return change
+
+
+def _swap(k, kind, i, j):
+    def change(d):
+        g = d["layers"][k][f"{kind}_grids"]
+        g[i], g[j] = g[j], g[i]
+    return change
+
+
 def _dup_name(d):
     d["layers"][1]["name"] = d["layers"][0]["name"]
 
@@ -80,6 +93,36 @@ CASES = [
     ("sqnr for one layer only", _layer(0, "layer_sqnr_db", None), "must be given for every layer or for none"),
     ("grid per_channel string", lambda d: d["layers"][0]["input_grids"][0].update(signed="true"),
      r"input_grids\[0\].signed must be true or false"),
+    # each grid has the width of its column (the fixture's bits are (2, 4, 8))
+    ("weight grid of another width", _grid(0, "weight", 2, bits=4),
+     r"layers\[0\].weight_grids\[2\].bits must be 8 \(its column, bits\[2\]\), got 4"),
+    ("input grid of another width", _grid(1, "input", 1, bits=2),
+     r"layers\[1\].input_grids\[1\].bits must be 4 \(its column, bits\[1\]\), got 2"),
+    ("weight grids swapped", _swap(0, "weight", 0, 1),
+     r"layers\[0\].weight_grids\[0\].bits must be 2 \(its column, bits\[0\]\), got 4"),
+    # the per-channel axis (the fixture is per-channel, axis 0; weight_shape [5, 6])
+    ("axis out of range", _layer(0, "axis", 2), r"layers\[0\].axis 2 is out of range for weight_shape \[5, 6\]"),
+    ("negative axis", _layer(0, "axis", -1), r"layers\[0\].axis -1 is out of range"),
+    ("axis string", _layer(0, "axis", "0"), r"layers\[0\].axis must be an integer, got a string"),
+    ("axis bool", _layer(0, "axis", False), r"layers\[0\].axis must be an integer, got a boolean"),
+    ("grid axis other than the entry's", _layer(0, "axis", 1),
+     r"layers\[0\].weight_grids\[0\].axis must be 1 \(the entry's per-channel axis\), got an integer \(0\)"),
+    ("one grid on another axis", _grid(1, "weight", 1, axis=1),
+     r"layers\[1\].weight_grids\[1\].axis must be 0 \(the entry's per-channel axis\), got an integer \(1\)"),
+    ("per-tensor grid in a per-channel table", _grid(0, "weight", 0, axis=None),
+     r"layers\[0\].weight_grids\[0\].axis must be 0 \(the entry's per-channel axis\), got null"),
+    ("per-channel grids in a per-tensor table", _set("per_channel", False),
+     r"layers\[0\].weight_grids\[0\].axis must be null \(per_channel is false\), got an integer \(0\)"),
+    # the other optional entry fields, typed as the plan reader types its own
+    ("model_pass not a string", _layer(0, "model_pass", 1), r"layers\[0\].model_pass must be a string"),
+    ("kind null", _layer(1, "kind", None), r"layers\[1\].kind must be a string, got null"),
+    ("stored_bits float", _layer(0, "stored_bits", 960.0), r"layers\[0\].stored_bits must be an integer"),
+    ("stored_bits string", _layer(0, "stored_bits", "960"), r"layers\[0\].stored_bits must be an integer"),
+    ("stored_bits negative", _layer(0, "stored_bits", -1), r"layers\[0\].stored_bits must be >= 0"),
+    ("digest upper case", _layer(0, "digest", "FC90"), r"layers\[0\].digest must be lowercase hex digits or null"),
+    ("digest number", _layer(0, "digest", 12), r"layers\[0\].digest must be lowercase hex digits or null"),
+    ("shared_with string", _layer(0, "shared_with", "1"), r"layers\[0\].shared_with must be a list of strings"),
+    ("shared_with of numbers", _layer(0, "shared_with", [2]), r"layers\[0\].shared_with must be a list of strings"),
 ]
 
 
@@ -133,3 +176,82 @@ def test_both_loaders_check_grids_with_the_same_words(saved, tmp_path):
         SensitivityTable.load(path)
     tail = ".signed must be true or false, got a string ('yes')"
     assert str(plan_error.value).endswith(tail) and str(table_error.value).endswith(tail)
+
+
+def _load(data, tmp_path):
+    path = tmp_path / "t.json"
+    path.write_text(json.dumps(data))
+    return SensitivityTable.load(path)
+
+
+@pytest.fixture(scope="module")
+def separate(tmp_path_factory):
+    torch.manual_seed(1)
+    net = nn.Sequential(nn.Linear(6, 5), nn.ReLU(), nn.Linear(5, 3)).eval()
+    table = scan(net, torch.randn(16, 6), bits=(2, 4, 8), input_bits=(6, 8), quantize="separate",
+                 progress=False)
+    return table.to_dict()
+
+
+def test_a_separate_tables_input_grids_have_the_input_widths(separate, tmp_path):
+    data = json.loads(json.dumps(separate))
+    assert data["input_bits"] == [6, 8]  # read with the json module, not qwidgets
+    assert [g["bits"] for g in data["layers"][0]["input_grids"]] == [6, 8]
+    assert _load(data, tmp_path).to_dict() == data  # as written, it loads
+    data["layers"][0]["input_grids"][1]["bits"] = 4  # the width of a weight column, not 8
+    with pytest.raises(ValueError, match=r"layers\[0\].input_grids\[1\].bits must be 8 "
+                                         r"\(its column, input_bits\[1\]\), got 4"):
+        _load(data, tmp_path)
+
+
+def test_a_per_tensor_table_round_trips_and_refuses_a_per_channel_grid(tmp_path):
+    torch.manual_seed(2)
+    net = nn.Sequential(nn.Linear(6, 5), nn.ReLU(), nn.Linear(5, 3)).eval()
+    table = scan(net, torch.randn(16, 6), bits=(3, 5), per_channel=False, progress=False)
+    data = json.loads(json.dumps(table.to_dict()))
+    assert data["per_channel"] is False
+    assert all(g["axis"] is None for e in data["layers"] for g in e["weight_grids"])
+    assert _load(data, tmp_path).to_dict() == data
+    data["per_channel"] = True  # the grids stay whole-tensor: the file contradicts itself
+    with pytest.raises(ValueError, match=r"layers\[0\].weight_grids\[0\].axis must be 0 "
+                                         r"\(the entry's per-channel axis\), got null"):
+        _load(data, tmp_path)
+
+
+def test_a_transposed_convolutions_grids_are_on_axis_1_and_load(tmp_path):
+    # ConvTranspose2d's weight is (in, out, kh, kw): its output channels are axis 1
+    torch.manual_seed(3)
+    net = nn.Sequential(nn.ConvTranspose2d(2, 3, 3), nn.ReLU(), nn.Conv2d(3, 2, 3)).eval()
+    table = scan(net, torch.randn(4, 2, 6, 6), bits=(4, 8), progress=False)
+    data = json.loads(json.dumps(table.to_dict()))
+    first = data["layers"][0]
+    assert first["axis"] == 1 and first["weight_shape"][1] == 3
+    assert all(g["axis"] == 1 and len(g["scale"]) == 3 for g in first["weight_grids"])
+    assert _load(data, tmp_path).to_dict() == data
+    first["axis"] = 0  # the grids hold 3 scales along axis 1; the entry would say axis 0
+    with pytest.raises(ValueError, match=r"layers\[0\].weight_grids\[0\].axis must be 0"):
+        _load(data, tmp_path)
+
+
+def test_a_version_1_table_still_reads(saved, tmp_path):
+    # version 1: no input_bits, no input rows, none of the optional entry fields
+    table, text = saved
+    data = json.loads(text)
+    data["version"] = 1
+    del data["input_bits"], data["coverage"], data["estimate"]
+    for e in data["layers"]:
+        for key in ("input_layer_sqnr_db", "input_model_sqnr_db", "model_pass", "kind", "axis",
+                    "has_input", "shared_with", "stored_bits", "digest"):
+            del e[key]
+    loaded = _load(data, tmp_path)
+    assert loaded.layers == table.layers and loaded.bits == table.bits
+    assert loaded.per_channel and all(loaded.weight_axis(n) == 0 for n in loaded.layers)
+    for n in table.layers:
+        for b in table.bits:
+            assert loaded.sqnr_db(n, b) == table.sqnr_db(n, b)
+            assert loaded.weight_grid(n, b).bits == b and loaded.input_grid(n, b).bits == b
+            assert torch.equal(loaded.weight_grid(n, b).scale_tensor(), table.weight_grid(n, b).scale_tensor())
+    assert loaded.kind("0") == "layer" and loaded.has_input("0") and loaded.weight_digest("0") is None
+    data["layers"][0]["input_grids"][2]["bits"] = 2  # the width check holds for version 1 too
+    with pytest.raises(ValueError, match=r"layers\[0\].input_grids\[2\].bits must be 8"):
+        _load(data, tmp_path)
