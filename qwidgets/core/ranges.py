@@ -37,7 +37,7 @@ from .clip_search import GridSpec, SortedRows, search_asymmetric, search_sample,
 from .device_rules import DeviceRules, check_rules, power_of_two_fit
 from .grid import UniformGrid
 
-__all__ = ["fit_range", "fit_ranges", "METHODS", "STYLES"]
+__all__ = ["fit_range", "fit_ranges", "fit_ranges_unchecked", "METHODS", "STYLES"]
 
 METHODS = ("minmax", "percentile", "mse")
 STYLES = ("midtread", "midrise")
@@ -126,6 +126,31 @@ def fit_ranges(
     >>> all(torch.equal(g.scale, fit_range(x, b, "mse", axis=0).scale) for g, b in zip(grids, (2, 4, 8)))
     True
     """
+    return _fit_ranges(x, bits, method, signed, symmetric, style, axis, percentile, rules, role,
+                       check=True)
+
+
+def fit_ranges_unchecked(
+    x: torch.Tensor,
+    bits: Sequence[int],
+    method: str = "mse",
+    *,
+    signed: bool | None = None,
+    symmetric: bool = True,
+    style: str = "midtread",
+    axis: int | None = None,
+    percentile: float = 99.99,
+    rules: DeviceRules | None = None,
+    role: str = "weight",
+) -> list[UniformGrid]:
+    """:func:`fit_ranges` for a caller that checked ``x``'s values (finite) at its own public
+    boundary: the same grids, without a second NaN / inf scan of ``x``."""
+    return _fit_ranges(x, bits, method, signed, symmetric, style, axis, percentile, rules, role,
+                       check=False)
+
+
+def _fit_ranges(x, bits, method, signed, symmetric, style, axis, percentile, rules, role, *,
+                check: bool) -> list[UniformGrid]:
     if isinstance(bits, (str, bytes)) or not isinstance(bits, Sequence):
         raise TypeError(f"bits must be a sequence of ints in 1..16, got {bits!r}")
     bits = [check_bits(b, "bits") for b in bits]
@@ -139,7 +164,7 @@ def fit_ranges(
     if not isinstance(symmetric, bool):
         raise TypeError(f"symmetric must be True or False, got {symmetric!r}")
     pct = _check_percentile(percentile)
-    x, _ = as_input(x)
+    x, _ = as_input(x, check_finite=check)
     if x.numel() == 0:
         raise ValueError(f"x is empty (shape {tuple(x.shape)}); there is nothing to fit")
     x2d, axis = _channels_first(x.detach(), axis)

@@ -35,8 +35,10 @@ def quantize(x: torch.Tensor, grid: UniformGrid) -> torch.Tensor:
 def quantize_unchecked(x: torch.Tensor, grid: UniformGrid, out_dtype: torch.dtype | None = None):
     """:func:`quantize` for a caller that checked ``x`` at its own public boundary (a real
     tensor with finite values): no second NaN / inf scan. Low-precision floats are computed
-    in float32 and returned as ``out_dtype`` (default: ``x``'s dtype)."""
-    out_dtype = x.dtype if out_dtype is None else out_dtype
+    in float32 and returned as ``out_dtype`` (default: what :func:`quantize` returns, ``x``'s
+    dtype for floats, float32 for integers)."""
+    if out_dtype is None:
+        out_dtype = x.dtype if x.is_floating_point() else torch.float32
     if x.dtype in (torch.float16, torch.bfloat16) or not x.is_floating_point():
         x = x.float()
     s, o = grid_params(x, grid)

@@ -81,7 +81,7 @@ class DataSource:
         return next(iter(self._devices)) if len(self._devices) == 1 else None
 
     def _check(self, batch, where: str):
-        tensors = list(_batch_tensors(batch, where))
+        tensors = list(batch_tensors(batch, where))
         if not tensors:
             raise ValueError(f"{where} holds no tensor; give a tensor, or a tuple / dict of tensors")
         for n, t in tensors:
@@ -144,7 +144,7 @@ def data_source(model: nn.Module | None, data, max_samples: int | None = None,
 
 def batch_size(batch) -> int:
     """Samples in a batch: axis 0 of its first tensor (1 for a 0-d tensor)."""
-    for _, t in _batch_tensors(batch, "data"):
+    for _, t in batch_tensors(batch, "data"):
         return int(t.shape[0]) if t.dim() else 1
     return 1
 
@@ -187,7 +187,9 @@ def _from_numpy(a: np.ndarray, float_dtype, device) -> torch.Tensor:
     return t if device is None else t.to(device)
 
 
-def _batch_tensors(batch, where):
+def batch_tensors(batch, where: str = "data"):
+    """(name, tensor) of each tensor of a batch: the tensors :class:`DataSource` checked (a
+    caller running the model on the batch need not check them again)."""
     if isinstance(batch, torch.Tensor):
         yield where, batch
     elif isinstance(batch, tuple):
