@@ -1,5 +1,6 @@
 """One validation layer (qwidgets/core/checks.py): TypeError for a wrong type, ValueError for a
-wrong value, each naming the parameter; layer_error checks its inputs once."""
+wrong value, each naming the parameter; layer_error, scan, model_error and evaluate_plan
+scan each argument once."""
 
 from __future__ import annotations
 
@@ -113,3 +114,97 @@ def test_layer_error_checks_its_inputs_once(monkeypatch):
     bad[3, 2] = float("nan")
     with pytest.raises(ValueError, match="inputs holds 1 NaN and 0 inf value"):
         qwidgets.layer_error(net[0], bad, input_grid=grid)
+
+
+# One NaN / inf scan per argument per call. finite_check is that scan (as_input calls it too);
+# it is patched in every qwidgets module that looks it up by name, so a helper that scans a
+# tensor again, by any route, is counted. Each scanned tensor is matched, by value, against
+# the arguments and the activations computed here with torch.
+def _count_scans(monkeypatch) -> list:
+    import sys
+
+    import qwidgets.core.checks as checks
+    import qwidgets.model.forward  # noqa: F401 - every module of the three calls is loaded
+    import qwidgets.planning.evaluate  # noqa: F401
+    import qwidgets.planning.scanning  # noqa: F401
+
+    real, scanned = checks.finite_check, []
+
+    def counting(x, name, *args, **kwargs):
+        scanned.append(x.detach().clone())
+        return real(x, name, *args, **kwargs)
+
+    patched = []
+    for module in list(sys.modules.values()):
+        if getattr(module, "__name__", "").startswith("qwidgets") and getattr(module, "finite_check", None) is real:
+            monkeypatch.setattr(module, "finite_check", counting)
+            patched.append(module.__name__)
+    # the modules that scan data in these calls (a rename must not empty the test)
+    assert {"qwidgets.core.checks", "qwidgets.model.sources", "qwidgets.planning.survey",
+            "qwidgets.model.forward"} <= set(patched), patched
+    return scanned
+
+
+def _times(scanned, t) -> int:
+    return sum(s.shape == t.shape and torch.equal(s, t) for s in scanned)
+
+
+def _hidden(net, x):
+    with torch.no_grad():  # the second layer's input, computed with torch
+        return torch.relu(torch.nn.functional.linear(x, net[0].weight, net[0].bias))
+
+
+@pytest.mark.parametrize("quantize, scope", [("both", "both"), ("weight", "model"), ("separate", "both")])
+def test_scan_scans_each_argument_once(monkeypatch, quantize, scope):
+    net, x = _net(), torch.randn(16, 6)
+    scanned = _count_scans(monkeypatch)
+    qwidgets.scan(net, x, bits=(2, 4), input_bits=(4, 8), quantize=quantize, scope=scope, progress=False)
+    assert _times(scanned, x) == 1  # the data (also the first layer's input)
+    assert _times(scanned, net[0].weight.detach()) == 1 and _times(scanned, net[2].weight.detach()) == 1
+    assert _times(scanned, _hidden(net, x)) == 1  # the second layer's input, by the survey
+    assert len(scanned) == 4  # nothing else, and nothing twice
+
+
+@pytest.mark.parametrize("batches", [1, 3])
+def test_model_error_scans_each_argument_once(monkeypatch, batches):
+    net, x = _net(), torch.randn(18, 6)
+    settings = {n: qwidgets.LayerSetting(weight=qwidgets.fit_range(net[int(n)].weight, 4, axis=0),
+                                         input=qwidgets.UniformGrid(6, 0.05)) for n in ("0", "2")}
+    parts = list(x.split(18 // batches))
+    scanned = _count_scans(monkeypatch)
+    qwidgets.model_error(net, x if batches == 1 else iter(parts), settings)
+    assert all(_times(scanned, p) == 1 for p in parts)  # each batch (the first layer's input too)
+    # the weights once per call, however many batches
+    assert _times(scanned, net[0].weight.detach()) == 1 and _times(scanned, net[2].weight.detach()) == 1
+    # the second layer's input (the output of the quantized first layer): once per batch
+    assert len([s for s in scanned if s.shape == (18 // batches, 8)]) == batches
+    assert len(scanned) == 2 * batches + 2
+
+
+def test_evaluate_plan_scans_each_argument_once(monkeypatch):
+    net, x = _net(), torch.randn(16, 6)
+    plan = qwidgets.scan(net, x, bits=(4, 8), quantize="both", progress=False).make_plan({"0": 4, "2": 8})
+    scanned = _count_scans(monkeypatch)
+    qwidgets.evaluate_plan(net, x, plan)
+    assert _times(scanned, x) == 1
+    assert _times(scanned, net[0].weight.detach()) == 1 and _times(scanned, net[2].weight.detach()) == 1
+    # the planned copy's second layer sees its own (quantized) first layer's output: scanned once
+    hidden = [s for s in scanned if s.shape == (16, 8)]
+    assert len(hidden) == 1 and len(scanned) == 4
+
+
+def test_activations_are_still_checked_where_they_are_not_the_data():
+    # the first layer makes inf: the second layer's input is refused, named, by each entry point
+    net, x = _net(), torch.randn(16, 6)
+    with torch.no_grad():
+        net[0].bias[3] = float("inf")
+    words = r"the input of layer '2' .* holds 0 NaN and \d+ inf"
+    with pytest.raises(ValueError, match=words):
+        qwidgets.scan(net, x, bits=(4,), progress=False)
+    setting = {"2": qwidgets.LayerSetting(input=qwidgets.UniformGrid(6, 0.05))}
+    with pytest.raises(ValueError, match=words):
+        qwidgets.model_error(net, x, setting)
+    bad = x.clone()
+    bad[0, 0] = float("nan")
+    with pytest.raises(ValueError, match=r"data holds 1 NaN and 0 inf"):
+        qwidgets.model_error(_net(), bad, setting)

@@ -12,7 +12,7 @@ from torch import nn
 from ..core.checks import finite_check
 from ..core.grid import UniformGrid, grid_params
 from ..core.metrics import ErrorStats, error_stats
-from ..core.rounding import quantize
+from ..core.rounding import quantize, quantize_unchecked
 from ..core.setting import LayerSetting
 from .entries import Entry, call_inputs, find_entries, replace_inputs
 from .layers import (
@@ -25,7 +25,7 @@ from .layers import (
 )
 from .outputs import OutputComparison, call_metric, check_output_fn, float_parts
 from .running import check_model, run_with_hooks
-from .sources import Data, data_source
+from .sources import Data, batch_tensors, data_source
 
 
 def layer_error(
@@ -152,9 +152,11 @@ def model_error(
     sums, applied = OutputComparison(), []
     mf = mq = 0.0
     n_metric = 0
+    params = None  # the quantized weights: computed (and their values checked) once per call
     for batch in source:
         ref = run_with_hooks(model, batch, {}, pre=False)
-        out, ran = quantized_call(model, batch, chosen)
+        params = quantized_weights(model, chosen) if params is None else params
+        out, ran = quantized_call(model, batch, chosen, params=params)
         applied.extend(n for n in ran if n not in applied)
         sums.add(float_parts(ref, "float", output), float_parts(out, "quantized", output))
         if metric is not None:
@@ -219,11 +221,11 @@ def forward_quantized(model: nn.Module, data: Data, settings: Mapping[str, Layer
     return quantized_call(model, next(iter(source)), chosen)[0]
 
 
-def quantized_call(model: nn.Module, batch, settings: Mapping[Entry, LayerSetting]):
-    """One forward of ``batch`` with each entry's weight / input quantized; (output, names run).
+def quantized_weights(model: nn.Module, settings: Mapping[Entry, LayerSetting]) -> dict:
+    """Each entry's fake-quantized weight, by qualified parameter name (for :func:`quantized_call`).
 
-    Weights: the fake-quantized tensor is substituted for the parameter for this call only
-    (tied uses included). Inputs: a forward pre-hook quantizes the owner layer's first input.
+    The weights' values are checked here (NaN / inf, and a per-channel grid's size against the
+    weight), once: a caller running many batches computes them once and passes them on.
     """
     params = {}
     with torch.no_grad():
@@ -232,6 +234,24 @@ def quantized_call(model: nn.Module, batch, settings: Mapping[Entry, LayerSettin
                 w = e.parameter(model).detach()
                 grid_params(w, s.weight)  # per-channel size check, clear message
                 params[e.param] = quantize(w, s.weight)
+    return params
+
+
+def quantized_call(model: nn.Module, batch, settings: Mapping[Entry, LayerSetting], *,
+                   params: dict | None = None, inputs_checked: bool = False):
+    """One forward of ``batch`` with each entry's weight / input quantized; (output, names run).
+
+    Weights: the fake-quantized tensor is substituted for the parameter for this call only
+    (tied uses included): ``params`` from :func:`quantized_weights` (computed here when None).
+    Inputs: a forward pre-hook quantizes the owner layer's first input; NaN / inf in it is
+    refused (LayerInputError naming the layer), checked once, and not at all where the input
+    is one of the batch's own tensors (its data source checked them) or where
+    ``inputs_checked`` (the caller saw every input this model's layers receive on this batch
+    checked already, as the scan's survey does).
+    """
+    if params is None:
+        params = quantized_weights(model, settings)
+    checked = {id(t) for _, t in batch_tensors(batch)}
     by_module: dict[int, list] = {}
     for e, s in settings.items():
         if s.input is not None:
@@ -247,12 +267,14 @@ def quantized_call(model: nn.Module, batch, settings: Mapping[Entry, LayerSettin
                     f"{e.name!r} ({type(module).__name__}) was called without a tensor input "
                     f"(got {type(args[0]).__name__ if args else 'keyword arguments'}); qwidgets "
                     "cannot quantize it")
-            for x in xs:
-                if x.is_floating_point():
-                    finite_check(x, f"the input of layer {e.name!r} ({describe_layer(module)})", LayerInputError)
+            if not inputs_checked:
+                for x in {id(x): x for x in xs}.values():  # self-attention: one tensor, thrice
+                    if x.is_floating_point() and id(x) not in checked:  # the batch's: checked
+                        finite_check(x, f"the input of layer {e.name!r} ({describe_layer(module)})",
+                                     LayerInputError)
             if e.name not in ran:
                 ran.append(e.name)
-            args, kwargs = replace_inputs(e, args, kwargs, lambda v, g=grid: quantize(v, g))
+            args, kwargs = replace_inputs(e, args, kwargs, lambda v, g=grid: quantize_unchecked(v, g))
         return args, kwargs
 
     hooks = {items[0]: pre for items in by_module.values()}

@@ -5,7 +5,7 @@ from __future__ import annotations
 import torch
 
 from ..core.grid import UniformGrid
-from ..core.ranges import fit_range
+from ..core.ranges import fit_ranges_unchecked
 
 SAMPLE_LIMIT = 1 << 22  # values kept per tensor for percentile / MSE range fits (16 MiB float32)
 
@@ -56,7 +56,10 @@ class RangeSample:
         return v
 
     def fit(self, bits: int, method: str, **options) -> UniformGrid:
-        """A per-tensor grid fitted with :func:`qwidgets.fit_range` to what was seen."""
+        """A per-tensor grid fitted with :func:`qwidgets.fit_range` to what was seen (the values
+        given to :meth:`add` were checked finite where they were seen: not scanned again)."""
         if method == "minmax":
-            return fit_range(self.values().new_tensor([self.lo, self.hi]), bits, method, **options)
-        return fit_range(self.values(), bits, method, **options)
+            x = self.values().new_tensor([self.lo, self.hi])
+        else:
+            x = self.values()
+        return fit_ranges_unchecked(x, (bits,), method, **options)[0]

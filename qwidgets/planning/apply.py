@@ -9,7 +9,7 @@ import torch
 from torch import nn
 
 from ..core.grid import UniformGrid
-from ..core.rounding import quantize, to_codes
+from ..core.rounding import quantize, quantize_unchecked, to_codes
 from ..model.entries import find_entries, replace_inputs, weight_digest
 from .plan import Plan, model_fingerprint
 
@@ -77,11 +77,16 @@ class _QuantizeInput:
     """Forward pre-hook of a planned copy: fake-quantizes the entry's inputs (a layer's first
     argument; an attention projection's query / key / value)."""
 
-    def __init__(self, entry, grid: UniformGrid):
-        self.entry, self.grid = entry, grid
+    def __init__(self, entry, grid: UniformGrid, checked):
+        self.entry, self.grid, self.checked = entry, grid, checked
 
     def __call__(self, module, args, kwargs):
-        return replace_inputs(self.entry, args, kwargs, lambda v: quantize(v, self.grid))
+        return replace_inputs(self.entry, args, kwargs, self._quantize)
+
+    def _quantize(self, v):
+        if id(v) in self.checked:  # the caller checked these values (a batch of evaluate_plan)
+            return quantize_unchecked(v, self.grid)
+        return quantize(v, self.grid)
 
 
 def apply_plan(model: nn.Module, plan: Plan, *, strict: bool = True,
@@ -108,6 +113,22 @@ def apply_plan(model: nn.Module, plan: Plan, *, strict: bool = True,
     >>> set((q.weight.detach() / 0.5).flatten().tolist()) <= {-2.0, -1.0, 0.0, 1.0}, q is lin
     (True, False)
     """
+    new, skipped = planned_copy(model, plan, strict=strict, allow_other_weights=allow_other_weights)
+    if skipped:
+        warnings.warn(f"apply_plan skipped {len(skipped)} planned layer(s): {', '.join(skipped)}",
+                      stacklevel=2)
+    return new
+
+
+def planned_copy(model: nn.Module, plan: Plan, *, strict: bool, allow_other_weights: bool,
+                 checked=frozenset()) -> tuple[nn.Module, list[str]]:
+    """:func:`apply_plan`'s copy and the skipped entries, without the warning.
+
+    ``checked``: a set of ``id`` of tensors whose values the caller checked already
+    (:func:`evaluate_plan` puts each batch's tensors in it before running the copy): the copy's
+    input hooks quantize those without a second NaN / inf scan. The weights' values are
+    checked here, once, when they are quantized.
+    """
     found, skipped = match_plan(model, plan, strict, allow_other_weights)
     new = copy.deepcopy(model)
     with torch.no_grad():
@@ -118,13 +139,11 @@ def apply_plan(model: nn.Module, plan: Plan, *, strict: bool = True,
                 w.copy_(quantize(w.detach(), setting.weight))
             if setting.input is not None:
                 owner = new.get_submodule(e.module) if e.module else new
-                owner.register_forward_pre_hook(_QuantizeInput(e, setting.input), with_kwargs=True)
-    if skipped:
-        warnings.warn(f"apply_plan skipped {len(skipped)} planned layer(s): {', '.join(skipped)}",
-                      stacklevel=2)
+                owner.register_forward_pre_hook(_QuantizeInput(e, setting.input, checked),
+                                                with_kwargs=True)
     new.qwidgets_applied = tuple(found)
     new.qwidgets_skipped = tuple(skipped)
-    return new
+    return new, skipped
 
 
 def _code_dtype(grid: UniformGrid) -> torch.dtype:

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import warnings
 from collections.abc import Callable
 from dataclasses import dataclass
 
@@ -11,8 +10,8 @@ from torch import nn
 from ..core.metrics import ErrorStats
 from ..model.outputs import OutputComparison, call_metric, check_output_fn, float_parts
 from ..model.running import run_with_hooks
-from ..model.sources import batch_size, data_source
-from .apply import apply_plan
+from ..model.sources import batch_size, batch_tensors, data_source
+from .apply import planned_copy
 from .bootstrap import check_confidence, concat, paired_drop_interval
 from .plan import CAUTION, Plan
 
@@ -120,9 +119,10 @@ def evaluate_plan(model: nn.Module, data, plan: Plan, *, metric: Callable | None
     if metric is not None and not callable(metric):
         raise TypeError(f"metric must be a callable metric(output, target) -> float, got {type(metric).__name__}")
     output = check_output_fn(output)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")  # the skipped layers are reported in the result
-        planned = apply_plan(model, plan, strict=strict, allow_other_weights=allow_other_weights)
+    checked: set = set()  # each batch's tensors, checked by the data source
+    # the skipped layers are reported in the result, not warned about
+    planned, _ = planned_copy(model, plan, strict=strict, allow_other_weights=allow_other_weights,
+                              checked=checked)
     source = data_source(model, data, max_samples)
     targets = None if (source.single or metric is None) else iter(_per_batch_targets(target))
     if confidence is not None:
@@ -134,6 +134,8 @@ def evaluate_plan(model: nn.Module, data, plan: Plan, *, metric: Callable | None
     mf = mp = 0.0
     weight = 0
     for batch in source:
+        checked.clear()
+        checked.update(id(t) for _, t in batch_tensors(batch))
         ref = run_with_hooks(model, batch, {}, pre=False)
         out = run_with_hooks(planned, batch, {}, pre=False)
         sums.add(float_parts(ref, "float", output), float_parts(out, "planned", output))

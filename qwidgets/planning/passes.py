@@ -1,4 +1,9 @@
-"""The measuring passes of the scan: layer scope from captured inputs, model scope by hooks."""
+"""The measuring passes of the scan: layer scope from captured inputs, model scope by hooks.
+
+The scan checks every value these passes quantize once, before they run (each weight when
+its grids are fitted, each layer's input in the survey's float pass over the same batches),
+so they quantize without a second NaN / inf scan (``quantize_unchecked``).
+"""
 
 from __future__ import annotations
 
@@ -9,7 +14,7 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
-from ..core.rounding import quantize as _quantize
+from ..core.rounding import quantize_unchecked as _quantize
 from ..core.setting import LayerSetting
 from ..model import forward, layers, running
 from ..model import outputs as model_outputs
@@ -169,8 +174,11 @@ def model_scope_noise(model, batch, entry, configs, ref_parts, *, stackable: boo
         except _NotStackable:
             pass
     out = []
+    w = entry.parameter(model).detach()
     for wg, ig in configs:
-        q, _ = forward.quantized_call(model, batch, {entry: LayerSetting(weight=wg, input=ig)})
+        params = {} if wg is None else {entry.param: _quantize(w, wg)}
+        q, _ = forward.quantized_call(model, batch, {entry: LayerSetting(weight=wg, input=ig)},
+                                      params=params, inputs_checked=True)
         parts = model_outputs.float_parts(q, "quantized", output)
         out.append(_error_power(ref_parts, parts))
     return out, "per bit width"

@@ -143,10 +143,13 @@ def scan(model: nn.Module, data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8), *, qu
     if not separate:
         return SensitivityTable(**_scan_parts(model, data, options, progress, executor))
     # each side quantized alone: a weight scan at ``bits`` and an input scan at ``input_bits``
+    if executor is None:  # one checked source for both sides (workers get the data itself)
+        data = data_source(model, cut_batches(data, batch_size), max_samples)
     weights = _scan_parts(model, data, {**options, "quantize": "weight"}, progress, executor)
     try:
-        inputs = _scan_parts(model, data, {**options, "quantize": "input", "bits": ibits}, progress,
-                             executor)
+        # the weight side's survey checked every layer input on this data: not again
+        inputs = _scan_parts(model, data, {**options, "quantize": "input", "bits": ibits,
+                                           "inputs_checked": True}, progress, executor)
     except NoInputEntries:
         inputs = None  # only weight-only entries: no input rows at all
     return SensitivityTable(**_join_sides(weights, inputs, ibits))
@@ -208,7 +211,8 @@ def _run_scan(model, data, options: dict, progress: bool, share) -> dict:
     if not entries:
         raise ValueError(running.no_layers_message(model))
     qw, qi = quantize in ("weight", "both"), quantize in ("input", "both")
-    found = survey(model, source, entries, want_inputs=qi, keep_refs=scope != "layer", output=output)
+    found = survey(model, source, entries, want_inputs=qi, keep_refs=scope != "layer", output=output,
+                   inputs_checked=options.get("inputs_checked", False))
     if scope != "layer":
         found.reference.check_varies()
     facts, skipped = [], list(found.skipped)

@@ -5,6 +5,10 @@ of first calls, the input shape and multiply-accumulates of layers run as module
 :class:`~qwidgets.model.statistics.RangeSample` of their inputs (when inputs are scanned), and
 the float model's output per batch (kept for the model scope: the model's outputs, not its
 activations).
+
+The survey is where the scan checks each layer's input for NaN / inf, once (the batch's own
+tensors were checked by its data source; ``inputs_checked``: a survey of the same model and
+data has checked them already); the later passes trust these values.
 """
 
 from __future__ import annotations
@@ -17,7 +21,7 @@ from torch import nn
 from ..core.checks import finite_check
 from ..model import layers, outputs, running
 from ..model.entries import Entry, call_inputs
-from ..model.sources import DataSource, batch_size
+from ..model.sources import DataSource, batch_size, batch_tensors
 from ..model.statistics import RangeSample
 
 
@@ -42,7 +46,7 @@ class Survey:
 
 
 def survey(model: nn.Module, source: DataSource, entries: list[Entry], *, want_inputs: bool,
-           keep_refs: bool, output=None) -> Survey:
+           keep_refs: bool, output=None, inputs_checked: bool = False) -> Survey:
     modules = dict(model.named_modules())
     first_call: dict[int, int] = {}
     call_shapes: dict[int, list] = {}  # module id -> input shapes of the first batch's calls
@@ -61,14 +65,16 @@ def survey(model: nn.Module, source: DataSource, entries: list[Entry], *, want_i
         x = args[0] if args else next(iter(kwargs.values()), None)
         if first_batch[0] and isinstance(x, torch.Tensor):
             call_shapes.setdefault(key, []).append(tuple(x.shape))
+        seen = set(checked)  # the batch's own tensors (checked by the source), then this call's
         for f in layer_of.get(key, ()):
             xs = call_inputs(f.entry, args, kwargs)
             if not xs:
                 continue
-            for v in xs:
-                if v.is_floating_point():
+            for v in xs:  # each tensor once (self-attention: one tensor, thrice)
+                if v.is_floating_point() and id(v) not in seen and not inputs_checked:
                     finite_check(v, f"the input of layer {f.entry.name!r} ({layers.describe_layer(module)})",
                                  layers.LayerInputError)
+                seen.add(id(v))
             f.has_input = True
             if first_batch[0]:
                 f.input_shape = f.input_shape or tuple(xs[0].shape[1:])
@@ -82,7 +88,10 @@ def survey(model: nn.Module, source: DataSource, entries: list[Entry], *, want_i
 
     hooks = {m: pre for m in modules.values()}
     n_first = 1
+    checked: set[int] = set()  # ids of this batch's tensors (alive while it runs)
     for batch in source:
+        checked.clear()
+        checked.update(id(t) for _, t in batch_tensors(batch))
         out = running.run_with_hooks(model, batch, hooks, pre=True)
         parts = outputs.float_parts(out, "float", output)
         result.reference.add_reference(parts)
