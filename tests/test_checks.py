@@ -165,6 +165,20 @@ def test_scan_scans_each_argument_once(monkeypatch, quantize, scope):
     assert len(scanned) == 4  # nothing else, and nothing twice
 
 
+def test_scan_with_batch_size_scans_the_data_once_not_each_slice_each_pass(monkeypatch):
+    net, x = _net(), torch.randn(16, 6)
+    scanned = _count_scans(monkeypatch)
+    qwidgets.scan(net, x, bits=(2, 4), quantize="both", batch_size=4, progress=False)
+    assert _times(scanned, x) == 1 and not any(s.shape == (4, 6) for s in scanned)
+    assert _times(scanned, net[0].weight.detach()) == 1 and _times(scanned, net[2].weight.detach()) == 1
+    hidden = _hidden(net, x)  # the survey's one pass sees each slice's second-layer input once
+    assert all(_times(scanned, h) == 1 for h in hidden.split(4)) and len(scanned) == 3 + 4
+    bad = x.clone()
+    bad[13, 1] = float("inf")  # in the last slice: named for the data as given
+    with pytest.raises(ValueError, match=r"data holds 0 NaN and 1 inf"):
+        qwidgets.scan(net, bad, bits=(4,), batch_size=4, progress=False)
+
+
 @pytest.mark.parametrize("batches", [1, 3])
 def test_model_error_scans_each_argument_once(monkeypatch, batches):
     net, x = _net(), torch.randn(18, 6)

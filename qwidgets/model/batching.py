@@ -20,6 +20,7 @@ class Batches:
 
     def __init__(self, data, batch_size: int):
         self.data, self.batch_size = data, batch_size
+        self.views_of = data  # a data source checks the whole once, not each slice each pass
         tensors = [t for t in _tensors(data) if t.dim() >= 1]
         self.n = int(tensors[0].shape[0]) if tensors else 1
 

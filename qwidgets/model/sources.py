@@ -72,6 +72,11 @@ class DataSource:
                 "arguments), a dict of tensors (keyword arguments), or a DataLoader / iterable of "
                 f"such batches; got {type(data).__name__}")
         self.single = False
+        # batch_size's slices of one batch (model.batching.Batches): checked once, as a whole
+        whole = getattr(data, "views_of", None)
+        self._views_checked = whole is not None and _all_tensors(whole)
+        if self._views_checked:
+            self._check(_cut(_as_batch(whole, self._float_dtype, self._device()), self.max_samples), name)
         one_shot = iter(data) is data if isinstance(data, Iterator) else False
         self._iterable = data
         self._batches = [] if one_shot else None
@@ -108,7 +113,9 @@ class DataSource:
             if not is_one_batch(raw):
                 raise TypeError(f"{where} must be a tensor, numpy array, tuple or dict of tensors, "
                                 f"got {type(raw).__name__}")
-            batch = self._check(_as_batch(raw, self._float_dtype, self._device()), where)
+            batch = _as_batch(raw, self._float_dtype, self._device())
+            if not self._views_checked:
+                batch = self._check(batch, where)
             if self.max_samples is not None:
                 batch = _cut(batch, self.max_samples - seen)
             seen += batch_size(batch)
@@ -200,6 +207,14 @@ def batch_tensors(batch, where: str = "data"):
         for k, v in batch.items():
             if isinstance(v, torch.Tensor):
                 yield f"{where}[{k!r}]", v
+
+
+def _all_tensors(batch) -> bool:
+    """A batch of tensors only (a numpy array would be converted as a whole just to check it)."""
+    if isinstance(batch, torch.Tensor):
+        return True
+    values = batch.values() if isinstance(batch, Mapping) else batch if isinstance(batch, tuple) else None
+    return values is not None and not any(isinstance(v, np.ndarray) for v in values)
 
 
 def _cut(batch, n: int | None):
