@@ -154,11 +154,14 @@ def _hidden(net, x):
         return torch.relu(torch.nn.functional.linear(x, net[0].weight, net[0].bias))
 
 
-@pytest.mark.parametrize("quantize, scope", [("both", "both"), ("weight", "model"), ("separate", "both")])
-def test_scan_scans_each_argument_once(monkeypatch, quantize, scope):
+@pytest.mark.parametrize("quantize, scope, estimate", [
+    ("both", "both", "exact"), ("weight", "model", "exact"), ("separate", "both", "exact"),
+    ("both", "model", "gain")])
+def test_scan_scans_each_argument_once(monkeypatch, quantize, scope, estimate):
     net, x = _net(), torch.randn(16, 6)
     scanned = _count_scans(monkeypatch)
-    qwidgets.scan(net, x, bits=(2, 4), input_bits=(4, 8), quantize=quantize, scope=scope, progress=False)
+    qwidgets.scan(net, x, bits=(2, 4), input_bits=(4, 8), quantize=quantize, scope=scope,
+                  estimate=estimate, progress=False)
     assert _times(scanned, x) == 1  # the data (also the first layer's input)
     assert _times(scanned, net[0].weight.detach()) == 1 and _times(scanned, net[2].weight.detach()) == 1
     assert _times(scanned, _hidden(net, x)) == 1  # the second layer's input, by the survey
