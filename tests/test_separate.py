@@ -240,3 +240,26 @@ def test_apply_and_evaluate_quantize_the_planned_inputs():
     assert rep.bops == plan.bops
     back = type(plan).from_json(plan.to_json())
     assert back.input_bits == plan.input_bits and back.bops == plan.bops
+
+
+def test_separate_reads_a_one_shot_generator_for_both_sides():
+    # both sides share one data source, so a generator (read once) serves the input side too;
+    # the table equals the one scanned from the same batches given as a list
+    torch.manual_seed(0)
+    net = nn.Sequential(nn.Linear(8, 16), nn.ReLU(), nn.Linear(16, 4)).eval()
+    x = torch.randn(32, 8)
+    once = scan(net, (b for b in x.split(8)), bits=(4, 8), input_bits=(6, 8), quantize="separate",
+                progress=False)
+    again = scan(net, _Reiterable(x.split(8)), bits=(4, 8), input_bits=(6, 8), quantize="separate",
+                 progress=False)
+    assert once.input_bits == (6, 8)
+    for source in ("weight", "input"):
+        assert (once.sqnr_array("model", source) == again.sqnr_array("model", source)).all()
+
+
+class _Reiterable:
+    def __init__(self, batches):
+        self.batches = list(batches)
+
+    def __iter__(self):
+        return iter(self.batches)
