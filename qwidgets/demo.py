@@ -22,7 +22,10 @@ Everything is seeded and deterministic on one machine: the same ``seed`` gives b
 data and, on the same torch build, the same trained weights (training and the summary run on
 one thread with torch's deterministic algorithms: :func:`deterministic`). The README's demo
 figures come from :func:`demo_figures` (``python -m qwidgets.demo --readme`` prints the
-paragraph) and a test checks that the README says what it prints.
+paragraph) and a test checks that the README says what it prints. Float rounding also depends
+on which vector instructions torch's kernels use (AVX-512 and AVX2 machines train slightly
+different weights), so ``python -m qwidgets.demo`` on x86-64 restarts itself with the kernels
+held to AVX2 (:data:`PORTABLE_CPU`): its figures are then the same on every such machine.
 
 >>> x, y = make_snippets(6, seed=1)
 >>> tuple(x.shape), x.dtype, y.tolist()
@@ -356,5 +359,24 @@ def _summary() -> str:
     return "\n".join(lines)
 
 
+PORTABLE_CPU = {"ATEN_CPU_CAPABILITY": "avx2", "ONEDNN_MAX_CPU_ISA": "AVX2", "MKL_CBWR": "AVX2"}
+"""Environment that holds torch's CPU kernels (ATen, oneDNN, MKL) to AVX2; read when they
+start, so it must be set before the process first computes."""
+
+
+def _restart_portable() -> None:
+    """On x86-64, run this module again with :data:`PORTABLE_CPU` (once; no-op elsewhere)."""
+    import os
+    import platform
+
+    if platform.machine().lower() not in ("x86_64", "amd64"):
+        return
+    if all(os.environ.get(k) == v for k, v in PORTABLE_CPU.items()):
+        return
+    os.execve(sys.executable, [sys.executable, "-m", "qwidgets.demo", *sys.argv[1:]],
+              {**os.environ, **PORTABLE_CPU})
+
+
 if __name__ == "__main__":
+    _restart_portable()
     main(sys.argv[1:])
