@@ -248,6 +248,58 @@ def test_gradients_are_finite_even_far_in_the_tails(bits, scale, noise_ratio, sp
         assert t.grad is not None and bool(torch.isfinite(t.grad).all())
 
 
+def sigmoid_bin_probabilities(x: torch.Tensor, s, o, n, qmin: int, qmax: int) -> torch.Tensor:
+    """Reference written here: P_k = sigmoid((e_k+1 - x) / n) - sigmoid((e_k - x) / n) in
+    float64 with torch.sigmoid, the outer edges at -inf / +inf; rows are values, columns codes."""
+    k = torch.arange(qmin, qmax + 1, dtype=torch.float64)
+    inner = (k[:-1] + 0.5) * s + o
+    edges = torch.cat([torch.tensor([-math.inf]), inner, torch.tensor([math.inf])]).double()
+    cdf = torch.sigmoid((edges[None, :] - x.double()[:, None]) / n)
+    return cdf[:, 1:] - cdf[:, :-1]
+
+
+@pytest.mark.parametrize("window", [None, 3, 5])
+@pytest.mark.parametrize("noise_ratio", [0.05, 0.4, 3.0])
+def test_values_clipped_hundreds_of_steps_past_the_grid_keep_exact_probabilities(window, noise_ratio):
+    """Values 50 to 5000 steps past either end (where exp would leave the normal float range)
+    against float64 torch.sigmoid differences written in the test: the same probabilities to
+    1e-6, the expectation on the end levels, and the gradient in x of the expectation equal to
+    the float64 reference's (autograd through the sigmoid differences)."""
+    grid = UniformGrid(4, 0.25, offset=0.05)
+    s, o, n = 0.25, 0.05, noise_ratio * 0.25
+    lo, hi = grid.clip_range
+    steps = torch.tensor([50.0, 400.0, 5000.0])
+    x = torch.cat([lo - steps * s, hi + steps * s, torch.linspace(lo - 1.0, hi + 1.0, 41)])
+    probs, codes = bin_probabilities(x, grid, n, window=window)
+    ref = sigmoid_bin_probabilities(x, s, o, n, grid.qmin, grid.qmax)
+    if window is not None:  # the reference restricted to the window and renormalised
+        ref = ref.gather(1, codes - grid.qmin)
+        ref = ref / ref.sum(1, keepdim=True)
+    assert (probs.double() - ref).abs().max() <= 1e-6
+    # far past the ends the end bin holds all the probability (1 to float32's resolution)
+    end = codes[:6] if window is not None else codes.expand(6, -1)
+    mass = torch.where(end == torch.tensor([[grid.qmin]] * 3 + [[grid.qmax]] * 3), probs[:6], 0.0)
+    assert torch.allclose(mass.double().sum(1), torch.ones(6, dtype=torch.float64), atol=1e-6)
+    # the expectation and its gradient in x
+    xg = x.clone().requires_grad_()
+    e = expected_quantize(xg, grid, n, window=window)
+    e.sum().backward()
+    xr = x.double().clone().requires_grad_()
+    pr = sigmoid_bin_probabilities(xr, s, o, n, grid.qmin, grid.qmax)
+    levels = torch.arange(grid.qmin, grid.qmax + 1, dtype=torch.float64) * s + o
+    if window is not None:
+        pr = pr.gather(1, codes - grid.qmin)
+        pr = pr / pr.sum(1, keepdim=True)
+        er = (pr * levels[codes - grid.qmin]).sum(1)
+    else:
+        er = pr @ levels
+    er.sum().backward()
+    assert (e.double() - er).abs().max() <= 1e-5
+    assert torch.allclose(e[:3].double(), torch.full((3,), lo, dtype=torch.float64), atol=1e-6)
+    assert torch.allclose(e[3:6].double(), torch.full((3,), hi, dtype=torch.float64), atol=1e-6)
+    assert torch.allclose(xg.grad.double(), xr.grad, atol=1e-4, rtol=1e-4)
+
+
 # ------------------------------------------------------------------ bad input and dtypes
 @pytest.mark.parametrize("noise", [0.0, -0.1, math.inf, math.nan, torch.tensor(-1.0)])
 def test_bad_noise(noise):

@@ -54,7 +54,7 @@ def bin_probabilities(x: torch.Tensor, grid: UniformGrid, noise, window: int | N
     """
     b = _log_probs(x, grid, noise, window)
     if b.window is None:
-        probs = b.logp.exp()  # sums to 1 by construction (telescoping CDF differences)
+        probs = _exp_probs(b.logp)  # sums to 1 by construction (telescoping CDF differences)
         codes = torch.arange(grid.qmin, grid.qmax + 1, device=b.logp.device)
     else:
         probs = _normalised(b.logp)
@@ -71,7 +71,7 @@ def expected_quantize(x: torch.Tensor, grid: UniformGrid, noise, window: int | N
     0.5
     """
     b = _log_probs(x, grid, noise, window)
-    probs = b.logp.exp() if b.window is None else _normalised(b.logp)
+    probs = _exp_probs(b.logp) if b.window is None else _normalised(b.logp)
     return b.grid_value(_code_mean(probs, b.start)).to(b.out_dtype)
 
 
@@ -211,17 +211,31 @@ def _log_probs(x, grid: UniformGrid, noise, window) -> _Bins:
 
 _FLOOR = {torch.float64: -700.0}  # below this, exp(b) would leave the normal range
 _FLOOR_DEFAULT = -80.0  # float32: exp(-80) = 1.8e-35, still a normal number
+_LINEAR = {torch.float64: 40.0}  # above this softplus(b) is b to the dtype's resolution
+_LINEAR_DEFAULT = 20.0
 
 
 def _softplus(b: torch.Tensor) -> torch.Tensor:
-    """``log(1 + exp(b))``; its linear cut-off sits where the dropped term is below the dtype's
-    resolution (softplus is several times faster than logsigmoid here). Arguments far below
-    zero (values clipped hundreds of steps past the grid) are clamped where ``exp(b)`` would
-    turn subnormal: a subnormal exp costs several times a normal one, and every result it
-    feeds is already exact (a term of 1e-35 next to terms of order one, or inside an ``exp``
-    that rounds to 1)."""
-    b = b.clamp_min(_FLOOR.get(b.dtype, _FLOOR_DEFAULT))
-    return F.softplus(b, threshold=20.0 if b.dtype != torch.float64 else 40.0)
+    """``log(1 + exp(b))`` with the argument of ``exp`` kept in the normal range.
+
+    Values clipped hundreds of steps past the grid give ``|b|`` in the thousands, where
+    ``exp`` overflows or turns subnormal, and both cost several times a normal ``exp`` (torch's
+    softplus evaluates ``exp`` on every element, also where it then returns ``b``). So ``b``
+    is clamped to ``[floor, linear]`` first, and ``max(b, softplus(clamped))`` restores the
+    linear part above ``linear`` (there ``softplus(b) = b`` to the dtype's resolution, and
+    below it ``softplus(b) > b``). Below ``floor`` the result stays ``exp(floor)`` (1.8e-35 in
+    float32), a term below the resolution of everything it is added to."""
+    lo = _FLOOR.get(b.dtype, _FLOOR_DEFAULT)
+    hi = _LINEAR.get(b.dtype, _LINEAR_DEFAULT)
+    return torch.maximum(b, F.softplus(b.clamp(lo, hi), threshold=hi))
+
+
+def _exp_probs(logp: torch.Tensor) -> torch.Tensor:
+    """``exp(logp)`` with log probabilities below the floor clamped first: bins hundreds of
+    steps from a value (log probabilities in the thousands below zero) would make ``exp``
+    underflow through its slow subnormal path; their probabilities (under 1.8e-35 in float32)
+    are below the resolution of the bins that carry the mass."""
+    return logp.clamp_min(_FLOOR.get(logp.dtype, _FLOOR_DEFAULT)).exp()
 
 
 def _normalised(logp: torch.Tensor) -> torch.Tensor:
