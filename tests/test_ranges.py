@@ -312,3 +312,46 @@ def test_fit_ranges_checks_bits():
         fit_ranges(torch.randn(10), 4)
     with pytest.raises(ValueError, match="bits"):
         fit_ranges(torch.randn(10), (4, 0))
+
+
+# ------------------------------------------------------------------ RangeFitter
+@pytest.mark.parametrize("method", ["mse", "minmax", "percentile"])
+@pytest.mark.parametrize("symmetric,axis", [(True, None), (False, None), (True, 0), (False, 0)])
+def test_range_fitter_gives_fit_range_grids_and_sorts_once(method, symmetric, axis, monkeypatch):
+    """Reference: fit_range called afresh for each width (the public function). The fitter asked
+    widths one at a time, in a walking order, returns the same grids, and sorts the values
+    at most once (torch.Tensor.sort counted)."""
+    from qwidgets.core.ranges import RangeFitter
+
+    gen = torch.Generator().manual_seed(3)
+    x = torch.randn(8, 4096, generator=gen) * torch.linspace(0.5, 2.0, 8)[:, None] + 0.3
+    widths = (4, 6, 5, 3, 7, 2, 8, 4)
+    expected = [fit_range(x, b, method, symmetric=symmetric, axis=axis) for b in widths]
+    sorts = []
+    original = torch.Tensor.sort
+
+    def counted(self, *args, **kwargs):
+        sorts.append(self.shape)
+        return original(self, *args, **kwargs)
+
+    monkeypatch.setattr(torch.Tensor, "sort", counted)
+    fitter = RangeFitter(x, method, symmetric=symmetric, axis=axis)
+    got = [fitter.fit(b) for b in widths]
+    assert len(sorts) <= 1
+    for g, e in zip(got, expected, strict=True):
+        assert (g.bits, g.signed, g.axis) == (e.bits, e.signed, e.axis)
+        assert torch.equal(g.scale_tensor(), e.scale_tensor())
+        assert torch.equal(g.offset_tensor(), e.offset_tensor())
+
+
+def test_range_fitter_bad_input():
+    from qwidgets.core.ranges import RangeFitter
+
+    with pytest.raises(ValueError, match="method"):
+        RangeFitter(torch.ones(10), "median")
+    with pytest.raises(TypeError, match="signed"):
+        RangeFitter(torch.ones(10), signed=1)
+    with pytest.raises(ValueError, match="empty"):
+        RangeFitter(torch.ones(0))
+    with pytest.raises(ValueError, match="bits"):
+        RangeFitter(torch.ones(10)).fit(0)

@@ -37,7 +37,7 @@ from .clip_search import GridSpec, SortedRows, search_asymmetric, search_sample,
 from .device_rules import DeviceRules, check_rules, power_of_two_fit
 from .grid import UniformGrid
 
-__all__ = ["fit_range", "fit_ranges", "fit_ranges_unchecked", "METHODS", "STYLES"]
+__all__ = ["fit_range", "fit_ranges", "fit_ranges_unchecked", "RangeFitter", "METHODS", "STYLES"]
 
 METHODS = ("minmax", "percentile", "mse")
 STYLES = ("midtread", "midrise")
@@ -154,51 +154,84 @@ def _fit_ranges(x, bits, method, signed, symmetric, style, axis, percentile, rul
     if isinstance(bits, (str, bytes)) or not isinstance(bits, Sequence):
         raise TypeError(f"bits must be a sequence of ints in 1..16, got {bits!r}")
     bits = [check_bits(b, "bits") for b in bits]
-    method = check_choice(method, METHODS, "method")
-    style = check_choice(style, STYLES, "style")
-    if check_rules(rules) is not None:
-        bits = [rules.check_bits(b, role) for b in bits]
-        symmetric, style, axis = rules.fit_options(role, symmetric=symmetric, style=style, axis=axis)
-    if signed is not None and not isinstance(signed, bool):
-        raise TypeError(f"signed must be None, True or False, got {signed!r}")
-    if not isinstance(symmetric, bool):
-        raise TypeError(f"symmetric must be True or False, got {symmetric!r}")
-    pct = _check_percentile(percentile)
-    x, _ = as_input(x, check_finite=check)
-    if x.numel() == 0:
-        raise ValueError(f"x is empty (shape {tuple(x.shape)}); there is nothing to fit")
-    x2d, axis = _channels_first(x.detach(), axis)
-    if signed is None:
-        signed = bool(x2d.min() < 0)
+    fitter = RangeFitter(x, method, signed=signed, symmetric=symmetric, style=style, axis=axis,
+                         percentile=percentile, rules=rules, role=role, check_finite=check)
+    return [fitter.fit(b) for b in bits]
 
-    grids = []
-    with torch.no_grad():
-        xf = x2d.float()
-        sample = search_sample(xf) if method == "mse" else None
-        rows: SortedRows | None = None  # the sorted sample, made by the first width that sorts
-        extent = None
-        for b in bits:
-            spec = GridSpec(b, signed, symmetric, style)
-            if sample is not None and rows is None and spec.n * 32 <= sample.shape[1]:
-                rows = SortedRows(sample, spec)
-            if symmetric:
-                if extent is None:
-                    extent = _sym_extent(xf, spec, method, pct)
-                r = extent
+
+class RangeFitter:
+    """:func:`fit_range` for one tensor at any bit width, asked one width at a time.
+
+    Takes the arguments of :func:`fit_range` less ``bits``; ``.fit(bits)`` returns exactly
+    ``fit_range(x, bits, ...)``. The clipping extents, the MSE search sample and its sorted
+    copy with prefix sums are made once, on the first width that needs them, and kept: a
+    widget that refits at each new bit width pays for the sort once (the sort dominates
+    fitting a wide tensor; a width then costs the search alone). The fitter keeps a reference
+    to ``x``: ``x`` must not change while the fitter is used. ``check_finite=False``: the
+    caller has checked that ``x`` holds no NaN or inf (no second scan).
+
+    >>> import torch
+    >>> x = torch.randn(4, 300, generator=torch.Generator().manual_seed(0))
+    >>> f = RangeFitter(x, "mse", axis=0)
+    >>> torch.equal(f.fit(3).scale, fit_range(x, 3, "mse", axis=0).scale), f.signed
+    (True, True)
+    """
+
+    def __init__(self, x: torch.Tensor, method: str = "mse", *, signed: bool | None = None,
+                 symmetric: bool = True, style: str = "midtread", axis: int | None = None,
+                 percentile: float = 99.99, rules: DeviceRules | None = None,
+                 role: str = "weight", check_finite: bool = True):
+        method = check_choice(method, METHODS, "method")
+        style = check_choice(style, STYLES, "style")
+        self.rules, self.role = check_rules(rules), role
+        if self.rules is not None:
+            symmetric, style, axis = rules.fit_options(role, symmetric=symmetric, style=style, axis=axis)
+        if signed is not None and not isinstance(signed, bool):
+            raise TypeError(f"signed must be None, True or False, got {signed!r}")
+        if not isinstance(symmetric, bool):
+            raise TypeError(f"symmetric must be True or False, got {symmetric!r}")
+        self._pct = _check_percentile(percentile)
+        x, _ = as_input(x, check_finite=bool(check_finite))
+        if x.numel() == 0:
+            raise ValueError(f"x is empty (shape {tuple(x.shape)}); there is nothing to fit")
+        x2d, self.axis = _channels_first(x.detach(), axis)
+        if signed is None:
+            signed = bool(x2d.min() < 0)
+        self.x, self.method, self.signed, self.symmetric, self.style = x, method, signed, symmetric, style
+        with torch.no_grad():
+            self._xf = x2d.float()
+            self._sample = search_sample(self._xf) if method == "mse" else None
+        self._rows: SortedRows | None = None  # the sorted sample, made by the first width that sorts
+        self._extent = None
+
+    def fit(self, bits: int) -> UniformGrid:
+        """The grid ``fit_range(x, bits, ...)`` gives, with the shared parts reused."""
+        b = check_bits(bits, "bits")
+        if self.rules is not None:
+            b = self.rules.check_bits(b, self.role)
+        spec = GridSpec(b, self.signed, self.symmetric, self.style)
+        sample, method = self._sample, self.method
+        with torch.no_grad():
+            if sample is not None and self._rows is None and spec.n * 32 <= sample.shape[1]:
+                self._rows = SortedRows(sample, spec)
+            if self.symmetric:
+                if self._extent is None:
+                    self._extent = _sym_extent(self._xf, spec, method, self._pct)
+                r = self._extent
                 if method == "mse":
-                    r = search_symmetric(sample, spec, r, rows)
+                    r = search_symmetric(sample, spec, r, self._rows)
                 scale, offset = spec.symmetric_grid(r)
             else:
-                if extent is None:
-                    extent = _asym_extent(xf, method, pct)
-                lo, hi = extent
+                if self._extent is None:
+                    self._extent = _asym_extent(self._xf, method, self._pct)
+                lo, hi = self._extent
                 if method == "mse":
-                    lo, hi = search_asymmetric(sample, spec, lo, hi, rows)
+                    lo, hi = search_asymmetric(sample, spec, lo, hi, self._rows)
                 scale, offset = spec.asymmetric_grid(lo, hi)
-            grids.append(_make_grid(spec, scale, offset, axis, x.device))
-    if rules is not None and rules.pow2_scales:
-        grids = [power_of_two_fit(x, g, method) for g in grids]
-    return grids
+            grid = _make_grid(spec, scale, offset, self.axis, self.x.device)
+        if self.rules is not None and self.rules.pow2_scales:
+            grid = power_of_two_fit(self.x, grid, method)
+        return grid
 
 
 def _make_grid(spec: GridSpec, scale: torch.Tensor, offset: torch.Tensor, axis, device) -> UniformGrid:

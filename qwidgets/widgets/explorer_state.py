@@ -8,7 +8,9 @@ core (:func:`qwidgets.fit_range`); the state only decides *which* grid is curren
   which case the clip range is kept and cut into the new number of steps), or brings back
   the grid learned earlier for that (source, bit width);
 - ``reset()`` returns to the fitted grid of the current bit width;
-- every change bumps ``version[source]``, the key the numbers are cached on.
+- every change bumps ``version[source]``, the key the numbers are cached on;
+- fitting keeps one :class:`qwidgets.core.ranges.RangeFitter` per source, method and layout,
+  so a new bit width costs the range search, not another sort of the values.
 """
 
 from __future__ import annotations
@@ -21,7 +23,7 @@ import torch
 from ..core.checks import check_bits, check_positive
 from ..core.device_rules import DeviceRules, conform_grid
 from ..core.grid import UniformGrid
-from ..core.ranges import METHODS, fit_range
+from ..core.ranges import METHODS, RangeFitter
 from ..model.layers import WEIGHT_AXIS
 
 __all__ = ["ExplorerState"]
@@ -55,6 +57,7 @@ class ExplorerState:
     version: dict = field(default_factory=dict)  # source -> edit counter
     rules: DeviceRules | None = None  # what the device runs (None: anything)
     _fitted: dict = field(default_factory=dict)  # (source, bits, method, signed, axis) -> grid
+    _fitters: dict = field(default_factory=dict)  # (source, method, signed, axis) -> RangeFitter
 
     @property
     def sources(self) -> tuple:
@@ -78,8 +81,13 @@ class ExplorerState:
         axis = WEIGHT_AXIS if per_channel else None
         key = (source, bits, method, signed, axis)
         if key not in self._fitted:
-            extra = {} if self.rules is None else {"rules": self.rules, "role": role(source)}
-            g = fit_range(self.values[source], bits, method, signed=signed, axis=axis, **extra)
+            fitter = self._fitters.get((source, method, signed, axis))
+            if fitter is None:  # one per tensor and layout: its sorted copy serves every width
+                extra = {} if self.rules is None else {"rules": self.rules, "role": role(source)}
+                fitter = RangeFitter(self.values[source], method, signed=signed, axis=axis, **extra)
+                self._fitters[(source, method, signed, axis)] = fitter
+                self._fitters[(source, method, fitter.signed, axis)] = fitter
+            g = fitter.fit(bits)
             self._fitted[key] = self._fitted[(source, bits, method, g.signed, axis)] = g
         return self._fitted[key]
 
