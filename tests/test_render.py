@@ -10,6 +10,7 @@ import pytest
 from PIL import Image
 
 from qwidgets.viz.canvas import encode_png
+from qwidgets.viz.png import FrameEncoder
 from qwidgets.widgets.events import Coalescer, MessageLine
 from qwidgets.widgets.image_canvas import PlotCanvas
 
@@ -26,6 +27,27 @@ def test_encode_png_decodes_to_the_same_pixels_with_pillow():
         encode_png(np.zeros((4, 4), np.uint8))
     with pytest.raises(ValueError, match="compress_level must be in 0..9"):
         encode_png(rgba, 10)
+
+
+def test_frame_encoder_recompresses_changed_bands_and_decodes_to_the_same_pixels():
+    """Reference: Pillow's PNG decoder (and zlib's checks inside it) reads back every frame
+    exactly; only the bands of rows that changed are compressed again."""
+    rng = np.random.default_rng(1)
+    frame = np.full((100, 61, 4), 255, np.uint8)
+    frame[10:90, 5:50, :3] = rng.integers(0, 256, size=(80, 45, 3), dtype=np.uint8)
+    enc = FrameEncoder(band_rows=16)  # 7 bands, the last one 4 rows
+    for step, rows in enumerate([None, (20, 21), (0, 1), (96, 100), (15, 17), None]):
+        if rows is not None:
+            frame[rows[0]:rows[1], 3:40, :3] = rng.integers(0, 256, size=(rows[1] - rows[0], 37, 3))
+        before = enc.bands_encoded
+        png = enc.encode(frame)
+        with Image.open(io.BytesIO(png)) as im:
+            np.testing.assert_array_equal(np.asarray(im.convert("RGB")), frame[..., :3])
+        expected = 7 if step == 0 else (0 if rows is None else len({r // 16 for r in range(*rows)}))
+        assert enc.bands_encoded - before == expected
+    assert enc.encode(frame[:50]) != png  # a new size starts afresh
+    with pytest.raises(ValueError, match="band_rows"):
+        FrameEncoder(band_rows=0)
 
 
 def _two_panels():
@@ -52,6 +74,20 @@ def test_blitted_frames_equal_a_full_redraw():
     blitted = canvas.draw().copy()
     assert canvas.full_draws == 1 and canvas.partial_draws == 0  # only the line was drawn
     np.testing.assert_array_equal(blitted, _fresh(canvas))
+
+
+def test_only_the_axes_whose_artist_changed_is_blitted():
+    canvas, left, right, a, b = _two_panels()
+    canvas.render()
+    blits = canvas.blits
+    b.set_ydata([0, 2, 0])  # the right panel only
+    frame = canvas.draw().copy()
+    assert canvas.blits == blits + 1 and canvas.full_draws == 1
+    np.testing.assert_array_equal(frame, _fresh(canvas))
+    canvas.draw()
+    blits = canvas.blits
+    canvas.draw()  # nothing changed: nothing drawn
+    assert canvas.blits == blits
 
 
 def test_new_limits_repaint_only_that_axes_and_match_a_full_redraw():

@@ -9,14 +9,25 @@
                  is given) on the next render, after changing a title, ticks, a legend or other
                  non-animated artists; a change of an axes' limits is noticed by itself
                  and repaints only that axes (and any whose labels reach into it);
-    ``.render()``  draw and return a PNG (also kept as ``.last_png``);
+    ``.render()``  draw and return a PNG (also kept as ``.last_png``); only the bands of
+                 rows that changed are compressed again (:class:`~qwidgets.viz.png.FrameEncoder`);
     ``.save(path)``  a full-quality PNG or SVG, by the file's extension;
-    ``.renders`` / ``.full_draws`` / ``.partial_draws`` / ``.kept_draws``  counters (tests,
-                 benchmarks); the last counts backgrounds reused for limits seen before.
+    ``.renders`` / ``.full_draws`` / ``.partial_draws`` / ``.kept_draws`` / ``.blits``  counters
+                 (tests, benchmarks): ``kept_draws`` counts groups of axes whose background
+                 was reused for limits seen before, ``blits`` the axes whose animated artists
+                 were drawn again.
+
+Each axes is blitted on its own: an axes none of whose animated artists changed (matplotlib's
+``stale`` flag, set by every setter) keeps its pixels; one whose first few animated artists
+are unchanged (the bin map under a moving probe line) restores a snapshot taken after drawing
+them, and draws only the rest. Animated artists must stay inside their axes (clipped to it,
+matplotlib's default); any other animated artist makes every frame a whole-figure blit.
+Backgrounds are kept per group of axes (an axes with the axes whose labels reach near it), by
+their limits: going back to limits seen before restores that group's pixels without drawing.
 With ``.literal = True`` every text is drawn as written (``parse_math`` off, tick labels made
 during a draw included): layer names and numbers may hold ``$``, ``_`` or ``^``, which math
 text would try to parse (and fail on).
-``encode_png(rgba, compress_level=1) -> bytes``
+``encode_png(rgba, compress_level=1) -> bytes``  (from :mod:`qwidgets.viz.png`)
     Low compression: at notebook sizes it encodes several times faster than the default level
     for a few kilobytes more.
 
@@ -27,63 +38,35 @@ text would try to parse (and fail on).
 >>> png = canvas.render()
 >>> png[:4] == b"\\x89PNG", canvas.full_draws
 (True, 1)
->>> line.set_ydata([1, 0]); png = canvas.render(); canvas.full_draws  # blitted, no full draw
-1
+>>> line.set_ydata([1, 0]); png = canvas.render(); canvas.full_draws, canvas.blits  # blitted
+(1, 2)
+>>> png = canvas.render(); canvas.blits  # nothing changed: nothing drawn
+2
 """
 
 from __future__ import annotations
 
 import math
 import os
-import struct
-import zlib
 from collections import OrderedDict
 
 import matplotlib
 import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.colors import to_rgba
 from matplotlib.figure import Figure
 from matplotlib.patches import Rectangle
 from matplotlib.text import Text
 from matplotlib.transforms import Bbox, IdentityTransform
 
+from .png import FrameEncoder, encode_png
+
 __all__ = ["BlitCanvas", "encode_png"]
 
 
 _LITERAL = {"text.parse_math": False}
-BACKGROUNDS_KEPT = 8  # drawn backgrounds kept by axes limits (about 1.7 MB each at 720x600)
-
-
-def encode_png(rgba: np.ndarray, compress_level: int = 1) -> bytes:
-    """PNG bytes of an ``(H, W, 4)`` uint8 RGBA buffer (alpha dropped: the figures are opaque).
-
-    Written directly (no row filters, zlib at a low level): for mostly white plots this is
-    several times faster than a general-purpose encoder at its default settings.
-
-    >>> encode_png(np.zeros((2, 3, 4), np.uint8))[:4] == b"\\x89PNG"
-    True
-    """
-    arr = np.asarray(rgba)
-    if arr.ndim != 3 or arr.shape[2] not in (3, 4) or arr.dtype != np.uint8:
-        raise ValueError(f"rgba must be an (H, W, 3 or 4) uint8 array, got {arr.shape} {arr.dtype}")
-    if not 0 <= int(compress_level) <= 9:
-        raise ValueError(f"compress_level must be in 0..9, got {compress_level}")
-    h, w = arr.shape[:2]
-    rows = np.empty((h, 1 + 3 * w), np.uint8)
-    rows[:, 0] = 0  # filter type "none" for every row
-    rows[:, 1:] = arr[..., :3].reshape(h, 3 * w)
-    header = struct.pack(">IIBBBBB", w, h, 8, 2, 0, 0, 0)  # 8-bit RGB, no interlace
-    return b"".join((
-        b"\x89PNG\r\n\x1a\n",
-        _png_chunk(b"IHDR", header),
-        _png_chunk(b"IDAT", zlib.compress(rows.tobytes(), int(compress_level))),
-        _png_chunk(b"IEND", b""),
-    ))
-
-
-def _png_chunk(tag: bytes, data: bytes) -> bytes:
-    crc = zlib.crc32(tag + data) & 0xFFFFFFFF
-    return struct.pack(">I", len(data)) + tag + data + struct.pack(">I", crc)
+BACKGROUNDS_KEPT = 24  # drawn backgrounds of groups of axes kept by their limits (a part of the
+# figure each: at most 1.7 MB at 720x600)
 
 
 class BlitCanvas:
@@ -102,17 +85,22 @@ class BlitCanvas:
         self._canvas = FigureCanvasAgg(self.figure)
         self.size_px = (int(width_px), int(height_px))
         self._animated: list = []
-        self._background = None
+        self._background = None  # the static pixels (an (H, W, 4) array)
+        self._frame_ok = False  # the Agg buffer holds the last frame drawn by draw()
+        self._snaps: dict = {}  # axes -> (artists drawn, their pixels over the background)
         self._drawn_axes: dict = {}
         self._drawn_version = -1
         self._dirty: set = set()
         self._boxes: dict = {}
-        self._kept: OrderedDict = OrderedDict()  # axes limits -> (background, label boxes)
+        self._box_at: dict = {}  # (axes, limits) -> label extent drawn with those limits
+        self._kept: OrderedDict = OrderedDict()  # group of (axes, limits) -> (rows, cols, pixels)
+        self._encoder = FrameEncoder()
         self.kept_draws = 0
         self._version = 0
         self.renders = 0
         self.full_draws = 0
         self.partial_draws = 0
+        self.blits = 0
         self.last_png: bytes = b""
 
     def animate(self, *artists) -> None:
@@ -121,10 +109,12 @@ class BlitCanvas:
             a.set_animated(True)
             if a not in self._animated:
                 self._animated.append(a)
+        self._frame_ok = False
 
     def forget(self, *artists) -> None:
         """Stop drawing artists marked by :meth:`animate` (for example after ``figure.clear()``)."""
         self._animated = [a for a in self._animated if a not in artists]
+        self._frame_ok = False
 
     def invalidate(self, *axes) -> None:
         """Repaint the background on the next :meth:`render`: of the given axes, or of all."""
@@ -133,40 +123,102 @@ class BlitCanvas:
         else:
             self._version += 1
         self._kept.clear()  # every kept background holds the old static content
+        self._box_at.clear()
 
     def _axes_signature(self) -> dict:
         return {ax: tuple(np.round(ax.viewLim.bounds, 12)) for ax in self.figure.axes}
+
+    def _buffer(self) -> np.ndarray:
+        return np.asarray(self._canvas.buffer_rgba())
 
     def draw(self) -> np.ndarray:
         """Bring the Agg buffer up to date and return it as an ``(H, W, 4)`` uint8 array.
 
         The background (everything not animated: axes, ticks, labels, static artists) is
         cached. When some axes' limits changed, only those axes (and any whose labels overlap
-        them) are repainted into it; an :meth:`invalidate` or a new axes repaints everything.
-        The last few backgrounds are kept by their axes limits, so going back to a view seen
-        before (a slider scrubbed back and forth) costs no drawing at all.
+        them) are repainted into it, or restored from the pixels kept for those limits; an
+        :meth:`invalidate` or a new axes repaints everything. Then each axes whose animated
+        artists changed is blitted (see the module's notes); the others keep their pixels.
         """
         sig = self._axes_signature()
+        fresh = True  # the buffer holds the background alone
         if (self._background is None or self._version != self._drawn_version
                 or sig.keys() != self._drawn_axes.keys()):
             self._full_draw()
         else:
             changed = [ax for ax, s in sig.items() if self._drawn_axes[ax] != s or ax in self._dirty]
-            kept = self._kept.get(tuple(sig.values())) if changed and not self._dirty else None
-            if kept is not None:
-                self._background, boxes = kept
-                self._boxes = dict(boxes)
-                self._drawn_axes = sig
-                self._kept.move_to_end(tuple(sig.values()))
-                self.kept_draws += 1
-            self._canvas.restore_region(self._background)
-            if changed and kept is None and not self._redraw_axes(changed):
-                self._full_draw()
-        renderer = self._canvas.get_renderer()
+            if changed:
+                np.copyto(self._buffer(), self._background)
+                if not self._redraw_axes(changed, sig):
+                    self._full_draw()
+            else:
+                fresh = False
+        if fresh or not self._frame_ok or not self._blit_axes():
+            if not fresh:
+                np.copyto(self._buffer(), self._background)
+            self._snaps.clear()
+            renderer = self._canvas.get_renderer()
+            for a in self._animated:
+                if a.get_visible():
+                    a.draw(renderer)
+                a.stale = False
+            self.blits += len({a.axes for a in self._animated})
+            self._frame_ok = True
+        return self._buffer()
+
+    # ------------------------------------------------------------------ per-axes blitting
+    def _groups(self):
+        """Animated artists by axes, with each axes' pixel box (rows, cols); None when an
+        animated artist is not confined to an axes, or when two axes' boxes touch."""
+        groups: dict = {}
         for a in self._animated:
-            if a.get_visible():
-                a.draw(renderer)
-        return np.asarray(self._canvas.buffer_rgba())
+            if a.axes is None or not a.get_clip_on() or a.get_clip_box() is None:
+                return None
+            groups.setdefault(a.axes, []).append(a)
+        h, w = self._background.shape[:2]
+        boxes = {}
+        for ax in groups:
+            x0, y0, x1, y1 = ax.bbox.extents
+            c0, c1 = max(0, math.floor(x0) - 1), min(w, math.ceil(x1) + 1)
+            r0, r1 = max(0, h - math.ceil(y1) - 1), min(h, h - math.floor(y0) + 1)
+            boxes[ax] = (r0, r1, c0, c1)
+        spans = sorted(boxes.values())
+        for i, (r0, r1, c0, c1) in enumerate(spans):
+            for q0, q1, d0, d1 in spans[i + 1:]:
+                if q0 < r1 and r0 < q1 and d0 < c1 and c0 < d1:
+                    return None
+        return groups, boxes
+
+    def _blit_axes(self) -> bool:
+        """Redraw the animated artists of the axes where one changed; False: not possible here."""
+        found = self._groups()
+        if found is None:
+            return False
+        groups, boxes = found
+        renderer = self._canvas.get_renderer()
+        buf = self._buffer()
+        for ax, arts in groups.items():
+            stale = [a.stale for a in arts]
+            if not any(stale):
+                continue  # its pixels are those of the last frame
+            first = stale.index(True)
+            r0, r1, c0, c1 = boxes[ax]
+            snap = self._snaps.pop(ax, None)  # kept below only while its artists stay unchanged
+            start = 0
+            if snap is not None and snap[0] <= first and snap[1].shape == (r1 - r0, c1 - c0, 4):
+                start = snap[0]
+                buf[r0:r1, c0:c1] = snap[1]
+                self._snaps[ax] = snap
+            else:
+                buf[r0:r1, c0:c1] = self._background[r0:r1, c0:c1]
+            for i, a in enumerate(arts[start:], start):
+                if i == first and first > start:  # keep the unchanged artists' pixels
+                    self._snaps[ax] = (first, buf[r0:r1, c0:c1].copy())
+                if a.get_visible():
+                    a.draw(renderer)
+                a.stale = False
+            self.blits += 1
+        return True
 
     literal = False  # True: every text drawn as written (no math text)
 
@@ -192,27 +244,28 @@ class BlitCanvas:
         self.full_draws += 1
 
     def _save_background(self) -> None:
-        self._background = self._canvas.copy_from_bbox(self.figure.bbox)
+        self._background = self._buffer().copy()
         self._drawn_axes = self._axes_signature()  # drawing may settle the limits
         self._drawn_version = self._version
         self._dirty.clear()
-        self._kept[tuple(self._drawn_axes.values())] = (self._background, dict(self._boxes))
-        while len(self._kept) > BACKGROUNDS_KEPT:
-            self._kept.popitem(last=False)
+        self._frame_ok = False
+        for ax, box in self._boxes.items():
+            self._box_at[(ax, self._drawn_axes[ax])] = box
 
-    def _redraw_axes(self, changed: list) -> bool:
+    def _redraw_axes(self, changed: list, sig: dict) -> bool:
         """Repaint a few axes into the background; False when that would be the whole figure."""
         with self._rc():
             self.literal_text()
-            return self._redraw_axes_literal(changed)
+            return self._redraw_axes_literal(changed, sig)
 
-    def _redraw_axes_literal(self, changed: list) -> bool:
+    def _redraw_axes_literal(self, changed: list, sig: dict) -> bool:
         fig = self.figure
         renderer = self._canvas.get_renderer()
         # extents with labels as last drawn (measured once per draw: text is slow)
         old = [self._boxes[ax] for ax in changed]  # where their old labels were drawn
-        for ax in changed:
-            self._boxes[ax] = ax.get_tightbbox(renderer)  # where the new ones will be
+        for ax in changed:  # where the new ones will be (known for limits drawn before)
+            box = None if ax in self._dirty else self._box_at.get((ax, sig[ax]))
+            self._boxes[ax] = box if box is not None else ax.get_tightbbox(renderer)
         region = Bbox.union(old + [self._boxes[ax] for ax in changed])
         todo = set(changed)
         while True:  # grow the region until no other axes comes near it (antialiasing spills)
@@ -224,6 +277,11 @@ class BlitCanvas:
             region = Bbox.union([region] + [self._boxes[a] for a in more])
         if len(todo) == len(fig.axes):
             return False
+        key = tuple((i, sig[a]) for i, a in enumerate(fig.axes) if a in todo)
+        if not self._dirty and self._restore_kept(key, region, todo):
+            self._save_background()
+            self.kept_draws += 1
+            return True
         region = region.padded(1)
         x0, y0 = math.floor(region.x0), math.floor(region.y0)
         blank = Rectangle((x0, y0), math.ceil(region.x1) - x0, math.ceil(region.y1) - y0,
@@ -237,13 +295,52 @@ class BlitCanvas:
         for t in fig.texts:
             if t.get_visible() and not t.get_animated() and t.get_window_extent(renderer).overlaps(region):
                 t.draw(renderer)
+        self._keep(key, todo)
         self._save_background()
         self.partial_draws += 1
         return True
 
+    def _pixels(self, box: Bbox) -> tuple:
+        """(row0, row1, col0, col1) of a display box, rounded outward, inside the figure."""
+        h, w = self._background.shape[:2]
+        return (max(0, h - math.ceil(box.y1)), min(h, h - math.floor(box.y0)),
+                max(0, math.floor(box.x0)), min(w, math.ceil(box.x1)))
+
+    def _keep(self, key: tuple, todo: set) -> None:
+        """Keep the pixels the axes in ``todo`` cover now (labels and antialiasing included)."""
+        box = Bbox.union([self._boxes[a] for a in todo]).padded(6)
+        r0, r1, c0, c1 = self._pixels(box)
+        self._kept[key] = (box, self._buffer()[r0:r1, c0:c1].copy())
+        self._kept.move_to_end(key)
+        while len(self._kept) > BACKGROUNDS_KEPT:
+            self._kept.popitem(last=False)
+
+    def _restore_kept(self, key: tuple, region: Bbox, todo: set) -> bool:
+        """Put back the kept pixels of these axes at these limits, if no other axes or figure
+        text comes near them now. The old labels' pixels around them are blanked."""
+        hit = self._kept.get(key)
+        if hit is None:
+            return False
+        box, pixels = hit
+        whole = Bbox.union([box, region.padded(1)])
+        near = whole.padded(5)
+        renderer = self._canvas.get_renderer()
+        if any(self._boxes[a].overlaps(near) for a in self.figure.axes if a not in todo):
+            return False
+        if any(t.get_visible() and not t.get_animated() and t.get_window_extent(renderer).overlaps(near)
+               for t in self.figure.texts):
+            return False
+        buf = self._buffer()
+        r0, r1, c0, c1 = self._pixels(whole)
+        buf[r0:r1, c0:c1] = np.round(np.array(to_rgba(self.figure.get_facecolor())) * 255).astype(np.uint8)
+        r0, r1, c0, c1 = self._pixels(box)
+        buf[r0:r1, c0:c1] = pixels
+        self._kept.move_to_end(key)
+        return True
+
     def render(self) -> bytes:
         """Draw and encode as PNG; returns the PNG bytes (also kept in :attr:`last_png`)."""
-        png = encode_png(self.draw())
+        png = self._encoder.encode(self.draw())
         self.renders += 1
         self.last_png = png
         return png
@@ -263,3 +360,4 @@ class BlitCanvas:
             for a in self._animated:
                 a.set_animated(True)
             self._background = None  # saving re-drew the buffer
+            self._frame_ok = False

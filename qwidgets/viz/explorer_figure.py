@@ -104,6 +104,7 @@ class ExplorerFigure:
         self._view = None
         self.ticks_every = 1
         self.map_codes = None  # (lowest, highest) code the bin map shows
+        self._shown: dict = {}  # artist name -> the data it shows (set again only on a change)
 
     # ------------------------------------------------------------------ construction
     def _build_hist(self):
@@ -238,8 +239,20 @@ class ExplorerFigure:
         self._view = None
 
     # ------------------------------------------------------------------ updates
+    def _new(self, name: str, *values) -> bool:
+        """Whether ``values`` differ from what artist ``name`` shows; if so they are recorded.
+
+        Artists are given data only when it changed: an unchanged artist stays un-stale, so
+        the canvas keeps its pixels (a noise move leaves the histogram and the output alone)."""
+        old = self._shown.get(name)
+        if old is not None and len(old) == len(values) and all(
+                np.array_equal(a, b, equal_nan=True) for a, b in zip(old, values, strict=True)):
+            return False
+        self._shown[name] = tuple(np.array(v, dtype=float, copy=True) for v in values)
+        return True
+
     def update(self, d: PlotData) -> None:
-        """Move every animated artist to the state in ``d``."""
+        """Move every animated artist to the state in ``d`` (those whose data changed)."""
         self._update_hist(d)
         self._update_map(d)
         self._update_curve(d)
@@ -250,36 +263,49 @@ class ExplorerFigure:
         v0, v1 = self._view
         centres = 0.5 * (self._edges[:-1] + self._edges[1:])
         outside = (centres < lo - 0.5 * d.step) | (centres > hi + 0.5 * d.step)
-        self.hist_clipped.set_data(np.where(outside, np.maximum(self._counts, 0.7), 0.7), self._edges)
+        clipped = np.where(outside, np.maximum(self._counts, 0.7), 0.7)
+        if self._new("clipped", clipped, self._edges):
+            self.hist_clipped.set_data(clipped, self._edges)
         levels = d.levels[(d.levels >= v0) & (d.levels <= v1)]
         every = max(1, int(np.ceil(levels.size / MAX_TICKS)))
         shown = levels[::every]
         xs = np.repeat(shown, 3)
         ys = np.tile([0.0, 0.07, np.nan], shown.size)
-        self.grid_ticks.set_data(xs, ys)
-        self.clip_low.set_x(v0)
-        self.clip_low.set_width(max(0.0, lo - v0))
-        self.clip_high.set_x(hi)
-        self.clip_high.set_width(max(0.0, v1 - hi))
-        self.clip_lines.set_data([lo, lo, np.nan, hi, hi], [0, 1, np.nan, 0, 1])
+        if self._new("ticks", xs, ys):
+            self.grid_ticks.set_data(xs, ys)
+        if self._new("clip", [v0, v1, lo, hi]):
+            self.clip_low.set_x(v0)
+            self.clip_low.set_width(max(0.0, lo - v0))
+            self.clip_high.set_x(hi)
+            self.clip_high.set_width(max(0.0, v1 - hi))
+            self.clip_lines.set_data([lo, lo, np.nan, hi, hi], [0, 1, np.nan, 0, 1])
         self.ticks_every = every  # 1 in ``every`` grid points drawn (the readout says so)
 
     def _update_map(self, d: PlotData):
         x0, x1, y0, y1 = d.map_extent  # in grid steps and codes; drawn stretched over 0..1
         self.map_codes = (int(round(y0 + 0.5)), int(round(y1 - 0.5)))
-        self.map_img.set_data(d.map_image)
+        if self._new("map", d.map_image):
+            self.map_img.set_data(d.map_image)
         px = (d.probe_pos - x0) / (x1 - x0)
-        self.probe_line.set_xdata([px, px])
+        if self._new("probe", [px]):
+            self.probe_line.set_xdata([px, px])
         edges = np.append(d.probe_codes - 0.5, d.probe_codes[-1] + 0.5)
-        self.bars.set_data(d.probe_probs, (edges - y0) / (y1 - y0))
+        edges = (edges - y0) / (y1 - y0)
+        if self._new("bars", d.probe_probs, edges):
+            self.bars.set_data(d.probe_probs, edges)
 
     def _update_curve(self, d: PlotData):
-        self.hard_line.set_data(d.curve_x, d.curve_hard)
-        self.soft_line.set_data(d.curve_x, d.curve_expected)
-        for line, (x, y) in zip(self.sample_lines, d.curve_samples, strict=False):
-            line.set_data(x, y)
+        if self._new("hard", d.curve_x, d.curve_hard):
+            self.hard_line.set_data(d.curve_x, d.curve_hard)
+        if self._new("soft", d.curve_x, d.curve_expected):
+            self.soft_line.set_data(d.curve_x, d.curve_expected)
+        for i, (line, (x, y)) in enumerate(zip(self.sample_lines, d.curve_samples, strict=False)):
+            if self._new(f"samples{i}", x, y):
+                line.set_data(x, y)
 
     def _update_out(self, d: PlotData):
+        if not self._new("out", d.out_x, d.out_y):
+            return
         if self.has_layer:
             self.out_points.set_data(d.out_x, d.out_y)
         else:

@@ -1,0 +1,137 @@
+"""PNG bytes from RGBA frames, written directly; :class:`FrameEncoder` re-compresses only the
+bands of rows that changed since the previous frame.
+
+``encode_png(rgba, compress_level=1) -> bytes``
+    One frame, alpha dropped (the figures are opaque). No row filters, zlib at a low level: at
+    notebook sizes several times faster than a general-purpose encoder at its default
+    settings, for a few kilobytes more.
+``FrameEncoder(compress_level=1, band_rows=16)``
+    ``.encode(rgba) -> bytes`` for a stream of frames of one size. The image data is cut into
+    bands of ``band_rows`` rows, each compressed on its own (a raw deflate segment ended by a
+    sync flush, so the segments join into one valid stream); a band whose pixels equal the
+    previous frame's keeps its compressed bytes. A control that moves one plot re-encodes the
+    rows that plot spans, not the whole figure. ``.bands_encoded`` counts the bands compressed
+    (tests, benchmarks).
+
+>>> import numpy as np
+>>> enc = FrameEncoder()
+>>> frame = np.full((40, 30, 4), 255, np.uint8)
+>>> a = enc.encode(frame); frame[35, 3] = (0, 0, 0, 255); b = enc.encode(frame)
+>>> a[:4] == b"\\x89PNG", enc.bands_encoded  # 3 bands, then only the last one again
+(True, 4)
+"""
+
+from __future__ import annotations
+
+import struct
+import zlib
+
+import numpy as np
+
+__all__ = ["FrameEncoder", "encode_png"]
+
+_SIGNATURE = b"\x89PNG\r\n\x1a\n"
+_FINAL_BLOCK = b"\x03\x00"  # an empty final deflate block (fixed Huffman, end of block)
+
+
+def _check(arr: np.ndarray, compress_level: int) -> None:
+    if arr.ndim != 3 or arr.shape[2] not in (3, 4) or arr.dtype != np.uint8:
+        raise ValueError(f"rgba must be an (H, W, 3 or 4) uint8 array, got {arr.shape} {arr.dtype}")
+    if not 0 <= int(compress_level) <= 9:
+        raise ValueError(f"compress_level must be in 0..9, got {compress_level}")
+
+
+def _rows(arr: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
+    """PNG scanlines ``(H, 1 + 3 W)``: filter byte 0 ("none"), then the RGB bytes."""
+    h, w = arr.shape[:2]
+    if out is None:
+        out = np.empty((h, 1 + 3 * w), np.uint8)
+    out[:, 0] = 0
+    if arr.shape[2] == 3:
+        out[:, 1:] = arr.reshape(h, 3 * w)
+    else:  # a gather with a fixed index: faster than numpy's strided copy of [..., :3]
+        out[:, 1:] = arr.reshape(h, 4 * w).take(_rgb_index(w), axis=1)
+    return out
+
+
+_INDEX: dict = {}
+
+
+def _rgb_index(w: int) -> np.ndarray:
+    idx = _INDEX.get(w)
+    if idx is None:
+        idx = _INDEX[w] = (np.arange(w)[:, None] * 4 + np.arange(3)).reshape(-1).astype(np.intp)
+    return idx
+
+
+def _chunk(tag: bytes, data: bytes) -> bytes:
+    crc = zlib.crc32(data, zlib.crc32(tag)) & 0xFFFFFFFF
+    return struct.pack(">I", len(data)) + tag + data + struct.pack(">I", crc)
+
+
+def _png(w: int, h: int, idat: bytes) -> bytes:
+    header = struct.pack(">IIBBBBB", w, h, 8, 2, 0, 0, 0)  # 8-bit RGB, no interlace
+    return b"".join((_SIGNATURE, _chunk(b"IHDR", header), _chunk(b"IDAT", idat), _chunk(b"IEND", b"")))
+
+
+def encode_png(rgba: np.ndarray, compress_level: int = 1) -> bytes:
+    """PNG bytes of an ``(H, W, 4)`` (or ``(H, W, 3)``) uint8 buffer (alpha dropped).
+
+    >>> encode_png(np.zeros((2, 3, 4), np.uint8))[:4] == b"\\x89PNG"
+    True
+    """
+    arr = np.asarray(rgba)
+    _check(arr, compress_level)
+    h, w = arr.shape[:2]
+    return _png(w, h, zlib.compress(_rows(arr).tobytes(), int(compress_level)))
+
+
+class FrameEncoder:
+    """PNG frames of one size, re-compressing only the bands of rows that changed."""
+
+    def __init__(self, compress_level: int = 1, band_rows: int = 16):
+        if not 0 <= int(compress_level) <= 9:
+            raise ValueError(f"compress_level must be in 0..9, got {compress_level}")
+        if int(band_rows) < 1:
+            raise ValueError(f"band_rows must be >= 1, got {band_rows}")
+        self.level, self.band_rows = int(compress_level), int(band_rows)
+        self._last = None  # the previous frame's pixels
+        self._rows = None  # its scanlines
+        self._bands: list = []  # compressed bytes per band
+        self.bands_encoded = 0
+
+    def encode(self, rgba: np.ndarray) -> bytes:
+        arr = np.asarray(rgba)
+        _check(arr, self.level)
+        h, w = arr.shape[:2]
+        b = self.band_rows
+        n = -(-h // b)
+        if self._last is None or self._last.shape != arr.shape:
+            self._last = np.empty_like(arr)
+            self._rows = np.empty((h, 1 + 3 * w), np.uint8)
+            self._bands = [None] * n
+            changed = np.ones(n, bool)
+        else:
+            changed = self._changed_bands(arr, n)
+        for i in np.flatnonzero(changed):
+            r0, r1 = i * b, min(h, (i + 1) * b)
+            self._last[r0:r1] = arr[r0:r1]
+            rows = _rows(arr[r0:r1], self._rows[r0:r1])
+            c = zlib.compressobj(self.level, zlib.DEFLATED, -15)
+            self._bands[i] = c.compress(rows.data) + c.flush(zlib.Z_SYNC_FLUSH)
+            self.bands_encoded += 1
+        adler = zlib.adler32(self._rows.data)
+        idat = b"".join((b"\x78\x01", *self._bands, _FINAL_BLOCK, struct.pack(">I", adler)))
+        return _png(w, h, idat)
+
+    def _changed_bands(self, arr: np.ndarray, n: int) -> np.ndarray:
+        h = arr.shape[0]
+        b = self.band_rows
+        flat_new = arr.reshape(h, -1)
+        flat_old = self._last.reshape(h, -1)
+        if flat_new.shape[1] % 8 == 0 and flat_new.flags.c_contiguous:
+            flat_new, flat_old = flat_new.view(np.uint64), flat_old.view(np.uint64)
+        rows = (flat_new != flat_old).any(axis=1)
+        pad = np.zeros(n * b, bool)
+        pad[:h] = rows
+        return pad.reshape(n, b).any(axis=1)
