@@ -4,13 +4,14 @@ from __future__ import annotations
 
 import asyncio
 import io
+import zlib
 
 import numpy as np
 import pytest
 from PIL import Image
 
 from qwidgets.viz.canvas import encode_png
-from qwidgets.viz.png import FrameEncoder
+from qwidgets.viz.png import FrameEncoder, adler32_combine
 from qwidgets.widgets.events import Coalescer, MessageLine
 from qwidgets.widgets.image_canvas import PlotCanvas
 
@@ -48,6 +49,15 @@ def test_frame_encoder_recompresses_changed_bands_and_decodes_to_the_same_pixels
     assert enc.encode(frame[:50]) != png  # a new size starts afresh
     with pytest.raises(ValueError, match="band_rows"):
         FrameEncoder(band_rows=0)
+
+
+def test_adler32_combine_equals_zlib_on_the_joined_bytes():
+    """Reference: zlib.adler32 of the joined bytes (lengths beyond the modulus 65521 too)."""
+    rng = np.random.default_rng(2)
+    for n1, n2 in [(0, 0), (1, 0), (0, 7), (100, 65521), (65521, 3), (3000, 200_000), (17, 1)]:
+        a = rng.integers(0, 256, n1, dtype=np.uint8).tobytes()
+        b = rng.integers(0, 256, n2, dtype=np.uint8).tobytes()
+        assert adler32_combine(zlib.adler32(a), zlib.adler32(b), n2) == zlib.adler32(a + b)
 
 
 def _two_panels():

@@ -86,6 +86,23 @@ def encode_png(rgba: np.ndarray, compress_level: int = 1) -> bytes:
     return _png(w, h, zlib.compress(_rows(arr).tobytes(), int(compress_level)))
 
 
+def adler32_combine(adler1: int, adler2: int, len2: int) -> int:
+    """The Adler-32 of two byte strings joined, from theirs and the second one's length
+    (zlib's ``adler32_combine``, which Python's zlib module does not offer).
+
+    >>> a, b = b"kept bands ", b"and a new one"
+    >>> adler32_combine(zlib.adler32(a), zlib.adler32(b), len(b)) == zlib.adler32(a + b)
+    True
+    """
+    base = 65521
+    rem = len2 % base
+    sum1 = adler1 & 0xFFFF
+    sum2 = (rem * sum1) % base
+    sum1 = (sum1 + (adler2 & 0xFFFF) + base - 1) % base
+    sum2 = (sum2 + ((adler1 >> 16) & 0xFFFF) + ((adler2 >> 16) & 0xFFFF) + base - rem) % base
+    return sum1 | (sum2 << 16)
+
+
 class FrameEncoder:
     """PNG frames of one size, re-compressing only the bands of rows that changed."""
 
@@ -98,6 +115,7 @@ class FrameEncoder:
         self._last = None  # the previous frame's pixels
         self._rows = None  # its scanlines
         self._bands: list = []  # compressed bytes per band
+        self._adlers: list = []  # Adler-32 of each band's scanlines
         self.bands_encoded = 0
 
     def encode(self, rgba: np.ndarray) -> bytes:
@@ -110,6 +128,7 @@ class FrameEncoder:
             self._last = np.empty_like(arr)
             self._rows = np.empty((h, 1 + 3 * w), np.uint8)
             self._bands = [None] * n
+            self._adlers = [1] * n
             changed = np.ones(n, bool)
         else:
             changed = self._changed_bands(arr, n)
@@ -119,8 +138,11 @@ class FrameEncoder:
             rows = _rows(arr[r0:r1], self._rows[r0:r1])
             c = zlib.compressobj(self.level, zlib.DEFLATED, -15)
             self._bands[i] = c.compress(rows.data) + c.flush(zlib.Z_SYNC_FLUSH)
+            self._adlers[i] = zlib.adler32(rows.data)
             self.bands_encoded += 1
-        adler = zlib.adler32(self._rows.data)
+        adler = 1
+        for i, a in enumerate(self._adlers):
+            adler = adler32_combine(adler, a, (min(h, (i + 1) * b) - i * b) * (1 + 3 * w))
         idat = b"".join((b"\x78\x01", *self._bands, _FINAL_BLOCK, struct.pack(">I", adler)))
         return _png(w, h, idat)
 
