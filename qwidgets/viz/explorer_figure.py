@@ -167,11 +167,9 @@ class ExplorerFigure:
     def _build_curve(self):
         ax = self.ax_curve
         (self.identity,) = ax.plot([0, 1], [0, 1], color="#bbbbbb", lw=0.8, label="no quantization")
-        self.sample_lines = [
-            ax.plot([], [], ls="none", marker=".", ms=2.5, color=SAMPLE_COLOR, alpha=0.6,
-                    label="relaxed samples" if i == 0 else None)[0]
-            for i in range(3)
-        ]
+        # the relaxed samples, one after another in one artist (one marker draw, not three)
+        (self.sample_points,) = ax.plot([], [], ls="none", marker=".", ms=2.5, color=SAMPLE_COLOR,
+                                        alpha=0.6, label="relaxed samples")
         (self.hard_line,) = ax.plot([], [], color=HARD_COLOR, lw=1.4, drawstyle="steps-mid",
                                     label="hard (round to nearest)")
         (self.soft_line,) = ax.plot([], [], color=SOFT_COLOR, lw=1.3, ls="--",
@@ -179,7 +177,7 @@ class ExplorerFigure:
         ax.set_title("Transfer curve")
         ax.set_ylabel("quantized value")
         ax.legend(loc="upper left", frameon=False, handlelength=1.6)
-        self.canvas.animate(*self.sample_lines, self.hard_line, self.soft_line)
+        self.canvas.animate(self.sample_points, self.hard_line, self.soft_line)
 
     def _build_out(self):
         ax = self.ax_out
@@ -299,9 +297,10 @@ class ExplorerFigure:
             self.hard_line.set_data(d.curve_x, d.curve_hard)
         if self._new("soft", d.curve_x, d.curve_expected):
             self.soft_line.set_data(d.curve_x, d.curve_expected)
-        for i, (line, (x, y)) in enumerate(zip(self.sample_lines, d.curve_samples, strict=False)):
-            if self._new(f"samples{i}", x, y):
-                line.set_data(x, y)
+        xs = np.concatenate([x for x, _ in d.curve_samples]) if d.curve_samples else np.zeros(0)
+        ys = np.concatenate([y for _, y in d.curve_samples]) if d.curve_samples else np.zeros(0)
+        if self._new("samples", xs, ys):
+            self.sample_points.set_data(xs, ys)
 
     def _update_out(self, d: PlotData):
         if not self._new("out", d.out_x, d.out_y):
