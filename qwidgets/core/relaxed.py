@@ -227,15 +227,26 @@ def _softplus(b: torch.Tensor) -> torch.Tensor:
     float32), a term below the resolution of everything it is added to."""
     lo = _FLOOR.get(b.dtype, _FLOOR_DEFAULT)
     hi = _LINEAR.get(b.dtype, _LINEAR_DEFAULT)
-    return torch.maximum(b, F.softplus(b.clamp(lo, hi), threshold=hi))
+    sp = F.softplus(b.clamp(lo, hi), threshold=hi)
+    if _needs_grad(b):
+        return torch.maximum(b, sp)
+    return torch.maximum(sp, b, out=sp)  # no gradient: in place, one temporary fewer
 
 
 def _exp_probs(logp: torch.Tensor) -> torch.Tensor:
-    """``exp(logp)`` with log probabilities below the floor clamped first: bins hundreds of
-    steps from a value (log probabilities in the thousands below zero) would make ``exp``
-    underflow through its slow subnormal path; their probabilities (under 1.8e-35 in float32)
-    are below the resolution of the bins that carry the mass."""
-    return logp.clamp_min(_FLOOR.get(logp.dtype, _FLOOR_DEFAULT)).exp()
+    """``exp(logp)`` with log probabilities below the floor clamped first (``logp`` is
+    overwritten when no gradient is needed). Bins hundreds of steps from a value (log
+    probabilities in the thousands below zero) would make ``exp`` underflow through its slow
+    subnormal path; their probabilities (under 1.8e-35 in float32) are below the resolution
+    of the bins that carry the mass."""
+    floor = _FLOOR.get(logp.dtype, _FLOOR_DEFAULT)
+    if _needs_grad(logp):
+        return logp.clamp_min(floor).exp()
+    return logp.clamp_min_(floor).exp_()  # no gradient: logp is not used after this
+
+
+def _needs_grad(t: torch.Tensor) -> bool:
+    return t.requires_grad and torch.is_grad_enabled()
 
 
 def _normalised(logp: torch.Tensor) -> torch.Tensor:
