@@ -27,6 +27,8 @@ from torch import nn
 
 from qwidgets.core.metrics import error_stats
 from qwidgets.core.rounding import quantize
+from qwidgets.planning import gain_probes
+from qwidgets.planning.gain_probes import probe_count
 from qwidgets.planning.scanning import scan
 from qwidgets.planning.table import SensitivityTable
 
@@ -194,17 +196,54 @@ def test_gain_estimate_measures_exactly_what_gradients_do_not_reach():
     assert np.isfinite(gain.sqnr_db("a", 2))  # a flip at 2 bits, which a gradient cannot see
 
 
-def test_gain_estimate_with_random_probes_is_near_the_exact_value_where_the_rest_is_linear():
-    # 100 output values per sample: random probes (Hutchinson's estimator, unbiased; relative
-    # spread sqrt(2 / (probes x samples)) = sqrt(2 / 256) here, 0.4 dB): within 4 spreads
+def test_gain_estimate_with_random_probes_is_unbiased_where_the_rest_is_linear(monkeypatch):
+    # 100 output values per sample: random probes (Hutchinson's estimator: E[(r.Je)^2] =
+    # ||Je||^2 for standard normal r; relative spread sqrt(2 / (probes x samples)) when the
+    # samples contribute alike). Over 24 independent data sets and probe seeds the estimated /
+    # exact noise ratio averages 1 within 4 standard errors
     torch.manual_seed(10)
     net = nn.Sequential(nn.Linear(6, 16), nn.Linear(16, 100)).eval()
-    x = torch.randn(32, 6)
-    gain = scan(net, x, bits=(3, 6), progress=False, estimate="gain")
-    exact = scan(net, x, bits=(3, 6), progress=False)
-    err = np.abs(gain.sqnr_array("model") - exact.sqnr_array("model"))
-    assert err.max() <= 10 * np.log10(1 + 4 * np.sqrt(2 / 256)), err
-    assert err.max() > 0  # it is an estimate: not the exact numbers by another road
+    n = 32
+    spread = np.sqrt(2 / (probe_count(n) * n))
+    ratios = []
+    for k in range(24):
+        x = torch.randn(n, 6, generator=torch.Generator().manual_seed(100 + k))
+        monkeypatch.setattr(gain_probes, "SEED", 1000 + k)
+        gain = scan(net, x, bits=(3, 6), progress=False, estimate="gain")
+        exact = scan(net, x, bits=(3, 6), progress=False)
+        ratios.append(10 ** ((exact.sqnr_array("model") - gain.sqnr_array("model")) / 10))
+    r = np.array(ratios)
+    std = r.std(axis=0, ddof=1)
+    assert (np.abs(r.mean(axis=0) - 1) <= 4 * std / np.sqrt(len(r))).all(), (r.mean(axis=0), std)
+    # the spread is the formula's when samples contribute alike, more when a few dominate
+    assert (std <= 2.5 * spread).all(), (std, spread)
+    assert np.abs(r - 1).max() > 1e-3  # it is an estimate: not the exact numbers by another road
+
+
+def test_gain_estimate_measures_a_large_batch_in_parts_with_the_same_numbers(monkeypatch):
+    # samples kept apart, probes seeded per sample: halving a batch to bound memory must not
+    # change the estimate; a model that mixes samples is then measured exactly (naive loop)
+    net = _resnet()
+    x = torch.randn(6, 3, 12, 12, generator=torch.Generator().manual_seed(5))
+    whole = scan(net, x, bits=(3, 6), method="minmax", progress=False, estimate="gain")
+    monkeypatch.setattr(gain_probes, "ERROR_BYTES", 4000)  # a few rows' errors of one layer
+    measured, one_batch = [], gain_probes._one_batch
+
+    def counting(model, piece, *args, **kwargs):
+        measured.append(gain_probes.batch_size(piece))
+        return one_batch(model, piece, *args, **kwargs)
+
+    monkeypatch.setattr(gain_probes, "_one_batch", counting)
+    parts = scan(net, x, bits=(3, 6), method="minmax", progress=False, estimate="gain")
+    assert min(measured) == 1 and len(measured) > 6  # halved down to single samples
+    # the same probes; float32 layer outputs of fewer rows round differently (1e-4 dB: executors)
+    np.testing.assert_allclose(parts.sqnr_array("model"), whole.sqnr_array("model"), rtol=0, atol=1e-4)
+    torch.manual_seed(9)
+    mix, xm = _MixBatch(width=200).eval(), torch.randn(7, 6)
+    t = scan(mix, xm, bits=(3, 6), progress=False, estimate="gain")
+    assert t.model_pass("a") == "suffix"
+    for b in t.bits:
+        assert t.sqnr_db("a", b) == pytest.approx(_naive(mix, xm, "a", t.weight_grid("a", b)), abs=1e-3)
 
 
 def test_gain_estimate_tracks_the_exact_model_scope_of_a_residual_network():

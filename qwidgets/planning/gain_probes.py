@@ -13,7 +13,8 @@ by ``J e``, where ``J`` is the Jacobian of the model output with respect to that
   (Where samples are not kept apart, the directions are those of the whole batch's output.)
 * Otherwise ``r`` is standard normal and ``E[(r^T J e)^2] = ||J e||^2`` (Hutchinson's trace
   estimator applied to ``J^T J``): an unbiased estimate whose relative spread is about
-  ``sqrt(2 / (probes x samples))`` (:func:`probe_count` keeps that near 14%).
+  ``sqrt(2 / (probes x samples))`` when the samples contribute alike (:func:`probe_count` keeps
+  that near 14%), more when a few samples carry most of the noise.
 
 Samples are measured one by one (``g . e`` per sample, then squared) when the model keeps them
 apart, which is checked: a probe on the first and on the last sample's output must reach only
@@ -22,7 +23,10 @@ whole batch, with 32 random probes.
 
 So model scope costs one forward with gradients and ``probes`` backward passes per batch, for
 all layers together, instead of one pass per layer and bit width. The probes are seeded per
-batch, so a scan split across an executor's workers gives the serial numbers. The linearisation
+sample, so a scan split across an executor's workers gives the serial numbers. The layer
+errors of one pass are kept for the probes (one copy of each layer's output per bit width);
+a batch for which they would pass :data:`ERROR_BYTES` is measured in halves (samples kept apart,
+the same estimate; a model that mixes samples is then measured exactly). The linearisation
 is what makes it an estimate: at 2-3 bits, where the error is large enough to switch ReLUs and
 saturations, it departs from the exact model scope most.
 """
@@ -37,12 +41,15 @@ from torch import nn
 
 from ..core.rounding import quantize_unchecked
 from ..model import layers
+from ..model.batching import Batches
 from ..model.outputs import iter_tensors
-from ..model.sources import call_model
+from ..model.sources import batch_size, call_model
 
 EXACT_VALUES = 64  # one-hot probes (exact) up to this many output values per sample
 _TARGET = 96  # random probes: about this many (probe, sample) pairs over all samples
 _MIN_PROBES, _MAX_PROBES = 4, 32
+SEED = 17  # of every random probe (with the batch, sample, probe and output part)
+ERROR_BYTES = 256 << 20  # layer errors kept for one pass at most; a larger batch is halved
 
 
 def probe_count(n_samples: int) -> int:
@@ -78,15 +85,32 @@ def probe_noise(model: nn.Module, source, entries: dict, configs: dict, output, 
     try:
         model.eval()
         for index, batch in enumerate(source):
-            _one_batch(model, batch, index, by_module, entries, configs, output, probes, noise, lost)
+            pending = [(batch, 0)]
+            while pending:  # halve a batch whose layer errors would not fit in ERROR_BYTES
+                piece, row0 = pending.pop()
+                n = batch_size(piece)
+                try:
+                    _one_batch(model, piece, (index, row0, piece is not batch), by_module, entries,
+                               configs, output, probes, noise, lost, cap=n > 1)
+                except _TooLarge:
+                    a, b = Batches(piece, (n + 1) // 2)
+                    pending += [(b, row0 + (n + 1) // 2), (a, row0)]
     finally:
         for m, flag in flags:
             m.training = flag
     return {row: v for row, v in noise.items() if row not in lost}
 
 
-def _one_batch(model, batch, index, by_module, entries, configs, output, probes, noise, lost):
+class _TooLarge(Exception):
+    """The layer errors of this batch would pass :data:`ERROR_BYTES`."""
+
+
+def _one_batch(model, batch, where, by_module, entries, configs, output, probes, noise, lost, *,
+               cap: bool):
+    """Add this batch's estimates to ``noise``. ``where``: (batch index, its first row within
+    the source's batch, whether it is a part of that batch)."""
     calls: dict = {row: [] for row in entries}  # row -> [(leaf added to the output, errors)]
+    kept = [0]
 
     def hook(module, args, kwargs, out):
         x = (args[0] if args else next(iter(kwargs.values()))).detach()
@@ -100,6 +124,9 @@ def _one_batch(model, batch, index, by_module, entries, configs, output, probes,
                                              w if wg is None else quantize_unchecked(w, wg)) - ref
                         for wg, ig in configs[entries[row].name]]
                 calls[row].append((z, _stacked(errs)))
+                kept[0] += calls[row][-1][1].numel() * 4
+                if cap and kept[0] > ERROR_BYTES:
+                    raise _TooLarge
         return out + z
 
     handles = [m.register_forward_hook(hook, with_kwargs=True, prepend=True) for m in by_module]
@@ -122,13 +149,16 @@ def _one_batch(model, batch, index, by_module, entries, configs, output, probes,
     leaves = list({id(z): z for z in leaves}.values())  # one leaf per call of a module
     n = _batch_rows(parts, leaves)
     per_sample = n is not None and _keeps_samples_apart(parts, leaves, n)
-    gen = torch.Generator(device=parts[0].device).manual_seed(7919 * index + 17)
+    index, row0, part = where
+    if part and not per_sample:  # samples that interact cannot be measured in parts: exactly
+        lost.update(entries)
+        return
     values = sum(p[0].numel() if per_sample else p.numel() for p in parts)
     exact = values <= EXACT_VALUES
     directions = values if exact else (probes if per_sample else _MAX_PROBES)
+    gen = torch.Generator(device=parts[0].device)
     for k in range(directions):
-        rs = _one_hot(parts, k, per_sample) if exact else [
-            torch.randn(p.shape, generator=gen, device=p.device, dtype=p.dtype) for p in parts]
+        rs = _one_hot(parts, k, per_sample) if exact else _random_probes(parts, gen, index, row0, k, per_sample)
         grads = torch.autograd.grad(parts, leaves, grad_outputs=rs, retain_graph=True, allow_unused=True)
         g_of = {id(z): g for z, g in zip(leaves, grads, strict=True)}
         for row, items in calls.items():
@@ -137,6 +167,31 @@ def _one_batch(model, batch, index, by_module, entries, configs, output, probes,
                 continue
             dots = sum(_dots(g_of[id(z)], errs, per_sample) for z, errs in items)
             noise[row] += (dots * dots).sum(dim=0).cpu().numpy() / (1.0 if exact else directions)
+
+
+def _random_probes(parts, gen, index: int, row0: int, k: int, per_sample: bool) -> list:
+    """Probe ``k``: standard normal values, drawn per sample from a seed of (batch, sample,
+    probe) when samples are kept apart (so a batch measured in parts, or on another worker,
+    gets the same probes), else per batch."""
+    out = []
+    for j, p in enumerate(parts):
+        if not per_sample:
+            gen.manual_seed(_seed(index, -1, k, j))
+            out.append(torch.randn(p.shape, generator=gen, device=p.device, dtype=p.dtype))
+            continue
+        r = torch.empty_like(p)
+        for i in range(p.shape[0]):
+            gen.manual_seed(_seed(index, row0 + i, k, j))
+            r[i] = torch.randn(p.shape[1:], generator=gen, device=p.device, dtype=p.dtype)
+        out.append(r)
+    return out
+
+
+def _seed(*keys: int) -> int:
+    h = SEED
+    for v in keys:
+        h = (h * 1_000_003 + v + 1) % (1 << 62)
+    return h
 
 
 def _stacked(errs) -> torch.Tensor:
