@@ -244,6 +244,11 @@ def test_scanview_scope_switches_table_and_heatmap_with_one_colour_scale(setup):
 def test_scanview_says_where_the_model_scope_was_estimated(setup):
     net, x, _, table = setup
     gain = scan(net, x, BITS, progress=False, estimate="gain")
+    # the widgets scan with the same options: estimate and batch_size reach scan
+    for made in (ScanView(net, x, bits=BITS, progress=False, estimate="gain", batch_size=16).table,
+                 BudgetPlanner(net, x, bits=BITS, progress=False, estimate="gain", batch_size=16).table):
+        assert made.estimate == "gain" and made.n_samples == len(x)
+        np.testing.assert_allclose(made.sqnr_array("model"), gain.sqnr_array("model"), atol=1e-4)
     for t, says in ((table, False), (gain, True)):
         view = ScanView(t)
         for scope in ("model", "layer"):  # only the model scope is estimated

@@ -74,7 +74,8 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, PlannerTasks, widgets.VBox):
     """Choose a budget (weight KiB, mean bits or BOPs) and see the least-noise plan for it.
 
     Scans ``model`` on ``data`` (model scope; keywords ``bits``, ``quantize``, ``method``,
-    ``per_channel``, ``max_samples``, ``progress`` and ``output`` go to :func:`qwidgets.scan`)
+    ``per_channel``, ``max_samples``, ``progress``, ``output``, ``estimate`` and ``batch_size``
+    go to :func:`qwidgets.scan`)
     unless a ``table`` is given. "measure" (:meth:`measure`) runs the float and the planned
     model on ``eval_data`` (held-out data: give it when you have it) or else on ``data``, and
     computes ``metric(output, target) -> float`` for both, with ``eval_target`` (or ``target``
@@ -97,7 +98,7 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, PlannerTasks, widgets.VBox):
                  bits=(2, 3, 4, 5, 6, 8), quantize: str = "weight", method: str = "mse",
                  per_channel: bool = True, input_bits: int | None = 8, max_samples: int | None = None,
                  output: Callable | None = None, progress: bool = True, width: int = 760,
-                 rules: DeviceRules | None = None):
+                 rules: DeviceRules | None = None, estimate: str = "exact", batch_size: int | None = None):
         super().__init__()
         if not isinstance(model, nn.Module):
             raise TypeError(f"model must be a torch.nn.Module, got {type(model).__name__}")
@@ -109,7 +110,8 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, PlannerTasks, widgets.VBox):
             raise ValueError("eval_target needs eval_data (the held-out inputs it belongs to)")
         if table is None:
             table = scan(model, data, bits, quantize=quantize, method=method, per_channel=per_channel,
-                         scope="model", max_samples=max_samples, progress=progress, output=output, rules=rules)
+                         scope="model", max_samples=max_samples, progress=progress, output=output, rules=rules,
+                         estimate=estimate, batch_size=batch_size)
         elif not isinstance(table, SensitivityTable):
             raise TypeError(f"table must be a SensitivityTable, got {type(table).__name__}")
         if "model" not in table.scopes:

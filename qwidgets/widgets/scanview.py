@@ -45,8 +45,8 @@ class ScanView(SnapshotDisplay, widgets.VBox):
     """Heatmap and table of a sensitivity scan; pick a layer to explore its grid below.
 
     ``ScanView(model, data, ...)`` runs :func:`qwidgets.scan` (keywords ``bits``,
-    ``quantize``, ``method``, ``per_channel``, ``scope``, ``max_samples``, ``progress`` go to
-    it, and ``output`` too); ``ScanView(table)`` shows a table made before (add ``model=`` and
+    ``quantize``, ``method``, ``per_channel``, ``scope``, ``max_samples``, ``progress``,
+    ``output``, ``estimate`` and ``batch_size`` go to it); ``ScanView(table)`` shows a table made before (add ``model=`` and
     ``data=`` to open explorers from it). The scope toggle switches heatmap and table together;
     both use one colour scale (the same for both scopes). With a planner linked
     (:meth:`link_planner`), "use grid in plan" puts the open explorer's grid into its plan.
@@ -63,7 +63,8 @@ class ScanView(SnapshotDisplay, widgets.VBox):
     def __init__(self, obj, data=None, *, model: nn.Module | None = None, bits=(2, 3, 4, 5, 6, 8),
                  quantize: str = "weight", method: str = "mse", per_channel: bool = True,
                  scope: str = "both", max_samples: int | None = None, output: Callable | None = None,
-                 progress: bool = True, width: int = 720):
+                 progress: bool = True, width: int = 720, estimate: str = "exact",
+                 batch_size: int | None = None):
         super().__init__()
         if isinstance(obj, SensitivityTable):
             if (model is None) != (data is None):
@@ -80,7 +81,8 @@ class ScanView(SnapshotDisplay, widgets.VBox):
             if output is not None and not callable(output):
                 raise TypeError(f"output must be a callable picking the tensor to compare, got {type(output).__name__}")
             self.table = scan(obj, data, bits, quantize=quantize, method=method, per_channel=per_channel,
-                              scope=scope, max_samples=max_samples, progress=progress, output=output)
+                              scope=scope, max_samples=max_samples, progress=progress, output=output,
+                              estimate=estimate, batch_size=batch_size)
         else:
             raise TypeError(f"ScanView takes a model and its data, or a SensitivityTable; got {type(obj).__name__}")
         self._max_samples = max_samples
