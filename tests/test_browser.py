@@ -508,8 +508,9 @@ def test_explorer_learn_button_offers_to_stop(session):
     button.click()  # stop: the best grid so far is kept
     wait_until(lambda: button.inner_text().strip() == "learn", UPDATE_S * 2,
                "the learning run to stop")
-    message = explorer.locator(".qw-message").first.inner_text()
-    assert "failed" not in message and "stopped after" in message, message
+    message = explorer.locator(".qw-message").first
+    wait_until(lambda: "stopped after" in message.inner_text(), UPDATE_S, "the note on the stopped run")
+    assert "failed" not in message.inner_text(), message.inner_text()
 
 
 def test_planner_measure_button_shows_kernel_measurement(session):

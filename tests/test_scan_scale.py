@@ -241,7 +241,7 @@ def test_gain_estimate_measures_a_large_batch_in_parts_with_the_same_numbers(mon
     torch.manual_seed(9)
     mix, xm = _MixBatch(width=200).eval(), torch.randn(7, 6)
     t = scan(mix, xm, bits=(3, 6), progress=False, estimate="gain")
-    assert t.model_pass("a") == "suffix"
+    assert t.model_pass("a") != "probes"  # measured exactly (replayed or by forward passes)
     for b in t.bits:
         assert t.sqnr_db("a", b) == pytest.approx(_naive(mix, xm, "a", t.weight_grid("a", b)), abs=1e-3)
 

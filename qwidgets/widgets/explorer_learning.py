@@ -168,9 +168,6 @@ class LearnRunner:
         ex = self.ex
         st = ex.state
         self.running = False
-        b = ex.controls["learn"]
-        b.description, b.icon, b.button_style = "learn", "graduation-cap", ""
-        b.tooltip = "learn scale, offset and noise (relaxed quantization)"
         ex.progress_box.layout.display = "none"
         if result is None:  # failed or interrupted: nothing half-learned is left behind
             st.set_grid(self._start_grid, self._source)
@@ -189,3 +186,7 @@ class LearnRunner:
                      f"{result.stats.sqnr_db:.2f} dB (best at step {result.best_step}); "
                      f"kept for {result.grid.bits} bits")
         ex._redraw()
+        # the button last: a front end that sees "learn" again sees the outcome's note already
+        b = ex.controls["learn"]
+        b.description, b.icon, b.button_style = "learn", "graduation-cap", ""
+        b.tooltip = "learn scale, offset and noise (relaxed quantization)"
