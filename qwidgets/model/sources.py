@@ -100,6 +100,14 @@ class DataSource:
                     f"{', '.join(sorted(map(str, self._devices)))}; move one of them")
         return batch
 
+    def first_batch(self):
+        """The first batch; a one-shot iterable is read through (and kept) first, as a pass
+        would, so that a later pass still sees every batch once."""
+        if self._batches is not None and not self.single and not self._consumed:
+            for _ in self:
+                pass
+        return next(iter(self))
+
     def __iter__(self) -> Iterator:
         if self._batches is not None and (self.single or self._consumed):
             yield from self._batches

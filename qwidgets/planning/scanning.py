@@ -211,8 +211,14 @@ def _run_scan(model, data, options: dict, progress: bool, share) -> dict:
     if not entries:
         raise ValueError(running.no_layers_message(model))
     qw, qi = quantize in ("weight", "both"), quantize in ("input", "both")
-    found = survey(model, source, entries, want_inputs=qi, keep_refs=scope != "layer", output=output,
-                   inputs_checked=options.get("inputs_checked", False))
+    # the passes run on the faster of one thread and torch's setting, timed on a float forward;
+    # the survey records the reference outputs on the same threads (a replayed suffix must
+    # reproduce them bit for bit, and thread counts can change a kernel's rounding)
+    first = source.first_batch()
+    n_threads = fastest_threads(lambda: running.run_with_hooks(model, first, {}, pre=False))
+    with threads(n_threads):
+        found = survey(model, source, entries, want_inputs=qi, keep_refs=scope != "layer",
+                       output=output, inputs_checked=options.get("inputs_checked", False))
     if scope != "layer":
         found.reference.check_varies()
     facts, skipped = [], list(found.skipped)
@@ -248,9 +254,7 @@ def _run_scan(model, data, options: dict, progress: bool, share) -> dict:
                             "param": e.param, "has_input": bool(f.has_input),
                             "shared_with": list(e.shared_with),
                             "stored_bits": e.numel * w.element_size() * 8, "digest": weight_digest(w)}
-    # the passes: the faster of one thread and torch's setting, timed on a float forward
-    first = next(iter(source))
-    with threads(fastest_threads(lambda: running.run_with_hooks(model, first, {}, pre=False))):
+    with threads(n_threads):
         layer_sq = _layer_scope(model, source, facts, configs) if scope != "model" else None
         model_sq = None
         if scope != "layer":
