@@ -1,4 +1,4 @@
-"""Timing helpers shared by the benchmark scripts (medians, interleaved pairs)."""
+"""Timing helpers shared by the benchmark scripts (medians, interleaved pairs, memory marks)."""
 
 from __future__ import annotations
 
@@ -36,3 +36,12 @@ def timed_pair(base, other, repeat: int = 11) -> tuple[float, float, float]:
         to.append(t2 - t1)
         ratios.append((t2 - t1) / (t1 - t0))
     return statistics.median(tb), statistics.median(to), statistics.median(ratios)
+
+
+def status_kib(key: str) -> int:
+    """A ``/proc/self/status`` field in KiB (Linux): ``VmRSS`` now, ``VmHWM`` the peak mark."""
+    with open("/proc/self/status") as f:
+        for line in f:
+            if line.startswith(key + ":"):
+                return int(line.split()[1])
+    raise OSError(f"{key} not in /proc/self/status")

@@ -33,6 +33,7 @@ import sys
 import time
 from pathlib import Path
 
+import _timing  # benchmarks/_timing.py, beside this script
 import numpy as np
 import torch
 from torch import nn
@@ -163,17 +164,9 @@ def _child_peak(n_images: int, estimate: str) -> None:
     scan(model, x[:2], (4,), method="minmax", progress=False, batch_size=2)  # imports, lazy init
     with open("/proc/self/clear_refs", "w") as f:
         f.write("5")
-    before = _status_kib("VmRSS")
+    before = _timing.status_kib("VmRSS")
     scan(model, x, (4, 8), method="minmax", progress=False, batch_size=8, estimate=estimate)
-    print((_status_kib("VmHWM") - before) / 1024)
-
-
-def _status_kib(key: str) -> int:
-    with open("/proc/self/status") as f:
-        for line in f:
-            if line.startswith(key + ":"):
-                return int(line.split()[1])
-    raise OSError(f"{key} not in /proc/self/status")
+    print((_timing.status_kib("VmHWM") - before) / 1024)
 
 
 def bench_memory(rows, out):

@@ -29,6 +29,7 @@ import sys
 import time
 from pathlib import Path
 
+import _timing  # benchmarks/_timing.py, beside this script
 import numpy as np
 import torch
 from torch import nn
@@ -144,9 +145,9 @@ def _child_peak(kind: str) -> None:
     try:
         with open("/proc/self/clear_refs", "w") as f:
             f.write("5")
-        before = _status_kib("VmRSS")
+        before = _timing.status_kib("VmRSS")
         run()
-        print((_status_kib("VmHWM") - before) / 1024)
+        print((_timing.status_kib("VmHWM") - before) / 1024)
     except OSError:
         print("nan")
 
@@ -158,14 +159,6 @@ def _runs(model, x) -> dict:
         "layer": lambda: scan(model, x, BITS, method="minmax", scope="layer", progress=False),
         "model": lambda: scan(model, x, BITS, method="minmax", scope="model", progress=False),
     }
-
-
-def _status_kib(key: str) -> int:
-    with open("/proc/self/status") as f:
-        for line in f:
-            if line.startswith(key + ":"):
-                return int(line.split()[1])
-    raise OSError(f"{key} not in /proc/self/status")
 
 
 def bench_scan(rows: list, out: dict, rounds: int = 3) -> None:

@@ -355,3 +355,22 @@ def test_range_fitter_bad_input():
         RangeFitter(torch.ones(0))
     with pytest.raises(ValueError, match="bits"):
         RangeFitter(torch.ones(10)).fit(0)
+
+
+def test_fit_ranges_unchecked_takes_fit_ranges_keywords_and_gives_its_grids():
+    # reference: fit_ranges itself (the checked entry point), keyword for keyword
+    import inspect
+
+    from qwidgets.core.ranges import fit_ranges, fit_ranges_unchecked
+
+    keywords = {k for k, v in inspect.signature(fit_ranges).parameters.items() if v.kind is v.KEYWORD_ONLY}
+    x = torch.randn(6, 40, generator=torch.Generator().manual_seed(3))
+    options = dict(axis=0, symmetric=False, percentile=99.0)
+    for method in ("minmax", "percentile", "mse"):
+        a = fit_ranges(x, (2, 5), method, **options)
+        b = fit_ranges_unchecked(x, (2, 5), method, **options)
+        assert all(torch.equal(g.scale, h.scale) and torch.equal(g.offset, h.offset) for g, h in zip(a, b, strict=True))
+    with pytest.raises(TypeError, match="per_channel"):
+        fit_ranges_unchecked(x, (4,), per_channel=True)
+    with pytest.raises(TypeError, match="unknown"):
+        fit_ranges_unchecked(x, (4,), **{k: None for k in keywords | {"zz"}})

@@ -130,23 +130,19 @@ def fit_ranges(
                        check=True)
 
 
-def fit_ranges_unchecked(
-    x: torch.Tensor,
-    bits: Sequence[int],
-    method: str = "mse",
-    *,
-    signed: bool | None = None,
-    symmetric: bool = True,
-    style: str = "midtread",
-    axis: int | None = None,
-    percentile: float = 99.99,
-    rules: DeviceRules | None = None,
-    role: str = "weight",
-) -> list[UniformGrid]:
-    """:func:`fit_ranges` for a caller that checked ``x``'s values (finite) at its own public
-    boundary: the same grids, without a second NaN / inf scan of ``x``."""
-    return _fit_ranges(x, bits, method, signed, symmetric, style, axis, percentile, rules, role,
-                       check=False)
+def fit_ranges_unchecked(x: torch.Tensor, bits: Sequence[int], method: str = "mse",
+                         **options) -> list[UniformGrid]:
+    """:func:`fit_ranges` (the same keywords) for a caller that checked ``x``'s values (finite)
+    at its own public boundary: the same grids, without a second NaN / inf scan of ``x``."""
+    unknown = sorted(set(options) - set(_FIT_DEFAULTS))
+    if unknown:
+        raise TypeError(f"fit_ranges_unchecked got unknown keyword(s) {unknown}; "
+                        f"expected some of {sorted(_FIT_DEFAULTS)}")
+    return _fit_ranges(x, bits, method, **{**_FIT_DEFAULTS, **options}, check=False)
+
+
+_FIT_DEFAULTS = dict(signed=None, symmetric=True, style="midtread", axis=None, percentile=99.99,
+                     rules=None, role="weight")  # fit_ranges' keywords and their defaults
 
 
 def _fit_ranges(x, bits, method, signed, symmetric, style, axis, percentile, rules, role, *,
