@@ -6,7 +6,7 @@ PY := $(VENV)/bin/python
 TORCH_SPEC ?= torch==2.13.0
 STAMP := $(VENV)/.qwidgets-installed
 
-.PHONY: setup test test-quick lint demo bench clean browser-deps screenshots
+.PHONY: setup test test-kernels test-quick lint demo bench clean browser-deps screenshots
 
 $(PY):
 	$(PYTHON) -m venv $(VENV)
@@ -27,9 +27,23 @@ browser-deps:
 lint: setup
 	$(VENV)/bin/ruff check .
 
+# The numerics tests once more with the kernels and thread count another CPU would use (plain
+# ATen kernels, oneDNN and MKL held to AVX2, one thread): a test that compares float32 results
+# computed under other shapes or splits must hold within float32 rounding on any CPU, and the
+# demo's README figures must be what any CPU prints.
+OTHER_KERNELS := ATEN_CPU_CAPABILITY=default ONEDNN_MAX_CPU_ISA=AVX2 MKL_CBWR=AVX2 OMP_NUM_THREADS=1
+NUMERICS_TESTS := tests/test_sources.py tests/test_checks.py tests/test_scan.py tests/test_scan_scale.py \
+	tests/test_separate.py tests/test_plan.py tests/test_quantize.py tests/test_ranges.py \
+	tests/test_metrics.py tests/test_refine.py tests/test_budget.py tests/test_demo.py
+
 test: setup browser-deps
 	$(VENV)/bin/ruff check .
 	$(PY) -m pytest -q
+	env $(OTHER_KERNELS) $(PY) -m pytest -q -p no:cacheprovider -m "not browser" $(NUMERICS_TESTS)
+
+# Only the second, other-kernels run above.
+test-kernels: setup
+	env $(OTHER_KERNELS) $(PY) -m pytest -q -p no:cacheprovider -m "not browser" $(NUMERICS_TESTS)
 
 # Without the slow (fresh kernels and interpreters) and browser tests: a quick check while editing.
 test-quick: setup

@@ -110,3 +110,21 @@ class _Untouched:
 def untouched():
     """``keep = untouched(model)`` ... ``keep.check()``: the model is bit-identical."""
     return _Untouched
+
+
+F32_EPS = 2.0**-24
+"""float32's unit roundoff (IEEE 754 binary32: 24-bit significand)."""
+
+
+def f32_sqnr_tol_db(sqnr_db: float, ulps: int = 16, crest: float = 10.0) -> float:
+    """How far an SQNR (dB) may move when the float32 outputs it compares are recomputed under
+    another batch split, thread count or CPU kernel (other blockings round each output
+    differently, by a few units in the last place; ``ulps`` bounds that, ``crest`` the ratio of
+    the largest output to the outputs' RMS).
+
+    An output error of d = ulps * eps * crest * rms(y) on the float and on the quantized output
+    moves the noise power N by at most 2 * 2d / rms(noise) relative, and
+    rms(y) / rms(noise) = 10 ** (sqnr_db / 20); 10 * log10(1 + r) <= 4.343 * r (derived here from
+    float32's rounding, not measured)."""
+    r = 4 * ulps * F32_EPS * crest * 10 ** (sqnr_db / 20)
+    return 10 / 2.302585092994046 * r + 1e-12

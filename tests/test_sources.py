@@ -10,6 +10,7 @@ from collections import namedtuple
 import numpy as np
 import pytest
 import torch
+from conftest import F32_EPS, f32_sqnr_tol_db
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from torch import nn
@@ -74,17 +75,19 @@ def test_model_error_and_evaluate_plan_stream_batches_with_targets():
 
     whole = model_error(net, x, settings, metric=acc, target=y)
     parts = model_error(net, _loader(x, 6), settings, metric=acc, target=list(y.split(6)))
-    assert parts.output.sqnr_db == pytest.approx(whole.output.sqnr_db, abs=1e-9)
+    # batches of 6 and of 24 round the float32 outputs differently (other blockings)
+    assert parts.output.sqnr_db == pytest.approx(whole.output.sqnr_db, abs=f32_sqnr_tol_db(whole.output.sqnr_db))
     assert parts.metric_quantized == pytest.approx(whole.metric_quantized)  # equal batches: mean of means
     plan = plan_budget(scan(net, x, bits=(4, 8), progress=False), mean_bits=6)
     r1 = evaluate_plan(net, x, plan)
     r2 = evaluate_plan(net, iter([(b,) for b in x.split(10)]), plan)
-    assert r2.measured_sqnr_db == pytest.approx(r1.measured_sqnr_db, abs=1e-9)
+    assert r2.measured_sqnr_db == pytest.approx(r1.measured_sqnr_db, abs=f32_sqnr_tol_db(r1.measured_sqnr_db))
     lin = nn.Linear(4, 3)
     xs = torch.randn(30, 4)
     g = UniformGrid(3, 0.1)
+    whole_layer = layer_error(lin, xs, weight_grid=g).sqnr_db
     assert layer_error(lin, iter(xs.split(7)), weight_grid=g).sqnr_db == pytest.approx(
-        layer_error(lin, xs, weight_grid=g).sqnr_db, abs=1e-9)
+        whole_layer, abs=f32_sqnr_tol_db(whole_layer))
 
 
 def test_output_selector_and_structured_outputs():
@@ -198,15 +201,17 @@ def test_streamed_scan_has_lower_peak_memory():
 @settings(max_examples=25, deadline=None)
 @given(st.lists(st.integers(1, 9), min_size=1, max_size=6), st.integers(2, 8))
 def test_any_split_into_batches_gives_the_same_errors(sizes, bits):
-    # invariant: float64 sums over batches equal the sums over the concatenated tensor
+    # invariant: float64 sums over batches equal the sums over the concatenated tensor, up to
+    # the float32 rounding of outputs computed under other batch shapes (f32_sqnr_tol_db)
     torch.manual_seed(sum(sizes))
     net = nn.Sequential(nn.Linear(3, 4), nn.Tanh(), nn.Linear(4, 2))
     x = torch.randn(sum(sizes), 3)
     s = {"0": LayerSetting(weight=UniformGrid(bits, 0.05))}
     whole = model_error(net, x, s).output
     split = model_error(net, iter(x.split(sizes)), s).output
-    assert split.sqnr_db == pytest.approx(whole.sqnr_db, abs=1e-9)
-    assert split.n == whole.n and split.max_abs == pytest.approx(whole.max_abs, abs=1e-12)
+    assert split.sqnr_db == pytest.approx(whole.sqnr_db, abs=f32_sqnr_tol_db(whole.sqnr_db))
+    # the largest error moves by the outputs' rounding: a few float32 ulps of the outputs
+    assert split.n == whole.n and split.max_abs == pytest.approx(whole.max_abs, abs=64 * F32_EPS)
     r = RangeSample(limit=10_000)
     for part in x.split(sizes):
         r.add(part)
