@@ -84,7 +84,7 @@ def test_notebook_uses_this_environment(executed):
 
 
 def test_notebook_saves_plan_and_codes_that_reload(executed):
-    from qwidgets import Plan, apply_plan, from_codes
+    from qwidgets import Plan, apply_plan, fold_batchnorm, from_codes
     from qwidgets.demo import BOARD_WEIGHT_BUDGET_KIB, load_demo
 
     plan = Plan.load(OUT / "plan.json")
@@ -93,7 +93,7 @@ def test_notebook_saves_plan_and_codes_that_reload(executed):
     codes = torch.load(OUT / "codes.pt", weights_only=True)  # tensors and plain values only
     assert set(codes) == set(plan.layers)
     # the integer codes rebuild exactly the weights of the planned model
-    model = load_demo().model
+    model = fold_batchnorm(load_demo().model)  # the notebook plans the folded model
     planned = apply_plan(model, plan)
     for name, entry in codes.items():
         grid = plan.layers[name].weight

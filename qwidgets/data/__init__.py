@@ -1,0 +1,1 @@
+"""Data files the package ships: the demo classifier's weights (``qwidgets.demo``)."""
