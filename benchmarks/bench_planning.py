@@ -84,9 +84,9 @@ def main() -> None:
     bops_all = sum(t.macs(n) * 8 * 8 for n in t.layers)
     out["plan_budget_200x6x4_two_budgets"] = []
     for frac_k, frac_b in ((0.45, 0.35), (0.6, 0.5), (0.75, 0.6)):
-        budgets = {"weight_kib": frac_k * kib_all, "bops": frac_b * bops_all}
+        budgets = {"planned_kib": frac_k * kib_all, "bops": frac_b * bops_all}
         wall_lp, cpu_lp, _ = timed(lambda b=budgets: lp_relaxation(t, b))
-        wall, cpu, plan = timed(lambda b=budgets: plan_budget(t, **b, kib_scope="planned"))
+        wall, cpu, plan = timed(lambda b=budgets: plan_budget(t, **b))
         label = f"plan_budget 200x6x4, KiB {frac_k:.0%} + BOPs {frac_b:.0%} of 8/8-bit"
         rows.append((label, wall, cpu, wall / wall_lp, f"{plan.predicted_sqnr_db:.2f} dB; LP relaxation {wall_lp:.3f} s"))
         out["plan_budget_200x6x4_two_budgets"].append(
@@ -94,9 +94,9 @@ def main() -> None:
              "ratio_to_lp": wall / wall_lp, "predicted_db": plan.predicted_sqnr_db})
 
     w = weight_table(200, (2, 3, 4, 5, 6, 8, 10, 12), seed=1)
-    wall, cpu, front = timed(lambda: pareto_front(w, "weight_kib", kib_scope="planned"))
+    wall, cpu, front = timed(lambda: pareto_front(w, "planned_kib"))
     menu = build_menu(w)
-    costs = menu.costs(w, "weight_kib")
+    costs = menu.costs(w, "planned_kib")
     wall_hull, _, hull = timed(lambda: hull_front(costs, menu.noise))
     # the dynamic programme over every Pareto point, stopped after 5 s
     c, n = np.zeros(1, np.int64), np.zeros(1)
@@ -111,7 +111,7 @@ def main() -> None:
     pts = front[:: max(1, len(front) // 5)][:5]
     t0 = time.perf_counter()
     for cst, _, _ in pts:
-        plan_budget(w, weight_kib=cst, kib_scope="planned")
+        plan_budget(w, planned_kib=cst)
     per_milp = (time.perf_counter() - t0) / len(pts)
     rows.append((f"pareto_front 200x8 ({len(front)} points, lower hull)", wall, cpu, float("nan"),
                  f"hull alone {wall_hull:.3f} s, {hull[0].size} vertices"))

@@ -225,7 +225,7 @@ def bench_plan(rows: list, out: dict) -> None:
     t = synthetic(200, bits, seed=0)
     total_kib = sum(t.params(n) for n in t.layers) * 32 / 8192
     total_bops = sum(t.macs(n) for n in t.layers) * 8 * 8
-    cases = {"mean_bits=5": {"mean_bits": 5.0}, "weight_kib=15% of float": {"weight_kib": 0.15 * total_kib},
+    cases = {"mean_bits=5": {"mean_bits": 5.0}, "model_kib=15% of float": {"model_kib": 0.15 * total_kib},
              "bops=45% of 8x8-bit": {"bops": 0.45 * total_bops}}
     out["plan_budget_200x8"] = {}
     for label, kw in cases.items():
@@ -240,7 +240,7 @@ def bench_plan(rows: list, out: dict) -> None:
         out["plan_budget_200x8"][label] = s
     t60 = synthetic(60, BITS, seed=1)
     t0 = time.perf_counter()
-    front = pareto_front(t60, "weight_kib")
+    front = pareto_front(t60, "model_kib")
     s = time.perf_counter() - t0
     rows.append(("pareto_front 60 x 6 (thinned to 512)", s, float("nan"), "-", f"{len(front)} points"))
     out["pareto_front_60x6_s"] = s

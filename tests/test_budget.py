@@ -178,12 +178,12 @@ def test_plan_budget_equals_exhaustive_for_every_budget_kind(seed):
     b = np.array(t.bits)
     kib_bits = params[:, None] * b[None, :] + 64  # per-tensor grid: one scale and zero point
     cases = [
-        ("weight_kib", kib_bits, float(rng.uniform(kib_bits.min(1).sum(), kib_bits.max(1).sum())) / 8192),
+        ("planned_kib", kib_bits, float(rng.uniform(kib_bits.min(1).sum(), kib_bits.max(1).sum())) / 8192),
         ("mean_bits", params[:, None] * b[None, :], float(rng.uniform(2, 8))),
         ("bops", macs[:, None] * b[None, :] * 8, float(rng.uniform((macs * 16).sum(), (macs * 64).sum()))),
     ]
     for kind, costs, value in cases:
-        limit = math.floor(value * (8192 if kind == "weight_kib" else params.sum() if kind == "mean_bits" else 1))
+        limit = math.floor(value * (8192 if kind == "planned_kib" else params.sum() if kind == "mean_bits" else 1))
         plan = plan_budget(t, **{kind: value})
         choice = np.array([t.bits.index(plan.bits[n]) for n in t.layers])
         rows = np.arange(layers)
@@ -192,10 +192,10 @@ def test_plan_budget_equals_exhaustive_for_every_budget_kind(seed):
         assert float(noise[rows, choice].sum()) == pytest.approx(best, rel=1e-12)
         assert plan.predicted_sqnr_db == pytest.approx(-10 * math.log10(best), abs=1e-9)
         # the plan's own cost figures are the same counts
-        if kind == "weight_kib":
-            assert plan.weight_kib <= value
+        if kind == "planned_kib":
+            assert plan.planned_kib <= value
         elif kind == "mean_bits":
-            assert plan.mean_weight_bits <= value + 1e-12
+            assert plan.mean_bits <= value + 1e-12
         else:
             assert plan.bops <= value
 
@@ -235,10 +235,10 @@ def test_large_table_is_solved_and_beats_greedy_and_uniform():
     greedy_noise = sum(noise[i, j] for i, j in enumerate(greedy))
     assert sum(p * t.bits[j] for p, j in zip(params, greedy, strict=True)) <= 5 * sum(params)
     plan = plan_budget(t, mean_bits=5)
-    assert plan.mean_weight_bits <= 5
+    assert plan.mean_bits <= 5
     assert plan.predicted_sqnr_db >= -10 * math.log10(uniform_noise) - 1e-9
     assert plan.predicted_sqnr_db >= -10 * math.log10(greedy_noise) - 1e-9
-    assert uniform.mean_weight_bits == 5
+    assert uniform.mean_bits == 5
     # the solver's noise is what its own bit widths give, by the table
     chosen = sum(noise[i, t.bits.index(plan.bits[n])] for i, n in enumerate(t.layers))
     assert plan.predicted_sqnr_db == pytest.approx(-10 * math.log10(chosen), abs=1e-9)
@@ -253,13 +253,13 @@ def test_pareto_front_points_are_plan_budget_optima():
     assert costs == sorted(costs) and sq == sorted(sq)
     assert costs[0] == 2.0 and costs[-1] == 8.0
     for c, s, plan in front:
-        assert plan.mean_weight_bits == pytest.approx(c)
+        assert plan.mean_bits == pytest.approx(c)
         assert plan_budget(t, mean_bits=c).predicted_sqnr_db == pytest.approx(s, abs=1e-9)
     thin = pareto_front(t, "mean_bits", max_points=4)
     assert len(thin) <= 4 and thin[0][0] == costs[0] and thin[-1][0] == costs[-1]
-    kib = pareto_front(t, "weight_kib")
-    assert all(p.weight_kib == pytest.approx(c) for c, _, p in kib)
-    bops = pareto_front(t, "bops", input_bits=4)
+    kib = pareto_front(t, "planned_kib")
+    assert all(p.planned_kib == pytest.approx(c) for c, _, p in kib)
+    bops = pareto_front(t, "bops", assumed_input_bits=4)
     assert all(p.bops == c for c, _, p in bops)
 
 
@@ -274,10 +274,10 @@ def test_infeasible_budget_states_the_smallest_feasible_one():
     t = SensitivityTable.synthetic(np.array([[10.0, 30.0], [20.0, 40.0]]), params=[1000, 3000],
                                    bits=(4, 8), macs=[5000, 7000])
     with pytest.raises(ValueError, match=r"smallest feasible budget") as e:
-        plan_budget(t, weight_kib=0.5)
-    need = float(re.search(r"smallest feasible budget is weight_kib=([0-9.]+) ", str(e.value)).group(1))
+        plan_budget(t, planned_kib=0.5)
+    need = float(re.search(r"smallest feasible budget is planned_kib=([0-9.]+) ", str(e.value)).group(1))
     assert need == pytest.approx((4000 * 4 + 128) / 8192, abs=1e-4)
-    assert plan_budget(t, weight_kib=need).bits == {"layer0": 4, "layer1": 4}
+    assert plan_budget(t, planned_kib=need).bits == {"layer0": 4, "layer1": 4}
     with pytest.raises(ValueError, match=r"smallest feasible budget is mean_bits=4\.0000"):
         plan_budget(t, mean_bits=3.9)
     # (5000 + 7000) MACs x 4 weight bits x 8 input bits
@@ -289,12 +289,12 @@ def test_infeasible_budget_states_the_smallest_feasible_one():
 @pytest.mark.parametrize("kwargs, err, msg", [
     ({}, ValueError, "give at least one budget .* got none"),
     ({"mean_bits": 0}, ValueError, "mean_bits must be a finite number > 0, got 0"),
-    ({"weight_kib": -2.5}, ValueError, "weight_kib must be a finite number > 0, got -2.5"),
+    ({"planned_kib": -2.5}, ValueError, "planned_kib must be a finite number > 0, got -2.5"),
     ({"bops": float("nan")}, ValueError, "bops must be a finite number > 0"),
     ({"bops": float("inf")}, ValueError, "bops must be a finite number > 0"),
     ({"mean_bits": True}, TypeError, "mean_bits must be a number"),
     ({"mean_bits": "4"}, TypeError, "mean_bits must be a number"),
-    ({"mean_bits": 4, "input_bits": 0}, ValueError, "input_bits must be None"),
+    ({"mean_bits": 4, "assumed_input_bits": 0}, ValueError, "input_bits must be None"),
     ({"mean_bits": 4, "fixed": {"nope": 4}}, ValueError, r"fixed names \['nope'\]"),
     ({"mean_bits": 4, "fixed": {"layer0": 5}}, ValueError, "weight width 5 is not among"),
     ({"mean_bits": 4, "fixed": {"layer0": "8"}}, TypeError, "fixed.*must be a width"),
@@ -332,7 +332,7 @@ def _brute_plan(t, budgets, allowed=None, fixed=None, input_bits=8):
              for n in t.layers]
     for combo in itertools.product(*menus):
         b = np.array(combo)
-        cost = {"weight_kib": float((params * b + 64).sum()) / 8192,
+        cost = {"planned_kib": float((params * b + 64).sum()) / 8192,
                 "mean_bits": float((params * b).sum()) / params.sum(),
                 "bops": int((macs * b * input_bits).sum())}
         if all(cost[k] <= v for k, v in budgets.items()):
@@ -351,7 +351,7 @@ def test_two_and_three_budgets_fixed_and_allowed_equal_exhaustive(seed):
     hi_k = sum(t.params(n) * 8 + 64 for n in t.layers) / 8192
     lo_b = sum(t.macs(n) * 2 * 8 for n in t.layers)
     hi_b = sum(t.macs(n) * 8 * 8 for n in t.layers)
-    budgets = {"weight_kib": float(rng.uniform(lo_k, hi_k)), "bops": float(rng.uniform(lo_b, hi_b))}
+    budgets = {"planned_kib": float(rng.uniform(lo_k, hi_k)), "bops": float(rng.uniform(lo_b, hi_b))}
     if seed % 2:
         budgets["mean_bits"] = float(rng.uniform(3, 8))
     for fixed, allowed in [(None, None), ({t.layers[0]: 8}, None), (None, (2, 6, 8)),
@@ -363,9 +363,9 @@ def test_two_and_three_budgets_fixed_and_allowed_equal_exhaustive(seed):
             continue
         plan = plan_budget(t, **budgets, fixed=fixed, allowed_bits=allowed)
         assert plan.predicted_sqnr_db == pytest.approx(-10 * math.log10(best), abs=1e-7)
-        assert plan.weight_kib <= budgets["weight_kib"] and plan.bops <= budgets["bops"]
+        assert plan.planned_kib <= budgets["planned_kib"] and plan.bops <= budgets["bops"]
         if "mean_bits" in budgets:
-            assert plan.mean_weight_bits <= budgets["mean_bits"] + 1e-12
+            assert plan.mean_bits <= budgets["mean_bits"] + 1e-12
         for n, b in (fixed or {}).items():
             assert plan.bits[n] == b
         if allowed is not None:
@@ -380,7 +380,7 @@ def test_budgets_infeasible_together_name_the_least_feasible_value(monkeypatch):
     from qwidgets.planning.choices import Menu
 
     t = SensitivityTable.synthetic(np.array([[10.0, 30.0]]), params=[8192], bits=(4, 8), macs=[1])
-    by_cost = {"weight_kib": [np.array([8192, 3 * 8192])], "bops": [np.array([300, 100])]}
+    by_cost = {"planned_kib": [np.array([8192, 3 * 8192])], "bops": [np.array([300, 100])]}
 
     class Conflict(Menu):
         def costs(self, table, cost):
@@ -388,12 +388,12 @@ def test_budgets_infeasible_together_name_the_least_feasible_value(monkeypatch):
 
     menu = Conflict(["layer0"], [[(4, None), (8, None)]], [np.array([0.1, 0.001])], 8)
     monkeypatch.setattr(solver_mod, "build_menu", lambda *a, **k: menu)
-    assert plan_budget(t, weight_kib=3.0, bops=100).bits == {"layer0": 8}
-    assert plan_budget(t, weight_kib=1.0, bops=300).bits == {"layer0": 4}
+    assert plan_budget(t, planned_kib=3.0, bops=100).bits == {"layer0": 8}
+    assert plan_budget(t, planned_kib=1.0, bops=300).bits == {"layer0": 4}
     # each alone is feasible (KiB >= 1, BOPs >= 100); together KiB 1 needs BOPs 300
-    with pytest.raises(ValueError, match=r"weight_kib=1 is infeasible together with bops=200; with "
-                                         r"bops=200 the smallest feasible budget is weight_kib=3\.0000"):
-        plan_budget(t, weight_kib=1.0, bops=200)
+    with pytest.raises(ValueError, match=r"planned_kib=1 is infeasible together with bops=200; with "
+                                         r"bops=200 the smallest feasible budget is planned_kib=3\.0000"):
+        plan_budget(t, planned_kib=1.0, bops=200)
 
 
 def test_large_front_points_are_plan_budget_optima():
@@ -404,5 +404,5 @@ def test_large_front_points_are_plan_budget_optima():
     front_pts = pareto_front(t, "mean_bits", max_points=64)
     assert 2 <= len(front_pts) <= 64
     for c, s, plan in front_pts[:: max(1, len(front_pts) // 4)]:
-        assert plan.mean_weight_bits == pytest.approx(c)
+        assert plan.mean_bits == pytest.approx(c)
         assert plan_budget(t, mean_bits=c).predicted_sqnr_db == pytest.approx(s, abs=1e-6)

@@ -74,15 +74,15 @@ def test_whole_model_budget_counts_unplanned_weights(scanned):
     _, _, t = scanned
     other_bits = 32 * (32 + 32 + 8 + 8 + 3)  # biases and LayerNorm in float32
     assert t.unplanned_bits() == other_bits
-    plan = plan_budget(t, weight_kib=2.0)
+    plan = plan_budget(t, model_kib=2.0)
     by_hand = sum(weight_storage_bits(t.params(n), plan.bits[n], t.weight_channels(n)) for n in plan.layers)
-    assert plan.weight_kib == pytest.approx(by_hand / 8192)
+    assert plan.planned_kib == pytest.approx(by_hand / 8192)
     assert plan.model_kib == pytest.approx((by_hand + other_bits) / 8192)
     assert plan.model_kib <= 2.0
-    planned_only = plan_budget(t, weight_kib=2.0, kib_scope="planned")
-    assert planned_only.weight_kib <= 2.0 < planned_only.model_kib
+    planned_only = plan_budget(t, planned_kib=2.0)
+    assert planned_only.planned_kib <= 2.0 < planned_only.model_kib
     with pytest.raises(ValueError, match="other weights take 0.3242 KiB"):
-        plan_budget(t, weight_kib=0.3)
+        plan_budget(t, model_kib=0.3)
     with pytest.raises(ValueError, match="kib_scope must be 'model' or 'planned'"):
         plan_budget(t, weight_kib=2.0, kib_scope="all")
 

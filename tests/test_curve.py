@@ -90,7 +90,7 @@ def test_metric_curve_points_equal_evaluate_plan_and_plan_budget():
     assert [round(p.budget, 6) for p in curve] == [2.0, 4.0, 6.0, 8.0]
     for k, p in enumerate(curve):
         assert isinstance(p, CurvePoint)
-        assert p.plan.mean_weight_bits <= p.budget + 1e-9
+        assert p.plan.mean_bits <= p.budget + 1e-9
         best = plan_budget(t, mean_bits=p.budget)
         assert p.predicted_sqnr_db == pytest.approx(best.predicted_sqnr_db, abs=1e-6)
         rep = evaluate_plan(net, held_x, p.plan, metric=_accuracy, target=held_y, confidence=0.95,

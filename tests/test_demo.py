@@ -231,8 +231,8 @@ def test_board_budget_fits_a_plan_that_keeps_accuracy(bundle):
     model = fold_batchnorm(bundle.model)  # as the demo plans it
     assert foldable_batchnorm(model) == {}
     table = scan(model, bundle.x_train[:256], progress=False)
-    plan = plan_budget(table, weight_kib=demo.BOARD_WEIGHT_BUDGET_KIB)
-    assert plan.weight_kib <= demo.BOARD_WEIGHT_BUDGET_KIB
+    plan = plan_budget(table, model_kib=demo.BOARD_WEIGHT_BUDGET_KIB)
+    assert plan.model_kib <= demo.BOARD_WEIGHT_BUDGET_KIB
     assert len(set(plan.bits.values())) > 1  # a mixed allocation: the scan matters
     report = evaluate_plan(model, bundle.x_test, plan, metric=demo.accuracy, target=bundle.y_test)
     # 8-bit post-training quantization of a small classifier usually costs under one point
@@ -240,4 +240,4 @@ def test_board_budget_fits_a_plan_that_keeps_accuracy(bundle):
     assert report.metric_planned >= report.metric_float - 0.02
     # every layer at 8 bits would not fit the board: the budget forces real choices
     all8 = plan_budget(table, mean_bits=8.0)
-    assert all8.weight_kib > demo.BOARD_WEIGHT_BUDGET_KIB
+    assert all8.model_kib > demo.BOARD_WEIGHT_BUDGET_KIB

@@ -83,8 +83,8 @@ def test_plan_budget_uses_only_the_menu_and_refuses_tables_scanned_without_rules
     assert free.predicted_sqnr_db >= p.predicted_sqnr_db - 1e-9
     front = pareto_front(t, "mean_bits", rules=menu_only)
     assert all(set(plan.bits.values()) <= {4, 8} for _, _, plan in front)
-    with pytest.raises(ValueError, match="input_bits=4 is not allowed"):
-        plan_budget(t, mean_bits=6, rules=RULES, input_bits=4)
+    with pytest.raises(ValueError, match="assumed_input_bits=4 is not allowed"):
+        plan_budget(t, mean_bits=6, rules=RULES, assumed_input_bits=4)
     with pytest.warns(UserWarning):
         tr = scan(net, x, bits=(2, 4, 8), rules=RULES, progress=False)
     pr = plan_budget(tr, mean_bits=6, rules=RULES)

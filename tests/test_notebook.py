@@ -89,7 +89,7 @@ def test_notebook_saves_plan_and_codes_that_reload(executed):
 
     plan = Plan.load(OUT / "plan.json")
     assert json.loads((OUT / "plan.json").read_text())  # plain JSON
-    assert plan.weight_kib <= BOARD_WEIGHT_BUDGET_KIB
+    assert plan.model_kib <= BOARD_WEIGHT_BUDGET_KIB
     codes = torch.load(OUT / "codes.pt", weights_only=True)  # tensors and plain values only
     assert set(codes) == set(plan.layers)
     # the integer codes rebuild exactly the weights of the planned model

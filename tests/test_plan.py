@@ -107,7 +107,7 @@ def test_json_round_trip_is_exact():
         assert (a.input is None) == (b.input is None)
         if a.input is not None:
             assert a.input.scale == b.input.scale and a.input.signed == b.input.signed
-    assert back.weight_kib == plan.weight_kib and back.bops == plan.bops
+    assert back.planned_kib == plan.planned_kib and back.bops == plan.bops
     assert back.to_json() == text
 
 
@@ -116,16 +116,16 @@ def test_costs_of_a_plan_counted_by_hand():
     plan = _plan(net, x)
     # 216 weights x 4 bits, 144 x 8, 320 x 12, plus (8 + 4 + 5) channels x (32 + 32) bits
     bits = 216 * 4 + 144 * 8 + 320 * 12 + (8 + 4 + 5) * 64
-    assert plan.weight_kib == bits / 8192
-    assert plan.float_weight_kib == (216 + 144 + 320) * 32 / 8192
-    assert plan.mean_weight_bits == (216 * 4 + 144 * 8 + 320 * 12) / 680
+    assert plan.planned_kib == bits / 8192
+    assert plan.float_planned_kib == (216 + 144 + 320) * 32 / 8192
+    assert plan.mean_bits == (216 * 4 + 144 * 8 + 320 * 12) / 680
     # layer "0" has no input grid: the assumed 8 bits count
     assert plan.bops == 400 * 4 * 8 + 800 * 8 * 8 + 1200 * 12 * 12
     assert plan.float_bops == (400 + 800 + 1200) * 32 * 32
     rows = plan.to_rows()
     assert [r["bits"] for r in rows] == [4, 8, 12] and rows[0]["input_bits"] is None
-    assert rows[0]["storage_bits"] == 216 * 4 + 8 * 64 and rows[0]["float_weight_kib"] == 216 * 32 / 8192
-    assert sum(r["weight_kib"] for r in rows) == plan.weight_kib and rows[2]["float_bops"] == 1200 * 32 * 32
+    assert rows[0]["storage_bits"] == 216 * 4 + 8 * 64 and rows[0]["float_kib"] == 216 * 32 / 8192
+    assert sum(r["kib"] for r in rows) == plan.planned_kib and rows[2]["float_bops"] == 1200 * 32 * 32
 
 
 def _broken(text, fn):
@@ -384,7 +384,7 @@ def test_evaluate_plan_report():
     assert isinstance(rep, PlanReport) and _untouched(net, snap)
     assert rep.predicted_sqnr_db == 30.5 and math.isfinite(rep.measured_sqnr_db)
     assert rep.metric_float == agree(net(x), target)
-    assert rep.weight_kib == plan.weight_kib and rep.bops == plan.bops
+    assert rep.planned_kib == plan.planned_kib and rep.bops == plan.bops
     assert CAUTION in str(rep) and "vehicles, medical devices" in CAUTION
     assert rep.to_dict()["output"]["sqnr_db"] == rep.measured_sqnr_db
     with pytest.raises(TypeError, match="metric must be a callable"):

@@ -313,7 +313,7 @@ def test_model_error_equals_a_hand_quantized_forward(digits):
     res = model_error(net, x, settings, metric=accuracy, target=y)
     assert res.output == error_stats(forward_float(net, x), manual)
     assert res.metric_quantized == accuracy(manual, y)
-    assert res.metric_change == res.metric_quantized - res.metric_float
+    assert res.drop == res.metric_float - res.metric_quantized  # the one sign: float - quantized
     empty = model_error(net, x, {"2": LayerSetting()})
     assert math.isinf(empty.output.sqnr_db) and empty.layers == ()
 

@@ -117,7 +117,7 @@ def test_planner_plans_equal_plan_budget_for_each_kind(setup):
     p = BudgetPlanner(net, x, metric=_accuracy, target=target, table=table)
     assert "qw-planner" in p._dom_classes
     assert html.escape(CAUTION) in p.caution.value and "medical devices" in CAUTION
-    for kind in ("weight_kib", "mean_bits", "bops"):
+    for kind in ("model_kib", "mean_bits", "bops"):
         front = pareto_front(table, kind)
         assert p.front(kind) and [c for c, _, _ in p.front(kind)] == [c for c, _, _ in front]
         value = front[len(front) // 3][0]
@@ -149,7 +149,7 @@ def test_planner_measure_equals_evaluate_plan(setup):
 def test_planner_slider_burst_coalesces_to_the_last_value(setup):
     net, x, _, table = setup
     p = BudgetPlanner(net, x, table=table)
-    p.set_budget("weight_kib", p.front()[0][0])
+    p.set_budget("model_kib", p.front()[0][0])
     s = p.controls["budget"]
     calls = p._updater.calls
     values = np.linspace(s.min, s.max, 200)
@@ -157,7 +157,7 @@ def test_planner_slider_burst_coalesces_to_the_last_value(setup):
         s.value = float(v)
     p.refresh()
     assert p._updater.calls - calls == 1  # no running event loop: the burst waits for one flush
-    assert p.plan.bits == plan_budget(table, weight_kib=float(values[-1])).bits
+    assert p.plan.bits == plan_budget(table, model_kib=float(values[-1])).bits
 
 
 def test_planner_saves_and_reports_unwritable_paths(setup, tmp_path):
@@ -210,7 +210,7 @@ def test_synthetic_table_in_planner_needs_no_scan():
                                    bits=(2, 4, 8))
     net = nn.Linear(1, 1)
     p = BudgetPlanner(net, torch.zeros(1, 1), table=t)
-    assert p.plan.bits == plan_budget(t, weight_kib=p.budget).bits
+    assert p.plan.bits == plan_budget(t, model_kib=p.budget).bits
 
 
 # ---------------------------------------------------------------------------- issue-10 behaviour
@@ -261,7 +261,7 @@ def test_scanview_says_where_the_model_scope_was_estimated(setup):
 def test_planner_kind_switch_keeps_the_plan(setup):
     net, x, _, table = setup
     p = BudgetPlanner(net, x, table=table)
-    p.set_budget("weight_kib", p.front()[len(p.front()) // 2][0])
+    p.set_budget("model_kib", p.front()[len(p.front()) // 2][0])
     plan = p.plan
     p.controls["kind"].value = "bops"
     assert p.plan is plan and p.kind == "bops"
@@ -279,7 +279,7 @@ def test_planner_kind_switch_keeps_the_plan(setup):
 def test_planner_keyboard_step_is_about_one_percent(setup):
     net, x, _, table = setup
     p = BudgetPlanner(net, x, table=table)
-    for kind in ("weight_kib", "mean_bits", "bops"):
+    for kind in ("model_kib", "mean_bits", "bops"):
         p.controls["kind"].value = kind
         s = p.controls["budget"]
         assert 0.004 <= s.step / (s.max - s.min) <= 0.025, kind
@@ -288,7 +288,7 @@ def test_planner_keyboard_step_is_about_one_percent(setup):
 def test_planner_markers_stay_inside_the_plot(setup):
     net, x, target, table = setup
     p = BudgetPlanner(net, x, table=table)
-    for kind in ("weight_kib", "bops"):
+    for kind in ("model_kib", "bops"):
         front = p.front(kind)
         for value in (front[0][0], front[-1][0]):  # the two ends, where markers used to be cut
             p.set_budget(kind, value)
@@ -419,9 +419,9 @@ def test_display_bundle_carries_a_static_snapshot(setup):
 def test_planner_second_budget_holds_with_the_first(setup):
     net, x, _, table = setup
     p = BudgetPlanner(net, x, table=table)
-    front = p.front("weight_kib")
+    front = p.front("model_kib")
     kib = front[-1][0]  # weight storage alone would allow the largest plan
-    p.set_budget("weight_kib", kib)
+    p.set_budget("model_kib", kib)
     p.controls["limit_kind"].value = "bops"
     assert not p.controls["limit"].disabled
     bops_front = p.front("bops")
@@ -429,17 +429,17 @@ def test_planner_second_budget_holds_with_the_first(setup):
     p.controls["limit"].value = limit / p.limit.scale
     p.refresh()
     assert not p.message.is_error, p.message.text
-    want = plan_budget(table, weight_kib=kib, bops=p.limit.value())
+    want = plan_budget(table, model_kib=kib, bops=p.limit.value())
     assert p.plan.bits == want.bits
     # both budgets hold, counted here: BOPs = MACs x weight bits x 8 input bits (common practice)
     assert sum(table.macs(n) * p.plan.bits[n] * 8 for n in p.plan.layers) <= p.limit.value()
-    assert p.plan.weight_kib <= kib + 1e-9 and "BOPs" in p.readout.value
+    assert p.plan.model_kib <= kib + 1e-9 and "bops" in p.readout.value
     # one budget per kind: the first budget's kind is not offered; switching to it drops the second
-    assert "weight_kib" not in [v for _, v in p.controls["limit_kind"].options]
+    assert "model_kib" not in [v for _, v in p.controls["limit_kind"].options]
     plan = p.plan
     p.controls["kind"].value = "bops"
     assert p.controls["limit_kind"].value == "" and p.controls["limit"].disabled and p.plan is plan
-    assert "weight_kib" in [v for _, v in p.controls["limit_kind"].options]
+    assert "model_kib" in [v for _, v in p.controls["limit_kind"].options]
 
 
 def test_planner_shows_input_widths_for_a_separate_table():
@@ -448,7 +448,7 @@ def test_planner_shows_input_widths_for_a_separate_table():
                                    bits=(2, 4, 8), input_sqnr_db=np.array([[15.0, 40.0], [12.0, 36.0]]),
                                    input_bits=(4, 8))
     p = BudgetPlanner(nn.Linear(1, 1), torch.zeros(1, 1), table=t)
-    p.set_budget("weight_kib", p.front()[len(p.front()) // 2][0])
+    p.set_budget("model_kib", p.front()[len(p.front()) // 2][0])
     assert p.figure.input_bars and "input bits" in p.table_html.value
     widths = [b.get_width() for b in p.figure.input_bars]
     assert widths == [p.plan.input_bits[n] or 0 for n in t.layers]

@@ -152,7 +152,7 @@ def _brute(t, budgets, fixed=None, allowed=None):
         kib = sum(t.params(n) * w + 64 for n, (w, _) in zip(t.layers, combo, strict=True)) / 8192
         bops = sum(t.macs(n) * w * i for n, (w, i) in zip(t.layers, combo, strict=True))
         mean = sum(t.params(n) * w for n, (w, _) in zip(t.layers, combo, strict=True)) / sum(t.params(n) for n in t.layers)
-        cost = {"weight_kib": kib, "bops": bops, "mean_bits": mean}
+        cost = {"planned_kib": kib, "bops": bops, "mean_bits": mean}
         if all(cost[k] <= v for k, v in budgets.items()):
             noise = sum(nw[r, t.bits.index(w)] + ni[r, t.input_bits.index(i)] for r, (w, i) in enumerate(combo))
             if best is None or noise < best[0]:
@@ -170,7 +170,7 @@ def test_plan_budget_on_separate_table_equals_enumeration(seed, n, kinds, restri
     hi_b = sum(t.macs(x) * 8 * 8 for x in t.layers)
     budgets = {"bops": float(rng.uniform(lo_b, hi_b))}
     if kinds == "kib+bops":
-        budgets["weight_kib"] = float(rng.uniform(sum(t.params(x) * 2 + 64 for x in t.layers),
+        budgets["planned_kib"] = float(rng.uniform(sum(t.params(x) * 2 + 64 for x in t.layers),
                                                   sum(t.params(x) * 8 + 64 for x in t.layers))) / 8192
     elif kinds == "mean+bops":
         budgets["mean_bits"] = float(rng.uniform(2, 8))
@@ -179,9 +179,9 @@ def test_plan_budget_on_separate_table_equals_enumeration(seed, n, kinds, restri
     best = _brute(t, budgets, fixed, allowed)
     if best is None:
         with pytest.raises(ValueError, match="infeasible"):
-            plan_budget(t, **budgets, fixed=fixed, allowed_bits=allowed, kib_scope="planned")
+            plan_budget(t, **budgets, fixed=fixed, allowed_bits=allowed)
         return
-    plan = plan_budget(t, **budgets, fixed=fixed, allowed_bits=allowed, kib_scope="planned")
+    plan = plan_budget(t, **budgets, fixed=fixed, allowed_bits=allowed)
     assert plan.predicted_sqnr_db == pytest.approx(-10 * math.log10(best[0]), abs=1e-6)
     assert plan.bops <= budgets["bops"]
     # Plan.bops by hand: each entry with its own input width
@@ -215,7 +215,7 @@ def test_bops_budget_chooses_input_widths_and_front():
     assert plan_budget(t, bops=1000 * 8 * 4).input_bits == {"layer0": 4}
     p = plan_budget(t, bops=1000 * 4 * 8)  # (4, 8) or (8, 4): noise 1e-2 + 1.6e-5 beats 1e-4 + 4e-3
     assert (p.bits["layer0"], p.input_bits["layer0"]) == (8, 4)
-    assert plan_budget(t, weight_kib=1.0).input_bits == {"layer0": 8}  # inputs free: the widest
+    assert plan_budget(t, model_kib=1.0).input_bits == {"layer0": 8}  # inputs free: the widest
     front = pareto_front(t, "bops")
     assert [c for c, _, _ in front] == [16000, 32000, 64000]
 

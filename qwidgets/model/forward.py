@@ -12,6 +12,7 @@ from torch import nn
 from ..core.checks import finite_check
 from ..core.grid import UniformGrid, grid_params
 from ..core.metrics import ErrorStats, error_stats
+from ..core.renamed import warn_renamed
 from ..core.rounding import quantize, quantize_unchecked
 from ..core.setting import LayerSetting
 from .entries import Entry, call_inputs, find_entries, replace_inputs
@@ -77,13 +78,15 @@ class ModelError:
 
     ``output``: :class:`ErrorStats` over every floating-point tensor of the output, flattened
     and joined; ``metric_float`` / ``metric_quantized``: ``metric(output, target)`` for each
-    (None without a metric); ``layers``: the quantized layers, in execution order.
+    (None without a metric); :attr:`drop`: ``metric_float - metric_quantized``, the sign
+    used everywhere (positive: quantizing did worse); ``layers``: the quantized layers, in
+    execution order.
 
     >>> from qwidgets import error_stats
     >>> import torch
     >>> r = ModelError(error_stats(torch.ones(2), torch.ones(2)), 0.97, 0.96, ("fc",))
-    >>> round(r.metric_change, 2), r.output.sqnr_db
-    (-0.01, inf)
+    >>> round(r.drop, 2), r.output.sqnr_db
+    (0.01, inf)
     """
 
     output: ErrorStats
@@ -92,16 +95,25 @@ class ModelError:
     layers: tuple[str, ...] = ()
 
     @property
-    def metric_change(self) -> float | None:
-        """``metric_quantized - metric_float`` (None without a metric)."""
+    def drop(self) -> float | None:
+        """``metric_float - metric_quantized`` (None without a metric)."""
         if self.metric_float is None or self.metric_quantized is None:
             return None
-        return self.metric_quantized - self.metric_float
+        return self.metric_float - self.metric_quantized
+
+    @property
+    def metric_change(self) -> float | None:
+        """Deprecated (one release): ``-drop``, i.e. ``metric_quantized - metric_float``."""
+        warn_renamed("metric_change", "drop (= metric_float - metric_quantized, the opposite sign)",
+                     "ModelError")
+        d = self.drop
+        return None if d is None else -d
 
     def __str__(self) -> str:
         s = f"output: {self.output}"
         if self.metric_float is not None:
-            s += f"; metric {self.metric_float:.6g} -> {self.metric_quantized:.6g}"
+            s += (f"; metric {self.metric_float:.6g} -> {self.metric_quantized:.6g} "
+                  f"(drop {self.drop:.4g})")
         return s
 
 

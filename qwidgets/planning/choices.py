@@ -52,7 +52,7 @@ class Menu:
             p, ch, macs = table.params(name), table.weight_channels(name), table.macs(name)
             row = []
             for wb, ib in opts:
-                if cost == "weight_kib":
+                if cost in ("model_kib", "planned_kib"):  # model_kib: + the unplanned weights
                     row.append(weight_storage_bits(p, wb, ch))
                 elif cost == "mean_bits":
                     row.append(p * (FLOAT_BITS if wb is None else wb))
@@ -103,7 +103,7 @@ def limit(cost: str, value: float, table) -> int:
 
 def unit(cost: str, table) -> int:
     """The divisor that turns a summed integer cost into the budget's unit."""
-    if cost == "weight_kib":
+    if cost in ("model_kib", "planned_kib"):
         return 8192
     if cost == "mean_bits":
         return sum(table.params(n) for n in table.layers)

@@ -5,7 +5,8 @@ Costs (all exact integers, so budgets compare without rounding):
 - weight storage of a layer, in bits: ``params * bits`` for the integer codes plus, per grid
   channel, one float32 scale and one int32 zero point (``64`` bits; a per-tensor grid has one
   channel). Float weights cost ``32 * params``. Biases are not counted (they are the same for
-  every choice). KiB = bits / 8192.
+  every choice). KiB = bits / 8192. ``planned_kib``: the planned entries; ``model_kib``: those
+  plus every other floating-point weight of the model at its stored width.
 - mean weight bits: ``sum(params * bits) / sum(params)`` over the planned layers (codes only).
 - BOPs of a layer: ``MACs * weight bits * input bits`` per sample (common practice in
   mixed-precision work); float operands count 32 bits.
@@ -13,7 +14,8 @@ Costs (all exact integers, so budgets compare without rounding):
 
 from __future__ import annotations
 
-COSTS = ("weight_kib", "mean_bits", "bops")
+# each cost is the budget keyword of plan_budget and the Plan attribute of that name
+COSTS = ("model_kib", "planned_kib", "mean_bits", "bops")
 
 
 SCALE_BITS = 32  # one float32 scale per grid channel

@@ -6,6 +6,7 @@ import math
 from collections.abc import Callable
 from dataclasses import dataclass
 from numbers import Integral
+from typing import Any
 
 import numpy as np
 from torch import nn
@@ -13,8 +14,10 @@ from torch import nn
 from .bootstrap import check_confidence
 from .choices import check_cost
 from .evaluate import evaluate_plan
+from .old_names import cost_name
 from .plan import Plan
 from .solver import pareto_front
+from .table import SensitivityTable
 
 
 @dataclass(frozen=True)
@@ -37,10 +40,14 @@ class CurvePoint:
     drop_high: float
 
 
-def metric_curve(model: nn.Module, data, table, *, metric: Callable, target=None, cost: str = "weight_kib",
-                 points: int = 6, confidence: float = 0.95, n_boot: int = 1000, seed: int = 0,
-                 progress: Callable | None = None) -> list[CurvePoint]:
+def metric_curve(model: nn.Module, data: Any, table: SensitivityTable, *, metric: Callable,
+                 target: Any = None, cost: str = "model_kib", points: int = 6, confidence: float = 0.95,
+                 n_boot: int = 1000, seed: int = 0, progress: Callable | None = None) -> list[CurvePoint]:
     """The metric at ``points`` budgets spread evenly in cost along the Pareto front.
+
+    ``cost`` as in :func:`pareto_front` (``"model_kib"``, ``"planned_kib"``, ``"mean_bits"``,
+    ``"bops"``): each point's ``budget`` is in that unit and limits the plan's attribute of the
+    same name (``getattr(point.plan, cost) <= point.budget``).
 
     For each budget: the least-noise plan of that cost or less (the front's point), applied
     to a copy of ``model`` and run on ``data`` with the float model; ``metric(output, target)
@@ -67,7 +74,7 @@ def metric_curve(model: nn.Module, data, table, *, metric: Callable, target=None
     """
     if not callable(metric):
         raise TypeError(f"metric must be a callable metric(output, target) -> float, got {type(metric).__name__}")
-    cost = check_cost(cost)
+    cost = check_cost(cost_name(cost, {}, "metric_curve"))
     if isinstance(points, bool) or not isinstance(points, Integral) or points < 1:
         raise ValueError(f"points must be an int >= 1, got {points!r}")
     check_confidence(confidence, n_boot)

@@ -35,7 +35,7 @@ def rules_allowed_bits(table, rules: DeviceRules | None, allowed_bits, input_bit
         return allowed_bits
     q = table.quantize
     if q == "weight" and input_bits is not None and not rules.allows_bits(input_bits, "input"):
-        raise ValueError(f"input_bits={input_bits} is not allowed by the device rules; "
+        raise ValueError(f"assumed_input_bits={input_bits} is not allowed by the device rules; "
                          f"allowed: {rules.input_bits}")
     sides = {}
     if q in ("weight", "both", "separate"):

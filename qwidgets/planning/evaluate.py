@@ -8,6 +8,7 @@ from dataclasses import dataclass
 from torch import nn
 
 from ..core.metrics import ErrorStats
+from ..core.renamed import warn_renamed
 from ..model.outputs import OutputComparison, call_metric, check_output_fn, float_parts
 from ..model.running import run_with_hooks
 from ..model.sources import batch_size, batch_tensors, data_source
@@ -24,7 +25,9 @@ class PlanReport:
     ``measured_sqnr_db`` is its SQNR; ``metric_float`` / ``metric_planned``: the user's
     metric on each (None without one); ``skipped``: planned layers not applied (strict=False);
     ``drop_low`` / ``drop_high``: the paired bootstrap interval of :attr:`drop` at
-    ``confidence`` (when asked for).
+    ``confidence`` (when asked for). ``planned_kib``, ``mean_bits``, ``bops`` (and their float32
+    figures) are the applied entries' :class:`Plan` figures of those names; ``model_kib`` the
+    plan's whole-model storage.
     """
 
     measured_sqnr_db: float
@@ -32,9 +35,9 @@ class PlanReport:
     output: ErrorStats
     metric_float: float | None
     metric_planned: float | None
-    weight_kib: float
-    float_weight_kib: float
-    mean_weight_bits: float
+    planned_kib: float
+    float_planned_kib: float
+    mean_bits: float
     bops: int
     float_bops: int
     skipped: tuple = ()
@@ -51,11 +54,32 @@ class PlanReport:
             return None
         return self.metric_float - self.metric_planned
 
+    # the previous release's names (one release, each warns once)
     @property
     def metric_change(self) -> float | None:
-        if self.metric_float is None or self.metric_planned is None:
-            return None
-        return self.metric_planned - self.metric_float
+        """Deprecated: ``-drop`` (``metric_planned - metric_float``); use :attr:`drop`."""
+        warn_renamed("metric_change", "drop (= metric_float - metric_planned, the opposite sign)",
+                     "PlanReport")
+        d = self.drop
+        return None if d is None else -d
+
+    @property
+    def weight_kib(self) -> float:
+        """Deprecated: :attr:`planned_kib`."""
+        warn_renamed("weight_kib", "planned_kib (or model_kib for the whole model)", "PlanReport")
+        return self.planned_kib
+
+    @property
+    def float_weight_kib(self) -> float:
+        """Deprecated: :attr:`float_planned_kib`."""
+        warn_renamed("float_weight_kib", "float_planned_kib", "PlanReport")
+        return self.float_planned_kib
+
+    @property
+    def mean_weight_bits(self) -> float:
+        """Deprecated: :attr:`mean_bits`."""
+        warn_renamed("mean_weight_bits", "mean_bits", "PlanReport")
+        return self.mean_bits
 
     def to_dict(self) -> dict:
         d = {k: getattr(self, k) for k in self.__dataclass_fields__}
@@ -66,15 +90,16 @@ class PlanReport:
         pred = "-" if self.predicted_sqnr_db is None else f"{self.predicted_sqnr_db:.2f} dB"
         lines = [
             f"model-output SQNR: measured {self.measured_sqnr_db:.2f} dB, predicted {pred}",
-            f"weights: {self.weight_kib:.2f} KiB (float32: {self.float_weight_kib:.2f} KiB), "
-            f"{self.mean_weight_bits:.2f} mean bits"
-            + ("" if self.model_kib is None else f"; whole model {self.model_kib:.2f} KiB"),
+            f"planned_kib {self.planned_kib:.2f} (float32: {self.float_planned_kib:.2f}), "
+            f"mean_bits {self.mean_bits:.2f}"
+            + ("" if self.model_kib is None else f"; model_kib {self.model_kib:.2f} (the whole model)"),
             f"BOPs per sample: {self.bops:,} (float32: {self.float_bops:,})",
         ]
         if self.metric_float is not None:
-            lines.append(f"metric: float {self.metric_float:.6g}, planned {self.metric_planned:.6g}")
+            lines.append(f"metric: float {self.metric_float:.6g}, planned {self.metric_planned:.6g}, "
+                         f"drop {self.drop:.4g} (float - planned)")
         if self.drop_low is not None:
-            lines.append(f"drop {self.drop:.4g}, {self.confidence:.0%} interval "
+            lines.append(f"drop {self.confidence:.0%} interval "
                          f"[{self.drop_low:.4g}, {self.drop_high:.4g}] (paired bootstrap over samples)")
         if self.skipped:
             lines.append(f"skipped layers: {', '.join(self.skipped)}")
@@ -168,9 +193,9 @@ def evaluate_plan(model: nn.Module, data, plan: Plan, *, metric: Callable | None
         output=stats,
         metric_float=mf,
         metric_planned=mp,
-        weight_kib=sub.weight_kib,
-        float_weight_kib=sub.float_weight_kib,
-        mean_weight_bits=sub.mean_weight_bits,
+        planned_kib=sub.planned_kib,
+        float_planned_kib=sub.float_planned_kib,
+        mean_bits=sub.mean_bits,
         bops=sub.bops,
         float_bops=sub.float_bops,
         skipped=tuple(planned.qwidgets_skipped),

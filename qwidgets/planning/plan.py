@@ -12,6 +12,7 @@ from dataclasses import dataclass, replace
 from torch import nn
 
 from ..core.checks import check_bits
+from ..core.renamed import warn_renamed
 from ..core.setting import LayerSetting
 from .costs import FLOAT_BITS, layer_bops, weight_storage_bits
 from .fields import FieldError, NonFinite, grid_to_dict
@@ -58,7 +59,7 @@ class Plan:
     >>> lin = nn.Linear(4, 2)
     >>> p = Plan({"": LayerSetting(weight=UniformGrid(4, 0.1))}, {"": 4},
     ...          fingerprint=model_fingerprint(lin), weight_shapes={"": (2, 4)}, macs={"": 8})
-    >>> p.weight_kib * 8192, p.mean_weight_bits, p.bops  # 8 weights x 4 bits + one scale and zero point
+    >>> p.planned_kib * 8192, p.mean_bits, p.bops  # 8 weights x 4 bits + one scale and zero point
     (96.0, 4.0, 256)
     >>> Plan.from_json(p.to_json()).bits
     {'': 4}
@@ -192,19 +193,21 @@ class Plan:
         return self.assumed_input_bits if g is None else g.bits
 
     @property
-    def weight_kib(self) -> float:
-        """Weight storage of the planned layers in KiB (codes, float32 scales, int32 zero points)."""
+    def planned_kib(self) -> float:
+        """Weight storage of the planned entries in KiB (codes, float32 scales, int32 zero
+        points); what ``plan_budget(planned_kib=...)`` limits."""
         return sum(weight_storage_bits(self._params(n), self._weight_bits(n), self._channels(n))
                    for n in self.layers) / 8192
 
     @property
     def model_kib(self) -> float | None:
         """Weight storage of the whole model in KiB: the planned entries as planned, every other
-        floating-point weight at its stored width (None for a plan that does not record them).
+        floating-point weight at its stored width; what ``plan_budget(model_kib=...)`` limits
+        (None for a plan that does not record the other weights).
         """
         if self.other_weight_bits is None:
             return None
-        return self.weight_kib + self.other_weight_bits / 8192
+        return self.planned_kib + self.other_weight_bits / 8192
 
     def has_input(self, name: str) -> bool:
         """False for weight-only entries (attention, recurrent, embedding, ...)."""
@@ -215,20 +218,41 @@ class Plan:
         return self.entries[name].get("weight_digest")
 
     @property
-    def float_weight_kib(self) -> float:
-        """The same layers' weights in float32, KiB."""
+    def float_planned_kib(self) -> float:
+        """The planned entries' weights in float32, KiB (compare with :attr:`planned_kib`)."""
         return sum(FLOAT_BITS * self._params(n) for n in self.layers) / 8192
 
     @property
-    def mean_weight_bits(self) -> float:
-        """Mean bits per weight of the planned layers (codes only; float weights count 32)."""
+    def mean_bits(self) -> float:
+        """Mean bits per weight of the planned entries (codes only; float weights count 32);
+        what ``plan_budget(mean_bits=...)`` limits."""
         total = sum(self._params(n) for n in self.layers)
         return sum(self._params(n) * (self._weight_bits(n) or FLOAT_BITS) for n in self.layers) / total
+
+    # the previous release's names (one release, each warns once)
+    @property
+    def weight_kib(self) -> float:
+        """Deprecated: :attr:`planned_kib` (the planned entries only; see :attr:`model_kib`)."""
+        warn_renamed("weight_kib", "planned_kib (or model_kib for the whole model)", "Plan")
+        return self.planned_kib
+
+    @property
+    def float_weight_kib(self) -> float:
+        """Deprecated: :attr:`float_planned_kib`."""
+        warn_renamed("float_weight_kib", "float_planned_kib", "Plan")
+        return self.float_planned_kib
+
+    @property
+    def mean_weight_bits(self) -> float:
+        """Deprecated: :attr:`mean_bits`."""
+        warn_renamed("mean_weight_bits", "mean_bits", "Plan")
+        return self.mean_bits
 
     @property
     def bops(self) -> int:
         """Bit operations per sample: sum of MACs x weight bits x input bits, each entry with
-        its own input width (``assumed_input_bits`` where its input stays float)."""
+        its own input width (``assumed_input_bits`` where its input stays float); what
+        ``plan_budget(bops=...)`` limits."""
         return sum(layer_bops(self.macs[n], self._weight_bits(n), self._input_bits(n)) for n in self.layers)
 
     @property
@@ -240,7 +264,7 @@ class Plan:
         """One dict per layer: bits, weight storage (bits, KiB) and BOPs, with float32 figures.
 
         Keys: layer, bits, weight_bits, input_bits (None: float), params, storage_bits,
-        weight_kib, float_weight_kib, bops, float_bops.
+        kib (its share of :attr:`planned_kib`), float_kib, bops, float_bops.
         """
         rows = []
         for n, s in self.layers.items():
@@ -252,8 +276,8 @@ class Plan:
                 "input_bits": None if s.input is None else s.input.bits,
                 "params": self._params(n),
                 "storage_bits": stored,
-                "weight_kib": stored / 8192,
-                "float_weight_kib": FLOAT_BITS * self._params(n) / 8192,
+                "kib": stored / 8192,
+                "float_kib": FLOAT_BITS * self._params(n) / 8192,
                 "bops": layer_bops(self.macs[n], self._weight_bits(n), self._input_bits(n)),
                 "float_bops": layer_bops(self.macs[n], None, None),
             })
@@ -261,9 +285,9 @@ class Plan:
 
     def __repr__(self) -> str:
         pred = "" if self.predicted_sqnr_db is None else f", predicted {self.predicted_sqnr_db:.2f} dB"
-        whole = "" if self.model_kib is None else f" ({self.model_kib:.2f} KiB the whole model)"
-        return (f"Plan({len(self.layers)} layers, {self.weight_kib:.2f} KiB of weights{whole}, "
-                f"{self.mean_weight_bits:.2f} mean bits{pred})")
+        whole = "" if self.model_kib is None else f", model_kib {self.model_kib:.2f}"
+        return (f"Plan({len(self.layers)} layers, planned_kib {self.planned_kib:.2f}{whole}, "
+                f"mean_bits {self.mean_bits:.2f}{pred})")
 
     # ------------------------------------------------------------------ JSON
     def to_dict(self) -> dict:

@@ -13,12 +13,15 @@ dynamic programme over (cost, noise) states in :mod:`qwidgets.planning.front`.
 from __future__ import annotations
 
 import math
+from collections.abc import Mapping, Sequence
+from typing import Any
 
 import numpy as np
 from scipy.optimize import Bounds, LinearConstraint, linprog, milp
 from scipy.sparse import csr_matrix
 
 from ..core.checks import check_int
+from ..core.device_rules import DeviceRules
 from .choices import (
     Menu,
     build_menu,
@@ -30,52 +33,69 @@ from .choices import (
 )
 from .device_checks import rules_allowed_bits
 from .front import front, thin
+from .old_names import budget_keywords, cost_name
+from .plan import Plan
+from .table import SensitivityTable
 
 
-def plan_budget(table, *, weight_kib: float | None = None, mean_bits: float | None = None,
-                bops: float | None = None, fixed=None, allowed_bits=None, input_bits: int | None = 8,
-                kib_scope: str = "model", rules=None):
+def plan_budget(table: SensitivityTable, *, model_kib: float | None = None,
+                planned_kib: float | None = None, mean_bits: float | None = None,
+                bops: float | None = None, fixed: Mapping[str, int | tuple[int, int]] | None = None,
+                allowed_bits: Sequence[int] | Mapping[str, Sequence[int]] | None = None,
+                assumed_input_bits: int | None = 8, rules: DeviceRules | None = None,
+                **renamed: Any) -> Plan:
     """The plan with the least predicted model-output noise that meets every budget given.
 
-    Budgets (give one or more; all must hold): ``weight_kib`` (weight storage, KiB: with
-    ``kib_scope="model"``, the default, of the whole model, every floating-point weight the
-    table does not plan counted at its stored width (:meth:`SensitivityTable.unplanned_bits`);
-    with ``"planned"``, of the planned entries only), ``mean_bits`` (mean weight bits per parameter), ``bops`` (bit operations per
-    sample: MACs x weight bits x input bits). With a table scanned with
-    ``quantize="separate"`` each entry gets a weight width and an input width.
+    Budgets (give one or more; all must hold), each named after the :class:`Plan` attribute
+    it limits: ``model_kib`` (weight storage of the whole model, KiB: the planned entries as
+    planned, every floating-point weight the table does not plan at its stored width,
+    :meth:`SensitivityTable.unplanned_bits`; what the device stores), ``planned_kib`` (weight
+    storage of the planned entries only, KiB), ``mean_bits`` (mean weight bits per planned
+    weight) and ``bops`` (bit operations per sample: MACs x weight bits x input bits). With a
+    table scanned with ``quantize="separate"`` each entry gets a weight width and an input
+    width.
 
     ``fixed`` pins entries: ``{"conv1": 8}`` pins a weight width (the input width of a table
     that quantized inputs only), ``{"conv1": (8, 8)}`` the weight and the input width.
     ``allowed_bits`` restricts the menu of the other entries: ``{"weight": (4, 8), "input":
-    (8,)}``, or a plain tuple for the weight widths. ``input_bits`` is the input width counted
-    in BOPs where inputs stay float (None: float32). The result is the exact optimum of the
-    additive-noise objective. With ``rules`` (:class:`qwidgets.DeviceRules`) only the widths
-    in the device's menus are chosen, and a table whose grids break the rules is refused. A budget that cannot be met raises ValueError naming it and the
-    smallest value that can be met (with the other budgets held).
+    (8,)}``, or a plain tuple for the weight widths. ``assumed_input_bits`` is the input width
+    counted in BOPs where inputs stay float (None: float32), kept on the plan under that name.
+    The result is the exact optimum of the additive-noise objective. With ``rules``
+    (:class:`qwidgets.DeviceRules`) only the widths in the device's menus are chosen, and a
+    table whose grids break the rules is refused. A budget that cannot be met raises
+    ValueError naming it and the smallest value that can be met (with the other budgets held).
+    The previous release's ``weight_kib`` / ``kib_scope`` / ``input_bits`` still work for one
+    release and warn once (see CHANGELOG.md).
 
     >>> import numpy as np
     >>> from qwidgets import SensitivityTable
     >>> t = SensitivityTable.synthetic(np.array([[10.0, 30.0], [20.0, 40.0]]), params=[100, 100],
     ...                                bits=(4, 8))
     >>> p = plan_budget(t, mean_bits=6)
-    >>> p.bits, round(p.predicted_sqnr_db, 2)
-    ({'layer0': 8, 'layer1': 4}, 19.59)
+    >>> p.bits, round(p.predicted_sqnr_db, 2), p.mean_bits
+    ({'layer0': 8, 'layer1': 4}, 19.59, 6.0)
     >>> plan_budget(t, mean_bits=8, fixed={"layer0": 4}).bits
     {'layer0': 4, 'layer1': 8}
     """
-    budgets = check_budgets(weight_kib=weight_kib, mean_bits=mean_bits, bops=bops)
-    _check_kib_scope(kib_scope)
-    allowed_bits = rules_allowed_bits(table, rules, allowed_bits, input_bits)
-    menu = build_menu(table, fixed=fixed, allowed_bits=allowed_bits, input_bits=input_bits)
+    given = {"model_kib": model_kib, "planned_kib": planned_kib, "mean_bits": mean_bits,
+             "bops": bops, "assumed_input_bits": assumed_input_bits}
+    for k, v in budget_keywords(renamed, "plan_budget").items():
+        if k != "assumed_input_bits" and given[k] is not None:
+            raise TypeError(f"plan_budget() got {k} twice (once under its old name); give {k} only")
+        given[k] = v
+    assumed_input_bits = given.pop("assumed_input_bits")
+    budgets = check_budgets(**given)
+    allowed_bits = rules_allowed_bits(table, rules, allowed_bits, assumed_input_bits)
+    menu = build_menu(table, fixed=fixed, allowed_bits=allowed_bits, input_bits=assumed_input_bits)
     costs = {k: menu.costs(table, k) for k in budgets}
-    other = {k: table.unplanned_bits() if (k == "weight_kib" and kib_scope == "model") else 0
+    other = {k: table.unplanned_bits() if k == "model_kib" else 0
              for k in budgets}  # exact integers: bits of the weights the table does not plan
     limits = {k: limit(k, v, table) - other[k] for k, v in budgets.items()}
     for k, v in budgets.items():  # each budget alone
         need = sum(int(c.min()) for c in costs[k])
         if need > limits[k]:
             rest = (f"; the model's other weights take {other[k] / 8192:.4f} KiB at their stored width "
-                    "(kib_scope='planned' budgets the planned entries only)") if other[k] else ""
+                    "(planned_kib budgets the planned entries only)") if other[k] else ""
             raise ValueError(f"{k}={v:g} is infeasible; the smallest feasible budget is "
                              f"{k}={ceil_unit(need + other[k], k, table)} (every entry at its cheapest "
                              f"option{rest})")
@@ -90,18 +110,22 @@ def plan_budget(table, *, weight_kib: float | None = None, mean_bits: float | No
     return make_plan(table, menu, choice)
 
 
-def pareto_front(table, cost: str = "weight_kib", *, input_bits: int | None = 8,
-                 max_points: int | None = 512, kib_scope: str = "model", fixed=None,
-                 allowed_bits=None, rules=None) -> list:
+def pareto_front(table: SensitivityTable, cost: str = "model_kib", *,
+                 assumed_input_bits: int | None = 8, max_points: int | None = 512,
+                 fixed: Mapping[str, int | tuple[int, int]] | None = None,
+                 allowed_bits: Sequence[int] | Mapping[str, Sequence[int]] | None = None,
+                 rules: DeviceRules | None = None, **renamed: Any) -> list[tuple[float, float, Plan]]:
     """Every Pareto-optimal plan for one budget: ``[(cost, predicted_sqnr_db, Plan), ...]`` by
     rising cost.
 
-    ``cost``: ``"weight_kib"``, ``"mean_bits"`` or ``"bops"``. Each point is the exact optimum
-    of :func:`plan_budget` at its own cost; no other plan is both cheaper and less noisy.
+    ``cost``: ``"model_kib"``, ``"planned_kib"``, ``"mean_bits"`` or ``"bops"``, the keyword of
+    :func:`plan_budget` and the :class:`Plan` attribute of that name: each point's cost is
+    its plan's attribute (``getattr(plan, cost)``). Each point is the exact optimum of
+    :func:`plan_budget` at its own cost; no other plan is both cheaper and less noisy.
     The front of a large model can hold tens of thousands of points: with more than
     ``max_points`` it is thinned to that many, spread evenly in cost, both ends kept (``None``
-    keeps every point). ``kib_scope``, ``fixed``, ``allowed_bits`` and ``rules`` as in
-    :func:`plan_budget`.
+    keeps every point). ``assumed_input_bits``, ``fixed``, ``allowed_bits`` and ``rules`` as
+    in :func:`plan_budget`.
 
     >>> import numpy as np
     >>> from qwidgets import SensitivityTable
@@ -110,24 +134,22 @@ def pareto_front(table, cost: str = "weight_kib", *, input_bits: int | None = 8,
     >>> [(c, round(s, 2)) for c, s, _ in pareto_front(t, "mean_bits")]
     [(4.0, 9.59), (6.0, 19.59), (8.0, 29.59)]
     """
-    cost = check_cost(cost)
+    if "weight_kib" in renamed:  # a budget keyword: pareto_front takes none
+        raise TypeError("pareto_front() got an unexpected keyword argument 'weight_kib'")
+    cost = check_cost(cost_name(cost, renamed, "pareto_front"))
+    assumed_input_bits = budget_keywords(renamed, "pareto_front").get("assumed_input_bits",
+                                                                      assumed_input_bits)
     check_int(max_points, "max_points", minimum=2, none_ok=True)
-    _check_kib_scope(kib_scope)
-    allowed_bits = rules_allowed_bits(table, rules, allowed_bits, input_bits)
-    menu = build_menu(table, fixed=fixed, allowed_bits=allowed_bits, input_bits=input_bits)
+    allowed_bits = rules_allowed_bits(table, rules, allowed_bits, assumed_input_bits)
+    menu = build_menu(table, fixed=fixed, allowed_bits=allowed_bits, input_bits=assumed_input_bits)
     front_c, _, choices = front(menu.costs(table, cost), menu.noise)
-    if cost == "weight_kib" and kib_scope == "model":
+    if cost == "model_kib":
         front_c = front_c + table.unplanned_bits()  # exact integers: bits of the other weights
     out = []
     for j in thin(front_c, max_points):
         plan = make_plan(table, menu, choices[j])
         out.append((in_unit(int(front_c[j]), cost, table), plan.predicted_sqnr_db, plan))
     return out
-
-
-def _check_kib_scope(kib_scope) -> None:
-    if kib_scope not in ("model", "planned"):
-        raise ValueError(f"kib_scope must be 'model' or 'planned', got {kib_scope!r}")
 
 
 def _flat(rows: list) -> np.ndarray:
@@ -202,7 +224,7 @@ def cost_as_noise(cost: list) -> list:
     return [np.asarray(c, dtype=float) for c in cost]
 
 
-def make_plan(table, menu: Menu, choice):
+def make_plan(table: SensitivityTable, menu: Menu, choice: np.ndarray) -> Plan:
     noise = sum(float(n[int(k)]) for n, k in zip(menu.noise, choice, strict=True))
     predicted = math.inf if noise == 0 else -10.0 * math.log10(noise)
     picked = [menu.options[i][int(k)] for i, k in enumerate(choice)]

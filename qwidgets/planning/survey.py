@@ -33,6 +33,7 @@ class EntryFacts:
     order: tuple = (1 << 62, 0)
     input_shape: tuple | None = None
     macs: int = 0
+    shared_macs: int = 0  # of the layers that use a tied entry's tensor at other places
     inputs: RangeSample | None = None
 
 
@@ -55,6 +56,12 @@ def survey(model: nn.Module, source: DataSource, entries: list[Entry], *, want_i
     for e in entries:
         if e.input_args:
             layer_of.setdefault(id(modules[e.module]), []).append(facts[e.name])
+    shared_of: dict[int, list] = {}  # a tied place's module id -> facts of the entry it uses
+    for e in entries:
+        for place in e.shared_with:
+            m = modules.get(place)
+            if isinstance(m, layers.QUANTIZABLE_TYPES):  # e.g. an output layer tied to an embedding
+                shared_of.setdefault(id(m), []).append(facts[e.name])
     result = Survey([], [])
     first_batch = [True]
 
@@ -65,6 +72,8 @@ def survey(model: nn.Module, source: DataSource, entries: list[Entry], *, want_i
         x = args[0] if args else next(iter(kwargs.values()), None)
         if first_batch[0] and isinstance(x, torch.Tensor):
             call_shapes.setdefault(key, []).append(tuple(x.shape))
+            for f in shared_of.get(key, ()):  # the tied tensor's multiplications there count too
+                f.shared_macs += layers.layer_macs(module, tuple(x.shape))
         seen = set(checked)  # the batch's own tensors (checked by the source), then this call's
         for f in layer_of.get(key, ()):
             xs = call_inputs(f.entry, args, kwargs)
@@ -120,7 +129,7 @@ def survey(model: nn.Module, source: DataSource, entries: list[Entry], *, want_i
             f.input_shape = None
         if e.kind != "layer" or not f.has_input:
             f.macs = _weight_only_macs(e, modules, first_call, call_shapes)
-        f.macs //= n_first  # per sample
+        f.macs = (f.macs + f.shared_macs) // n_first  # per sample
         result.facts.append(f)
     result.facts.sort(key=lambda f: f.order)
     return result

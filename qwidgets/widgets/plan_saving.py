@@ -38,7 +38,8 @@ def save_plan(plan: Plan, path, overwrite: bool) -> tuple[str, str]:
     plan.save(target)
     verb = "replaced" if existed and overwrite else "wrote"
     note = (f"{verb} {os.path.abspath(target)} with the plan ({len(plan.layers)} layers, "
-            f"{plan.weight_kib:,.2f} KiB of weights)")
+            + ("" if plan.model_kib is None else f"model_kib {plan.model_kib:,.2f}, ")
+            + f"planned_kib {plan.planned_kib:,.2f})")
     if target != path:
         note += f"; {os.path.basename(path)} exists and was left as it was (tick overwrite to replace it)"
     return target, note

@@ -15,12 +15,14 @@ import html
 import math
 import os
 from collections.abc import Callable
+from typing import Any
 
 import ipywidgets as widgets
 import torch
 from torch import nn
 
 from ..core.device_rules import DeviceRules, check_rules
+from ..core.renamed import take_renamed
 from ..planning.costs import COSTS
 from ..planning.evaluate import PlanReport, evaluate_plan
 from ..planning.plan import CAUTION, Plan
@@ -39,6 +41,7 @@ from .planner_tasks import PlannerTasks
 from .planner_text import (
     AXIS_LABELS,
     KIND_LABELS,
+    budget_kind,
     configure_slider,
     fmt_cost,
     initial_budget,
@@ -71,35 +74,40 @@ CSS = {
 
 
 class BudgetPlanner(SnapshotDisplay, GridTaking, PlannerTasks, widgets.VBox):
-    """Choose a budget (weight KiB, mean bits or BOPs) and see the least-noise plan for it.
+    """Choose a budget (``model_kib``, ``planned_kib``, ``mean_bits`` or ``bops``: the
+    :func:`qwidgets.plan_budget` keywords, each limiting the :class:`Plan` attribute of that
+    name) and see the least-noise plan for it.
 
     Scans ``model`` on ``data`` (model scope; keywords ``bits``, ``quantize``, ``method``,
     ``per_channel``, ``max_samples``, ``progress``, ``output``, ``estimate`` and ``batch_size``
-    go to :func:`qwidgets.scan`)
-    unless a ``table`` is given. "measure" (:meth:`measure`) runs the float and the planned
-    model on ``eval_data`` (held-out data: give it when you have it) or else on ``data``, and
-    computes ``metric(output, target) -> float`` for both, with ``eval_target`` (or ``target``
-    for ``data``). ``input_bits`` is the input width counted in BOPs when only weights are
-    planned. ``rules`` (:class:`qwidgets.DeviceRules`) go to the scan, the budget and the Pareto
-    front: only grids and widths the device runs. A grid learned in a :class:`~qwidgets.GridExplorer` reaches the plan with
-    :meth:`use_grid` (or the "use explorer's grid" button once :meth:`link_explorer` is called).
+    go to :func:`qwidgets.scan`) unless a ``table`` is given. "measure" (:meth:`measure`) runs
+    the float and the planned model on ``eval_data`` (held-out data: give it when you have it)
+    or else on ``data``, and computes ``metric(output, target) -> float`` for both, with
+    ``eval_target`` (or ``target`` for ``data``). ``assumed_input_bits``: the input width
+    counted in BOPs when only weights are planned (``input_bits`` until the next release).
+    ``rules`` (:class:`qwidgets.DeviceRules`) go to the scan, the budget and the Pareto front.
+    A grid learned in a :class:`~qwidgets.GridExplorer` reaches the plan with :meth:`use_grid`
+    (or the "use explorer's grid" button once :meth:`link_explorer` is called).
 
     >>> import torch
     >>> from torch import nn
     >>> _ = torch.manual_seed(0)
     >>> net = nn.Sequential(nn.Linear(8, 16), nn.ReLU(), nn.Linear(16, 4))
     >>> p = BudgetPlanner(net, torch.randn(64, 8), bits=(2, 4, 8), progress=False)
-    >>> p.set_budget("mean_bits", 4).plan.mean_weight_bits <= 4
+    >>> p.set_budget("mean_bits", 4).plan.mean_bits <= 4
     True
     """
 
     def __init__(self, model: nn.Module, data, *, metric: Callable | None = None, target=None,
                  eval_data=None, eval_target=None, table: SensitivityTable | None = None,
                  bits=(2, 3, 4, 5, 6, 8), quantize: str = "weight", method: str = "mse",
-                 per_channel: bool = True, input_bits: int | None = 8, max_samples: int | None = None,
+                 per_channel: bool = True, assumed_input_bits: int | None = 8, max_samples: int | None = None,
                  output: Callable | None = None, progress: bool = True, width: int = 760,
-                 rules: DeviceRules | None = None, estimate: str = "exact", batch_size: int | None = None):
+                 rules: DeviceRules | None = None, estimate: str = "exact", batch_size: int | None = None,
+                 **renamed: Any):
         super().__init__()
+        assumed_input_bits = take_renamed(renamed, {"input_bits": "assumed_input_bits"}, "BudgetPlanner"
+                                          ).get("assumed_input_bits", assumed_input_bits)
         if not isinstance(model, nn.Module):
             raise TypeError(f"model must be a torch.nn.Module, got {type(model).__name__}")
         if metric is not None and not callable(metric):
@@ -116,35 +124,31 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, PlannerTasks, widgets.VBox):
             raise TypeError(f"table must be a SensitivityTable, got {type(table).__name__}")
         if "model" not in table.scopes:
             raise ValueError("the table holds no model-scope SQNR; scan with scope='model' or 'both'")
-        self.model, self.data, self.metric, self.target = model, data, metric, target
-        self.output = output
-        self.eval_data, self.eval_target = eval_data, eval_target
-        self.table = table
-        self.input_bits = input_bits
+        self.model, self.data, self.metric, self.target, self.output = model, data, metric, target, output
+        self.eval_data, self.eval_target, self.table = eval_data, eval_target, table
+        self.assumed_input_bits = assumed_input_bits
         self.rules = check_rules(rules)
         self._max_samples = max_samples
         self._fronts: dict[str, list] = {}
-        self.kind = "weight_kib"
+        self.kind = "model_kib"
         self.plan: Plan | None = None
         self.report: PlanReport | None = None
         self._predicted: float | None = None  # the allocator's prediction for the scan's grids
         self._taken: dict = {}  # (layer, bits) -> LayerSetting taken from an explorer
         self._explorer_source = None
-        self._budget_value = 0.0
-        self._scale = 1.0
+        self._budget_value, self._scale = 0.0, 1.0
         params = [p for p in model.parameters() if p.is_floating_point()]
         self.dtype = str(params[0].dtype).replace("torch.", "") if params else "no"
         self._build(width)
         self._updater = Coalescer(self._update, delay=0.05,
                                   on_error=lambda e: self.message.error(e, "update"))
-        self._syncing = False
-        self._exact: float | None = None
-        self._set_kind("weight_kib", initial=True)
+        self._syncing, self._exact = False, None  # _exact: set_budget's value, used once
+        self._set_kind("model_kib", initial=True)
 
     # ------------------------------------------------------------------ layout
     def _build(self, width: int) -> None:
         c = {
-            "kind": widgets.ToggleButtons(options=[(KIND_LABELS[k], k) for k in COSTS], value="weight_kib",
+            "kind": widgets.ToggleButtons(options=[(KIND_LABELS[k], k) for k in COSTS], value="model_kib",
                                           description="budget in", style={"description_width": "70px",
                                                                           "button_width": "100px"}),
             "budget": widgets.FloatSlider(value=1.0, min=0.0, max=1.0, step=0.01, description="budget",
@@ -222,7 +226,8 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, PlannerTasks, widgets.VBox):
         """The Pareto front for a budget kind (cached): ``[(cost, predicted dB, Plan), ...]``."""
         kind = self.kind if kind is None else kind
         if kind not in self._fronts:
-            self._fronts[kind] = pareto_front(self.table, kind, input_bits=self.input_bits, rules=self.rules)
+            self._fronts[kind] = pareto_front(self.table, kind, assumed_input_bits=self.assumed_input_bits,
+                                              rules=self.rules)
         return self._fronts[kind]
 
     @property
@@ -232,6 +237,7 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, PlannerTasks, widgets.VBox):
 
     def _set_kind(self, kind: str, initial: bool = False) -> None:
         """Switch the budget kind; the current plan is kept and the budget becomes its cost."""
+        kind = budget_kind(kind)
         if kind not in COSTS:
             raise ValueError(f"kind must be one of {COSTS}, got {kind!r}")
         if kind == self.kind and not initial:
@@ -258,9 +264,7 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, PlannerTasks, widgets.VBox):
         self._budget_value = value
         xs = [c / self._scale for c, _, _ in front]
         unit = f" ({si_prefix(self._scale)}BOPs)" if kind == "bops" and self._scale != 1 else ""
-        label = AXIS_LABELS[kind] if kind != "weight_kib" or front[0][2].model_kib is not None else \
-            "weight storage of the planned layers (KiB)"
-        self.figure.show_front(xs, [d for _, d, _ in front], label + unit)
+        self.figure.show_front(xs, [d for _, d, _ in front], AXIS_LABELS[kind] + unit)
         if self.plan is None:
             self._update(value)
         else:
@@ -273,7 +277,9 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, PlannerTasks, widgets.VBox):
             self._updater.request()
 
     def set_budget(self, kind: str, value: float) -> BudgetPlanner:
-        """Set the budget kind and value, plan, and redraw (synchronously)."""
+        """Set the budget kind (a :func:`qwidgets.plan_budget` keyword) and value, plan, and
+        redraw (synchronously)."""
+        kind = budget_kind(kind)
         if kind != self.kind:
             self._set_kind(kind)
         if not isinstance(value, (int, float)) or isinstance(value, bool) or not math.isfinite(value):
@@ -303,8 +309,8 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, PlannerTasks, widgets.VBox):
         if value is None:
             value = exact if exact is not None else self.controls["budget"].value * self._scale
         value = max(value, self.front()[0][0])  # the slider's rounding must not make it infeasible
-        plan = plan_budget(self.table, **{self.kind: value}, **self.limit.kwargs(), input_bits=self.input_bits,
-                           rules=self.rules)
+        plan = plan_budget(self.table, **{self.kind: value}, **self.limit.kwargs(),
+                           assumed_input_bits=self.assumed_input_bits, rules=self.rules)
         self._predicted = plan.predicted_sqnr_db
         for name in plan.layers:  # grids taken from an explorer come back at their width
             setting = self._taken.get((name, plan.bits[name]))

@@ -9,16 +9,34 @@ from __future__ import annotations
 import html
 import math
 
+from ..core.renamed import warn_renamed
 from ..planning.evaluate import PlanReport
 from ..planning.plan import Plan
 from ..planning.table import SensitivityTable
 
-__all__ = ["KIND_LABELS", "AXIS_LABELS", "plan_cost", "nice_step", "si_prefix", "fmt_cost",
-           "readout_html", "layers_html", "initial_budget"]
+__all__ = ["KIND_LABELS", "AXIS_LABELS", "budget_kind", "plan_cost", "nice_step", "si_prefix",
+           "fmt_cost", "readout_html", "layers_html", "initial_budget"]
 
-KIND_LABELS = {"weight_kib": "weight KiB", "mean_bits": "mean bits", "bops": "BOPs"}
-AXIS_LABELS = {"weight_kib": "weight storage of the whole model (KiB)", "mean_bits": "mean weight bits",
-               "bops": "bit operations per sample"}
+# the budget kinds are plan_budget's keywords and the Plan attributes of the same names
+KIND_LABELS = {"model_kib": "model_kib", "planned_kib": "planned_kib", "mean_bits": "mean_bits",
+               "bops": "bops"}
+AXIS_LABELS = {"model_kib": "model_kib: weight storage of the whole model (KiB)",
+               "planned_kib": "planned_kib: weight storage of the planned layers (KiB)",
+               "mean_bits": "mean_bits: mean bits per planned weight",
+               "bops": "bops: bit operations per sample"}
+
+
+def budget_kind(kind: str) -> str:
+    """A budget kind by today's name (``"weight_kib"``, the previous release's name of the whole
+    model's storage, warns once and reads as ``"model_kib"``).
+
+    >>> budget_kind("bops")
+    'bops'
+    """
+    if kind == "weight_kib":
+        warn_renamed("kind 'weight_kib'", "'model_kib' (or 'planned_kib')", "BudgetPlanner")
+        return "model_kib"
+    return kind
 
 
 def plan_cost(plan: Plan, kind: str) -> float:
@@ -30,9 +48,9 @@ def plan_cost(plan: Plan, kind: str) -> float:
     >>> plan_cost(p, "mean_bits"), plan_cost(p, "bops")
     (4.0, 256)
     """
-    if kind == "weight_kib":  # the whole model's KiB when the plan counts it (budget's scope)
-        return plan.model_kib if plan.model_kib is not None else plan.weight_kib
-    return {"mean_bits": lambda: plan.mean_weight_bits, "bops": lambda: plan.bops}[kind]()
+    if kind == "model_kib" and plan.model_kib is None:  # a plan that does not record the rest
+        return plan.planned_kib
+    return getattr(plan, kind)
 
 
 def nice_step(span: float, fraction: float = 0.01) -> float:
@@ -59,7 +77,8 @@ def configure_slider(slider, kind: str, lo: float, hi: float, value: float, labe
     (1000000.0, 2.0, 9.0, 0.05, 'budget (MBOPs)')
     """
     scale = 10.0 ** (3 * math.floor(math.log10(hi) / 3)) if kind == "bops" and hi >= 1e3 else 1.0
-    unit = {"weight_kib": "KiB", "mean_bits": "bits", "bops": f"{si_prefix(scale)}BOPs"}[kind]
+    unit = {"model_kib": "KiB", "planned_kib": "KiB", "mean_bits": "bits",
+            "bops": f"{si_prefix(scale)}BOPs"}[kind]
     slider.description = f"{label} ({unit})"
     slider.max = max(hi / scale, slider.min)
     slider.min = lo / scale
@@ -76,7 +95,7 @@ def si_prefix(scale: float) -> str:
 def fmt_cost(v: float, kind: str) -> str:
     """A cost as the readout prints it.
 
-    >>> fmt_cost(5.4321, "weight_kib"), fmt_cost(1234567.0, "bops")
+    >>> fmt_cost(5.4321, "model_kib"), fmt_cost(1234567.0, "bops")
     ('5.43', '1,234,567')
     """
     if kind == "bops":
@@ -117,19 +136,20 @@ def readout_html(plan: Plan, report: PlanReport | None, *, kind: str, budget: fl
         ("predicted SQNR", pred),
         ("measured SQNR", "press measure" if report is None else
          f"{_db(report.measured_sqnr_db)} on {measured_on}"),
-        ("weights", f"{plan.weight_kib:,.2f} KiB (float32 {plan.float_weight_kib:,.2f} KiB, "
-                    f"{plan.float_weight_kib / plan.weight_kib:.1f}x smaller)"),
-        ("whole model", "-" if plan.model_kib is None else
-         f"{plan.model_kib:,.2f} KiB (weights not planned at their stored width)"),
+        ("model_kib", "-" if plan.model_kib is None else
+         f"{plan.model_kib:,.2f} KiB (the whole model; weights not planned at their stored width)"),
+        ("planned_kib", f"{plan.planned_kib:,.2f} KiB (the planned layers; float32 "
+                        f"{plan.float_planned_kib:,.2f} KiB, "
+                        f"{plan.float_planned_kib / plan.planned_kib:.1f}x smaller)"),
         ("scanned", coverage or "-"),
-        ("mean weight bits", f"{plan.mean_weight_bits:.3f}"),
-        ("BOPs per sample", f"{plan.bops:,} (float32 {plan.float_bops:,}, "
+        ("mean_bits", f"{plan.mean_bits:.3f} (per planned weight)"),
+        ("bops", f"{plan.bops:,} per sample (float32 {plan.float_bops:,}, "
                             f"{plan.float_bops / max(plan.bops, 1):.1f}x fewer)"),
     ]
     if metric:
         rows.append(("metric", "press measure" if report is None or report.metric_float is None else
-                     f"float {report.metric_float:.4g}, planned {report.metric_planned:.4g} "
-                     f"({report.metric_planned - report.metric_float:+.4g}) on {measured_on}"))
+                     f"float {report.metric_float:.4g}, planned {report.metric_planned:.4g}, "
+                     f"drop {report.drop:.4g} (float - planned) on {measured_on}"))
     rows.append(("model", f"{dtype} weights"))
     cells = "".join(f"<tr><td style='padding-right:12px;color:#555'>{html.escape(k)}</td>"
                     f"<td><b>{html.escape(v)}</b></td></tr>" for k, v in rows)
@@ -150,7 +170,7 @@ def layers_html(table: SensitivityTable, plan: Plan, edited: dict) -> str:
         body.append(
             f"<tr><td>{html.escape(name + note)}</td><td style='text-align:right'>{w or 'float'}</td>{inp}"
             f"<td style='text-align:right'>{row['params']:,}</td>"
-            f"<td style='text-align:right'>{row['weight_kib']:,.3f}</td>"
+            f"<td style='text-align:right'>{row['kib']:,.3f}</td>"
             f"<td style='text-align:right'>{row['bops']:,}</td>"
             f"<td style='text-align:right'>{'-' if alone is None else f'{alone:.1f}'}</td></tr>")
     head_in = "<th>input bits</th>" if with_inputs else ""
