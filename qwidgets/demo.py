@@ -18,16 +18,11 @@ The physics is simplified but keeps what makes the task non-trivial:
 * healthy snippets sometimes carry one stray knock (a parcel landing on the belt), so a
   single impulse is not evidence of wear; some worn snippets are faint.
 
-Everything is seeded: the same ``seed`` gives bit-identical data. Training is deterministic on
-one machine (one thread, torch's deterministic algorithms: :func:`deterministic`), but float
-rounding depends on which vector instructions torch's kernels use, and five epochs of Adam turn
-last-bit differences into other weights (AVX-512, AVX2 and plain kernels gave 96.1%, 96.3% and
-96.7% held-out accuracy). So the classifier trained from seed 0 ships with the package
-(:data:`WEIGHTS_FILE`, about 50 KB) and :func:`load_demo` loads it; ``load_demo(retrain=True)``
-trains it again (a test checks that retraining reaches the shipped model's accuracy within a
-stated tolerance). The README's demo figures come from :func:`demo_figures` on the shipped
-weights (``python -m qwidgets.demo --readme`` prints the paragraph), and a test checks that the
-README says what it prints, also with other kernel settings.
+The same ``seed`` gives bit-identical data. Training rounds by the CPU's vector instructions
+(AVX-512, AVX2 and plain kernels gave 96.1%, 96.3% and 96.7% held-out accuracy), so the model
+trained from seed 0 ships with the package (:data:`WEIGHTS_FILE`) and :func:`load_demo` loads
+it (``retrain=True`` trains it again). The README's figures come from :func:`demo_figures`
+(``python -m qwidgets.demo --readme``); a test checks them, also under other kernels.
 
 >>> x, y = make_snippets(6, seed=1)
 >>> tuple(x.shape), x.dtype, y.tolist()
@@ -41,7 +36,6 @@ import sys
 from collections import OrderedDict
 from contextlib import contextmanager
 from functools import lru_cache
-from importlib import resources
 from pathlib import Path
 from typing import NamedTuple
 
@@ -49,7 +43,8 @@ import numpy as np
 import torch
 from torch import nn
 
-from .core.checks import check_int
+from .core.checks import check_bool, check_int
+from .data import read_arrays, write_arrays
 
 __all__ = [
     "SAMPLE_RATE_HZ",
@@ -283,33 +278,28 @@ def _trained_state(seed: int) -> dict[str, torch.Tensor]:
 
 @lru_cache(maxsize=1)
 def _shipped_state() -> dict[str, torch.Tensor]:
-    with resources.files("qwidgets.data").joinpath(WEIGHTS_FILE).open("rb") as f:
-        arrays = np.load(f)
-        state = {k: torch.from_numpy(arrays[k].copy()) for k in arrays.files if not k.startswith("meta.")}
-        seed = int(arrays["meta.seed"])
-    if seed != SHIPPED_SEED:
-        raise RuntimeError(f"{WEIGHTS_FILE} was trained from seed {seed}, expected {SHIPPED_SEED}")
-    return state
+    state, meta = read_arrays(WEIGHTS_FILE)
+    if int(meta["seed"]) != SHIPPED_SEED:
+        raise RuntimeError(f"{WEIGHTS_FILE} was trained from seed {int(meta['seed'])}, expected {SHIPPED_SEED}")
+    return {k: torch.from_numpy(v) for k, v in state.items()}
 
 
 def save_weights(path: str | Path, seed: int = SHIPPED_SEED) -> dict[str, torch.Tensor]:
     """Train the classifier from ``seed`` on this machine and write its weights to ``path``
     (the format of :data:`WEIGHTS_FILE`); how the shipped file was made."""
     state = _trained_state(int(seed))
-    np.savez_compressed(Path(path), **{k: v.numpy() for k, v in state.items()},
-                        **{"meta.seed": np.int64(seed), "meta.epochs": np.int64(_TRAIN_EPOCHS),
-                           "meta.torch": np.str_(torch.__version__)})
+    write_arrays(path, {k: v.numpy() for k, v in state.items()},
+                 seed=seed, epochs=_TRAIN_EPOCHS, torch=torch.__version__)
     return state
 
 
 def load_demo(seed: int = SHIPPED_SEED, *, retrain: bool = False) -> BearingDemo:
     """The classifier with its training and held-out data.
 
-    4,000 training and 1,500 held-out snippets, generated from different seeds. For the shipped
-    seed (0) the weights come from the package (the same on every machine, so the demo's figures
-    are too); ``retrain=True``, or another ``seed``, trains the model here instead (a few
-    seconds on CPU; cached per ``seed`` within the process). Every call returns a fresh model
-    and fresh tensors, so changing them never affects a later call.
+    4,000 training and 1,500 held-out snippets, generated from different seeds. For seed 0 the
+    weights come from the package (the same on every machine); ``retrain=True``, or another
+    ``seed``, trains here (a few seconds; cached per ``seed``). Every call returns a fresh
+    model and fresh tensors.
 
     >>> demo = load_demo()
     >>> accuracy(demo.model(demo.x_test), demo.y_test) > 0.9
@@ -317,9 +307,7 @@ def load_demo(seed: int = SHIPPED_SEED, *, retrain: bool = False) -> BearingDemo
     """
     if isinstance(seed, bool) or not isinstance(seed, int):
         raise TypeError(f"seed must be an int, got {seed!r}")
-    if not isinstance(retrain, bool):
-        raise TypeError(f"retrain must be True or False, got {retrain!r}")
-    state = _shipped_state() if seed == SHIPPED_SEED and not retrain else _trained_state(seed)
+    state = _shipped_state() if seed == SHIPPED_SEED and not check_bool(retrain, "retrain") else _trained_state(seed)
     model = build_model(seed)
     model.load_state_dict(state)
     model.eval()
