@@ -329,15 +329,15 @@ def demo_figures(seed: int = 0) -> dict:
     model = fold_batchnorm(demo.model)
     with deterministic(), torch.no_grad():
         table = scan(model, demo.x_train[:256], progress=False)
-        plan = plan_budget(table, weight_kib=BOARD_WEIGHT_BUDGET_KIB)
+        plan = plan_budget(table, model_kib=BOARD_WEIGHT_BUDGET_KIB)
         report = evaluate_plan(model, demo.x_test, plan, metric=accuracy, target=demo.y_test)
     n_weights = sum(p.numel() for n, p in model.named_parameters() if p.dim() > 1)
     return {
         "model": model, "table": table, "plan": plan, "report": report, "n_weights": n_weights,
         "n_test": len(demo.y_test), "float_accuracy": report.metric_float,
         "planned_accuracy": report.metric_planned, "bits": dict(plan.bits),
-        "mean_bits": report.mean_weight_bits, "weight_kib": report.weight_kib,
-        "smaller": report.float_weight_kib / report.weight_kib,
+        "mean_bits": report.mean_bits, "planned_kib": report.planned_kib,
+        "smaller": report.float_planned_kib / report.planned_kib,
     }
 
 
