@@ -50,7 +50,7 @@ from qwidgets import (  # noqa: E402
     quantize,
     relaxed_quantize,
 )
-from qwidgets.widgets.events import torch_threads  # noqa: E402
+from qwidgets.planning.threads import threads as torch_threads  # noqa: E402
 
 RESULTS = Path(__file__).resolve().parent / "results" / "explorer.json"
 CONTROLS = ("bits", "scale", "offset", "noise")

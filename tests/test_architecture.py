@@ -195,3 +195,16 @@ def test_scan_plan_and_evaluate_load_neither_matplotlib_nor_ipywidgets():
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=300)
     assert out.returncode == 0, out.stderr
     assert "LOADED []" in out.stdout, out.stdout
+
+
+def test_every_public_function_and_class_is_defined_once():
+    # one definition per public name in the package (two readout_html / torch_threads with
+    # different signatures confused readers); private (_) names are each module's own
+    where: dict[str, list[str]] = {}
+    for module, path in MODULES.items():
+        for node in ast.parse(path.read_text(), str(path)).body:
+            if isinstance(node, (ast.FunctionDef, ast.AsyncFunctionDef, ast.ClassDef)) \
+                    and not node.name.startswith("_"):
+                where.setdefault(node.name, []).append(module)
+    twice = {name: mods for name, mods in where.items() if len(mods) > 1}
+    assert not twice, twice

@@ -41,6 +41,15 @@ def _exhaustive(costs, noise, limit):
     return best
 
 
+def test_noise_below_the_solvers_gap_is_settled():
+    # found by the property test below: HiGHS stops within an absolute gap of its scaled
+    # objective, which left the second entry on its 1e-9 option; reference: enumeration
+    costs = np.array([[1, 2, 2, 2], [25, 25, 25, 25]], dtype=np.int64)
+    noise = np.array([[1e-2, 0.0, 0.0, 0.0], [0.0, 0.0, 0.0, 1e-9]])
+    choice = solve(list(noise), [list(costs)], [26])
+    assert float(noise[[0, 1], choice].sum()) == _exhaustive(costs, noise, 26) == 1e-2
+
+
 @st.composite
 def instances(draw):
     layers = draw(st.integers(1, 6))

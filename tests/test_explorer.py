@@ -396,8 +396,8 @@ def test_construction_modes_and_bad_input():
         GridExplorer(torch.randn(10), bits=0)
     with pytest.raises(ValueError, match="method must be one of"):
         GridExplorer(torch.randn(10), method="max")
-    with pytest.raises(ValueError, match="noise must be > 0"):
-        GridExplorer(torch.randn(10), noise=0.0)
+    with pytest.raises(ValueError, match="noise_steps must be > 0"):
+        GridExplorer(torch.randn(10), noise_steps=0.0)
     with pytest.raises(ValueError, match="source must be one of"):
         GridExplorer(model[0], data, source="bias")
 

@@ -86,3 +86,18 @@ def test_metric_change_is_minus_drop():
     err = ModelError(stats, 0.9, 0.8)
     assert err.drop == 0.9 - 0.8
     assert _warned_once(lambda: err.metric_change, "drop") == -err.drop
+
+
+def test_plan_input_bits_is_chosen_input_bits_and_make_plan_input_bits_maps_by_meaning():
+    t = SensitivityTable.synthetic([[10.0, 30.0]], params=[100], bits=(4, 8),
+                                   input_sqnr_db=[[25.0, 35.0]], input_bits=(6, 8), macs=[10])
+    plan = t.make_plan({"layer0": 4}, chosen_input_bits={"layer0": 6})
+    assert _warned_once(lambda: plan.input_bits, "chosen_input_bits") == plan.chosen_input_bits == {"layer0": 6}
+    # on a separate table the old input_bits chose input widths ...
+    old = _warned_once(lambda: t.make_plan({"layer0": 4}, input_bits={"layer0": 6}), "chosen_input_bits")
+    assert old.chosen_input_bits == {"layer0": 6}
+    # ... on a weight table it was the width BOPs assume
+    w = SensitivityTable.synthetic([[10.0, 30.0]], params=[100], bits=(4, 8), macs=[10])
+    renamed._warned.clear()
+    old = _warned_once(lambda: w.make_plan({"layer0": 4}, input_bits=6), "assumed_input_bits")
+    assert old.bops == w.make_plan({"layer0": 4}, assumed_input_bits=6).bops == 10 * 4 * 6

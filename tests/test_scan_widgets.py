@@ -451,5 +451,5 @@ def test_planner_shows_input_widths_for_a_separate_table():
     p.set_budget("model_kib", p.front()[len(p.front()) // 2][0])
     assert p.figure.input_bars and "input bits" in p.table_html.value
     widths = [b.get_width() for b in p.figure.input_bars]
-    assert widths == [p.plan.input_bits[n] or 0 for n in t.layers]
+    assert widths == [p.plan.chosen_input_bits[n] or 0 for n in t.layers]
     assert all(w in (4, 8) for w in widths)

@@ -185,37 +185,37 @@ def test_plan_budget_on_separate_table_equals_enumeration(seed, n, kinds, restri
     assert plan.predicted_sqnr_db == pytest.approx(-10 * math.log10(best[0]), abs=1e-6)
     assert plan.bops <= budgets["bops"]
     # Plan.bops by hand: each entry with its own input width
-    assert plan.bops == sum(t.macs(x) * plan.bits[x] * plan.input_bits[x] for x in t.layers)
+    assert plan.bops == sum(t.macs(x) * plan.bits[x] * plan.chosen_input_bits[x] for x in t.layers)
     if fixed:
-        assert (plan.bits[t.layers[0]], plan.input_bits[t.layers[0]]) == (8, 4)
+        assert (plan.bits[t.layers[0]], plan.chosen_input_bits[t.layers[0]]) == (8, 4)
 
 
 def test_make_plan_input_widths_and_bops():
     rng = np.random.default_rng(0)
     t = _separate_table(rng, 3)
     a, b, c = t.layers
-    p = t.make_plan({a: 2, b: 4, c: 8}, input_bits={a: 4, b: None})
-    assert p.input_bits == {a: 4, b: None, c: None}
+    p = t.make_plan({a: 2, b: 4, c: 8}, chosen_input_bits={a: 4, b: None})
+    assert p.chosen_input_bits == {a: 4, b: None, c: None}
     # floats inputs count the assumed width (8 by default) in BOPs
     assert p.bops == t.macs(a) * 2 * 4 + t.macs(b) * 4 * 8 + t.macs(c) * 8 * 8
-    q = t.make_plan({a: 2, b: 4, c: 8}, input_bits=8)
-    assert q.input_bits == {a: 8, b: 8, c: 8}
+    q = t.make_plan({a: 2, b: 4, c: 8}, chosen_input_bits=8)
+    assert q.chosen_input_bits == {a: 8, b: 8, c: 8}
     with pytest.raises(KeyError, match="not scanned for the input"):
-        t.make_plan({a: 2}, input_bits=6)
+        t.make_plan({a: 2}, chosen_input_bits=6)
     w = SensitivityTable.synthetic(np.array([[10.0, 20.0]]), params=[10], bits=(4, 8))
-    with pytest.raises(ValueError, match="input_bits per entry needs a table scanned with quantize='separate'"):
-        w.make_plan({"layer0": 4}, input_bits={"layer0": 8})
-    assert w.make_plan({"layer0": 4}, input_bits=4).input_bits == {"layer0": None}
+    with pytest.raises(ValueError, match="chosen_input_bits needs a table scanned with quantize='separate'"):
+        w.make_plan({"layer0": 4}, chosen_input_bits={"layer0": 8})
+    assert w.make_plan({"layer0": 4}, assumed_input_bits=4).chosen_input_bits == {"layer0": None}
 
 
 def test_bops_budget_chooses_input_widths_and_front():
     # one entry, counted by hand: the 8-bit input costs twice the BOPs of the 4-bit one
     t = SensitivityTable.synthetic([[20.0, 40.0]], params=[100], bits=(4, 8), input_sqnr_db=[[24.0, 48.0]],
                                    input_bits=(4, 8), macs=[1000])
-    assert plan_budget(t, bops=1000 * 8 * 4).input_bits == {"layer0": 4}
+    assert plan_budget(t, bops=1000 * 8 * 4).chosen_input_bits == {"layer0": 4}
     p = plan_budget(t, bops=1000 * 4 * 8)  # (4, 8) or (8, 4): noise 1e-2 + 1.6e-5 beats 1e-4 + 4e-3
-    assert (p.bits["layer0"], p.input_bits["layer0"]) == (8, 4)
-    assert plan_budget(t, model_kib=1.0).input_bits == {"layer0": 8}  # inputs free: the widest
+    assert (p.bits["layer0"], p.chosen_input_bits["layer0"]) == (8, 4)
+    assert plan_budget(t, model_kib=1.0).chosen_input_bits == {"layer0": 8}  # inputs free: the widest
     front = pareto_front(t, "bops")
     assert [c for c, _, _ in front] == [16000, 32000, 64000]
 
@@ -224,7 +224,7 @@ def test_apply_and_evaluate_quantize_the_planned_inputs():
     model, x = _conv_net()
     t = scan(model, x, bits=(4, 8), quantize="separate", input_bits=(4, 8), progress=False)
     plan = plan_budget(t, bops=0.5 * sum(t.macs(n) * 8 * 8 for n in t.layers) + 1)
-    assert any(v == 4 for v in plan.input_bits.values())
+    assert any(v == 4 for v in plan.chosen_input_bits.values())
     out = apply_plan(model, plan)(x).detach()
     # naive: deep copy, overwrite every planned weight, pre-hooks on the planned inputs
     c = copy.deepcopy(model)
@@ -239,7 +239,7 @@ def test_apply_and_evaluate_quantize_the_planned_inputs():
     assert rep.measured_sqnr_db == pytest.approx(_sqnr(model(x).detach(), out), abs=1e-6)
     assert rep.bops == plan.bops
     back = type(plan).from_json(plan.to_json())
-    assert back.input_bits == plan.input_bits and back.bops == plan.bops
+    assert back.chosen_input_bits == plan.chosen_input_bits and back.bops == plan.bops
 
 
 def test_separate_reads_a_one_shot_generator_for_both_sides():

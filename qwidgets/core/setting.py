@@ -6,7 +6,9 @@ from dataclasses import dataclass
 
 from .grid import UniformGrid
 
-__all__ = ["LayerSetting"]
+__all__ = ["LayerSetting", "SOURCES"]
+
+SOURCES = ("weight", "input")  # the two sides of a layer a grid quantizes (LayerSetting's fields)
 
 
 @dataclass(frozen=True)

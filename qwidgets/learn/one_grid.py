@@ -32,15 +32,14 @@ from ..core.grid import UniformGrid
 from ..core.metrics import ErrorStats, error_stats
 from ..core.relaxed import relaxed_quantize
 from ..core.rounding import quantize
+from ..core.setting import SOURCES
 from ..model.layers import check_layer, layer_forward, output_on_grids
 from .optim import Adam
 
 __all__ = ["learn_grid", "LearnResult", "SOURCES"]
 
-SOURCES = ("weight", "input")
 DEFAULT_NOISE_STEPS = 0.3  # fraction of the grid step: nearest bin ~0.68 for a value at a bin centre
 MIN_NOISE_STEPS = 0.02  # fraction of the step; below it the relaxed gradients vanish
-DEFAULT_NOISE = DEFAULT_NOISE_STEPS  # the former name (a fraction of the step), still imported
 _NOT_GIVEN = object()
 
 

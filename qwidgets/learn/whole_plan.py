@@ -32,14 +32,13 @@ from torch import nn
 from ..core.grid import UniformGrid, grid_params
 from ..core.relaxed import relaxed_quantize
 from ..core.rounding import quantize
-from ..core.setting import LayerSetting
+from ..core.setting import SOURCES, LayerSetting
 from ..model.entries import find_entries
-from .one_grid import DEFAULT_NOISE
+from .one_grid import DEFAULT_NOISE_STEPS
 
 __all__ = ["PlanGrids", "GridEntry", "LEARNABLE", "SOURCES", "MIN_NOISE"]
 
 LEARNABLE = ("scale", "offset", "noise")
-SOURCES = ("weight", "input")
 MIN_NOISE = 0.02  # fraction of the grid step; below it the relaxed gradients vanish
 
 
@@ -116,8 +115,9 @@ class PlanGrids:
 
     ``settings``: entry name -> :class:`qwidgets.LayerSetting` (a plan's ``layers``);
     ``learn``: which of "scale", "offset", "noise" get gradients; ``sources``: which of
-    "weight", "input" are learned (the other grids still quantize, fixed); ``noise``: the
-    starting noise as a fraction of the step.
+    "weight", "input" are learned (the other grids still quantize, fixed); ``noise_steps``:
+    the starting noise width as a fraction of the step (the core functions' ``noise`` is
+    ``noise_steps * scale``, in value units).
 
     >>> import torch
     >>> from torch import nn
@@ -135,7 +135,7 @@ class PlanGrids:
 
     def __init__(self, model: nn.Module, settings: Mapping[str, LayerSetting], *,
                  learn: Iterable[str] = LEARNABLE, sources: Iterable[str] = SOURCES,
-                 noise: float = DEFAULT_NOISE):
+                 noise_steps: float = DEFAULT_NOISE_STEPS):
         learn, sources = set(learn), set(sources)
         self.model = copy.deepcopy(model).eval()
         for p in self.model.parameters():
@@ -161,20 +161,20 @@ class PlanGrids:
                     raise ValueError(f"plan entry {name!r} ({entry.type_name}) is weight-only; "
                                      "it has no input to quantize")
                 self.entries.append(self._entry(name, source, grid.detached(), entry.param, w.dtype,
-                                                noise, learn if source in sources else set()))
+                                                noise_steps, learn if source in sources else set()))
             if setting.input is not None:
                 self._inputs[name] = next(e for e in self.entries if e.name == name and e.source == "input")
                 owner = self.model.get_submodule(entry.module) if entry.module else self.model
                 owner.register_forward_pre_hook(_InputHook(self, name))
 
     @staticmethod
-    def _entry(name, source, start, pname, dtype, noise, learn) -> GridEntry:
+    def _entry(name, source, start, pname, dtype, noise_steps, learn) -> GridEntry:
         dtype = dtype if dtype in (torch.float32, torch.float64) else torch.float32
         s0 = start.scale_tensor().to(dtype)
         o0 = start.offset_tensor().to(dtype)
         a = torch.zeros_like(s0, requires_grad="scale" in learn)
         b = torch.zeros_like(o0, requires_grad="offset" in learn)
-        c = torch.tensor(math.log(noise), dtype=dtype, requires_grad="noise" in learn)
+        c = torch.tensor(math.log(noise_steps), dtype=dtype, requires_grad="noise" in learn)
         return GridEntry(name, source, start, pname, a, b, c, start.has_zero_point())
 
     # ------------------------------------------------------------------ numbers

@@ -4,7 +4,7 @@ An option of an entry is a pair (weight width, input width); None stands for a s
 stays float. What a table offers depends on how it was scanned:
 
 - ``quantize="weight"``: every scanned width for the weights, inputs float (BOPs count the
-  assumed ``input_bits``);
+  ``assumed_input_bits``);
 - ``"input"``: every scanned width for the input, weights float;
 - ``"both"``: the same width for both;
 - ``"separate"``: every pair of a scanned weight width and a scanned input width (entries
@@ -27,12 +27,12 @@ from numbers import Integral, Real
 import numpy as np
 
 from ..core.checks import check_choice, check_int
+from ..core.setting import SOURCES
 from .costs import COSTS, FLOAT_BITS, layer_bops, weight_storage_bits
 from .table import SensitivityTable
 
 MAX_NOISE = 1e12  # noise power relative to the signal, cap (SQNR >= -120 dB) to keep sums finite
 
-SOURCES = ("weight", "input")
 
 
 @dataclass(frozen=True)
@@ -43,7 +43,7 @@ class Menu:
     names: list
     options: list
     noise: list
-    input_bits: int | None  # assumed input width for BOPs where the input stays float
+    assumed_input_bits: int | None  # input width BOPs count where the input stays float
 
     def costs(self, table: SensitivityTable, cost: str) -> list:
         """Integer cost of every option of every entry (list of int64 arrays)."""
@@ -57,7 +57,7 @@ class Menu:
                 elif cost == "mean_bits":
                     row.append(p * (FLOAT_BITS if wb is None else wb))
                 else:
-                    row.append(layer_bops(macs, wb, self.input_bits if ib is None else ib))
+                    row.append(layer_bops(macs, wb, self.assumed_input_bits if ib is None else ib))
             out.append(np.array(row, dtype=np.int64))
         return out
 
@@ -72,9 +72,9 @@ def check_cost(cost) -> str:
     return check_choice(cost, COSTS, "cost")
 
 
-def check_input_bits(input_bits) -> int | None:
+def check_assumed_input_bits(input_bits) -> int | None:
     # None: float inputs
-    return check_int(input_bits, "input_bits", minimum=1, maximum=16, none_ok=True)
+    return check_int(input_bits, "assumed_input_bits", minimum=1, maximum=16, none_ok=True)
 
 
 def check_budgets(**budgets) -> dict:
@@ -242,10 +242,10 @@ def _all_options(table, name: str) -> list:
     return [(w, None) for w in bits]
 
 
-def build_menu(table, *, fixed=None, allowed_bits=None, input_bits: int | None = 8) -> Menu:
+def build_menu(table, *, fixed=None, allowed_bits=None, assumed_input_bits: int | None = 8) -> Menu:
     """Every entry's options after ``fixed`` pins and the ``allowed_bits`` menu, with noise."""
     check_table(table)
-    input_bits = check_input_bits(input_bits)
+    assumed_input_bits = check_assumed_input_bits(assumed_input_bits)
     w_ok, i_ok = _allowed(table, allowed_bits)
     if fixed is None:
         fixed = {}
@@ -277,4 +277,4 @@ def build_menu(table, *, fixed=None, allowed_bits=None, input_bits: int | None =
             n.append(v)
         options.append(opts)
         noise.append(np.array(n, dtype=float))
-    return Menu(list(table.layers), options, noise, input_bits)
+    return Menu(list(table.layers), options, noise, assumed_input_bits)

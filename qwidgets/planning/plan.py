@@ -49,8 +49,10 @@ class Plan:
     ``layers``: name -> :class:`LayerSetting`; ``bits``: name -> chosen bit width;
     ``fingerprint``: :func:`model_fingerprint` of the model planned for; ``weight_shapes`` and
     ``macs`` (per sample) per layer; ``assumed_input_bits``: input width counted in BOPs for
-    layers without an input grid (None: float); :attr:`input_bits`: each entry's own input
-    width, from its input grid; ``predicted_sqnr_db``: the allocator's
+    layers without an input grid (None: float); :attr:`chosen_input_bits`: each entry's own
+    input width, from its input grid (``bits`` and ``chosen_input_bits`` are dicts of chosen
+    widths; the tuples named ``bits`` / ``input_bits`` on a table, a scan and device rules are
+    menus); ``predicted_sqnr_db``: the allocator's
     prediction of the model-output SQNR (None when not predicted).
 
     >>> from torch import nn
@@ -129,9 +131,15 @@ class Plan:
         return plan
 
     @property
-    def input_bits(self) -> dict:
-        """Each entry's input width (None where its input stays float)."""
+    def chosen_input_bits(self) -> dict:
+        """Each entry's chosen input width (None where its input stays float)."""
         return {n: None if s.input is None else s.input.bits for n, s in self.layers.items()}
+
+    @property
+    def input_bits(self) -> dict:
+        """Deprecated: :attr:`chosen_input_bits` (``input_bits`` names menus of widths)."""
+        warn_renamed("input_bits", "chosen_input_bits", "Plan")
+        return self.chosen_input_bits
 
     # ------------------------------------------------------------------ edits
     def with_setting(self, layer_name: str, setting: LayerSetting) -> Plan:

@@ -6,11 +6,13 @@ import json
 import math
 import os
 from collections.abc import Mapping, Sequence
+from typing import Any
 
 import numpy as np
 
 from ..core.checks import check_bits
 from ..core.grid import UniformGrid
+from ..core.renamed import take_renamed
 from ..core.setting import LayerSetting
 from ..model.entries import Coverage
 from .files import read_text, write_text
@@ -232,26 +234,35 @@ class SensitivityTable:
         return g[self.layers[self._row(layer)]][self._col(bits, "input")]
 
     # ------------------------------------------------------------------ plans
-    def make_plan(self, bits: Mapping[str, int], *, input_bits: int | Mapping[str, int | None] | None = 8,
-                  predicted_sqnr_db: float | None = None, assumed_input_bits: int | None = None) -> Plan:
+    def make_plan(self, bits: Mapping[str, int], *,
+                  chosen_input_bits: int | Mapping[str, int | None] | None = None,
+                  assumed_input_bits: int | None = 8, predicted_sqnr_db: float | None = None,
+                  **renamed: Any) -> Plan:
         """A :class:`Plan` with the scanned grids of the given width per entry.
 
         ``bits``: entry -> weight width (the input width for a ``quantize="input"`` table).
-        ``input_bits``: on a ``quantize="separate"`` table, the input width of each entry (a
-        dict; entries left out or set to None keep float inputs) or one width for every entry
-        with input rows; on a ``quantize="weight"`` table, the input width BOPs assume (one
-        number or None). ``assumed_input_bits``: BOPs' input width where inputs stay float
-        (default: ``input_bits`` when it is one number, else 8).
+        ``chosen_input_bits`` (``quantize="separate"`` tables): each entry's input width (a dict;
+        entries left out or None stay float) or one width for every entry with input rows (None:
+        all float); :attr:`Plan.chosen_input_bits` holds them, :attr:`input_bits` is the menu.
+        ``assumed_input_bits``: the input width BOPs count where an input stays float (None:
+        float32). ``input_bits``, the previous name of both, warns once.
 
         >>> t = SensitivityTable.synthetic(np.array([[12.0, 36.0]]), params=[64], bits=(2, 6))
         >>> t.make_plan({"layer0": 6}).bits
         {'layer0': 6}
         >>> s = SensitivityTable.synthetic(np.array([[12.0, 36.0]]), params=[64], bits=(2, 6),
         ...                                input_sqnr_db=np.array([[30.0, 40.0]]), input_bits=(4, 8))
-        >>> p = s.make_plan({"layer0": 2}, input_bits={"layer0": 8})
-        >>> p.bits, p.input_bits
-        ({'layer0': 2}, {'layer0': 8})
+        >>> p = s.make_plan({"layer0": 2}, chosen_input_bits={"layer0": 8})
+        >>> p.bits, p.chosen_input_bits, s.input_bits
+        ({'layer0': 2}, {'layer0': 8}, (4, 8))
         """
+        if renamed:
+            old = renamed.get("input_bits")  # chosen widths on a separate table, else BOPs' width
+            new = "chosen_input_bits" if isinstance(old, Mapping) or self.quantize == "separate" \
+                else "assumed_input_bits"
+            given = take_renamed(renamed, {"input_bits": new}, "SensitivityTable.make_plan")
+            chosen_input_bits = given.get("chosen_input_bits", chosen_input_bits)
+            assumed_input_bits = given.get("assumed_input_bits", assumed_input_bits)
         if not isinstance(bits, Mapping):
             raise TypeError(f"bits must be a mapping from entry name to bit width, got {type(bits).__name__}")
         if not bits:
@@ -259,29 +270,26 @@ class SensitivityTable:
         unknown = [n for n in bits if n not in self._index]
         if unknown:
             raise KeyError(f"layers {unknown} are not in the table; layers: {self.layers}")
-        per_entry = isinstance(input_bits, Mapping)
-        if per_entry or self.quantize == "separate":
-            if self.quantize != "separate":
-                raise ValueError("input_bits per entry needs a table scanned with quantize='separate' "
-                                 f"(this one: quantize={self.quantize!r})")
-            if per_entry:
-                extra = [n for n in input_bits if n not in bits]
-                if extra:
-                    raise KeyError(f"input_bits names {extra}, which bits does not plan")
-        elif input_bits is not None:
-            check_bits(input_bits, "input_bits")
-        if assumed_input_bits is None:
-            assumed_input_bits = 8 if per_entry or input_bits is None and self.quantize == "separate" \
-                else input_bits
+        per_entry = isinstance(chosen_input_bits, Mapping)
+        if chosen_input_bits is not None and self.quantize != "separate":
+            raise ValueError("chosen_input_bits needs a table scanned with quantize='separate' "
+                             f"(this one: quantize={self.quantize!r})")
+        if per_entry:
+            extra = [n for n in chosen_input_bits if n not in bits]
+            if extra:
+                raise KeyError(f"chosen_input_bits names {extra}, which bits does not plan")
+        if assumed_input_bits is not None:
+            check_bits(assumed_input_bits, "assumed_input_bits")
         settings, chosen = {}, {}
         for name in self.layers:
             if name not in bits:
                 continue
             b = bits[name]
             if self.quantize == "separate":
-                ib = input_bits.get(name) if per_entry else (input_bits if self.has_input_rows(name) else None)
+                ib = chosen_input_bits.get(name) if per_entry else (
+                    chosen_input_bits if self.has_input_rows(name) else None)
                 if ib is not None and not self.has_input_rows(name):
-                    raise ValueError(f"input_bits[{name!r}]: {name!r} has no input rows")
+                    raise ValueError(f"chosen_input_bits[{name!r}]: {name!r} has no input rows")
             else:
                 ib = b if self.quantize in ("input", "both") else None
             settings[name] = self._setting(name, b, ib)
@@ -294,7 +302,7 @@ class SensitivityTable:
                               predicted_sqnr_db=predicted_sqnr_db,
                               entries={n: self._entry_info(n) for n in settings},
                               other_weight_bits=max(0, int(self.coverage.total_bits) - sum(
-                                  self._settings[("stored", n)] for n in settings)))
+                                  self._stored(n) for n in settings)))
 
     def _entry_info(self, name: str) -> dict:
         """What a plan records of an entry (cached: a front's plans share it; read-only)."""
@@ -303,9 +311,16 @@ class SensitivityTable:
         if d is None:
             d = {"kind": self.kind(name), "has_input": self.has_input(name),
                  "shared_with": self.shared_with(name), "weight_digest": self.weight_digest(name)}
-            self._settings[("stored", name)] = self.stored_bits(name)
             self._settings[key] = d
         return d
+
+    def _stored(self, name: str) -> int:
+        """:meth:`stored_bits`, cached (a front's plans each sum it over every entry)."""
+        key = ("stored", name)
+        v = self._settings.get(key)
+        if v is None:
+            v = self._settings[key] = self.stored_bits(name)
+        return v
 
     def _shape(self, name: str) -> tuple:
         return tuple(int(d) for d in self._info[name]["weight_shape"])

@@ -63,10 +63,21 @@ def fastest_threads(run) -> int:
 
 
 @contextlib.contextmanager
-def threads(n: int):
-    """torch on ``n`` threads for the block, its setting restored after."""
+def threads(n: int | None):
+    """torch on ``n`` intra-op threads for the block (None: unchanged), its setting restored
+    after. (The widgets use it too: an update is many cache-sized slices, which a second thread
+    hardly speeds up on an idle machine and stalls several-fold when another process holds the
+    other core.)
+
+    >>> before = torch.get_num_threads()
+    >>> with threads(1):
+    ...     torch.get_num_threads()
+    1
+    >>> torch.get_num_threads() == before
+    True
+    """
     before = torch.get_num_threads()
-    if n == before:
+    if n is None or n == before:
         yield
         return
     torch.set_num_threads(n)

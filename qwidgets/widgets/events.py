@@ -12,10 +12,6 @@
 ``observe_value(widget, handler)``
     Call ``handler(change)`` when a control's value changes, except when the change is the
     front end echoing, rounded to the control's step, a value the kernel set (see below).
-``torch_threads(n)``
-    A context manager running torch with ``n`` intra-op threads (None: unchanged), restored
-    after: a widget update is many cache-sized slices, which a second thread hardly speeds up
-    on an idle machine and stalls several-fold when another process holds the other core.
 """
 
 from __future__ import annotations
@@ -28,27 +24,6 @@ from collections.abc import Callable
 from contextlib import contextmanager
 
 import ipywidgets as widgets
-
-from ..planning.threads import threads
-
-
-@contextmanager
-def torch_threads(n: int | None):
-    """Run the block with ``torch.set_num_threads(n)``; the previous count is restored after.
-
-    >>> import torch
-    >>> before = torch.get_num_threads()
-    >>> with torch_threads(1):
-    ...     torch.get_num_threads()
-    1
-    >>> torch.get_num_threads() == before
-    True
-    """
-    if n is None:
-        yield
-        return
-    with threads(n):
-        yield
 
 
 def running_loop():

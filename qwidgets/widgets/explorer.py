@@ -20,10 +20,12 @@ from ..core.device_rules import DeviceRules, check_rules
 from ..core.grid import UniformGrid, grid_params
 from ..core.metrics import ErrorStats, GridUsage
 from ..core.ranges import METHODS
+from ..core.renamed import warn_renamed
 from ..core.setting import LayerSetting
-from ..learn.one_grid import DEFAULT_NOISE, LearnResult
+from ..learn.one_grid import DEFAULT_NOISE_STEPS, LearnResult
+from ..planning.threads import threads
 from .display_snapshot import SnapshotDisplay
-from .events import Coalescer, torch_threads
+from .events import Coalescer
 from .explorer_controls import ExplorerControls
 from .explorer_learning import LearnRunner
 from .explorer_numbers import ExplorerNumbers
@@ -51,8 +53,8 @@ class GridExplorer(SnapshotDisplay, ExplorerStatic, ExplorerControls, widgets.VB
     layer with ``data`` as its input; ``GridExplorer(model, data, layer="name")`` captures
     that layer's input from one run of ``model`` on ``data`` (any data source the model
     accepts). The starting grid has ``bits`` bits and a range fitted by ``method``;
-    ``noise_steps`` (alias ``noise``) is the logistic noise width as a fraction of the grid
-    step and ``temperature`` the relaxed samples' temperature. ``max_samples`` keeps the first
+    ``noise_steps`` is the logistic noise width as a fraction of the grid step (``noise``, its
+    previous name here, warns: the core functions' ``noise`` is in value units) and ``temperature`` the relaxed samples' temperature. ``max_samples`` keeps the first
     rows of ``data``. ``grid``: start from this grid for the weights (e.g. a plan's), see
     :meth:`show_setting`. ``output``: an ``ipywidgets.Output`` that captures the progress of
     learning runs (default: the explorer's own).
@@ -92,11 +94,13 @@ class GridExplorer(SnapshotDisplay, ExplorerStatic, ExplorerControls, widgets.VB
         bits = check_bits(bits)
         if method not in METHODS:
             raise ValueError(f"method must be one of {', '.join(map(repr, METHODS))}; got {method!r}")
-        if noise is not None and noise_steps is not None:
-            raise TypeError("give noise_steps (or its alias noise), not both")
-        ns = DEFAULT_NOISE if noise is None and noise_steps is None else (
-            noise_steps if noise_steps is not None else noise)
-        ns = float(check_positive(ns, "noise"))
+        if noise is not None:  # the previous name of noise_steps (a fraction of the step)
+            if noise_steps is not None:
+                raise TypeError("give noise_steps only (noise is its deprecated name), not both")
+            warn_renamed("noise", "noise_steps (a fraction of the grid step)", "GridExplorer")
+            noise_steps = noise
+        ns = float(check_positive(DEFAULT_NOISE_STEPS if noise_steps is None else noise_steps,
+                                  "noise_steps"))
         temperature = float(check_positive(temperature, "temperature"))
         if not isinstance(per_channel, bool):
             raise TypeError(f"per_channel must be True or False, got {per_channel!r}")
@@ -147,7 +151,8 @@ class GridExplorer(SnapshotDisplay, ExplorerStatic, ExplorerControls, widgets.VB
 
     @property
     def noise(self) -> float:
-        """Alias of :attr:`noise_steps` (a fraction of the grid step, not a value)."""
+        """Deprecated: :attr:`noise_steps` (a fraction of the grid step, not a value)."""
+        warn_renamed("noise", "noise_steps (a fraction of the grid step)", "GridExplorer")
         return self.state.noise_steps
 
     @property
@@ -325,7 +330,7 @@ class GridExplorer(SnapshotDisplay, ExplorerStatic, ExplorerControls, widgets.VB
     def _redraw(self, rows: int | None = None) -> None:
         self._moving = rows is not None
         self._rows_shown = rows
-        with torch_threads(self.refresh_threads):
+        with threads(self.refresh_threads):
             self._place_view()
             layer = self.numbers.layer(self.state, rows) if self.subject.has_layer else None
             data = self.numbers.plot_data(self.state, self.figure.view, self._error_sample,

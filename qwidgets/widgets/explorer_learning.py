@@ -130,7 +130,7 @@ class LearnRunner:
 
         with ex.progress:
             return learn_grid(ex.subject.layer, ex.subject.inputs, self._start_grid,
-                              source=self._source, noise=max(ex.state.noise_steps, 0.02),
+                              source=self._source, noise_steps=max(ex.state.noise_steps, 0.02),
                               steps=steps, lr=lr, callback=callback, progress=False, **options)
 
     def _show_latest(self) -> None:

@@ -47,7 +47,7 @@ from .planner_text import (
     initial_budget,
     layers_html,
     plan_cost,
-    readout_html,
+    plan_readout_html,
     si_prefix,
 )
 
@@ -391,8 +391,8 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, PlannerTasks, widgets.VBox):
             self._predicted, measured_db=None if r is None else r.measured_sqnr_db,
             weight_bits=[p.layers[n].weight.bits if n in p.layers and p.layers[n].weight is not None
                          else None for n in self.table.layers],
-            input_bits=[p.input_bits.get(n) for n in self.table.layers])
-        self.readout.value = readout_html(
+            input_bits=[p.chosen_input_bits.get(n) for n in self.table.layers])
+        self.readout.value = plan_readout_html(
             p, r, kind=self.kind, budget=self._budget_value, also=self.limit.text(), predicted_db=self._predicted, edited=edited,
             metric=self.metric is not None, measured_on=self._measured_on(), dtype=self.dtype,
             coverage=str(self.table.coverage))

@@ -15,7 +15,7 @@ from ..planning.plan import Plan
 from ..planning.table import SensitivityTable
 
 __all__ = ["KIND_LABELS", "AXIS_LABELS", "budget_kind", "plan_cost", "nice_step", "si_prefix",
-           "fmt_cost", "readout_html", "layers_html", "initial_budget"]
+           "fmt_cost", "plan_readout_html", "layers_html", "initial_budget"]
 
 # the budget kinds are plan_budget's keywords and the Plan attributes of the same names
 KIND_LABELS = {"model_kib": "model_kib", "planned_kib": "planned_kib", "mean_bits": "mean_bits",
@@ -120,7 +120,7 @@ def _db(v: float | None) -> str:
     return "exact (no error)" if v == math.inf else f"{v:.2f} dB"
 
 
-def readout_html(plan: Plan, report: PlanReport | None, *, kind: str, budget: float, also: str = "",
+def plan_readout_html(plan: Plan, report: PlanReport | None, *, kind: str, budget: float, also: str = "",
                  predicted_db: float | None, edited: dict, metric: bool, measured_on: str,
                  dtype: str, coverage: str = "") -> str:
     """The planner's readout: budget, predicted and measured SQNR, costs, metric, model dtype.
