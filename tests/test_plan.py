@@ -73,7 +73,10 @@ def test_json_read_by_the_json_module_holds_the_plan_values():
     net, x = _net(), _data()
     plan = _plan(net, x)
     data = json.loads(plan.to_json())
-    assert data["format"] == "qwidgets plan" and data["version"] == 1
+    assert data["format"] == "qwidgets plan" and data["version"] == 2
+    # the figures under the names of the Plan attributes and budget keywords
+    assert data["figures"] == {"model_kib": plan.model_kib, "planned_kib": plan.planned_kib,
+                               "mean_bits": plan.mean_bits, "bops": plan.bops}
     assert list(data["layers"]) == ["0", "3", "5"]
     for name, setting in plan.layers.items():
         entry = data["layers"][name]
@@ -128,6 +131,19 @@ def test_costs_of_a_plan_counted_by_hand():
     assert sum(r["kib"] for r in rows) == plan.planned_kib and rows[2]["float_bops"] == 1200 * 32 * 32
 
 
+def test_a_version_1_plan_still_reads():
+    # version 1 (before "figures"): the same plan, read field by field as before
+    plan = _plan(_net(), _data())
+    data = json.loads(plan.to_json())
+    data["version"] = 1
+    del data["figures"]
+    back = Plan.from_json(json.dumps(data))
+    assert back.bits == plan.bits and back.to_json() == plan.to_json()  # written back as version 2
+    data["figures"] = json.loads(plan.to_json())["figures"]  # version 1 has no figures field
+    with pytest.raises(ValueError, match=r"unknown field\(s\) \['figures'\]"):
+        Plan.from_json(json.dumps(data))
+
+
 def _broken(text, fn):
     data = json.loads(text)
     fn(data)
@@ -140,7 +156,14 @@ def _bad_cases():
         ("not an object", lambda t: "[1, 2]", "the top level must be a JSON object"),
         ("missing field", lambda t: _broken(t, lambda d: d.pop("fingerprint")), r"missing field\(s\) \['fingerprint'\]"),
         ("extra field", lambda t: _broken(t, lambda d: d.update(note="x")), r"unknown field\(s\) \['note'\]"),
-        ("wrong version", lambda t: _broken(t, lambda d: d.update(version=2)), "version an integer \\(2\\) is not supported"),
+        ("wrong version", lambda t: _broken(t, lambda d: d.update(version=3)), "version an integer \\(3\\) is not supported"),
+        ("version 2 without figures", lambda t: _broken(t, lambda d: d.pop("figures")), r"missing field\(s\) \['figures'\]"),
+        ("figures edited", lambda t: _broken(t, lambda d: d["figures"].update(mean_bits=2.0)),
+         r"figures.mean_bits is 2.0 but the plan's layers give"),
+        ("figures a string", lambda t: _broken(t, lambda d: d["figures"].update(bops="9")),
+         r"figures.bops must be a number"),
+        ("figures unknown field", lambda t: _broken(t, lambda d: d["figures"].update(kib=1)),
+         r"figures has unknown field\(s\) \['kib'\]"),
         ("wrong format", lambda t: _broken(t, lambda d: d.update(format="other")), "format must be"),
         ("bad fingerprint", lambda t: _broken(t, lambda d: d.update(fingerprint="abc")), "fingerprint must be 64"),
         ("bits out of range", lambda t: _broken(t, lambda d: d["layers"]["3"]["weight"].update(bits=17)),

@@ -17,7 +17,7 @@ from ..core.setting import LayerSetting
 from .costs import FLOAT_BITS, layer_bops, weight_storage_bits
 from .fields import FieldError, NonFinite, grid_to_dict
 from .files import read_text, write_text
-from .schema import FORMAT, VERSION, plan_fields
+from .schema import FORMAT, VERSION, check_figures, plan_fields, plan_figures
 
 CAUTION = (
     "These figures are estimates on the data given: they screen a plan, they do not certify "
@@ -309,6 +309,7 @@ class Plan:
             "fingerprint": self.fingerprint,
             "predicted_sqnr_db": pred if pred is not None and math.isfinite(pred) else None,
             "assumed_input_bits": self.assumed_input_bits,
+            "figures": plan_figures(self),
             "layers": {
                 n: {
                     "bits": self.bits[n],
@@ -336,7 +337,11 @@ class Plan:
         except json.JSONDecodeError as e:
             raise ValueError(f"the plan is not valid JSON (truncated or damaged?): {e}") from None
         try:
-            return cls(**plan_fields(data))
+            fields = plan_fields(data)
+            figures = fields.pop("figures")
+            plan = cls(**fields)
+            check_figures(plan, figures)
+            return plan
         except FieldError as e:
             raise ValueError(f"invalid plan: {e}") from None
 

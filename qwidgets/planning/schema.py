@@ -1,11 +1,11 @@
 """The plan file's JSON schema (tables: table_schema.py; the field checks both use: fields.py).
 
 A plan is data, never code: it is written and read as JSON (no pickle), and reading checks
-every field. Its JSON layout (``version`` 1)::
+every field. Its JSON layout (``version`` 2)::
 
     {
       "format": "qwidgets plan",
-      "version": 1,
+      "version": 2,
       "fingerprint": "<sha256 of the model's ordered parameter names and shapes>",
       "predicted_sqnr_db": 31.4,            # or null; +inf is written as null too
       "assumed_input_bits": 8,              # input width used for BOPs where no input grid
@@ -24,11 +24,18 @@ every field. Its JSON layout (``version`` 1)::
           "weight_digest": "<16 hex digits>"  # optional: the planned weight's values (or null)
         }
       },
-      "other_weight_bits": 2656             # optional: the model's other float weights, bits
+      "other_weight_bits": 2656,            # optional: the model's other float weights, bits
+      "figures": {                          # the plan's figures under the Plan attributes'
+        "model_kib": 5.93,                  # names (the plan_budget keywords): null without
+        "planned_kib": 5.61,                # other_weight_bits; checked against the layers
+        "mean_bits": 3.36,                  # when read (relative 1e-9), so a file edited by
+        "bops": 1234567                     # hand cannot say one thing and hold another
+      }
     }
 
-Plans written before entries were recorded (no optional fields) are read as they are: their
-layers have inputs, no digest is checked and ``Plan.model_kib`` is None.
+Versions (each still reads): 1, without ``figures``; 2 added ``figures``. Plans written before
+entries were recorded (no optional fields) are read as they are: their layers have inputs, no
+digest is checked and ``Plan.model_kib`` is None.
 
 Per-channel grids (``axis`` set) hold one scale / offset / zero point per channel; a grid
 whose offset is not an integer multiple of its scale has ``"zero_point": null``.
@@ -53,7 +60,10 @@ from .fields import (
 )
 
 FORMAT = "qwidgets plan"
-VERSION = 1
+VERSION = 2  # 2 added "figures"; every change of the fields bumps it (CHANGELOG.md)
+READABLE = (1, 2)
+
+FIGURES = ("model_kib", "planned_kib", "mean_bits", "bops")  # Plan attributes, budget keywords
 
 
 _TOP = ("format", "version", "fingerprint", "predicted_sqnr_db", "assumed_input_bits", "layers")
@@ -69,14 +79,16 @@ _LAYER_OPTIONAL = ("kind", "has_input", "shared_with", "weight_digest")
 
 
 def plan_fields(data) -> dict:
-    """Check a plan's JSON data field by field; return the Plan constructor's arguments."""
-    check_fields(data, _TOP, "the top level", _TOP_OPTIONAL)
+    """Check a plan's JSON data field by field; return the Plan constructor's arguments (and,
+    from version 2, ``figures``: what the file states, for :func:`check_figures`)."""
+    version = data.get("version") if isinstance(data, dict) else None
+    if isinstance(data, dict) and "version" in data and (version not in READABLE or isinstance(version, bool)):
+        raise FieldError(f"version {kind_of(version)} is not supported; this qwidgets "
+                         f"reads versions {', '.join(map(str, READABLE))}")
+    check_fields(data, _TOP + ("figures",) if version == 2 else _TOP, "the top level", _TOP_OPTIONAL)
     if data["format"] != FORMAT:
         raise FieldError(f"format must be {FORMAT!r}, got {kind_of(data['format'])}")
-    version = data["version"]
-    if version != VERSION or isinstance(version, bool):
-        raise FieldError(f"version {kind_of(version)} is not supported; this qwidgets "
-                         f"reads version {VERSION}")
+    figures = _figures(data["figures"]) if version == 2 else None
     fp = fingerprint_field(data["fingerprint"])
     pred = data["predicted_sqnr_db"]
     pred = None if pred is None else number_field(pred, "predicted_sqnr_db")
@@ -117,7 +129,29 @@ def plan_fields(data) -> dict:
         bits[name], shapes[name], macs[name] = b, shape, m
     return dict(layers=layers, bits=bits, fingerprint=fp, weight_shapes=shapes, macs=macs,
                 assumed_input_bits=aib, predicted_sqnr_db=pred, entries=entries,
-                other_weight_bits=other)
+                other_weight_bits=other, figures=figures)
+
+
+def _figures(d) -> dict:
+    check_fields(d, FIGURES, "figures")
+    out = {k: number_field(d[k], f"figures.{k}") for k in FIGURES if d[k] is not None or k != "model_kib"}
+    return {"model_kib": None, **out}
+
+
+def plan_figures(plan) -> dict:
+    """The plan's figures as the file records them (under the Plan attributes' names)."""
+    return {k: getattr(plan, k) for k in FIGURES}
+
+
+def check_figures(plan, stated: dict | None) -> None:
+    """Refuse a file whose stated figures are not its layers' (edited by hand, say)."""
+    if stated is None:  # version 1
+        return
+    for k, v in plan_figures(plan).items():
+        s = stated[k]
+        if (v is None) != (s is None) or (v is not None and abs(v - s) > 1e-9 * max(abs(v), 1.0)):
+            raise FieldError(f"figures.{k} is {s!r} but the plan's layers give {v!r} (the file "
+                             "was changed by hand? fix or delete the figures)")
 
 
 def _entry_fields(entry: dict, where: str) -> dict:
