@@ -208,3 +208,43 @@ def test_every_public_function_and_class_is_defined_once():
                 where.setdefault(node.name, []).append(module)
     twice = {name: mods for name, mods in where.items() if len(mods) > 1}
     assert not twice, twice
+
+
+# Public callables still without full type hints; the files are being rewritten by other open
+# work (core grids, the explorer's state), which adds them. To be emptied, never extended.
+ALLOWED_UNTYPED = {
+    "DeviceRules.fit_options", "GridExplorer.__init__", "GridExplorer.learn",
+    "GridExplorer.save_figure", "GridExplorer.to_setting", "UniformGrid.__init__",
+    "UniformGrid.zero_point", "UniformGrid.replace", "bin_probabilities", "expected_quantize",
+    "relaxed_quantize",
+}
+
+
+def _untyped(fn) -> bool:
+    import inspect
+
+    sig = inspect.signature(fn)
+    params = [p for p in sig.parameters.values() if p.name not in ("self", "cls")]
+    no_return = sig.return_annotation is inspect.Signature.empty and fn.__name__ != "__init__"
+    return no_return or any(p.annotation is inspect.Parameter.empty for p in params)
+
+
+def test_every_public_function_and_method_has_type_hints():
+    import inspect
+
+    import qwidgets
+
+    untyped = set()
+    for name in qwidgets.__all__:
+        obj = getattr(qwidgets, name, None)
+        if inspect.isfunction(obj) and _untyped(obj):
+            untyped.add(name)
+        elif inspect.isclass(obj):
+            for attr, member in vars(obj).items():
+                if attr.startswith("_") and attr != "__init__":
+                    continue
+                fn = member.fget if isinstance(member, property) else getattr(member, "__func__", member)
+                if inspect.isfunction(fn) and _untyped(fn):
+                    untyped.add(f"{name}.{attr}")
+    assert untyped <= ALLOWED_UNTYPED, sorted(untyped - ALLOWED_UNTYPED)
+    assert not ALLOWED_UNTYPED - untyped, f"typed now, delete from ALLOWED_UNTYPED: {sorted(ALLOWED_UNTYPED - untyped)}"

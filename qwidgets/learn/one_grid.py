@@ -24,6 +24,7 @@ import warnings
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from numbers import Integral
+from typing import Any
 
 import torch
 
@@ -67,7 +68,7 @@ class LearnResult:
     start_stats: ErrorStats
 
     @property
-    def noise_width(self):
+    def noise_width(self) -> float | torch.Tensor:
         """The noise in the values' units (``noise_steps * scale``), as the core functions take it."""
         return self.noise_steps * self.grid.scale
 
@@ -99,7 +100,7 @@ def learn_grid(
     learn_offset: bool = True,
     seed: int = 0,
     callback: Callable[[int, UniformGrid, float, ErrorStats], object] | None = None,
-    noise=_NOT_GIVEN,
+    noise: Any = _NOT_GIVEN,
 ) -> LearnResult:
     """Learn ``grid``'s scale and offset and a noise width for one layer (relaxed quantization).
 

@@ -296,28 +296,6 @@ def coverage_of(model: nn.Module, scanned: Iterable[Entry], skipped_entries=()) 
     return Coverage(sum(e.numel for e in scanned), total, tuple(skipped), total_bits)
 
 
-def resolve_entries(model: nn.Module, names=None) -> list[Entry]:
-    """The entries named in ``names`` (None: all), with a clear error for unknown names."""
-    entries = find_entries(model)
-    if names is None:
-        if not entries:
-            kinds = sorted({type(m).__name__ for m in model.modules()})
-            raise ValueError(
-                "model has no quantizable weights (Linear, Conv, ConvTranspose, MultiheadAttention, "
-                f"LSTM / GRU / RNN, Embedding); it holds only {', '.join(kinds)}")
-        return entries
-    if isinstance(names, str):
-        names = [names]
-    by_name = {e.name: e for e in entries}
-    names = list(dict.fromkeys(names))
-    if not names:
-        raise ValueError("layers is empty; give None for every entry, or some names")
-    bad = [n for n in names if n not in by_name]
-    if bad:
-        raise ValueError(f"layers {bad} not found in the model; entries: {list(by_name)}")
-    return [by_name[n] for n in names]
-
-
 def weight_digest(t: torch.Tensor) -> str:
     """A short SHA-256 digest of a tensor's values (dtype, shape and bytes).
 

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass
 from typing import Any
 
@@ -31,7 +31,7 @@ from .sources import Data, batch_tensors, data_source
 
 def layer_error(
     layer: nn.Module,
-    inputs,
+    inputs: torch.Tensor | Iterable[torch.Tensor],
     weight_grid: UniformGrid | None = None,
     input_grid: UniformGrid | None = None,
     *,

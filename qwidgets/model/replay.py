@@ -94,14 +94,6 @@ class GraphReplay:
         self.values = env
         return out
 
-    def layer_inputs(self, name: str) -> list[torch.Tensor]:
-        """The first positional input of each call of layer ``name`` in the recorded pass."""
-        out = []
-        for node in self.layer_nodes.get(name, []):
-            x = fx.node.map_arg(node.args[0], self.values.__getitem__) if node.args else None
-            out.append(x)
-        return out
-
     def rerun(self, name: str, replace: Callable[[torch.Tensor], torch.Tensor]) -> object:
         """The output with each call of layer ``name`` computing ``replace(its input)`` instead.
 

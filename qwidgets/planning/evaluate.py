@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from collections.abc import Callable
 from dataclasses import dataclass
+from typing import Any
 
 from torch import nn
 
@@ -11,7 +12,7 @@ from ..core.metrics import ErrorStats
 from ..core.renamed import warn_renamed
 from ..model.outputs import OutputComparison, call_metric, check_output_fn, float_parts
 from ..model.running import run_with_hooks
-from ..model.sources import batch_size, batch_tensors, data_source
+from ..model.sources import Data, batch_size, batch_tensors, data_source
 from .apply import planned_copy
 from .bootstrap import check_confidence, concat, paired_drop_interval
 from .plan import CAUTION, Plan
@@ -107,8 +108,8 @@ class PlanReport:
         return "\n".join(lines)
 
 
-def evaluate_plan(model: nn.Module, data, plan: Plan, *, metric: Callable | None = None,
-                  target=None, strict: bool = True, output: Callable | None = None,
+def evaluate_plan(model: nn.Module, data: Data, plan: Plan, *, metric: Callable | None = None,
+                  target: Any = None, strict: bool = True, output: Callable | None = None,
                   max_samples: int | None = None, allow_other_weights: bool = False,
                   confidence: float | None = None, n_boot: int = 1000, seed: int = 0) -> PlanReport:
     """Run the float model and :func:`apply_plan`'s model on ``data`` and compare.

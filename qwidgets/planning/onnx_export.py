@@ -26,6 +26,7 @@ import io
 import os
 import warnings
 from numbers import Integral
+from typing import TYPE_CHECKING
 
 import numpy as np
 import torch
@@ -35,6 +36,9 @@ from ..core.grid import UniformGrid
 from ..core.rounding import to_codes
 from .apply import match_plan
 from .plan import Plan
+
+if TYPE_CHECKING:  # onnx is imported when a file is written, not with qwidgets
+    import onnx
 
 __all__ = ["export_onnx", "onnx_code_type"]
 
@@ -53,8 +57,9 @@ def onnx_code_type(grid: UniformGrid) -> str:
     return f"{'' if grid.signed else 'u'}int{width}"
 
 
-def export_onnx(model: nn.Module, plan: Plan, path: str | os.PathLike, example_inputs, *,
-                opset: int = 21):
+def export_onnx(model: nn.Module, plan: Plan, path: str | os.PathLike,
+                example_inputs: torch.Tensor | tuple[torch.Tensor, ...], *,
+                opset: int = 21) -> onnx.ModelProto:
     """Write ``model`` with ``plan`` applied as an ONNX file; return the ``onnx.ModelProto``.
 
     ``example_inputs``: a tensor or a tuple of tensors the model accepts (their first axis is

@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import math
 
-import numpy as np
 import torch
 import torch.nn.functional as F
 from torch import nn
@@ -18,12 +17,6 @@ from ..core.rounding import quantize_unchecked as _quantize
 from ..core.setting import LayerSetting
 from ..model import forward, layers, running
 from ..model import outputs as model_outputs
-
-
-def layer_scope(layer: nn.Module, x: torch.Tensor, configs) -> np.ndarray:
-    """Layer-output SQNR of each (weight grid, input grid) config, from the captured input."""
-    signal, noises = layer_scope_powers(layer, x, configs)
-    return np.array([db(signal, e) for e in noises])
 
 
 def layer_scope_powers(layer: nn.Module, x: torch.Tensor, configs) -> tuple[float, list[float]]:

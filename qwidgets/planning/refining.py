@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Iterable, Mapping
 from contextlib import contextmanager
 from dataclasses import dataclass, field, replace
 from numbers import Integral
@@ -27,6 +27,7 @@ from ..learn.optim import Adam
 from ..learn.whole_plan import LEARNABLE, SOURCES, PlanGrids
 from ..model.outputs import flat_output, iter_tensors
 from ..model.running import check_data, check_model
+from ..model.sources import Data
 from .apply import match_plan
 from .plan import Plan
 
@@ -71,7 +72,7 @@ class RefineResult:
 
 def refine_plan(
     model: nn.Module,
-    data,
+    data: Data,
     plan: Plan,
     *,
     steps: int = 200,
@@ -79,8 +80,8 @@ def refine_plan(
     loss: Callable[[Any, Any], torch.Tensor] | None = None,
     target: Any = None,
     batch_size: int = 64,
-    learn=LEARNABLE,
-    sources=SOURCES,
+    learn: Iterable[str] = LEARNABLE,
+    sources: Iterable[str] = SOURCES,
     progress: bool = True,
     seed: int = 0,
     callback: Callable[[int, RefineResult], object] | None = None,

@@ -41,7 +41,7 @@ from ..core.ranges import METHODS, fit_ranges
 from ..model import outputs, running
 from ..model.batching import cut_batches
 from ..model.entries import call_inputs, coverage_of, find_entries, weight_digest
-from ..model.sources import data_source
+from ..model.sources import Data, data_source
 from .device_checks import scan_bits
 from .distribute import merge_shares, worker_count
 from .model_scope import model_scope as _model_scope
@@ -58,7 +58,7 @@ from .table_schema import ESTIMATES, QUANTIZE_MODES, SCOPES
 from .threads import fastest_threads, threads, torch_threads
 
 
-def scan(model: nn.Module, data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8), *, quantize: str = "weight",
+def scan(model: nn.Module, data: Data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8), *, quantize: str = "weight",
          method: str = "mse", per_channel: bool = True, scope: str = "both",
          max_samples: int | None = None, progress: bool = True,
          output: Callable | None = None, estimate: str = "exact",

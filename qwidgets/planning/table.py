@@ -9,6 +9,7 @@ from collections.abc import Mapping, Sequence
 from typing import Any
 
 import numpy as np
+from numpy.typing import ArrayLike
 
 from ..core.checks import check_bits
 from ..core.grid import UniformGrid
@@ -190,7 +191,7 @@ class SensitivityTable:
         v = self._info[self.layers[self._row(layer)]].get("stored_bits")
         return int(v) if v is not None else 32 * self.params(layer)
 
-    def unplanned_bits(self, planned=None) -> int:
+    def unplanned_bits(self, planned: Sequence[str] | None = None) -> int:
         """Storage in bits, at their stored width, of the model's floating-point weights outside
         ``planned`` (default: every entry of the table), from :attr:`coverage`.
 
@@ -379,15 +380,14 @@ class SensitivityTable:
 
     # ------------------------------------------------------------------ synthetic
     @classmethod
-    def synthetic(cls, model_sqnr_db, *, params: Sequence[int], bits: Sequence[int],
-                  input_sqnr_db=None, input_bits: Sequence[int] = (), macs: Sequence[int] | None = None,
+    def synthetic(cls, model_sqnr_db: ArrayLike, *, params: Sequence[int], bits: Sequence[int],
+                  input_sqnr_db: ArrayLike | None = None, input_bits: Sequence[int] = (), macs: Sequence[int] | None = None,
                   names: Sequence[str] | None = None) -> SensitivityTable:
         """A table from given model-scope SQNRs (for planning experiments, tests and benchmarks).
 
         ``model_sqnr_db``: (entries x bits) weight rows. With ``input_sqnr_db`` (entries x
-        input_bits; a row of NaN: an entry with no input rows) the table is a
-        ``quantize="separate"`` one. Each entry gets a ``(params, 1)`` weight with per-tensor
-        grids of scale 1, and input grids of scale 1.
+        input_bits; a row of NaN: an entry with no input rows) the table is a ``"separate"``
+        one. Each entry gets a ``(params, 1)`` weight; every grid is per tensor, of scale 1.
 
         >>> t = SensitivityTable.synthetic([[10.0, 30.0]], params=[100], bits=(4, 8),
         ...                                input_sqnr_db=[[25.0, 35.0]], input_bits=(6, 8))

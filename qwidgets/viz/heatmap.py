@@ -13,7 +13,9 @@ from collections.abc import Sequence
 
 import numpy as np
 from matplotlib import colormaps
+from matplotlib.axes import Axes
 from matplotlib.colors import to_hex
+from matplotlib.figure import Figure
 
 from ..planning.table import SensitivityTable
 from ..planning.table_html import fmt_db, how_measured
@@ -124,7 +126,7 @@ def sqnr_table_html(table: SensitivityTable, scope: str, vmin: float | None = No
             + "".join(body) + "</table></div>")
 
 
-def plot_sensitivity(table: SensitivityTable, scope: str = "model", ax=None):
+def plot_sensitivity(table: SensitivityTable, scope: str = "model", ax: Axes | None = None) -> Figure:
     """A heatmap of a table's SQNR (dB), layers x bit widths, values written in the cells.
 
     Returns the matplotlib Figure (a new one, made without pyplot, unless ``ax`` is given).

@@ -15,7 +15,7 @@ from __future__ import annotations
 
 import ipywidgets as widgets
 
-from ..core.checks import check_bits, check_positive
+from ..core.checks import check_bits, check_bool, check_choice, check_positive
 from ..core.device_rules import DeviceRules, check_rules
 from ..core.grid import UniformGrid, grid_params
 from ..core.metrics import ErrorStats, GridUsage
@@ -92,8 +92,7 @@ class GridExplorer(SnapshotDisplay, ExplorerStatic, ExplorerControls, widgets.VB
                  rules: DeviceRules | None = None):
         super().__init__()
         bits = check_bits(bits)
-        if method not in METHODS:
-            raise ValueError(f"method must be one of {', '.join(map(repr, METHODS))}; got {method!r}")
+        check_choice(method, METHODS, "method")
         if noise is not None:  # the previous name of noise_steps (a fraction of the step)
             if noise_steps is not None:
                 raise TypeError("give noise_steps only (noise is its deprecated name), not both")
@@ -102,16 +101,14 @@ class GridExplorer(SnapshotDisplay, ExplorerStatic, ExplorerControls, widgets.VB
         ns = float(check_positive(DEFAULT_NOISE_STEPS if noise_steps is None else noise_steps,
                                   "noise_steps"))
         temperature = float(check_positive(temperature, "temperature"))
-        if not isinstance(per_channel, bool):
-            raise TypeError(f"per_channel must be True or False, got {per_channel!r}")
+        check_bool(per_channel, "per_channel")
         if output is not None and not isinstance(output, widgets.Output):
             raise TypeError(f"output must be an ipywidgets.Output or None, got {type(output).__name__}")
         self.subject = ExplorerSubject(obj, data, layer, max_samples)
         sources = self.subject.sources
         if source is None:
             source = sources[0]
-        if source not in sources:
-            raise ValueError(f"source must be one of {sources} here, got {source!r}")
+        check_choice(source, sources, "source")
         self.state = ExplorerState(self.subject.values, source, method=method, noise_steps=ns,
                                    temperature=temperature, rules=check_rules(rules))
         self.state.start(bits, per_channel)

@@ -14,15 +14,17 @@ from __future__ import annotations
 import html
 import math
 import os
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from typing import Any
 
 import ipywidgets as widgets
 import torch
 from torch import nn
 
+from ..core.checks import check_choice
 from ..core.device_rules import DeviceRules, check_rules
 from ..core.renamed import take_renamed
+from ..model.sources import Data
 from ..planning.costs import COSTS
 from ..planning.evaluate import PlanReport, evaluate_plan
 from ..planning.plan import CAUTION, Plan
@@ -98,9 +100,9 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, PlannerTasks, widgets.VBox):
     True
     """
 
-    def __init__(self, model: nn.Module, data, *, metric: Callable | None = None, target=None,
-                 eval_data=None, eval_target=None, table: SensitivityTable | None = None,
-                 bits=(2, 3, 4, 5, 6, 8), quantize: str = "weight", method: str = "mse",
+    def __init__(self, model: nn.Module, data: Data, *, metric: Callable | None = None, target: Any = None,
+                 eval_data: Data = None, eval_target: Any = None, table: SensitivityTable | None = None,
+                 bits: Sequence[int] = (2, 3, 4, 5, 6, 8), quantize: str = "weight", method: str = "mse",
                  per_channel: bool = True, assumed_input_bits: int | None = 8, max_samples: int | None = None,
                  output: Callable | None = None, progress: bool = True, width: int = 760,
                  rules: DeviceRules | None = None, estimate: str = "exact", batch_size: int | None = None,
@@ -237,9 +239,7 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, PlannerTasks, widgets.VBox):
 
     def _set_kind(self, kind: str, initial: bool = False) -> None:
         """Switch the budget kind; the current plan is kept and the budget becomes its cost."""
-        kind = budget_kind(kind)
-        if kind not in COSTS:
-            raise ValueError(f"kind must be one of {COSTS}, got {kind!r}")
+        kind = check_choice(budget_kind(kind), COSTS, "kind")
         if kind == self.kind and not initial:
             return
         self.kind = kind
@@ -357,7 +357,7 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, PlannerTasks, widgets.VBox):
         return "the held-out data" if self.eval_data is not None else "the scan's data"
 
     # ------------------------------------------------------------------ files
-    def save(self, path, overwrite: bool | None = None) -> str:
+    def save(self, path: str | os.PathLike, overwrite: bool | None = None) -> str:
         """Write the current plan's JSON; returns the path written.
 
         An existing file is replaced only with ``overwrite`` (default: the "overwrite" box);

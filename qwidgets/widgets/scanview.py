@@ -10,11 +10,15 @@ from __future__ import annotations
 
 import html
 import os
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
+from typing import TYPE_CHECKING
 
 import ipywidgets as widgets
 from torch import nn
 
+from ..core.checks import check_choice
+from ..model.sources import Data
+from ..planning.plan import Plan
 from ..planning.scanning import scan
 from ..planning.table import SensitivityTable
 from ..planning.table_html import how_measured
@@ -24,6 +28,9 @@ from .display_snapshot import SnapshotDisplay
 from .events import MessageLine
 from .fold_note import batchnorm_note
 from .image_canvas import PlotCanvas
+
+if TYPE_CHECKING:
+    from .planner import BudgetPlanner
 
 __all__ = ["ScanView"]
 
@@ -60,7 +67,8 @@ class ScanView(SnapshotDisplay, widgets.VBox):
     (4, ('2', 4))
     """
 
-    def __init__(self, obj, data=None, *, model: nn.Module | None = None, bits=(2, 3, 4, 5, 6, 8),
+    def __init__(self, obj: nn.Module | SensitivityTable, data: Data = None, *,
+                 model: nn.Module | None = None, bits: Sequence[int] = (2, 3, 4, 5, 6, 8),
                  quantize: str = "weight", method: str = "mse", per_channel: bool = True,
                  scope: str = "both", max_samples: int | None = None, output: Callable | None = None,
                  progress: bool = True, width: int = 720, estimate: str = "exact",
@@ -159,8 +167,7 @@ class ScanView(SnapshotDisplay, widgets.VBox):
     # ------------------------------------------------------------------ actions
     def set_scope(self, scope: str) -> ScanView:
         """Show the model-output or the layer-output SQNR (whichever the table holds)."""
-        if scope not in self.table.scopes:
-            raise ValueError(f"scope must be one of {list(self.table.scopes)} for this table, got {scope!r}")
+        check_choice(scope, self.table.scopes, "scope")  # the scopes this table holds
         self._scope = scope
         if self.controls["scope"].value != scope:
             self.controls["scope"].value = scope
@@ -201,7 +208,7 @@ class ScanView(SnapshotDisplay, widgets.VBox):
         self.message.info(f"{layer} at {bits} bits: {_summary(t, layer, bits)}")
         return self
 
-    def link_planner(self, planner) -> ScanView:
+    def link_planner(self, planner: BudgetPlanner) -> ScanView:
         """Let "use grid in plan" put the open explorer's grid into ``planner``'s plan; the
         planner's own "use explorer's grid" button then takes this view's open explorer too."""
         from .planner import BudgetPlanner
@@ -215,7 +222,7 @@ class ScanView(SnapshotDisplay, widgets.VBox):
         b.tooltip = "put the explorer's grid into the linked planner's plan"
         return self
 
-    def use_grid(self):
+    def use_grid(self) -> Plan:
         """Put the open explorer's grid into the linked planner's plan (see
         :meth:`BudgetPlanner.use_grid`); returns the planner's new plan."""
         if self.planner is None:
