@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import pytest
 import torch
+from naive_loops import naive_sqnr_db
 from torch import nn
 
 from qwidgets import BudgetPlanner, evaluate_plan, metric_curve
@@ -37,7 +38,9 @@ def test_refine_button_takes_the_refined_plan_and_measures_it(setup):
     p.controls["refine"].click()  # no running event loop here: the work runs in this thread
     res = p.refined
     assert res is not None and res.steps_run == 40
-    assert res.sqnr_db >= res.start_sqnr_db  # refine_plan's contract: never worse than the start
+    # refine_plan's contract, never worse than the start, by the reference loop (within its
+    # 1e-6 dB agreement with refine_plan's own measurement, tests/test_refine.py)
+    assert naive_sqnr_db(net, x, res.plan) >= naive_sqnr_db(net, x, start) - 1e-6
     assert p.plan is res.plan and p.plan.bits == start.bits
     # the chosen point's measurement is the refined plan's, as evaluate_plan gives it (reference)
     ref = evaluate_plan(net, held, res.plan, metric=_accuracy, target=held_y)

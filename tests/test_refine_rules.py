@@ -7,6 +7,7 @@ import math
 
 import pytest
 import torch
+from naive_loops import naive_sqnr_db
 from torch import nn
 
 from qwidgets import DeviceRules, refine_plan, scan
@@ -34,7 +35,9 @@ def test_refined_grids_obey_the_rules(rules):
     net, x = _net()
     plan = _plan(net, x, rules)
     res = refine_plan(net, x, plan, steps=20, batch_size=32, progress=False, rules=rules)
-    assert res.sqnr_db >= res.start_sqnr_db  # never worse than the start (the contract)
+    # never worse than the start (the contract), both measured by the reference loop; its
+    # figures and refine_plan's agree within 1e-6 dB (tests/test_refine.py)
+    assert naive_sqnr_db(net, x, res.plan) >= naive_sqnr_db(net, x, plan) - 1e-6
     for name, s in res.plan.layers.items():
         for role, g in (("weight", s.weight), ("input", s.input)):
             if g is None:
