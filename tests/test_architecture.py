@@ -248,3 +248,23 @@ def test_every_public_function_and_method_has_type_hints():
                     untyped.add(f"{name}.{attr}")
     assert untyped <= ALLOWED_UNTYPED, sorted(untyped - ALLOWED_UNTYPED)
     assert not ALLOWED_UNTYPED - untyped, f"typed now, delete from ALLOWED_UNTYPED: {sorted(ALLOWED_UNTYPED - untyped)}"
+
+
+def test_contributing_map_names_every_module_and_test():
+    # CONTRIBUTING.md's map of where each module's tests live is the test layout's contract
+    import re
+
+    root = PACKAGE.parent
+    rows = [line for line in (root / "CONTRIBUTING.md").read_text().splitlines()
+            if line.startswith("| ") and "---" not in line and "Modules" not in line]
+    mapped_modules, mapped_tests = set(), set()
+    for row in rows:
+        left, right = row.strip("|").split("|")[:2]
+        mapped_modules |= set(re.findall(r"`([\w/]+\.py)`", left))
+        mapped_tests |= set(re.findall(r"`(test_\w+\.py)`", right))
+    modules = {str(p.relative_to(PACKAGE)) for p in PACKAGE.rglob("*.py") if p.name != "__init__.py"}
+    tests = {p.name for p in (root / "tests").glob("test_*.py")}
+    assert modules - mapped_modules == set(), "modules missing from CONTRIBUTING.md's map"
+    assert mapped_modules - modules == set(), "CONTRIBUTING.md maps modules that do not exist"
+    assert tests - mapped_tests == set(), "test files missing from CONTRIBUTING.md's map"
+    assert mapped_tests - tests == set(), "CONTRIBUTING.md names test files that do not exist"
