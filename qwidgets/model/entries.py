@@ -9,19 +9,24 @@ module                      entry name                             axis   inputs
 Linear, Conv1d/2d/3d        ``<path>``                             0      yes (*)
 ConvTranspose1d/2d/3d       ``<path>``                             1      yes (*)
 MultiheadAttention          ``<path>.in_proj`` (query, key, value)  0      yes (**)
-                            ``<path>.out_proj``                    0      no
+                            ``<path>.out_proj``                    0      the context
                             (``.q_proj/.k_proj/.v_proj`` when the
                             projections are separate: each its own
                             input)
+                            ``<path>.query/.key/.value/.probs``    -      activations
 LSTM, GRU, RNN              ``<path>.<parameter name>``            0      no
                             (e.g. ``rnn.weight_hh_l0_reverse``)
 Embedding, EmbeddingBag     ``<path>`` (one grid per row)          0      no
 ==========================  =====================================  =====  ==========
 
 (*) when the module runs as a module with a tensor input on the data; a Linear whose weight
-its parent uses directly (``nn.TransformerEncoderLayer``'s fast path in eval mode) is a
-weight-only entry. (**) the attention module's query / key / value arguments, when it runs as
-a module; its output projection's input is internal to the attention (weight only).
+its parent uses directly is a weight-only entry. (**) the attention module's query / key /
+value arguments, when it runs as a module. The context entering ``out_proj`` and the
+attention's activations (projected query / key / value, probabilities: kind
+``"activation"``, no weight) are reached by taps (:mod:`qwidgets.model.taps`: the attention is
+written out step by step when they are quantized), as are the entries found on data by
+:mod:`qwidgets.model.usage` (weights used through ``F.linear`` / ``matmul`` / ``addmm`` / ...
+in modules of other types, and ``F.scaled_dot_product_attention``'s operands).
 
 Tied weights (one tensor used by several modules, e.g. a language model's embedding and output
 layer) make one entry, named after its first owner in registration order; ``shared_with`` lists
@@ -41,7 +46,7 @@ from torch import nn
 
 from .layers import is_quantizable, weight_axis
 
-KINDS = ("layer", "attention", "recurrent", "embedding")
+KINDS = ("layer", "attention", "recurrent", "embedding", "product", "activation")
 
 _RECURRENT = (nn.RNNBase,)
 
@@ -61,7 +66,9 @@ class Entry:
     ``type_name``: what the table shows; ``shape``; ``shared_with``: other places that use the
     same tensor; ``input_args``: the owner's call arguments that are the entry's inputs (a
     layer's first argument; an attention projection's query / key / value), empty for
-    weight-only entries.
+    weight-only entries; ``via``: ``"tap"`` for inputs reached by taps (activations, the
+    context of ``out_proj``, entries found by use), else ``"module"``. An activation
+    (``kind="activation"``) has no weight: ``param`` is empty, ``shape`` is ``()``.
 
     >>> from torch import nn
     >>> [e.name for e in find_entries(nn.Sequential(nn.Embedding(10, 4), nn.LSTM(4, 3)))]
@@ -78,13 +85,17 @@ class Entry:
     shape: tuple
     shared_with: tuple = field(default=())
     input_args: tuple = field(default=())
+    via: str = "module"  # "module": inputs by hooks on the owner; "tap": by taps (model.taps)
 
     @property
     def numel(self) -> int:
-        return math.prod(self.shape)
+        """Weight values (none for an activation)."""
+        return 0 if self.kind == "activation" else math.prod(self.shape)
 
     def parameter(self, model: nn.Module) -> torch.Tensor:
         """The entry's parameter in ``model`` (the same object wherever it is used)."""
+        if self.kind == "activation":
+            raise ValueError(f"{self.name!r} is an activation; it has no weight")
         return model.get_parameter(self.param)
 
 
@@ -124,6 +135,14 @@ class Coverage:
 
 
 _ATTENTION_ARGS = ("query", "key", "value")  # nn.MultiheadAttention.forward's first three
+
+
+ACTIVATION_ROLES = ("query", "key", "value", "probs")  # an attention's planned activations
+
+
+def tapped(entry: Entry) -> bool:
+    """Whether ``entry``'s input is reached by taps (not by hooks on its owner module)."""
+    return entry.via == "tap" or entry.kind == "activation" or entry.input_args == ("context",)
 
 
 def call_inputs(entry: Entry, args: tuple, kwargs: dict) -> list:
@@ -170,10 +189,12 @@ def _join(path: str, attr: str) -> str:
 
 def _candidates(model: nn.Module):
     """(name, kind, module path, attribute, axis, runs_as_module, type name) in registration order."""
-    attention_out = set()
+    from .attention import supported
+
+    attention_out = {}
     for path, m in model.named_modules():
         if isinstance(m, nn.MultiheadAttention):
-            attention_out.add(_join(path, "out_proj"))
+            attention_out[_join(path, "out_proj")] = supported(m)
     for path, m in model.named_modules():
         if isinstance(m, nn.MultiheadAttention):
             if m.in_proj_weight is not None:
@@ -183,8 +204,14 @@ def _candidates(model: nn.Module):
                 for k, arg in zip(("q", "k", "v"), _ATTENTION_ARGS, strict=True):
                     yield _join(path, f"{k}_proj"), "attention", path, f"{k}_proj_weight", 0, False, \
                         f"MultiheadAttention.{k}_proj", (arg,)
+            if supported(m):  # the written-out attention's activations
+                for role in ACTIVATION_ROLES:
+                    yield _join(path, role), "activation", path, None, 0, False, \
+                        f"MultiheadAttention.{role}", (role,)
         elif path in attention_out and isinstance(m, nn.Linear):
-            yield path, "attention", path, "weight", 0, False, "MultiheadAttention.out_proj", ()
+            tapped = attention_out[path]
+            yield path, "attention", path, "weight", 0, False, "MultiheadAttention.out_proj", \
+                ("context",) if tapped else ()
         elif isinstance(m, _RECURRENT):
             for attr in m._flat_weights_names:
                 if attr.startswith("weight"):
@@ -217,7 +244,12 @@ def find_entries(model: nn.Module) -> list[Entry]:
         raise TypeError(f"model must be a torch.nn.Module, got {type(model).__name__}")
     by_tensor: dict[int, dict] = {}
     order: list[int] = []
+    activations = []
     for name, kind, path, attr, axis, runs, type_name, input_args in _candidates(model):
+        if kind == "activation":
+            activations.append(Entry(name, kind, path, "", axis, runs, type_name, (),
+                                     input_args=input_args, via="tap"))
+            continue
         owner = model.get_submodule(path) if path else model
         p = getattr(owner, attr, None)
         # a registered parameter only: a weight computed from others (parametrizations, weight
@@ -230,7 +262,8 @@ def find_entries(model: nn.Module) -> list[Entry]:
             continue
         by_tensor[key] = dict(name=name, kind=kind, module=path, param=_join(path, attr), axis=axis,
                               runs_as_module=runs, type_name=type_name, shape=tuple(p.shape),
-                              input_args=input_args, shared=[])
+                              input_args=input_args, shared=[],
+                              via="tap" if input_args == ("context",) else "module")
         order.append(key)
     # other registered names of the same tensors (a parameter assigned to a second module)
     claimed = {d["param"] for d in by_tensor.values()}
@@ -248,7 +281,7 @@ def find_entries(model: nn.Module) -> list[Entry]:
         d = by_tensor[key]
         shared = tuple(d.pop("shared"))
         entries.append(Entry(**d, shared_with=shared))
-    return entries
+    return entries + activations
 
 
 def model_weight_values(model: nn.Module) -> dict[str, torch.Tensor]:
