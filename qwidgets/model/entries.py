@@ -116,14 +116,18 @@ class Coverage:
     total: int
     skipped: tuple = ()
     total_bits: int = 0
+    float_activations: tuple = ()  # activations left in float (residual additions, norms, ...)
 
     @property
     def fraction(self) -> float:
         return self.scanned / self.total if self.total else 1.0
 
     def to_dict(self) -> dict:
-        return {"scanned": self.scanned, "total": self.total,
-                "skipped": [[n, r] for n, r in self.skipped], "total_bits": self.total_bits}
+        d = {"scanned": self.scanned, "total": self.total,
+             "skipped": [[n, r] for n, r in self.skipped], "total_bits": self.total_bits}
+        if self.float_activations:
+            d["float_activations"] = list(self.float_activations)
+        return d
 
     def __str__(self) -> str:
         s = f"{self.scanned:,} of {self.total:,} weight values scanned ({100 * self.fraction:.1f}%)"
@@ -131,6 +135,10 @@ class Coverage:
             shown = ", ".join(f"{n} ({r})" for n, r in self.skipped[:6])
             more = f", ... ({len(self.skipped) - 6} more)" if len(self.skipped) > 6 else ""
             s += f"; {len(self.skipped)} parameter(s) not scanned: {shown}{more}"
+        if self.float_activations:
+            shown = "; ".join(self.float_activations[:4])
+            more = f"; ... ({len(self.float_activations) - 4} more)" if len(self.float_activations) > 4 else ""
+            s += f"; activations left in float: {shown}{more}"
         return s
 
 
@@ -307,8 +315,11 @@ def skip_reason(model: nn.Module, pname: str) -> str:
     return f"a parameter of a {kind}, a module type qwidgets does not quantize"
 
 
-def coverage_of(model: nn.Module, scanned: Iterable[Entry], skipped_entries=()) -> Coverage:
-    """:class:`Coverage` of ``scanned`` entries; ``skipped_entries`` are (Entry, reason) pairs.
+def coverage_of(model: nn.Module, scanned: Iterable[Entry], skipped_entries=(), *, notes=None,
+                float_activations=()) -> Coverage:
+    """:class:`Coverage` of ``scanned`` entries; ``skipped_entries`` are (Entry, reason) pairs;
+    ``notes``: parameter name -> reason, for parameters that are no entry; ``float_activations``:
+    descriptions of the activations left in float.
 
     >>> from torch import nn
     >>> net = nn.Sequential(nn.Linear(4, 3), nn.LayerNorm(3))
@@ -318,7 +329,8 @@ def coverage_of(model: nn.Module, scanned: Iterable[Entry], skipped_entries=()) 
     """
     scanned = list(scanned)
     done = {e.param for e in scanned}
-    entry_reason = {e.param: r for e, r in skipped_entries}
+    entry_reason = dict(notes or {})
+    entry_reason.update({e.param: r for e, r in skipped_entries if e.param})
     total, total_bits, skipped = 0, 0, []
     for pname, p in model_weight_values(model).items():
         total += p.numel()
@@ -326,7 +338,8 @@ def coverage_of(model: nn.Module, scanned: Iterable[Entry], skipped_entries=()) 
         if pname in done:
             continue
         skipped.append((pname, entry_reason.get(pname) or skip_reason(model, pname)))
-    return Coverage(sum(e.numel for e in scanned), total, tuple(skipped), total_bits)
+    return Coverage(sum(e.numel for e in scanned), total, tuple(skipped), total_bits,
+                    tuple(float_activations))
 
 
 def weight_digest(t: torch.Tensor) -> str:

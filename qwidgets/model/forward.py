@@ -15,7 +15,7 @@ from ..core.metrics import ErrorStats, error_stats
 from ..core.renamed import warn_renamed
 from ..core.rounding import quantize, quantize_unchecked
 from ..core.setting import LayerSetting
-from .entries import Entry, call_inputs, find_entries, replace_inputs
+from .entries import Entry, call_inputs, find_entries, replace_inputs, tapped
 from .layers import (
     LayerInputError,
     check_layer,
@@ -27,6 +27,8 @@ from .layers import (
 from .outputs import OutputComparison, call_metric, check_output_fn, float_parts
 from .running import check_model, run_with_hooks
 from .sources import Data, batch_tensors, data_source
+from .tap_quantize import QuantizeTap, tapped_inputs
+from .usage import entries_named
 
 
 def layer_error(
@@ -242,7 +244,7 @@ def quantized_weights(model: nn.Module, settings: Mapping[Entry, LayerSetting]) 
     params = {}
     with torch.no_grad():
         for e, s in settings.items():
-            if s.weight is not None:
+            if s.weight is not None and e.kind != "activation":
                 w = e.parameter(model).detach()
                 grid_params(w, s.weight)  # per-channel size check, clear message
                 params[e.param] = quantize(w, s.weight)
@@ -266,7 +268,7 @@ def quantized_call(model: nn.Module, batch, settings: Mapping[Entry, LayerSettin
     checked = {id(t) for _, t in batch_tensors(batch)}
     by_module: dict[int, list] = {}
     for e, s in settings.items():
-        if s.input is not None:
+        if s.input is not None and not tapped(e):
             owner = model.get_submodule(e.module) if e.module else model
             by_module.setdefault(id(owner), [owner]).append((e, s.input))
     ran: list[str] = []
@@ -290,8 +292,18 @@ def quantized_call(model: nn.Module, batch, settings: Mapping[Entry, LayerSettin
         return args, kwargs
 
     hooks = {items[0]: pre for items in by_module.values()}
-    out = run_with_hooks(model, batch, hooks, pre=True, params=params)
+    through_taps = tapped_inputs(settings)
+    if through_taps:
+        from .taps import tapping
+
+        tap = QuantizeTap(through_taps, check=not inputs_checked, checked=checked)
+        with tapping(model, tap):
+            out = run_with_hooks(model, batch, hooks, pre=True, params=params)
+        ran.extend(n for n in tap.ran if n not in ran)
+    else:
+        out = run_with_hooks(model, batch, hooks, pre=True, params=params)
     missing = [e.name for items in by_module.values() for e, _ in items[1:] if e.name not in ran]
+    missing += [e.name for e in through_taps if e.name not in ran]
     if missing:
         raise ValueError(f"layer(s) {missing} did not run during the forward pass on this data, so "
                          "their inputs cannot be quantized (a module whose weight is used directly "
@@ -305,6 +317,7 @@ def check_settings(model: nn.Module, settings) -> dict:
     if not isinstance(settings, Mapping):
         raise TypeError(f"settings must be a mapping from entry name to LayerSetting, got {type(settings).__name__}")
     entries = {e.name: e for e in find_entries(model)}
+    entries.update(entries_named(model, [n for n in settings if isinstance(n, str) and n not in entries]))
     out = {}
     for name, s in settings.items():
         if not isinstance(name, str) or name not in entries:
@@ -316,6 +329,9 @@ def check_settings(model: nn.Module, settings) -> dict:
         if s.input is not None and not e.input_args:
             raise ValueError(f"settings[{name!r}] has an input grid, but {name!r} is a weight-only "
                              f"entry ({e.type_name}): its input cannot be quantized separately")
+        if s.weight is not None and e.kind == "activation":
+            raise ValueError(f"settings[{name!r}] has a weight grid, but {name!r} is an activation "
+                             f"({e.type_name}): give it an input grid only")
         if not s.is_empty:
             out[e] = s
     return out

@@ -10,7 +10,10 @@ from torch import nn
 
 from ..core.grid import UniformGrid
 from ..core.rounding import quantize, quantize_unchecked, to_codes
-from ..model.entries import find_entries, replace_inputs, weight_digest
+from ..model.entries import find_entries, replace_inputs, tapped, weight_digest
+from ..model.tap_quantize import QuantizeTap
+from ..model.taps import attach
+from ..model.usage import entries_named
 from .plan import Plan, model_fingerprint
 
 
@@ -33,6 +36,7 @@ def match_plan(model: nn.Module, plan: Plan, strict: bool, allow_other_weights: 
         raise TypeError(f"allow_other_weights must be True or False, got {allow_other_weights!r}")
 
     entries = {e.name: e for e in find_entries(model)}
+    entries.update(entries_named(model, [n for n in plan.layers if n not in entries]))
     modules = dict(model.named_modules())
     found, skipped = {}, []
     for name in plan.layers:
@@ -41,7 +45,9 @@ def match_plan(model: nn.Module, plan: Plan, strict: bool, allow_other_weights: 
             m = modules.get(name)
             why = "not in the model" if m is None else f"a {type(m).__name__}, not a quantizable weight"
             skipped.append(f"{name!r} ({why})")
-        elif e.shape != plan.weight_shapes[name]:
+        elif e.kind == "activation" and plan.layers[name].weight is not None:
+            skipped.append(f"{name!r} (a weight grid for an activation, {e.type_name})")
+        elif e.kind != "activation" and e.shape != plan.weight_shapes[name]:
             skipped.append(f"{name!r} (weight shape {e.shape} in the model, "
                            f"{plan.weight_shapes[name]} in the plan)")
         elif plan.layers[name].input is not None and not e.input_args:
@@ -63,6 +69,8 @@ def match_plan(model: nn.Module, plan: Plan, strict: bool, allow_other_weights: 
         raise ValueError(f"no planned layer matches the model by name and shape: {', '.join(skipped)}")
     if not allow_other_weights:
         for name, e in found.items():
+            if e.kind == "activation":
+                continue
             want = plan.weight_digest(name)
             if want is not None and weight_digest(e.parameter(model)) != want:
                 raise ValueError(
@@ -131,16 +139,21 @@ def planned_copy(model: nn.Module, plan: Plan, *, strict: bool, allow_other_weig
     """
     found, skipped = match_plan(model, plan, strict, allow_other_weights)
     new = copy.deepcopy(model)
+    through_taps = {}
     with torch.no_grad():
         for name, e in found.items():
             setting = plan.layers[name]
             if setting.weight is not None:
                 w = e.parameter(new)  # the copy keeps tied parameters tied
                 w.copy_(quantize(w.detach(), setting.weight))
-            if setting.input is not None:
+            if setting.input is not None and tapped(e):
+                through_taps[e] = setting.input
+            elif setting.input is not None:
                 owner = new.get_submodule(e.module) if e.module else new
                 owner.register_forward_pre_hook(_QuantizeInput(e, setting.input, checked),
                                                 with_kwargs=True)
+    if through_taps:  # attention activations, out_proj's context, inputs of weights found by use
+        attach(new, QuantizeTap(through_taps, checked=checked))
     new.qwidgets_applied = tuple(found)
     new.qwidgets_skipped = tuple(skipped)
     return new, skipped

@@ -167,7 +167,7 @@ def model_scope_noise(model, batch, entry, configs, ref_parts, *, stackable: boo
         except _NotStackable:
             pass
     out = []
-    w = entry.parameter(model).detach()
+    w = None if entry.kind == "activation" else entry.parameter(model).detach()
     for wg, ig in configs:
         params = {} if wg is None else {entry.param: _quantize(w, wg)}
         q, _ = forward.quantized_call(model, batch, {entry: LayerSetting(weight=wg, input=ig)},

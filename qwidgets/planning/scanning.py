@@ -40,8 +40,10 @@ from ..core.device_rules import DeviceRules, check_rules
 from ..core.ranges import METHODS, fit_ranges
 from ..model import outputs, running
 from ..model.batching import cut_batches
-from ..model.entries import call_inputs, coverage_of, find_entries, weight_digest
+from ..model.entries import call_inputs, coverage_of, tapped, weight_digest
 from ..model.sources import Data, data_source
+from ..model.taps import fastpath_off, tapping
+from ..model.usage import entries_on
 from .device_checks import scan_bits
 from .distribute import merge_shares, worker_count
 from .model_scope import model_scope as _model_scope
@@ -55,6 +57,7 @@ from .plan import model_fingerprint
 from .survey import survey
 from .table import SensitivityTable
 from .table_schema import ESTIMATES, QUANTIZE_MODES, SCOPES
+from .tap_scope import TapScope
 from .threads import fastest_threads, threads, torch_threads
 
 
@@ -169,23 +172,45 @@ class NoInputEntries(ValueError):
 
 
 def _join_sides(weights: dict, inputs: dict | None, ibits: tuple) -> dict:
-    """One "separate" table from a weight scan and an input scan of the same model and data."""
-    names = weights["layers"]
+    """One "separate" table from a weight scan and an input scan of the same model and data
+    (activations, which have no weight, come from the input scan alone, in execution order)."""
+    names = _merged(weights["layers"], [] if inputs is None else inputs["layers"])
     pos = {} if inputs is None else {n: j for j, n in enumerate(inputs["layers"])}
+    wpos = {n: j for j, n in enumerate(weights["layers"])}
 
-    def rows(key):
-        if weights[key] is None:
+    def rows(side, key, width):
+        if side is None or side[key] is None:
             return None
-        arr = np.full((len(names), len(ibits)), np.nan)
+        at = wpos if side is weights else pos
+        arr = np.full((len(names), width), np.nan)
         for r, name in enumerate(names):
-            if name in pos:
-                arr[r] = inputs[key][pos[name]]
+            if name in at:
+                arr[r] = side[key][at[name]]
         return arr
 
     out = dict(weights)
-    out.update(quantize="separate", input_bits=ibits, input_layer_sqnr=rows("layer_sqnr"),
-               input_model_sqnr=rows("model_sqnr"),
+    nb = len(weights["bits"])
+    out.update(layers=names, layer_sqnr=rows(weights, "layer_sqnr", nb),
+               model_sqnr=rows(weights, "model_sqnr", nb),
+               info={n: weights["info"][n] if n in wpos else inputs["info"][n] for n in names},
+               weight_grids={n: weights["weight_grids"].get(n) for n in names})
+    out.update(quantize="separate", input_bits=ibits,
+               input_layer_sqnr=rows(inputs, "layer_sqnr", len(ibits)),
+               input_model_sqnr=rows(inputs, "model_sqnr", len(ibits)),
                input_grids={n: (list(inputs["input_grids"][n]) if n in pos else None) for n in names})
+    return out
+
+
+def _merged(first: list, second: list) -> list:
+    """``first`` with the names only ``second`` holds inserted after their predecessor there."""
+    out = list(first)
+    known = set(out)
+    for j, n in enumerate(second):
+        if n in known:
+            continue
+        prev = next((second[i] for i in range(j - 1, -1, -1) if second[i] in known), None)
+        out.insert(0 if prev is None else out.index(prev) + 1, n)
+        known.add(n)
     return out
 
 
@@ -202,19 +227,24 @@ _SHARE_LOCK = threading.Lock()
 
 
 def _run_scan(model, data, options: dict, progress: bool, share) -> dict:
+    source = data_source(model, cut_batches(data, options["batch_size"]), options["max_samples"])
+    first = source.first_batch()
+    with fastpath_off():  # every pass computes what the tool's taps see (fast path or not)
+        entries, usage = entries_on(model, first)
+        if not entries:
+            raise ValueError(running.no_layers_message(model))
+        return _scan_entries(model, source, first, entries, usage, options, progress, share)
+
+
+def _scan_entries(model, source, first, entries, usage, options, progress, share) -> dict:
     bits, quantize, method = options["bits"], options["quantize"], options["method"]
-    per_channel, scope, max_samples = options["per_channel"], options["scope"], options["max_samples"]
-    estimate, batch_size, output = options["estimate"], options["batch_size"], options["output"]
+    per_channel, scope = options["per_channel"], options["scope"]
+    estimate, output = options["estimate"], options["output"]
     rules = options["rules"]
-    source = data_source(model, cut_batches(data, batch_size), max_samples)
-    entries = find_entries(model)
-    if not entries:
-        raise ValueError(running.no_layers_message(model))
     qw, qi = quantize in ("weight", "both"), quantize in ("input", "both")
     # the passes run on the faster of one thread and torch's setting, timed on a float forward;
     # the survey records the reference outputs on the same threads (a replayed suffix must
     # reproduce them bit for bit, and thread counts can change a kernel's rounding)
-    first = source.first_batch()
     n_threads = fastest_threads(lambda: running.run_with_hooks(model, first, {}, pre=False))
     with threads(n_threads):
         found = survey(model, source, entries, want_inputs=qi, keep_refs=scope != "layer",
@@ -226,6 +256,11 @@ def _run_scan(model, data, options: dict, progress: bool, share) -> dict:
         if qi and not qw and not f.has_input:
             skipped.append((f.entry, f"{f.entry.type_name} weight-only entry; quantize='input' "
                                      "scans layer inputs only"))
+        elif not qi and f.entry.kind == "activation":
+            skipped.append((f.entry, f"an activation ({f.entry.type_name}); quantize='weight' "
+                                     "scans weights only"))
+        elif f.entry.kind == "activation" and not f.has_input:
+            skipped.append((f.entry, "an activation that was not computed on this data"))
         else:
             facts.append(f)
     if not facts:
@@ -239,10 +274,11 @@ def _run_scan(model, data, options: dict, progress: bool, share) -> dict:
     with torch_threads("fit"):  # many small operations: one thread (see threads.py)
         for f in facts:
             e = f.entry
-            w = e.parameter(model).detach()
+            act = e.kind == "activation"
+            w = None if act else e.parameter(model).detach()
             # one sort of the weight serves every bit width (the same grids as fitting each alone)
             wg = fit_ranges(w, bits, method, axis=e.axis if per_channel else None,
-                            rules=rules) if qw else None
+                            rules=rules) if (qw and not act) else None
             ig = [f.inputs.fit(b, method, rules=rules, role="input") for b in bits] \
                 if (qi and f.has_input) else None
             wgrids[e.name] = wg
@@ -253,14 +289,18 @@ def _run_scan(model, data, options: dict, progress: bool, share) -> dict:
                             "macs": int(f.macs), "model_pass": "-", "kind": e.kind, "axis": e.axis,
                             "param": e.param, "has_input": bool(f.has_input),
                             "shared_with": list(e.shared_with),
-                            "stored_bits": e.numel * w.element_size() * 8, "digest": weight_digest(w)}
+                            "stored_bits": 0 if act else e.numel * w.element_size() * 8,
+                            "digest": None if act else weight_digest(w)}
+            if act:
+                info[e.name]["partner"] = f.partner
     with threads(n_threads):
         layer_sq = _layer_scope(model, source, facts, configs) if scope != "model" else None
         model_sq = None
         if scope != "layer":
             model_sq = _model_scope(model, source, found, facts, configs, len(bits), info,
                                     estimate=estimate, output=output, progress=progress, share=share)
-    cov = coverage_of(model, [f.entry for f in facts], skipped)
+    cov = coverage_of(model, [f.entry for f in facts], skipped, notes=usage.unusable,
+                      float_activations=usage.float_activations)
     return dict(layers=names, bits=bits, quantize=quantize, method=method,
                 per_channel=per_channel, fingerprint=model_fingerprint(model), info=info,
                 layer_sqnr=layer_sq, model_sqnr=model_sq,
@@ -275,9 +315,12 @@ def _layer_scope(model, source, facts, configs) -> np.ndarray:
     signal = {f.entry.name: 0.0 for f in facts}
     noise = {f.entry.name: np.zeros(len(configs[f.entry.name])) for f in facts}
     with_input: dict = {}  # owner module -> entries measured from its inputs
+    through_taps = []  # entries measured by taps
     for f in facts:
         e = f.entry
-        if f.has_input:
+        if f.has_input and tapped(e):
+            through_taps.append(e)
+        elif f.has_input:
             with_input.setdefault(model.get_submodule(e.module) if e.module else model, []).append(e)
         else:
             s, n = weight_scope_powers(e.parameter(model).detach(), configs[e.name])
@@ -295,7 +338,12 @@ def _layer_scope(model, source, facts, configs) -> np.ndarray:
             signal[e.name] += s
             noise[e.name] += np.asarray(n)
 
-    if with_input:
+    if through_taps:
+        tap = TapScope(model, through_taps, configs, signal, noise)
+        for batch in source:
+            with tapping(model, tap):
+                running.run_with_hooks(model, batch, {m: measure for m in with_input}, pre=True)
+    elif with_input:
         for batch in source:
             running.run_with_hooks(model, batch, {m: measure for m in with_input}, pre=True)
     return np.array([[db(signal[f.entry.name], v) for v in noise[f.entry.name]] for f in facts])

@@ -20,9 +20,64 @@ from torch import nn
 
 from ..core.checks import finite_check
 from ..model import layers, outputs, running
-from ..model.entries import Entry, call_inputs
+from ..model.entries import Entry, call_inputs, tapped
 from ..model.sources import DataSource, batch_size, batch_tensors
 from ..model.statistics import RangeSample
+from ..model.taps import Tap, tapping
+
+
+class TapSurvey(Tap):
+    """The survey's taps: order, shapes, multiply-accumulates and input samples of the entries
+    reached by taps; the model's own output is kept (the attention is only observed)."""
+
+    keep_output = True
+
+    def __init__(self, facts, entries, first_call, first_batch, checked, want_inputs, inputs_checked):
+        self.facts, self.first_call, self.first_batch = facts, first_call, first_batch
+        self.checked, self.want, self.inputs_checked = checked, want_inputs, inputs_checked
+        self.products = {e.name: e.param for e in entries if e.kind == "product"}
+        self.paths = {e.module if e.kind == "activation" else e.name.rpartition(".")[0]
+                      for e in entries if e.kind != "product"}
+
+    def attention(self, path):
+        return path in self.paths
+
+    def parameters(self, named):
+        return {id(named[p]): name for name, p in self.products.items() if p in named}
+
+    def activation(self, name, t):
+        self._seen(name, t)
+        return t
+
+    def operand(self, name, x, w, param, recompute, axis):
+        f = self._seen(name, x)
+        if f is not None and self.first_batch[0]:
+            f.macs += int(recompute.macs(x, w))
+        return x
+
+    def product(self, a, b, macs):
+        if not self.first_batch[0]:
+            return
+        for me, other in ((a, b), (b, a)):
+            f = self.facts.get(me) if me is not None else None
+            if f is not None and f.entry.kind == "activation":
+                f.macs += int(macs)
+                f.partner = other
+
+    def _seen(self, name, t):
+        f = self.facts.get(name)
+        if f is None:
+            return None
+        self.first_call.setdefault(("tap", name), len(self.first_call))
+        if t.is_floating_point() and id(t) not in self.checked and not self.inputs_checked:
+            finite_check(t, f"the input of {name!r}", layers.LayerInputError)
+        f.has_input = True
+        if self.first_batch[0] and f.input_shape is None:
+            f.input_shape = tuple(t.shape[1:])
+        if self.want:
+            f.inputs = f.inputs or RangeSample()
+            f.inputs.add(t.detach())
+        return f
 
 
 @dataclass
@@ -35,6 +90,7 @@ class EntryFacts:
     macs: int = 0
     shared_macs: int = 0  # of the layers that use a tied entry's tensor at other places
     inputs: RangeSample | None = None
+    partner: str | None = None  # an activation: the other operand of its product (None: float)
 
 
 @dataclass
@@ -54,7 +110,7 @@ def survey(model: nn.Module, source: DataSource, entries: list[Entry], *, want_i
     facts = {e.name: EntryFacts(e) for e in entries}
     layer_of: dict[int, list] = {}  # owner id -> facts of the entries whose inputs it receives
     for e in entries:
-        if e.input_args:
+        if e.input_args and not tapped(e):
             layer_of.setdefault(id(modules[e.module]), []).append(facts[e.name])
     shared_of: dict[int, list] = {}  # a tied place's module id -> facts of the entry it uses
     for e in entries:
@@ -98,10 +154,17 @@ def survey(model: nn.Module, source: DataSource, entries: list[Entry], *, want_i
     hooks = {m: pre for m in modules.values()}
     n_first = 1
     checked: set[int] = set()  # ids of this batch's tensors (alive while it runs)
+    taps = [e for e in entries if tapped(e)]
+    tap = TapSurvey(facts, taps, first_call, first_batch, checked, want_inputs, inputs_checked) \
+        if taps else None
     for batch in source:
         checked.clear()
         checked.update(id(t) for _, t in batch_tensors(batch))
-        out = running.run_with_hooks(model, batch, hooks, pre=True)
+        if tap is None:
+            out = running.run_with_hooks(model, batch, hooks, pre=True)
+        else:
+            with tapping(model, tap):
+                out = running.run_with_hooks(model, batch, hooks, pre=True)
         parts = outputs.float_parts(out, "float", output)
         result.reference.add_reference(parts)
         if keep_refs:
@@ -115,7 +178,9 @@ def survey(model: nn.Module, source: DataSource, entries: list[Entry], *, want_i
         f = facts[e.name]
         owner = modules[e.module]
         key = id(owner)
-        if key in first_call:
+        if ("tap", e.name) in first_call and e.kind in ("activation", "product"):
+            f.ran, f.order = True, (first_call[("tap", e.name)], reg)
+        elif key in first_call:
             f.ran, f.order = True, (first_call[key], reg)
         elif e.runs_as_module or e.kind == "attention":
             parent = _ran_parent(e.module, modules, first_call)
@@ -127,7 +192,9 @@ def survey(model: nn.Module, source: DataSource, entries: list[Entry], *, want_i
         f.has_input = f.has_input and bool(e.input_args)
         if not f.has_input:
             f.input_shape = None
-        if e.kind != "layer" or not f.has_input:
+        if e.kind in ("activation", "product"):
+            pass  # counted by the taps
+        elif e.kind != "layer" or not f.has_input:
             f.macs = _weight_only_macs(e, modules, first_call, call_shapes)
         f.macs = (f.macs + f.shared_macs) // n_first  # per sample
         result.facts.append(f)

@@ -66,7 +66,8 @@ class SensitivityTable:
             "model": None if model_sqnr is None else np.asarray(model_sqnr, dtype=float).copy(),
         }
         self._grids = {
-            "weight": None if weight_grids is None else {n: list(weight_grids[n]) for n in self.layers},
+            "weight": None if weight_grids is None else {
+                n: None if weight_grids.get(n) is None else list(weight_grids[n]) for n in self.layers},
             "input": None if input_grids is None else {
                 n: None if input_grids.get(n) is None else list(input_grids[n]) for n in self.layers},
         }
@@ -152,7 +153,9 @@ class SensitivityTable:
         return float(arr[self._row(layer), self._col(bits, source)])
 
     def params(self, layer: str) -> int:
-        """Number of weights of ``layer`` (bias not counted)."""
+        """Number of weights of ``layer`` (bias not counted; none for an activation)."""
+        if self.kind(layer) == "activation":
+            return 0
         return math.prod(self._info[self.layers[self._row(layer)]]["weight_shape"])
 
     def weight_shape(self, layer: str) -> tuple[int, ...]:
@@ -165,6 +168,8 @@ class SensitivityTable:
     def weight_channels(self, layer: str) -> int:
         """Channels of the weight grids (one scale and zero point each): output channels
         (embedding rows) per channel, else 1."""
+        if self.kind(layer) == "activation":
+            return 0
         return self.weight_shape(layer)[self.weight_axis(layer)] if self.per_channel else 1
 
     def has_input(self, layer: str) -> bool:
@@ -207,8 +212,13 @@ class SensitivityTable:
         return self._info[self.layers[self._row(layer)]].get("digest")
 
     def kind(self, layer: str) -> str:
-        """``"layer"``, ``"attention"``, ``"recurrent"`` or ``"embedding"``."""
+        """``"layer"``, ``"attention"``, ``"recurrent"``, ``"embedding"``, ``"product"`` (a weight
+        found by use) or ``"activation"`` (no weight: an input width only)."""
         return self._info[self.layers[self._row(layer)]].get("kind", "layer")
+
+    def partner(self, layer: str) -> str | None:
+        """An activation's partner: the other operand of its product (None: a float operand)."""
+        return self._info[self.layers[self._row(layer)]].get("partner")
 
     def macs(self, layer: str) -> int:
         """Multiply-accumulates of ``layer`` per sample (from the shapes captured in the scan)."""
@@ -224,7 +234,9 @@ class SensitivityTable:
     def weight_grid(self, layer: str, bits: int) -> UniformGrid | None:
         """The weight grid fitted for ``layer`` at ``bits`` (None if weights were not scanned)."""
         g = self._grids["weight"]
-        return None if g is None else g[self.layers[self._row(layer)]][self._col(bits)]
+        if g is None or g[self.layers[self._row(layer)]] is None:
+            return None
+        return g[self.layers[self._row(layer)]][self._col(bits)]
 
     def input_grid(self, layer: str, bits: int) -> UniformGrid | None:
         """The input grid fitted for ``layer`` at ``bits`` (an input width of
@@ -312,6 +324,8 @@ class SensitivityTable:
         if d is None:
             d = {"kind": self.kind(name), "has_input": self.has_input(name),
                  "shared_with": self.shared_with(name), "weight_digest": self.weight_digest(name)}
+            if self.kind(name) == "activation":
+                d["partner"] = self.partner(name)
             self._settings[key] = d
         return d
 
@@ -331,8 +345,10 @@ class SensitivityTable:
         key = (name, b, ib)
         s = self._settings.get(key)
         if s is None:
-            if self.quantize == "input":
+            if self.quantize == "input" or (self.kind(name) == "activation" and self.quantize == "both"):
                 s = LayerSetting(input=self.input_grid(name, self.bits[self._col(b)]))
+            elif self.kind(name) == "activation":
+                s = LayerSetting(input=self.input_grid(name, b if ib is None else ib))
             else:
                 w = self.weight_grid(name, self.bits[self._col(b)])
                 x = None if ib is None else self.input_grid(name, ib)

@@ -211,11 +211,17 @@ def _coverage_from_json(c):
 
     if c is None:
         return None
-    if not isinstance(c, dict) or set(c) != {"scanned", "total", "skipped", "total_bits"}:
-        raise FieldError("coverage must be an object with fields scanned, total, skipped, total_bits")
+    if not isinstance(c, dict) or not {"scanned", "total", "skipped", "total_bits"} <= set(c) <= {
+            "scanned", "total", "skipped", "total_bits", "float_activations"}:
+        raise FieldError("coverage must be an object with fields scanned, total, skipped, total_bits "
+                         "(and optionally float_activations)")
+    floats = c.get("float_activations", [])
+    if not isinstance(floats, list) or not all(isinstance(v, str) for v in floats):
+        raise FieldError("coverage.float_activations must be a list of strings")
     skipped = c["skipped"]
     if not isinstance(skipped, list) or not all(
             isinstance(v, list) and len(v) == 2 and all(isinstance(x, str) for x in v) for v in skipped):
         raise FieldError("coverage.skipped must be a list of [parameter name, reason] pairs")
     return Coverage(int_field(c["scanned"], "coverage.scanned", 0), int_field(c["total"], "coverage.total", 0),
-                    tuple((a, b) for a, b in skipped), int_field(c["total_bits"], "coverage.total_bits", 0))
+                    tuple((a, b) for a, b in skipped), int_field(c["total_bits"], "coverage.total_bits", 0),
+                    tuple(floats))
