@@ -46,19 +46,63 @@ class Menu:
     assumed_input_bits: int | None  # input width BOPs count where the input stays float
 
     def costs(self, table: SensitivityTable, cost: str) -> list:
-        """Integer cost of every option of every entry (list of int64 arrays)."""
+        """Integer cost of every option of every entry (list of int64 arrays); the products of
+        two planned activations are in :meth:`pair_costs` instead."""
         out = []
+        paired = {n for i, j, _ in self.pairs(table) for n in (self.names[i], self.names[j])}
         for name, opts in zip(self.names, self.options, strict=True):
             p, ch, macs = table.params(name), table.weight_channels(name), table.macs(name)
+            act = table.kind(name) == "activation"
             row = []
             for wb, ib in opts:
                 if cost in ("model_kib", "planned_kib"):  # model_kib: + the unplanned weights
                     row.append(weight_storage_bits(p, wb, ch))
                 elif cost == "mean_bits":
                     row.append(p * (FLOAT_BITS if wb is None else wb))
+                elif act:  # its product with a float operand (counted at the assumed width)
+                    row.append(0 if name in paired else layer_bops(macs, ib, self.assumed_input_bits))
                 else:
                     row.append(layer_bops(macs, wb, self.assumed_input_bits if ib is None else ib))
             out.append(np.array(row, dtype=np.int64))
+        return out
+
+    def pairs(self, table: SensitivityTable) -> list:
+        """``(i, j, macs)``: attention's products whose operands are both planned activations
+        (entries ``i`` and ``j``, ``i < j``), each once."""
+        at = {n: i for i, n in enumerate(self.names)}
+        out = []
+        for i, name in enumerate(self.names):
+            if table.kind(name) == "activation":
+                j = at.get(table.partner(name))
+                if j is not None and i < j:
+                    out.append((i, j, table.macs(name)))
+        return out
+
+    def pair_costs(self, table: SensitivityTable, cost: str) -> list:
+        """``(i, j, matrix)`` for each of :meth:`pairs`: the BOPs ``MACs x a x b`` of every
+        (option of i, option of j), exact integers; empty for costs other than BOPs."""
+        if cost != "bops":
+            return []
+        out = []
+        for i, j, macs in self.pairs(table):
+            a = np.array([ib for _, ib in self.options[i]], dtype=np.int64)
+            b = np.array([ib for _, ib in self.options[j]], dtype=np.int64)
+            out.append((i, j, int(macs) * np.outer(a, b)))
+        return out
+
+    def pair_shares(self, table: SensitivityTable, cost: str) -> list:
+        """``(i, j, share of i, share of j)``: each product's BOPs split between its operands for
+        the Pareto front's dynamic programme, which needs additive costs: ``MACs x a x b`` is
+        costed ``ceil(MACs x a^2 / 2) + ceil(MACs x b^2 / 2)``, at least the exact figure
+        (``ab <= (a^2 + b^2) / 2``) and equal to it when both widths match, so a point's plan
+        never costs more than the front's bound; the front reports each plan's exact BOPs."""
+        if cost != "bops":
+            return []
+        out = []
+        for i, j, macs in self.pairs(table):
+            a = np.array([ib for _, ib in self.options[i]], dtype=np.int64)
+            b = np.array([ib for _, ib in self.options[j]], dtype=np.int64)
+            out.append((i, j, -(-int(macs) * a * a // 2), -(-int(macs) * b * b // 2)))
         return out
 
 
@@ -198,8 +242,9 @@ def _menus(table) -> tuple[tuple, tuple]:
 def _pin(table, name: str, value) -> tuple:
     """``fixed[name]`` as (weight bits, input bits), None where not pinned."""
     where = f"fixed[{name!r}]"
+    act = table.kind(name) == "activation"
     if isinstance(value, Integral) and not isinstance(value, bool):
-        pw, pi = (None, int(value)) if table.quantize == "input" else (int(value), None)
+        pw, pi = (None, int(value)) if (table.quantize == "input" or act) else (int(value), None)
     elif isinstance(value, tuple) and len(value) == 2 and all(
             isinstance(b, Integral) and not isinstance(b, bool) for b in value):
         pw, pi = int(value[0]), int(value[1])
@@ -207,6 +252,10 @@ def _pin(table, name: str, value) -> tuple:
         raise TypeError(f"{where} must be a width (int) or a (weight bits, input bits) pair of ints, "
                         f"got {value!r}")
     w_all, i_all = _menus(table)
+    if act and pw is not None:
+        raise ValueError(f"{where}: {name!r} is an activation (no weight); pin its width as one int")
+    if act and table.quantize == "both":
+        i_all = table.bits
     if pw is not None and pw not in w_all:
         raise ValueError(f"{where}: weight width {pw} is not among the table's weight widths {list(w_all)}")
     if pi is not None and pi not in i_all:
@@ -215,7 +264,7 @@ def _pin(table, name: str, value) -> tuple:
     if table.quantize == "both" and pw is not None and pi is not None and pw != pi:
         raise ValueError(f"{where}: a table scanned with quantize='both' uses one width for weights "
                          f"and input, got {value!r}")
-    if table.quantize == "both":
+    if table.quantize == "both" and not act:
         pw = pi = pw if pw is not None else pi
     if pi is not None and not has_input_rows(table, name):
         raise ValueError(f"{where}: {name!r} has no input rows; pin its weight width only")
@@ -231,6 +280,8 @@ def has_input_rows(table, name: str) -> bool:
 
 def _all_options(table, name: str) -> list:
     q, bits = table.quantize, table.bits
+    if table.kind(name) == "activation":  # no weight: an input width only
+        return [(None, b) for b in (table.input_bits if q == "separate" else bits)]
     if q == "weight":
         return [(b, None) for b in bits]
     if q == "input":
@@ -271,7 +322,10 @@ def build_menu(table, *, fixed=None, allowed_bits=None, assumed_input_bits: int 
             raise ValueError(f"no option is left for {name!r} after fixed and allowed_bits")
         n = []
         for wb, ib in opts:
-            v = float(main[r, col[ib if q == "input" else wb]])
+            if wb is None and q == "separate":
+                v = 0.0  # an activation: its input rows only
+            else:
+                v = float(main[r, col[ib if wb is None else wb]])
             if q == "separate" and ib is not None:
                 v += float(extra[r, i_col[ib]])
             n.append(v)

@@ -187,7 +187,8 @@ def evaluate_plan(model: nn.Module, data: Data, plan: Plan, *, metric: Callable 
     sub = Plan({n: plan.layers[n] for n in plan.layers if n in applied},
                {n: plan.bits[n] for n in plan.layers if n in applied}, fingerprint=plan.fingerprint,
                weight_shapes=plan.weight_shapes, macs=plan.macs,
-               assumed_input_bits=plan.assumed_input_bits)
+               assumed_input_bits=plan.assumed_input_bits,
+               entries={n: plan.entries[n] for n in plan.layers if n in applied and plan.entries})
     return PlanReport(
         measured_sqnr_db=stats.sqnr_db,
         predicted_sqnr_db=plan.predicted_sqnr_db,

@@ -184,7 +184,12 @@ class Plan:
 
     # ------------------------------------------------------------------ costs
     def _params(self, name: str) -> int:
+        if self._activation(name):
+            return 0
         return math.prod(self.weight_shapes[name])
+
+    def _activation(self, name: str) -> bool:
+        return (self.entries or {}).get(name, {}).get("kind") == "activation"
 
     def _channels(self, name: str) -> int:
         g = self.layers[name].weight
@@ -235,6 +240,8 @@ class Plan:
         """Mean bits per weight of the planned entries (codes only; float weights count 32);
         what ``plan_budget(mean_bits=...)`` limits."""
         total = sum(self._params(n) for n in self.layers)
+        if total == 0:
+            return 0.0
         return sum(self._params(n) * (self._weight_bits(n) or FLOAT_BITS) for n in self.layers) / total
 
     # the previous release's names (one release, each warns once)
@@ -259,14 +266,32 @@ class Plan:
     @property
     def bops(self) -> int:
         """Bit operations per sample: sum of MACs x weight bits x input bits, each entry with
-        its own input width (``assumed_input_bits`` where its input stays float); what
-        ``plan_budget(bops=...)`` limits."""
-        return sum(layer_bops(self.macs[n], self._weight_bits(n), self._input_bits(n)) for n in self.layers)
+        its own input width (``assumed_input_bits`` where its input stays float); attention's
+        products of two activations count MACs x the two activations' widths, once per pair;
+        what ``plan_budget(bops=...)`` limits."""
+        return sum(self._bops(n) for n in self.layers)
 
     @property
     def float_bops(self) -> int:
         """Bit operations per sample of the same layers in float32."""
-        return sum(layer_bops(self.macs[n], None, None) for n in self.layers)
+        return sum(self._bops(n, float_=True) for n in self.layers)
+
+    def _bops(self, n: str, float_: bool = False) -> int:
+        if not self._activation(n):
+            if float_:
+                return layer_bops(self.macs[n], None, None)
+            return layer_bops(self.macs[n], self._weight_bits(n), self._input_bits(n))
+        partner = self.entries[n].get("partner")
+        if partner in self.layers and self._activation(partner):
+            order = list(self.layers)
+            if order.index(partner) < order.index(n):
+                return 0  # counted with its partner
+            if float_:
+                return layer_bops(self.macs[n], None, None)
+            return layer_bops(self.macs[n], self._input_bits(n), self._input_bits(partner))
+        if float_:
+            return layer_bops(self.macs[n], None, None)
+        return layer_bops(self.macs[n], self._input_bits(n), self.assumed_input_bits)
 
     def to_rows(self) -> list[dict]:
         """One dict per layer: bits, weight storage (bits, KiB) and BOPs, with float32 figures.
@@ -286,8 +311,7 @@ class Plan:
                 "storage_bits": stored,
                 "kib": stored / 8192,
                 "float_kib": FLOAT_BITS * self._params(n) / 8192,
-                "bops": layer_bops(self.macs[n], self._weight_bits(n), self._input_bits(n)),
-                "float_bops": layer_bops(self.macs[n], None, None),
+                "bops": self._bops(n), "float_bops": self._bops(n, float_=True),
             })
         return rows
 

@@ -88,22 +88,25 @@ def plan_budget(table: SensitivityTable, *, model_kib: float | None = None,
     allowed_bits = rules_allowed_bits(table, rules, allowed_bits, assumed_input_bits)
     menu = build_menu(table, fixed=fixed, allowed_bits=allowed_bits, assumed_input_bits=assumed_input_bits)
     costs = {k: menu.costs(table, k) for k in budgets}
+    pairs = {k: menu.pair_costs(table, k) for k in budgets}  # attention's products (BOPs)
     other = {k: table.unplanned_bits() if k == "model_kib" else 0
              for k in budgets}  # exact integers: bits of the weights the table does not plan
     limits = {k: limit(k, v, table) - other[k] for k, v in budgets.items()}
     for k, v in budgets.items():  # each budget alone
-        need = sum(int(c.min()) for c in costs[k])
+        need = sum(int(c.min()) for c in costs[k]) + sum(int(m.min()) for _, _, m in pairs[k])
         if need > limits[k]:
             rest = (f"; the model's other weights take {other[k] / 8192:.4f} KiB at their stored width "
                     "(planned_kib budgets the planned entries only)") if other[k] else ""
             raise ValueError(f"{k}={v:g} is infeasible; the smallest feasible budget is "
                              f"{k}={ceil_unit(need + other[k], k, table)} (every entry at its cheapest "
                              f"option{rest})")
-    choice = solve(menu.noise, [costs[k] for k in budgets], [limits[k] for k in budgets])
+    choice = solve(menu.noise, [costs[k] for k in budgets], [limits[k] for k in budgets],
+                   pairs=_pair_rows(pairs, list(budgets)))
     if choice is None:  # each budget alone can be met, together they cannot
         k = next(iter(budgets))
         others = [j for j in budgets if j != k]
-        need = least_cost(costs[k], [costs[j] for j in others], [limits[j] for j in others]) + other[k]
+        need = least_cost(costs[k], [costs[j] for j in others], [limits[j] for j in others],
+                          pairs=_pair_rows(pairs, [k] + others)) + other[k]
         held = " and ".join(f"{j}={budgets[j]:g}" for j in others)
         raise ValueError(f"{k}={budgets[k]:g} is infeasible together with {held}; with {held} the "
                          f"smallest feasible budget is {k}={ceil_unit(need, k, table)}")
@@ -142,14 +145,29 @@ def pareto_front(table: SensitivityTable, cost: str = "model_kib", *,
     check_int(max_points, "max_points", minimum=2, none_ok=True)
     allowed_bits = rules_allowed_bits(table, rules, allowed_bits, assumed_input_bits)
     menu = build_menu(table, fixed=fixed, allowed_bits=allowed_bits, assumed_input_bits=assumed_input_bits)
-    front_c, _, choices = front(menu.costs(table, cost), menu.noise)
+    costs = menu.costs(table, cost)
+    pairs = menu.pair_costs(table, cost)
+    for i, j, share_i, share_j in menu.pair_shares(table, cost):  # an additive bound of the products
+        costs[i] = costs[i] + share_i
+        costs[j] = costs[j] + share_j
+    front_c, _, choices = front(costs, menu.noise)
     if cost == "model_kib":
         front_c = front_c + table.unplanned_bits()  # exact integers: bits of the other weights
     out = []
     for j in thin(front_c, max_points):
         plan = make_plan(table, menu, choices[j])
-        out.append((in_unit(int(front_c[j]), cost, table), plan.predicted_sqnr_db, plan))
+        c = plan.bops if pairs else in_unit(int(front_c[j]), cost, table)
+        out.append((c, plan.predicted_sqnr_db, plan))
     return out
+
+
+def _pair_rows(pairs: dict, order: list) -> list:
+    """Per product: ``(i, j, [matrix for each budget row in order, or None])``."""
+    by_ij: dict = {}
+    for r, k in enumerate(order):
+        for i, j, m in pairs.get(k, []):
+            by_ij.setdefault((i, j), [None] * len(order))[r] = m
+    return [(i, j, rows) for (i, j), rows in by_ij.items()]
 
 
 def _flat(rows: list) -> np.ndarray:
@@ -171,40 +189,91 @@ def _budget_rows(costs: list, limits: list) -> tuple[np.ndarray, np.ndarray]:
     return a / scale[:, None], lim / scale
 
 
-def _objective(noise: list, sizes: list, a_one, a_b, b_b) -> np.ndarray:
-    """Noise shifted by each entry's least noise (a constant) and scaled so the relaxation's
-    optimum is about 1: HiGHS stops within an absolute gap of 1e-6, so the scale sets how
-    close to the optimum the answer is (relative 1e-6 of the shifted objective or better)."""
-    c = _flat([n - n.min() for n in noise])
+def _objective(c: np.ndarray, a_eq, b_eq, a_ub, b_ub) -> np.ndarray:
+    """The objective scaled so the relaxation's optimum is about 1: HiGHS stops within an
+    absolute gap of 1e-6, so the scale sets how close to the optimum the answer is (relative
+    1e-6 of the shifted objective or better). ``c``: noise shifted by each entry's least noise
+    (a constant)."""
     if not np.any(c > 0):
         return c
-    lp = linprog(c, A_ub=a_b, b_ub=b_b, A_eq=a_one, b_eq=np.ones(len(sizes)), bounds=(0, 1),
-                 method="highs")
+    lp = linprog(c, A_ub=a_ub, b_ub=b_ub, A_eq=a_eq, b_eq=b_eq, bounds=(0, 1), method="highs")
     scale = lp.fun if lp.status == 0 and lp.fun > 0 else float(c[c > 0].min())
     return c / max(scale, float(c.max()) * 1e-9)  # coefficients within nine decades
 
 
-def solve(noise: list, costs: list, limits: list) -> np.ndarray | None:
+def _pair_columns(sizes: list, pairs: list, n_rows: int, scale: np.ndarray):
+    """The product variables: one per (option of i, option of j) of each pair, linked to the
+    option variables by ``sum_b z[a, b] = x_i[a]`` and ``sum_a z[a, b] = x_j[b]`` (with one-hot
+    ``x`` these force ``z`` to the one pair chosen, so a product's cost is exact)."""
+    starts = np.concatenate([[0], np.cumsum(sizes)[:-1]]).astype(int)
+    nx = int(sum(sizes))
+    nz = sum(sizes[i] * sizes[j] for i, j, _ in pairs)
+    budget = np.zeros((n_rows, nz))
+    link_rows, link_cols, link_vals = [], [], []
+    row = off = 0
+    for i, j, mats in pairs:
+        ni, nj = sizes[i], sizes[j]
+        for r, m in enumerate(mats):
+            if m is not None:
+                budget[r, off:off + ni * nj] = np.asarray(m, dtype=float).reshape(-1) / scale[r]
+        for a in range(ni):  # sum_b z[a, b] - x_i[a] = 0
+            link_rows += [row] * (nj + 1)
+            link_cols += [nx + off + a * nj + b for b in range(nj)] + [starts[i] + a]
+            link_vals += [1.0] * nj + [-1.0]
+            row += 1
+        for b in range(nj):  # sum_a z[a, b] - x_j[b] = 0
+            link_rows += [row] * (ni + 1)
+            link_cols += [nx + off + a * nj + b for a in range(ni)] + [starts[j] + b]
+            link_vals += [1.0] * ni + [-1.0]
+            row += 1
+        off += ni * nj
+    link = csr_matrix((link_vals, (link_rows, link_cols)), shape=(row, nx + nz))
+    return budget, link, nz
+
+
+def solve(noise: list, costs: list, limits: list, pairs: list | None = None,
+          pair_objective: list | None = None) -> np.ndarray | None:
     """Option index per entry minimising the summed noise with every cost row <= its limit
     (None when no choice meets every budget). Exact (the integer feasibility is re-checked in
-    integers; the solver's tolerances never let a budget be exceeded)."""
+    integers; the solver's tolerances never let a budget be exceeded).
+
+    ``pairs``: ``(i, j, [matrix or None per cost row])`` for costs that depend on the options of
+    two entries together (attention's products: BOPs ``MACs x a x b``), modelled exactly with
+    one variable per pair of options; ``pair_objective``: a matrix per pair added to the
+    objective (least_cost)."""
+    pairs = pairs or []
     sizes = [len(n) for n in noise]
+    starts = np.concatenate([[0], np.cumsum(sizes)[:-1]])
     a_one = _choice_matrix(sizes)
     a_b, b_b = _budget_rows(costs, limits)
-    c = _objective(noise, sizes, a_one, a_b, b_b)
-    starts = np.concatenate([[0], np.cumsum(sizes)[:-1]])
+    scale = np.maximum(np.array(limits, dtype=float), 1.0)
+    c = _flat([n - n.min() for n in noise])
+    if pairs:
+        zb, link, nz = _pair_columns(sizes, pairs, len(costs), scale)
+        a_one = csr_matrix(np.hstack([a_one.toarray(), np.zeros((len(sizes), nz))]))
+        a_eq = csr_matrix(np.vstack([a_one.toarray(), link.toarray()]))
+        b_eq = np.concatenate([np.ones(len(sizes)), np.zeros(link.shape[0])])
+        a_b = np.hstack([a_b, zb])
+        cz = np.zeros(nz) if pair_objective is None else np.concatenate(
+            [np.asarray(m, dtype=float).reshape(-1) for m in pair_objective])
+        c = np.concatenate([c, cz])
+    else:
+        a_eq, b_eq, nz = a_one, np.ones(len(sizes)), 0
+    c = _objective(c, a_eq, b_eq, a_b, b_b)
+    integrality = np.concatenate([np.ones(c.size - nz), np.zeros(nz)])
     rhs = b_b.copy()
     for _ in range(8):
-        res = milp(c, integrality=np.ones(c.size), bounds=Bounds(0, 1),
-                   constraints=[LinearConstraint(a_one, 1, 1), LinearConstraint(a_b, -np.inf, rhs)],
+        res = milp(c, integrality=integrality, bounds=Bounds(0, 1),
+                   constraints=[LinearConstraint(a_eq, b_eq, b_eq), LinearConstraint(a_b, -np.inf, rhs)],
                    options={"mip_rel_gap": 0.0})
         if res.status == 2 or res.x is None:  # infeasible
             return None
         choice = np.array([int(np.argmax(res.x[s:s + k])) for s, k in zip(starts, sizes, strict=True)])
         over = [sum(int(costs[j][i][k]) for i, k in enumerate(choice)) - limits[j]
+                + sum(int(mats[j][choice[a], choice[b]]) for a, b, mats in pairs if mats[j] is not None)
                 for j in range(len(costs))]
         if all(o <= 0 for o in over):
-            return _polish(choice, noise, costs, limits)
+            return _polish(choice, noise, costs, limits, pairs)
         # within the solver's feasibility tolerance but over in integers: tighten and repeat
         for j, o in enumerate(over):
             if o > 0:
@@ -212,11 +281,26 @@ def solve(noise: list, costs: list, limits: list) -> np.ndarray | None:
     return None
 
 
-def _polish(choice: np.ndarray, noise: list, costs: list, limits: list) -> np.ndarray:
+def _polish(choice: np.ndarray, noise: list, costs: list, limits: list, pairs: list = ()) -> np.ndarray:
     """Entry by entry, a less noisy option that keeps every budget, until none is left. HiGHS
     stops within an absolute gap of its scaled objective, so an entry whose noise is below
-    that gap (1e-9 next to 1e-2, say) may be left on a noisier option than needed."""
-    totals = [sum(int(c[i][k]) for i, k in enumerate(choice)) for c in costs]
+    that gap (1e-9 next to 1e-2, say) may be left on a noisier option than needed. ``pairs``
+    (see :func:`solve`): an entry of a pair changes its products' costs too."""
+    paired: dict = {}
+    for a, b, mats in pairs:
+        paired.setdefault(a, []).append((a, b, mats))
+        paired.setdefault(b, []).append((a, b, mats))
+
+    def pair_cost(i, k, r):  # entry i's products' share of cost row r with option k
+        out = 0
+        for a, b, mats in paired.get(i, ()):
+            if mats[r] is not None:
+                out += int(mats[r][k if a == i else choice[a], k if b == i else choice[b]])
+        return out
+
+    totals = [sum(int(c[i][k]) for i, k in enumerate(choice))
+              + sum(int(m[r][choice[a], choice[b]]) for a, b, m in pairs if m[r] is not None)
+              for r, c in enumerate(costs)]
     improved = True
     while improved:
         improved = False
@@ -224,19 +308,26 @@ def _polish(choice: np.ndarray, noise: list, costs: list, limits: list) -> np.nd
             for j in np.argsort(noise[i], kind="stable"):
                 if noise[i][j] >= noise[i][k]:
                     break
-                new = [t - int(c[i][k]) + int(c[i][j]) for t, c in zip(totals, costs, strict=True)]
+                new = [t - int(c[i][k]) + int(c[i][j]) - pair_cost(i, k, r) + pair_cost(i, j, r)
+                       for r, (t, c) in enumerate(zip(totals, costs, strict=True))]
                 if all(t <= lim for t, lim in zip(new, limits, strict=True)):
                     choice[i], totals, improved = int(j), new, True
                     break
     return choice
 
 
-def least_cost(cost: list, other_costs: list, other_limits: list) -> int:
-    """The least total of ``cost`` over choices meeting the other budgets (exact integers)."""
-    choice = solve(cost_as_noise(cost), other_costs, other_limits)
+def least_cost(cost: list, other_costs: list, other_limits: list, pairs: list | None = None) -> int:
+    """The least total of ``cost`` over choices meeting the other budgets (exact integers).
+    ``pairs``: as :func:`solve`'s, with the matrices of ``cost`` first, then the others'."""
+    pairs = pairs or []
+    choice = solve(cost_as_noise(cost), other_costs, other_limits,
+                   pairs=[(i, j, mats[1:]) for i, j, mats in pairs],
+                   pair_objective=[np.zeros((len(cost[i]), len(cost[j]))) if mats[0] is None else mats[0]
+                                   for i, j, mats in pairs])
     if choice is None:
         raise ValueError("the other budgets cannot be met either")
-    return int(sum(int(c[k]) for c, k in zip(cost, choice, strict=True)))
+    return int(sum(int(c[k]) for c, k in zip(cost, choice, strict=True))
+               + sum(int(mats[0][choice[i], choice[j]]) for i, j, mats in pairs if mats[0] is not None))
 
 
 def cost_as_noise(cost: list) -> list:
@@ -251,7 +342,7 @@ def make_plan(table: SensitivityTable, menu: Menu, choice: np.ndarray) -> Plan:
     if q == "input":
         bits = {n: ib for n, (_, ib) in zip(menu.names, picked, strict=True)}
         return table.make_plan(bits, assumed_input_bits=menu.assumed_input_bits, predicted_sqnr_db=predicted)
-    bits = {n: wb for n, (wb, _) in zip(menu.names, picked, strict=True)}
+    bits = {n: ib if wb is None else wb for n, (wb, ib) in zip(menu.names, picked, strict=True)}
     if q == "separate":
         inputs = {n: ib for n, (_, ib) in zip(menu.names, picked, strict=True)}
         return table.make_plan(bits, chosen_input_bits=inputs, predicted_sqnr_db=predicted,
