@@ -60,6 +60,10 @@ def _residual(args) -> bool:
             and args[0].shape == args[1].shape)
 
 
+def _meta(v):
+    return v.to("meta") if isinstance(v, torch.Tensor) else v
+
+
 def _op_name(func) -> str:
     names = {F.linear: "linear", T.__matmul__: "matmul", T.__rmatmul__: "matmul"}
     return names.get(func, getattr(func, "__name__", "product"))
@@ -195,8 +199,13 @@ class _Mode(TorchFunctionMode):
                 return func(*a, **kwargs)
 
             recompute.op_name = _op_name(func)
-            recompute.macs = lambda x2, w2, rule=axis, f=recompute: product_macs_of(
-                func, x2, w2, f(x2.to("meta"), w2.to("meta")), rule)
+            def macs(x2, w2, xi=xi, wi=wi, rule=axis):  # from shapes alone ("meta" tensors)
+                a = [_meta(v) for v in args]
+                a[xi], a[wi] = _meta(x2), _meta(w2)
+                out = func(*a, **{k: _meta(v) for k, v in kwargs.items()})
+                return product_macs_of(func, x2, w2, out, rule)
+
+            recompute.macs = macs
             x = self.tap.operand(name, args[xi], w, param, recompute,
                                  param_axis(param, w, product_axis(axis, w)))
             a = list(args)
