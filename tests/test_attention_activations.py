@@ -138,13 +138,7 @@ def test_encoder_value_and_context_against_a_replaced_attention(fastpath_on):
         naive_model = copy.deepcopy(model)
         original = naive_model.encoder.layers[1].self_attn
 
-        class HandWritten(nn.Module):  # what TransformerEncoderLayer calls as self_attn
-            batch_first = True
-
-            def forward(self, q, k, v, **kwargs):
-                return hand_attention(original, q, role, grid), None
-
-        naive_model.encoder.layers[1].self_attn = HandWritten()
+        naive_model.encoder.layers[1].self_attn = HandWritten(original, role, grid)
         before = torch.backends.mha.get_fastpath_enabled()
         torch.backends.mha.set_fastpath_enabled(False)  # the layer then calls self_attn
         try:
@@ -159,13 +153,26 @@ def test_encoder_value_and_context_against_a_replaced_attention(fastpath_on):
     assert any("residual addition" in s for s in cov.float_activations)
 
 
+class HandWritten(nn.Module):
+    """What TransformerEncoderLayer calls as self_attn: the hand-written attention."""
+
+    batch_first = True
+
+    def __init__(self, mha, role, grid):
+        super().__init__()
+        self.mha, self.role, self.grid = mha, role, grid
+
+    def forward(self, q, k, v, **kwargs):
+        return hand_attention(self.mha, q, self.role, self.grid), None
+
+
 def _block_forward(role, grid):
     """SdpaBlock.forward written out, quantizing one operand of its attention call."""
     def forward(self, x):
         b, t, d = x.shape
         q, k, v = self.qkv(self.ln1(x)).split(d, dim=2)
         q, k, v = (z.view(b, t, self.heads, d // self.heads).transpose(1, 2) for z in (q, k, v))
-        q, k, v = (quantize(z, grid) if r == role else z for z, r in zip((q, k, v), ("query", "key", "value")))
+        q, k, v = (quantize(z, grid) if r == role else z for z, r in zip((q, k, v), ("query", "key", "value"), strict=False))
         y = F.scaled_dot_product_attention(q, k, v, is_causal=True)
         x = x + self.proj(y.transpose(1, 2).reshape(b, t, d))
         return x + self.out(F.gelu(self.fc(self.ln2(x))))

@@ -389,6 +389,10 @@ def test_attention_output_projection_is_a_weight_only_entry():
     with torch.no_grad():
         naive.att.out_proj.weight.copy_(quantize(naive.att.out_proj.weight, grid))
         assert res.output == error_stats(net.eval()(x), naive(x))
+    # its input is the attention's context, quantized in the written-out attention; an
+    # attention with bias_k / bias_v is not written out, and there out_proj stays weight-only
+    assert model_error(net, x, {"att.out_proj": LayerSetting(input=grid)}).output.sqnr_db < math.inf
+    net.att = nn.MultiheadAttention(4, 1, add_bias_kv=True)
     with pytest.raises(ValueError, match="weight-only entry"):
         model_error(net, x, {"att.out_proj": LayerSetting(input=grid)})
 

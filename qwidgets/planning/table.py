@@ -154,9 +154,8 @@ class SensitivityTable:
 
     def params(self, layer: str) -> int:
         """Number of weights of ``layer`` (bias not counted; none for an activation)."""
-        if self.kind(layer) == "activation":
-            return 0
-        return math.prod(self._info[self.layers[self._row(layer)]]["weight_shape"])
+        info = self._info[self.layers[self._row(layer)]]
+        return 0 if info.get("kind") == "activation" else math.prod(info["weight_shape"])
 
     def weight_shape(self, layer: str) -> tuple[int, ...]:
         return tuple(self._info[self.layers[self._row(layer)]]["weight_shape"])
@@ -168,9 +167,8 @@ class SensitivityTable:
     def weight_channels(self, layer: str) -> int:
         """Channels of the weight grids (one scale and zero point each): output channels
         (embedding rows) per channel, else 1."""
-        if self.kind(layer) == "activation":
-            return 0
-        return self.weight_shape(layer)[self.weight_axis(layer)] if self.per_channel else 1
+        return 0 if self.kind(layer) == "activation" else \
+            self.weight_shape(layer)[self.weight_axis(layer)] if self.per_channel else 1
 
     def has_input(self, layer: str) -> bool:
         """True when ``layer`` runs as a module with a tensor input (its inputs can be
@@ -212,8 +210,8 @@ class SensitivityTable:
         return self._info[self.layers[self._row(layer)]].get("digest")
 
     def kind(self, layer: str) -> str:
-        """``"layer"``, ``"attention"``, ``"recurrent"``, ``"embedding"``, ``"product"`` (a weight
-        found by use) or ``"activation"`` (no weight: an input width only)."""
+        """``"layer"``, ``"attention"``, ``"recurrent"``, ``"embedding"``, ``"product"`` (found by
+        use) or ``"activation"`` (no weight)."""
         return self._info[self.layers[self._row(layer)]].get("kind", "layer")
 
     def partner(self, layer: str) -> str | None:
