@@ -14,6 +14,7 @@ here is 20 dB or more above the float32 rounding of these outputs.
 from __future__ import annotations
 
 import copy
+import json
 import math
 import types
 
@@ -22,7 +23,7 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
-from qwidgets import apply_plan, evaluate_plan, metric_curve, plan_budget, scan
+from qwidgets import Plan, apply_plan, evaluate_plan, metric_curve, plan_budget, scan
 from qwidgets.core.rounding import quantize
 from qwidgets.model.attention import attention_forward
 from qwidgets.model.taps import Tap, tapping
@@ -243,6 +244,13 @@ def test_planned_activations_applied_and_evaluated(untouched, fastpath_on):
     assert abs(report.measured_sqnr_db - sqnr(model(x).detach(), want)) < 0.01
     assert report.bops == plan.bops
     keep.check()
+    again = Plan.from_json(plan.to_json())  # activations survive the plan file
+    assert again.bops == plan.bops and again.entries["attn.probs"]["partner"] == "attn.value"
+    torch.testing.assert_close(apply_plan(model, again)(x), got, rtol=0, atol=0)
+    bad = json.loads(plan.to_json())
+    bad["layers"]["attn.probs"]["weight_shape"] = [2, 2]
+    with pytest.raises(ValueError, match="weight_shape must be \\[\\] for an activation"):
+        Plan.from_json(json.dumps(bad))
 
 
 def hand_attention_all(mha, x, grids):
@@ -294,3 +302,18 @@ def test_metric_curve_with_activations():
     curve = metric_curve(model, x, t, metric=accuracy, target=y, cost="bops", points=3, n_boot=50)
     assert len(curve) == 3
     assert all(0.0 <= p.metric_planned <= 1.0 for p in curve)
+
+
+@pytest.mark.parametrize("quantize_mode", ["both", "separate"])
+def test_table_with_activations_saved_and_loaded(tmp_path, quantize_mode):
+    from qwidgets import SensitivityTable
+
+    torch.manual_seed(6)
+    model, x = MHAClassifier().eval(), sequences()
+    t = scan(model, x, bits=(4, 8), quantize=quantize_mode, progress=False)
+    t.save(tmp_path / "t.json")
+    u = SensitivityTable.load(tmp_path / "t.json")
+    assert u.layers == t.layers and u.partner("attn.value") == "attn.probs"
+    assert u.kind("attn.key") == "activation" and u.params("attn.key") == 0
+    a, b = plan_budget(t, bops=3e5), plan_budget(u, bops=3e5)
+    assert a.bits == b.bits and a.bops == b.bops

@@ -18,10 +18,12 @@ every field. Its JSON layout (``version`` 2)::
                      "scale": [...], "offset": [...], "zero_point": [...]},   # or null
           "input": {"bits": 6, "signed": false, "axis": null,
                     "scale": 0.02, "offset": 0.0, "zero_point": 0},           # or null
-          "kind": "layer",                  # optional: layer / attention / recurrent / embedding
+          "kind": "layer",                  # optional: layer / attention / recurrent / embedding /
+                                            # product / activation (weight_shape [], no weight)
           "has_input": true,                # optional: false for weight-only entries
           "shared_with": [],                # optional: other places using the same tensor
-          "weight_digest": "<16 hex digits>"  # optional: the planned weight's values (or null)
+          "weight_digest": "<16 hex digits>", # optional: the planned weight's values (or null)
+          "partner": "att.key"              # optional, activations: the product's other operand
         }
       },
       "other_weight_bits": 2656,            # optional: the model's other float weights, bits
@@ -75,7 +77,7 @@ _LAYER = ("bits", "weight_shape", "macs", "weight", "input")
 _TOP_OPTIONAL = ("other_weight_bits",)
 
 
-_LAYER_OPTIONAL = ("kind", "has_input", "shared_with", "weight_digest")
+_LAYER_OPTIONAL = ("kind", "has_input", "shared_with", "weight_digest", "partner")
 
 
 def plan_fields(data) -> dict:
@@ -106,7 +108,10 @@ def plan_fields(data) -> dict:
         entries[name] = _entry_fields(entry, where)
         b = int_field(entry["bits"], f"{where}.bits", 1, MAX_BITS)
         shape = entry["weight_shape"]
-        if not isinstance(shape, list) or len(shape) < 2:
+        activation = entries[name].get("kind") == "activation"
+        if activation and shape != []:
+            raise FieldError(f"{where}.weight_shape must be [] for an activation, got {kind_of(shape)}")
+        if not activation and (not isinstance(shape, list) or len(shape) < 2):
             raise FieldError(f"{where}.weight_shape must be a list of >= 2 sizes, got {kind_of(shape)}")
         shape = tuple(int_field(s, f"{where}.weight_shape[{i}]", 1) for i, s in enumerate(shape))
         m = int_field(entry["macs"], f"{where}.macs", 0)
@@ -121,6 +126,8 @@ def plan_fields(data) -> dict:
         x = grid_from_dict(entry["input"], f"{where}.input", None)
         if w is None and x is None:
             raise FieldError(f"{where} has neither a weight nor an input grid")
+        if activation and w is not None:
+            raise FieldError(f"{where}.weight must be null for an activation (it has no weight)")
         main = w if w is not None else x
         if main.bits != b:
             raise FieldError(f"{where}.bits is {b} but its "
@@ -165,4 +172,7 @@ def _entry_fields(entry: dict, where: str) -> dict:
         out["shared_with"] = string_list_field(entry["shared_with"], f"{where}.shared_with")
     if "weight_digest" in entry:
         out["weight_digest"] = digest_field(entry["weight_digest"], f"{where}.weight_digest")
+    if "partner" in entry:  # an activation: the other operand of its product (null: float)
+        p = entry["partner"]
+        out["partner"] = None if p is None else string_field(p, f"{where}.partner")
     return out

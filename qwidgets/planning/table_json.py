@@ -16,6 +16,8 @@ def table_to_dict(self) -> dict:
         entry.update(kind=self.kind(name), axis=self.weight_axis(name), has_input=self.has_input(name),
                      shared_with=self.shared_with(name), stored_bits=self.stored_bits(name),
                      digest=self.weight_digest(name))
+        if "partner" in self._info[name]:
+            entry["partner"] = self._info[name]["partner"]
         entry["weight_shape"] = list(entry["weight_shape"])
         entry["input_shape"] = None if entry["input_shape"] is None else list(entry["input_shape"])
         for scope in ("layer", "model"):

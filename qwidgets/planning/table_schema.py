@@ -45,7 +45,8 @@ _TOP = ("format", "version", "bits", "quantize", "method", "per_channel", "finge
         "n_samples", "layers")
 _ENTRY = ("name", "type", "weight_shape", "input_shape", "macs", "layer_sqnr_db",
           "model_sqnr_db", "weight_grids", "input_grids")
-_ENTRY_OPTIONAL = ("model_pass", "kind", "axis", "has_input", "shared_with", "stored_bits", "digest")
+_ENTRY_OPTIONAL = ("model_pass", "kind", "axis", "has_input", "shared_with", "stored_bits", "digest",
+                   "partner")
 
 
 def table_fields(d) -> dict:
@@ -120,7 +121,7 @@ def table_fields(d) -> dict:
         layers=names, bits=bits, quantize=d["quantize"], method=str(d["method"]),
         per_channel=bool(d["per_channel"]), fingerprint=str(d["fingerprint"]), info=info,
         layer_sqnr=arrays["layer"], model_sqnr=arrays["model"],
-        weight_grids=grids["weight"] if len(grids["weight"]) == len(names) else None,
+        weight_grids={n: grids["weight"].get(n) for n in names} if grids["weight"] else None,
         input_grids=input_grids, n_samples=int(d["n_samples"]), input_bits=ibits,
         coverage=_coverage_from_json(d.get("coverage")), estimate=d.get("estimate", "exact"),
         input_layer_sqnr=arrays.get("input_layer"), input_model_sqnr=arrays.get("input_model"))
@@ -158,7 +159,7 @@ def _table_entry(e, where: str, info: dict) -> str:
     for key in ("weight_shape", "input_shape"):
         v = e[key]
         if not (v is None and key == "input_shape"):
-            if not isinstance(v, list) or (key == "weight_shape" and not v):
+            if not isinstance(v, list) or (key == "weight_shape" and not v and e.get("kind") != "activation"):
                 raise FieldError(f"{where}.{key} must be a list of sizes, got {kind_of(v)}")
             for i, s in enumerate(v):
                 int_field(s, f"{where}.{key}[{i}]", 0)
@@ -171,7 +172,7 @@ def _entry_info(e: dict, where: str) -> dict:
     and the optional fields, each checked as the plan reader checks its own."""
     shape = tuple(e["weight_shape"])
     axis = int_field(e.get("axis", 0), f"{where}.axis")
-    if not 0 <= axis < len(shape):
+    if shape and not 0 <= axis < len(shape) or not shape and e.get("kind") != "activation":
         raise FieldError(f"{where}.axis {axis} is out of range for weight_shape {list(shape)}")
     stored = e.get("stored_bits")
     return {"type": e["type"], "weight_shape": shape,
@@ -181,7 +182,9 @@ def _entry_info(e: dict, where: str) -> dict:
             "has_input": bool_field(e.get("has_input", True), f"{where}.has_input"),
             "shared_with": string_list_field(e.get("shared_with", []), f"{where}.shared_with"),
             "stored_bits": None if stored is None else int_field(stored, f"{where}.stored_bits", 0),
-            "digest": digest_field(e.get("digest"), f"{where}.digest")}
+            "digest": digest_field(e.get("digest"), f"{where}.digest"),
+            **({"partner": None if e.get("partner") is None else string_field(e["partner"], f"{where}.partner")}
+               if "partner" in e else {})}
 
 
 def _grids(v, where: str, widths: tuple, column: str, kind: str, axis: int | None,
