@@ -317,3 +317,12 @@ def test_table_with_activations_saved_and_loaded(tmp_path, quantize_mode):
     assert u.kind("attn.key") == "activation" and u.params("attn.key") == 0
     a, b = plan_budget(t, bops=3e5), plan_budget(u, bops=3e5)
     assert a.bits == b.bits and a.bops == b.bops
+
+
+def test_weight_scan_leaves_activations_out():
+    torch.manual_seed(7)
+    model, x = MHAClassifier().eval(), sequences()
+    t = scan(model, x, bits=(4,), quantize="weight", progress=False)
+    assert t.layers == ["inp", "attn.in_proj", "attn.out_proj", "head"]
+    p = plan_budget(t, mean_bits=4)
+    assert set(p.layers) == set(t.layers)

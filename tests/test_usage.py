@@ -138,3 +138,5 @@ def test_plan_applied_to_weights_found_by_use(untouched):
     report = evaluate_plan(model, x, plan)
     assert abs(report.measured_sqnr_db - sqnr(model(x).detach(), want)) < 0.01
     assert planned.qwidgets_applied == ("up", "down", "mix")
+    with torch.no_grad():  # a copy of the planned model keeps its taps (bound-method hooks)
+        torch.testing.assert_close(copy.deepcopy(planned)(x), want, rtol=1e-5, atol=1e-6)

@@ -114,7 +114,7 @@ class _Mode(TorchFunctionMode):
     def __init__(self, model: nn.Module, tap: Tap):
         super().__init__()
         self.model, self.tap = model, tap
-        self.names = {id(m): n for n, m in reversed(list(model.named_modules()))}
+        self.names: dict[int, str] = {}
         self.stack: list[list] = []  # [module, path, sdpa calls so far] of each running forward
         self.weights: dict[int, str] = {}
         self.on_add = None  # called on each addition of two activations of one shape
@@ -122,7 +122,9 @@ class _Mode(TorchFunctionMode):
     # ------------------------------------------------------------------ module stack
     def push(self, module, args, kwargs):
         if module is self.model:  # the parameters as this pass sees them (functional_call)
+            self.names = {id(m): n for n, m in reversed(list(self.model.named_modules()))}
             self.weights = self.tap.parameters(dict(self.model.named_parameters(remove_duplicate=False)))
+            self.stack.clear()
         self.stack.append([module, self.names.get(id(module), ""), 0])
 
     def pop(self, module, args, kwargs, output):
@@ -293,25 +295,29 @@ def tapping(model: nn.Module, tap: Tap):
 
 def attach(model: nn.Module, tap: Tap) -> None:
     """Keep ``tap`` on ``model`` for good (a planned copy of the tool's own): every forward of
-    the model runs with it, the fast path off during the forward."""
-    mode = _Mode(model, tap)
-    saved: list = []
-
-    def enter(module, args, kwargs):
-        saved.append(torch.backends.mha.get_fastpath_enabled())
-        torch.backends.mha.set_fastpath_enabled(False)
-        mode.__enter__()
-        mode.push(module, args, kwargs)
-
-    def leave(module, args, kwargs, output):
-        mode.pop(module, args, kwargs, output)
-        mode.__exit__(None, None, None)
-        torch.backends.mha.set_fastpath_enabled(saved.pop())
-
+    the model runs with it, the fast path off during the forward. The hooks are bound methods,
+    so a deep copy of the model carries taps of its own."""
+    keeper = _Attached(_Mode(model, tap))
     for m in model.modules():
         if m is model:
             continue
-        m.register_forward_pre_hook(mode.push, with_kwargs=True, prepend=True)
-        m.register_forward_hook(mode.pop, with_kwargs=True, always_call=True)
-    model.register_forward_pre_hook(enter, with_kwargs=True, prepend=True)
-    model.register_forward_hook(leave, with_kwargs=True, always_call=True)
+        m.register_forward_pre_hook(keeper.mode.push, with_kwargs=True, prepend=True)
+        m.register_forward_hook(keeper.mode.pop, with_kwargs=True, always_call=True)
+    model.register_forward_pre_hook(keeper.enter, with_kwargs=True, prepend=True)
+    model.register_forward_hook(keeper.leave, with_kwargs=True, always_call=True)
+
+
+class _Attached:
+    def __init__(self, mode: _Mode):
+        self.mode, self.saved = mode, []
+
+    def enter(self, module, args, kwargs):
+        self.saved.append(torch.backends.mha.get_fastpath_enabled())
+        torch.backends.mha.set_fastpath_enabled(False)
+        self.mode.__enter__()
+        self.mode.push(module, args, kwargs)
+
+    def leave(self, module, args, kwargs, output):
+        self.mode.pop(module, args, kwargs, output)
+        self.mode.__exit__(None, None, None)
+        torch.backends.mha.set_fastpath_enabled(self.saved.pop())
