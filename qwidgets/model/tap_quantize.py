@@ -17,20 +17,21 @@ from .layers import LayerInputError
 from .taps import Tap
 
 
-class QuantizeTap(Tap):
-    """Fake-quantizes each tapped entry's input on its grid.
+class EachTap(Tap):
+    """Applies ``fn(entry name, tensor) -> tensor`` to the input of each of ``entries`` (entries
+    whose inputs go through taps: :func:`~.entries.tapped`) wherever the model computes it; the
+    others are left alone. ``ran`` collects the names of the entries reached.
 
-    ``grids``: entry -> input grid (only entries with :func:`~.entries.tapped` inputs);
-    ``check``: scan each value for NaN / inf before quantizing it (except tensors whose ``id``
-    is in ``checked``); ``ran`` collects the names of the entries quantized.
+    A planned copy quantizes with it (:class:`QuantizeTap`); an export can mark the same points.
     """
 
-    def __init__(self, grids: Mapping[Entry, UniformGrid], *, check: bool = True, checked=frozenset()):
-        self.grids = {e.name: g for e, g in grids.items()}
-        self.products = {e.name: e.param for e in grids if e.kind == "product"}
+    def __init__(self, entries, fn):
+        entries = list(entries)
+        self.names = {e.name for e in entries}
+        self.products = {e.name: e.param for e in entries if e.kind == "product"}
         self.paths = {e.module if e.kind == "activation" else e.name.rpartition(".")[0]
-                      for e in grids if e.kind != "product"}
-        self.check, self.checked = check, checked
+                      for e in entries if e.kind != "product"}
+        self.fn = fn
         self.ran: list[str] = []
 
     def attention(self, path: str) -> bool:
@@ -40,18 +41,34 @@ class QuantizeTap(Tap):
         return {id(named[p]): name for name, p in self.products.items() if p in named}
 
     def activation(self, name, t):
-        grid = self.grids.get(name)
-        return t if grid is None else self._quantize(name, t, grid)
+        return self._apply(name, t) if name in self.names else t
 
     def operand(self, name, x, w, param, recompute, axis):
-        return self._quantize(name, x, self.grids[name])
+        return self._apply(name, x)
 
-    def _quantize(self, name, t, grid):
+    def _apply(self, name, t):
         if name not in self.ran:
             self.ran.append(name)
+        return self.fn(name, t)
+
+
+class QuantizeTap(EachTap):
+    """Fake-quantizes each tapped entry's input on its grid.
+
+    ``grids``: entry -> input grid (only entries with :func:`~.entries.tapped` inputs);
+    ``check``: scan each value for NaN / inf before quantizing it (except tensors whose ``id``
+    is in ``checked``).
+    """
+
+    def __init__(self, grids: Mapping[Entry, UniformGrid], *, check: bool = True, checked=frozenset()):
+        super().__init__(grids, self._quantize)
+        self.grids = {e.name: g for e, g in grids.items()}
+        self.check, self.checked = check, checked
+
+    def _quantize(self, name, t):
         if self.check and id(t) not in self.checked and t.is_floating_point():
             finite_check(t, f"the input of {name!r}", LayerInputError)
-        return quantize_unchecked(t, grid)
+        return quantize_unchecked(t, self.grids[name])
 
 
 def tapped_inputs(settings: Mapping) -> dict:
