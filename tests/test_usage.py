@@ -39,6 +39,9 @@ def test_found_by_use_names_axes_and_inputs():
     assert (found["mix"].axis, found["mix"].param) == (0, "mix")
     assert all(e.kind == "product" and e.input_args == ("input",) for e in found.values())
     assert set(entries_named(model, ["up", "mix", "nothing"])) == {"up", "mix"}
+    # a parameter of a known module class keeps its own entry and is no product entry
+    known = nn.Sequential(nn.Linear(3, 2))
+    assert entries_named(known, ["0", "0.weight"]) == {}
 
 
 class Ops(nn.Module):

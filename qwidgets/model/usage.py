@@ -46,6 +46,7 @@ class _Recorder(Tap):
 
     def __init__(self, model: nn.Module, static: list):
         self.model = model
+        self.modules = dict(model.named_modules())
         self.mha = {e.module for e in static if e.kind == "activation"}
         claimed = set()
         by_id = {id(p): n for n, p in model.named_parameters(remove_duplicate=False)}
@@ -68,16 +69,13 @@ class _Recorder(Tap):
         return False
 
     def activation(self, name, t):
-        if ".sdpa" in f".{name}" and name not in self.sdpa:
-            path, _, rest = name.rpartition(".sdpa")
-            level = "sdpa" + rest.rpartition(".")[0]
-            role = name.rpartition(".")[2]
-            self.sdpa[name] = Entry(name, "activation", path, "", 0, False,
-                                    f"scaled_dot_product_attention.{role}", (), input_args=(role,),
-                                    via="tap")
-            if role == "query":
-                where = f"{path}.{level}" if path else level
-                self._float(f"{where}: attention scores and probabilities, kept in float")
+        if name not in self.sdpa:
+            e = _sdpa_entry(name, self.modules)
+            if e is not None:
+                self.sdpa[name] = e
+                if name.endswith(".query"):
+                    where = name.rpartition(".")[0]
+                    self._float(f"{where}: attention scores and probabilities, kept in float")
         return t
 
     def operand(self, name, x, w, param, recompute, axis):
@@ -149,7 +147,8 @@ def entries_named(model: nn.Module, names) -> dict[str, Entry]:
     neither are left out."""
     out = {}
     modules = dict(model.named_modules())
-    params = dict(model.named_parameters())
+    claimed = {id(e.parameter(model)) for e in find_entries(model) if e.kind != "activation"}
+    params = {n: p for n, p in model.named_parameters() if id(p) not in claimed}
     for name in names:
         e = _sdpa_entry(name, modules)
         if e is None:
