@@ -23,34 +23,23 @@ from ..model import layers, outputs, running
 from ..model.entries import Entry, call_inputs, tapped
 from ..model.sources import DataSource, batch_size, batch_tensors
 from ..model.statistics import RangeSample
-from ..model.taps import Tap, tapping
+from ..model.tap_quantize import EachTap
+from ..model.taps import tapping
 
 
-class TapSurvey(Tap):
+class TapSurvey(EachTap):
     """The survey's taps: order, shapes, multiply-accumulates and input samples of the entries
     reached by taps; the model's own output is kept (the attention is only observed)."""
 
     keep_output = True
 
     def __init__(self, facts, entries, first_call, first_batch, checked, want_inputs, inputs_checked):
+        super().__init__(entries, self._seen)
         self.facts, self.first_call, self.first_batch = facts, first_call, first_batch
         self.checked, self.want, self.inputs_checked = checked, want_inputs, inputs_checked
-        self.products = {e.name: e.param for e in entries if e.kind == "product"}
-        self.paths = {e.module if e.kind == "activation" else e.name.rpartition(".")[0]
-                      for e in entries if e.kind != "product"}
-
-    def attention(self, path):
-        return path in self.paths
-
-    def parameters(self, named):
-        return {id(named[p]): name for name, p in self.products.items() if p in named}
-
-    def activation(self, name, t):
-        self._seen(name, t)
-        return t
 
     def operand(self, name, x, w, param, recompute, axis):
-        f = self._seen(name, x)
+        f = self._observe(name, x)
         if f is not None and self.first_batch[0]:
             f.macs += int(recompute.macs(x, w))
         return x
@@ -65,6 +54,10 @@ class TapSurvey(Tap):
                 f.partner = other
 
     def _seen(self, name, t):
+        self._observe(name, t)
+        return t
+
+    def _observe(self, name, t):
         f = self.facts.get(name)
         if f is None:
             return None

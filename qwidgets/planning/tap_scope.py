@@ -14,32 +14,26 @@ import torch
 import torch.nn.functional as F
 
 from ..core.rounding import quantize_unchecked as _quantize
-from ..model.taps import Tap, same_view
+from ..model.tap_quantize import EachTap
+from ..model.taps import same_view
 
 
 def _power(t: torch.Tensor) -> float:
     return float(torch.linalg.vector_norm(t, dtype=torch.float64)) ** 2
 
 
-class TapScope(Tap):
+class TapScope(EachTap):
     """Adds each tapped entry's output power and error power per config to ``signal`` / ``noise``
     (the model's own output is kept: the written-out attention is only observed)."""
 
     keep_output = True
 
     def __init__(self, model, entries, configs, signal, noise):
+        entries = list(entries)
+        super().__init__(entries, None)
         self.model, self.configs, self.signal, self.noise = model, configs, signal, noise
         self.by_name = {e.name: e for e in entries}
-        self.products = {e.name: e.param for e in entries if e.kind == "product"}
-        self.paths = {e.module if e.kind == "activation" else e.name.rpartition(".")[0]
-                      for e in entries if e.kind != "product"}
         self._weights: dict = {}
-
-    def attention(self, path):
-        return path in self.paths
-
-    def parameters(self, named):
-        return {id(named[p]): name for name, p in self.products.items() if p in named}
 
     def activation(self, name, t):
         e = self.by_name.get(name)
