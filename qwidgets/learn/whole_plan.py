@@ -33,7 +33,10 @@ from ..core.grid import UniformGrid, grid_params
 from ..core.relaxed import relaxed_quantize
 from ..core.rounding import quantize
 from ..core.setting import SOURCES, LayerSetting
-from ..model.entries import find_entries
+from ..model.entries import find_entries, tapped
+from ..model.tap_quantize import EachTap
+from ..model.taps import attach
+from ..model.usage import entries_named
 from .one_grid import DEFAULT_NOISE_STEPS
 
 __all__ = ["PlanGrids", "GridEntry", "LEARNABLE", "SOURCES", "MIN_NOISE"]
@@ -142,30 +145,37 @@ class PlanGrids:
             p.requires_grad_(False)
             p.grad = None
         found = {e.name: e for e in find_entries(self.model)}
+        found.update(entries_named(self.model, [n for n in settings if n not in found]))
         self.entries: list[GridEntry] = []
         self._inputs: dict[str, GridEntry] = {}
         self._mode: tuple | None = None  # how the input hooks quantize during a forward
+        through_taps = []  # attention activations, out_proj's context, inputs of weights found by use
         for name, setting in settings.items():
             entry = found.get(name)
             if entry is None:
                 raise ValueError(f"plan entry {name!r} is not a quantizable weight of the model; "
                                  f"entries: {list(found)}")
-            w = entry.parameter(self.model)
+            w = _float_like(self.model) if entry.kind == "activation" else entry.parameter(self.model)
             for source in SOURCES:
                 grid = getattr(setting, source)
                 if grid is None:
                     continue
                 if source == "weight":
                     grid_params(w, grid)  # per-channel size check, with a clear message
-                elif not entry.runs_as_module:  # its owner's forward uses the weight directly
+                elif not entry.input_args:  # its owner's forward uses the weight directly
                     raise ValueError(f"plan entry {name!r} ({entry.type_name}) is weight-only; "
                                      "it has no input to quantize")
                 self.entries.append(self._entry(name, source, grid.detached(), entry.param, w.dtype,
                                                 noise_steps, learn if source in sources else set()))
             if setting.input is not None:
                 self._inputs[name] = next(e for e in self.entries if e.name == name and e.source == "input")
+                if tapped(entry):
+                    through_taps.append(entry)
+                    continue
                 owner = self.model.get_submodule(entry.module) if entry.module else self.model
                 owner.register_forward_pre_hook(_InputHook(self, name))
+        if through_taps:  # reached by taps on the copy (qwidgets.model.taps), quantized like a hook's
+            attach(self.model, EachTap(through_taps, self._tapped_input))
 
     @staticmethod
     def _entry(name, source, start, pname, dtype, noise_steps, learn) -> GridEntry:
@@ -237,6 +247,16 @@ class PlanGrids:
         g = grids[id(e)]
         return relaxed_quantize(x, g, e.noise_width(g, factor), temperature,
                                 window=_window(g, window), generator=generator)
+
+
+    def _tapped_input(self, name: str, x: torch.Tensor):
+        q = self._quantize_input(name, x)
+        return x if q is None else q
+
+
+def _float_like(model: nn.Module) -> torch.Tensor:
+    """A tensor of the model's floating-point type (an activation's grid numbers use it)."""
+    return next((p for p in model.parameters() if p.is_floating_point()), torch.zeros(()))
 
 
 def _window(grid: UniformGrid, window):
