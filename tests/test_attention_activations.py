@@ -219,7 +219,7 @@ def test_planned_activations_applied_and_evaluated(untouched, fastpath_on):
     keep = untouched(model)
     t = scan(model, x, bits=(4, 8), input_bits=(4, 8), quantize="separate", progress=False)
     plan = plan_budget(t, mean_bits=8, fixed={"attn.probs": 4, "attn.query": 8})
-    assert plan.input_bits["attn.probs"] == 4 and plan.layers["attn.probs"].weight is None
+    assert plan.chosen_input_bits["attn.probs"] == 4 and plan.layers["attn.probs"].weight is None
     planned = apply_plan(model, plan)
     keep.check()
     # naive: every planned grid applied by hand (weights quantized in a deep copy, inputs and

@@ -18,6 +18,9 @@ from ..core.setting import LayerSetting
 from ..model.entries import Coverage
 from .files import read_text, write_text
 from .plan import Plan
+from .synthetic import synthetic_table
+from .table_html import table_html, table_rows
+from .table_json import table_from_text, table_to_dict
 from .table_schema import ESTIMATES
 
 
@@ -65,12 +68,10 @@ class SensitivityTable:
             "layer": None if layer_sqnr is None else np.asarray(layer_sqnr, dtype=float).copy(),
             "model": None if model_sqnr is None else np.asarray(model_sqnr, dtype=float).copy(),
         }
-        self._grids = {
-            "weight": None if weight_grids is None else {
-                n: None if weight_grids.get(n) is None else list(weight_grids[n]) for n in self.layers},
-            "input": None if input_grids is None else {
-                n: None if input_grids.get(n) is None else list(input_grids[n]) for n in self.layers},
-        }
+        # per entry: its grids, one per width, or None (no weight: an activation; no input rows)
+        self._grids = {k: None if g is None else {
+            n: None if g.get(n) is None else list(g[n]) for n in self.layers}
+            for k, g in (("weight", weight_grids), ("input", input_grids))}
         # quantize="separate": input rows, one column per input width, NaN rows for entries
         # with no input rows (their input_grids entry is None)
         self._input_bits = tuple(int(b) for b in input_bits)
@@ -154,8 +155,7 @@ class SensitivityTable:
 
     def params(self, layer: str) -> int:
         """Number of weights of ``layer`` (bias not counted; none for an activation)."""
-        info = self._info[self.layers[self._row(layer)]]
-        return 0 if info.get("kind") == "activation" else math.prod(info["weight_shape"])
+        return 0 if self.kind(layer) == "activation" else math.prod(self.weight_shape(layer))
 
     def weight_shape(self, layer: str) -> tuple[int, ...]:
         return tuple(self._info[self.layers[self._row(layer)]]["weight_shape"])
@@ -210,8 +210,7 @@ class SensitivityTable:
         return self._info[self.layers[self._row(layer)]].get("digest")
 
     def kind(self, layer: str) -> str:
-        """``"layer"``, ``"attention"``, ``"recurrent"``, ``"embedding"``, ``"product"`` (found by
-        use) or ``"activation"`` (no weight)."""
+        """layer, attention, recurrent, embedding, product (found by use) or activation."""
         return self._info[self.layers[self._row(layer)]].get("kind", "layer")
 
     def partner(self, layer: str) -> str | None:
@@ -231,10 +230,8 @@ class SensitivityTable:
 
     def weight_grid(self, layer: str, bits: int) -> UniformGrid | None:
         """The weight grid fitted for ``layer`` at ``bits`` (None if weights were not scanned)."""
-        g = self._grids["weight"]
-        if g is None or g[self.layers[self._row(layer)]] is None:
-            return None
-        return g[self.layers[self._row(layer)]][self._col(bits)]
+        rows = (self._grids["weight"] or {}).get(self.layers[self._row(layer)])
+        return None if rows is None else rows[self._col(bits)]
 
     def input_grid(self, layer: str, bits: int) -> UniformGrid | None:
         """The input grid fitted for ``layer`` at ``bits`` (an input width of
@@ -343,9 +340,7 @@ class SensitivityTable:
         key = (name, b, ib)
         s = self._settings.get(key)
         if s is None:
-            if self.quantize == "input" or (self.kind(name) == "activation" and self.quantize == "both"):
-                s = LayerSetting(input=self.input_grid(name, self.bits[self._col(b)]))
-            elif self.kind(name) == "activation":
+            if self.quantize == "input" or self.kind(name) == "activation":  # no weight grid
                 s = LayerSetting(input=self.input_grid(name, b if ib is None else ib))
             else:
                 w = self.weight_grid(name, self.bits[self._col(b)])
@@ -359,8 +354,6 @@ class SensitivityTable:
         """One dict per (layer, bit width): layer, type, bits, params, macs, layer / model SQNR
         (tables scanned with ``quantize="separate"``: weight rows, then input rows, with a
         ``source`` key)."""
-        from .table_html import table_rows
-
         return table_rows(self)
 
     def __repr__(self) -> str:
@@ -370,15 +363,11 @@ class SensitivityTable:
                 f"{self.coverage})")
 
     def _repr_html_(self) -> str:
-        from .table_html import table_html
-
         return table_html(self)
 
     # ------------------------------------------------------------------ JSON
     def to_dict(self) -> dict:
         """The table as JSON-ready data (layout: :mod:`qwidgets.planning.table_schema`)."""
-        from .table_json import table_to_dict
-
         return table_to_dict(self)
 
     def save(self, path: str | os.PathLike) -> None:
@@ -388,8 +377,6 @@ class SensitivityTable:
     @classmethod
     def load(cls, path: str | os.PathLike) -> SensitivityTable:
         """Read a table written by :meth:`save` (JSON only; every field checked)."""
-        from .table_json import table_from_text
-
         return table_from_text(cls, read_text(path, "table"))
 
     # ------------------------------------------------------------------ synthetic
@@ -408,7 +395,5 @@ class SensitivityTable:
         >>> t.quantize, t.input_bits, t.sqnr_db("layer0", 6, source="input")
         ('separate', (6, 8), 25.0)
         """
-        from .synthetic import synthetic_table
-
         return synthetic_table(cls, model_sqnr_db, params=params, bits=bits, input_sqnr_db=input_sqnr_db,
                                input_bits=input_bits, macs=macs, names=names)
