@@ -143,3 +143,16 @@ def test_plan_applied_to_weights_found_by_use(untouched):
     assert planned.qwidgets_applied == ("up", "down", "mix")
     with torch.no_grad():  # a copy of the planned model keeps its taps (bound-method hooks)
         torch.testing.assert_close(copy.deepcopy(planned)(x), want, rtol=1e-5, atol=1e-6)
+
+
+def test_owner_arguments_are_never_the_input_of_a_tapped_entry():
+    # attn.query's input is the projected query, computed inside the attention: hooks on the
+    # attention module must not touch its query argument for it
+    from qwidgets.model.entries import call_inputs, find_entries, replace_inputs
+
+    mha = nn.MultiheadAttention(4, 1)
+    e = {x.name: x for x in find_entries(mha)}["query"]
+    q = torch.randn(2, 1, 4)
+    assert call_inputs(e, (q, q, q), {}) == []
+    args, _ = replace_inputs(e, (q, q, q), {}, lambda v: v * 0)
+    assert all(a is q for a in args)

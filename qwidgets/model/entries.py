@@ -154,7 +154,10 @@ def tapped(entry: Entry) -> bool:
 
 
 def call_inputs(entry: Entry, args: tuple, kwargs: dict) -> list:
-    """The tensors of one call of the entry's owner that are the entry's inputs."""
+    """The tensors of one call of the entry's owner that are the entry's inputs (none for an
+    entry reached by taps: its input is computed inside the owner, see :func:`tapped`)."""
+    if tapped(entry):
+        return []
     out = []
     for k, name in enumerate(entry.input_args):
         pos = _ATTENTION_ARGS.index(name) if name in _ATTENTION_ARGS else k
@@ -168,7 +171,12 @@ def call_inputs(entry: Entry, args: tuple, kwargs: dict) -> list:
 
 def replace_inputs(entry: Entry, args: tuple, kwargs: dict, fn) -> tuple[tuple, dict]:
     """``(args, kwargs)`` with ``fn`` applied to each of the entry's input tensors (each distinct
-    tensor once: self-attention passes the same tensor as query, key and value)."""
+    tensor once: self-attention passes the same tensor as query, key and value). An entry
+    reached by taps (:func:`tapped`) has no input among its owner's arguments: unchanged (its
+    input is reached with :mod:`qwidgets.model.taps`, e.g. ``attach(net, EachTap(entries, fn))``).
+    """
+    if tapped(entry):
+        return tuple(args), dict(kwargs)
     args, kwargs = list(args), dict(kwargs)
     done: dict[int, torch.Tensor] = {}
 
