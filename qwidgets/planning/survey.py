@@ -171,7 +171,7 @@ def survey(model: nn.Module, source: DataSource, entries: list[Entry], *, want_i
         f = facts[e.name]
         owner = modules[e.module]
         key = id(owner)
-        if ("tap", e.name) in first_call and e.kind in ("activation", "product"):
+        if ("tap", e.name) in first_call:  # reached by taps: where its input was computed
             f.ran, f.order = True, (first_call[("tap", e.name)], reg)
         elif key in first_call:
             f.ran, f.order = True, (first_call[key], reg)
