@@ -342,3 +342,16 @@ def test_refine_plan_learns_activation_grids():
         assert refined.layers[name].input.bits == 4
         assert refined.layers[name].input.scale != plan.layers[name].input.scale
     assert evaluate_plan(model, x, refined).measured_sqnr_db > evaluate_plan(model, x, plan).measured_sqnr_db
+
+
+def test_split_scan_of_activations_equals_the_serial_scan():
+    # an executor's workers each scan a deep copy: the taps follow the copies
+    from concurrent.futures import ThreadPoolExecutor
+
+    torch.manual_seed(9)
+    model, ids = TinyDecoder().eval(), token_ids()
+    serial = scan(model, ids, bits=(4, 8), quantize="both", progress=False)
+    with ThreadPoolExecutor(2) as pool:
+        split = scan(model, ids, bits=(4, 8), quantize="both", progress=False, executor=pool)
+    assert split.layers == serial.layers
+    assert (split.sqnr_array("model") == serial.sqnr_array("model")).all()
