@@ -9,6 +9,7 @@ import torch
 from torch import nn
 
 from ..core.checks import finite_check
+from .fastpath import without_fastpath
 from .layers import LayerInputError, describe_layer, is_quantizable
 from .running import (
     Data,
@@ -25,6 +26,7 @@ from .running import (
 from .sources import data_source
 
 
+@without_fastpath
 def quantizable_layers(model: nn.Module, data: Data | None = None) -> list[str]:
     """Qualified names of the model's quantizable layers.
 
@@ -56,6 +58,7 @@ def quantizable_layers(model: nn.Module, data: Data | None = None) -> list[str]:
     return order
 
 
+@without_fastpath
 def capture_inputs(model: nn.Module, data: Data, layers: str | Iterable[str] | None = None, *,
                    max_samples: int | None = None) -> dict[str, torch.Tensor]:
     """The tensor each layer received when ``model`` ran once on ``data``.

@@ -10,6 +10,7 @@ from torch import nn
 
 from ..core.metrics import ErrorStats
 from ..core.renamed import warn_renamed
+from ..model.fastpath import without_fastpath
 from ..model.outputs import OutputComparison, call_metric, check_output_fn, float_parts
 from ..model.running import run_with_hooks
 from ..model.sources import Data, batch_size, batch_tensors, data_source
@@ -108,6 +109,7 @@ class PlanReport:
         return "\n".join(lines)
 
 
+@without_fastpath
 def evaluate_plan(model: nn.Module, data: Data, plan: Plan, *, metric: Callable | None = None,
                   target: Any = None, strict: bool = True, output: Callable | None = None,
                   max_samples: int | None = None, allow_other_weights: bool = False,

@@ -25,6 +25,7 @@ from ..core.device_rules import DeviceRules, check_rules
 from ..core.metrics import error_stats
 from ..learn.optim import Adam
 from ..learn.whole_plan import LEARNABLE, SOURCES, PlanGrids
+from ..model.fastpath import without_fastpath
 from ..model.outputs import flat_output, iter_tensors
 from ..model.running import check_data, check_model
 from ..model.sources import Data
@@ -70,6 +71,7 @@ class RefineResult:
         return self.sqnr_db - self.start_sqnr_db
 
 
+@without_fastpath
 def refine_plan(
     model: nn.Module,
     data: Data,

@@ -1,0 +1,169 @@
+"""Rewriting the traced graph: planned weights become integer codes + ``DequantizeLinear``,
+marked activations become (``Clip``,) ``QuantizeLinear`` / ``DequantizeLinear``.
+
+Works on the graph :mod:`.onnx_trace` wrote (weights as named graph inputs, activations
+behind ``Mark`` nodes), after its conversion to the file's opset. Each step is one method:
+:meth:`OnnxRewrite.weight` (one planned weight: codes or its float values),
+:meth:`OnnxRewrite.quantize_marks` (every marker of one activation point). A blocked
+``DequantizeLinear`` or a new kind of point is one more method of the same shape.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import torch
+
+from ..core.grid import UniformGrid
+from .onnx_trace import MARK_DOMAIN
+
+__all__ = ["OnnxRewrite", "onnx_code_type", "type_range", "check_grid", "unmark"]
+
+
+def unmark(proto) -> dict[str, str]:
+    """Turn every ``Mark`` node into an ``Identity`` (standard operators only, so the opset
+    converter accepts the graph) and return output name -> tag, for :meth:`OnnxRewrite.marks`."""
+    marked = {}
+    for node in proto.graph.node:
+        if node.domain == MARK_DOMAIN:
+            marked[node.output[0]] = next(a.s for a in node.attribute if a.name == "tag").decode()
+            node.op_type, node.domain = "Identity", ""
+            del node.attribute[:]
+    keep = [o for o in proto.opset_import if o.domain != MARK_DOMAIN]
+    del proto.opset_import[:]
+    proto.opset_import.extend(keep)
+    names = set(marked)
+    keep_info = [v for v in proto.graph.value_info if v.name not in names]
+    del proto.graph.value_info[:]
+    proto.graph.value_info.extend(keep_info)
+    return marked
+
+
+def onnx_code_type(grid: UniformGrid) -> str:
+    """The ONNX integer type that stores the grid's codes: ``"int4"``, ``"uint8"``, ...
+
+    >>> onnx_code_type(UniformGrid(3, 0.1)), onnx_code_type(UniformGrid(12, 0.1, signed=False))
+    ('int4', 'uint16')
+    """
+    width = 4 if grid.bits <= 4 else 8 if grid.bits <= 8 else 16
+    return f"{'' if grid.signed else 'u'}int{width}"
+
+
+def type_range(grid: UniformGrid) -> tuple[int, int]:
+    width = int(onnx_code_type(grid).lstrip("uint"))
+    return (-(2 ** (width - 1)), 2 ** (width - 1) - 1) if grid.signed else (0, 2**width - 1)
+
+
+def check_grid(grid: UniformGrid, where: str) -> None:
+    if not grid.has_zero_point():
+        raise ValueError(f"{where}: the grid's offset is not an integer multiple of its scale, so it "
+                         "has no integer zero point and ONNX cannot express it; snap it with "
+                         "UniformGrid.snapped() or fit it under DeviceRules")
+    lo, hi = type_range(grid)
+    z = torch.as_tensor(grid.zero_point)
+    if bool((z < lo).any() or (z > hi).any()):
+        raise ValueError(f"{where}: zero point {z.tolist()} does not fit {onnx_code_type(grid)} "
+                         f"([{lo}, {hi}])")
+
+
+class OnnxRewrite:
+    """Rewrites one traced graph in place; :meth:`finish` writes the node list back."""
+
+    def __init__(self, proto):
+        self.proto, self.graph = proto, proto.graph
+        self.nodes = list(self.graph.node)
+        self._fresh = 0
+
+    # ------------------------------------------------------------------ weights
+    def weight(self, pname: str, value: torch.Tensor, grid: UniformGrid | None,
+               codes: torch.Tensor | None) -> None:
+        """The graph input ``pname`` becomes a constant: ``DequantizeLinear`` of ``codes``
+        with ``grid`` (per-channel ``axis`` as the grid's), or ``value`` in float32."""
+        from onnx import numpy_helper
+
+        spot = next((i for i, v in enumerate(self.graph.input) if v.name == pname), None)
+        if spot is None:
+            raise ValueError(f"the traced graph has no input for parameter {pname!r}")
+        del self.graph.input[spot]
+        if grid is None:
+            arr = value.detach().to(torch.float32).cpu().numpy()
+            self.graph.initializer.append(numpy_helper.from_array(arr, pname))
+            return
+        from onnx import helper
+
+        q = self._constant(self.name(pname + "_quantized"), codes.cpu().numpy(), onnx_code_type(grid))
+        s, z, _, _ = self._scale_zero(pname, grid)
+        attrs = {} if grid.axis is None else {"axis": grid.axis % value.dim()}
+        self.nodes.insert(0, helper.make_node("DequantizeLinear", [q, s, z], [pname],
+                                              name=self.name(pname + "_dequantize"), **attrs))
+
+    # ------------------------------------------------------------------ activations
+    def marks(self, marked: dict[str, str]) -> dict[str, list]:
+        """tag -> the marker nodes carrying it (``marked``: :func:`unmark`'s result)."""
+        out: dict[str, list] = {}
+        for node in self.nodes:
+            if node.op_type == "Identity" and node.output[0] in marked:
+                out.setdefault(marked[node.output[0]], []).append(node)
+        return out
+
+    def quantize_marks(self, tag: str, grid: UniformGrid, nodes: list) -> None:
+        """Each marker of ``tag`` becomes (Clip,) QuantizeLinear, DequantizeLinear with ``grid``."""
+        for node in nodes:
+            at = next(i for i, n in enumerate(self.nodes) if n is node)
+            self.nodes[at:at + 1] = self._quantize_dequantize(node.input[0], node.output[0], grid, tag)
+
+    def finish(self) -> None:
+        del self.graph.node[:]
+        self.graph.node.extend(self.nodes)
+
+    # ------------------------------------------------------------------ helpers
+    def name(self, base: str) -> str:
+        self._fresh += 1
+        return f"{base}_{self._fresh}"
+
+    def _constant(self, name: str, array: np.ndarray, onnx_type: str | None = None) -> str:
+        from onnx import TensorProto, helper, numpy_helper
+
+        if onnx_type is None:
+            t = numpy_helper.from_array(array, name)
+        else:
+            dt = getattr(TensorProto, onnx_type.upper())
+            t = helper.make_tensor(name, dt, list(array.shape), array.reshape(-1).astype(np.int64).tolist())
+        self.graph.initializer.append(t)
+        return name
+
+    def _scale_zero(self, base: str, grid: UniformGrid):
+        scale = grid.scale_tensor().detach().to(torch.float32).cpu().numpy()
+        zp = np.asarray(torch.as_tensor(grid.zero_point).cpu().numpy(), dtype=np.int64)
+        if grid.axis is not None:
+            n = max(scale.size, zp.size)
+            scale, zp = np.broadcast_to(scale.reshape(-1), (n,)).copy(), np.broadcast_to(zp.reshape(-1), (n,)).copy()
+        else:
+            scale, zp = scale.reshape(()), zp.reshape(())
+        s = self._constant(self.name(base + "_scale"), scale.astype(np.float32))
+        z = self._constant(self.name(base + "_zero_point"), zp, onnx_code_type(grid))
+        return s, z, scale, zp
+
+    def _quantize_dequantize(self, src: str, out: str, grid: UniformGrid, base: str) -> list:
+        from onnx import helper
+
+        s, z, scale, zp = self._scale_zero(base, grid)
+        attrs = {} if grid.axis is None else {"axis": grid.axis}  # axis of the quantized value
+        nodes = []
+        lo_t, hi_t = type_range(grid)
+        if (grid.qmin, grid.qmax) != (lo_t, hi_t):  # narrower than the type: clip to the grid first
+            if grid.axis is not None:
+                raise ValueError(f"{base}: a per-channel input grid of {grid.bits} bits is narrower than "
+                                 f"{onnx_code_type(grid)}; export supports per-channel inputs only at "
+                                 "4, 8 or 16 bits")
+            lo = np.float32(grid.qmin - int(zp)) * np.float32(scale)
+            hi = np.float32(grid.qmax - int(zp)) * np.float32(scale)
+            clipped = self.name(base + "_clipped")
+            nodes.append(helper.make_node("Clip", [src, self._constant(self.name(base + "_min"), np.float32(lo)),
+                                                   self._constant(self.name(base + "_max"), np.float32(hi))],
+                                          [clipped], name=self.name(base + "_clip")))
+            src = clipped
+        q = self.name(base + "_quantized")
+        nodes.append(helper.make_node("QuantizeLinear", [src, s, z], [q], name=self.name(base + "_quantize"), **attrs))
+        nodes.append(helper.make_node("DequantizeLinear", [q, s, z], [out], name=self.name(base + "_dequantize"),
+                                      **attrs))
+        return nodes
