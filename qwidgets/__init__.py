@@ -58,6 +58,8 @@ _EXPORTS = {
     "CurvePoint": "planning.curve",
     "export_codes": "planning.apply",
     "export_onnx": "planning.onnx_export",
+    "check_onnx": "planning.onnx_check",
+    "OnnxCheck": "planning.onnx_check",
     "refine_plan": "planning.refining",
     "RefineResult": "planning.refining",
     # drawing

@@ -33,7 +33,7 @@ from ..core.grid import UniformGrid, grid_params
 from ..core.relaxed import relaxed_quantize
 from ..core.rounding import quantize
 from ..core.setting import SOURCES, LayerSetting
-from ..model.entries import find_entries, tapped
+from ..model.entries import find_entries, replace_inputs, tapped
 from ..model.tap_quantize import EachTap
 from ..model.taps import attach
 from ..model.usage import entries_named
@@ -101,16 +101,18 @@ class GridEntry:
 
 
 class _InputHook:
-    """Forward pre-hook on the copy: quantizes the module's first input (relaxed or hard)."""
+    """Forward pre-hook on the copy: quantizes the entry's inputs (relaxed or hard): a
+    layer's first argument, an attention projection's query / key / value (the arguments
+    :func:`qwidgets.apply_plan` quantizes)."""
 
-    def __init__(self, owner: PlanGrids, name: str):
-        self.owner, self.name = owner, name
+    def __init__(self, owner: PlanGrids, entry):
+        self.owner, self.entry = owner, entry
 
-    def __call__(self, module, args):
-        if not args or not isinstance(args[0], torch.Tensor):
+    def __call__(self, module, args, kwargs):
+        if self.owner._mode is None:
             return None
-        q = self.owner._quantize_input(self.name, args[0])
-        return None if q is None else (q,) + tuple(args[1:])
+        return replace_inputs(self.entry, args, kwargs,
+                              lambda v: self.owner._quantize_input(self.entry.name, v))
 
 
 class PlanGrids:
@@ -173,7 +175,7 @@ class PlanGrids:
                     through_taps.append(entry)
                     continue
                 owner = self.model.get_submodule(entry.module) if entry.module else self.model
-                owner.register_forward_pre_hook(_InputHook(self, name))
+                owner.register_forward_pre_hook(_InputHook(self, entry), with_kwargs=True)
         if through_taps:  # reached by taps on the copy (qwidgets.model.taps), quantized like a hook's
             attach(self.model, EachTap(through_taps, self._tapped_input))
 

@@ -11,6 +11,7 @@ from torch import nn
 from ..core.checks import finite_check
 from .fastpath import without_fastpath
 from .layers import LayerInputError, describe_layer, is_quantizable
+from .picking import split_data
 from .running import (
     Data,
     check_max_samples,
@@ -60,7 +61,7 @@ def quantizable_layers(model: nn.Module, data: Data | None = None) -> list[str]:
 
 @without_fastpath
 def capture_inputs(model: nn.Module, data: Data, layers: str | Iterable[str] | None = None, *,
-                   max_samples: int | None = None) -> dict[str, torch.Tensor]:
+                   max_samples: int | None = None, inputs=None) -> dict[str, torch.Tensor]:
     """The tensor each layer received when ``model`` ran once on ``data``.
 
     Parameters
@@ -74,6 +75,8 @@ def capture_inputs(model: nn.Module, data: Data, layers: str | Iterable[str] | N
         from ``model.named_modules()`` (any module type; a single name may be given as a str)
     max_samples : read only the first that many samples (axis 0 of every data tensor, across
         batches; before the forward, so a layer called k times holds k * max_samples rows)
+    inputs : an index, a key or a function picking the model's inputs from each batch
+        (``inputs=0`` for batches of ``(x, y)`` pairs)
 
     Returns a dict from qualified name to a detached copy of the layer's first positional
     input, in execution order. Layers that did not run are left out (an error if named in
@@ -92,6 +95,7 @@ def capture_inputs(model: nn.Module, data: Data, layers: str | Iterable[str] | N
     check_model(model)
     max_samples = check_max_samples(max_samples)
     targets = resolve_layers(model, layers)
+    data, _ = split_data(data, inputs)
     source = data_source(model, data, max_samples)
     names = names_by_id(model)
     calls: dict[str, list[torch.Tensor]] = {}

@@ -26,6 +26,7 @@ from .layers import (
     output_on_grids,
 )
 from .outputs import OutputComparison, call_metric, check_output_fn, float_parts
+from .picking import cut_target, split_data
 from .running import check_model, run_with_hooks
 from .sources import Data, batch_tensors, data_source
 from .tap_quantize import QuantizeTap, tapped_inputs
@@ -131,6 +132,7 @@ def model_error(
     target: Any = None,
     output: Callable[[Any], Any] | None = None,
     max_samples: int | None = None,
+    inputs=None,
 ) -> ModelError:
     """Run ``model`` on ``data`` in float and with the entries in ``settings`` quantized.
 
@@ -147,7 +149,9 @@ def model_error(
     the model's output to what is compared (default: every floating-point tensor of the
     output, nested tuples / lists / dicts / dataclasses included). ``metric(output, target) ->
     float`` is evaluated on both outputs; with many batches ``target`` is an iterable of
-    per-batch targets and the metric is averaged, weighted by batch size.
+    per-batch targets and the metric is averaged, weighted by batch size. ``inputs`` /
+    ``target`` may pick each batch's model inputs and target (an index, a key or a function),
+    as in :func:`qwidgets.evaluate_plan`.
 
     >>> import torch
     >>> from torch import nn
@@ -164,6 +168,7 @@ def model_error(
     check_model(model)
     output = check_output_fn(output)
     chosen = check_settings(model, settings)
+    data, target = split_data(data, inputs, target, uses_target=metric is not None)
     source = data_source(model, data, max_samples)
     targets = None if (source.single or metric is None) else iter(_check_targets(target))
     sums, applied = OutputComparison(), []
@@ -177,7 +182,7 @@ def model_error(
         applied.extend(n for n in ran if n not in applied)
         sums.add(float_parts(ref, "float", output), float_parts(out, "quantized", output))
         if metric is not None:
-            t = target if targets is None else next(targets, None)
+            t = target if targets is None else cut_target(next(targets, None), _samples(batch))
             w = 1 if source.single else _samples(batch)
             mf += w * call_metric(metric, ref, t)
             mq += w * call_metric(metric, out, t)

@@ -46,6 +46,31 @@ def iter_tensors(obj):
             yield from iter_tensors(getattr(obj, f.name))
 
 
+def refill(obj, tensors: list):
+    """``obj`` with its tensors replaced, in :func:`iter_tensors` order, by ``tensors``.
+
+    >>> import torch
+    >>> refill({"a": torch.zeros(1), "b": [torch.zeros(2)]}, [torch.ones(1), torch.ones(2)])["b"][0].tolist()
+    [1.0, 1.0]
+    """
+    it = iter(tensors)
+
+    def go(o):
+        if isinstance(o, torch.Tensor):
+            return next(it)
+        if isinstance(o, Mapping):
+            return {k: go(v) for k, v in o.items()}
+        if isinstance(o, tuple) and hasattr(o, "_fields"):
+            return type(o)(*(go(v) for v in o))
+        if isinstance(o, (list, tuple)):
+            return type(o)(go(v) for v in o)
+        if dataclasses.is_dataclass(o) and not isinstance(o, type):
+            return dataclasses.replace(o, **{f.name: go(getattr(o, f.name))
+                                             for f in dataclasses.fields(o) if f.init})
+        return o
+    return go(obj)
+
+
 def float_parts(out, which: str, output: Callable | None = None) -> list[torch.Tensor]:
     """The floating-point tensors of ``out`` (after ``output(out)`` when given), detached."""
     if output is not None:

@@ -86,6 +86,9 @@ class DataSource:
         return next(iter(self._devices)) if len(self._devices) == 1 else None
 
     def _check(self, batch, where: str):
+        if not getattr(self, "_call_checked", False):
+            _check_call(self._model, batch, where)
+            self._call_checked = True
         tensors = list(batch_tensors(batch, where))
         if not tensors:
             raise ValueError(f"{where} holds no tensor; give a tensor, or a tuple / dict of tensors")
@@ -171,6 +174,27 @@ def call_model(model: nn.Module, batch):
     if isinstance(batch, tuple):
         return model(*batch)
     return model(batch)
+
+
+def _check_call(model, batch, where: str) -> None:
+    """A tuple batch the model's forward cannot take as positional arguments: most often an
+    (inputs, targets) pair; say how to pick the inputs."""
+    if model is None or not isinstance(batch, tuple) or len(batch) < 2:
+        return
+    import inspect
+
+    try:
+        sig = inspect.signature(model.forward)
+    except (TypeError, ValueError):
+        return
+    try:
+        sig.bind(*batch)
+    except TypeError as e:
+        raise TypeError(
+            f"{where} is a tuple of {len(batch)} values, passed as model(*batch), but "
+            f"{type(model).__name__}.forward does not take them ({e}); if each batch is (inputs, "
+            "targets), as a DataLoader over a TensorDataset(x, y) yields, pass inputs=0 (and "
+            "target=1 where a target is used)") from None
 
 
 def _model_dtype_devices(model):

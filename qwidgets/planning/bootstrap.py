@@ -9,6 +9,7 @@ the target is the sample axis; nested tuples, lists and dicts are indexed leaf b
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from collections.abc import Callable, Mapping
 from numbers import Integral, Real
@@ -27,6 +28,8 @@ def take(obj, idx: np.ndarray):
         return obj[idx]
     if isinstance(obj, Mapping):
         return {k: take(v, idx) for k, v in obj.items()}
+    if _is_dataclass(obj):
+        return dataclasses.replace(obj, **{f.name: take(getattr(obj, f.name), idx) for f in _fields(obj)})
     if isinstance(obj, tuple) and hasattr(obj, "_fields"):
         return type(obj)(*(take(v, idx) for v in obj))
     if isinstance(obj, (list, tuple)):
@@ -45,6 +48,9 @@ def concat(parts: list):
         return np.concatenate(parts, axis=0)
     if isinstance(first, Mapping):
         return {k: concat([p[k] for p in parts]) for k in first}
+    if _is_dataclass(first):
+        return dataclasses.replace(first, **{f.name: concat([getattr(p, f.name) for p in parts])
+                                             for f in _fields(first)})
     if isinstance(first, tuple) and hasattr(first, "_fields"):
         return type(first)(*(concat([p[i] for p in parts]) for i in range(len(first))))
     if isinstance(first, (list, tuple)):
@@ -63,11 +69,23 @@ def n_samples(obj) -> int:
         return int(obj.shape[0])
     if isinstance(obj, Mapping):
         obj = list(obj.values())
+    if _is_dataclass(obj):  # the first field that holds a tensor or an array
+        obj = [v for v in (getattr(obj, f.name) for f in dataclasses.fields(obj))
+               if isinstance(v, (torch.Tensor, np.ndarray, Mapping, list, tuple)) or _is_dataclass(v)]
     if isinstance(obj, (list, tuple)) and obj:
-        if isinstance(obj[0], (torch.Tensor, np.ndarray, Mapping, list, tuple)):
+        if isinstance(obj[0], (torch.Tensor, np.ndarray, Mapping, list, tuple)) or _is_dataclass(obj[0]):
             return n_samples(obj[0])
         return len(obj)
     raise ValueError(f"cannot find a sample axis in an output of type {type(obj).__name__}")
+
+
+def _is_dataclass(obj) -> bool:
+    return dataclasses.is_dataclass(obj) and not isinstance(obj, type)
+
+
+def _fields(obj):
+    """The fields a dataclass instance is rebuilt from (``init`` fields)."""
+    return [f for f in dataclasses.fields(obj) if f.init]
 
 
 def check_confidence(confidence, n_boot) -> None:

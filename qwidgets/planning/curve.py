@@ -44,7 +44,8 @@ class CurvePoint:
 @without_fastpath
 def metric_curve(model: nn.Module, data: Any, table: SensitivityTable, *, metric: Callable,
                  target: Any = None, cost: str = "model_kib", points: int = 6, confidence: float = 0.95,
-                 n_boot: int = 1000, seed: int = 0, progress: Callable | None = None) -> list[CurvePoint]:
+                 n_boot: int = 1000, seed: int = 0, progress: Callable | None = None,
+                 output: Callable | None = None, inputs=None) -> list[CurvePoint]:
     """The metric at ``points`` budgets spread evenly in cost along the Pareto front.
 
     ``cost`` as in :func:`pareto_front` (``"model_kib"``, ``"planned_kib"``, ``"mean_bits"``,
@@ -59,6 +60,8 @@ def metric_curve(model: nn.Module, data: Any, table: SensitivityTable, *, metric
     sample axis). Use held-out data, not the data the table was scanned on: the interval
     covers the sampling of the data, not a choice made on the same data. ``progress(i,
     total)``, if given, is called after each point; raising in it stops the curve.
+    ``output``, ``inputs`` and ``target`` as in :func:`qwidgets.evaluate_plan` (the measured
+    SQNR compares ``output(model output)``; ``inputs`` / ``target`` may pick each batch's parts).
 
     >>> import torch
     >>> from torch import nn
@@ -88,7 +91,7 @@ def metric_curve(model: nn.Module, data: Any, table: SensitivityTable, *, metric
         j = int(np.searchsorted(costs, b * (1 + 1e-12), side="right")) - 1
         c, _, plan = front[max(j, 0)]
         rep = evaluate_plan(model, data, plan, metric=metric, target=target, confidence=confidence,
-                            n_boot=n_boot, seed=seed + i)
+                            n_boot=n_boot, seed=seed + i, output=output, inputs=inputs)
         out.append(CurvePoint(budget=float(b) if cost != "bops" else float(round(b)), plan=plan,
                               predicted_sqnr_db=plan.predicted_sqnr_db if plan.predicted_sqnr_db is not None
                               else math.nan,

@@ -12,6 +12,7 @@ from ..core.metrics import ErrorStats
 from ..core.renamed import warn_renamed
 from ..model.fastpath import without_fastpath
 from ..model.outputs import OutputComparison, call_metric, check_output_fn, float_parts
+from ..model.picking import cut_target, split_data
 from ..model.running import run_with_hooks
 from ..model.sources import Data, batch_size, batch_tensors, data_source
 from .apply import planned_copy
@@ -113,7 +114,8 @@ class PlanReport:
 def evaluate_plan(model: nn.Module, data: Data, plan: Plan, *, metric: Callable | None = None,
                   target: Any = None, strict: bool = True, output: Callable | None = None,
                   max_samples: int | None = None, allow_other_weights: bool = False,
-                  confidence: float | None = None, n_boot: int = 1000, seed: int = 0) -> PlanReport:
+                  confidence: float | None = None, n_boot: int = 1000, seed: int = 0,
+                  inputs=None) -> PlanReport:
     """Run the float model and :func:`apply_plan`'s model on ``data`` and compare.
 
     ``data``: one batch (tensor, tuple / list of args, dict of kwargs, numpy array) or a
@@ -122,7 +124,9 @@ def evaluate_plan(model: nn.Module, data: Data, plan: Plan, *, metric: Callable 
     (default: every floating-point tensor of the output). ``metric(output, target) -> float``
     (for example accuracy) is computed for both when given; with many batches ``target`` is an
     iterable of per-batch targets and the metric is averaged, weighted by batch size.
-    ``strict`` and ``allow_other_weights`` as in :func:`apply_plan`. ``model`` is untouched.
+    ``inputs``: an index, a key or a function picking the model's inputs from each batch
+    (``inputs=0`` for a loader of ``(x, y)`` pairs); ``target`` may then be an index, a key or a
+    function picking each batch's target (``target=1``). ``strict`` and ``allow_other_weights`` as in :func:`apply_plan`. ``model`` is untouched.
 
     ``confidence`` (e.g. 0.95, with a metric): the report's ``drop_low`` / ``drop_high`` give a
     paired percentile bootstrap interval of the drop ``metric_float - metric_planned``
@@ -147,6 +151,7 @@ def evaluate_plan(model: nn.Module, data: Data, plan: Plan, *, metric: Callable 
     if metric is not None and not callable(metric):
         raise TypeError(f"metric must be a callable metric(output, target) -> float, got {type(metric).__name__}")
     output = check_output_fn(output)
+    data, target = split_data(data, inputs, target, uses_target=metric is not None)
     checked: set = set()  # each batch's tensors, checked by the data source
     # the skipped layers are reported in the result, not warned about
     planned, _ = planned_copy(model, plan, strict=strict, allow_other_weights=allow_other_weights,
@@ -168,7 +173,7 @@ def evaluate_plan(model: nn.Module, data: Data, plan: Plan, *, metric: Callable 
         out = run_with_hooks(planned, batch, {}, pre=False)
         sums.add(float_parts(ref, "float", output), float_parts(out, "planned", output))
         if metric is not None:
-            t = target if targets is None else next(targets, None)
+            t = target if targets is None else cut_target(next(targets, None), batch_size(batch))
             w = 1 if source.single else batch_size(batch)
             mf += w * call_metric(metric, ref, t)
             mp += w * call_metric(metric, out, t)

@@ -26,7 +26,8 @@ from ..core.metrics import error_stats
 from ..learn.optim import Adam
 from ..learn.whole_plan import LEARNABLE, SOURCES, PlanGrids
 from ..model.fastpath import without_fastpath
-from ..model.outputs import flat_output, iter_tensors
+from ..model.outputs import check_output_fn, flat_output, float_parts, iter_tensors
+from ..model.picking import split_data
 from ..model.running import check_data, check_model
 from ..model.sources import Data
 from .apply import match_plan
@@ -88,6 +89,8 @@ def refine_plan(
     seed: int = 0,
     callback: Callable[[int, RefineResult], object] | None = None,
     rules: DeviceRules | None = None,
+    output: Callable | None = None,
+    inputs=None,
 ) -> RefineResult:
     """Learn every planned grid together on the model's output (relaxed quantization).
 
@@ -133,6 +136,10 @@ def refine_plan(
     progress : show a tqdm progress bar
     seed : seeds the mini-batches and the relaxed samples (a run is repeatable)
     callback : see above; for a widget: a progress readout and a stop button
+    output : a function from the model's output to what is compared (the default loss and
+        the hard SQNR; default: every floating-point tensor of the output)
+    inputs : an index, a key or a function picking the model's inputs from the batch; then
+        ``target`` may be an index, a key or a function picking the target from it
 
     >>> import torch
     >>> from torch import nn
@@ -146,6 +153,8 @@ def refine_plan(
     (True, True)
     """
     check_model(model)
+    output = check_output_fn(output)
+    data, target = split_data(data, inputs, target)
     if not isinstance(plan, Plan):
         raise TypeError(f"plan must be a Plan, got {type(plan).__name__}")
     _, skipped = match_plan(model, plan, strict=True)
@@ -181,24 +190,24 @@ def refine_plan(
     with _threads_for(model):
         return _refine(model, data, n, plan, steps=steps, lr=lr, loss=loss, target=target,
                        batch_size=batch_size, learn=learn, sources=sources, progress=progress,
-                       seed=seed, callback=callback)
+                       seed=seed, callback=callback, output=output)
 
 
 def _refine(model, data, n, plan, *, steps, lr, loss, target, batch_size, learn, sources,
-            progress, seed, callback) -> RefineResult:
+            progress, seed, callback, output=None) -> RefineResult:
     grids = PlanGrids(model, plan.layers, learn=learn, sources=sources)
     reference = grids.float_output(data)
-    ref_flat = flat_output(reference, "float")
+    ref_flat = flat_output(reference, "float", output)
     power = float(ref_flat.double().square().mean())
     if power == 0.0 and loss is None:
         raise ValueError("the model's float output is all zeros on this data; there is no error to learn against")
-    shapes = [tuple(t.shape) for t in iter_tensors(reference) if t.is_floating_point()]
+    shapes = [tuple(t.shape) for t in float_parts(reference, "float", output)]
     if any(len(sh) == 0 or sh[0] != n for sh in shapes):
         raise ValueError(f"the model's output tensors must have one row per sample ({n}) to be compared "
                          f"batch by batch, got shapes {shapes}")
 
     def measure(settings) -> float:
-        return error_stats(ref_flat, flat_output(grids.hard(data, settings), "quantized")).sqnr_db
+        return error_stats(ref_flat, flat_output(grids.hard(data, settings), "quantized", output)).sqnr_db
 
     start_settings = dict(plan.layers)
     best = [measure(start_settings), start_settings, 0]
@@ -222,7 +231,8 @@ def _refine(model, data, n, plan, *, steps, lr, loss, target, batch_size, learn,
                                 noise_factor=_geometric(NOISE_FACTOR, frac), generator=gen)
             ref_batch = _take(reference, idx, n)
             if loss is None:
-                value = (_flat_with_grad(out) - flat_output(ref_batch, "float").to(torch.float64)).square().mean() / power
+                value = (_flat_with_grad(out if output is None else output(out))
+                         - flat_output(ref_batch, "float", output).to(torch.float64)).square().mean() / power
             else:
                 value = _user_loss(loss, out, ref_batch if target is None else _take(target, idx, n))
             if params:

@@ -42,6 +42,7 @@ from ..model import outputs, running
 from ..model.batching import cut_batches
 from ..model.entries import call_inputs, coverage_of, tapped, weight_digest
 from ..model.fastpath import without_fastpath
+from ..model.picking import split_data
 from ..model.sources import Data, data_source
 from ..model.taps import fastpath_off, tapping
 from ..model.usage import entries_on
@@ -68,7 +69,8 @@ def scan(model: nn.Module, data: Data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8),
          max_samples: int | None = None, progress: bool = True,
          output: Callable | None = None, estimate: str = "exact",
          batch_size: int | None = None, executor: Executor | None = None,
-         rules: DeviceRules | None = None, input_bits: Sequence[int] = (4, 6, 8)) -> SensitivityTable:
+         rules: DeviceRules | None = None, input_bits: Sequence[int] = (4, 6, 8),
+         inputs=None) -> SensitivityTable:
     """Measure every quantizable weight (entry), quantized alone, at every bit width in ``bits``.
 
     Parameters
@@ -110,6 +112,8 @@ def scan(model: nn.Module, data: Data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8),
         merged into the table a serial scan gives
     rules : :class:`qwidgets.DeviceRules` every fitted grid obeys (widths outside the menus are
         skipped with a warning; weights per tensor where the device needs it)
+    inputs : an index, a key or a function picking the model's inputs from each batch
+        (``inputs=0`` for a ``DataLoader`` of ``(x, y)`` pairs)
 
     The table's :attr:`~SensitivityTable.coverage` says how many weight values were scanned
     and why the others were not.
@@ -123,6 +127,7 @@ def scan(model: nn.Module, data: Data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8),
     (['0', '2'], True)
     """
     running.check_model(model)
+    data, _ = split_data(data, inputs)
     bits = _check_bits_tuple(bits)
     check_choice(quantize, QUANTIZE_MODES, "quantize")
     check_choice(method, METHODS, "method")

@@ -1,0 +1,241 @@
+"""Checking an exported file against the planned model: the ONNX reference evaluator, ONNX
+Runtime without graph optimizations, and ONNX Runtime as it runs by default."""
+
+from __future__ import annotations
+
+import math
+import os
+from collections.abc import Callable
+from dataclasses import dataclass
+
+import numpy as np
+import torch
+from torch import nn
+
+from ..model.fastpath import without_fastpath
+from ..model.outputs import call_metric, check_output_fn, float_parts, iter_tensors, refill
+from ..model.picking import cut_target, split_data
+from ..model.sources import batch_size, data_source
+from .apply import planned_copy
+from .onnx_export import require_onnx
+from .onnx_trace import float32_copy, graph_inputs
+from .plan import Plan
+
+__all__ = ["check_onnx", "OnnxCheck", "MATCH_RTOL"]
+
+MATCH_RTOL = 1e-5  # relative difference under which a float32 file matches apply_plan
+
+_OPTIMIZED_NOTE = (
+    "ONNX Runtime's default session (graph optimizations on) fuses each QuantizeLinear / "
+    "DequantizeLinear pair around a MatMul, Gemm or Conv into an integer kernel (for example "
+    "MatMulInteger or QLinearConv: integer products accumulated in int32, then requantized with "
+    "the kernel's own rounding), so its output differs from apply_plan's fake-quantized float "
+    "arithmetic. That difference is the runtime's integer arithmetic, not an error in the file: "
+    "the file itself matches when the runtime runs it as written (optimizations off) and in the "
+    "ONNX reference evaluator. Judge the deployed accuracy on the runtime that will serve it.")
+
+
+@dataclass(frozen=True)
+class OnnxCheck:
+    """An exported file run three ways on the data and compared with :func:`qwidgets.apply_plan`.
+
+    ``reference_diff`` / ``runtime_diff`` / ``optimized_diff``: the relative difference
+    ``||file - planned|| / ||planned||`` (float64 sums over every compared output value) in
+    the ONNX reference evaluator, in ONNX Runtime with ``ORT_DISABLE_ALL`` and in ONNX
+    Runtime's default session; ``*_max_abs``: the largest absolute difference. ``matches``:
+    the first two are both under ``tolerance``. ``metric_planned`` / ``metric_runtime`` /
+    ``metric_optimized``: ``metric(output, target)`` on apply_plan's, the plain runtime's and
+    the optimized runtime's outputs (None without ``metric``). ``note``: how the model was
+    compared (a half-precision model is compared as float32, as its file computes);
+    ``optimized_error``: why the default session could not run the file (its optimizer
+    rewrote the graph into one it then refused), else None, with the optimized figures NaN.
+    """
+
+    path: str
+    n_samples: int
+    reference_diff: float
+    runtime_diff: float
+    optimized_diff: float
+    reference_max_abs: float
+    runtime_max_abs: float
+    optimized_max_abs: float
+    tolerance: float = MATCH_RTOL
+    metric_planned: float | None = None
+    metric_runtime: float | None = None
+    metric_optimized: float | None = None
+    note: str = ""
+    optimized_error: str | None = None
+
+    @property
+    def matches(self) -> bool:
+        return self.reference_diff < self.tolerance and self.runtime_diff < self.tolerance
+
+    def __str__(self) -> str:
+        verdict = "matches" if self.matches else "does NOT match"
+        lines = [f"{self.path} {verdict} apply_plan on {self.n_samples} samples "
+                 f"(relative difference < {self.tolerance:g}):",
+                 f"  ONNX reference evaluator:            {self.reference_diff:.3g} "
+                 f"(max abs {self.reference_max_abs:.3g})",
+                 f"  ONNX Runtime, optimizations off:     {self.runtime_diff:.3g} "
+                 f"(max abs {self.runtime_max_abs:.3g})"]
+        if self.optimized_error is None:
+            lines.append(f"  ONNX Runtime, default optimizations: {self.optimized_diff:.3g} "
+                         f"(max abs {self.optimized_max_abs:.3g})")
+        else:
+            lines.append("  ONNX Runtime, default optimizations: could not run the file: "
+                         + self.optimized_error)
+        if self.metric_planned is not None and self.optimized_error is None:
+            lines.append(f"  metric: apply_plan {self.metric_planned:.6g}, runtime {self.metric_runtime:.6g}, "
+                         f"optimized runtime {self.metric_optimized:.6g}")
+        if self.note:
+            lines.append("  " + self.note)
+        lines.append(_OPTIMIZED_NOTE)
+        return "\n".join(lines)
+
+
+class _Sums:
+    def __init__(self):
+        self.err = self.ref = self.max_abs = 0.0
+
+    def add(self, got: list, want: list) -> None:
+        for g, w in zip(got, want, strict=True):
+            w = w.detach().reshape(-1).to(torch.float64)
+            g = torch.as_tensor(np.asarray(g)).reshape(-1).to(torch.float64)
+            if g.shape != w.shape:
+                raise ValueError(f"the file's output holds {g.numel()} values where the model's holds "
+                                 f"{w.numel()}; was the file exported from this model?")
+            e = g - w
+            self.err += float(e.dot(e))
+            self.ref += float(w.dot(w))
+            self.max_abs = max(self.max_abs, float(e.abs().max()) if e.numel() else 0.0)
+
+    def relative(self) -> float:
+        if self.ref == 0.0:
+            return 0.0 if self.err == 0.0 else math.inf
+        return math.sqrt(self.err / self.ref)
+
+
+@without_fastpath
+def check_onnx(path: str | os.PathLike, model: nn.Module, plan: Plan, data, *,
+               metric: Callable | None = None, target=None, output: Callable | None = None,
+               inputs=None, max_samples: int | None = None) -> OnnxCheck:
+    """Run the file written by :func:`qwidgets.export_onnx` and compare it with ``apply_plan``.
+
+    ``data`` as everywhere (a tensor, a batch of positional / keyword inputs, or an iterable
+    of batches; ``inputs`` / ``target`` may pick each batch's parts, as in
+    :func:`qwidgets.evaluate_plan`); each batch is fed to the graph inputs by the names
+    export_onnx gives them. The file runs in the ONNX reference evaluator, in ONNX Runtime
+    with graph optimizations off (``ORT_DISABLE_ALL``) and in its default session; the first
+    two must match ``apply_plan(model, plan)`` (relative difference under 1e-5 on float32
+    outputs: :attr:`OnnxCheck.matches`), the third is reported with what its difference
+    means. ``output`` selects what is compared (applied to the model's output and to the
+    file's outputs rebuilt in the same structure); ``metric(output, target)`` is reported on
+    apply_plan's and both runtime outputs. A float16 / bfloat16 model is compared as the
+    float32 model its file computes. Needs ``onnx`` and ``onnxruntime``
+    (``pip install 'qwidgets[onnx]'``).
+
+    >>> import os, tempfile, torch
+    >>> from torch import nn
+    >>> from qwidgets import LayerSetting, Plan, UniformGrid, export_onnx
+    >>> from qwidgets.planning.plan import model_fingerprint
+    >>> lin = nn.Linear(3, 2)
+    >>> p = Plan({"": LayerSetting(weight=UniformGrid(4, 0.05), input=UniformGrid(8, 0.02))},
+    ...          {"": 4}, fingerprint=model_fingerprint(lin), weight_shapes={"": (2, 3)}, macs={"": 6})
+    >>> x = torch.randn(16, 3)
+    >>> with tempfile.TemporaryDirectory() as d:
+    ...     _ = export_onnx(lin, p, os.path.join(d, "lin.onnx"), x[:1])
+    ...     check = check_onnx(os.path.join(d, "lin.onnx"), lin, p, x)
+    >>> check.matches, check.reference_diff < 1e-6
+    (True, True)
+    """
+    onnx = require_onnx("check_onnx", runtime=True)
+    import onnxruntime as ort
+    from onnx.reference import ReferenceEvaluator
+
+    if not isinstance(path, (str, os.PathLike)):
+        raise TypeError(f"path must be a str or os.PathLike, got {type(path).__name__}")
+    if not os.path.isfile(path):
+        raise FileNotFoundError(f"path {os.fspath(path)!r} is not a file; write it with export_onnx first")
+    if metric is not None and not callable(metric):
+        raise TypeError(f"metric must be a callable metric(output, target) -> float, got {type(metric).__name__}")
+    output = check_output_fn(output)
+    path = os.fspath(path)
+    data, target = split_data(data, inputs, target, uses_target=metric is not None)
+    net, widened = float32_copy(model)
+    planned, _ = planned_copy(net if widened else model, plan, strict=True, allow_other_weights=widened)
+    names = [i.name for i in onnx.load(path, load_external_data=False).graph.input]
+    sessions, optimized_error = _sessions(path, ort, ReferenceEvaluator)
+    source = data_source(model, data, max_samples)
+    targets = None if (source.single or metric is None) else iter(target)
+    sums = {k: _Sums() for k in sessions}
+    metrics = {k: 0.0 for k in ("planned", *sessions)}
+    weight = n = 0
+    for batch in source:
+        feed = _feed(batch, names, widened)
+        args, kwargs = _call(batch, widened)
+        with torch.no_grad():
+            want = planned.eval()(*args, **kwargs)
+        flat = list(iter_tensors(want))
+        outs = {k: [np.asarray(v) for v in run(feed)] for k, run in sessions.items()}
+        k_n = batch_size(batch)
+        n += k_n
+        t = None
+        if metric is not None:
+            t = target if targets is None else cut_target(next(targets, None), k_n)
+            w = 1 if source.single else k_n
+            metrics["planned"] += w * call_metric(metric, want, t)
+            weight += w
+        for k, got in outs.items():
+            if len(got) != len(flat):
+                raise ValueError(f"the file has {len(got)} outputs, the model's output holds {len(flat)} "
+                                 "tensors; was the file exported from this model?")
+            rebuilt = refill(want, [torch.as_tensor(g) for g in got])
+            sums[k].add(float_parts(rebuilt, "file", output), float_parts(want, "planned", output))
+            if metric is not None:
+                metrics[k] += w * call_metric(metric, rebuilt, t)
+    note = ""
+    if widened:
+        kinds = sorted({str(p.dtype).replace("torch.", "") for p in model.parameters() if p.is_floating_point()})
+        note = (f"the model computes in {', '.join(kinds)}; the file computes in float32 and was compared "
+                "with the plan applied to a float32 copy of the model")
+    m = {k: (None if metric is None else v / weight) for k, v in metrics.items()}
+    opt = sums.get("optimized")
+    return OnnxCheck(path, n, sums["reference"].relative(), sums["runtime"].relative(),
+                     math.nan if opt is None else opt.relative(), sums["reference"].max_abs,
+                     sums["runtime"].max_abs, math.nan if opt is None else opt.max_abs,
+                     metric_planned=m["planned"], metric_runtime=m["runtime"],
+                     metric_optimized=m.get("optimized"), note=note, optimized_error=optimized_error)
+
+
+def _sessions(path: str, ort, reference_evaluator) -> tuple[dict, str | None]:
+    plain = ort.SessionOptions()
+    plain.graph_optimization_level = ort.GraphOptimizationLevel.ORT_DISABLE_ALL
+    cpu = ["CPUExecutionProvider"]
+    runtime = ort.InferenceSession(path, plain, providers=cpu)
+    ref = reference_evaluator(path)
+    out = {"reference": lambda feed: ref.run(None, feed), "runtime": lambda feed: runtime.run(None, feed)}
+    try:
+        optimized = ort.InferenceSession(path, ort.SessionOptions(), providers=cpu)
+    except Exception as e:  # the optimizer's rewrite refused by the runtime itself
+        return out, f"{type(e).__name__}: {e}"
+    out["optimized"] = lambda feed: optimized.run(None, feed)
+    return out, None
+
+
+def _call(batch, widened: bool):
+    """``(args, kwargs)`` of the planned copy's call (float32 tensors for a widened model)."""
+    def f(v):
+        return v.float() if widened and isinstance(v, torch.Tensor) and v.is_floating_point() else v
+    if isinstance(batch, dict):
+        return (), {k: f(v) for k, v in batch.items()}
+    items = batch if isinstance(batch, tuple) else (batch,)
+    return tuple(f(v) for v in items), {}
+
+
+def _feed(batch, names: list[str], widened: bool) -> dict:
+    args, kwargs = _call(batch, widened)
+    want, tensors, _ = graph_inputs(kwargs if isinstance(batch, dict) else args)
+    if want != names:
+        raise ValueError(f"the file's graph inputs are {names}, but the data's batches give {want}; "
+                         "give batches shaped like export_onnx's example_inputs")
+    return {n: t.detach().cpu().numpy() for n, t in zip(want, tensors, strict=True)}

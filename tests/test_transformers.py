@@ -1,0 +1,372 @@
+"""Transformers end to end: scan -> plan -> refine -> export -> check, for nn.MultiheadAttention,
+nn.TransformerEncoder / nn.TransformerDecoderLayer and a GPT-style decoder written with
+F.scaled_dot_product_attention (keyword input, tied embedding, deep-copied blocks, a
+dataclass output, data from a DataLoader of (inputs, targets) pairs).
+
+Outside checks: a naive loop written here (deep copy of the model, each planned tensor
+rounded onto its grid with torch's round / clamp, each planned attention input rounded by a
+forward pre-hook written here, forward); the ONNX reference evaluator
+(onnx.reference.ReferenceEvaluator) and ONNX Runtime with graph optimizations off run each
+exported file (through check_onnx, and once directly here). Tolerances: float32 results of
+the same arithmetic in another operation order (the attention fast path, the runtime's
+kernels) differ by a few float32 roundings, so "equal" is a relative difference < 1e-5.
+"""
+
+from __future__ import annotations
+
+import copy
+import dataclasses
+import math
+import warnings
+
+import numpy as np
+import onnx
+import onnxruntime as ort
+import pytest
+import torch
+import torch.nn.functional as F
+from onnx.reference import ReferenceEvaluator
+from torch import nn
+from torch.utils.data import DataLoader, TensorDataset
+
+from qwidgets import (
+    apply_plan,
+    check_onnx,
+    evaluate_plan,
+    export_onnx,
+    metric_curve,
+    plan_budget,
+    refine_plan,
+    scan,
+)
+
+RTOL = 1e-5  # a few float32 roundings of outputs of order 1
+METRIC_ABS = 1e-6  # a float32 mean of 0 / 1 values, per batch or over all samples at once
+
+
+def _rel(a, b) -> float:
+    a, b = torch.as_tensor(np.asarray(a)).double(), torch.as_tensor(np.asarray(b)).double()
+    return float((a - b).norm() / b.norm())
+
+
+# ---------------------------------------------------------------------------- the naive loop
+def _naive_round(x: torch.Tensor, grid) -> torch.Tensor:
+    """Round ``x`` onto ``grid`` by hand: codes clamp(round(x / S) + Z), values (q - Z) * S."""
+    s = grid.scale_tensor().to(torch.float64)
+    z = torch.as_tensor(grid.zero_point, dtype=torch.float64)
+    if grid.axis is not None:
+        shape = [1] * x.dim()
+        shape[grid.axis] = -1
+        s, z = s.reshape(shape), z.reshape(shape) if z.dim() else z
+    q = torch.clamp(torch.round(x.double() / s) + z, grid.qmin, grid.qmax)
+    return ((q - z) * s).to(x.dtype)
+
+
+def _naive_planned(model: nn.Module, plan) -> nn.Module:
+    """Deep copy; every planned weight rounded; every planned input rounded by a pre-hook."""
+    net = copy.deepcopy(model).eval()
+    with torch.no_grad():
+        for name, s in plan.layers.items():
+            path, attr = _param_of(net, name)
+            owner = net.get_submodule(path) if path else net
+            if s.weight is not None:
+                p = getattr(owner, attr)
+                p.copy_(_naive_round(p.detach(), s.weight))
+            if s.input is not None:
+                # the arguments this entry's weight multiplies: an attention's query, key and
+                # value for in_proj, one of them for q_proj / k_proj / v_proj, else the first
+                which = {"in_proj": (0, 1, 2), "q_proj": (0,), "k_proj": (1,), "v_proj": (2,)}.get(
+                    name.rsplit(".", 1)[-1], (0,)) if isinstance(owner, nn.MultiheadAttention) else (0,)
+
+                def hook(module, args, kwargs, g=s.input, which=which):
+                    done = {}
+
+                    def r(v):
+                        if id(v) not in done:
+                            done[id(v)] = _naive_round(v, g)
+                        return done[id(v)]
+                    return tuple(r(a) if i in which else a for i, a in enumerate(args)), kwargs
+                owner.register_forward_pre_hook(hook, with_kwargs=True)
+    return net
+
+
+def _param_of(net, name):
+    """(owner path, parameter attribute) of a plan entry, written out here per entry kind."""
+    if name.endswith(".in_proj"):
+        return name[: -len(".in_proj")], "in_proj_weight"
+    for k in ("q", "k", "v"):
+        if name.endswith(f".{k}_proj"):
+            return name[: -len(f".{k}_proj")], f"{k}_proj_weight"
+    return name, "weight"
+
+
+# ---------------------------------------------------------------------------- the models
+class Attention(nn.Module):
+    """Self-attention, then cross-attention to a memory of another width (separate q/k/v)."""
+
+    def __init__(self):
+        super().__init__()
+        self.inp = nn.Linear(6, 16)
+        self.self_attn = nn.MultiheadAttention(16, 2, batch_first=True)
+        self.cross = nn.MultiheadAttention(16, 2, kdim=5, vdim=5, batch_first=True)
+        self.head = nn.Linear(16, 3)
+
+    def forward(self, x, memory):
+        h = self.inp(x)
+        h = h + self.self_attn(h, h, h, need_weights=False)[0]
+        h = h + self.cross(h, memory, memory, need_weights=False)[0]
+        return self.head(h.mean(1))
+
+
+class EncoderDecoder(nn.Module):
+    """nn.TransformerEncoder (two byte-identical layers as built) and a TransformerDecoderLayer."""
+
+    def __init__(self):
+        super().__init__()
+        self.inp = nn.Linear(6, 16)
+        layer = nn.TransformerEncoderLayer(16, 2, 32, dropout=0.0, batch_first=True)
+        self.enc = nn.TransformerEncoder(layer, 2, enable_nested_tensor=False)
+        self.dec = nn.TransformerDecoderLayer(16, 2, 32, dropout=0.0, batch_first=True)
+        self.head = nn.Linear(16, 3)
+
+    def forward(self, x):
+        mem = self.enc(self.inp(x))
+        return self.head(self.dec(mem[:, :3], mem).mean(1))
+
+
+@dataclasses.dataclass
+class LMOutput:
+    logits: torch.Tensor
+    hidden: torch.Tensor
+
+
+class Block(nn.Module):
+    def __init__(self, d: int, heads: int):
+        super().__init__()
+        self.heads = heads
+        self.ln1, self.ln2 = nn.LayerNorm(d), nn.LayerNorm(d)
+        self.qkv, self.proj = nn.Linear(d, 3 * d), nn.Linear(d, d)
+        self.fc, self.out = nn.Linear(d, 4 * d), nn.Linear(4 * d, d)
+
+    def forward(self, x):
+        b, t, d = x.shape
+        q, k, v = self.qkv(self.ln1(x)).split(d, dim=2)
+        q, k, v = (z.view(b, t, self.heads, d // self.heads).transpose(1, 2) for z in (q, k, v))
+        y = F.scaled_dot_product_attention(q, k, v, is_causal=True)
+        x = x + self.proj(y.transpose(1, 2).reshape(b, t, d))
+        return x + self.out(F.gelu(self.fc(self.ln2(x))))
+
+
+class TinyGPT(nn.Module):
+    """GPT-style decoder: tied embedding, deep-copied (byte-identical) blocks, keyword input."""
+
+    def __init__(self, vocab=23, d=16, heads=2, n=2, length=8):
+        super().__init__()
+        self.emb = nn.Embedding(vocab, d)
+        self.pos = nn.Parameter(torch.randn(1, length, d) * 0.1)
+        self.blocks = nn.ModuleList([copy.deepcopy(Block(d, heads))] * 1 + [None] * 0)
+        first = self.blocks[0]
+        for _ in range(n - 1):
+            self.blocks.append(copy.deepcopy(first))
+        self.ln = nn.LayerNorm(d)
+        self.head = nn.Linear(d, vocab, bias=False)
+        self.head.weight = self.emb.weight
+
+    def forward(self, input_ids):
+        h = self.emb(input_ids) + self.pos
+        for blk in self.blocks:
+            h = blk(h)
+        h = self.ln(h)
+        return LMOutput(logits=self.head(h), hidden=h)
+
+
+def _token_acc(out, target) -> float:
+    return float((out.logits.argmax(-1) == target).float().mean())
+
+
+# ---------------------------------------------------------------------------- fixtures
+@pytest.fixture(params=[True, False], ids=["fastpath-on", "fastpath-off"])
+def user_fastpath(request):
+    before = torch.backends.mha.get_fastpath_enabled()
+    torch.backends.mha.set_fastpath_enabled(request.param)
+    yield request.param
+    torch.backends.mha.set_fastpath_enabled(before)
+
+
+def _planned_pair(net, data, **kw):
+    table = scan(net, data, bits=(4, 8), quantize="separate", input_bits=(8,), progress=False, **kw)
+    return table, plan_budget(table, mean_bits=6.5)
+
+
+# ---------------------------------------------------------------------------- tests
+@pytest.mark.parametrize("family", ["attention", "encoder-decoder"])
+def test_attention_models_scan_plan_refine_export_check(family, user_fastpath, tmp_path):
+    torch.manual_seed(0)
+    net = (Attention() if family == "attention" else EncoderDecoder()).eval()
+    if family == "attention":
+        data = (torch.randn(48, 7, 6), torch.randn(48, 4, 5))
+    else:
+        data = (torch.randn(48, 7, 6),)
+        a, b = net.enc.layers[0].self_attn.in_proj_weight, net.enc.layers[1].self_attn.in_proj_weight
+        assert torch.equal(a, b)  # byte-identical layers, as nn.TransformerEncoder builds them
+    state = {k: v.clone() for k, v in net.state_dict().items()}
+    table, plan = _planned_pair(net, data)
+    assert torch.backends.mha.get_fastpath_enabled() is user_fastpath  # the user's setting, restored
+    inputs_planned = [n for n, s in plan.layers.items() if s.input is not None]
+    assert any(n.endswith("in_proj") or n.endswith("_proj") for n in inputs_planned)
+
+    # apply_plan and evaluate_plan against the naive loop (float32 rounding apart)
+    held = tuple(d[:16] for d in data)
+    naive = _naive_planned(net, plan)
+    with torch.no_grad():
+        want = naive(*held)
+        got = apply_plan(net, plan)(*held)
+        ref = net(*held)
+    assert _rel(got, want) < RTOL
+    report = evaluate_plan(net, held, plan)
+    naive_db = 10 * math.log10(float(ref.double().square().sum() / (want.double() - ref.double()).square().sum()))
+    assert report.measured_sqnr_db == pytest.approx(naive_db, abs=0.01)
+
+    # refine_plan accepts the plan, input rows included, and keeps widths
+    r = refine_plan(net, data, plan, steps=4, batch_size=16, progress=False)
+    assert r.plan.bits == plan.bits and r.sqnr_db >= r.start_sqnr_db
+    assert all(r.plan.layers[n].input is not None for n in inputs_planned)
+
+    # export: the file matches apply_plan in the reference evaluator and plain ONNX Runtime
+    path = tmp_path / f"{family}.onnx"
+    proto = export_onnx(net, plan, path, tuple(d[:2] for d in data))
+    assert torch.backends.mha.get_fastpath_enabled() is user_fastpath
+    assert sum(n.op_type == "QuantizeLinear" for n in proto.graph.node) >= len(inputs_planned)
+    check = check_onnx(path, net, plan, held)
+    assert check.matches, str(check)
+    assert check.reference_diff < RTOL and check.runtime_diff < RTOL
+    assert (math.isfinite(check.optimized_diff) or check.optimized_error) and "integer kernel" in str(check)
+    feed = {f"input_{i}": d.numpy() for i, d in enumerate(held)}
+    assert _rel(ReferenceEvaluator(str(path)).run(None, feed)[0], want) < RTOL  # direct, against the naive loop
+    assert all(torch.equal(v, state[k]) for k, v in net.state_dict().items())
+    if family == "encoder-decoder":  # each identical layer has its own weight in the file
+        dq = [n.output[0] for n in proto.graph.node if n.op_type == "DequantizeLinear"]
+        assert {"enc.layers.0.self_attn.in_proj_weight", "enc.layers.1.self_attn.in_proj_weight"} <= set(dq)
+
+
+def test_float_passes_equal_the_float_model_with_the_fast_path_on(user_fastpath):
+    """The tool's passes run the decomposed attention; their float output equals the model's
+    own (fast path or not) up to float32 rounding: a plan that quantizes nothing measurably
+    measures an SQNR far above any quantization effect."""
+    torch.manual_seed(1)
+    net = EncoderDecoder().eval()
+    x = torch.randn(16, 7, 6)
+    table, plan = _planned_pair(net, x)
+    with torch.no_grad():
+        ref = net(x)
+    from qwidgets.model.fastpath import attention_fastpath_off
+
+    with attention_fastpath_off(), torch.no_grad():
+        slow = net(x)
+    assert _rel(slow, ref) < RTOL
+    assert torch.backends.mha.get_fastpath_enabled() is user_fastpath
+
+
+def test_gpt_decoder_keyword_input_dataclass_output_and_loader_pairs(tmp_path):
+    torch.manual_seed(2)
+    net = TinyGPT().eval()
+    assert torch.equal(net.blocks[0].qkv.weight, net.blocks[1].qkv.weight)
+    ids = torch.randint(0, 23, (64, 8))
+    nxt = torch.roll(ids, -1, dims=1)
+    loader = DataLoader(TensorDataset(ids, nxt), batch_size=16, shuffle=True,
+                        generator=torch.Generator().manual_seed(0))
+    pick = lambda b: {"input_ids": b[0]}  # noqa: E731
+    logits = lambda o: o.logits  # noqa: E731
+    with pytest.raises(TypeError, match=r"inputs=0"):
+        scan(net, loader, bits=(8,), progress=False)  # a pair without inputs=: the error says so
+    table = scan(net, loader, bits=(4, 8), progress=False, inputs=pick, output=logits)
+    plan = plan_budget(table, mean_bits=6)
+    assert "emb" in plan.layers and "head" not in plan.layers  # tied: one entry
+
+    report = evaluate_plan(net, loader, plan, metric=_token_acc, target=1, inputs=pick, output=logits,
+                           confidence=0.9, n_boot=50)
+    assert report.drop_low <= report.drop <= report.drop_high
+    naive = _naive_planned(net, plan)
+    with torch.no_grad():
+        ref, want = net(input_ids=ids), naive(input_ids=ids)
+    naive_acc = float((want.logits.argmax(-1) == nxt).float().mean())
+    assert report.metric_planned == pytest.approx(naive_acc, abs=METRIC_ABS)  # every sample once, any order
+    db = 10 * math.log10(float(ref.logits.double().square().sum()
+                               / (want.logits.double() - ref.logits.double()).square().sum()))
+    assert report.measured_sqnr_db == pytest.approx(db, abs=0.01)
+    curve = metric_curve(net, loader, table, metric=_token_acc, target=1, inputs=pick, output=logits,
+                         points=2, n_boot=20)
+    assert len(curve) == 2
+
+    r = refine_plan(net, {"input_ids": ids}, plan, steps=3, batch_size=16, progress=False, output=logits)
+    assert r.plan.bits == plan.bits
+
+    path = tmp_path / "gpt.onnx"
+    proto = export_onnx(net, plan, path, {"input_ids": ids[:2]})
+    assert [i.name for i in proto.graph.input] == ["input_ids"]
+    check = check_onnx(path, net, plan, loader, inputs=pick, target=1, metric=_token_acc, output=logits)
+    assert check.matches, str(check)
+    assert check.metric_planned == pytest.approx(naive_acc, abs=METRIC_ABS)
+    so = ort.SessionOptions()
+    so.graph_optimization_level = ort.GraphOptimizationLevel.ORT_DISABLE_ALL
+    got = ort.InferenceSession(str(path), so, providers=["CPUExecutionProvider"]).run(
+        None, {"input_ids": ids.numpy()})
+    assert _rel(got[0], want.logits) < RTOL  # output_0: the dataclass's first tensor
+
+
+@pytest.mark.parametrize("dtype", [torch.float16, torch.bfloat16])
+def test_half_precision_models_export_as_float32_files(dtype, tmp_path):
+    torch.manual_seed(3)
+    half = nn.Sequential(nn.Linear(8, 16), nn.ReLU(), nn.Linear(16, 4)).eval().to(dtype)
+    x = torch.randn(64, 8).to(dtype)
+    plan = plan_budget(scan(half, x, bits=(4, 8), quantize="separate", input_bits=(8,), progress=False),
+                       mean_bits=6)
+    with pytest.warns(UserWarning, match="computes in float32"):
+        proto = export_onnx(half, plan, tmp_path / "h.onnx", x[:2])
+    assert "float32" in proto.doc_string
+    onnx.checker.check_model(proto, full_check=True)
+    check = check_onnx(tmp_path / "h.onnx", half, plan, x)
+    assert check.matches, str(check)
+    assert "float32 copy" in check.note and str(dtype).replace("torch.", "") in check.note
+
+
+def test_check_onnx_and_export_say_what_to_install(monkeypatch, tmp_path):
+    import sys
+
+    net = nn.Linear(3, 2)
+    monkeypatch.setitem(sys.modules, "onnxruntime", None)  # import fails as when not installed
+    with pytest.raises(ImportError, match=r"pip install 'qwidgets\[onnx\]'"):
+        check_onnx(tmp_path / "x.onnx", net, None, torch.zeros(1, 3))
+    monkeypatch.setitem(sys.modules, "onnx", None)
+    with pytest.raises(ImportError, match=r"pip install 'qwidgets\[onnx\]'"):
+        export_onnx(net, None, tmp_path / "x.onnx", torch.zeros(1, 3))
+
+
+def test_loader_pairs_need_inputs_and_take_index_targets():
+    torch.manual_seed(4)
+    net = nn.Sequential(nn.Linear(5, 8), nn.ReLU(), nn.Linear(8, 3)).eval()
+    x, y = torch.randn(40, 5), torch.randint(0, 3, (40,))
+    loader = DataLoader(TensorDataset(x, y), batch_size=16)
+    with pytest.raises(TypeError, match=r"pass inputs=0 \(and target=1"):
+        scan(net, loader, bits=(8,), progress=False)
+    table = scan(net, loader, bits=(4, 8), progress=False, inputs=0)
+    plan = plan_budget(table, mean_bits=6)
+    with pytest.raises(TypeError, match=r"data batch 0 is a tuple of 2 values.*pass inputs=0"):
+        evaluate_plan(net, loader, plan)
+
+    def acc(out, t):
+        return float((out.argmax(1) == t).float().mean())
+    by_pairs = evaluate_plan(net, loader, plan, metric=acc, target=1, inputs=0)
+    whole = evaluate_plan(net, x, plan, metric=acc, target=y)
+    assert by_pairs.metric_planned == pytest.approx(whole.metric_planned, abs=METRIC_ABS)
+    one = evaluate_plan(net, (x, y), plan, metric=acc, target=1, inputs=0)
+    assert one.metric_planned == pytest.approx(whole.metric_planned, abs=METRIC_ABS)
+    with pytest.raises(ValueError, match=r"inputs='x' names a key"):
+        evaluate_plan(net, loader, plan, inputs="x")
+    with pytest.raises(TypeError, match="inputs must be None, an int index"):
+        evaluate_plan(net, loader, plan, inputs=1.5)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        r = refine_plan(net, (x, y), plan, steps=2, progress=False, inputs=0, target=1,
+                        loss=lambda o, t: F.cross_entropy(o, t))
+    assert r.plan.bits == plan.bits
