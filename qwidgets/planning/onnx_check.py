@@ -15,6 +15,7 @@ from torch import nn
 from ..model.fastpath import without_fastpath
 from ..model.outputs import call_metric, check_output_fn, float_parts, iter_tensors, refill
 from ..model.picking import cut_target, split_data
+from ..model.running import run_with_hooks
 from ..model.sources import batch_size, data_source
 from .apply import planned_copy
 from .onnx_export import require_onnx
@@ -35,6 +36,16 @@ _OPTIMIZED_NOTE = (
     "ONNX reference evaluator. Judge the deployed accuracy on the runtime that will serve it.")
 
 
+_FLIP_NOTE = (
+    "The file computes the float operations between quantizers (normalizations, matrix "
+    "products, softmax, GELU) with its own kernels, whose results differ from torch's by float32 "
+    "rounding; an activation value within that rounding of a boundary of its grid then rounds to "
+    "the neighbouring level, a whole step away. With quantized activations a few such values make "
+    "the file differ by more than float rounding without any error in it: compare the difference "
+    "with the plan's own effect above, and check that the weights alone match (a plan without "
+    "input grids).")
+
+
 @dataclass(frozen=True)
 class OnnxCheck:
     """An exported file run three ways on the data and compared with :func:`qwidgets.apply_plan`.
@@ -49,6 +60,8 @@ class OnnxCheck:
     compared (a half-precision model is compared as float32, as its file computes);
     ``optimized_error``: why the default session could not run the file (its optimizer
     rewrote the graph into one it then refused), else None, with the optimized figures NaN.
+    ``plan_diff``: the relative difference of apply_plan's output from the float model's (the
+    plan's own effect), the scale against which a file's difference is small or not.
     """
 
     path: str
@@ -65,6 +78,7 @@ class OnnxCheck:
     metric_optimized: float | None = None
     note: str = ""
     optimized_error: str | None = None
+    plan_diff: float = math.nan
 
     @property
     def matches(self) -> bool:
@@ -87,8 +101,11 @@ class OnnxCheck:
         if self.metric_planned is not None and self.optimized_error is None:
             lines.append(f"  metric: apply_plan {self.metric_planned:.6g}, runtime {self.metric_runtime:.6g}, "
                          f"optimized runtime {self.metric_optimized:.6g}")
+        lines.append(f"  (the plan itself moves the output by {self.plan_diff:.3g} relative to the float model)")
         if self.note:
             lines.append("  " + self.note)
+        if not self.matches:
+            lines.append(_FLIP_NOTE)
         lines.append(_OPTIMIZED_NOTE)
         return "\n".join(lines)
 
@@ -123,8 +140,8 @@ def check_onnx(path: str | os.PathLike, model: nn.Module, plan: Plan, data, *,
 
     ``data`` as everywhere (a tensor, a batch of positional / keyword inputs, or an iterable
     of batches; ``inputs`` / ``target`` may pick each batch's parts, as in
-    :func:`qwidgets.evaluate_plan`); each batch is fed to the graph inputs by the names
-    export_onnx gives them. The file runs in the ONNX reference evaluator, in ONNX Runtime
+    :func:`qwidgets.evaluate_plan`); a dict batch feeds the graph inputs of the same names, a
+    tensor or tuple feeds them in order. The file runs in the ONNX reference evaluator, in ONNX Runtime
     with graph optimizations off (``ORT_DISABLE_ALL``) and in its default session; the first
     two must match ``apply_plan(model, plan)`` (relative difference under 1e-5 on float32
     outputs: :attr:`OnnxCheck.matches`), the third is reported with what its difference
@@ -168,6 +185,7 @@ def check_onnx(path: str | os.PathLike, model: nn.Module, plan: Plan, data, *,
     source = data_source(model, data, max_samples)
     targets = None if (source.single or metric is None) else iter(target)
     sums = {k: _Sums() for k in sessions}
+    effect = _Sums()  # apply_plan against the float model
     metrics = {k: 0.0 for k in ("planned", *sessions)}
     weight = n = 0
     for batch in source:
@@ -176,6 +194,8 @@ def check_onnx(path: str | os.PathLike, model: nn.Module, plan: Plan, data, *,
         with torch.no_grad():
             want = planned.eval()(*args, **kwargs)
         flat = list(iter_tensors(want))
+        ref = run_with_hooks(net if widened else model, _batch_of(args, kwargs), {}, pre=False)
+        effect.add(float_parts(want, "planned", output), float_parts(ref, "float", output))
         outs = {k: [np.asarray(v) for v in run(feed)] for k, run in sessions.items()}
         k_n = batch_size(batch)
         n += k_n
@@ -204,7 +224,8 @@ def check_onnx(path: str | os.PathLike, model: nn.Module, plan: Plan, data, *,
                      math.nan if opt is None else opt.relative(), sums["reference"].max_abs,
                      sums["runtime"].max_abs, math.nan if opt is None else opt.max_abs,
                      metric_planned=m["planned"], metric_runtime=m["runtime"],
-                     metric_optimized=m.get("optimized"), note=note, optimized_error=optimized_error)
+                     metric_optimized=m.get("optimized"), note=note, optimized_error=optimized_error,
+                     plan_diff=effect.relative())
 
 
 def _sessions(path: str, ort, reference_evaluator) -> tuple[dict, str | None]:
@@ -232,9 +253,15 @@ def _call(batch, widened: bool):
     return tuple(f(v) for v in items), {}
 
 
+def _batch_of(args: tuple, kwargs: dict):
+    return kwargs if kwargs else args[0] if len(args) == 1 else tuple(args)
+
+
 def _feed(batch, names: list[str], widened: bool) -> dict:
     args, kwargs = _call(batch, widened)
     want, tensors, _ = graph_inputs(kwargs if isinstance(batch, dict) else args)
+    if not isinstance(batch, dict) and len(tensors) == len(names):
+        want = names  # positional inputs feed the graph's inputs in order, whatever their names
     if want != names:
         raise ValueError(f"the file's graph inputs are {names}, but the data's batches give {want}; "
                          "give batches shaped like export_onnx's example_inputs")

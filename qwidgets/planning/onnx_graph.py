@@ -144,26 +144,44 @@ class OnnxRewrite:
         return s, z, scale, zp
 
     def _quantize_dequantize(self, src: str, out: str, grid: UniformGrid, base: str) -> list:
+        """apply_plan's arithmetic, operation for operation: k = clamp(round((x - o) / S)),
+        value (k - Z) * S, with o = -Z * S the grid's offset in float32. ``QuantizeLinear``
+        with zero point 0 rounds ``(x - o) / S`` (``x / S + Z`` would round the other way at
+        some ties), the ``Clip`` before it keeps k in the grid's range where that is narrower
+        than the type's, and ``DequantizeLinear`` with Z gives (k - Z) * S. A per-channel grid
+        uses ``QuantizeLinear`` with its zero point directly (``axis`` set)."""
         from onnx import helper
 
         s, z, scale, zp = self._scale_zero(base, grid)
-        attrs = {} if grid.axis is None else {"axis": grid.axis}  # axis of the quantized value
-        nodes = []
         lo_t, hi_t = type_range(grid)
-        if (grid.qmin, grid.qmax) != (lo_t, hi_t):  # narrower than the type: clip to the grid first
-            if grid.axis is not None:
+        narrow = (grid.qmin, grid.qmax) != (lo_t, hi_t)
+        if grid.axis is not None:
+            if narrow:
                 raise ValueError(f"{base}: a per-channel input grid of {grid.bits} bits is narrower than "
                                  f"{onnx_code_type(grid)}; export supports per-channel inputs only at "
                                  "4, 8 or 16 bits")
-            lo = np.float32(grid.qmin - int(zp)) * np.float32(scale)
-            hi = np.float32(grid.qmax - int(zp)) * np.float32(scale)
+            q = self.name(base + "_quantized")
+            attrs = {"axis": grid.axis}
+            return [helper.make_node("QuantizeLinear", [src, s, z], [q], name=self.name(base + "_quantize"), **attrs),
+                    helper.make_node("DequantizeLinear", [q, s, z], [out], name=self.name(base + "_dequantize"),
+                                     **attrs)]
+        nodes = []
+        offset = np.float32(grid.offset_tensor().detach().to(torch.float32).cpu().reshape(()).item())
+        if offset != 0:  # x - o, rounded as torch rounds it
+            shifted = self.name(base + "_shifted")
+            nodes.append(helper.make_node("Sub", [src, self._constant(self.name(base + "_offset"), offset)],
+                                          [shifted], name=self.name(base + "_shift")))
+            src = shifted
+        if narrow:  # clip (x - o) to [qmin * S, qmax * S]: round then lands in [qmin, qmax]
+            lo = np.float32(grid.qmin) * np.float32(scale)
+            hi = np.float32(grid.qmax) * np.float32(scale)
             clipped = self.name(base + "_clipped")
             nodes.append(helper.make_node("Clip", [src, self._constant(self.name(base + "_min"), np.float32(lo)),
                                                    self._constant(self.name(base + "_max"), np.float32(hi))],
                                           [clipped], name=self.name(base + "_clip")))
             src = clipped
+        zero = self._constant(self.name(base + "_code_origin"), np.zeros((), np.int64), onnx_code_type(grid))
         q = self.name(base + "_quantized")
-        nodes.append(helper.make_node("QuantizeLinear", [src, s, z], [q], name=self.name(base + "_quantize"), **attrs))
-        nodes.append(helper.make_node("DequantizeLinear", [q, s, z], [out], name=self.name(base + "_dequantize"),
-                                      **attrs))
+        nodes.append(helper.make_node("QuantizeLinear", [src, s, zero], [q], name=self.name(base + "_quantize")))
+        nodes.append(helper.make_node("DequantizeLinear", [q, s, z], [out], name=self.name(base + "_dequantize")))
         return nodes
