@@ -38,7 +38,7 @@ from torch import nn
 
 from ..core.rounding import to_codes
 from .apply import match_plan
-from .onnx_graph import OnnxRewrite, check_grid, onnx_code_type, unmark
+from .onnx_graph import OnnxRewrite, check_onnx_grid, onnx_code_type, unmark
 from .onnx_trace import float32_copy, graph_inputs, quantization_points, trace_float
 from .plan import Plan
 
@@ -105,7 +105,7 @@ def export_onnx(model: nn.Module, plan: Plan, path: str | os.PathLike,
         s = plan.layers[name]
         for role, grid in (("weight", s.weight), ("input", s.input)):
             if grid is not None:
-                check_grid(grid, f"layer {name!r} {role}")
+                check_onnx_grid(grid, f"layer {name!r} {role}")
 
     net, widened = float32_copy(model)
     if widened:

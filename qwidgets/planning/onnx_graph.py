@@ -16,7 +16,7 @@ import torch
 from ..core.grid import UniformGrid
 from .onnx_trace import MARK_DOMAIN
 
-__all__ = ["OnnxRewrite", "onnx_code_type", "type_range", "check_grid", "unmark"]
+__all__ = ["OnnxRewrite", "onnx_code_type", "type_range", "check_onnx_grid", "unmark"]
 
 
 def unmark(proto) -> dict[str, str]:
@@ -53,7 +53,7 @@ def type_range(grid: UniformGrid) -> tuple[int, int]:
     return (-(2 ** (width - 1)), 2 ** (width - 1) - 1) if grid.signed else (0, 2**width - 1)
 
 
-def check_grid(grid: UniformGrid, where: str) -> None:
+def check_onnx_grid(grid: UniformGrid, where: str) -> None:
     if not grid.has_zero_point():
         raise ValueError(f"{where}: the grid's offset is not an integer multiple of its scale, so it "
                          "has no integer zero point and ONNX cannot express it; snap it with "
