@@ -106,7 +106,8 @@ class OnnxCheck:
             lines.append("  " + self.note)
         if not self.matches:
             lines.append(_FLIP_NOTE)
-        lines.append(_OPTIMIZED_NOTE)
+        if self.optimized_error is not None or not self.optimized_diff < self.tolerance:
+            lines.append(_OPTIMIZED_NOTE)
         return "\n".join(lines)
 
 

@@ -69,7 +69,8 @@ def export_onnx(model: nn.Module, plan: Plan, path: str | os.PathLike,
 
     ``example_inputs``: a tensor, a tuple of positional inputs (graph inputs ``input_0``,
     ``input_1``, ...) or a dict of keyword inputs (graph inputs named by its keys); axis 0 of
-    each tensor is exported as a dynamic batch axis, other values are fixed in the graph. The
+    each tensor is exported as a dynamic batch axis (the other axes, a sequence length
+    included, keep the example's sizes), other values are fixed in the graph. The
     graph's outputs ``output_0``, ... are the tensors of the model's output, in order (a
     tuple, dict or dataclass output flattened as :func:`qwidgets.evaluate_plan` reads it).
     ``model`` is not changed. Every planned grid must have an integer zero point that fits its
