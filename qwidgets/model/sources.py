@@ -86,9 +86,6 @@ class DataSource:
         return next(iter(self._devices)) if len(self._devices) == 1 else None
 
     def _check(self, batch, where: str):
-        if not getattr(self, "_call_checked", False):
-            _check_call(self._model, batch, where)
-            self._call_checked = True
         tensors = list(batch_tensors(batch, where))
         if not tensors:
             raise ValueError(f"{where} holds no tensor; give a tensor, or a tuple / dict of tensors")
@@ -101,6 +98,9 @@ class DataSource:
                 raise ValueError(
                     f"{n} is on {t.device} but the model's parameters are on "
                     f"{', '.join(sorted(map(str, self._devices)))}; move one of them")
+        if not getattr(self, "_call_checked", False):
+            _check_call(self._model, batch, where)
+            self._call_checked = True
         return batch
 
     def first_batch(self):
