@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import warnings
-from collections.abc import Iterable
+from collections.abc import Callable, Iterable
 
 import torch
 from torch import nn
@@ -61,7 +61,7 @@ def quantizable_layers(model: nn.Module, data: Data | None = None) -> list[str]:
 
 @without_fastpath
 def capture_inputs(model: nn.Module, data: Data, layers: str | Iterable[str] | None = None, *,
-                   max_samples: int | None = None, inputs=None) -> dict[str, torch.Tensor]:
+                   max_samples: int | None = None, inputs: int | str | Callable | None = None) -> dict[str, torch.Tensor]:
     """The tensor each layer received when ``model`` ran once on ``data``.
 
     Parameters

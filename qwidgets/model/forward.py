@@ -132,7 +132,7 @@ def model_error(
     target: Any = None,
     output: Callable[[Any], Any] | None = None,
     max_samples: int | None = None,
-    inputs=None,
+    inputs: int | str | Callable | None = None,
 ) -> ModelError:
     """Run ``model`` on ``data`` in float and with the entries in ``settings`` quantized.
 

@@ -81,7 +81,7 @@ class _Targets:
             yield self.split.queue.popleft()
 
 
-def split_data(data, inputs=None, target=None, *, uses_target: bool = True) -> tuple:
+def split_data(data, inputs: int | str | Callable | None = None, target=None, *, uses_target: bool = True) -> tuple:
     """``(data, target)`` as the functions below the public ones take them.
 
     One batch: the picked inputs and target at once. Many batches: a re-iterable source of

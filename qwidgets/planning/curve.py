@@ -45,7 +45,7 @@ class CurvePoint:
 def metric_curve(model: nn.Module, data: Any, table: SensitivityTable, *, metric: Callable,
                  target: Any = None, cost: str = "model_kib", points: int = 6, confidence: float = 0.95,
                  n_boot: int = 1000, seed: int = 0, progress: Callable | None = None,
-                 output: Callable | None = None, inputs=None) -> list[CurvePoint]:
+                 output: Callable | None = None, inputs: int | str | Callable | None = None) -> list[CurvePoint]:
     """The metric at ``points`` budgets spread evenly in cost along the Pareto front.
 
     ``cost`` as in :func:`pareto_front` (``"model_kib"``, ``"planned_kib"``, ``"mean_bits"``,

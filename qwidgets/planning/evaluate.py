@@ -115,7 +115,7 @@ def evaluate_plan(model: nn.Module, data: Data, plan: Plan, *, metric: Callable 
                   target: Any = None, strict: bool = True, output: Callable | None = None,
                   max_samples: int | None = None, allow_other_weights: bool = False,
                   confidence: float | None = None, n_boot: int = 1000, seed: int = 0,
-                  inputs=None) -> PlanReport:
+                  inputs: int | str | Callable | None = None) -> PlanReport:
     """Run the float model and :func:`apply_plan`'s model on ``data`` and compare.
 
     ``data``: one batch (tensor, tuple / list of args, dict of kwargs, numpy array) or a

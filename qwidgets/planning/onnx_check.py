@@ -7,6 +7,7 @@ import math
 import os
 from collections.abc import Callable
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import torch
@@ -134,9 +135,9 @@ class _Sums:
 
 
 @without_fastpath
-def check_onnx(path: str | os.PathLike, model: nn.Module, plan: Plan, data, *,
-               metric: Callable | None = None, target=None, output: Callable | None = None,
-               inputs=None, max_samples: int | None = None) -> OnnxCheck:
+def check_onnx(path: str | os.PathLike, model: nn.Module, plan: Plan, data: Any, *,
+               metric: Callable | None = None, target: Any = None, output: Callable | None = None,
+               inputs: int | str | Callable | None = None, max_samples: int | None = None) -> OnnxCheck:
     """Run the file written by :func:`qwidgets.export_onnx` and compare it with ``apply_plan``.
 
     ``data`` as everywhere (a tensor, a batch of positional / keyword inputs, or an iterable

@@ -90,7 +90,7 @@ def refine_plan(
     callback: Callable[[int, RefineResult], object] | None = None,
     rules: DeviceRules | None = None,
     output: Callable | None = None,
-    inputs=None,
+    inputs: int | str | Callable | None = None,
 ) -> RefineResult:
     """Learn every planned grid together on the model's output (relaxed quantization).
 

@@ -70,7 +70,7 @@ def scan(model: nn.Module, data: Data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8),
          output: Callable | None = None, estimate: str = "exact",
          batch_size: int | None = None, executor: Executor | None = None,
          rules: DeviceRules | None = None, input_bits: Sequence[int] = (4, 6, 8),
-         inputs=None) -> SensitivityTable:
+         inputs: int | str | Callable | None = None) -> SensitivityTable:
     """Measure every quantizable weight (entry), quantized alone, at every bit width in ``bits``.
 
     Parameters
