@@ -90,6 +90,26 @@ def _naive_planned(model: nn.Module, plan) -> nn.Module:
     return net
 
 
+def _hooked_part(plan):
+    """The plan's weights, and the inputs its owner module receives: what the naive loop above
+    reaches with module hooks. Attention's own activations (query / key / value /
+    probabilities, the context entering out_proj, scaled_dot_product_attention's operands)
+    are checked against hand-written attentions in test_attention_activations.py; here the
+    full plan is checked through the exported file against apply_plan."""
+    from qwidgets import LayerSetting, Plan
+
+    layers = {}
+    for n, s in plan.layers.items():
+        if plan.entries[n].get("kind") == "activation":
+            continue
+        inp = None if n.endswith("out_proj") else s.input  # the context: inside the attention
+        layers[n] = LayerSetting(weight=s.weight, input=inp)
+    return Plan(layers, {n: plan.bits[n] for n in layers}, fingerprint=plan.fingerprint,
+                weight_shapes={n: plan.weight_shapes[n] for n in layers},
+                macs={n: plan.macs[n] for n in layers},
+                entries={n: {k: v for k, v in plan.entries[n].items() if k != "partner"} for n in layers})
+
+
 def _param_of(net, name):
     """(owner path, parameter attribute) of a plan entry, written out here per entry kind."""
     if name.endswith(".in_proj"):
@@ -217,13 +237,14 @@ def test_attention_models_scan_plan_refine_export_check(family, user_fastpath, t
 
     # apply_plan and evaluate_plan against the naive loop (float32 rounding apart)
     held = tuple(d[:16] for d in data)
-    naive = _naive_planned(net, plan)
+    hooked = _hooked_part(plan)
+    naive = _naive_planned(net, hooked)
     with torch.no_grad():
         want = naive(*held)
-        got = apply_plan(net, plan)(*held)
+        got = apply_plan(net, hooked)(*held)
         ref = net(*held)
     assert _rel(got, want) < RTOL
-    report = evaluate_plan(net, held, plan)
+    report = evaluate_plan(net, held, hooked)
     naive_db = 10 * math.log10(float(ref.double().square().sum() / (want.double() - ref.double()).square().sum()))
     assert report.measured_sqnr_db == pytest.approx(naive_db, abs=0.01)
 
@@ -242,7 +263,16 @@ def test_attention_models_scan_plan_refine_export_check(family, user_fastpath, t
     assert check.reference_diff < RTOL and check.runtime_diff < RTOL
     assert math.isfinite(check.optimized_diff) or check.optimized_error
     feed = {f"input_{i}": d.numpy() for i, d in enumerate(held)}
-    assert _rel(ReferenceEvaluator(str(path)).run(None, feed)[0], want) < RTOL  # direct, against the naive loop
+    with torch.no_grad():
+        planned = apply_plan(net, plan)(*held)
+    assert _rel(ReferenceEvaluator(str(path)).run(None, feed)[0], planned) < RTOL  # direct
+    activations = [n for n in plan.layers if plan.entries[n].get("kind") == "activation"]
+    assert {n.rsplit(".", 1)[-1] for n in activations} >= {"query", "key", "value", "probs"}
+    q_nodes = {n.name.rsplit("_quantize", 1)[0] for n in proto.graph.node if n.op_type == "QuantizeLinear"}
+    assert {f"{n}.input" for n in activations} <= q_nodes  # every planned activation quantized
+    hooked_path = tmp_path / f"{family}-hooked.onnx"  # the naive loop's plan, through a file
+    export_onnx(net, hooked, hooked_path, tuple(d[:2] for d in data))
+    assert _rel(ReferenceEvaluator(str(hooked_path)).run(None, feed)[0], want) < RTOL
     assert all(torch.equal(v, state[k]) for k, v in net.state_dict().items())
     if family == "encoder-decoder":  # each identical layer has its own weight in the file
         dq = [n.output[0] for n in proto.graph.node if n.op_type == "DequantizeLinear"]
@@ -313,6 +343,17 @@ def test_gpt_decoder_keyword_input_dataclass_output_and_loader_pairs(tmp_path):
         None, {"input_ids": ids.numpy()})
     assert _rel(got[0], want.logits) < RTOL  # output_0: the dataclass's first tensor
 
+    # activations too: scaled_dot_product_attention's operands and every layer's input
+    both = plan_budget(scan(net, {"input_ids": ids}, bits=(4, 8), quantize="separate", input_bits=(8,),
+                            progress=False, output=logits), mean_bits=6)
+    sdpa = [n for n in both.layers if ".sdpa." in n]
+    assert {n.rsplit(".", 1)[-1] for n in sdpa} == {"query", "key", "value"}
+    r = refine_plan(net, {"input_ids": ids}, both, steps=2, batch_size=16, progress=False, output=logits)
+    assert r.plan.bits == both.bits
+    export_onnx(net, both, tmp_path / "gpt-both.onnx", {"input_ids": ids[:2]})
+    check = check_onnx(tmp_path / "gpt-both.onnx", net, both, {"input_ids": ids}, output=logits)
+    assert check.matches, str(check)
+
 
 @pytest.mark.parametrize("dtype", [torch.float16, torch.bfloat16])
 def test_half_precision_models_export_as_float32_files(dtype, tmp_path):
@@ -381,3 +422,31 @@ def test_check_text_explains_what_a_difference_means():
     assert same.matches and fused.matches and not flipped.matches
     assert "integer kernel" not in str(same) and "integer kernel" in str(fused)
     assert "neighbouring level" in str(flipped) and "does NOT match" in str(flipped)
+
+
+class _InOut(nn.Module):
+    """A weight stored [in, out] and used through torch.addmm (a common way to write blocks)."""
+
+    def __init__(self, i, o):
+        super().__init__()
+        self.weight = nn.Parameter(torch.randn(i, o) * 0.2)
+        self.bias = nn.Parameter(torch.zeros(o))
+
+    def forward(self, x):
+        return torch.addmm(self.bias, x.reshape(-1, x.shape[-1]), self.weight).view(*x.shape[:-1], -1)
+
+
+def test_weights_found_by_use_export_with_their_inputs(tmp_path):
+    torch.manual_seed(5)
+    net = nn.Sequential(_InOut(6, 12), nn.ReLU(), _InOut(12, 3)).eval()
+    x = torch.randn(32, 5, 6)
+    plan = plan_budget(scan(net, x, bits=(4, 8), quantize="separate", input_bits=(8,), progress=False),
+                       mean_bits=6)
+    assert {n: (s.weight.axis, s.input is not None) for n, s in plan.layers.items()} == {
+        "0": (1, True), "2": (1, True)}  # output channels on axis 1 of an [in, out] weight
+    proto = export_onnx(net, plan, tmp_path / "use.onnx", x[:2])
+    axes = [a.i for n in proto.graph.node if n.op_type == "DequantizeLinear" and n.output[0].endswith(".weight")
+            for a in n.attribute if a.name == "axis"]
+    assert axes == [1, 1]
+    check = check_onnx(tmp_path / "use.onnx", net, plan, x)
+    assert check.matches, str(check)

@@ -112,7 +112,7 @@ def export_onnx(model: nn.Module, plan: Plan, path: str | os.PathLike,
     if widened:
         tensors = [t.float() if t.is_floating_point() else t for t in tensors]
     points = quantization_points(net, plan, found)
-    weights = {e.param: name for name, e in found.items()}
+    weights = {e.param: name for name, e in found.items() if e.kind != "activation"}  # no weight
     proto = trace_float(net, names, tensors, call, list(weights))
     marked = unmark(proto)
     proto = onnx.version_converter.convert_version(proto, opset)
@@ -123,7 +123,12 @@ def export_onnx(model: nn.Module, plan: Plan, path: str | os.PathLike,
         graph.weight(pname, value, grid, None if grid is None else to_codes(value, grid))
     by_tag = graph.marks(marked)
     for point in points:
-        graph.quantize_marks(point.tag, point.grid, by_tag.pop(point.tag, []))
+        nodes = by_tag.pop(point.tag, [])
+        if not nodes:
+            raise ValueError(f"planned input {point.tag!r} is not computed in the exported graph (the "
+                             "model's forward on example_inputs never reached it); its grid cannot be "
+                             "exported")
+        graph.quantize_marks(point.tag, point.grid, nodes)
     graph.finish()
     proto.ir_version = max(10, onnx.helper.find_min_ir_version_for(list(proto.opset_import)))
     if widened:

@@ -25,9 +25,11 @@ import torch
 from torch import nn
 
 from ..core.grid import UniformGrid
-from ..model.entries import replace_inputs
+from ..model.entries import replace_inputs, tapped
 from ..model.fastpath import attention_fastpath_off
 from ..model.outputs import iter_tensors
+from ..model.tap_quantize import EachTap
+from ..model.taps import attach
 
 __all__ = ["QuantPoint", "MARK_DOMAIN", "trace_float", "quantization_points", "graph_inputs"]
 
@@ -76,20 +78,33 @@ class _MarkInputs:
 def quantization_points(net: nn.Module, plan, found: dict) -> list[QuantPoint]:
     """Install the markers of every planned activation on ``net`` (the export's own copy).
 
-    Today: each entry's input grid marks its owner's input arguments (a layer's input; an
-    attention projection's query / key / value). Activation entries without a weight add
-    their markers here, with the tag the rewrite looks up.
+    An entry whose input its owner module receives (a layer's input; an attention
+    projection's query / key / value) is marked by a forward pre-hook; one reached by taps
+    (:func:`qwidgets.model.entries.tapped`: an attention's query / key / value / probabilities,
+    the context entering ``out_proj``, a ``scaled_dot_product_attention`` operand, the other
+    operand of a weight found by use) is marked where the taps reach it, the attention then
+    written out as :func:`qwidgets.apply_plan`'s copy computes it. A new kind of planned
+    activation adds its markers here, tagged ``<entry>.input``.
     """
-    points = []
+    points, through_taps = [], []
     for name, entry in found.items():
         grid = plan.layers[name].input
         if grid is None:
             continue
-        tag = f"{name or 'model'}.input"
+        tag = _tag(name)
+        points.append(QuantPoint(tag, grid))
+        if tapped(entry):
+            through_taps.append(entry)
+            continue
         owner = net.get_submodule(entry.module) if entry.module else net
         owner.register_forward_pre_hook(_MarkInputs(entry, tag), with_kwargs=True)
-        points.append(QuantPoint(tag, grid))
+    if through_taps:
+        attach(net, EachTap(through_taps, lambda name, t: mark(t, _tag(name))))
     return points
+
+
+def _tag(name: str) -> str:
+    return f"{name or 'model'}.input"
 
 
 def graph_inputs(example_inputs) -> tuple[list[str], list[torch.Tensor], object]:
