@@ -254,9 +254,9 @@ def main() -> dict:
     if big is not None:
         print(f"{'4096x4096 walk, sampled while moving':46s} {big['p50']:8.1f} {big['p95']:8.1f} "
               f"{big['n']:4d}")
-    print(f"speed-up over the hand-written cell: {ratios['cell_p50_over_worst_sequence_p50']:.1f}x, "
-          f"over the fair cell: {ratios['fair_cell_p50_over_worst_sequence_p50']:.1f}x "
-          "(baseline p50 / slowest sequence p50)")
+    print(f"speed-up over the fair cell: {ratios['fair_cell_p50_over_worst_sequence_p50']:.1f}x "
+          f"(over the hand-written cell: {ratios['cell_p50_over_worst_sequence_p50']:.1f}x; "
+          "baseline p50 / slowest sequence p50)")
     print("targets: p50 <= 30 ms and p95 <= 60 ms per sequence, >= 12x the hand-written cell; "
           "4096x4096 walk p50 <= 150 ms")
     load = os.getloadavg()[0] if hasattr(os, "getloadavg") else None

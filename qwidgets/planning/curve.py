@@ -11,6 +11,7 @@ from typing import Any
 import numpy as np
 from torch import nn
 
+from ..core.device_rules import DeviceRules
 from ..model.fastpath import without_fastpath
 from .bootstrap import check_confidence
 from .choices import check_cost
@@ -45,12 +46,14 @@ class CurvePoint:
 def metric_curve(model: nn.Module, data: Any, table: SensitivityTable, *, metric: Callable,
                  target: Any = None, cost: str = "model_kib", points: int = 6, confidence: float = 0.95,
                  n_boot: int = 1000, seed: int = 0, progress: Callable | None = None,
-                 output: Callable | None = None, inputs: int | str | Callable | None = None) -> list[CurvePoint]:
+                 output: Callable | None = None, inputs: int | str | Callable | None = None,
+                 assumed_input_bits: int | None = 8, rules: DeviceRules | None = None) -> list[CurvePoint]:
     """The metric at ``points`` budgets spread evenly in cost along the Pareto front.
 
     ``cost`` as in :func:`pareto_front` (``"model_kib"``, ``"planned_kib"``, ``"mean_bits"``,
     ``"bops"``): each point's ``budget`` is in that unit and limits the plan's attribute of the
-    same name (``getattr(point.plan, cost) <= point.budget``).
+    same name (``getattr(point.plan, cost) <= point.budget``); ``assumed_input_bits`` and
+    ``rules`` as in :func:`pareto_front`, so the curve's plans are the front's.
 
     For each budget: the least-noise plan of that cost or less (the front's point), applied
     to a copy of ``model`` and run on ``data`` with the float model; ``metric(output, target)
@@ -83,7 +86,7 @@ def metric_curve(model: nn.Module, data: Any, table: SensitivityTable, *, metric
     if isinstance(points, bool) or not isinstance(points, Integral) or points < 1:
         raise ValueError(f"points must be an int >= 1, got {points!r}")
     check_confidence(confidence, n_boot)
-    front = pareto_front(table, cost)
+    front = pareto_front(table, cost, assumed_input_bits=assumed_input_bits, rules=rules)
     costs = np.array([c for c, _, _ in front], dtype=float)
     budgets = np.linspace(costs[0], costs[-1], points) if points > 1 else costs[-1:]
     out = []

@@ -101,6 +101,8 @@ class PlannerTasks:
             if should_stop():
                 raise _Stopped
 
+        options.setdefault("rules", self.rules)  # the curve's plans are the planner's front's
+        options.setdefault("assumed_input_bits", self.assumed_input_bits)
         try:
             return metric_curve(self.model, data, self.table, metric=self.metric, target=target,
                                 cost=self.kind, points=points, progress=progress, **options)
