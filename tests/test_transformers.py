@@ -450,3 +450,16 @@ def test_weights_found_by_use_export_with_their_inputs(tmp_path):
     assert axes == [1, 1]
     check = check_onnx(tmp_path / "use.onnx", net, plan, x)
     assert check.matches, str(check)
+
+
+def test_scan_view_takes_loader_pairs_with_inputs():
+    from qwidgets import ScanView
+
+    torch.manual_seed(6)
+    net = nn.Sequential(nn.Linear(5, 8), nn.ReLU(), nn.Linear(8, 3)).eval()
+    x, y = torch.randn(40, 5), torch.randint(0, 3, (40,))
+    view = ScanView(net, DataLoader(TensorDataset(x, y), batch_size=16), inputs=0, bits=(4, 8), progress=False)
+    whole = scan(net, x, bits=(4, 8), progress=False)
+    for name in whole.layers:  # the same data, read in batches: float64 sums (float32 rounding apart)
+        assert view.table.sqnr_db(name, 4) == pytest.approx(whole.sqnr_db(name, 4), abs=1e-3)
+    assert view.pick("2", bits=4).explorer.grid.bits == 4  # the explorer reads the picked inputs

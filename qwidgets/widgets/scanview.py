@@ -17,6 +17,7 @@ import ipywidgets as widgets
 from torch import nn
 
 from ..core.checks import check_choice
+from ..model.picking import split_data
 from ..model.sources import Data
 from ..planning.plan import Plan
 from ..planning.scanning import scan
@@ -53,7 +54,8 @@ class ScanView(SnapshotDisplay, widgets.VBox):
 
     ``ScanView(model, data, ...)`` runs :func:`qwidgets.scan` (keywords ``bits``,
     ``quantize``, ``method``, ``per_channel``, ``scope``, ``max_samples``, ``progress``,
-    ``output``, ``estimate`` and ``batch_size`` go to it); ``ScanView(table)`` shows a table made before (add ``model=`` and
+    ``output``, ``estimate`` and ``batch_size`` go to it; ``inputs`` picks the model's inputs
+    from each batch, as there); ``ScanView(table)`` shows a table made before (add ``model=`` and
     ``data=`` to open explorers from it). The scope toggle switches heatmap and table together;
     both use one colour scale (the same for both scopes). With a planner linked
     (:meth:`link_planner`), "use grid in plan" puts the open explorer's grid into its plan.
@@ -72,8 +74,10 @@ class ScanView(SnapshotDisplay, widgets.VBox):
                  quantize: str = "weight", method: str = "mse", per_channel: bool = True,
                  scope: str = "both", max_samples: int | None = None, output: Callable | None = None,
                  progress: bool = True, width: int = 720, estimate: str = "exact",
-                 batch_size: int | None = None):
+                 batch_size: int | None = None, inputs: int | str | Callable | None = None):
         super().__init__()
+        if data is not None:  # the model's inputs of each batch, for the scan and the explorers
+            data, _ = split_data(data, inputs)
         if isinstance(obj, SensitivityTable):
             if (model is None) != (data is None):
                 raise TypeError("to open explorers from a table give both model= and data=")
