@@ -1,11 +1,11 @@
 """The plan file's JSON schema (tables: table_schema.py; the field checks both use: fields.py).
 
 A plan is data, never code: it is written and read as JSON (no pickle), and reading checks
-every field. Its JSON layout (``version`` 2)::
+every field. Its JSON layout (``version`` 3)::
 
     {
       "format": "qwidgets plan",
-      "version": 2,
+      "version": 3,
       "fingerprint": "<sha256 of the model's ordered parameter names and shapes>",
       "predicted_sqnr_db": 31.4,            # or null; +inf is written as null too
       "assumed_input_bits": 8,              # input width used for BOPs where no input grid
@@ -35,7 +35,8 @@ every field. Its JSON layout (``version`` 2)::
       }
     }
 
-Versions (each still reads): 1, without ``figures``; 2 added ``figures``. Plans written before
+Versions (each still reads): 1, without ``figures``; 2 added ``figures``; 3 added
+activation entries (``weight_shape`` [], the optional ``partner``). Plans written before
 entries were recorded (no optional fields) are read as they are: their layers have inputs, no
 digest is checked and ``Plan.model_kib`` is None.
 
@@ -62,8 +63,8 @@ from .fields import (
 )
 
 FORMAT = "qwidgets plan"
-VERSION = 2  # 2 added "figures"; every change of the fields bumps it (CHANGELOG.md)
-READABLE = (1, 2)
+VERSION = 3  # 2 added "figures", 3 activations ("partner"); every change of the fields bumps it
+READABLE = (1, 2, 3)
 
 FIGURES = ("model_kib", "planned_kib", "mean_bits", "bops")  # Plan attributes, budget keywords
 
@@ -87,10 +88,11 @@ def plan_fields(data) -> dict:
     if isinstance(data, dict) and "version" in data and (version not in READABLE or isinstance(version, bool)):
         raise FieldError(f"version {kind_of(version)} is not supported; this qwidgets "
                          f"reads versions {', '.join(map(str, READABLE))}")
-    check_fields(data, _TOP + ("figures",) if version == 2 else _TOP, "the top level", _TOP_OPTIONAL)
+    check_fields(data, _TOP + ("figures",) if version != 1 else _TOP, "the top level", _TOP_OPTIONAL)
     if data["format"] != FORMAT:
         raise FieldError(f"format must be {FORMAT!r}, got {kind_of(data['format'])}")
-    figures = _figures(data["figures"]) if version == 2 else None
+    figures = _figures(data["figures"]) if version != 1 else None
+    layer_optional = _LAYER_OPTIONAL if version == 3 else _LAYER_OPTIONAL[:-1]  # 3 added partner
     fp = fingerprint_field(data["fingerprint"])
     pred = data["predicted_sqnr_db"]
     pred = None if pred is None else number_field(pred, "predicted_sqnr_db")
@@ -104,7 +106,7 @@ def plan_fields(data) -> dict:
     other = None if other is None else int_field(other, "other_weight_bits", 0)
     for name, entry in layers_d.items():
         where = f"layers[{name!r}]"
-        check_fields(entry, _LAYER, where, _LAYER_OPTIONAL)
+        check_fields(entry, _LAYER, where, layer_optional)
         entries[name] = _entry_fields(entry, where)
         b = int_field(entry["bits"], f"{where}.bits", 1, MAX_BITS)
         shape = entry["weight_shape"]

@@ -1,7 +1,8 @@
 """The sensitivity table's JSON schema, as strict as the plan's (schema.py); the field checks
 both use are in fields.py.
 
-Version 2 layout: the top level holds format, version, bits, input_bits (the input widths of
+Version 3 layout (version 3 added activation entries: ``weight_shape`` [] and the optional
+``partner``; versions 1 and 2 still read): the top level holds format, version, bits, input_bits (the input widths of
 ``quantize="separate"``, else empty), quantize, method, per_channel, fingerprint, n_samples
 and layers (optionally coverage and estimate); each entry of layers holds name, type,
 weight_shape, input_shape, macs, layer_sqnr_db / model_sqnr_db (one value per bit width, or
@@ -39,7 +40,8 @@ QUANTIZE_MODES = ("weight", "input", "both", "separate")
 SCOPES = ("layer", "model", "both")
 ESTIMATES = ("exact", "gain")  # how a table's model scope was found (see scan)
 TABLE_FORMAT = "qwidgets sensitivity table"
-TABLE_VERSION = 2  # 2 added input_bits and the input rows of quantize="separate"; 1 still reads
+TABLE_VERSION = 3  # 2 added input_bits and the input rows of quantize="separate", 3 activation
+# entries (weight_shape [], the optional partner); every version still reads
 
 _TOP = ("format", "version", "bits", "quantize", "method", "per_channel", "fingerprint",
         "n_samples", "layers")
@@ -62,8 +64,8 @@ def table_fields(d) -> dict:
     # tables written before "estimate" existed hold exact model scopes
     if d.get("estimate", "exact") not in ESTIMATES:
         raise FieldError(f"estimate must be one of {ESTIMATES}, got {d.get('estimate')!r}")
-    if d["format"] != TABLE_FORMAT or version not in (1, TABLE_VERSION) or isinstance(version, bool):
-        raise FieldError(f"format / version must be {TABLE_FORMAT!r} / 1 or {TABLE_VERSION}, "
+    if d["format"] != TABLE_FORMAT or version not in (1, 2, TABLE_VERSION) or isinstance(version, bool):
+        raise FieldError(f"format / version must be {TABLE_FORMAT!r} / 1, 2 or {TABLE_VERSION}, "
                          f"got {d['format']!r} / {version!r}")
     if not isinstance(d["bits"], list) or not d["bits"]:
         raise FieldError("bits must be a non-empty list of widths")
@@ -73,6 +75,7 @@ def table_fields(d) -> dict:
     if separate != bool(ibits):
         raise FieldError("input_bits must be non-empty exactly when quantize is 'separate'")
     entry_keys = set(_ENTRY) | ({"input_layer_sqnr_db", "input_model_sqnr_db"} if version != 1 else set())
+    optional = _ENTRY_OPTIONAL if version == 3 else _ENTRY_OPTIONAL[:-1]  # 3 added partner
     if not isinstance(d["layers"], list) or not d["layers"]:
         raise FieldError("layers must be a non-empty list")
     names, info, sq, grids = [], {}, {"layer": [], "model": []}, {"weight": {}, "input": {}}
@@ -80,9 +83,9 @@ def table_fields(d) -> dict:
     widths = {"weight": (bits, "bits"), "input": (ibits, "input_bits") if separate else (bits, "bits")}
     for k, e in enumerate(d["layers"]):
         where = f"layers[{k}]"
-        if not isinstance(e, dict) or not entry_keys <= set(e) or not set(e) <= entry_keys | set(_ENTRY_OPTIONAL):
+        if not isinstance(e, dict) or not entry_keys <= set(e) or not set(e) <= entry_keys | set(optional):
             raise FieldError(f"{where} must be an object with fields {sorted(entry_keys)} "
-                             f"(and optionally {sorted(_ENTRY_OPTIONAL)})")
+                             f"(and optionally {sorted(optional)})")
         name = _table_entry(e, where, info)
         names.append(name)
         info[name] = _entry_info(e, where)
