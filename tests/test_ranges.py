@@ -12,9 +12,9 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from qwidgets import UniformGrid, fit_range, quantize
+from qwidgets.core.cell_sums import SortedRows as _SortedRows
 from qwidgets.core.clip_search import GridSpec as _Spec
-from qwidgets.core.clip_search import SortedRows as _SortedRows
-from qwidgets.core.clip_search import sse_direct as _sse_direct
+from qwidgets.core.clip_search import GridSpecs as _Specs
 
 
 def _mse(x, grid):
@@ -191,15 +191,19 @@ def test_asymmetric_mse_beats_symmetric_on_skewed_data():
     assert _mse(x, asym) <= _mse(x, fit_range(x, 3, "minmax", symmetric=False))
 
 
-def test_sorted_and_direct_error_evaluators_agree():
-    # the prefix-sum evaluator must give the same squared error as quantizing directly
+def test_sorted_error_evaluator_agrees_with_quantizing():
+    # reference: each row quantized directly with torch's round / clamp, errors summed in float64
     x = torch.randn(5, 4000, generator=torch.Generator().manual_seed(8)).float()
-    for spec in (_Spec(3, True, True, "midtread"), _Spec(4, False, False, "midrise")):
-        scale = torch.rand(5, 7, dtype=torch.float64) * 0.5 + 0.05
-        offset = (torch.rand(5, 7, dtype=torch.float64) - 0.5) * 0.3
-        fast = _SortedRows(x, spec)(scale, offset)
-        slow = _sse_direct(x, spec, scale, offset)
-        torch.testing.assert_close(fast, slow, rtol=1e-4, atol=1e-6)
+    for specs in (_Specs((3, 1, 8), True, True, "midtread"), _Specs((4, 2), False, False, "midrise")):
+        w = len(specs.specs)
+        scale = torch.rand(5, w, 7, dtype=torch.float64) * 0.5 + 0.05
+        offset = (torch.rand(5, w, 7, dtype=torch.float64) - 0.5) * 0.3
+        fast = _SortedRows(x).sse(specs.layout, scale, offset)
+        for j, spec in enumerate(specs.specs):
+            s, o = scale[:, j, :, None], offset[:, j, :, None]
+            q = ((x[:, None, :].double() - o) / s).round().clamp(spec.qmin, spec.qmax) * s + o
+            slow = ((q - x[:, None, :].double()) ** 2).sum(dim=2)
+            torch.testing.assert_close(fast[:, j], slow, rtol=1e-4, atol=1e-6)
 
 
 # ---------------------------------------------------------------------------- properties

@@ -32,8 +32,9 @@ from numbers import Real
 
 import torch
 
+from .cell_sums import SortedRows
 from .checks import as_input, check_axis, check_bits, check_choice
-from .clip_search import GridSpec, SortedRows, search_asymmetric, search_sample, search_symmetric
+from .clip_search import GridSpec, GridSpecs, search_asymmetric, search_sample, search_symmetric
 from .device_rules import DeviceRules, check_rules, power_of_two_fit
 from .grid import UniformGrid
 
@@ -152,7 +153,7 @@ def _fit_ranges(x, bits, method, signed, symmetric, style, axis, percentile, rul
     bits = [check_bits(b, "bits") for b in bits]
     fitter = RangeFitter(x, method, signed=signed, symmetric=symmetric, style=style, axis=axis,
                          percentile=percentile, rules=rules, role=role, check_finite=check)
-    return [fitter.fit(b) for b in bits]
+    return fitter.fit_many(bits)
 
 
 class RangeFitter:
@@ -202,32 +203,40 @@ class RangeFitter:
 
     def fit(self, bits: int) -> UniformGrid:
         """The grid ``fit_range(x, bits, ...)`` gives, with the shared parts reused."""
-        b = check_bits(bits, "bits")
+        return self.fit_many((bits,))[0]
+
+    def fit_many(self, bits: Sequence[int]) -> list[UniformGrid]:
+        """``[fit(b) for b in bits]``, the MSE searches of all widths run together (the same grids)."""
+        bs = [check_bits(b, "bits") for b in bits]
         if self.rules is not None:
-            b = self.rules.check_bits(b, self.role)
-        spec = GridSpec(b, self.signed, self.symmetric, self.style)
-        sample, method = self._sample, self.method
+            bs = [self.rules.check_bits(b, self.role) for b in bs]
+        if not bs:
+            return []
+        specs = GridSpecs(bs, self.signed, self.symmetric, self.style, self._xf.device)
+        method = self.method
         with torch.no_grad():
-            if sample is not None and self._rows is None and spec.n * 32 <= sample.shape[1]:
-                self._rows = SortedRows(sample, spec)
+            if method == "mse" and self._rows is None:
+                self._rows = SortedRows(self._sample)
             if self.symmetric:
                 if self._extent is None:
-                    self._extent = _sym_extent(self._xf, spec, method, self._pct)
+                    self._extent = _sym_extent(self._xf, specs.specs[0], method, self._pct)
                 r = self._extent
-                if method == "mse":
-                    r = search_symmetric(sample, spec, r, self._rows)
-                scale, offset = spec.symmetric_grid(r)
+                r = search_symmetric(self._rows, specs, r) if method == "mse" else r[:, None].expand(-1, len(bs))
+                pairs = [spec.symmetric_grid(r[:, j]) for j, spec in enumerate(specs.specs)]
             else:
                 if self._extent is None:
                     self._extent = _asym_extent(self._xf, method, self._pct)
                 lo, hi = self._extent
                 if method == "mse":
-                    lo, hi = search_asymmetric(sample, spec, lo, hi, self._rows)
-                scale, offset = spec.asymmetric_grid(lo, hi)
-            grid = _make_grid(spec, scale, offset, self.axis, self.x.device)
+                    lo, hi = search_asymmetric(self._rows, specs, lo, hi)
+                else:
+                    lo, hi = lo[:, None].expand(-1, len(bs)), hi[:, None].expand(-1, len(bs))
+                pairs = [spec.asymmetric_grid(lo[:, j], hi[:, j]) for j, spec in enumerate(specs.specs)]
+            grids = [_make_grid(spec, s, o, self.axis, self.x.device)
+                     for spec, (s, o) in zip(specs.specs, pairs, strict=True)]
         if self.rules is not None and self.rules.pow2_scales:
-            grid = power_of_two_fit(self.x, grid, method)
-        return grid
+            grids = [power_of_two_fit(self.x, g, method) for g in grids]
+        return grids
 
 
 def _make_grid(spec: GridSpec, scale: torch.Tensor, offset: torch.Tensor, axis, device) -> UniformGrid:

@@ -1,0 +1,167 @@
+"""The MSE range search from sorted prefix sums against the search it replaced, written here.
+
+Reference: the sweep-then-golden-section search over the clipping fraction (48 geometric
+fractions from 1e-4 to 1, the widest of equal minima, 22 golden-section steps), every candidate
+grid measured by quantizing every value with torch's own round / clamp (float32, errors summed
+in float64) -- the search ``fit_range`` ran before the sorted evaluator, one width at a time.
+"""
+
+from __future__ import annotations
+
+import math
+
+import pytest
+import torch
+
+from qwidgets import UniformGrid, fit_range, quantize
+from qwidgets.core import clip_search
+from qwidgets.core.cell_sums import DIRECT_LEVELS_PER_VALUE
+from qwidgets.core.clip_search import GridSpec
+from qwidgets.core.ranges import RangeFitter, fit_ranges
+
+GOLD = (math.sqrt(5.0) - 1.0) / 2.0
+
+
+def _sse_by_quantizing(x, spec, scale, offset):  # x (C, M); scale, offset (C, K) -> (C, K)
+    s, o = scale.float()[:, :, None], offset.float()[:, :, None]
+    xx = x[:, None, :]
+    q = ((xx - o) / s).round().clamp(spec.qmin, spec.qmax) * s + o
+    return ((q - xx) ** 2).sum(dim=2, dtype=torch.float64)
+
+
+def _reference_search(objective, rows):
+    t = torch.logspace(-4.0, 0.0, 48, dtype=torch.float64)
+    err = objective(t.expand(rows, -1))
+    best_i = 47 - err.flip(1).argmin(dim=1)
+    best_t, best_e = t[best_i], err.gather(1, best_i[:, None]).squeeze(1)
+    a = torch.where(best_i == 0, 0.0, t[(best_i - 1).clamp(min=0)])
+    b = t[(best_i + 1).clamp(max=47)]
+    c, d = b - GOLD * (b - a), a + GOLD * (b - a)
+    fc, fd = objective(c[:, None]).squeeze(1), objective(d[:, None]).squeeze(1)
+    for _ in range(22):
+        left = fc <= fd
+        b, a = torch.where(left, d, b), torch.where(left, a, c)
+        new = torch.where(left, b - GOLD * (b - a), a + GOLD * (b - a))
+        fnew = objective(new[:, None]).squeeze(1)
+        c, d, fc, fd = (torch.where(left, new, d), torch.where(left, c, new),
+                        torch.where(left, fnew, fd), torch.where(left, fc, fnew))
+        for cand, f in ((c, fc), (d, fd)):
+            better = f < best_e
+            best_t, best_e = torch.where(better, cand, best_t), torch.where(better, f, best_e)
+    return best_t
+
+
+def _reference_symmetric(x2d, bits, signed, style):
+    spec = GridSpec(bits, signed, True, style)
+    a = x2d.abs() if signed else x2d.clamp(min=0)
+    r_max = a.amax(dim=1).double()
+    r_max = torch.where(r_max > 0, r_max, r_max.max() if bool((r_max > 0).any()) else 1.0)
+    tiny = torch.finfo(torch.float32).tiny
+
+    def objective(t):
+        return _sse_by_quantizing(x2d, spec, *spec.symmetric_grid((t * r_max[:, None]).clamp(min=tiny)))
+
+    return spec.symmetric_grid(_reference_search(objective, x2d.shape[0]) * r_max)
+
+
+def _sqnr_db(x, grid):
+    x = x.double()
+    return 10 * math.log10(float((x ** 2).sum()) / float(((quantize(x.float(), grid).double() - x) ** 2).sum()))
+
+
+CASES = [((64, 144), "randn"), ((128, 1152), "heavy"), ((300, 40), "randn"), ((1, 200_000), "heavy"),
+         ((16, 147), "heavy"), ((8, 5000), "relu")]
+
+
+def _values(shape, kind, seed):
+    gen = torch.Generator().manual_seed(seed)
+    x = torch.randn(*shape, generator=gen)
+    if kind == "heavy":  # heavy tails: a few large values, the optimum clips them
+        x = x * torch.rand(*shape, generator=gen) ** 3 * 4
+    if kind == "relu":
+        x = x.clamp(min=0)
+    return x
+
+
+@pytest.mark.parametrize("shape,kind", CASES)
+@pytest.mark.parametrize("style", ["midtread", "midrise"])
+def test_sorted_search_gives_the_grids_of_the_quantizing_search(shape, kind, style):
+    x = _values(shape, kind, seed=shape[0] + len(kind))
+    bits = (2, 3, 4, 5, 6, 8)
+    axis = None if shape[0] == 1 else 0
+    grids = fit_ranges(x, bits, "mse", axis=axis, style=style)
+    signed = bool((x < 0).any())
+    for b, g in zip(bits, grids, strict=True):
+        ref_s, ref_o = _reference_symmetric(x, b, signed, style)
+        got = g.scale_tensor().double().reshape(-1)
+        same = got == ref_s.float().double()
+        assert torch.allclose(got, ref_s, rtol=1e-3)
+        if 2**b > x.shape[1] * DIRECT_LEVELS_PER_VALUE:
+            # measured by rounding the sorted row: the reference's arithmetic, summed in another
+            # order; the search takes the same steps
+            assert float(same.double().mean()) >= 0.95
+        # the prefix sums are more precise than a float32 square per value: where that flips a
+        # near-tie of the golden-section steps, the two grids are equally good
+        for r in torch.nonzero(~same).flatten().tolist():
+            row = x[r]
+            mine = UniformGrid(b, float(got[r]), float(g.offset_tensor().reshape(-1)[r]), signed=signed)
+            theirs = UniformGrid(b, float(ref_s[r]), float(ref_o[r]), signed=signed)
+            assert abs(_sqnr_db(row, mine) - _sqnr_db(row, theirs)) < 1e-3
+
+
+def test_pruned_sweep_picks_what_measuring_every_candidate_picks(monkeypatch):
+    # the same search with the lower-bound pruning switched off is the reference
+    x = _values((200, 300), "heavy", seed=5)
+    kw = dict(axis=0)
+    pruned = fit_ranges(x, (2, 4, 8), "mse", **kw) + fit_ranges(x, (3, 5), "mse", symmetric=False, **kw)
+    calls = []
+    original = clip_search._search
+
+    def no_bound(evaluate, n_rows, device, lower=None):
+        calls.append(lower is not None)
+        return original(evaluate, n_rows, device, None)
+
+    monkeypatch.setattr(clip_search, "_search", no_bound)
+    full = fit_ranges(x, (2, 4, 8), "mse", **kw) + fit_ranges(x, (3, 5), "mse", symmetric=False, **kw)
+    assert calls and all(calls)
+    for p, f in zip(pruned, full, strict=True):
+        assert torch.equal(p.scale_tensor(), f.scale_tensor())
+        assert torch.equal(p.offset_tensor(), f.offset_tensor())
+
+
+def test_pruning_skips_most_sweep_candidates():
+    x = _values((64, 576), "randn", seed=6)
+    rows = clip_search.SortedRows(x)
+    specs = clip_search.GridSpecs((2, 4, 8), True, True, "midtread")
+    measured = []
+    obj = clip_search._Objective(rows, specs, lambda t: specs.symmetric_grid(t * x.abs().amax(1).double()[:, None, None]))
+    original = obj.error
+
+    def counted(t):
+        measured.append(t.shape[1])
+        return original(t)
+
+    obj.error = counted
+    obj.search()
+    sweep = sum(measured) - 24  # the golden-section phase measures 24 points
+    assert sweep <= 48 // 2
+
+
+def test_rows_are_fitted_independently_of_each_other():
+    # a block or channel fit is a fit of each row: the rows stacked give each row's own grid
+    x = _values((12, 256), "heavy", seed=7)
+    together = RangeFitter(x, "mse", axis=0, symmetric=False).fit_many((3, 6))
+    for r in range(12):
+        alone = RangeFitter(x[r:r + 1], "mse", axis=0, symmetric=False, signed=True).fit_many((3, 6))
+        for t, a in zip(together, alone, strict=True):
+            assert float(t.scale_tensor()[r]) == float(a.scale_tensor()[0])
+            assert float(t.offset_tensor()[r]) == float(a.offset_tensor()[0])
+
+
+def test_fit_many_equals_fit_per_width_and_fit_range():
+    x = _values((10, 700), "relu", seed=8)
+    fitter = RangeFitter(x, "mse", axis=0)
+    many = fitter.fit_many((8, 2, 5))
+    for b, g in zip((8, 2, 5), many, strict=True):
+        assert torch.equal(g.scale_tensor(), fitter.fit(b).scale_tensor())
+        assert torch.equal(g.scale_tensor(), fit_range(x, b, "mse", axis=0).scale_tensor())
