@@ -117,7 +117,7 @@ def test_replay_is_kept_when_the_passes_run_on_fewer_threads(monkeypatch):
     torch.manual_seed(9)
     mix, xm = _MixBatch(width=200).eval(), torch.randn(7, 6)
     before = torch.get_num_threads()
-    monkeypatch.setattr(scanning, "fastest_threads", lambda run: 1)
+    monkeypatch.setattr(scanning, "pass_threads", lambda model: 1)
     try:
         torch.set_num_threads(2)
         t = scan(mix, xm, bits=(3, 6), progress=False)

@@ -147,6 +147,12 @@ class GraphReplay:
         raise RuntimeError(f"unexpected graph node {node.op!r}")
 
 
+# what symbolic tracing raises on code it cannot follow (data-dependent control flow, calls
+# that reject a Proxy, attributes a Proxy lacks); anything else propagates
+TRACE_ERRORS = (fx.proxy.TraceError, TypeError, AttributeError, NotImplementedError, RuntimeError,
+                ValueError)
+
+
 def trace(model: nn.Module) -> GraphReplay | None:
     """A :class:`GraphReplay` of ``model``, or None when it does not trace.
 
@@ -159,12 +165,18 @@ def trace(model: nn.Module) -> GraphReplay | None:
     >>> sorted(r.layer_nodes)
     ['0', '2']
     """
+    return trace_or_reason(model)[0]
+
+
+def trace_or_reason(model: nn.Module) -> tuple[GraphReplay | None, str | None]:
+    """(:class:`GraphReplay`, None), or (None, why it does not trace: the error, shortened)."""
     try:
         with _TRACE_LOCK:
             graph = _Tracer().trace(model)
-    except Exception:  # noqa: BLE001 - any tracing failure means: use full forward passes
-        return None
-    return GraphReplay(model, graph)
+    except TRACE_ERRORS as e:
+        text = str(e).strip().splitlines()[0][:160] if str(e).strip() else ""
+        return None, f"{type(e).__name__}: {text}" if text else type(e).__name__
+    return GraphReplay(model, graph), None
 
 
 def _as_call(data) -> tuple[tuple, dict]:

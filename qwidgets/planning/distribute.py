@@ -54,4 +54,5 @@ def merge_shares(parts: list[dict], k: int) -> dict:
         model_sq[i] = part["model_sqnr"][i]
         info[name]["model_pass"] = part["info"][name].get("model_pass", "-")
     out["model_sqnr"], out["info"] = model_sq, info
+    out["notes"] = list(dict.fromkeys(n for p in parts for n in p.get("notes", ())))
     return out

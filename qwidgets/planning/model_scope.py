@@ -19,18 +19,20 @@ import numpy as np
 import torch
 
 from ..model import outputs
-from ..model.replay import evaluating, trace
+from ..model.replay import evaluating, trace_or_reason
 from .gain_probes import probe_noise, probeable
 from .passes import db, model_scope_noise, suffix_noise
 
 
 def model_scope(model, source, found, facts, configs, n_bits: int, info, *, estimate: str, output,
-                progress: bool, share: tuple[int, int] | None = None) -> np.ndarray:
+                progress: bool, share: tuple[int, int] | None = None,
+                notes: list | None = None) -> np.ndarray:
     """Model-scope SQNR (entries x bits) in dB; ``info[name]["model_pass"]`` set for each entry.
 
     ``share=(j, k)``: only the entries ``i % k == j`` (the other rows stay NaN): one executor
-    task's part.
+    task's part. ``notes``: a list to which each slower path taken, and why, is appended.
     """
+    notes = [] if notes is None else notes
     from tqdm.auto import tqdm
 
     names = [f.entry.name for f in facts]
@@ -41,13 +43,21 @@ def model_scope(model, source, found, facts, configs, n_bits: int, info, *, esti
     if estimate == "gain":
         wanted = {i: facts[i].entry for i in mine if facts[i].has_input and probeable(facts[i].entry)}
         probed = probe_noise(model, source, wanted, configs, output, found.n_samples) if wanted else {}
+        lost = sorted(names[i] for i in wanted if i not in probed)
+        if lost:
+            notes.append(f"estimate='gain': {_names(lost)} measured exactly (slower): their output "
+                         "does not reach the model's output through gradients, or a batch too "
+                         "large for the probes was split and the model mixes samples")
         for i, noise_i in probed.items():
             model_sq[i] = [db(sig, v) for v in noise_i]
             info[names[i]]["model_pass"] = "probes"
     rest = [i for i in mine if i not in probed]
-    replay = _checked_replay(model, source, found.refs, output) if rest else None
+    replay, why = _checked_replay(model, source, found.refs, output) if rest else (None, None)
     replayed = [i for i in rest if replay is not None and _replayable(facts[i], replay)]
+    if why is not None and any(_replayable(facts[i], None) for i in rest):
+        notes.append(f"exact model scope without the suffix replay (full forward passes, slower): {why}")
     bar = tqdm(total=len(rest), desc="scan", unit="layer", disable=not progress, leave=False)
+    slow = []
     try:
         if replayed:
             noise = {i: np.zeros(n_bits) for i in replayed}
@@ -78,35 +88,54 @@ def model_scope(model, source, found, facts, configs, n_bits: int, info, *, esti
                 modes.add(mode)
             model_sq[i] = [db(found.reference.sig, v) for v in noise_i]
             info[e.name]["model_pass"] = "stacked" if modes == {"stacked"} else "per bit width"
+            if modes != {"stacked"}:
+                slow.append(e.name)
             bar.update(1)
     finally:
         bar.close()
+    if slow:
+        notes.append(f"{_names(slow)} measured with one full forward pass per bit width (slower): "
+                     "no recorded pass to replay after them, and no stacked pass applies "
+                     "(weight-only, tied or shared weights, or a model that mixes samples)")
     return model_sq
 
 
+def _names(names: list) -> str:
+    shown = ", ".join(map(repr, names[:6]))
+    return f"{len(names)} entr{'y' if len(names) == 1 else 'ies'} ({shown}{', ...' if len(names) > 6 else ''})"
+
+
 def _replayable(f, replay) -> bool:
+    """Whether the entry can be replayed (``replay=None``: whether it could be, given a replay)."""
     e = f.entry
     return (f.has_input and e.kind == "layer" and e.runs_as_module and not e.shared_with
-            and bool(e.module) and e.param == f"{e.module}.weight" and e.module in replay.layer_nodes)
+            and bool(e.module) and e.param == f"{e.module}.weight"
+            and (replay is None or e.module in replay.layer_nodes))
+
+
+# what running a traced graph on data it cannot take raises (anything else propagates)
+_RUN_ERRORS = (RuntimeError, TypeError, ValueError, IndexError, KeyError, AttributeError)
 
 
 def _checked_replay(model, source, refs, output):
-    """A replay of ``model`` whose traced graph gives exactly its float output on the first batch."""
-    replay = trace(model)
-    if replay is None or not refs:
-        return None
+    """(replay, None) when the traced graph gives exactly the float output on the first batch;
+    else (None, why not)."""
+    replay, why = trace_or_reason(model)
+    if replay is None:
+        return None, f"the model does not trace with torch.fx ({why})"
+    if not refs:
+        return None, "no reference outputs were recorded"
     first = next(iter(source))
     try:
         with evaluating(model):
             out = replay.record(first)
         parts = outputs.float_parts(out, "traced", output)
-    except Exception:  # noqa: BLE001 - a graph that does not run on this data is not replayed
-        return None
+    except _RUN_ERRORS as e:
+        return None, f"the traced graph does not run on this data ({type(e).__name__}: {str(e)[:160]})"
     finally:
         replay.values = {}
     ref = refs[0]
     if len(parts) != len(ref) or not all(a.shape == b.shape and torch.equal(a, b)
                                          for a, b in zip(parts, ref, strict=True)):
-        return None
-    return replay
-
+        return None, "the traced graph does not reproduce the model's float output bit for bit"
+    return replay, None

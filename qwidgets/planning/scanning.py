@@ -28,6 +28,7 @@ from __future__ import annotations
 
 import copy
 import threading
+import warnings
 from collections.abc import Callable, Sequence
 from concurrent.futures import Executor
 from numbers import Integral
@@ -60,7 +61,7 @@ from .survey import survey
 from .table import SensitivityTable
 from .table_schema import ESTIMATES, QUANTIZE_MODES, SCOPES
 from .tap_scope import TapScope
-from .threads import fastest_threads, threads, torch_threads
+from .threads import pass_threads, threads, torch_threads
 
 
 @without_fastpath
@@ -151,7 +152,7 @@ def scan(model: nn.Module, data: Data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8),
     options = dict(rules=rules, bits=bits, quantize=quantize, method=method, per_channel=per_channel, scope=scope,
                    max_samples=max_samples, output=output, estimate=estimate, batch_size=batch_size)
     if not separate:
-        return SensitivityTable(**_scan_parts(model, data, options, progress, executor))
+        return _noted(SensitivityTable(**_scan_parts(model, data, options, progress, executor)))
     # each side quantized alone: a weight scan at ``bits`` and an input scan at ``input_bits``
     if executor is None:  # one checked source for both sides (workers get the data itself)
         data = data_source(model, cut_batches(data, batch_size), max_samples)
@@ -162,7 +163,18 @@ def scan(model: nn.Module, data: Data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8),
                                            "inputs_checked": True}, progress, executor)
     except NoInputEntries:
         inputs = None  # only weight-only entries: no input rows at all
-    return SensitivityTable(**_join_sides(weights, inputs, ibits))
+    return _noted(SensitivityTable(**_join_sides(weights, inputs, ibits)))
+
+
+def _noted(table: SensitivityTable) -> SensitivityTable:
+    """The table, with a warning for each slower path the scan took (``table.notes``)."""
+    for note in table.notes:
+        warnings.warn(f"scan: {note}", ScanNote, stacklevel=3)
+    return table
+
+
+class ScanNote(UserWarning):
+    """A scan took a slower path than it could have (the reason is in ``table.notes`` too)."""
 
 
 def _scan_parts(model, data, options: dict, progress: bool, executor) -> dict:
@@ -201,6 +213,8 @@ def _join_sides(weights: dict, inputs: dict | None, ibits: tuple) -> dict:
                model_sqnr=rows(weights, "model_sqnr", nb),
                info={n: weights["info"][n] if n in wpos else inputs["info"][n] for n in names},
                weight_grids={n: weights["weight_grids"].get(n) for n in names})
+    if inputs is not None:
+        out["notes"] = list(dict.fromkeys(list(weights.get("notes", ())) + list(inputs.get("notes", ()))))
     out.update(quantize="separate", input_bits=ibits,
                input_layer_sqnr=rows(inputs, "layer_sqnr", len(ibits)),
                input_model_sqnr=rows(inputs, "model_sqnr", len(ibits)),
@@ -250,10 +264,10 @@ def _scan_entries(model, source, first, entries, usage, options, progress, share
     estimate, output = options["estimate"], options["output"]
     rules = options["rules"]
     qw, qi = quantize in ("weight", "both"), quantize in ("input", "both")
-    # the passes run on the faster of one thread and torch's setting, timed on a float forward;
-    # the survey records the reference outputs on the same threads (a replayed suffix must
-    # reproduce them bit for bit, and thread counts can change a kernel's rounding)
-    n_threads = fastest_threads(lambda: running.run_with_hooks(model, first, {}, pre=False))
+    # the passes' thread count comes from the machine and the model, never from timing (the same
+    # scan gives the same table); the survey records the reference outputs on the same threads
+    # (a replayed suffix must reproduce them bit for bit, and thread counts change rounding)
+    n_threads = pass_threads(model)
     with threads(n_threads):
         found = survey(model, source, entries, want_inputs=qi, keep_refs=scope != "layer",
                        output=output, inputs_checked=options.get("inputs_checked", False))
@@ -303,10 +317,11 @@ def _scan_entries(model, source, first, entries, usage, options, progress, share
                 info[e.name]["partner"] = f.partner
     with threads(n_threads):
         layer_sq = _layer_scope(model, source, facts, configs) if scope != "model" else None
-        model_sq = None
+        model_sq, notes = None, []
         if scope != "layer":
             model_sq = _model_scope(model, source, found, facts, configs, len(bits), info,
-                                    estimate=estimate, output=output, progress=progress, share=share)
+                                    estimate=estimate, output=output, progress=progress, share=share,
+                                    notes=notes)
     cov = coverage_of(model, [f.entry for f in facts], skipped, notes=usage.unusable,
                       float_activations=usage.float_activations)
     return dict(layers=names, bits=bits, quantize=quantize, method=method,
@@ -314,7 +329,7 @@ def _scan_entries(model, source, first, entries, usage, options, progress, share
                 layer_sqnr=layer_sq, model_sqnr=model_sq,
                 weight_grids=wgrids if qw else None, input_grids=igrids if qi else None,
                 n_samples=found.n_samples, coverage=cov,
-                estimate=estimate if scope != "layer" else "exact")
+                estimate=estimate if scope != "layer" else "exact", notes=notes)
 
 
 def _layer_scope(model, source, facts, configs) -> np.ndarray:

@@ -36,7 +36,8 @@ def table_to_dict(self) -> dict:
             "input_bits": list(self._input_bits),
             "quantize": self.quantize, "method": self.method, "per_channel": self.per_channel,
             "fingerprint": self.fingerprint, "n_samples": self.n_samples,
-            "coverage": self.coverage.to_dict(), "estimate": self.estimate, "layers": layers}
+            "coverage": self.coverage.to_dict(), "estimate": self.estimate, "layers": layers,
+            **({"notes": list(self.notes)} if self.notes else {})}
 
 
 def table_from_text(cls, text: str):

@@ -58,9 +58,12 @@ def table_fields(d) -> dict:
         raise FieldError("expected a JSON object at the top level")
     version = d.get("version")
     keys = _TOP if version == 1 else _TOP + ("input_bits",)
-    if not set(keys) <= set(d) <= set(keys) | {"coverage", "estimate"}:
+    if not set(keys) <= set(d) <= set(keys) | {"coverage", "estimate", "notes"}:
         raise FieldError(f"expected an object with fields {list(keys)} (and optionally coverage, "
-                         "estimate)")
+                         "estimate, notes)")
+    notes = d.get("notes", [])
+    if not isinstance(notes, list) or not all(isinstance(n, str) for n in notes):
+        raise FieldError("notes must be a list of strings")
     # tables written before "estimate" existed hold exact model scopes
     if d.get("estimate", "exact") not in ESTIMATES:
         raise FieldError(f"estimate must be one of {ESTIMATES}, got {d.get('estimate')!r}")
@@ -127,7 +130,8 @@ def table_fields(d) -> dict:
         weight_grids={n: grids["weight"].get(n) for n in names} if grids["weight"] else None,
         input_grids=input_grids, n_samples=int(d["n_samples"]), input_bits=ibits,
         coverage=_coverage_from_json(d.get("coverage")), estimate=d.get("estimate", "exact"),
-        input_layer_sqnr=arrays.get("input_layer"), input_model_sqnr=arrays.get("input_model"))
+        input_layer_sqnr=arrays.get("input_layer"), input_model_sqnr=arrays.get("input_model"),
+        notes=notes)
 
 
 def _widths(v, where: str) -> tuple:

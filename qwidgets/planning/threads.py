@@ -1,25 +1,54 @@
-"""How many torch threads each kind of scan work runs with (measured; see the README).
+"""How many torch threads each kind of scan work runs with: chosen from the machine and the model.
 
-Fitting ranges is many small tensor operations (one per candidate grid): a second thread only
-adds hand-offs and, when another process holds a core, stalls (measured 3-25x slower on two
-shared cores), so fitting runs on one thread. The passes are large convolutions and matrix
-products, where more threads help on free cores and hurt badly on busy ones (measured on two
-cores with other processes running: a small residual net's scan 1.1 s on one thread, 17 s on
-two). That depends on the moment, so the scan measures it: ``fastest_threads`` runs the first
-float forward once on one thread and once on torch's setting and keeps the faster for the
-passes (one extra forward per scan).
+Nothing here depends on timing, so the same scan on the same machine gives the same table (the
+thread count can change a kernel's float rounding, and the exact model scope's replay must
+reproduce the float model bit for bit on the passes' threads).
+
+- Fitting ranges is many small tensor operations (one per candidate grid): a second thread only
+  adds hand-offs and, when another process holds a core, stalls (measured 3-25x slower on two
+  shared cores), so fitting runs on one thread.
+- The passes run on torch's thread count (``torch.get_num_threads()``: the machine's cores
+  unless the user set it), except for models under :data:`SMALL_MODEL_PARAMS` parameters, whose
+  layers are too small to split (measured on two cores: a small residual net's scan 1.1 s on
+  one thread, 17 s on two while another process held a core).
+- :func:`set_scan_threads` overrides the passes' count for every later scan.
 """
 
 from __future__ import annotations
 
 import contextlib
-import time
+from numbers import Integral
 
 import torch
+from torch import nn
 
-# kind of work -> thread count (None: torch's current setting; the passes pick theirs by
-# fastest_threads)
+# kind of work -> thread count (None: chosen by pass_threads from the machine and the model)
 THREADS: dict[str, int | None] = {"fit": 1, "passes": None}
+SMALL_MODEL_PARAMS = 1 << 20  # below this many parameters the passes run on one thread
+
+
+def set_scan_threads(passes: int | None) -> None:
+    """Run the passes of every later scan on ``passes`` torch threads (None: the default rule).
+
+    >>> set_scan_threads(1); pass_threads(torch.nn.Linear(4, 4))
+    1
+    >>> set_scan_threads(None)
+    """
+    if passes is not None and (isinstance(passes, bool) or not isinstance(passes, Integral) or passes < 1):
+        raise ValueError(f"passes must be None or an int >= 1, got {passes!r}")
+    THREADS["passes"] = None if passes is None else int(passes)
+
+
+def pass_threads(model: nn.Module) -> int:
+    """The thread count of a scan's passes over ``model`` (see the module docstring).
+
+    >>> pass_threads(torch.nn.Linear(4, 4))
+    1
+    """
+    if THREADS["passes"] is not None:
+        return THREADS["passes"]
+    n_params = sum(p.numel() for p in model.parameters())
+    return 1 if n_params < SMALL_MODEL_PARAMS else torch.get_num_threads()
 
 
 @contextlib.contextmanager
@@ -42,24 +71,6 @@ def torch_threads(kind: str):
         return
     with threads(n):
         yield
-
-
-def fastest_threads(run) -> int:
-    """The faster of one thread and torch's current setting for ``run()`` (called twice).
-
-    >>> fastest_threads(lambda: torch.ones(8).sum()) >= 1
-    True
-    """
-    default = torch.get_num_threads()
-    if default == 1:
-        return 1
-    times = {}
-    for n in (default, 1):
-        with threads(n):
-            t0 = time.perf_counter()
-            run()
-            times[n] = time.perf_counter() - t0
-    return min(times, key=times.get)
 
 
 @contextlib.contextmanager
