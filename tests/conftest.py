@@ -28,6 +28,8 @@ import torch
 from hypothesis import settings
 from torch import nn
 
+from qwidgets.core.grid_cache import GRID_CACHE
+
 SEED = 0
 
 settings.register_profile("ci", derandomize=True, print_blob=True)
@@ -40,6 +42,7 @@ def _seeded_random_state():
     random.seed(SEED)
     np.random.seed(SEED)
     torch.manual_seed(SEED)
+    GRID_CACHE.clear()  # grids fitted by an earlier test are not served to this one
     yield
 
 

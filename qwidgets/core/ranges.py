@@ -200,6 +200,12 @@ class RangeFitter:
             self._sample = search_sample(self._xf) if method == "mse" else None
         self._rows: SortedRows | None = None  # the sorted sample, made by the first width that sorts
         self._extent = None
+        self.digest: str | None = None  # of x's values, set by whoever needs it (grid_cache)
+
+    def options_key(self) -> tuple:
+        """Every option besides the values and the bit width that shapes this fitter's grids."""
+        return (self.method, self.signed, self.symmetric, self.style, self.axis, self._pct,
+                self.rules, self.role)
 
     def fit(self, bits: int) -> UniformGrid:
         """The grid ``fit_range(x, bits, ...)`` gives, with the shared parts reused."""

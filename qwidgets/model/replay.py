@@ -94,11 +94,13 @@ class GraphReplay:
         self.values = env
         return out
 
-    def rerun(self, name: str, replace: Callable[[torch.Tensor], torch.Tensor]) -> object:
+    def rerun(self, name: str, replace: Callable[[torch.Tensor], torch.Tensor],
+              until: fx.Node | None = None) -> object:
         """The output with each call of layer ``name`` computing ``replace(its input)`` instead.
 
         Only the nodes that depend on the layer's outputs are recomputed; the rest come from
-        the last :meth:`record`. Call inside :func:`evaluating` (eval mode, no gradient).
+        the last :meth:`record`. ``until``: stop there and return that node's value instead.
+        Call inside :func:`evaluating` (eval mode, no gradient).
         """
         env = self.values
         local: dict[fx.Node, object] = {}
@@ -107,13 +109,34 @@ class GraphReplay:
             return local[n] if n in local else env[n]
 
         for node in self._suffix(name):
+            if until is not None and node.op == "output":
+                return get(until)
             if node.op == "output":
                 return fx.node.map_arg(node.args[0], get)
             if node.op == "call_module" and node.target == name:
                 local[node] = replace(fx.node.map_arg(node.args[0], get))
             else:
                 local[node] = self._run(node, get)
+            if node is until:
+                return local[node]
         raise RuntimeError("the traced graph has no output node")
+
+    def final_linear(self) -> tuple[str, fx.Node] | None:
+        """(name, input node) of the ``nn.Linear`` whose output is the model's whole output, if any.
+
+        Then the output error of a change ``d`` of that layer's input is ``d W^T`` exactly, and
+        its power ``sum d (W^T W) d^T`` needs no output-wide product (see ``passes``).
+        """
+        out = next((n for n in self.nodes if n.op == "output"), None)
+        head = out.args[0] if out is not None and out.args else None
+        if not isinstance(head, fx.Node) or head.op != "call_module" or len(head.users) != 1:
+            return None
+        module = self._modules.get(head.target)
+        if type(module) is not nn.Linear or head.kwargs or len(head.args) != 1:
+            return None
+        if not isinstance(head.args[0], fx.Node) or len(self.layer_nodes.get(head.target, ())) != 1:
+            return None
+        return head.target, head.args[0]
 
     # ------------------------------------------------------------------ internals
     def _suffix(self, name: str) -> list[fx.Node]:

@@ -79,11 +79,9 @@ def probe_noise(model: nn.Module, source, entries: dict, configs: dict, output, 
     for row, e in entries.items():
         by_module.setdefault(model.get_submodule(e.module), []).append(row)
     noise = {row: np.zeros(len(configs[e.name])) for row, e in entries.items()}
-    # each config's quantized weight, once for all batches (the scan checked the weights)
-    weights = {}
-    for row, e in entries.items():
-        w = model.get_submodule(e.module).weight.detach()
-        weights[row] = [w if wg is None else quantize_unchecked(w, wg) for wg, _ in configs[e.name]]
+    # each config's quantized weight is made in the layer's hook and dropped after it: one
+    # entry's quantized copies at a time, not every entry's (a weight's few quantizations per
+    # batch cost little next to the batch's forward and backward passes)
     lost: set = set()
     probes = probe_count(n_samples)
     flags = [(m, m.training) for m in model.modules()]
@@ -96,7 +94,7 @@ def probe_noise(model: nn.Module, source, entries: dict, configs: dict, output, 
                 n = batch_size(piece)
                 try:
                     _one_batch(model, piece, (index, row0, piece is not batch), by_module, entries,
-                               configs, weights, output, probes, noise, lost, cap=n > 1)
+                               configs, output, probes, noise, lost, cap=n > 1)
                 except _TooLarge:
                     a, b = Batches(piece, (n + 1) // 2)
                     pending += [(b, row0 + (n + 1) // 2), (a, row0)]
@@ -110,7 +108,7 @@ class _TooLarge(Exception):
     """The layer errors of this batch would pass :data:`ERROR_BYTES`."""
 
 
-def _one_batch(model, batch, where, by_module, entries, configs, weights, output, probes, noise,
+def _one_batch(model, batch, where, by_module, entries, configs, output, probes, noise,
                lost, *, cap: bool):
     """Add this batch's estimates to ``noise``. ``where``: (batch index, its first row within
     the source's batch, whether it is a part of that batch)."""
@@ -123,9 +121,11 @@ def _one_batch(model, batch, where, by_module, entries, configs, weights, output
         z = torch.zeros_like(ref, requires_grad=True)
         with torch.no_grad():
             for row in by_module[module]:
-                # the scan checked these inputs (survey) once already
-                errs = [layers.layer_forward(module, x if ig is None else quantize_unchecked(x, ig), wq) - ref
-                        for (_, ig), wq in zip(configs[entries[row].name], weights[row], strict=True)]
+                # the scan checked these inputs (survey) and the weight once already
+                w = module.weight.detach()
+                errs = [layers.layer_forward(module, x if ig is None else quantize_unchecked(x, ig),
+                                             w if wg is None else quantize_unchecked(w, wg)) - ref
+                        for wg, ig in configs[entries[row].name]]
                 calls[row].append((z, _stacked(errs)))
                 kept[0] += calls[row][-1][1].numel() * 4
                 if cap and kept[0] > ERROR_BYTES:

@@ -61,13 +61,14 @@ def model_scope(model, source, found, facts, configs, n_bits: int, info, *, esti
     try:
         if replayed:
             noise = {i: np.zeros(n_bits) for i in replayed}
+            gram: dict = {}  # the final Linear's W^T W, once for all batches
             for batch, ref_parts in zip(source, found.refs, strict=True):
                 with evaluating(model):
                     replay.record(batch)
                     for i in replayed:
                         e = facts[i].entry
                         noise[i] += suffix_noise(replay, model.get_submodule(e.module), e.module,
-                                                 configs[e.name], ref_parts, output)
+                                                 configs[e.name], ref_parts, output, gram)
             replay.values = {}  # the last batch's record
             for i in replayed:
                 info[names[i]]["model_pass"] = "suffix"

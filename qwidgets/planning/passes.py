@@ -185,7 +185,15 @@ def _error_power(ref_parts, parts) -> float:
     for r, a in zip(ref_parts, parts, strict=True):
         if r.shape != a.shape:
             raise ValueError(f"output shapes differ: float {tuple(r.shape)}, quantized {tuple(a.shape)}")
-        total += float(torch.linalg.vector_norm((a.double() - r.double()).reshape(-1))) ** 2
+        total += _square_sum((a - r).reshape(-1))  # the difference in the outputs' precision
+    return total
+
+
+def _square_sum(d: torch.Tensor) -> float:
+    """sum(d**2) in float64, a block of float32 values at a time (no float64 copy of the whole)."""
+    total = 0.0
+    for part in d.split(1 << 20):
+        total += float(torch.sum(part.double().square_()))
     return total
 
 
@@ -275,13 +283,22 @@ def db(signal: float, noise: float) -> float:
 
 
 # ---------------------------------------------------------------------------- from a recorded pass
-def suffix_noise(replay, layer: nn.Module, name: str, configs, ref_parts, output=None) -> list[float]:
+def suffix_noise(replay, layer: nn.Module, name: str, configs, ref_parts, output=None,
+                 gram: dict | None = None) -> list[float]:
     """Model-output error power of each config, rerunning only what follows layer ``name``.
 
     ``replay`` (:class:`~qwidgets.model.replay.GraphReplay`) recorded this batch; skip
     connections from before the layer read the record. Call inside ``replay.evaluating``.
+    When the model's whole output is a final ``nn.Linear`` (weight ``W``) and ``output`` is the
+    default, the rerun stops at that layer's input: a change ``d`` there moves the output by
+    ``d W^T``, whose power is ``sum d (W^T W) d^T`` (the Gram matrix once per model, kept in
+    ``gram``), instead of an output-wide product and error sum per config.
     """
     w = layer.weight.detach()
+    head = replay.final_linear() if output is None and len(ref_parts) == 1 else None
+    if head is not None and head[0] != name:
+        g = _gram(replay, head[0], gram)
+        ref_in = replay.values[head[1]]
     out = []
     for wg, ig in configs:
         wq = w if wg is None else _quantize(w, wg)
@@ -289,8 +306,22 @@ def suffix_noise(replay, layer: nn.Module, name: str, configs, ref_parts, output
         def replace(x, wq=wq, ig=ig):
             return layers.layer_forward(layer, x if ig is None else _quantize(x, ig), wq)
 
+        if head is not None and head[0] != name:
+            d = (replay.rerun(name, replace, until=head[1]) - ref_in).reshape(-1, g.shape[0]).double()
+            out.append(float(((d @ g) * d).sum()))
+            continue
         parts = model_outputs.float_parts(replay.rerun(name, replace), "quantized", output)
         out.append(_error_power(ref_parts, parts))
     return out
 
 
+def _gram(replay, head: str, cache: dict | None):
+    """W^T W of the final layer (float32 product, float64 after), made once per scan."""
+    key = (id(replay), head)
+    if cache is not None and key in cache:
+        return cache[key]
+    w = replay.model.get_submodule(head).weight.detach()
+    g = (w.t() @ w).double()
+    if cache is not None:
+        cache[key] = g
+    return g

@@ -38,7 +38,8 @@ from torch import nn
 
 from ..core.checks import check_bits, check_bool, check_choice
 from ..core.device_rules import DeviceRules, check_rules
-from ..core.ranges import METHODS, fit_ranges
+from ..core.grid_cache import fit_cached
+from ..core.ranges import METHODS, RangeFitter
 from ..model import outputs, running
 from ..model.batching import cut_batches
 from ..model.entries import call_inputs, coverage_of, tapped, weight_digest
@@ -299,8 +300,9 @@ def _scan_entries(model, source, first, entries, usage, options, progress, share
             act = e.kind == "activation"
             w = None if act else e.parameter(model).detach()
             # one sort of the weight serves every bit width (the same grids as fitting each alone)
-            wg = fit_ranges(w, bits, method, axis=e.axis if per_channel else None,
-                            rules=rules) if (qw and not act) else None
+            # fitted once per process for these values and options (grid_cache), every width together
+            wg = fit_cached(RangeFitter(w, method, axis=e.axis if per_channel else None, rules=rules),
+                            bits) if (qw and not act) else None
             ig = [f.inputs.fit(b, method, rules=rules, role="input") for b in bits] \
                 if (qi and f.has_input) else None
             wgrids[e.name] = wg

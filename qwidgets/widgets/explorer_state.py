@@ -23,6 +23,7 @@ import torch
 from ..core.checks import check_bits, check_positive
 from ..core.device_rules import DeviceRules, conform_grid
 from ..core.grid import UniformGrid
+from ..core.grid_cache import fit_cached
 from ..core.ranges import METHODS, RangeFitter
 from ..model.layers import WEIGHT_AXIS
 
@@ -87,7 +88,7 @@ class ExplorerState:
                 fitter = RangeFitter(self.values[source], method, signed=signed, axis=axis, **extra)
                 self._fitters[(source, method, signed, axis)] = fitter
                 self._fitters[(source, method, fitter.signed, axis)] = fitter
-            g = fitter.fit(bits)
+            g = fit_cached(fitter, (bits,))[0]  # shared with scans of the same values
             self._fitted[key] = self._fitted[(source, bits, method, g.signed, axis)] = g
         return self._fitted[key]
 
