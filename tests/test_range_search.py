@@ -15,7 +15,6 @@ import torch
 
 from qwidgets import UniformGrid, fit_range, quantize
 from qwidgets.core import clip_search
-from qwidgets.core.cell_sums import DIRECT_LEVELS_PER_VALUE
 from qwidgets.core.clip_search import GridSpec
 from qwidgets.core.ranges import RangeFitter, fit_ranges
 
@@ -95,18 +94,15 @@ def test_sorted_search_gives_the_grids_of_the_quantizing_search(shape, kind, sty
         ref_s, ref_o = _reference_symmetric(x, b, signed, style)
         got = g.scale_tensor().double().reshape(-1)
         same = got == ref_s.float().double()
-        assert torch.allclose(got, ref_s, rtol=1e-3)
-        if 2**b > x.shape[1] * DIRECT_LEVELS_PER_VALUE:
-            # measured by rounding the sorted row: the reference's arithmetic, summed in another
-            # order; the search takes the same steps
-            assert float(same.double().mean()) >= 0.95
-        # the prefix sums are more precise than a float32 square per value: where that flips a
-        # near-tie of the golden-section steps, the two grids are equally good
+        assert torch.allclose(got, ref_s, rtol=1e-2)
+        # the same candidates and steps; the errors are summed differently (prefix sums in
+        # float64, or float32 sums of the squares), which can flip a near-tie of the flat
+        # minimum's golden-section steps: there the two grids must be equally good
         for r in torch.nonzero(~same).flatten().tolist():
             row = x[r]
             mine = UniformGrid(b, float(got[r]), float(g.offset_tensor().reshape(-1)[r]), signed=signed)
             theirs = UniformGrid(b, float(ref_s[r]), float(ref_o[r]), signed=signed)
-            assert abs(_sqnr_db(row, mine) - _sqnr_db(row, theirs)) < 1e-3
+            assert abs(_sqnr_db(row, mine) - _sqnr_db(row, theirs)) < 1e-4
 
 
 def test_pruned_sweep_picks_what_measuring_every_candidate_picks(monkeypatch):

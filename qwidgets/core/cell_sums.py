@@ -111,7 +111,7 @@ class SortedRows:
         out = torch.empty(c, w, k, dtype=torch.float64, device=scale.device)
         direct = self.direct_widths(lay)
         run_positions = sum(hi - lo + 2 for lo, hi, d in zip(lay.qmin, lay.qmax, direct, strict=True) if not d)
-        per = max(1, _CHUNK_ELEMS // max(1, run_positions or w * self.m))
+        per = max(1, _CHUNK_ELEMS // max(1, run_positions, sum(direct) * self.m))  # (row, candidate) pairs
         k_step = max(1, min(k, per))
         c_step = max(1, min(c, per // k_step))
         for c0 in range(0, c, c_step):
@@ -153,22 +153,29 @@ class SortedRows:
         return g * (2 * s1 - g * cnt)
 
     def _rounded(self, lay, rows, s, o):
-        """(c, w, k) squared errors by rounding every value of the rows (float32, as quantize)."""
+        """(c, w, k) squared errors by rounding every value of the rows (float32, as quantize).
+
+        Laid out (widths, candidates, rows, values): the rows broadcast over the leading axes and
+        each candidate's scale over its row, both of which torch runs at full speed."""
         xs = self.xs[rows]
         c, m = xs.shape
         w, k = s.shape[1:]
-        s32, o32 = s.float().unsqueeze(3), o.float().unsqueeze(3)
-        low, high = lay.low.float()[..., None], lay.high.float()[..., None]  # (w, 1, 1)
-        out = torch.zeros(c, w, k, dtype=torch.float64, device=xs.device)
+        s32 = s.float().permute(1, 2, 0).unsqueeze(3)  # (w, k, c, 1)
+        o32 = o.float().permute(1, 2, 0).unsqueeze(3)
+        centred = bool((o32 == 0).all())  # x - 0 is x: skip the subtraction
+        out = torch.zeros(w, k, c, dtype=torch.float64, device=xs.device)
         m_step = max(1, min(m, _CHUNK_ELEMS // max(1, c * w * k)))
         for m0 in range(0, m, m_step):
-            xx = xs[:, None, None, m0:m0 + m_step]
-            t = xx - o32
-            t.div_(s32).round_()
-            t = torch.maximum(torch.minimum(t, high), low)
-            t.mul_(s32).add_(o32).sub_(xx)
-            out += t.square_().sum(dim=3, dtype=torch.float64)
-        return out
+            xx = xs[:, m0:m0 + m_step]
+            t = (xx / s32) if centred else (xx - o32).div_(s32)
+            t.round_()
+            for j in range(w):
+                t[j].clamp_(lay.qmin[j], lay.qmax[j])
+            t.mul_(s32)
+            if not centred:
+                t.add_(o32)
+            out += _square_sums(t.sub_(xx))
+        return out.permute(2, 0, 1)
 
     def clip_sse(self, lay: Layout, scale: torch.Tensor, offset: torch.Tensor) -> torch.Tensor:
         """Squared error of the two clipping runs alone (below the first boundary, above the last):
@@ -188,3 +195,12 @@ class SortedRows:
 
         zero, end = torch.zeros_like(i_lo), torch.full_like(i_hi, self.m)
         return run_error(zero, i_lo, lo_g) + run_error(i_hi, end, hi_g)
+
+
+def _square_sums(t: torch.Tensor) -> torch.Tensor:
+    """sum(t**2) over the last axis, in float32 (a float64 result).
+
+    torch sums float32 values in several vectorised partial sums, about 20x faster than into
+    float64 (measured), with a relative error near 1e-7 for the few thousand values of a row:
+    that can only flip a comparison of two candidates whose errors are as close (a near-tie)."""
+    return t.square_().sum(dim=-1).double()
