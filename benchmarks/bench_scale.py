@@ -1,26 +1,31 @@
-"""The scan at scale: a residual network with ResNet-18's layout, batches, threads, fitting.
+"""The scan at scale, at the default settings (method="mse"): four models, peak memory, fitting.
 
-Run:  .venv/bin/python benchmarks/bench_scale.py   (prints a table, writes results/scale.json)
+Run:  .venv/bin/python benchmarks/bench_scale.py [cnn48 resnet18q resnet18 decoder] [--no-extras]
+(prints a table, writes results/scale.json; the named models only, all by default)
 
-Network: ResNet-18's layout (7x7 stride-2 stem and max pooling, four stages of two basic
-blocks, 1x1 strided skip convolutions where the shape changes, pooling, a 1000-way Linear
-head: 21 quantizable layers) with a quarter of its widths (16-32-64-128 channels), random weights,
-non-trivial BatchNorm statistics, on 8 images of 3x112x112, bit widths 2-8.
+Models (random weights; BatchNorm with non-trivial statistics; bit widths 2, 3, 4, 5, 6, 8):
+- cnn48: a residual CNN with ResNet-18's layout (7x7 stride-2 stem and max pooling, four stages
+  of two basic blocks, 1x1 strided skips, a 1000-way Linear head: 21 quantizable layers),
+  widths 16-128, 16 images of 3x48x48;
+- resnet18q: the same network on 8 images of 3x112x112 (a quarter of ResNet-18's widths);
+- resnet18: ResNet-18's full widths (64-512), 8 images of 3x112x112;
+- decoder: a GPT-style decoder (benchmarks/_decoder.py: 4 pre-norm blocks of width 256, causal
+  attention written with scaled_dot_product_attention, vocabulary 8000 tied to the output
+  layer), 8 sequences of 64 tokens.
 
-Baseline, measured in the same run and interleaved with the others: the naive loop, for every
-layer and bit width, deep-copies the model, overwrites that layer's weight with its quantized
-version and runs the full model. Against it: scan(scope="model") exact (only what follows each
-layer reruns, from one recorded pass) and estimate="gain" (one forward with gradients and a few
-back-propagated probes per batch, for all layers together). Grids
-are min-max in all three so the ratios measure the passes. Everything runs on one thread (the
-machine is two cores shared with other processes; the scan would pick one thread there too),
-so the ratios compare the same arithmetic. The gain estimate's error against the exact model
-scope is reported per bit width (median and worst over layers, dB).
+Baseline, measured in the same run and interleaved with the scans: the naive loop, for every
+entry and bit width, deep-copies the model, writes that entry's weight quantized on the exact
+scan's grid (so it does not fit) and runs the full model. Against it, at the default
+method="mse": scan(scope="model") exact and estimate="gain", each starting with an empty grid
+cache (it fits every grid, as a first scan in a process does); a scan whose grids are in the
+cache (a second scan) is reported beside. Everything runs on one torch thread, so the ratios
+compare the same arithmetic on the shared two-core machine. The gain estimate's error against
+the exact model scope is reported per bit width (median over entries, dB).
 
-Also: peak memory of a scan with batch_size=8 on 16 and on 64 images (each in a fresh
-process: the rise of the peak resident set above the resident set before the scan, Linux
-/proc/self/clear_refs); fitting every bit width from one sorted copy (fit_ranges) against one
-fit_range per width; and one against two threads for fitting and for a forward pass.
+Also (unless --no-extras): peak memory of a scan with batch_size=8 on 16 and on 64 images (each
+in a fresh process: the rise of the peak resident set above the resident set before the scan,
+Linux /proc/self/clear_refs); fitting every bit width from one sorted copy (fit_ranges) against
+one fit_range per width; one against two threads for fitting and for a forward pass.
 """
 
 from __future__ import annotations
@@ -36,12 +41,14 @@ from pathlib import Path
 import _timing  # benchmarks/_timing.py, beside this script
 import numpy as np
 import torch
+from _decoder import make_decoder, tokens  # benchmarks/_decoder.py
 from torch import nn
 
+from qwidgets.core.grid_cache import GRID_CACHE
 from qwidgets.core.metrics import error_stats
 from qwidgets.core.ranges import fit_range, fit_ranges
 from qwidgets.core.rounding import quantize
-from qwidgets.model.layers import fit_weight
+from qwidgets.model.entries import find_entries
 from qwidgets.planning.scanning import scan
 
 RESULTS = Path(__file__).parent / "results" / "scale.json"
@@ -98,58 +105,104 @@ def images(n: int) -> torch.Tensor:
     return torch.randn(n, 3, SIZE, SIZE, generator=torch.Generator().manual_seed(1))
 
 
-def naive_loop(model: nn.Module, x: torch.Tensor) -> dict:
-    names = [n for n, m in model.named_modules() if isinstance(m, (nn.Conv2d, nn.Linear))]
+def naive_loop(model: nn.Module, x, table) -> dict:
+    """The baseline, given the table's grids: per entry and width, deep copy, write the quantized
+    weight, full forward, SQNR of the output."""
     with torch.no_grad():
         ref = model(x)
     out = {}
-    for name in names:
-        for b in BITS:
+    for name in table.layers:
+        for b in table.bits:
             c = copy.deepcopy(model)
-            layer = c.get_submodule(name)
+            entry = next(e for e in find_entries(c) if e.name == name)
             with torch.no_grad():
-                layer.weight.copy_(quantize(layer.weight, fit_weight(layer, b, "minmax")))
+                p = entry.parameter(c)
+                p.copy_(quantize(p, table.weight_grid(name, b)))
                 out[name, b] = error_stats(ref, c(x)).sqnr_db
     return out
 
 
-def _runs(model, x):
-    kw = dict(method="minmax", scope="model", progress=False)
+def model_cases() -> dict:
+    """name -> (description, make model, make data, timing rounds)."""
+    def resnet(widths):
+        def make():
+            torch.manual_seed(0)
+            model = ResNet18Layout(widths)
+            with torch.no_grad():
+                for m in model.modules():
+                    if isinstance(m, nn.BatchNorm2d):
+                        m.running_mean.uniform_(-0.1, 0.1)
+                        m.running_var.uniform_(0.5, 1.5)
+            return model.eval()
+        return make
+
+    def imgs(n, size):
+        return lambda: torch.randn(n, 3, size, size, generator=torch.Generator().manual_seed(1))
+
     return {
-        "naive": lambda: naive_loop(model, x),
-        "exact": lambda: scan(model, x, BITS, **kw),
-        "gain": lambda: scan(model, x, BITS, estimate="gain", **kw),
+        "cnn48": ("residual CNN (ResNet-18 layout), widths 16-128, 16 images 48x48",
+                  resnet((16, 32, 64, 128)), imgs(16, 48), 2),
+        "resnet18q": ("ResNet-18 layout, quarter width, 8 images 112x112", resnet(WIDTHS), imgs(8, SIZE), 2),
+        "resnet18": ("ResNet-18 layout, full width, 8 images 112x112", resnet((64, 128, 256, 512)), imgs(8, SIZE), 1),
+        "decoder": ("GPT-style decoder, 4 layers, width 256, vocabulary 8000 tied, 8x64 tokens",
+                    make_decoder, tokens, 1),
     }
 
 
-def bench_model_scope(rows, out, rounds=2):
-    model, x = make_model(), images(8)
-    runs = _runs(model, x)
-    results = {k: f() for k, f in runs.items()}  # warm-up, and the numbers to compare
-    times = {k: [] for k in runs}
+def _timed(f):
+    t0 = time.perf_counter()
+    r = f()
+    return r, time.perf_counter() - t0
+
+
+def bench_model_scope(rows, out, names):
+    """Default settings (method="mse"): exact and gain scans against the naive loop given the
+    exact scan's grids, interleaved; every scan starts with an empty grid cache (it fits)."""
+    out["model_scope"] = {}
+    for key in names:
+        _bench_one(key, rows, out)
+
+
+def _bench_one(key, rows, out):
+    """One model's rows: naive loop, exact and gain scans (cold and cached grids)."""
+    desc, make, data, rounds = model_cases()[key]
+    model, x = make(), data()
+    kw = dict(bits=BITS, scope="model", progress=False)
+
+    def cold(estimate):
+        GRID_CACHE.clear()
+        return scan(model, x, estimate=estimate, **kw)
+
+    exact, _ = _timed(lambda: cold("exact"))  # warm-up, and the grids the naive loop is given
+    times = {k: [] for k in ("naive", "exact", "gain")}
     for _ in range(rounds):
-        for k, f in runs.items():
-            t0 = time.perf_counter()
-            f()
-            times[k].append(time.perf_counter() - t0)
-    naive, exact, gain = results["naive"], results["exact"], results["gain"]
-    diff = max(abs(exact.sqnr_db(n, b) - naive[n, b]) for n, b in naive)
+        naive, t = _timed(lambda e=exact: naive_loop(model, x, e))
+        times["naive"].append(t)
+        exact, t = _timed(lambda: cold("exact"))
+        times["exact"].append(t)
+        gain, t = _timed(lambda: cold("gain"))
+        times["gain"].append(t)
+    _, warm_exact = _timed(lambda: scan(model, x, estimate="exact", **kw))  # grids from the cache
+    _, warm_gain = _timed(lambda: scan(model, x, estimate="gain", **kw))
     t = {k: statistics.median(v) for k, v in times.items()}
     speed = {k: statistics.median(n / e for n, e in zip(times["naive"], times[k], strict=True))
              for k in ("exact", "gain")}
-    rows.append(("naive loop (deep copy + full forward)", f"{t['naive']:.2f} s", "1.00x", ""))
-    rows.append(("scan model scope, exact (suffix replay)", f"{t['exact']:.2f} s", f"{speed['exact']:.2f}x",
-                 f"max |exact - naive| {diff:.2e} dB"))
-    rows.append(("scan model scope, estimate='gain'", f"{t['gain']:.2f} s", f"{speed['gain']:.2f}x", ""))
+    diff = max(abs(exact.sqnr_db(n, b) - naive[n, b]) for n, b in naive)
     err = np.abs(gain.sqnr_array("model") - exact.sqnr_array("model"))
-    per_width = {}
-    for j, b in enumerate(BITS):
-        med, worst = float(np.median(err[:, j])), float(err[:, j].max())
-        per_width[b] = {"median_db": med, "worst_db": worst}
-        rows.append((f"  gain estimate error at {b} bits", f"median {med:.2f} dB", f"worst {worst:.2f} dB", ""))
-    out["model_scope"] = {"layers": len(exact.layers), "images": 8, "size": SIZE, "bits": list(BITS),
-                          "seconds": t, "speedup_vs_naive": speed, "max_abs_diff_exact_vs_naive_db": diff,
-                          "gain_error_db": per_width, "model_pass": sorted({exact.model_pass(n) for n in exact.layers})}
+    med = {b: float(np.median(err[:, j])) for j, b in enumerate(BITS)}
+    rows.append((f"{key}: naive loop, same grids", f"{t['naive']:.2f} s", "1.00x", desc))
+    rows.append((f"{key}: scan exact", f"{t['exact']:.2f} s", f"{speed['exact']:.2f}x",
+                 f"max |exact - naive| {diff:.1e} dB; grids cached: {warm_exact:.2f} s "
+                 f"({t['naive'] / warm_exact:.2f}x)"))
+    rows.append((f"{key}: scan estimate='gain'", f"{t['gain']:.2f} s", f"{speed['gain']:.2f}x",
+                 f"grids cached: {warm_gain:.2f} s ({t['naive'] / warm_gain:.2f}x); median error "
+                 + " ".join(f"{b}b {v:.2f}" for b, v in med.items()) + " dB"))
+    out["model_scope"][key] = {
+        "description": desc, "layers": len(exact.layers), "bits": list(BITS), "rounds": rounds,
+        "seconds": t, "speedup_vs_naive": speed, "cached_grids_seconds": {"exact": warm_exact, "gain": warm_gain},
+        "max_abs_diff_exact_vs_naive_db": diff, "gain_median_error_db": med,
+        "gain_worst_error_db": {b: float(err[:, j].max()) for j, b in enumerate(BITS)},
+        "model_pass": sorted({exact.model_pass(n) for n in exact.layers}), "notes": list(exact.notes)}
 
 
 def peak_mib(n_images: int, estimate: str = "exact") -> float:
@@ -211,13 +264,14 @@ def bench_fitting_and_threads(rows, out):
     out["threads"] = thr
 
 
-def main() -> None:
+def main(names, extras: bool) -> None:
     torch.set_num_threads(1)
     with torch.no_grad():
         rows, out = [], {}
-        bench_model_scope(rows, out)
-        bench_memory(rows, out)
-        bench_fitting_and_threads(rows, out)
+        bench_model_scope(rows, out, names)
+        if extras:
+            bench_memory(rows, out)
+            bench_fitting_and_threads(rows, out)
     w = max(len(r[0]) for r in rows)
     for r in rows:
         print(f"{r[0]:<{w}}  {r[1]:>16}  {r[2]:>14}  {r[3]}")
@@ -230,4 +284,5 @@ if __name__ == "__main__":
     if len(sys.argv) == 4 and sys.argv[1] == "--peak":
         _child_peak(int(sys.argv[2]), sys.argv[3])
     else:
-        main()
+        chosen = [a for a in sys.argv[1:] if not a.startswith("--")] or list(model_cases())
+        main(chosen, "--no-extras" not in sys.argv)

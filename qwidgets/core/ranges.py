@@ -87,7 +87,7 @@ def fit_range(
     range of the widest channel (1.0 if every value is zero), so its scale stays > 0. A 1-bit
     mid-tread grid has only two levels with one at zero: signed symmetric it is ``{-s, 0}``;
     asymmetric it keeps the side of zero with the larger extent. The other side saturates to 0. The MSE search evaluates candidate grids
-    exactly (sorted values and prefix sums when a row holds >= 32 values per grid level) on
+    exactly (sorted values and prefix sums when a row holds >= 512 values per grid level) on
     every value, or on a seeded random subset of 2**24 of them for larger tensors.
 
     >>> import torch
