@@ -42,8 +42,7 @@ class SensitivityTable:
                  coverage: Coverage | None = None, input_bits: Sequence[int] = (),
                  input_layer_sqnr: np.ndarray | None = None, input_model_sqnr: np.ndarray | None = None,
                  estimate: str = "exact", notes: Sequence[str] = ()):
-        #: the slower paths the scan took and why (each also given as a warning by scan)
-        self.notes = tuple(str(n) for n in notes)
+        self.notes = tuple(str(n) for n in notes)  #: slower paths the scan took, why (also warned)
         if estimate not in ESTIMATES:
             raise ValueError(f"estimate must be one of {ESTIMATES}, got {estimate!r}")
         self.estimate = estimate  #: model scope "exact" or "gain" (estimated from noise gains)
