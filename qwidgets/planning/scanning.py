@@ -253,7 +253,8 @@ def _run_scan(model, data, options: dict, progress: bool, share) -> dict:
     source = data_source(model, cut_batches(data, options["batch_size"]), options["max_samples"])
     first = source.first_batch()
     with fastpath_off():  # every pass computes what the tool's taps see (fast path or not)
-        entries, usage = entries_on(model, first)
+        with threads(pass_threads(model)):  # every forward on the passes' threads
+            entries, usage = entries_on(model, first)
         if not entries:
             raise ValueError(running.no_layers_message(model))
         return _scan_entries(model, source, first, entries, usage, options, progress, share)
