@@ -68,6 +68,10 @@ _EXPORTS = {
     "GridExplorer": "widgets.explorer",
     "ScanView": "widgets.scanview",
     "BudgetPlanner": "widgets.planner",
+    # the widgets' state models (traitlets.HasTraits: observe them, link controls to them)
+    "ExplorerState": "widgets.explorer_state",
+    "ScanState": "widgets.scanview",
+    "PlannerState": "widgets.planner_state",
 }
 
 __all__ = sorted(_EXPORTS) + ["__version__"]

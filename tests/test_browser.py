@@ -382,35 +382,30 @@ def test_kernel_is_this_environment(session):
 
 def test_explorer_bits_slider_moves_plot_and_readout(session):
     page = session.page
-    # The explorer: the output of the cell that builds it. Its bit-width control is the
-    # IntSlider labelled "bits" (class qw-bits); the slider's handle is a keyboard-focusable
-    # element with role=slider and aria-valuenow. The plot is the explorer's Image (qw-plot),
-    # the tensor SQNR the readout cell qw-r-tensor-sqnr.
+    # The explorer: the output of the cell that builds it. Its bit-width control is a row of
+    # toggle buttons labelled "bits" (class qw-bits), one per width; the chosen one carries the
+    # class mod-active. The plot is the explorer's Image (qw-plot), the tensor SQNR the readout
+    # cell qw-r-tensor-sqnr.
     cell = cell_with_source(page, "GridExplorer(")
     explorer = cell.locator(".qw-explorer").first
     explorer.wait_for(state="visible", timeout=60_000)
     explorer.scroll_into_view_if_needed()
     bits_row = explorer.locator(".qw-bits")
     assert bits_row.locator(".widget-label").first.inner_text().strip() == "bits"
-    handle = bits_row.locator("[role=slider]").first
     plot = explorer.locator("img.qw-plot, .qw-plot img").first
     readout = explorer.locator(".qw-readout .qw-r-tensor-sqnr").first
     plot.wait_for(state="visible", timeout=30_000)
 
-    bits_before = int(float(handle.get_attribute("aria-valuenow")))
+    bits_before = active_bits(explorer)
     before_png = plot.screenshot(path=str(OUT / "explorer-plot-before.png"))
     explorer.screenshot(path=str(OUT / "explorer-before.png"))
     text_before = readout.inner_text()
     sqnr_before = readout_sqnr(text_before)
 
-    # Keyboard: focus the handle and press ArrowRight once (one more bit).
+    # A click on the next width's button (one more bit).
     t0 = time.monotonic()
-    handle.focus()
-    page.keyboard.press("ArrowRight")
-    wait_until(
-        lambda: int(float(handle.get_attribute("aria-valuenow"))) == bits_before + 1,
-        UPDATE_S, "the slider to move",
-    )
+    bits_button(explorer, bits_before + 1).click()
+    wait_until(lambda: active_bits(explorer) == bits_before + 1, UPDATE_S, "the bit button to move")
     wait_until(lambda: readout.inner_text() != text_before, UPDATE_S, "the readout to update")
     wait_until(
         lambda: changed_fraction(before_png, plot.screenshot()) > 0.002, UPDATE_S,
@@ -445,6 +440,14 @@ def test_explorer_bits_slider_moves_plot_and_readout(session):
     assert snapshot["sqnr"] == pytest.approx(snapshot["core"], abs=1e-6)
     assert sqnr_after != pytest.approx(sqnr_before, abs=0.005)
     assert changed_fraction(before_png, after_png) > 0.002
+
+
+def active_bits(explorer) -> int:
+    return int(explorer.locator(".qw-bits button.mod-active").first.inner_text().strip())
+
+
+def bits_button(explorer, bits: int):
+    return explorer.locator(".qw-bits button").filter(has_text=re.compile(rf"^\s*{bits}\s*$")).first
 
 
 def _explorer(page):
@@ -492,9 +495,9 @@ def test_explorer_step_slider_drag_of_20_px_is_a_fine_move(session):
     ratio = after["step"] / before
     assert 1.0 < ratio < 2.0, (before, after["step"])
     page.wait_for_timeout(1000)
-    shown = explorer.locator(".qw-scale .widget-readout").first.inner_text().strip()
+    shown = explorer.locator(".qw-scale input").first.input_value().strip()
     readout = explorer.locator(".qw-readout .qw-r-step").first.inner_text().strip()
-    assert shown == readout, (shown, readout)  # control and readout: same value, same digits
+    assert shown == readout, (shown, readout)  # control's box and readout: same value, same digits
 
 
 def test_explorer_learn_button_offers_to_stop(session):
@@ -504,7 +507,7 @@ def test_explorer_learn_button_offers_to_stop(session):
     ask_kernel(page, "explorer.controls['steps'].value = 100000")  # long enough to stop it
     button.click()
     wait_until(lambda: "stop" in button.inner_text(), UPDATE_S, "the learn button to offer to stop")
-    assert explorer.locator(".qw-bits [role=slider]").count() >= 1
+    assert explorer.locator(".qw-bits button").count() >= 1
     button.click()  # stop: the best grid so far is kept
     wait_until(lambda: button.inner_text().strip() == "learn", UPDATE_S * 2,
                "the learning run to stop")
@@ -532,6 +535,63 @@ def test_planner_measure_button_shows_kernel_measurement(session):
     text = readout.inner_text()
     assert f"{report['sqnr']:.2f} dB" in text, text
     assert f"planned {report['acc']:.4g}" in text, text
+
+
+def test_a_person_moving_bits_back_to_a_width_the_kernel_set_is_kept(session):
+    page = session.page
+    explorer = _explorer(page)
+    ask_kernel(page, "explorer.state.bits = 6\nexplorer.state.bits = 2")  # a script: 6, then 2
+    wait_until(lambda: active_bits(explorer) == 2, UPDATE_S, "the buttons to show 2 bits")
+    bits_button(explorer, 6).click()  # the person goes back to 6
+    wait_until(lambda: ask_kernel(page, "print(explorer.grid.bits)").strip() == "6", UPDATE_S,
+               "the kernel to take 6 bits")
+    page.wait_for_timeout(1500)  # anything the browser might still send back
+    assert ask_kernel(page, "print(explorer.grid.bits)").strip() == "6"
+    assert active_bits(explorer) == 6
+
+
+def test_a_person_unticking_signed_codes_after_two_source_switches_is_kept(session):
+    page = session.page
+    explorer = _explorer(page)
+    for label, source in (("layer input", "input"), ("weights", "weight")):  # switch sources twice
+        explorer.locator(".qw-source button", has_text=label).first.click()
+        wait_until(lambda s=source: ask_kernel(page, "print(explorer.source)").strip() == s, UPDATE_S,
+                   f"the kernel to show {source}")
+    ask_kernel(page, "explorer.state.signed = False\nexplorer.state.signed = True")  # the kernel: off, on
+    box = explorer.locator(".qw-signed input[type=checkbox]").first
+    wait_until(lambda: box.is_checked(), UPDATE_S, "the box to show signed codes")
+    box.click()  # the person unticks it
+    wait_until(lambda: ask_kernel(page, "print(explorer.grid.signed)").strip() == "False", UPDATE_S,
+               "the kernel to take unsigned codes")
+    page.wait_for_timeout(1500)
+    assert ask_kernel(page, "print(explorer.grid.signed)").strip() == "False"
+    assert not box.is_checked()
+    message = explorer.locator(".qw-message").first.inner_text()
+    assert "failed" not in message, message
+
+
+def test_switching_the_budget_unit_in_the_browser_keeps_the_plan(session):
+    page = session.page
+    planner = cell_with_source(page, "BudgetPlanner(").locator(".qw-planner").first
+    planner.scroll_into_view_if_needed()
+    before = json.loads(ask_kernel(page, (  # (use_grid's note may print too: the last line)
+        "import json\n"
+        "planner.use_grid(explorer)  # a learned grid in the plan\n"
+        "_plan = planner.plan\n"
+        "print(json.dumps({'bits': _plan.bits, 'mean': _plan.mean_bits}))")).strip().splitlines()[-1])
+    for label in ("bops", "mean_bits", "planned_kib", "model_kib"):
+        planner.locator(".qw-planner-kind button", has_text=label).first.click()
+        wait_until(lambda: "kept the plan" in planner.locator(".qw-message").first.inner_text(),
+                   UPDATE_S, f"the note on the switch to {label}")
+        page.wait_for_timeout(1500)  # anything the browser might send back meanwhile
+        now = json.loads(ask_kernel(page, (
+            "import json\n"
+            "print(json.dumps({'same': planner.plan is _plan, 'taken': bool(planner._edited()),\n"
+            "                  'box': planner.controls['budget'].box.value,\n"
+            "                  'cost': planner.state.budget}))")))
+        assert now["same"] and now["taken"], (label, now, before)
+        shown = planner.locator(".qw-planner-budget input").first.input_value().strip()
+        assert shown == now["box"], (label, shown, now)  # the page shows the plan's exact cost
 
 
 def test_rendering_leaves_widget_state_alone(session):

@@ -10,6 +10,7 @@ import threading
 
 import pytest
 import torch
+from front_end import person_sets
 from torch import nn
 
 from qwidgets import GridExplorer, LayerSetting, UniformGrid, error_stats, fit_range, layer_error
@@ -17,10 +18,12 @@ from qwidgets.core import renamed
 from qwidgets.demo import load_demo
 from qwidgets.widgets import events
 from qwidgets.widgets import explorer as explorer_module
+from qwidgets.widgets.number_control import eng
 
 
 def _move_every_control(ex: GridExplorer) -> list:
-    """Move each control as a person would (both sources), refreshing; collect the messages."""
+    """Move each control as a person would, through the messages a browser sends (both
+    sources), refreshing; collect the messages."""
     seen = []
     c = ex.controls
 
@@ -30,27 +33,31 @@ def _move_every_control(ex: GridExplorer) -> list:
         seen.append(ex.message.text)
         assert not ex.message.is_error, ex.message.text
 
+    def drag(name, by):
+        s = c[name].slider
+        person_sets(s, min(max(s.value + by, 0), s.max))
+
     for source in [s for _, s in c["source"].options]:
-        step(lambda s=source: setattr(c["source"], "value", s))
+        step(lambda s=source: person_sets(c["source"], s))
         for b in (2, 5, 8, 3):
-            step(lambda b=b: setattr(c["bits"], "value", b))
-        step(lambda: setattr(c["scale"], "value", c["scale"].value * 1.7))
-        step(lambda: setattr(c["offset"], "value", 0.3 * ex.grid.scale))
-        step(lambda: setattr(c["noise"], "value", 0.7))
-        step(lambda: setattr(c["temperature"], "value", 2.0))
-        step(lambda: setattr(c["probe"], "value", 0.5 * (c["probe"].min + c["probe"].max)))
-        step(lambda: setattr(c["signed"], "value", not c["signed"].value))
-        step(lambda: setattr(c["keep_clip"], "value", True))
-        step(lambda: setattr(c["bits"], "value", 6))
-        step(lambda: setattr(c["keep_clip"], "value", False))
+            step(lambda b=b: person_sets(c["bits"], b))
+        step(lambda: drag("scale", 60))
+        step(lambda: person_sets(c["offset"].box, eng(0.3 * ex.grid.scale)))  # typed
+        step(lambda: drag("noise", -30))
+        step(lambda: person_sets(c["temperature"].box, "2"))
+        step(lambda: person_sets(c["probe"].slider, c["probe"].slider.max // 2))
+        step(lambda: person_sets(c["signed"], not c["signed"].value))
+        step(lambda: person_sets(c["keep_clip"], True))
+        step(lambda: person_sets(c["bits"], 6))
+        step(lambda: person_sets(c["keep_clip"], False))
         for m in ("minmax", "percentile", "mse"):
-            step(lambda m=m: setattr(c["method"], "value", m))
+            step(lambda m=m: person_sets(c["method"], m))
             step(lambda: c["fit"].click())
         if not c["per_channel"].disabled:
-            step(lambda: setattr(c["per_channel"], "value", True))
-            step(lambda: setattr(c["channel"], "value", 1))
-            step(lambda: setattr(c["scale"], "value", c["scale"].value * 0.8))
-            step(lambda: setattr(c["per_channel"], "value", False))
+            step(lambda: person_sets(c["per_channel"], True))
+            step(lambda: person_sets(c["channel"], 1))
+            step(lambda: drag("scale", -25))
+            step(lambda: person_sets(c["per_channel"], False))
         if not c["learn"].disabled:
             c["steps"].value = 3
             step(lambda: c["learn"].click())
@@ -144,28 +151,29 @@ def test_step_control_is_a_window_around_the_fitted_step_and_never_moves_while_d
     ex = GridExplorer(layer, x, bits=4)
     s = ex.controls["scale"]
     fitted = fit_range(layer.weight.detach(), 4, "mse", signed=True).scale
-    assert 10 ** s.min == pytest.approx(fitted / 8) and 10 ** s.max == pytest.approx(fitted * 8)
-    window = (s.min, s.max, s.step)
-    # a drag: many values inside the window; the window stays where it is
-    for k in range(-40, 41, 3):
-        s.value = fitted * 1.05 ** k
+    assert s.positions.lo == pytest.approx(fitted / 8) and s.positions.hi == pytest.approx(fitted * 8)
+    window = s.positions
+    # a drag: many positions inside the window; the window stays where it is
+    for pos in range(100, 800, 37):
+        person_sets(s.slider, pos)
         ex.refresh()
-        assert (s.min, s.max, s.step) == window
-        # the control and the readout show the same value with the same digits
-        assert ex.readouts["step"] == f"{s.value:.4g}" and s.readout_format == ".4g"
+        assert s.positions is window and s.slider.value == pos
+        assert ex.grid.scale == pytest.approx(window.value(pos))
+        # the box and the readout show the same value with the same digits
+        assert ex.readouts["step"] == s.box.value == eng(ex.grid.scale)
     # one slider position moves the step by well under 1 % (fine moves with a mouse)
-    assert 10 ** s.step - 1 < 0.01
-    ex.controls["bits"].value = 6  # a new fitted step: the window follows it
-    assert 10 ** s.min == pytest.approx(ex.grid.scale / 8)
+    assert window.value(1) / window.value(0) - 1 < 0.01
+    person_sets(s.box, "12.5m")  # a typed value is taken exactly
+    assert ex.grid.scale == 0.0125 and ex.readouts["step"] == "12.5m"
+    person_sets(ex.controls["bits"], 6)  # a new fitted step: the window follows it
+    assert s.positions.lo == pytest.approx(ex.grid.scale / 8)
 
 
 def test_values_within_rounding_of_zero_print_as_zero():
     ex = GridExplorer(torch.randn(50))
-    ex.state.set_channel_param("offset", -1.110e-16)
-    ex._sync_controls()
+    ex.state.offset = -1.110e-16
     ex.refresh()
     assert ex.readouts["offset"] == "0"
-    assert ex.controls["offset"].value == 0.0
 
 
 def test_per_channel_readouts_say_which_figures_are_per_channel():
@@ -187,7 +195,7 @@ def test_noise_is_in_steps_and_named_so():
         renamed._warned.discard(("GridExplorer", "noise"))
         assert ex.noise == 0.4
     assert ex.readouts["noise (steps)"].startswith("0.4 ")
-    ex.controls["noise"].value = 0.2
+    ex.state.noise_steps = 0.2
     assert ex.noise_steps == 0.2
     with pytest.raises(TypeError, match="not both"):
         GridExplorer(torch.randn(10), noise=0.1, noise_steps=0.2)
@@ -198,7 +206,8 @@ def test_messages_describe_the_current_state_or_are_cleared():
     ex = GridExplorer(nn.Linear(12, 6), torch.randn(20, 12))
     ex.fit("minmax")
     assert ex.message.text.startswith("fitted the range")
-    ex.controls["scale"].value = ex.controls["scale"].value * 1.2
+    s = ex.controls["scale"].slider
+    person_sets(s, s.value + 5)  # a person's move: the note was about the state before it
     assert ex.message.text == ""
 
 
@@ -276,7 +285,7 @@ def test_learn_button_becomes_stop_and_stops_keeping_the_best_grid():
     assert ex.message.text.startswith("stopped after") and not ex.message.is_error
     assert not ex.controls["bits"].disabled and ex.controls["learn"].description == "learn"
     assert start is not ex.grid or r.best_step == 0
-    assert not [t for t in threading.enumerate() if t.name == "qwidgets-learn"]
+    assert not [t for t in threading.enumerate() if t.name == "qwidgets learn"]
 
 
 def test_a_large_layer_is_sampled_while_moving_and_exact_when_still(monkeypatch):
@@ -286,10 +295,9 @@ def test_a_large_layer_is_sampled_while_moving_and_exact_when_still(monkeypatch)
     layer, x = nn.Linear(64, 32), torch.randn(256, 64)
     loop = FakeLoop()
     monkeypatch.setattr(events, "_running_loop", lambda: loop)
-    monkeypatch.setattr(explorer_module, "_loop", lambda: loop)
     monkeypatch.setattr(explorer_module, "LARGE_LAYER_MACS", 1000)
     ex = GridExplorer(layer, x, bits=4)
-    ex.controls["scale"].value = ex.controls["scale"].value * 1.3
+    ex.state.scale = ex.state.scale * 1.3
     loop.advance(0.05)  # drawn, as while moving: a sample of the rows, with its +-dB
     shown = ex.readouts["layer-output SQNR"]
     assert "+-" in shown and f"of {x.shape[0]} rows" in shown

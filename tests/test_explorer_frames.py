@@ -70,11 +70,14 @@ MOVES = [
 def move(ex, name, value):
     c = ex.controls
     if name == "scale":
-        c["scale"].value = ex.state.fitted_step() * value
+        ex.state.scale = ex.state.fitted_step() * value
     elif name == "offset":
-        c["offset"].value = value * float(ex.state.shown_grid().scale)
+        ex.state.offset = value * float(ex.state.shown_grid().scale)
     elif name == "probe":
-        c["probe"].value = c["probe"].min + value * (c["probe"].max - c["probe"].min)
+        p = c["probe"].positions
+        ex.state.probe = p.lo + value * (p.hi - p.lo)
+    elif name in ("noise", "temperature"):
+        setattr(ex.state, "noise_steps" if name == "noise" else name, value)
     else:
         c[name].value = value
 
@@ -115,11 +118,11 @@ def test_a_noise_move_redraws_only_the_axes_that_show_noise(subject):
     before, png = canvas.blits, canvas.last_png
     ex.refresh()
     assert canvas.blits == before and canvas.last_png == png
-    ex.controls["noise"].value = 0.7
+    ex.state.noise_steps = 0.7
     ex.refresh()
     assert canvas.blits - before == 3
     before = canvas.blits
-    ex.controls["scale"].value = ex.grid.scale * 1.05
+    ex.state.scale = ex.grid.scale * 1.05
     ex.refresh()
     assert canvas.blits - before == 5
     assert canvas.full_draws == 1

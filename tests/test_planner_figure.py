@@ -56,3 +56,17 @@ def test_many_layers_show_every_kth_name():
     shown = [t.get_text() for t in fig.ax_bits.get_yticklabels()]
     assert len(shown) <= MAX_LABELS and shown[0] == names[0]
     assert len(fig.weight_bars) == 120  # every layer keeps its bar
+
+
+@pytest.mark.parametrize("curve", [False, True])
+def test_the_weight_input_legend_leaves_the_title_readable(curve):
+    # rendered extents (matplotlib's own layout): legend and title apart, both inside the figure
+    canvas = BlitCanvas(760, 490 if curve else 350)
+    fig = PlannerFigure(canvas, ["a", "b", "c"], (2, 4, 8), inputs=True, curve=curve)
+    canvas.render()
+    renderer = canvas.figure.canvas.get_renderer()
+    title = fig.ax_bits.title.get_window_extent(renderer)
+    legend = fig.ax_bits.get_legend().get_window_extent(renderer)
+    height = canvas.figure.bbox.height
+    assert legend.y1 + 2 <= title.y0, (legend, title)
+    assert title.y1 <= height and legend.y0 >= fig.ax_bits.get_window_extent(renderer).y1 - 1

@@ -13,8 +13,10 @@ from collections import OrderedDict
 import ipywidgets as widgets
 import pytest
 import torch
+from front_end import person_sets
 from torch import nn
 
+from qwidgets.widgets.number_control import NumberControl
 from qwidgets.widgets.planner import BudgetPlanner
 from qwidgets.widgets.scanview import ScanView
 
@@ -32,16 +34,31 @@ def _check(w, what: str) -> None:
         assert not line.is_error, f"{what}: {line.text}\n{line.last_traceback}"
 
 
+# controls whose move is a request for another plan; any other move keeps the plan
+ASKS_FOR_A_PLAN = {"budget", "limit", "limit_kind", "refine", "use_grid"}
+
+
 def _move_all(w, tmp_path, skip=()) -> set:
-    """Move each control through its values (buttons clicked), checking the message lines."""
+    """Move each control through its values (buttons clicked), as a browser sends them,
+    checking the message lines and that no move changes the plan unless it asked for one."""
     moved = set()
     for name, c in list(w.controls.items()):
         if name in skip:
             continue
-        if isinstance(c, (widgets.ToggleButtons, widgets.Dropdown)):
+        plan = getattr(w, "plan", None)
+        if isinstance(c, NumberControl):
+            n = c.slider.max
+            for pos in (0, n, int(0.37 * n), n // 2):
+                c.slider.set_state({"value": pos})
+                w.refresh()
+                _check(w, f"{name} at position {pos}")
+            c.box.set_state({"value": c.fmt(c.positions.value(n // 3))})  # typed
+            w.refresh()
+            _check(w, f"{name} typed")
+        elif isinstance(c, (widgets.ToggleButtons, widgets.Dropdown)):
             values = [v for _, v in c.options] if c.options and isinstance(c.options[0], tuple) else list(c.options)
             for v in values + [values[0]]:
-                c.value = v
+                person_sets(c, v)
                 if hasattr(w, "refresh"):
                     w.refresh()
                 _check(w, f"{name}={v!r}")
@@ -67,6 +84,8 @@ def _move_all(w, tmp_path, skip=()) -> set:
             _check(w, f"{name} clicked")
         else:
             raise AssertionError(f"do not know how to move control {name!r} ({type(c).__name__})")
+        if name not in ASKS_FOR_A_PLAN and plan is not None:
+            assert w.plan is plan, f"moving {name} changed the plan"
         moved.add(name)
     return moved
 
@@ -85,13 +104,30 @@ def _math_named_model() -> tuple[nn.Module, torch.Tensor]:
     return net, torch.randn(24, 3, 8, 8)
 
 
+class TinyTransformer(nn.Module):
+    """A second kind of model, written here: a projection, one encoder layer (attention and a
+    feed-forward block), a mean over the sequence and a head."""
+
+    def __init__(self):
+        super().__init__()
+        self.embed = nn.Linear(6, 16)
+        self.encoder = nn.TransformerEncoderLayer(16, 2, dim_feedforward=32, dropout=0.0, batch_first=True)
+        self.head = nn.Linear(16, 3)
+
+    def forward(self, x):
+        return self.head(self.encoder(self.embed(x)).mean(1))
+
+
 def _cases():
     from qwidgets.demo import load_demo
 
     demo = load_demo()
     net, x = _math_named_model()
+    torch.manual_seed(2)
+    tf, xt = TinyTransformer().eval(), torch.randn(40, 5, 6)
     return {"demo": (demo.model, demo.x_train[:96], demo.x_test[:200], demo.y_test[:200]),
-            "conv2d with math-like names": (net, x[:16], x[16:], None)}
+            "conv2d with math-like names": (net, x[:16], x[16:], None),
+            "transformer": (tf, xt[:24], xt[24:], None)}
 
 
 @pytest.fixture(scope="module")
@@ -99,7 +135,7 @@ def cases():
     return _cases()
 
 
-@pytest.mark.parametrize("case", ["demo", "conv2d with math-like names"])
+@pytest.mark.parametrize("case", ["demo", "conv2d with math-like names", "transformer"])
 def test_every_control_moves_without_a_failure(cases, case, tmp_path):
     from qwidgets.demo import accuracy
 

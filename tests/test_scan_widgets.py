@@ -13,6 +13,7 @@ import re
 import numpy as np
 import pytest
 import torch
+from front_end import person_sets
 from torch import nn
 
 from qwidgets.planning.evaluate import evaluate_plan
@@ -150,14 +151,14 @@ def test_planner_slider_burst_coalesces_to_the_last_value(setup):
     net, x, _, table = setup
     p = BudgetPlanner(net, x, table=table)
     p.set_budget("model_kib", p.front()[0][0])
-    s = p.controls["budget"]
+    s = p.controls["budget"].slider
     calls = p._updater.calls
-    values = np.linspace(s.min, s.max, 200)
-    for v in values:
-        s.value = float(v)
+    for pos in range(0, s.max + 1):  # a drag over every position, as a browser sends it
+        s.set_state({"value": pos})
     p.refresh()
     assert p._updater.calls - calls == 1  # no running event loop: the burst waits for one flush
-    assert p.plan.bits == plan_budget(table, model_kib=float(values[-1])).bits
+    assert p.plan.bits == plan_budget(table, model_kib=p.state.budget).bits
+    assert p.state.budget == p.controls["budget"].positions.value(s.max)
 
 
 def test_planner_saves_and_reports_unwritable_paths(setup, tmp_path):
@@ -268,7 +269,9 @@ def test_planner_kind_switch_keeps_the_plan(setup):
     # BOPs = MACs x weight bits x input bits (common practice), summed by hand here
     bops = sum(table.macs(n) * plan.bits[n] * 8 for n in plan.layers)
     assert p.budget == bops
-    assert p.controls["budget"].value * p._scale == pytest.approx(bops)
+    # the slider shows the nearest position (1 % apart), the box the exact budget
+    assert p.controls["budget"].positions.value(p.controls["budget"].slider.value) == pytest.approx(bops, rel=0.006)
+    assert p.controls["budget"].box.value == f"{bops:,}"
     assert "kept the plan" in p.message.text
     p.controls["kind"].value = "mean_bits"
     assert p.plan is plan
@@ -281,8 +284,9 @@ def test_planner_keyboard_step_is_about_one_percent(setup):
     p = BudgetPlanner(net, x, table=table)
     for kind in ("model_kib", "mean_bits", "bops"):
         p.controls["kind"].value = kind
-        s = p.controls["budget"]
-        assert 0.004 <= s.step / (s.max - s.min) <= 0.025, kind
+        pos = p.controls["budget"].positions
+        assert pos.value(1) / pos.value(0) == pytest.approx(1.01, abs=1e-3), kind  # one key: 1 %
+        assert pos.lo == p.front(kind)[0][0] and pos.hi == p.front(kind)[-1][0]
 
 
 def test_planner_markers_stay_inside_the_plot(setup):
@@ -322,8 +326,8 @@ def test_planner_notes_clear_when_the_plan_changes(setup):
     p = BudgetPlanner(net, x, table=table)
     p.measure()
     assert p.message.text.startswith("measured:")
-    s = p.controls["budget"]
-    s.value = s.min + 0.3 * (s.max - s.min)
+    s = p.controls["budget"].slider
+    s.set_state({"value": int(0.3 * s.max)})  # a person's move
     p.refresh()
     assert p.message.text == "" and p.report is None and "press measure" in p.readout.value
 
@@ -426,13 +430,14 @@ def test_planner_second_budget_holds_with_the_first(setup):
     assert not p.controls["limit"].disabled
     bops_front = p.front("bops")
     limit = bops_front[len(bops_front) // 3][0]
-    p.controls["limit"].value = limit / p.limit.scale
+    p.controls["limit"].box.set_state({"value": f"{limit:,}"})  # typed, as a browser sends it
     p.refresh()
     assert not p.message.is_error, p.message.text
-    want = plan_budget(table, model_kib=kib, bops=p.limit.value())
+    assert p.state.limit == limit
+    want = plan_budget(table, model_kib=kib, bops=limit)
     assert p.plan.bits == want.bits
     # both budgets hold, counted here: BOPs = MACs x weight bits x 8 input bits (common practice)
-    assert sum(table.macs(n) * p.plan.bits[n] * 8 for n in p.plan.layers) <= p.limit.value()
+    assert sum(table.macs(n) * p.plan.bits[n] * 8 for n in p.plan.layers) <= limit
     assert p.plan.model_kib <= kib + 1e-9 and "bops" in p.readout.value
     # one budget per kind: the first budget's kind is not offered; switching to it drops the second
     assert "model_kib" not in [v for _, v in p.controls["limit_kind"].options]
@@ -453,3 +458,34 @@ def test_planner_shows_input_widths_for_a_separate_table():
     widths = [b.get_width() for b in p.figure.input_bars]
     assert widths == [p.plan.chosen_input_bits[n] or 0 for n in t.layers]
     assert all(w in (4, 8) for w in widths)
+
+
+def test_scanview_shows_input_rows_beside_weight_rows():
+    # a table with weight and input rows (as quantize="separate" scans make), built by hand; the
+    # second entry's input was not scanned (NaN): its cells stay empty
+    t = SensitivityTable.synthetic(np.array([[5.0, 20.0, 40.0], [8.0, 25.0, 45.0]]), params=[100, 400],
+                                   bits=(2, 4, 8), input_sqnr_db=np.array([[15.0, 40.0], [np.nan, np.nan]]),
+                                   input_bits=(4, 8))
+    view = ScanView(t)
+    ax_w, ax_in = view.canvas.figure.axes[:2]
+    assert ax_in is view.figure.axes_inputs and "layer inputs" in ax_in.get_title()
+    assert [x.get_text() for x in ax_in.texts] == ["15.0", "40.0"]  # the input rows' values
+    assert [x.get_text() for x in ax_w.texts] == ["5.0", "20.0", "40.0", "8.0", "25.0", "45.0"]
+    html_ = view.table_html.value
+    assert "weights quantized" in html_ and "layer inputs quantized" in html_
+    assert html_.index("weights quantized") < html_.index("layer inputs quantized")
+    assert "<th>4 bits</th><th>8 bits</th></tr>" in html_
+
+
+def test_scanview_state_is_a_traitlets_model_the_controls_follow(setup):
+    net, x, _, table = setup
+    view = ScanView(table, x, model=net)
+    seen = []
+    view.state.observe(lambda ch: seen.append((ch["name"], ch["new"])), names=["layer", "bits"])
+    person_sets(view.controls["layer"], "4")  # a person's choices, as a browser sends them
+    person_sets(view.controls["bits"], 8)
+    assert seen == [("layer", "4"), ("bits", 8)]
+    view.controls["open"].click()
+    assert view.selected == ("4", 8) and view.explorer.grid.bits == 8
+    view.state.scope = "layer"  # a script: the toggle and the drawing follow
+    assert view.controls["scope"].value == "layer" and "Layer-output" in view.table_html.value

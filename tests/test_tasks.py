@@ -39,6 +39,8 @@ def test_in_a_running_kernel_the_button_becomes_stop_and_stops_after_the_current
         assert runner.progress.layout.visibility == "visible"
         runner.click(work, results.append)  # the second click stops it
         runner.thread.join(30)
+        while runner.running:  # the result is handed over on the event loop
+            await asyncio.sleep(0.01)
 
     asyncio.run(kernel())
     assert results == [f"stopped after {len(steps)} steps"] and len(steps) <= 100000

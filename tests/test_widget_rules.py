@@ -27,14 +27,16 @@ def test_explorer_controls_follow_the_device_rules():
     c = ex.controls
     assert ex.grid.bits == 8 and rules.obeys(ex.grid, "weight")  # 5 is not on the menu: the next one
     assert c["offset"].disabled
-    c["scale"].value = 0.3 * float(ex.grid.scale)
+    ex.state.scale = 0.3 * float(ex.grid.scale)
     ex.refresh()
     assert _pow2(ex.grid.scale) and rules.obeys(ex.grid, "weight")
-    c["offset"].value = 0.2
+    ex.state.offset = 0.2
     assert ex.grid.zero_point == 0
-    c["bits"].value = 7  # down from 8: the next width below on the menu
+    assert [v for _, v in c["bits"].options] == [4, 8]  # the buttons offer the menu
+    ex.state.bits = 7  # a script asks for 7, down from 8: the next width below on the menu
     assert ex.grid.bits == 4 and rules.obeys(ex.grid, "weight")
-    c["bits"].value = 5  # up from 4
+    assert "7 bits is not in the device's menu" in ex.message.text  # and it says so
+    ex.state.bits = 5  # up from 4
     assert ex.grid.bits == 8 and _pow2(ex.grid.scale)
     ex.fit("minmax")
     assert rules.obeys(ex.grid, "weight")

@@ -65,11 +65,13 @@ def cell_colors(arr: np.ndarray, vmin: float, vmax: float) -> tuple[list[list[st
 
 
 def draw_heatmap(ax, arr: np.ndarray, layers: Sequence[str], bits: Sequence[int], label: str, *,
-                 vmin: float | None = None, vmax: float | None = None) -> object:
+                 vmin: float | None = None, vmax: float | None = None, colorbar: bool = True,
+                 layer_labels: bool = True) -> object:
     """Draw a layers x bits SQNR heatmap with values in the cells into ``ax``; returns the image.
 
     ``vmin`` / ``vmax``: the colour scale (default: :func:`sqnr_limits` of ``arr``). Every label
-    is literal text (a layer named ``$x$`` is not read as math).
+    is literal text (a layer named ``$x$`` is not read as math). NaN cells (nothing measured,
+    e.g. an entry with no input rows) are grey and empty.
 
     >>> from matplotlib.figure import Figure
     >>> ax = Figure().add_subplot()
@@ -81,46 +83,59 @@ def draw_heatmap(ax, arr: np.ndarray, layers: Sequence[str], bits: Sequence[int]
     if vmin is None or vmax is None:
         vmin, vmax = sqnr_limits(arr)
     frac = _fractions(arr, vmin, vmax)
-    shown = vmin + frac * (vmax - vmin)
-    im = ax.imshow(shown, aspect="auto", cmap=CMAP, vmin=vmin, vmax=vmax, interpolation="nearest")
+    shown = np.ma.masked_invalid(np.where(np.isnan(arr), np.nan, vmin + frac * (vmax - vmin)))
+    cmap = colormaps[CMAP].with_extremes(bad="#e4e4e4")
+    im = ax.imshow(shown, aspect="auto", cmap=cmap, vmin=vmin, vmax=vmax, interpolation="nearest")
     ax.set_xticks(range(len(bits)), [str(b) for b in bits])
-    ax.set_yticks(range(len(layers)), [literal(n) for n in layers])
+    if layer_labels:
+        ax.set_yticks(range(len(layers)), [literal(n) for n in layers])
+        ax.set_ylabel("layer (execution order)")
+    else:  # beside another panel that names the layers (the ticks may be shared with it)
+        ax.tick_params(labelleft=False)
     ax.set_xlabel("bit width")
-    ax.set_ylabel("layer (execution order)")
     ax.set_title(label, fontsize=10, parse_math=False)
     fs = 8 if len(layers) <= 24 else 6
     for i in range(arr.shape[0]):
         for j in range(arr.shape[1]):
+            if np.isnan(arr[i, j]):
+                continue
             ax.text(j, i, fmt_db(arr[i, j]), ha="center", va="center", fontsize=fs, parse_math=False,
                     color="black" if frac[i, j] > TEXT_DARK_ABOVE else "white")
-    ax.figure.colorbar(im, ax=ax, label="SQNR (dB)", fraction=0.05, pad=0.02)
+    if colorbar:
+        ax.figure.colorbar(im, ax=ax, label="SQNR (dB)", fraction=0.05, pad=0.02)
     return im
 
 
 def sqnr_table_html(table: SensitivityTable, scope: str, vmin: float | None = None,
-                    vmax: float | None = None) -> str:
-    """The table's SQNR for one scope as an HTML table, cells in the heatmap's colours.
+                    vmax: float | None = None, source: str = "weight") -> str:
+    """The table's SQNR for one scope as an HTML table, cells in the heatmap's colours;
+    ``source="input"``: the input rows of a ``quantize="separate"`` table (one column per
+    input width; "-" where an entry's input was not scanned).
 
     >>> t = SensitivityTable.synthetic(np.array([[12.0, 36.0]]), params=[64], bits=(2, 6))
     >>> "#440154" in sqnr_table_html(t, "model") and "Model-output SQNR" in sqnr_table_html(t, "model")
     True
     """
-    arr = table.sqnr_array(scope)
+    arr = table.sqnr_array(scope, source)
     if arr is None:
         raise ValueError(f"the table holds no {scope}-scope SQNR; it holds {list(table.scopes)}")
     if vmin is None or vmax is None:
         vmin, vmax = sqnr_limits(arr)
     bg, fg = cell_colors(arr, vmin, vmax)
-    head = "".join(f"<th>{b} bits</th>" for b in table.bits)
+    widths = table.input_bits if source == "input" and table.quantize == "separate" else table.bits
+    head = "".join(f"<th>{b} bits</th>" for b in widths)
     body = []
     for i, name in enumerate(table.layers):
         cells = "".join(f'<td style="background:{bg[i][j]};color:{fg[i][j]};text-align:right">'
-                        f"{fmt_db(v)}</td>" for j, v in enumerate(arr[i]))
+                        f"{'-' if np.isnan(v) else fmt_db(v)}</td>" for j, v in enumerate(arr[i]))
         body.append(f"<tr><td>{html.escape(name)}</td><td>{html.escape(table.layer_type(name))}</td>"
                     f'<td style="text-align:right">{table.params(name):,}</td>'
                     f'<td style="text-align:right">{table.macs(name):,}</td>{cells}</tr>')
     how = f" ({html.escape(how_measured(table, scope))})" if how_measured(table, scope) else ""
-    return (f"<div><b>{scope.capitalize()}-output SQNR (dB)</b>{how}, {html.escape(table.quantize)} quantized, "
+    what = f"{table.quantize} quantized"
+    if table.quantize == "separate":
+        what = "layer inputs quantized" if source == "input" else "weights quantized"
+    return (f"<div><b>{scope.capitalize()}-output SQNR (dB)</b>{how}, {html.escape(what)}, "
             f"one layer at a time ({table.n_samples} samples)<table>"
             f"<tr><th>layer</th><th>type</th><th>weights</th><th>MACs / sample</th>{head}</tr>"
             + "".join(body) + "</table></div>")

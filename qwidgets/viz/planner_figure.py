@@ -51,11 +51,12 @@ class PlannerFigure:
         if curve:  # front on top, the metric curve under it on the same cost axis
             self.ax_front = fig.add_axes((0.09, 0.50, 0.50, 0.44))
             self.ax_curve = fig.add_axes((0.09, 0.09, 0.50, 0.30), sharex=self.ax_front)
-            self.ax_bits = fig.add_axes((0.72, 0.09, 0.25, 0.85))
+            self.ax_bits = fig.add_axes((0.72, 0.09, 0.25, 0.78 if inputs else 0.85))
             self._curve_placeholder()
         else:
             self.ax_front = fig.add_axes((0.09, 0.15, 0.50, 0.74))
-            self.ax_bits = fig.add_axes((0.72, 0.15, 0.25, 0.74))
+            # with inputs, a legend row between the bars and the title: the bars start lower
+            self.ax_bits = fig.add_axes((0.72, 0.15, 0.25, 0.66 if inputs else 0.74))
             self.ax_curve = None
         ax = self.ax_front
         (self.front_line,) = ax.plot([], [], drawstyle="steps-post", color=FRONT_COLOR, lw=1.4,
@@ -86,7 +87,7 @@ class PlannerFigure:
         axb.set_xlabel("bits")
         axb.grid(axis="x", alpha=0.3)
         if inputs:  # above the bars (which are drawn over anything inside the axes)
-            axb.set_title("bits per layer", fontsize=10, pad=16)
+            axb.set_title("bits per layer", fontsize=10, pad=20)
             axb.legend(loc="lower center", bbox_to_anchor=(0.5, 1.0), ncol=2, fontsize=7, frameon=False,
                        handlelength=1.0, borderaxespad=0.1)
         else:

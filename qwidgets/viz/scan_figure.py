@@ -35,14 +35,24 @@ class ScanFigure:
         self._row = self._cell = None
 
     def show(self, arr: np.ndarray, layers: Sequence[str], bits: Sequence[int], title: str, *,
-             vmin: float, vmax: float) -> None:
-        """Draw the heatmap (the whole figure anew) with the colour scale ``vmin`` .. ``vmax``."""
+             vmin: float, vmax: float, inputs: tuple | None = None) -> None:
+        """Draw the heatmap (the whole figure anew) with the colour scale ``vmin`` .. ``vmax``;
+        ``inputs``: ``(array, widths, title)`` of the input rows, drawn beside it."""
         fig = self.canvas.figure
         if self._row is not None:
             self.canvas.forget(self._row, self._cell)
         fig.clear()
-        ax = fig.add_subplot()
-        draw_heatmap(ax, arr, layers, bits, title, vmin=vmin, vmax=vmax)
+        self.axes_inputs = None
+        if inputs is None:
+            ax = fig.add_subplot()
+            draw_heatmap(ax, arr, layers, bits, title, vmin=vmin, vmax=vmax)
+        else:
+            in_arr, in_bits, in_title = inputs
+            ax, self.axes_inputs = fig.subplots(1, 2, sharey=True, gridspec_kw={
+                "width_ratios": [len(bits) + 1, len(in_bits) + 1.6]})
+            draw_heatmap(ax, arr, layers, bits, title, vmin=vmin, vmax=vmax, colorbar=False)
+            draw_heatmap(self.axes_inputs, in_arr, layers, in_bits, in_title, vmin=vmin, vmax=vmax,
+                         layer_labels=False)
         self._row = Rectangle((-0.5, -0.5), len(bits), 1, fill=False, lw=2.2, ec="#d62728", visible=False)
         self._cell = Rectangle((-0.5, -0.5), 1, 1, fill=False, lw=2.2, ec="white", visible=False)
         ax.add_patch(self._row)

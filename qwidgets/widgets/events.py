@@ -1,4 +1,4 @@
-"""Event plumbing shared by the widgets: coalesced updates, the message line, echo filtering.
+"""Event plumbing shared by the widgets: coalesced updates, the message line.
 
 ``Coalescer(callback, delay=0.03, on_error=None)``
     ``.request()`` records that an update is due and schedules one ``callback`` call on the
@@ -9,16 +9,12 @@
     ``.widget`` (an ``ipywidgets.HTML``), ``.text``, ``.error(exc, context)``, ``.info(text)``,
     ``.clear()``, ``.run(context, fn)`` and ``.guard(context)``: a context manager that shows an
     exception raised inside it on the line instead of losing it in the kernel's log.
-``observe_value(widget, handler)``
-    Call ``handler(change)`` when a control's value changes, except when the change is the
-    front end echoing, rounded to the control's step, a value the kernel set (see below).
 """
 
 from __future__ import annotations
 
 import asyncio
 import html
-import math
 import traceback
 from collections.abc import Callable
 from contextlib import contextmanager
@@ -157,140 +153,3 @@ class MessageLine:
             yield
         except Exception as exc:
             self.error(exc, context)
-
-
-_ECHO_HISTORY = 64  # kernel-set values remembered since the last real move
-
-
-_ECHO_TOL = 1e-3  # in steps: how close an echo is to the front end's rounding of a kernel value
-
-
-def observe_value(widget, handler: Callable[[dict], object]) -> None:
-    """Observe ``widget.value``, ignoring the front end's echoes of values the kernel set.
-
-    A browser shows a slider at its step: given a value between two steps it rounds it and
-    sends the rounded value back, often after the kernel has moved on (the sliders follow a
-    learning run; a planner has been measured). Taken as a person's move, that echo would
-    replace what the kernel computed with a rounded or stale value. A front end also re-sends
-    its old value when it redraws a slider whose window (min, max, step) changed. So an echo
-    is recognised as a value the kernel set since the last person's move (the step rounding of
-    it, for an off-grid value, under the window then shown), or a value off the slider's
-    current step grid: it is ignored (and if it was stale, the control is put back to the
-    latest value). Values set in the kernel (by the widget or a script) always reach
-    ``handler``; a value from the front end (it arrives through ``Widget.set_state``) reaches it
-    when it moves the slider to a new position, and a person's move forgets the earlier kernel
-    values, which can no longer echo. (The one move lost: a single click landing exactly where
-    the kernel put the slider earlier; the slider then shows the kernel's value again.)
-
-    >>> import ipywidgets as widgets
-    >>> s = widgets.FloatSlider(min=0, max=1, step=0.1)
-    >>> seen = []
-    >>> observe_value(s, lambda c: seen.append(c["new"]))
-    >>> s.value = 0.123   # set by the kernel, off the step grid
-    >>> s.set_state({"value": 0.1})  # the browser's rounded echo of it: ignored
-    >>> s.set_state({"value": 0.7})  # a person's move
-    >>> seen, s.value
-    ([0.123, 0.7], 0.7)
-    """
-    echoes: list = []  # values the kernel set (off-grid ones as the front end rounds them)
-    latest = [widget.value]  # the latest value taken
-    restoring = [False]
-    from_front = [False]  # True while ipywidgets applies a message from the front end
-
-    # ``Widget.set_state`` is ipywidgets' public entry for state sent by the front end: wrapping
-    # it on this instance tells a browser's value from one set in the kernel.
-    apply_front = widget.set_state
-
-    def set_state(sync_data):
-        from_front[0] = True
-        try:
-            return apply_front(sync_data)
-        finally:
-            from_front[0] = False
-
-    widget.set_state = set_state
-
-    def remember(value) -> bool:
-        snapped = _on_step_grid(widget, value)
-        if snapped is not None and not _same_position(widget, value, snapped):
-            echoes.append(snapped)
-            del echoes[:-_ECHO_HISTORY]
-            return True
-        return False
-
-    remember(widget.value)  # the value it was made with echoes too, when first drawn
-
-    def observe(change):
-        new = change["new"]
-        if restoring[0]:
-            return None
-        if not from_front[0]:  # set in the kernel (by the widget or a script): always taken
-            latest[0] = new
-            if not remember(new):  # on the step grid: the front end may still send it back late
-                echoes.append(new)  # (it re-sends its old value when it redraws the slider)
-                del echoes[:-_ECHO_HISTORY]
-            return handler(change)
-        # (no time limit: while a notebook runs all its cells, the kernel reads the front end's
-        # messages only after the last cell, long after it set the values they echo)
-        if any(_same_position(widget, new, v) for v in echoes):
-            if not _same_position(widget, new, _on_step_grid(widget, latest[0])):
-                restoring[0] = True  # a stale echo: show the latest value again
-                try:
-                    widget.value = latest[0]
-                finally:
-                    restoring[0] = False
-            return None
-        if getattr(widget, "step", None) and _same_position(widget, new, latest[0]):
-            return None  # the slider's position did not move: an echo, not a person's move
-        snapped = _on_step_grid(widget, new)
-        if snapped is not None and not _same_position(widget, new, snapped):
-            # off this slider's step grid, so no person put it there: the late echo of a value
-            # shown under an earlier min / step (the window moved since). Show the latest again.
-            restoring[0] = True
-            try:
-                widget.value = latest[0]
-            finally:
-                restoring[0] = False
-            return None
-        echoes.clear()  # a person moved it: earlier kernel values can no longer echo
-        latest[0] = new
-        return handler(change)
-
-    def regrid(change):
-        # the kernel moved the slider's window: the front end shows the latest value at its
-        # rounding under the new min / step, which echoes too
-        if not from_front[0] and not restoring[0]:
-            remember(latest[0])
-
-    widget.observe(observe, names="value")
-    widget.observe(regrid, names=[n for n in ("min", "max", "step") if widget.has_trait(n)])
-
-
-def _on_step_grid(widget, v):
-    """The value a front end shows for ``v``: rounded to the slider's step (None: no step)."""
-    step = getattr(widget, "step", None)
-    if isinstance(v, bool) or not isinstance(v, (int, float)) or not step:
-        return None
-    lo = getattr(widget, "min", 0) or 0
-    base = getattr(widget, "base", None)
-    if base is not None:  # a log slider steps in the exponent
-        if v <= 0:
-            return None
-        e = math.log(v, base)
-        return base ** (lo + round((e - lo) / step) * step)
-    return lo + round((v - lo) / step) * step
-
-
-def _same_position(widget, a, b) -> bool:
-    if a is None or b is None:
-        return False
-    step = getattr(widget, "step", None)
-    if not step or isinstance(a, bool) or not isinstance(a, (int, float)) \
-            or not isinstance(b, (int, float)):
-        return a == b
-    base = getattr(widget, "base", None)
-    if base is not None:
-        if a <= 0 or b <= 0:
-            return a == b
-        return abs(math.log(a, base) - math.log(b, base)) <= _ECHO_TOL * step
-    return abs(a - b) <= _ECHO_TOL * step

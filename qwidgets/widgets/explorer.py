@@ -1,10 +1,11 @@
 """GridExplorer: one layer's (or one tensor's) quantization grid under live controls.
 
-The state lives in one :class:`~qwidgets.widgets.explorer_state.ExplorerState`; the controls
-edit it, :class:`~qwidgets.widgets.explorer_numbers.ExplorerNumbers` measures it with the core
-and model functions, :class:`~qwidgets.viz.explorer_figure.ExplorerFigure` draws it. A control
-change records the new value and schedules one redraw (:class:`~qwidgets.widgets.events.Coalescer`),
-so dragging a slider never builds a backlog.
+The state lives in one ``traitlets.HasTraits`` model, :class:`~qwidgets.widgets.explorer_state.ExplorerState`
+(``explorer.state``); the controls are bound to it (:mod:`~qwidgets.widgets.explorer_controls`),
+:class:`~qwidgets.widgets.explorer_numbers.ExplorerNumbers` measures it with the core and model
+functions, :class:`~qwidgets.viz.explorer_figure.ExplorerFigure` draws it. A change of the
+state schedules one redraw (:class:`~qwidgets.widgets.events.Coalescer`), so dragging a slider
+never builds a backlog.
 
 The user's model is only read: the explorer keeps float32 copies of the layer's weight and of
 its input, and learned grids live in the explorer (``.grid``, ``.to_setting()``), never in the
@@ -12,6 +13,8 @@ layer.
 """
 
 from __future__ import annotations
+
+import html
 
 import ipywidgets as widgets
 
@@ -24,29 +27,37 @@ from ..core.renamed import warn_renamed
 from ..core.setting import LayerSetting
 from ..learn.one_grid import DEFAULT_NOISE_STEPS, LearnResult
 from ..planning.threads import threads
+from ..viz.explorer_figure import ExplorerFigure
 from .display_snapshot import SnapshotDisplay
-from .events import Coalescer
+from .events import Coalescer, MessageLine, running_loop
 from .explorer_controls import ExplorerControls
 from .explorer_learning import LearnRunner
 from .explorer_numbers import ExplorerNumbers
 from .explorer_panel import (
     METHOD_LABELS,
     SOURCE_LABELS,
+    clip_warning,
     readout_html,
     readout_rows,
 )
 from .explorer_state import ExplorerState
-from .explorer_static import ExplorerStatic
+from .explorer_static import ValueAxes
 from .explorer_subject import ExplorerSubject
+from .image_canvas import PlotCanvas
 
-__all__ = ["GridExplorer"]
+__all__ = ["GridExplorer", "CSS"]
+
+CSS = {"root": "qw-explorer", "plot": "qw-plot", "readout": "qw-readout",
+       "message": "qw-message", "heading": "qw-heading"}
+STATE_TRAITS = ["source", "bits", "signed", "per_channel", "channel", "scale", "offset", "method",
+                "keep_clip", "noise_steps", "temperature", "probe", "grid"]
 
 SAMPLED_ROWS = 32  # rows measured while a control of a large layer moves (exact when it stops)
 LARGE_LAYER_MACS = 100_000_000  # above this many multiply-adds per update, sample while moving
 SETTLE_S = 0.35  # after this long without a change, a sampled readout is made exact
 
 
-class GridExplorer(SnapshotDisplay, ExplorerStatic, ExplorerControls, widgets.VBox):
+class GridExplorer(SnapshotDisplay, widgets.VBox):
     """Explore a uniform grid for a tensor or for one layer's weights or inputs, live.
 
     ``GridExplorer(tensor)`` explores a tensor; ``GridExplorer(layer, data)`` a Linear / Conv
@@ -59,8 +70,11 @@ class GridExplorer(SnapshotDisplay, ExplorerStatic, ExplorerControls, widgets.VB
     :meth:`show_setting`. ``output``: an ``ipywidgets.Output`` that captures the progress of
     learning runs (default: the explorer's own).
 
-    ``controls`` holds the ipywidgets controls; ``.grid``, ``.stats``, ``.usage``,
-    ``.layer_stats`` and ``.readouts`` the current state; ``.refresh()``, ``.fit()``,
+    ``state`` is the explorer's state, a ``traitlets.HasTraits`` model
+    (:class:`~qwidgets.widgets.explorer_state.ExplorerState`: ``bits``, ``scale``,
+    ``offset``, ``signed``, ``noise_steps``, ...): set its traits, ``observe`` them or
+    ``link`` your own controls to them. ``controls`` holds the ipywidgets controls bound to it;
+    ``.grid``, ``.stats``, ``.usage``, ``.layer_stats`` and ``.readouts`` the current state; ``.refresh()``, ``.fit()``,
     ``.learn()``, ``.reset()``, ``.save_figure()`` and ``.to_setting()`` act on it. A new bit
     width refits the range with the selected method (tick *keep clip range* to keep it), or
     brings back the grid learned for that width. With ``rules`` (:class:`qwidgets.DeviceRules`)
@@ -72,7 +86,7 @@ class GridExplorer(SnapshotDisplay, ExplorerStatic, ExplorerControls, widgets.VB
     >>> from torch import nn
     >>> _ = torch.manual_seed(0)
     >>> ex = GridExplorer(nn.Linear(32, 16), torch.randn(64, 32), bits=4)
-    >>> ex.controls["bits"].value = 6
+    >>> ex.state.bits = 6
     >>> _ = ex.refresh()
     >>> ex.grid.bits, round(ex.stats.sqnr_db) > 25, ex.layer_stats is not None
     (6, True, True)
@@ -114,23 +128,52 @@ class GridExplorer(SnapshotDisplay, ExplorerStatic, ExplorerControls, widgets.VB
         self.state.start(bits, per_channel)
         self._start = (ns, temperature)
         self.numbers = ExplorerNumbers(self.subject)
-        self._clock = clock
-        self._build_widgets(width, height, output)
-        self._moving = False
-        self._settle_handle = None
+        self._clock, self._moving, self._settle_handle = clock, False, None
         self._updater = Coalescer(self._interactive_redraw, delay=0.03,
                                   on_error=lambda e: self.message.error(e, "update"))
-        self.learner = LearnRunner(self, clock=clock)
         if grid is not None:
             self.show_setting(LayerSetting(weight=grid), note=False)
-        self._select_static()
-        self._sync_controls()
+        self._build_widgets(width, height, output)
+        self.state.observe(lambda _ch: self._updater.request(), names=STATE_TRAITS)
+        self.state.observe(self._show_note, names=["note", "signed"])
         self._redraw()
+
+    def _build_widgets(self, width: int, height: int, output) -> None:
+        self.message = MessageLine()
+        self.panel = ExplorerControls(self.state, has_layer=self.subject.has_layer,
+                                      on_error=lambda e, name: self.message.error(e, f"setting {name}"),
+                                      before=self.message.clear)
+        c = self.controls = self.panel.controls
+        self.learner = LearnRunner(self, c["learn"], clock=self._clock)
+        c["fit"].on_click(lambda _b: self.message.run("fit range", self.fit))
+        c["learn"].on_click(lambda _b: self.message.run("learn", self._learn_clicked))
+        c["reset"].on_click(lambda _b: self.message.run("reset", self.reset))
+        self.heading = widgets.HTML(f"<b>{html.escape(self.subject.heading)}</b>")
+        self.heading.add_class(CSS["heading"])
+        self.canvas = PlotCanvas(width, height)
+        self.canvas.image.add_class(CSS["plot"])
+        self.figure = ExplorerFigure(self.canvas, has_layer=self.subject.has_layer)
+        self.axes = ValueAxes(self.figure, self.subject)
+        self.readout = widgets.HTML(layout=widgets.Layout(width="270px", margin="0 0 0 8px"))
+        self.readout.add_class(CSS["readout"])
+        self.progress = output if output is not None else widgets.Output(
+            layout=widgets.Layout(min_height="0px"))
+        self.children = self.panel.layout(self.heading, self.learner.progress_box, self.canvas.image,
+                                          self.readout, self.progress, self.message.widget)
+        self.add_class(CSS["root"])
+
+    def _show_note(self, change) -> None:
+        """The state changed something the person did not ask for, or a choice clips a large
+        share of the values: say what and why."""
+        text = change["new"] if change["name"] == "note" else \
+            clip_warning(self.state, self.numbers.tensor(self.state)[1])
+        if text:
+            self.message.info(text)
+            self.state.note = ""
 
     # ================================================================== public state
     @property
-    def layer_name(self) -> str | None:
-        return self.subject.layer_name
+    def layer_name(self) -> str | None: return self.subject.layer_name  # noqa: E704
 
     @property
     def grid(self) -> UniformGrid:
@@ -138,8 +181,7 @@ class GridExplorer(SnapshotDisplay, ExplorerStatic, ExplorerControls, widgets.VB
         return self.state.grid
 
     @property
-    def source(self) -> str:
-        return self.state.source
+    def source(self) -> str: return self.state.source  # noqa: E704
 
     @property
     def noise_steps(self) -> float:
@@ -153,8 +195,7 @@ class GridExplorer(SnapshotDisplay, ExplorerStatic, ExplorerControls, widgets.VB
         return self.state.noise_steps
 
     @property
-    def temperature(self) -> float:
-        return self.state.temperature
+    def temperature(self) -> float: return self.state.temperature  # noqa: E704
 
     @property
     def snapshot_title(self) -> str:
@@ -189,7 +230,6 @@ class GridExplorer(SnapshotDisplay, ExplorerStatic, ExplorerControls, widgets.VB
         ``"mse"``; default: the method chosen in the widget), keeping bits, signedness and
         per-channel choice. Returns the new grid (also ``.grid``)."""
         grid = self.state.fit(method)
-        self._sync_controls()
         self._note(f"fitted the range ({METHOD_LABELS[self.state.method]}, {grid.bits} bits)")
         return grid
 
@@ -216,8 +256,6 @@ class GridExplorer(SnapshotDisplay, ExplorerStatic, ExplorerControls, widgets.VB
         temperature (a grid learned for this width is forgotten)."""
         self.state.reset()
         self.state.noise_steps, self.state.temperature = self._start
-        self._select_static()
-        self._sync_controls()
         self._note(f"reset to the fitted grid ({self.grid.bits} bits)")
 
     def show_setting(self, setting: LayerSetting, *, note: bool = True) -> None:
@@ -234,12 +272,9 @@ class GridExplorer(SnapshotDisplay, ExplorerStatic, ExplorerControls, widgets.VB
                 grid_params(self.subject.values[source], g)  # a grid that fits (clear error)
         for source, g in pairs:
             if g is not None:
-                self.state.set_grid(g, source)
-        if hasattr(self, "_updater"):
-            self._select_static()
-            self._sync_controls()
-            if note:
-                self._note("showing the given setting")
+                self.state.set_grid(g, source, origin=("given", None))
+        if note:
+            self._note("showing the given setting")
 
     def _note(self, text: str) -> None:
         self.message.info(text)
@@ -301,20 +336,21 @@ class GridExplorer(SnapshotDisplay, ExplorerStatic, ExplorerControls, widgets.VB
     # ================================================================== drawing
     def _work(self) -> int:
         sub = self.subject
-        if not sub.has_layer:
-            return 0
-        return sub.reference.numel() * sub.values["weight"][0].numel()
+        return sub.reference.numel() * sub.values["weight"][0].numel() if sub.has_layer else 0
 
     def _interactive_redraw(self) -> None:
         """A scheduled redraw: large layers are measured on a sample of rows while controls
         move, and exactly once they have been still for a moment."""
-        sample = self._work() > LARGE_LAYER_MACS and _loop() is not None
+        loop = running_loop()
+        sample = self._work() > LARGE_LAYER_MACS and loop is not None
         self._redraw(rows=SAMPLED_ROWS if sample else None)
         if sample:
             self._moving = True
             if self._settle_handle is not None:
                 self._settle_handle.cancel()
-            self._settle_handle = _loop().call_later(SETTLE_S, self._settle)
+            self._settle_handle = loop.call_later(SETTLE_S, self._settle)
+        if loop is not None:  # after the first draw, fit the neighbouring widths while idle
+            loop.call_later(SETTLE_S, lambda: None if self._updater.pending else self.state.prefetch())
 
     def _settle(self) -> None:
         self._settle_handle = None
@@ -323,14 +359,19 @@ class GridExplorer(SnapshotDisplay, ExplorerStatic, ExplorerControls, widgets.VB
         self.message.run("update", self._redraw)
 
     _rows_shown: int | None = None  # input rows the shown layer readout was measured on
+    _probe_view: tuple | None = None  # the value axis the probe's slider spans
 
     def _redraw(self, rows: int | None = None) -> None:
         self._moving = rows is not None
         self._rows_shown = rows
         with threads(self.refresh_threads):
-            self._place_view()
+            self.axes.select(self.state)
+            if self.axes.place(self.state) or self._probe_view != self.figure.view:
+                self._probe_view = self.figure.view
+                self.panel.place_probe(self._probe_view)  # may move the probe into the view
+                self._updater.cancel()  # this redraw shows it already
             layer = self.numbers.layer(self.state, rows) if self.subject.has_layer else None
-            data = self.numbers.plot_data(self.state, self.figure.view, self._error_sample,
+            data = self.numbers.plot_data(self.state, self.figure.view, self.axes.error_sample,
                                           None if layer is None else _sample_xy(layer, self.subject))
             self.figure.update(data)
             self.readout.value = self._readout_html(layer)
@@ -353,16 +394,6 @@ class GridExplorer(SnapshotDisplay, ExplorerStatic, ExplorerControls, widgets.VB
 
 
 def _sample_xy(layer, subject):
-    stats, sample = layer
-    if isinstance(sample, tuple):
-        return sample
-    return subject.scatter_x, sample
+    sample = layer[1]
+    return sample if isinstance(sample, tuple) else (subject.scatter_x, sample)
 
-
-def _loop():
-    import asyncio
-
-    try:
-        return asyncio.get_running_loop()
-    except RuntimeError:
-        return None

@@ -1,205 +1,197 @@
-"""The grid explorer's controls: layout, the observers that edit the state, and the sync of
-the controls from the state (a mixin of :class:`~qwidgets.widgets.explorer.GridExplorer`).
+"""The grid explorer's controls, bound to its :class:`~.explorer_state.ExplorerState`.
 
-Each control's change goes through one observer: the message line is cleared (a message
-describes a state that has just changed), the state is edited, and one redraw is scheduled;
-an invalid value shows its error on the message line and puts the controls back.
+Every control is bound to one trait of the state (:func:`~.number_control.bind`, or a
+:class:`~.number_control.NumberControl` for numbers): a person's move sets the trait, a change
+of the trait shows in the control. The kernel writes into a control only what it can show
+(a width among the bit buttons, a whole slider position, text), so a browser has nothing to
+echo and every message from it is a person's move. The numbers' slider windows follow the
+state (the step's window is centred on the fitted step, the offset's spans the values, the
+probe's the drawn value axis); the exact values are in the state and the boxes.
+
+Every control carries a stable CSS class ``qw-<name>`` (``qw-bits``, ``qw-scale``, ...,
+underscores as hyphens) so front-end tests and the demo can find it.
 """
 
 from __future__ import annotations
 
-import html
-
 import ipywidgets as widgets
 
-from ..viz.explorer_figure import ExplorerFigure
-from .events import MessageLine, observe_value
-from .explorer_panel import fmt_value, make_controls, step_window
-from .image_canvas import PlotCanvas
+from ..core.ranges import METHODS
+from .explorer_panel import METHOD_LABELS, SOURCE_LABELS, fmt3
+from .explorer_state import ExplorerState
+from .number_control import LinearPositions, LogPositions, NumberControl, bind
 
-__all__ = ["ExplorerControls", "CSS"]
+__all__ = ["ExplorerControls", "STEP_WINDOW", "STEP_POSITIONS"]
 
-CSS = {"root": "qw-explorer", "plot": "qw-plot", "readout": "qw-readout",
-       "message": "qw-message", "heading": "qw-heading"}
+STEP_WINDOW = 8.0  # the step control spans the fitted step divided / multiplied by this
+STEP_POSITIONS = 900  # positions of the step control over that window (about 0.5 % apart)
+OFFSET_POSITIONS = 2000
+PROBE_POSITIONS = 2000
 
 
 class ExplorerControls:
-    """Controls of a grid explorer (needs ``state``, ``subject``, ``figure`` and ``_updater``)."""
+    """The controls of one explorer (``.controls`` by name), bound to ``state``.
 
-    # ================================================================== widgets
-    def _build_widgets(self, width: int, height: int, output) -> None:
-        st = self.state
-        c = make_controls(self.subject.sources, st.source, st.method, st.noise_steps,
-                          st.temperature, has_layer=self.subject.has_layer)
+    ``on_error(exc, name)`` receives a value the state refused (the control shows the state
+    again); ``before()`` runs before a control's value goes to the state.
+
+    >>> import torch
+    >>> st = ExplorerState({"values": torch.linspace(-1, 1, 101)}, "values")
+    >>> st.start(4, per_channel=False)
+    >>> c = ExplorerControls(st, has_layer=False).controls
+    >>> c["bits"].set_state({"index": c["bits"].options.index(("6", 6))})  # a person's click
+    >>> st.bits, st.grid.bits
+    (6, 6)
+    """
+
+    def __init__(self, state: ExplorerState, *, has_layer: bool, on_error=None, before=None):
+        self.state = state
+        st = state
+        small = {"description_width": "60px"}
+        c: dict[str, widgets.Widget] = {}
+        c["bits"] = widgets.ToggleButtons(options=self._bits_options(), value=st.bits,
+                                          description="bits", tooltip="bit width of the grid",
+                                          style={"description_width": "92px", "button_width": "38px"})
+        c["scale"] = NumberControl(st, "scale", self._step_positions(), description="step",
+                                   on_error=on_error, before=before, description_width="92px",
+                                   tooltip="the grid step (type a value: 0.012, 12m, 1.2e-2)")
+        c["offset"] = NumberControl(st, "offset", self._offset_positions(), description="offset",
+                                    on_error=on_error, before=before, description_width="92px",
+                                    tooltip="the grid offset, in value units")
+        c["noise"] = NumberControl(st, "noise_steps", LogPositions(0.01, 10 ** 0.5, n=250),
+                                   description="noise (steps)", fmt=fmt3, on_error=on_error, before=before,
+                                   tooltip="logistic noise width, a fraction of the step")
+        c["temperature"] = NumberControl(st, "temperature", LogPositions(0.01, 10.0, n=300),
+                                         description="temperature", fmt=fmt3, on_error=on_error,
+                                         before=before)
+        c["probe"] = NumberControl(st, "probe", LinearPositions(-1.0, 1.0, PROBE_POSITIONS),
+                                   description="probe value", on_error=on_error, before=before,
+                                   tooltip="the value whose bin probabilities are drawn")
+        c["source"] = widgets.ToggleButtons(
+            options=[(SOURCE_LABELS[s], s) for s in st.sources], value=st.source,
+            description="quantize", style={"description_width": "60px", "button_width": "100px"},
+            disabled=len(st.sources) == 1)
+        c["signed"] = widgets.Checkbox(description="signed codes", indent=False,
+                                       layout=widgets.Layout(width="130px"))
+        c["per_channel"] = widgets.Checkbox(description="per channel", indent=False,
+                                            layout=widgets.Layout(width="120px"))
+        c["channel"] = widgets.BoundedIntText(value=0, min=0, max=0, description="channel", style=small,
+                                              layout=widgets.Layout(width="150px"))
+        c["keep_clip"] = widgets.Checkbox(description="keep clip range", indent=False,
+                                          tooltip="a new bit width keeps the clip range instead of "
+                                                  "refitting it", layout=widgets.Layout(width="130px"))
+        c["method"] = widgets.Dropdown(options=[(METHOD_LABELS[m], m) for m in METHODS],
+                                       description="next fit", style=small,
+                                       tooltip="the range fit of the next fitted grid (the readout "
+                                               "says how the grid shown came about)",
+                                       layout=widgets.Layout(width="220px"))
+        c["fit"] = widgets.Button(description="fit range", icon="arrows-h",
+                                  layout=widgets.Layout(width="100px"))
+        c["steps"] = widgets.BoundedIntText(value=200, min=1, max=100000, description="steps",
+                                            style={"description_width": "40px"},
+                                            layout=widgets.Layout(width="120px"))
+        c["learn"] = widgets.Button(description="learn", icon="graduation-cap", disabled=not has_layer,
+                                    tooltip="learn scale, offset and noise (relaxed quantization)",
+                                    layout=widgets.Layout(width="90px"))
+        c["reset"] = widgets.Button(description="reset", icon="undo", layout=widgets.Layout(width="80px"))
+        for name, w in c.items():
+            w.add_class(f"qw-{name.replace('_', '-')}")
         self.controls = c
-        for name in ("bits", "scale", "offset", "noise", "temperature", "probe", "source",
-                     "signed", "per_channel", "channel", "method", "keep_clip"):
-            observe_value(c[name], self._make_observer(name))
-        self.message = MessageLine()
-        c["fit"].on_click(lambda _b: self.message.run("fit range", self.fit))
-        c["learn"].on_click(lambda _b: self.message.run("learn", self._learn_clicked))
-        c["reset"].on_click(lambda _b: self.message.run("reset", self.reset))
-        self.heading = widgets.HTML(f"<b>{html.escape(self.subject.heading)}</b>")
-        self.heading.add_class(CSS["heading"])
-        self.canvas = PlotCanvas(width, height)
-        self.canvas.image.add_class(CSS["plot"])
-        self.figure = ExplorerFigure(self.canvas, has_layer=self.subject.has_layer)
-        self.readout = widgets.HTML(layout=widgets.Layout(width="270px", margin="0 0 0 8px"))
-        self.readout.add_class(CSS["readout"])
-        self.progress = output if output is not None else widgets.Output(
-            layout=widgets.Layout(min_height="0px"))
-        self.progress_bar = widgets.FloatProgress(value=0.0, min=0.0, max=1.0,
-                                                  layout=widgets.Layout(width="300px"))
-        self.progress_label = widgets.Label("")
-        self.progress_box = widgets.HBox([self.progress_bar, self.progress_label],
-                                         layout=widgets.Layout(display="none"))
-        row1 = widgets.HBox([c["source"], c["signed"], c["per_channel"], c["channel"]],
-                            layout=widgets.Layout(align_items="center"))
-        row2 = widgets.HBox([c["method"], c["keep_clip"], c["fit"], c["steps"], c["learn"],
-                             c["reset"]], layout=widgets.Layout(align_items="center"))
-        self.children = [
-            self.heading, row1,
-            widgets.HBox([widgets.VBox([c["bits"], c["scale"], c["offset"]]),
+        bind(st, "bits", c["bits"], on_error=on_error, before=before, show=self._show_bits)
+        bind(st, "channel", c["channel"], on_error=on_error, before=before, show=self._show_channel)
+        for name in ("source", "signed", "per_channel", "keep_clip", "method"):
+            bind(st, name, c[name], on_error=on_error, before=before)
+        st.observe(self._layout_changed, names=["source", "bits", "signed", "per_channel", "channel"])
+        st.observe(lambda _ch: self._place_offset(), names="offset")
+        st.observe(lambda _ch: self._place_step(), names="scale")
+        self.enable(True)
+
+    def layout(self, heading, progress_box, plot, readout, progress, message) -> list:
+        """The explorer's rows: heading, choices, bit buttons, numbers, actions, plots."""
+        c, row = self.controls, widgets.Layout(align_items="center")
+        return [
+            heading,
+            widgets.HBox([c["source"], c["signed"], c["per_channel"], c["channel"]], layout=row),
+            c["bits"],
+            widgets.HBox([widgets.VBox([c["scale"], c["offset"]]),
                           widgets.VBox([c["noise"], c["temperature"], c["probe"]])]),
-            row2, self.progress_box,
+            widgets.HBox([c["method"], c["keep_clip"], c["fit"], c["steps"], c["learn"], c["reset"]],
+                         layout=row),
+            progress_box,
             # the readouts sit beside the plots, and wrap below them in a narrow notebook
-            widgets.HBox([self.canvas.image, self.readout],
-                         layout=widgets.Layout(flex_flow="row wrap", align_items="flex-start")),
-            self.progress, self.message.widget,
+            widgets.HBox([plot, readout], layout=widgets.Layout(flex_flow="row wrap",
+                                                                align_items="flex-start")),
+            progress, message,
         ]
-        self.add_class(CSS["root"])
 
-    _syncing = False
+    # ------------------------------------------------------------------ windows
+    def _bits_options(self) -> list:
+        return [(str(b), b) for b in self.state.bits_menu()]
 
-    def _make_observer(self, name: str):
-        handler = getattr(self, f"_set_{name}")
+    def _show_bits(self) -> None:
+        b = self.controls["bits"]
+        options = self._bits_options()
+        with b.hold_sync():
+            if list(b.options) != options:
+                b.options = options
+            b.value = self.state.bits
 
-        def observe(change):
-            if self._syncing:
-                return
-            before = self._state_key()
-            try:
-                handler(change["new"])
-            except Exception as exc:
-                self.message.error(exc, f"setting {name}")
-                self._sync_controls()  # put the controls back to the state that is still valid
-                return
-            if self._state_key() != before:
-                self.message.clear()  # a message describes a state that has just changed
-            self._updater.request()
+    def _show_channel(self) -> None:
+        ch = self.controls["channel"]
+        with ch.hold_sync():
+            ch.max = max(self.state.n_channels() - 1, 0)
+            ch.value = self.state.channel
 
-        return observe
+    def _step_positions(self) -> LogPositions:
+        centre = self.state.fitted_step()
+        lo, hi = centre / STEP_WINDOW, centre * STEP_WINDOW
+        v = self.state.scale
+        if not lo <= v <= hi:  # a value outside the window: widen it to hold the value
+            lo, hi = min(lo, v / 1.12), max(hi, v * 1.12)
+        return LogPositions(lo, hi, n=STEP_POSITIONS)
 
-    def _state_key(self) -> tuple:
-        """What the explorer shows, to tell a change of state from a control event that changed
-        nothing (a front end re-sending a value): only a change clears the message."""
-        st = self.state
-        return (repr(st.shown_grid()), st.source, st.noise_steps, st.temperature, st.method,
-                st.keep_clip, st.channel, st.grid.axis)
+    def _offset_positions(self) -> LinearPositions:
+        v = self.state.shown_values()
+        r = max(abs(float(v.min())), abs(float(v.max())), 2 * abs(self.state.offset), 1e-12)
+        return LinearPositions(-r, r, OFFSET_POSITIONS)
 
-    # ================================================================== edits from controls
-    def _set_bits(self, value) -> None:
-        self.state.set_bits(value)
-        self._sync_controls()  # a width the device does not run: the slider shows the one taken
+    def _place_step(self) -> None:
+        """Keep the step's window still while it is dragged; widen it for a value outside."""
+        if not self.controls["scale"].positions.contains(self.state.scale):
+            self.controls["scale"].set_positions(self._step_positions())
 
-    def _set_scale(self, value) -> None:
-        self.state.set_channel_param("scale", float(value))
+    def _place_offset(self) -> None:
+        if not self.controls["offset"].positions.contains(self.state.offset):
+            self.controls["offset"].set_positions(self._offset_positions())
 
-    def _set_offset(self, value) -> None:
-        self.state.set_channel_param("offset", float(value))
+    def _layout_changed(self, _change=None) -> None:
+        """A new width, source, channel or layout: the windows follow the fitted grid."""
+        self.controls["scale"].set_positions(self._step_positions())
+        self.controls["offset"].set_positions(self._offset_positions())
+        self._show_channel()
+        self.enable(self.enabled)
 
-    def _set_noise(self, value) -> None:
-        self.state.set_noise_steps(value)
-
-    def _set_temperature(self, value) -> None:
-        self.state.set_temperature(value)
-
-    def _set_probe(self, value) -> None:
-        self.state.probe[self.state.source] = float(value)
-
-    def _set_source(self, value) -> None:
-        self.state.set_source(value)
-        self._select_static()
-        self._sync_controls()
-
-    def _set_signed(self, value) -> None:
-        self.state.set_signed(bool(value))
-        self._sync_controls()
-
-    def _set_per_channel(self, value) -> None:
-        self.state.set_per_channel(bool(value))
-        self._select_static()
-        self._sync_controls()
-
-    def _set_channel(self, value) -> None:
-        self.state.set_channel(value)
-        self._select_static()
-        self._sync_controls()
-
-    def _set_method(self, value) -> None:
-        self.state.set_method(value)
-
-    def _set_keep_clip(self, value) -> None:
-        self.state.keep_clip = bool(value)
-
-    # ================================================================== controls <- state
-    def _sync_controls(self) -> None:
-        c, st = self.controls, self.state
-        g = st.shown_grid()
-        self._syncing = True
-        try:
-            with self.hold_sync():
-                c["source"].value = st.source
-                c["bits"].value = g.bits
-                step_window(c["scale"], st.fitted_step(), float(g.scale))
-                off = c["offset"]
-                r = max(abs(self._data_range[0]), abs(self._data_range[1]), 2 * abs(float(g.offset)), 1e-12)
-                off.min, off.max = -r, r
-                off.min = -r
-                off.step = r / 2000
-                # an offset within rounding of zero is shown as 0 (as the readout prints it)
-                zero = fmt_value(float(g.offset), float(g.scale)) == "0"
-                off.value = 0.0 if zero else float(g.offset)
-                c["noise"].value = st.noise_steps
-                c["temperature"].value = st.temperature
-                c["signed"].value = g.signed
-                c["per_channel"].value = st.grid.axis is not None
-                c["per_channel"].disabled = not st.can_per_channel(st.source) or (
-                    st.rules is not None and not st.rules.per_channel_weights)
-                off.disabled = st.symmetric_only(st.source)
-                c["channel"].max = max(st.n_channels() - 1, 0)
-                c["channel"].value = st.channel
-                c["channel"].disabled = st.grid.axis is None
-                c["method"].value = st.method
-                c["keep_clip"].value = st.keep_clip
-            self._sync_probe_range()
-        finally:
-            self._syncing = False
-
-    def _sync_probe_range(self) -> None:
-        view = self.figure.view
-        if view is None:
+    def place_probe(self, view: tuple) -> None:
+        """The probe's slider spans the drawn value axis; the probe stays inside it."""
+        lo, hi = view
+        if not hi > lo:
             return
-        p = self.controls["probe"]
-        was, self._syncing = self._syncing, True
-        try:
-            lo, hi = view
-            if p.min > hi:
-                p.min = lo
-            p.max, p.min = hi, lo
-            p.step = (hi - lo) / 2000
-            value = min(max(self.state.probe[self.source], lo), hi)
-            self.state.probe[self.source] = value
-            p.value = value
-        finally:
-            self._syncing = was
+        if not lo <= self.state.probe <= hi:
+            self.state.probe = min(max(self.state.probe, lo), hi)
+        self.controls["probe"].set_positions(LinearPositions(lo, hi, PROBE_POSITIONS))
 
-    def set_controls_enabled(self, enabled: bool) -> None:
-        """Enable or disable every control but the learn / stop button (while learning)."""
-        for name, w in self.controls.items():
-            if name != "learn" and hasattr(w, "disabled"):
+    def enable(self, enabled: bool) -> None:
+        """Enable or disable every control but the learn / stop button (while learning);
+        enabled, the per-channel choice, channel and offset follow the state."""
+        st, c = self.state, self.controls
+        self.enabled = enabled
+        for name, w in c.items():
+            if name != "learn":
                 w.disabled = not enabled
         if enabled:
-            self._sync_controls()  # per-channel and channel enablement follow the state
-            self.controls["source"].disabled = len(self.subject.sources) == 1
+            c["source"].disabled = len(st.sources) == 1
+            c["per_channel"].disabled = not st.can_per_channel(st.source) or (
+                st.rules is not None and not st.rules.per_channel_weights)
+            c["channel"].disabled = st.grid.axis is None
+            c["offset"].disabled = st.symmetric_only(st.source)
 

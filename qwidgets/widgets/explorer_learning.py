@@ -4,9 +4,10 @@
 
 - ``run(steps, lr, options)`` learns in the caller's thread (a script, a notebook cell) and
   redraws the explorer about every :attr:`follow_s` seconds;
-- ``start(steps)`` (the learn button, in a kernel) learns in a background thread so the
-  kernel keeps answering: the button becomes a stop button, the other controls are disabled,
-  and a timer on the kernel's event loop shows the latest grid every :attr:`follow_s`;
+- ``start(steps)`` (the learn button, in a kernel) learns in a background thread of the
+  widgets' one runner (:class:`~qwidgets.widgets.tasks.TaskRunner`) so the kernel keeps
+  answering: the button becomes a stop button, the other controls are disabled, and the
+  runner shows the latest grid on the kernel's event loop every :attr:`follow_s`;
 - ``stop()`` asks the run to stop after its current step; the best grid so far is kept.
 
 The time left is the median measured step time times the steps left. ``clock`` (seconds, a
@@ -15,12 +16,13 @@ callable; default :func:`time.monotonic`) is injectable so tests are determinist
 
 from __future__ import annotations
 
-import asyncio
 import statistics
 import threading
 import time
 
 from ..learn.one_grid import LearnResult, learn_grid
+from .events import running_loop
+from .tasks import TaskRunner
 
 __all__ = ["LearnRunner"]
 
@@ -28,7 +30,7 @@ __all__ = ["LearnRunner"]
 class LearnRunner:
     follow_s = 0.5  # how often the plots follow a learning run
 
-    def __init__(self, explorer, clock=None):
+    def __init__(self, explorer, button, clock=None):
         self.ex = explorer
         self.clock = clock or time.monotonic
         self.running = False
@@ -36,9 +38,10 @@ class LearnRunner:
         self._stop = False
         self._lock = threading.Lock()
         self._latest = None
-        self._thread = None
-        self._outcome = None
         self.follows = 0  # redraws made while learning (tests)
+        self.task = TaskRunner(button, explorer.message, "learn", on_poll=self._show_latest,
+                               poll_s=self.follow_s)
+        self.progress_box = self.task.box
 
     # ------------------------------------------------------------------ public
     def run(self, steps: int, lr: float, options: dict) -> LearnResult:
@@ -65,29 +68,32 @@ class LearnRunner:
         """Learn in a background thread (needs a running event loop: a kernel); without one,
         learn now as :meth:`run` does."""
         options = dict(options or {})
-        try:
-            loop = asyncio.get_running_loop()
-        except RuntimeError:
+        if running_loop() is None:
             self.run(steps, lr, options)
             return
         self._check()
         self._begin(steps)
-        self._outcome = None
 
-        def work():
+        def work(_step, _should_stop):
             try:
-                self._outcome = ("ok", self._learn(steps, lr, options, None))
-            except BaseException as exc:  # shown on the message line by the poller
-                self._outcome = ("error", exc)
+                return self._learn(steps, lr, options, None)
+            except BaseException as exc:  # the start grid comes back, the error is shown
+                return exc
 
-        self._thread = threading.Thread(target=work, name="qwidgets-learn", daemon=True)
-        self._thread.start()
-        loop.call_later(self.follow_s, self._poll, loop)
+        def done(outcome) -> None:
+            if isinstance(outcome, BaseException):
+                self._end(None)
+                self.ex.message.error(outcome, "learn")
+            else:
+                self._end(outcome)
+
+        self.task.start(work, done)
 
     def stop(self) -> None:
         """Stop after the current step; the best grid so far is kept."""
         if self.running:
             self._stop = True
+            self.task.stop()
             self.ex.controls["learn"].description = "stopping"
 
     # ------------------------------------------------------------------ internals
@@ -103,14 +109,11 @@ class LearnRunner:
         self.running, self._stop, self._latest = True, False, None
         self._steps, self._times = steps, []
         self._start_grid, self._source = ex.state.grid, ex.state.source
+        self._start_origin = ex.state.origin()
         ex.message.clear()
-        b = ex.controls["learn"]
-        b.description, b.icon, b.button_style = "stop", "stop", "warning"
-        b.tooltip = "stop after the current step and keep the best grid so far"
-        ex.set_controls_enabled(False)
-        ex.progress_box.layout.display = "flex"
-        ex.progress_bar.value = 0.0
-        ex.progress_label.value = f"learning {steps} steps"
+        ex.panel.enable(False)
+        self.task.progress.layout.visibility = "visible"
+        self.task.report(0.0, f"learning {steps} steps")
 
     def _learn(self, steps, lr, options, follow) -> LearnResult:
         ex = self.ex
@@ -140,44 +143,28 @@ class LearnRunner:
             return
         step, grid, noise, stats = latest
         ex = self.ex
-        ex.state.set_grid(grid, self._source)
+        ex.state.set_grid(grid, self._source, origin=("learning", None))
         ex.state.noise_steps = noise
-        ex._sync_controls()
         left = self._steps - step
         est = statistics.median(self._times) * left if self._times else 0.0
-        ex.progress_bar.value = step / max(self._steps, 1)
-        ex.progress_label.value = (f"step {step} of {self._steps}, hard layer-output SQNR "
-                                   f"{stats.sqnr_db:.2f} dB, about {est:.0f} s left")
+        self.task.report(step / max(self._steps, 1), f"step {step} of {self._steps}, hard "
+                         f"layer-output SQNR {stats.sqnr_db:.2f} dB, about {est:.0f} s left")
         ex._redraw()
         self.follows += 1
-
-    def _poll(self, loop) -> None:
-        if self._outcome is None:
-            self.ex.message.run("learn", self._show_latest)
-            loop.call_later(self.follow_s, self._poll, loop)
-            return
-        kind, value = self._outcome
-        self._thread = None
-        if kind == "ok":
-            self.ex.message.run("learn", lambda: self._end(value))
-        else:
-            self._end(None)
-            self.ex.message.error(value, "learn")
 
     def _end(self, result: LearnResult | None) -> None:
         ex = self.ex
         st = ex.state
         self.running = False
-        ex.progress_box.layout.display = "none"
+        self.task.progress.layout.visibility = "hidden"
+        self.task.status.value = ""
         if result is None:  # failed or interrupted: nothing half-learned is left behind
-            st.set_grid(self._start_grid, self._source)
+            st.set_grid(self._start_grid, self._source, origin=self._start_origin)
         else:
             self.result = result
-            st.remember_learned(result.grid, self._source)
+            st.remember_learned(result.grid, self._source, steps=len(result.loss))
             st.noise_steps = result.noise_steps
-        ex.set_controls_enabled(True)
-        ex._select_static()
-        ex._sync_controls()
+        ex.panel.enable(True)
         if result is not None:
             ran = len(result.loss)
             stopped = f"stopped after {ran} of {self._steps} steps" if ran < self._steps else \
@@ -185,8 +172,4 @@ class LearnRunner:
             ex._note(f"{stopped}: layer-output SQNR {result.start_stats.sqnr_db:.2f} -> "
                      f"{result.stats.sqnr_db:.2f} dB (best at step {result.best_step}); "
                      f"kept for {result.grid.bits} bits")
-        ex._redraw()
-        # the button last: a front end that sees "learn" again sees the outcome's note already
-        b = ex.controls["learn"]
-        b.description, b.icon, b.button_style = "learn", "graduation-cap", ""
-        b.tooltip = "learn scale, offset and noise (relaxed quantization)"
+        ex._redraw()  # (in a kernel the runner turns the button back last, after the note)

@@ -112,7 +112,7 @@ class ExplorerNumbers:
         step, offset = float(g.scale), float(g.offset)
         noise_w = st.noise_steps * step
         window = _window(g)
-        probe = st.probe[st.source]
+        probe = st.probe
         probe_pos = (probe - offset) / step
         image, extent = self._map(g, probe_pos, st.noise_steps)
         pp, pk = bin_probabilities(torch.tensor([probe]), g, noise_w, window=window)

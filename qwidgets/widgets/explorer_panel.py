@@ -1,8 +1,8 @@
-"""The grid explorer's controls and readout panel: widget construction and text, no state.
+"""The grid explorer's readout panel: text only, from the state and the measured figures.
 
-Every control carries a stable CSS class ``qw-<name>`` (``qw-bits``, ``qw-scale``, ...,
-underscores as hyphens) so front-end tests and the demo can find it; the readout table's
-value cells carry ``qw-r-<row name>`` (``qw-r-tensor-sqnr``, ``qw-r-layer-output-sqnr``, ...).
+The readout table's value cells carry ``qw-r-<row name>`` (``qw-r-tensor-sqnr``,
+``qw-r-layer-output-sqnr``, ...) so front-end tests can find them. Values print in
+engineering notation with 4 significant digits, as the controls' boxes print them.
 """
 
 from __future__ import annotations
@@ -10,79 +10,14 @@ from __future__ import annotations
 import html
 import math
 
-import ipywidgets as widgets
+from .number_control import eng
 
-from ..core.ranges import METHODS
+__all__ = ["METHOD_LABELS", "SOURCE_LABELS", "WARN_CLIPPED", "fmt3", "fmt_value", "readout_html",
+           "clip_warning", "origin_text", "readout_rows"]
 
-__all__ = ["METHOD_LABELS", "SOURCE_LABELS", "fmt_value", "make_controls", "readout_html",
-           "readout_rows", "step_window"]
-
-STEP_WINDOW = 8.0  # the step control spans the fitted step divided / multiplied by this
-STEP_POSITIONS = 900  # positions of the step control over that window (about 0.5 % apart)
-
+WARN_CLIPPED = 0.05  # a grid clipping more than this share of the values gets a warning
 METHOD_LABELS = {"mse": "MSE-optimal", "percentile": "percentile (99.99)", "minmax": "min-max"}
 SOURCE_LABELS = {"weight": "weights", "input": "layer input", "values": "values"}
-
-
-def make_controls(sources: tuple, source: str, method: str, noise: float, temperature: float,
-                  *, has_layer: bool) -> dict:
-    """The explorer's controls by name (values are set later from the explorer's state).
-
-    >>> c = make_controls(("values",), "values", "mse", 0.3, 0.5, has_layer=False)
-    >>> c["bits"].max, c["learn"].disabled, "qw-per-channel" in c["per_channel"]._dom_classes
-    (16, True, True)
-    """
-    style = {"description_width": "92px"}
-    wide = widgets.Layout(width="330px")
-    c: dict[str, widgets.Widget] = {}
-    c["bits"] = widgets.IntSlider(value=4, min=1, max=16, description="bits",
-                                  style=style, layout=wide, continuous_update=True)
-    c["scale"] = widgets.FloatLogSlider(value=1.0, base=10, min=-1, max=1, step=0.002,
-                                        description="scale (step)", readout_format=".4g",
-                                        style=style, layout=wide)
-    c["offset"] = widgets.FloatSlider(value=0.0, min=-1, max=1, step=0.001, description="offset",
-                                      readout_format=".4g", style=style, layout=wide)
-    c["noise"] = widgets.FloatLogSlider(value=noise, base=10, min=-2, max=0.5, step=0.01,
-                                        description="noise (steps)", readout_format=".3g",
-                                        style=style, layout=wide)
-    c["temperature"] = widgets.FloatLogSlider(value=temperature, base=10, min=-2, max=1,
-                                              step=0.01, description="temperature",
-                                              readout_format=".3g", style=style, layout=wide)
-    c["probe"] = widgets.FloatSlider(value=0.0, min=-1, max=1, step=0.001, description="probe value",
-                                     readout_format=".4g", style=style, layout=wide)
-    c["source"] = widgets.ToggleButtons(
-        options=[(SOURCE_LABELS[s], s) for s in sources], value=source,
-        description="quantize", style={"description_width": "60px", "button_width": "100px"},
-        disabled=len(sources) == 1,
-    )
-    c["signed"] = widgets.Checkbox(value=True, description="signed codes", indent=False,
-                                   layout=widgets.Layout(width="130px"))
-    c["per_channel"] = widgets.Checkbox(value=False, description="per channel", indent=False,
-                                        layout=widgets.Layout(width="120px"))
-    c["channel"] = widgets.BoundedIntText(value=0, min=0, max=0, description="channel",
-                                          style={"description_width": "60px"},
-                                          layout=widgets.Layout(width="150px"))
-    c["keep_clip"] = widgets.Checkbox(value=False, description="keep clip range", indent=False,
-                                      tooltip="a new bit width keeps the clip range instead of "
-                                              "refitting it", layout=widgets.Layout(width="130px"))
-    c["method"] = widgets.Dropdown(options=[(METHOD_LABELS[m], m) for m in METHODS],
-                                   value=method, description="range fit",
-                                   style={"description_width": "60px"},
-                                   layout=widgets.Layout(width="220px"))
-    c["fit"] = widgets.Button(description="fit range", icon="arrows-h",
-                              layout=widgets.Layout(width="100px"))
-    c["steps"] = widgets.BoundedIntText(value=200, min=1, max=100000, description="steps",
-                                        style={"description_width": "40px"},
-                                        layout=widgets.Layout(width="120px"))
-    c["learn"] = widgets.Button(description="learn", icon="graduation-cap",
-                                disabled=not has_layer,
-                                tooltip="learn scale, offset and noise (relaxed quantization)",
-                                layout=widgets.Layout(width="90px"))
-    c["reset"] = widgets.Button(description="reset", icon="undo",
-                                layout=widgets.Layout(width="80px"))
-    for name, w in c.items():
-        w.add_class(f"qw-{name.replace('_', '-')}")
-    return c
 
 
 def readout_html(title: str, rows: list) -> str:
@@ -105,45 +40,27 @@ def readout_html(title: str, rows: list) -> str:
     return "".join(lines)
 
 
+def fmt3(v: float) -> str:
+    """Three significant digits (noise in steps, temperature: numbers near 1).
+
+    >>> fmt3(0.4), fmt3(2.0), fmt3(0.012345)
+    ('0.4', '2', '0.0123')
+    """
+    return f"{v:.3g}"
+
+
 def fmt_value(v: float, unit: float) -> str:
-    """A value with 4 significant digits, the slider's format; within rounding of zero
-    (below 1e-6 of ``unit``, e.g. the step) it prints as 0.
+    """A value in engineering notation with 4 significant digits, as the controls' boxes print
+    it; within rounding of zero (below 1e-6 of ``unit``, e.g. the step) it prints as 0.
 
     >>> fmt_value(-1.110e-16, 0.043), fmt_value(0.0431512, 0.043), fmt_value(-0.25, 1.0)
-    ('0', '0.04315', '-0.25')
+    ('0', '43.15m', '-250m')
     """
     if not math.isfinite(v):
         return str(v)
     if abs(v) <= 1e-6 * abs(unit):
         return "0"
-    return f"{v:.4g}"
-
-
-def step_window(slider, centre: float, value: float) -> None:
-    """Put the log step slider's window at ``centre`` / 8 .. ``centre`` * 8 and show ``value``.
-
-    The window moves only when the centre (the fitted step) changes or ``value`` falls
-    outside it, never while the slider itself is dragged (its values stay inside).
-
-    >>> s = widgets.FloatLogSlider(min=-1, max=1)
-    >>> step_window(s, 0.01, 0.012)
-    >>> round(10 ** s.min, 6), round(10 ** s.max, 6), s.value
-    (0.00125, 0.08, 0.012)
-    """
-    e = math.log10(centre)
-    half = math.log10(STEP_WINDOW)
-    lo, hi = e - half, e + half
-    v = math.log10(value)
-    if abs(slider.min - lo) > 1e-9 or abs(slider.max - hi) > 1e-9 or not lo <= v <= hi:
-        lo, hi = min(lo, v - 0.05), max(hi, v + 0.05)
-        if lo >= slider.max:
-            slider.max = hi
-            slider.min = lo
-        else:
-            slider.min = lo
-            slider.max = hi
-        slider.step = (hi - lo) / STEP_POSITIONS
-    slider.value = value
+    return eng(v)
 
 
 def readout_rows(state, tensor, layer, *, map_codes=None, ticks_every: int = 1) -> list:
@@ -159,7 +76,8 @@ def readout_rows(state, tensor, layer, *, map_codes=None, ticks_every: int = 1) 
     stats, usage = tensor
     step = float(shown.scale)
     per_channel = g.axis is not None
-    rows = [("bits", f"{g.bits} ({g.n_levels:,} levels, {'signed' if g.signed else 'unsigned'})")]
+    rows = [("bits", f"{g.bits} ({g.n_levels:,} levels, {'signed' if g.signed else 'unsigned'})"),
+            ("grid shown", origin_text(state.origin()))]
     if per_channel:
         s = g.scale_tensor()
         rows.append((f"channel {state.channel} of {s.numel()}", None))
@@ -168,13 +86,17 @@ def readout_rows(state, tensor, layer, *, map_codes=None, ticks_every: int = 1) 
     lo, hi = shown.clip_range
     rows.append(("clip range", f"{fmt_value(lo, step)} to {fmt_value(hi, step)}"))
     if map_codes is not None:
-        rows.append(("bin map", f"codes {map_codes[0]} to {map_codes[1]}"))
+        rows.append(("codes drawn in the bin map", f"{map_codes[0]} to {map_codes[1]}"))
     if ticks_every > 1:
         rows.append(("grid points drawn", f"1 in {ticks_every}"))
     if per_channel:
         rows.append(("steps of all channels", f"{float(s.min()):.3g} to {float(s.max()):.3g}"))
         rows.append(("whole tensor", None))
     rows.append(("clipped", f"{100 * usage.clipped_fraction:.3g} %"))
+    if usage.clipped_fraction > WARN_CLIPPED:
+        why = " (unsigned codes on signed values)" if not g.signed and \
+            float(state.values[state.source].min()) < 0 else ""
+        rows.append(("warning", f"{100 * usage.clipped_fraction:.3g} % of the values clip{why}"))
     rows.append(("bins used", f"{usage.bins_used:,} of {usage.n_bins:,} "
                               f"({100 * usage.used_fraction:.0f} %)"))
     rows.append(("tensor SQNR", f"{stats.sqnr_db:.2f} dB"))
@@ -188,6 +110,37 @@ def readout_rows(state, tensor, layer, *, map_codes=None, ticks_every: int = 1) 
             rows.append(("layer-output SQNR", f"{ls.sqnr_db:.2f} dB"))
         rows.append(("relative error", f"{ls.rel_err:.4g}"))
         rows.append(("cosine similarity", f"{ls.cosine:.6f}"))
-    rows.append(("noise (steps)", f"{state.noise_steps:.3g} ({state.noise_steps * step:.3g} in value units)"))
-    rows.append(("temperature", f"{state.temperature:.3g}"))
+    rows.append(("noise (steps)", f"{fmt3(state.noise_steps)} ({eng(state.noise_steps * step)} in value units)"))
+    rows.append(("temperature", fmt3(state.temperature)))
     return rows
+
+
+def origin_text(origin: tuple) -> str:
+    """How the grid shown came about, in words.
+
+    >>> origin_text(("fitted", "percentile")), origin_text(("learned", 40))
+    ('fitted, percentile (99.99)', 'learned (40 steps)')
+    """
+    kind, detail = origin
+    if kind == "fitted":
+        return f"fitted, {METHOD_LABELS[detail]}"
+    if kind == "learned":
+        return "learned" if detail is None else f"learned ({detail} steps)"
+    if kind == "clip range kept":
+        return f"clip range kept from {detail} bits"
+    return {"edited": "edited by hand", "given": "given (a setting or a script)",
+            "learning": "learning (latest step)"}.get(kind, str(kind))
+
+
+def clip_warning(state, usage) -> str:
+    """A warning when the grid clips a large share of the values ("" when it does not).
+
+    ``usage``: the :class:`~qwidgets.core.metrics.GridUsage` of the grid on the values.
+    """
+    if usage.clipped_fraction <= WARN_CLIPPED:
+        return ""
+    v = state.values[state.source]
+    why = ""
+    if not state.grid.signed and float(v.min()) < 0:
+        why = f" (unsigned codes on signed values: {100 * float((v < 0).double().mean()):.3g} % are negative)"
+    return f"warning: this grid clips {100 * usage.clipped_fraction:.3g} % of the values{why}"

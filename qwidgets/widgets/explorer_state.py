@@ -1,72 +1,243 @@
-"""The grid explorer's state in one place: grids per source, fitted and learned grids, settings.
+"""The grid explorer's state: one ``traitlets.HasTraits`` model, the one place it lives.
 
-:class:`ExplorerState` is plain Python (no widgets, no drawing). The explorer's controls edit
-it through its methods, and the figure and readouts are drawn from it. Grids come from the
-core (:func:`qwidgets.fit_range`); the state only decides *which* grid is current:
+:class:`ExplorerState` holds what the explorer shows as traits (``source``, ``bits``,
+``signed``, ``per_channel``, ``channel``, ``scale``, ``offset``, ``method``, ``keep_clip``,
+``noise_steps``, ``temperature``, ``probe``) and the exact current grid (``grid``). A user
+can ``observe`` it or ``link`` their own controls to it; the explorer's controls are bound to
+it the same way and its views only render it. Setting a trait is an edit, validated at this
+boundary (a clear error names the trait):
 
-- a new bit width refits the range with the selected method (unless ``keep_clip`` is set, in
-  which case the clip range is kept and cut into the new number of steps), or brings back
-  the grid learned earlier for that (source, bit width);
-- ``reset()`` returns to the fitted grid of the current bit width;
-- every change bumps ``version[source]``, the key the numbers are cached on;
-- fitting keeps one :class:`qwidgets.core.ranges.RangeFitter` per source, method and layout,
-  so a new bit width costs the range search, not another sort of the values.
+- ``bits``: refits the range with ``method`` (unless ``keep_clip``: the clip range is cut into
+  the new number of steps), or brings back the grid learned earlier for that (source, width);
+  a width the device rules do not run moves to the next allowed one and ``note`` says so;
+- ``scale`` / ``offset``: the step and offset of the grid (of the channel shown, per channel),
+  moved onto the device rules (power-of-two steps, whole-step or zero offsets);
+- ``signed``, ``per_channel``: refit with that choice; ``channel``: which channel is shown;
+- ``source``: which tensor (``"weight"`` / ``"input"``, or ``"values"``); each keeps its grid.
+
+Traits that describe the grid follow it when the grid changes by other means (a fit, a
+learning run, a loaded setting); an edit that asks for what the grid already is changes
+nothing. Grids come from the core (:class:`qwidgets.core.ranges.RangeFitter`, one per
+source, method and layout, so a new width costs the range search, not another sort).
 """
 
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
 
 import torch
+import traitlets
 
-from ..core.checks import check_bits, check_positive
+from ..core.checks import check_bits
 from ..core.device_rules import DeviceRules, conform_grid
 from ..core.grid import UniformGrid
 from ..core.grid_cache import fit_cached
 from ..core.ranges import METHODS, RangeFitter
 from ..model.layers import WEIGHT_AXIS
 
-__all__ = ["ExplorerState"]
+__all__ = ["ExplorerState", "role"]
 
 
-@dataclass
-class ExplorerState:
-    """What the explorer shows: one grid per source and the settings around it.
+class ExplorerState(traitlets.HasTraits):
+    """What a :class:`~qwidgets.GridExplorer` shows (``explorer.state``); observe or link it.
 
     >>> import torch
     >>> _ = torch.manual_seed(0)
     >>> st = ExplorerState({"values": torch.randn(500)}, "values", method="minmax")
     >>> st.start(4, per_channel=False)
     >>> g4 = st.grid
-    >>> st.set_bits(6); st.grid.bits, st.grid.clip_range == g4.clip_range
+    >>> st.bits = 6; st.grid.bits, st.grid.clip_range == g4.clip_range
     (6, False)
-    >>> st.set_bits(4); st.grid is g4  # back to the fitted 4-bit grid
+    >>> st.bits = 4; st.grid is g4  # back to the fitted 4-bit grid
     True
+    >>> seen = []
+    >>> st.observe(lambda ch: seen.append(ch["new"]), names="scale")
+    >>> st.scale = 0.5; seen, st.grid.scale
+    ([0.5], 0.5)
     """
 
-    values: dict  # source -> float32 tensor
-    source: str
-    method: str = "mse"
-    noise_steps: float = 0.3
-    temperature: float = 0.5
-    keep_clip: bool = False
-    channel: int = 0
-    grids: dict = field(default_factory=dict)  # source -> current grid
-    learned: dict = field(default_factory=dict)  # (source, bits) -> learned grid
-    probe: dict = field(default_factory=dict)  # source -> probe value
-    version: dict = field(default_factory=dict)  # source -> edit counter
-    rules: DeviceRules | None = None  # what the device runs (None: anything)
-    _fitted: dict = field(default_factory=dict)  # (source, bits, method, signed, axis) -> grid
-    _fitters: dict = field(default_factory=dict)  # (source, method, signed, axis) -> RangeFitter
+    source = traitlets.Unicode(help="the tensor shown: 'weight', 'input' or 'values'")
+    bits = traitlets.Int(4, help="bit width of the current grid")
+    signed = traitlets.Bool(True, help="signed integer codes")
+    per_channel = traitlets.Bool(False, help="one step and offset per output channel")
+    channel = traitlets.Int(0, help="the channel shown (per-channel grids)")
+    scale = traitlets.Float(1.0, help="the grid step (of the channel shown), exact")
+    offset = traitlets.Float(0.0, help="the grid offset (of the channel shown), exact")
+    method = traitlets.Enum(METHODS, default_value="mse", help="range fit of a new grid")
+    keep_clip = traitlets.Bool(False, help="a new width keeps the clip range instead of a refit")
+    noise_steps = traitlets.Float(0.3, help="logistic noise width, a fraction of the step")
+    temperature = traitlets.Float(0.5, help="temperature of the relaxed samples")
+    probe = traitlets.Float(0.0, help="the value whose bin probabilities are drawn")
+    grid = traitlets.Instance(UniformGrid, allow_none=True, help="the current grid, exact")
+    note = traitlets.Unicode("", help="what changed that was not asked for, and why")
+
+    def __init__(self, values: dict, source: str, *, method: str = "mse", noise_steps: float = 0.3,
+                 temperature: float = 0.5, rules: DeviceRules | None = None):
+        self.values = values  # source -> float32 tensor
+        self.rules = rules  # what the device runs (None: anything)
+        self.grids: dict = {}  # source -> current grid
+        self.kept: dict = {}  # (source, bits) -> (grid, origin): learned or edited by hand
+        self.origins: dict = {}  # source -> how its current grid came about (see origin())
+        self.probes: dict = {}  # source -> probe value
+        self.version: dict = {}  # source -> edit counter
+        self._fitted: dict = {}  # (source, bits, method, signed, axis) -> grid
+        self._fitters: dict = {}  # (source, method, signed, axis) -> RangeFitter
+        super().__init__(source=source, method=method, noise_steps=noise_steps, temperature=temperature)
 
     @property
     def sources(self) -> tuple:
         return tuple(self.values)
 
-    @property
-    def grid(self) -> UniformGrid:
-        return self.grids[self.source]
+    # ------------------------------------------------------------------ validation
+    @traitlets.validate("source")
+    def _check_source(self, proposal):
+        if proposal["value"] not in self.values:
+            raise traitlets.TraitError(f"source must be one of {self.sources}, got {proposal['value']!r}")
+        return proposal["value"]
+
+    @traitlets.validate("bits")
+    def _check_bits(self, proposal):
+        bits = check_bits(proposal["value"])
+        now = self.grid.bits if self.grid is not None else bits
+        allowed = self.allowed_bits(self.source, bits, up=bits > now)
+        if allowed != bits:
+            self.note = f"{bits} bits is not in the device's menu for {self.source}: {allowed} bits"
+        return allowed
+
+    @traitlets.validate("scale")
+    def _check_scale(self, proposal):
+        v = float(proposal["value"])
+        if not (v > 0 and math.isfinite(v)):
+            raise traitlets.TraitError(f"scale must be a finite number > 0, got {proposal['value']!r}")
+        if self.rules is not None and self.rules.pow2_scales and self.grid is not None:
+            v = 2.0 ** round(math.log2(v))  # the device's steps are powers of two
+        return v
+
+    @traitlets.validate("offset")
+    def _check_offset(self, proposal):
+        v = float(proposal["value"])
+        if not math.isfinite(v):
+            raise traitlets.TraitError(f"offset must be a finite number, got {proposal['value']!r}")
+        if self.grid is None or v == float(self.shown_grid().offset):
+            return v
+        if self.symmetric_only(self.source):
+            return 0.0  # symmetric weights: zero point 0
+        if self.rules is not None:  # an integer zero point: the offset moves in whole steps
+            step = float(self.shown_grid().scale)
+            return -round(-v / step) * step + 0.0
+        return v
+
+    @traitlets.validate("noise_steps", "temperature")
+    def _check_positive(self, proposal):
+        v = float(proposal["value"])
+        if not (v > 0 and math.isfinite(v)):
+            raise traitlets.TraitError(f"{proposal['trait'].name} must be a finite number > 0, "
+                                       f"got {proposal['value']!r}")
+        return v
+
+    @traitlets.validate("per_channel")
+    def _check_per_channel(self, proposal):
+        if proposal["value"] and self.source and not self.can_per_channel(self.source):
+            raise traitlets.TraitError(
+                "per-channel grids are offered for weights, not for "
+                f"{'the layer input' if self.source == 'input' else self.source}")
+        return proposal["value"]
+
+    @traitlets.validate("channel")
+    def _check_channel(self, proposal):
+        n = self.n_channels() if self.grid is not None else 1
+        if not 0 <= int(proposal["value"]) < n:
+            raise traitlets.TraitError(f"channel must be in 0..{n - 1}, got {proposal['value']}")
+        return int(proposal["value"])
+
+    # ------------------------------------------------------------------ edits
+    @traitlets.observe("bits")
+    def _on_bits(self, change):
+        g = self.grid
+        bits = change["new"]
+        if g is None or bits == g.bits:
+            return
+        kept, origin = self.kept.get((self.source, bits), (None, None))
+        if kept is not None and kept.signed == g.signed and (kept.axis is None) == (g.axis is None):
+            self.set_grid(kept, origin=origin)  # a learned or hand-edited grid stays
+        elif self.keep_clip:  # the same clip range cut into more (or fewer) steps
+            new = g.replace(bits=bits)
+            ratio = max(g.qmax - g.qmin, 1) / max(new.qmax - new.qmin, 1)
+            scale = g.scale * ratio if isinstance(g.scale, torch.Tensor) else float(g.scale) * ratio
+            self.set_grid(self.obeying(g.replace(bits=bits, scale=scale), self.source),
+                          origin=("clip range kept", g.bits))
+        else:
+            self.set_grid(self.fitted(self.source, bits, g.signed, g.axis is not None),
+                          origin=("fitted", self.method))
+
+    @traitlets.observe("scale", "offset")
+    def _on_channel_param(self, change):
+        if self.grid is None:
+            return
+        name, value = change["name"], float(change["new"])
+        if value == float(getattr(self.shown_grid(), name)):
+            return
+        g = self.grid
+        if g.axis is None:
+            new = g.replace(**{name: value})
+        else:
+            t = (g.scale_tensor() if name == "scale" else g.offset_tensor()).detach().clone()
+            t[self.channel] = value
+            new = g.replace(**{name: t})
+        self.kept[(self.source, new.bits)] = (new, ("edited", None))
+        self.set_grid(new, origin=("edited", None))
+
+    @traitlets.observe("signed", "per_channel")
+    def _on_layout(self, change):
+        g = self.grid
+        if g is None or (self.signed == g.signed and self.per_channel == (g.axis is not None)):
+            return
+        if change["name"] == "per_channel":
+            self.channel = 0
+        new = self.fitted(self.source, g.bits, self.signed, self.per_channel)
+        self.set_grid(new, origin=("fitted", self.method))
+
+    @traitlets.observe("channel")
+    def _on_channel(self, change):
+        self._follow()
+
+    @traitlets.observe("source")
+    def _on_source(self, change):
+        if self.source in self.grids:
+            self.channel = 0
+            self.grid = self.grids[self.source]
+            self.probe = self.probes[self.source]
+            self._follow()
+
+    @traitlets.observe("probe")
+    def _on_probe(self, change):
+        if self.source:
+            self.probes[self.source] = float(change["new"])
+
+    def set_grid(self, grid: UniformGrid, source: str | None = None, origin: tuple = ("given", None)) -> None:
+        """Make ``grid`` the current grid of ``source`` (default: the current source);
+        ``origin``: how it came about, ``(kind, detail)`` (see :meth:`origin`)."""
+        source = source or self.source
+        if not isinstance(grid, UniformGrid):
+            raise TypeError(f"grid must be a UniformGrid, got {type(grid).__name__}")
+        self.grids[source] = grid
+        self.origins[source] = origin
+        self.version[source] = self.version.get(source, 0) + 1
+        if source == self.source:
+            if grid.axis is None or self.channel >= self.n_channels_of(grid, source):
+                self.channel = 0 if grid.axis is None else min(self.channel, 0)
+            self.grid = grid
+            self._follow()
+
+    def _follow(self) -> None:
+        """The traits that describe the grid take its values (edits that change nothing)."""
+        g, shown = self.grid, self.shown_grid()
+        with self.hold_trait_notifications():
+            self.signed = g.signed
+            self.per_channel = g.axis is not None
+            self.bits = g.bits
+            self.scale = float(shown.scale)
+            self.offset = float(shown.offset)
 
     # ------------------------------------------------------------------ fitting
     def can_per_channel(self, source: str) -> bool:
@@ -94,37 +265,70 @@ class ExplorerState:
 
     def start(self, bits: int, per_channel: bool) -> None:
         """Fit every source's starting grid."""
+        bits = check_bits(bits)
         for s in self.sources:
             pc = per_channel and self.can_per_channel(s)
             self.grids[s] = self.fitted(s, self.allowed_bits(s, bits), None, pc)
+            self.origins[s] = ("fitted", self.method)
             self.version.setdefault(s, 0)
             v = self.values[s]
-            self.probe.setdefault(s, float(v.mean() + v.std()) if v.numel() > 1 else float(v.reshape(-1)[0]))
+            self.probes.setdefault(s, float(v.mean() + v.std()) if v.numel() > 1 else float(v.reshape(-1)[0]))
+        self.grid = self.grids[self.source]
+        self.probe = self.probes[self.source]
+        self._follow()
+
+    def prefetch(self) -> None:
+        """Fit the widths next to the current one (a kernel calls this while idle, so the next
+        width change finds its range fitted)."""
+        g, menu = self.grid, self.bits_menu()
+        i = menu.index(g.bits) if g.bits in menu else 0
+        for bits in menu[max(i - 1, 0):i + 2]:
+            self.fitted(self.source, bits, g.signed, g.axis is not None)
 
     def fitted_now(self) -> UniformGrid:
         """The fitted grid for the current source, bits, signedness and per-channel choice."""
         g = self.grid
         return self.fitted(self.source, g.bits, g.signed, g.axis is not None)
 
-    # ------------------------------------------------------------------ edits
-    def set_grid(self, grid: UniformGrid, source: str | None = None) -> None:
-        source = source or self.source
-        if not isinstance(grid, UniformGrid):
-            raise TypeError(f"grid must be a UniformGrid, got {type(grid).__name__}")
-        self.grids[source] = grid
-        self.version[source] = self.version.get(source, 0) + 1
+    def fit(self, method: str | None = None) -> UniformGrid:
+        """Refit the current grid's range (with ``method``, which becomes the selected one)."""
+        if method is not None:
+            self.method = method
+        self.kept.pop((self.source, self.grid.bits), None)  # the person replaced it
+        self.set_grid(self.fitted_now(), origin=("fitted", self.method))
+        return self.grid
+
+    def remember_learned(self, grid: UniformGrid, source: str, steps: int | None = None) -> None:
+        grid = self.obeying(grid, source)
+        self.kept[(source, grid.bits)] = (grid, ("learned", steps))
+        self.set_grid(grid, source, origin=("learned", steps))
+
+    def reset(self) -> None:
+        """Back to the fitted grid of the current bit width (a learned or edited one is forgotten)."""
+        self.kept.pop((self.source, self.grid.bits), None)
+        self.set_grid(self.fitted_now(), origin=("fitted", self.method))
+
+    def origin(self) -> tuple:
+        """How the current grid came about: ``("fitted", method)``, ``("learned", steps)``,
+        ``("edited", None)``, ``("clip range kept", from_bits)`` or ``("given", None)``."""
+        return self.origins.get(self.source, ("given", None))
 
     # ------------------------------------------------------------------ device rules
     def allowed_bits(self, source: str, bits: int, up: bool = True) -> int:
         """``bits`` if the rules allow it for ``source``, else the next allowed width in the
         direction of the change (the nearest one at the ends of the menu)."""
-        menu = None if self.rules is None else self.rules.bits_menu(role(source))
-        if menu is None or bits in menu:
+        menu = self.bits_menu(source)
+        if bits in menu:
             return bits
         ahead = [b for b in menu if (b > bits if up else b < bits)]
         if ahead:
             return min(ahead) if up else max(ahead)
         return min(menu, key=lambda b: (abs(b - bits), b))
+
+    def bits_menu(self, source: str | None = None) -> tuple:
+        """The widths offered for ``source`` (default: the current one)."""
+        menu = None if self.rules is None else self.rules.bits_menu(role(source or self.source))
+        return tuple(range(1, 17)) if menu is None else tuple(sorted(menu))
 
     def symmetric_only(self, source: str) -> bool:
         return self.rules is not None and self.rules.symmetric_weights and role(source) == "weight"
@@ -135,98 +339,12 @@ class ExplorerState:
             return grid
         return conform_grid(grid, self.values[source], self.rules, role(source))
 
-    def set_bits(self, bits: int) -> None:
-        g = self.grid
-        bits = self.allowed_bits(self.source, check_bits(int(bits)), up=int(bits) > g.bits)
-        if bits == g.bits:
-            return
-        learned = self.learned.get((self.source, bits))
-        if learned is not None and learned.signed == g.signed and (learned.axis is None) == (g.axis is None):
-            self.set_grid(learned)
-        elif self.keep_clip:  # the same clip range cut into more (or fewer) steps
-            new = g.replace(bits=bits)
-            ratio = max(g.qmax - g.qmin, 1) / max(new.qmax - new.qmin, 1)
-            scale = g.scale * ratio if isinstance(g.scale, torch.Tensor) else float(g.scale) * ratio
-            self.set_grid(self.obeying(g.replace(bits=bits, scale=scale), self.source))
-        else:
-            self.set_grid(self.fitted(self.source, bits, g.signed, g.axis is not None))
-
-    def set_channel_param(self, name: str, value: float) -> None:
-        """Set the scale or offset (of the channel shown, for a per-channel grid)."""
-        if name == "scale":
-            value = float(check_positive(float(value), "scale"))
-            if self.rules is not None and self.rules.pow2_scales:  # steps in powers of two
-                value = 2.0 ** round(math.log2(value))
-        elif self.symmetric_only(self.source):
-            value = 0.0  # symmetric weights: zero point 0
-        elif self.rules is not None:  # an integer zero point: the offset moves in whole steps
-            step = float(self.shown_grid().scale)
-            value = -round(-float(value) / step) * step + 0.0
-        g = self.grid
-        if g.axis is None:
-            self.set_grid(g.replace(**{name: float(value)}))
-        else:
-            t = (g.scale_tensor() if name == "scale" else g.offset_tensor()).detach().clone()
-            t[self.channel] = float(value)
-            self.set_grid(g.replace(**{name: t}))
-
-    def set_signed(self, signed: bool) -> None:
-        g = self.grid
-        if bool(signed) != g.signed:
-            self.set_grid(self.fitted(self.source, g.bits, bool(signed), g.axis is not None))
-
-    def set_per_channel(self, per_channel: bool) -> None:
-        if per_channel and not self.can_per_channel(self.source):
-            raise ValueError("per-channel grids are offered for weights, not for "
-                             f"{'the layer input' if self.source == 'input' else self.source}")
-        g = self.grid
-        self.set_grid(self.fitted(self.source, g.bits, g.signed, bool(per_channel)))
-        self.channel = 0
-
-    def set_method(self, method: str) -> None:
-        if method not in METHODS:
-            raise ValueError(f"method must be one of {', '.join(map(repr, METHODS))}; got {method!r}")
-        self.method = method
-
-    def set_source(self, source: str) -> None:
-        if source not in self.values:
-            raise ValueError(f"source must be one of {self.sources}, got {source!r}")
-        self.source = source
-        self.channel = 0
-
-    def set_channel(self, channel: int) -> None:
-        n = self.n_channels()
-        if not 0 <= int(channel) < n:
-            raise ValueError(f"channel must be in 0..{n - 1}, got {channel}")
-        self.channel = int(channel)
-
-    def set_noise_steps(self, value: float) -> None:
-        self.noise_steps = float(check_positive(float(value), "noise"))
-
-    def set_temperature(self, value: float) -> None:
-        self.temperature = float(check_positive(float(value), "temperature"))
-
-    def fit(self, method: str | None = None) -> UniformGrid:
-        if method is not None:
-            self.set_method(method)
-        self.set_grid(self.fitted_now())
-        return self.grid
-
-    def remember_learned(self, grid: UniformGrid, source: str) -> None:
-        grid = self.obeying(grid, source)
-        self.learned[(source, grid.bits)] = grid
-        self.set_grid(grid, source)
-
-    def reset(self) -> None:
-        """Back to the fitted grid of the current bit width (the learned one is forgotten)."""
-        g = self.grid
-        self.learned.pop((self.source, g.bits), None)
-        self.set_grid(self.fitted_now())
-
     # ------------------------------------------------------------------ views
+    def n_channels_of(self, grid: UniformGrid, source: str) -> int:
+        return 1 if grid.axis is None else int(self.values[source].shape[grid.axis])
+
     def n_channels(self) -> int:
-        g = self.grid
-        return 1 if g.axis is None else int(self.values[self.source].shape[g.axis])
+        return self.n_channels_of(self.grid, self.source)
 
     def shown_grid(self) -> UniformGrid:
         """The grid of the channel shown (the grid itself when it is per-tensor)."""

@@ -1,8 +1,11 @@
 """BudgetPlanner: pick a budget, see the best plan on the Pareto curve, check it, save it.
 
-State lives in the planner (the table, the budget kind and value, the current plan, the grids
-taken from an explorer and the last measurement); the controls edit it, and the figure
+The budget's kind and value, a second budget and the chosen plan live in one
+``traitlets.HasTraits`` model, :class:`~qwidgets.widgets.planner_state.PlannerState`
+(``planner.state``); the controls are bound to it, and the figure
 (:class:`~qwidgets.viz.planner_figure.PlannerFigure`), the table and the readout only draw it.
+A change of the plan that the person did not ask for does not happen: a new budget unit keeps
+the plan, and a budget that cannot be met is written on the message line with what was done.
 Every number comes from the core: :func:`qwidgets.scan`, :func:`qwidgets.plan_budget`,
 :func:`qwidgets.pareto_front`, :func:`qwidgets.evaluate_plan`, :meth:`Plan.with_setting` and
 :meth:`Plan.save`. Moving the budget slider schedules one update
@@ -33,18 +36,19 @@ from ..planning.solver import pareto_front, plan_budget
 from ..planning.table import SensitivityTable
 from ..viz.planner_figure import PlannerFigure
 from .display_snapshot import SnapshotDisplay
-from .events import Coalescer, MessageLine, observe_value
+from .events import Coalescer, MessageLine
 from .fold_note import batchnorm_note
 from .image_canvas import PlotCanvas
+from .number_control import bind
 from .plan_saving import save_plan
+from .planner_controls import CSS, UNITS, planner_controls, show_limit_kind
 from .planner_grids import GridTaking
-from .planner_limit import SecondBudget
+from .planner_state import PlannerState, budget_positions
 from .planner_tasks import PlannerTasks
 from .planner_text import (
     AXIS_LABELS,
     KIND_LABELS,
     budget_kind,
-    configure_slider,
     fmt_cost,
     initial_budget,
     layers_html,
@@ -55,24 +59,6 @@ from .planner_text import (
 
 __all__ = ["BudgetPlanner"]
 
-CSS = {
-    "root": "qw-planner",
-    "plot": "qw-planner-plot",
-    "kind": "qw-planner-kind",
-    "budget": "qw-planner-budget",
-    "measure": "qw-planner-measure",
-    "use_grid": "qw-planner-use-grid",
-    "path": "qw-planner-path",
-    "overwrite": "qw-planner-overwrite",
-    "save": "qw-planner-save",
-    "limit_kind": "qw-planner-limit-kind",
-    "limit": "qw-planner-limit",
-    "refine": "qw-planner-refine",
-    "curve": "qw-planner-curve",
-    "readout": "qw-planner-readout",
-    "table": "qw-planner-table",
-    "caution": "qw-planner-caution",
-}
 
 
 class BudgetPlanner(SnapshotDisplay, GridTaking, PlannerTasks, widgets.VBox):
@@ -91,6 +77,10 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, PlannerTasks, widgets.VBox):
     A grid learned in a :class:`~qwidgets.GridExplorer` reaches the plan with :meth:`use_grid`
     (or the "use explorer's grid" button once :meth:`link_explorer` is called).
 
+    ``state`` (:class:`~qwidgets.widgets.planner_state.PlannerState`) holds the budget
+    (``kind``, ``budget``, ``limit_kind``, ``limit``) and the chosen ``plan``: set, observe or
+    link its traits. The budget's slider moves 1 % a position; its box takes a typed value.
+
     >>> import torch
     >>> from torch import nn
     >>> _ = torch.manual_seed(0)
@@ -98,6 +88,10 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, PlannerTasks, widgets.VBox):
     >>> p = BudgetPlanner(net, torch.randn(64, 8), bits=(2, 4, 8), progress=False)
     >>> p.set_budget("mean_bits", 4).plan.mean_bits <= 4
     True
+    >>> plan = p.plan
+    >>> p.state.kind = "bops"  # another unit: the same plan, the budget is its cost
+    >>> p.plan is plan, p.state.budget == plan.bops
+    (True, True)
     """
 
     def __init__(self, model: nn.Module, data: Data, *, metric: Callable | None = None, target: Any = None,
@@ -128,58 +122,42 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, PlannerTasks, widgets.VBox):
             raise ValueError("the table holds no model-scope SQNR; scan with scope='model' or 'both'")
         self.model, self.data, self.metric, self.target, self.output = model, data, metric, target, output
         self.eval_data, self.eval_target, self.table = eval_data, eval_target, table
-        self.assumed_input_bits = assumed_input_bits
-        self.rules = check_rules(rules)
-        self._max_samples = max_samples
+        self.assumed_input_bits, self.rules, self._max_samples = assumed_input_bits, check_rules(rules), max_samples
         self._fronts: dict[str, list] = {}
-        self.kind = "model_kib"
-        self.plan: Plan | None = None
         self.report: PlanReport | None = None
         self._predicted: float | None = None  # the allocator's prediction for the scan's grids
         self._taken: dict = {}  # (layer, bits) -> LayerSetting taken from an explorer
-        self._explorer_source = None
-        self._budget_value, self._scale = 0.0, 1.0
+        self._explorer_source, self._scale = None, 1.0  # _scale: the figure's unit for BOPs (k, M, G)
         params = [p for p in model.parameters() if p.is_floating_point()]
         self.dtype = str(params[0].dtype).replace("torch.", "") if params else "no"
-        self._build(width)
+        self.state = st = PlannerState()
         self._updater = Coalescer(self._update, delay=0.05,
                                   on_error=lambda e: self.message.error(e, "update"))
-        self._syncing, self._exact = False, None  # _exact: set_budget's value, used once
-        self._set_kind("model_kib", initial=True)
+        # the planner's own observers first: the controls' bindings then see a consistent state
+        st.observe(self._kind_changed, names="kind")
+        st.observe(self._budget_changed, names="budget")
+        st.observe(self._limit_kind_changed, names="limit_kind")
+        st.observe(lambda _ch: self._updater.request(), names="limit")
+        st.observe(lambda _ch: self._draw(), names="plan")
+        self._build(width)
+        self._place_budget()
+        st.budget = initial_budget(self.front())
+        self._updater.flush()
 
     # ------------------------------------------------------------------ layout
     def _build(self, width: int) -> None:
-        c = {
-            "kind": widgets.ToggleButtons(options=[(KIND_LABELS[k], k) for k in COSTS], value="model_kib",
-                                          description="budget in", style={"description_width": "70px",
-                                                                          "button_width": "100px"}),
-            "budget": widgets.FloatSlider(value=1.0, min=0.0, max=1.0, step=0.01, description="budget",
-                                          readout_format=".4g", continuous_update=True,
-                                          style={"description_width": "120px"},
-                                          layout=widgets.Layout(width="520px")),
-            "measure": widgets.Button(description="measure", icon="flask",
-                                      tooltip="run the float and the planned model on the data",
-                                      layout=widgets.Layout(width="110px")),
-            "use_grid": widgets.Button(description="use explorer's grid", icon="arrow-down",
-                                       disabled=True, tooltip="link an explorer first: link_explorer(...)",
-                                       layout=widgets.Layout(width="170px")),
-            "path": widgets.Text(value="plan.json", description="save to", placeholder="path/to/plan.json",
-                                 style={"description_width": "60px"}, layout=widgets.Layout(width="420px")),
-            "overwrite": widgets.Checkbox(value=False, description="overwrite", indent=False,
-                                          layout=widgets.Layout(width="100px")),
-            "save": widgets.Button(description="save plan", icon="save", layout=widgets.Layout(width="110px")),
-        }
-        self.limit = SecondBudget(self._on_budget)
-        c["limit_kind"], c["limit"] = self.limit.kind_control, self.limit.slider
+        st = self.state
+        self.message = MessageLine()
+        before = self.message.clear  # a person's move: a note about the state before goes
+        c = planner_controls(st, on_error=self._refused, before=before)
+        c["limit"].disabled = True
         self.controls = c
         for name, w in c.items():
             w.add_class(CSS[name])
-        c["kind"].observe(lambda ch: self.message.run("budget kind", lambda: self._set_kind(ch["new"])),
-                          names="value")
-        observe_value(c["budget"], self._on_budget)
-        observe_value(c["limit"], self._on_budget)
-        c["limit_kind"].observe(lambda ch: None if self._syncing else self.message.run(
-            "also within", lambda: self._set_limit(ch["new"] or None)), names="value")
+        bind(st, "kind", c["kind"], on_error=self._refused, before=before)
+        show = lambda: show_limit_kind(c["limit_kind"], st)  # noqa: E731
+        bind(st, "limit_kind", c["limit_kind"], on_error=self._refused, before=before, show=show)
+        st.observe(lambda _ch: show(), names="kind")
         c["measure"].on_click(lambda _b: self.message.run("measure", self.measure))
         c["use_grid"].on_click(lambda _b: self.message.run("use explorer's grid", self.use_grid))
         c["save"].on_click(lambda _b: self.message.run("save", lambda: self.save(c["path"].value)))
@@ -187,7 +165,7 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, PlannerTasks, widgets.VBox):
         c["overwrite"].observe(lambda _ch: self._clear_note(), names="value")
 
         with_curve = self.metric is not None  # the metric curve goes under the front
-        self.canvas = PlotCanvas(width, 470 if with_curve else 330)
+        self.canvas = PlotCanvas(width, 490 if with_curve else 350)
         self.canvas.image.add_class(CSS["plot"])
         self.figure = PlannerFigure(self.canvas, self.table.layers, self.table.bits,
                                     inputs=bool(getattr(self.table, "input_bits", ())), curve=with_curve)
@@ -201,7 +179,6 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, PlannerTasks, widgets.VBox):
             f'border-left:3px solid #e0a800">{html.escape(CAUTION)}</div>',
             layout=widgets.Layout(width=f"{width}px"))
         self.caution.add_class(CSS["caution"])
-        self.message = MessageLine()
         tasks = self._build_tasks()
         self.batchnorm_note = batchnorm_note(self.model, self.table.layers, width)
         row = widgets.Layout(align_items="center")
@@ -220,10 +197,28 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, PlannerTasks, widgets.VBox):
         ]
         self.add_class(CSS["root"])
 
+    def _refused(self, exc: BaseException, name: str) -> None:
+        self.message.error(exc, f"setting {name}")
+
     def _clear_note(self) -> None:
         self.message.clear()  # a note about the last save no longer describes these settings
 
     # ------------------------------------------------------------------ state
+    @property
+    def plan(self) -> Plan | None:
+        """The chosen plan (``state.plan``)."""
+        return self.state.plan
+
+    @plan.setter
+    def plan(self, plan: Plan) -> None:
+        self.state.plan = plan
+
+    @property
+    def kind(self) -> str: return self.state.kind  # noqa: E704 (the budget's kind)
+
+    @property
+    def budget(self) -> float: return self.state.budget  # noqa: E704 (in the kind's unit)
+
     def front(self, kind: str | None = None) -> list:
         """The Pareto front for a budget kind (cached): ``[(cost, predicted dB, Plan), ...]``."""
         kind = self.kind if kind is None else kind
@@ -232,70 +227,78 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, PlannerTasks, widgets.VBox):
                                               rules=self.rules)
         return self._fronts[kind]
 
-    @property
-    def budget(self) -> float:
-        """The budget in the current kind's unit (what the plan was made for)."""
-        return self._budget_value
-
-    def _set_kind(self, kind: str, initial: bool = False) -> None:
-        """Switch the budget kind; the current plan is kept and the budget becomes its cost."""
-        kind = check_choice(budget_kind(kind), COSTS, "kind")
-        if kind == self.kind and not initial:
-            return
-        self.kind = kind
-        self._syncing = True
-        try:
-            if self.limit.offer(kind):  # one budget per kind: the second one went
-                self.limit.set_kind(None, None, None)
-        finally:
-            self._syncing = False
+    def _span(self, kind: str) -> tuple[float, float]:
+        """The costs of the front of ``kind``, and of the chosen plan."""
         front = self.front(kind)
         lo, hi = front[0][0], front[-1][0]
         if self.plan is not None:
-            lo, hi = min(lo, plan_cost(self.plan, kind)), max(hi, plan_cost(self.plan, kind))
-        value = initial_budget(front) if self.plan is None else plan_cost(self.plan, kind)
-        self._syncing = True
-        try:
-            self._scale = configure_slider(self.controls["budget"], kind, lo, hi, value)
-            if self.controls["kind"].value != kind:
-                self.controls["kind"].value = kind
-        finally:
-            self._syncing = False
-        self._budget_value = value
-        xs = [c / self._scale for c, _, _ in front]
-        unit = f" ({si_prefix(self._scale)}BOPs)" if kind == "bops" and self._scale != 1 else ""
-        self.figure.show_front(xs, [d for _, d, _ in front], AXIS_LABELS[kind] + unit)
-        if self.plan is None:
-            self._update(value)
-        else:
-            self._draw()
-            self.message.info(f"budget in {KIND_LABELS[kind]}: kept the plan, which costs "
-                              f"{fmt_cost(value, kind)} {KIND_LABELS[kind]}")
+            cost = plan_cost(self.plan, kind)
+            lo, hi = min(lo, cost), max(hi, cost)
+        return lo, hi
 
-    def _on_budget(self, change) -> None:
-        if not self._syncing:
-            self._updater.request()
+    def _place_budget(self) -> None:
+        """The budget's slider spans the front of the current kind (and the plan's cost)."""
+        kind = self.kind
+        lo, hi = self._span(kind)
+        self._scale = 10.0 ** (3 * math.floor(math.log10(hi) / 3)) if kind == "bops" and hi >= 1e3 else 1.0
+        c = self.controls["budget"]
+        c.slider.description = f"budget ({UNITS[kind]})"
+        c.set_positions(budget_positions(lo, hi))
+        front = self.front(kind)
+        unit = f" ({si_prefix(self._scale)}BOPs)" if kind == "bops" and self._scale != 1 else ""
+        self.figure.show_front([cost / self._scale for cost, _, _ in front], [d for _, d, _ in front],
+                               AXIS_LABELS[kind] + unit)
+
+    def _kind_changed(self, change) -> None:
+        """A new budget unit keeps the plan: the budget becomes its cost in that unit."""
+        st, kind = self.state, change["new"]
+        note = ""
+        if st.limit_kind == kind:  # one budget per kind: the second one goes, and it is said
+            note = f"; the second budget in {KIND_LABELS[kind]} went (it is the budget now)"
+            st.limit_kind = ""
+        self._place_budget()
+        if st.plan is None:
+            st.budget = initial_budget(self.front(kind))
+            return
+        st.budget = plan_cost(st.plan, kind)
+        self._draw()
+        self.message.info(f"budget in {KIND_LABELS[kind]}: kept the plan, which costs "
+                          f"{fmt_cost(st.budget, kind)} {KIND_LABELS[kind]}{note}")
+
+    def _budget_changed(self, change) -> None:
+        st = self.state
+        if st.plan is not None and change["new"] == plan_cost(st.plan, st.kind):
+            self._draw()  # the plan meets this budget exactly: it stays
+            return
+        self._updater.request()
+
+    def _limit_kind_changed(self, change) -> None:
+        st, kind = self.state, change["new"]
+        c = self.controls["limit"]
+        c.disabled = not kind
+        if kind:
+            lo, hi = self._span(kind)
+            c.slider.description = f"limit ({UNITS[kind]})"
+            c.set_positions(budget_positions(lo, hi))
+            st.limit = hi if st.plan is None else plan_cost(st.plan, kind)
+        else:
+            c.slider.description = "limit"
+        self._updater.request()
 
     def set_budget(self, kind: str, value: float) -> BudgetPlanner:
         """Set the budget kind (a :func:`qwidgets.plan_budget` keyword) and value, plan, and
         redraw (synchronously)."""
-        kind = budget_kind(kind)
-        if kind != self.kind:
-            self._set_kind(kind)
+        kind = check_choice(budget_kind(kind), COSTS, "kind")
         if not isinstance(value, (int, float)) or isinstance(value, bool) or not math.isfinite(value):
             raise ValueError(f"budget value must be a finite number, got {value!r}")
-        s = self.controls["budget"]
-        v = value / self._scale
-        if not s.min - 1e-12 <= v <= s.max + 1e-12:
-            raise ValueError(f"budget {value:g} is outside the feasible range "
-                             f"{s.min * self._scale:g} .. {s.max * self._scale:g} for {KIND_LABELS[kind]}")
-        self._syncing = True
-        try:
-            s.value = min(max(v, s.min), s.max)
-        finally:
-            self._syncing = False
-        self._exact = float(value)
-        self._update()
+        lo, hi = self._span(kind)
+        if not lo * (1 - 1e-12) <= value <= hi * (1 + 1e-12):
+            raise ValueError(f"budget {value:g} is outside the feasible range {lo:g} .. {hi:g} "
+                             f"for {KIND_LABELS[kind]}")
+        self.state.kind = kind
+        self.state.budget = float(value)
+        self._updater.cancel()
+        self._update()  # a script asked for this budget: plan it, even at the plan's own cost
         return self
 
     def refresh(self) -> BudgetPlanner:
@@ -303,34 +306,28 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, PlannerTasks, widgets.VBox):
         self._updater.flush()
         return self
 
-    def _update(self, value: float | None = None) -> None:
-        """Plan for the budget (``value``, else set_budget's exact value, else the slider's)."""
-        exact, self._exact = self._exact, None
-        if value is None:
-            value = exact if exact is not None else self.controls["budget"].value * self._scale
-        value = max(value, self.front()[0][0])  # the slider's rounding must not make it infeasible
-        plan = plan_budget(self.table, **{self.kind: value}, **self.limit.kwargs(),
+    def _update(self) -> None:
+        """Plan for the state's budget (and second budget)."""
+        st = self.state
+        value, lo = st.budget, self.front()[0][0]
+        note = ""
+        if value < lo:
+            note = (f"no plan fits {fmt_cost(value, st.kind)} {KIND_LABELS[st.kind]}: planned for the "
+                    f"cheapest, {fmt_cost(lo, st.kind)}")
+            value = lo
+        limit = {st.limit_kind: st.limit} if st.limit_kind else {}
+        plan = plan_budget(self.table, **{st.kind: value}, **limit,
                            assumed_input_bits=self.assumed_input_bits, rules=self.rules)
         self._predicted = plan.predicted_sqnr_db
         for name in plan.layers:  # grids taken from an explorer come back at their width
             setting = self._taken.get((name, plan.bits[name]))
             if setting is not None:
                 plan = plan.with_setting(name, setting)
-        self.plan = plan
-        self._budget_value = value
         self.report = None
         self.message.clear()  # any note was about the previous plan
-        self._draw()
-
-    def _set_limit(self, kind: str | None) -> None:
-        """A second budget that plans must meet too (None: none); it starts at the plan's cost."""
-        self._syncing = True
-        try:
-            self.limit.set_kind(kind, None if kind is None else self.front(kind),
-                                None if kind is None or self.plan is None else plan_cost(self.plan, kind))
-        finally:
-            self._syncing = False
-        self._update(self._budget_value)
+        if note:
+            self.message.info(note)
+        st.plan = plan
 
     def _edited(self) -> dict:
         return {n: "learned grid" for n in self.plan.layers if (n, self.plan.bits[n]) in self._taken}
@@ -384,16 +381,19 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, PlannerTasks, widgets.VBox):
 
     # ------------------------------------------------------------------ drawing
     def _draw(self) -> None:
-        p, r = self.plan, self.report
+        p, r, st = self.plan, self.report, self.state
+        if p is None:
+            return
         edited = self._edited()
+        also = "" if not st.limit_kind else f" and {fmt_cost(st.limit, st.limit_kind)} {KIND_LABELS[st.limit_kind]}"
         self.figure.show_choice(
-            self._budget_value / self._scale, plan_cost(p, self.kind) / self._scale,
+            st.budget / self._scale, plan_cost(p, st.kind) / self._scale,
             self._predicted, measured_db=None if r is None else r.measured_sqnr_db,
             weight_bits=[p.layers[n].weight.bits if n in p.layers and p.layers[n].weight is not None
                          else None for n in self.table.layers],
             input_bits=[p.chosen_input_bits.get(n) for n in self.table.layers])
         self.readout.value = plan_readout_html(
-            p, r, kind=self.kind, budget=self._budget_value, also=self.limit.text(), predicted_db=self._predicted, edited=edited,
+            p, r, kind=st.kind, budget=st.budget, also=also, predicted_db=self._predicted, edited=edited,
             metric=self.metric is not None, measured_on=self._measured_on(), dtype=self.dtype,
             coverage=str(self.table.coverage))
         self.table_html.value = layers_html(self.table, p, edited)

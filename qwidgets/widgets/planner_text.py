@@ -1,4 +1,4 @@
-"""Text of the budget planner: the readout and the per-layer table as HTML, slider steps, units.
+"""Text of the budget planner: the readout and the per-layer table as HTML, costs, units.
 
 Plain functions of the planner's state (no ipywidgets, no matplotlib), so the widget stays a
 holder of state and the text can be checked on its own.
@@ -14,7 +14,7 @@ from ..planning.evaluate import PlanReport
 from ..planning.plan import Plan
 from ..planning.table import SensitivityTable
 
-__all__ = ["KIND_LABELS", "AXIS_LABELS", "budget_kind", "plan_cost", "nice_step", "si_prefix",
+__all__ = ["KIND_LABELS", "AXIS_LABELS", "budget_kind", "plan_cost", "si_prefix",
            "fmt_cost", "plan_readout_html", "layers_html", "initial_budget"]
 
 # the budget kinds are plan_budget's keywords and the Plan attributes of the same names
@@ -51,41 +51,6 @@ def plan_cost(plan: Plan, kind: str) -> float:
     if kind == "model_kib" and plan.model_kib is None:  # a plan that does not record the rest
         return plan.planned_kib
     return getattr(plan, kind)
-
-
-def nice_step(span: float, fraction: float = 0.01) -> float:
-    """A round slider step (1, 2 or 5 times a power of ten) close to ``fraction`` of ``span``.
-
-    >>> nice_step(6.3), nice_step(1.9e6), nice_step(0.0)
-    (0.05, 20000.0, 1e-06)
-    """
-    target = span * fraction
-    if not target > 0 or not math.isfinite(target):
-        return 1e-6
-    p = 10.0 ** math.floor(math.log10(target))
-    best = min((1, 2, 5, 10), key=lambda m: abs(math.log(m * p / target)))
-    return float(f"{best * p:.12g}")
-
-
-def configure_slider(slider, kind: str, lo: float, hi: float, value: float, label: str = "budget") -> float:
-    """Set a budget slider's range, step (about 1% of the range), label and value for ``kind``;
-    returns the unit scale of its values (BOPs are shown in k / M / G units).
-
-    >>> from types import SimpleNamespace
-    >>> s = SimpleNamespace(min=0.0, max=1.0, step=0.1, value=0.5, description="")
-    >>> configure_slider(s, "bops", 2e6, 9e6, 5e6), s.min, s.max, s.step, s.description
-    (1000000.0, 2.0, 9.0, 0.05, 'budget (MBOPs)')
-    """
-    scale = 10.0 ** (3 * math.floor(math.log10(hi) / 3)) if kind == "bops" and hi >= 1e3 else 1.0
-    unit = {"model_kib": "KiB", "planned_kib": "KiB", "mean_bits": "bits",
-            "bops": f"{si_prefix(scale)}BOPs"}[kind]
-    slider.description = f"{label} ({unit})"
-    slider.max = max(hi / scale, slider.min)
-    slider.min = lo / scale
-    slider.max = hi / scale
-    slider.step = nice_step((hi - lo) / scale)  # keyboard steps of about 1% of the range
-    slider.value = min(max(value / scale, slider.min), slider.max)
-    return scale
 
 
 def si_prefix(scale: float) -> str:
@@ -137,7 +102,8 @@ def plan_readout_html(plan: Plan, report: PlanReport | None, *, kind: str, budge
         ("measured SQNR", "press measure" if report is None else
          f"{_db(report.measured_sqnr_db)} on {measured_on}"),
         ("model_kib", "-" if plan.model_kib is None else
-         f"{plan.model_kib:,.2f} KiB (the whole model; weights not planned at their stored width)"),
+         f"{plan.model_kib:,.2f} KiB (the whole model: the planned weights at their planned "
+         "widths, every other weight as stored)"),
         ("planned_kib", f"{plan.planned_kib:,.2f} KiB (the planned layers; float32 "
                         f"{plan.float_planned_kib:,.2f} KiB, "
                         f"{plan.float_planned_kib / plan.planned_kib:.1f}x smaller)"),

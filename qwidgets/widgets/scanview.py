@@ -1,7 +1,9 @@
 """ScanView: the sensitivity heatmap and table; picking a layer opens its grid explorer below.
 
 The view draws a :class:`~qwidgets.scan.SensitivityTable` (made by :func:`qwidgets.scan`, or
-given); it computes nothing itself. Picking a layer (the drop-down, or :meth:`ScanView.pick`)
+given); it computes nothing itself. Its state (the scope shown, the layer and width chosen) is
+a ``traitlets.HasTraits`` model, :class:`ScanState` (``view.state``), the controls are bound to.
+A table with input rows (``quantize="separate"``) shows them beside the weight rows. Picking a layer (the drop-down, or :meth:`ScanView.pick`)
 marks its row in the heatmap (:class:`~qwidgets.viz.scan_figure.ScanFigure`) and opens a :class:`~qwidgets.widgets.explorer.GridExplorer` for
 that layer, starting at the picked bit width with the scan's range method.
 """
@@ -14,6 +16,7 @@ from collections.abc import Callable, Sequence
 from typing import TYPE_CHECKING
 
 import ipywidgets as widgets
+import traitlets
 from torch import nn
 
 from ..core.checks import check_choice
@@ -29,11 +32,12 @@ from .display_snapshot import SnapshotDisplay
 from .events import MessageLine
 from .fold_note import batchnorm_note
 from .image_canvas import PlotCanvas
+from .number_control import bind
 
 if TYPE_CHECKING:
     from .planner import BudgetPlanner
 
-__all__ = ["ScanView"]
+__all__ = ["ScanView", "ScanState"]
 
 CSS = {
     "root": "qw-scanview",
@@ -47,6 +51,20 @@ CSS = {
     "explorer": "qw-scan-explorer",
 }
 SCOPE_LABELS = {"model": "model output", "layer": "layer output"}
+
+
+class ScanState(traitlets.HasTraits):
+    """What a :class:`ScanView` shows (``view.state``): the scope, and the layer and width
+    chosen for the explorer. Set, observe or link these traits.
+
+    >>> st = ScanState(scope="model", layer="fc", bits=4)
+    >>> st.scope, st.layer, st.bits
+    ('model', 'fc', 4)
+    """
+
+    scope = traitlets.Enum(("model", "layer"), default_value="model", help="whose output's SQNR")
+    layer = traitlets.Unicode("", help="the layer chosen")
+    bits = traitlets.Int(4, help="the width chosen")
 
 
 class ScanView(SnapshotDisplay, widgets.VBox):
@@ -101,10 +119,15 @@ class ScanView(SnapshotDisplay, widgets.VBox):
         self.explorer = None
         self.planner = None
         self.selected: tuple[str, int] | None = None
-        self._scope = "model" if "model" in self.table.scopes else "layer"
-        # one colour scale for heatmap and table, and for both scopes
-        self.color_limits = sqnr_limits(*(self.table.sqnr_array(s) for s in self.table.scopes))
+        t = self.table
+        self.state = ScanState(scope="model" if "model" in t.scopes else "layer", layer=t.layers[0],
+                               bits=t.bits[len(t.bits) // 2])
+        self.inputs = t.quantize == "separate"  # input rows beside the weight rows
+        # one colour scale for heatmap and table, for both scopes and both kinds of rows
+        self.color_limits = sqnr_limits(*(t.sqnr_array(s) for s in t.scopes),
+                                        *(t.sqnr_array(s, "input") for s in t.scopes if self.inputs))
         self._build(width)
+        self.state.observe(lambda _ch: self.message.run("scope", self._draw), names="scope")
         self._draw()
 
     # ------------------------------------------------------------------ layout
@@ -113,12 +136,12 @@ class ScanView(SnapshotDisplay, widgets.VBox):
         self.message = MessageLine()
         self.controls = {
             "scope": widgets.ToggleButtons(options=[(SCOPE_LABELS[s], s) for s in t.scopes],
-                                           value=self._scope, description="SQNR of",
+                                           value=self.state.scope, description="SQNR of",
                                            style={"description_width": "60px", "button_width": "110px"}),
-            "layer": widgets.Dropdown(options=t.layers, value=t.layers[0], description="layer",
+            "layer": widgets.Dropdown(options=t.layers, value=self.state.layer, description="layer",
                                       style={"description_width": "60px"},
                                       layout=widgets.Layout(width="260px")),
-            "bits": widgets.Dropdown(options=list(t.bits), value=t.bits[len(t.bits) // 2],
+            "bits": widgets.Dropdown(options=list(t.bits), value=self.state.bits,
                                      description="bits", style={"description_width": "40px"},
                                      layout=widgets.Layout(width="130px")),
             "open": widgets.Button(description="explore layer", icon="search",
@@ -132,15 +155,15 @@ class ScanView(SnapshotDisplay, widgets.VBox):
         }
         for name, w in self.controls.items():
             w.add_class(CSS[name])
-        self.controls["scope"].observe(lambda ch: self.message.run("scope", lambda: self.set_scope(ch["new"])),
-                                       names="value")
+        refused = lambda exc, name: self.message.error(exc, f"setting {name}")  # noqa: E731
+        for name in ("scope", "layer", "bits"):  # a note about the picked layer no longer matches
+            bind(self.state, name, self.controls[name], on_error=refused, before=self.message.clear)
         self.controls["open"].on_click(lambda _b: self.message.run("explore", lambda: self.pick(
-            self.controls["layer"].value, bits=self.controls["bits"].value)))
+            self.state.layer, bits=self.state.bits)))
         self.controls["use_grid"].on_click(lambda _b: self.message.run("use grid in plan", self.use_grid))
-        for name in ("layer", "bits"):  # a note about the picked layer no longer matches the choice
-            self.controls[name].observe(lambda _ch: self.message.clear(), names="value")
         rows = len(t.layers)
         height = int(min(900, max(220, 120 + 26 * rows)))
+        width = width + (140 + 40 * len(t.input_bits) if self.inputs else 0)
         self.canvas = PlotCanvas(width, height)
         self.canvas.image.add_class(CSS["plot"])
         self.figure = ScanFigure(self.canvas)
@@ -161,21 +184,26 @@ class ScanView(SnapshotDisplay, widgets.VBox):
     def _draw(self) -> None:
         """Heatmap and table of the current scope, with the one colour scale."""
         t, (vmin, vmax) = self.table, self.color_limits
-        how = ", estimated" if how_measured(t, self._scope) else ""
-        self.figure.show(t.sqnr_array(self._scope), t.layers, t.bits,
-                         f"{SCOPE_LABELS[self._scope]} SQNR (dB{how}), one layer quantized at a time ({t.quantize})",
-                         vmin=vmin, vmax=vmax)
-        self.table_html.value = sqnr_table_html(t, self._scope, vmin, vmax)
+        scope = self.state.scope
+        how = ", estimated" if how_measured(t, scope) else ""
+        what = "weights" if self.inputs else t.quantize
+        inputs = None
+        if self.inputs:
+            inputs = (t.sqnr_array(scope, "input"), t.input_bits, "layer inputs quantized")
+        self.figure.show(t.sqnr_array(scope), t.layers, t.bits,
+                         f"{SCOPE_LABELS[scope]} SQNR (dB{how}), one layer at a time: {what} quantized",
+                         vmin=vmin, vmax=vmax, inputs=inputs)
+        html_ = sqnr_table_html(t, scope, vmin, vmax)
+        if self.inputs:
+            html_ += sqnr_table_html(t, scope, vmin, vmax, source="input")
+        self.table_html.value = html_
         self.canvas.render()
 
     # ------------------------------------------------------------------ actions
     def set_scope(self, scope: str) -> ScanView:
         """Show the model-output or the layer-output SQNR (whichever the table holds)."""
         check_choice(scope, self.table.scopes, "scope")  # the scopes this table holds
-        self._scope = scope
-        if self.controls["scope"].value != scope:
-            self.controls["scope"].value = scope
-        self._draw()
+        self.state.scope = scope
         return self
 
     def pick(self, layer: str, bits: int | None = None) -> ScanView:
@@ -183,10 +211,10 @@ class ScanView(SnapshotDisplay, widgets.VBox):
         t = self.table
         if layer not in t.layers:
             raise ValueError(f"layer {layer!r} is not in the scan; layers: {t.layers}")
-        bits = self.controls["bits"].value if bits is None else bits
+        bits = self.state.bits if bits is None else bits
         if bits not in t.bits:
             raise ValueError(f"bits must be one of the scanned widths {list(t.bits)}, got {bits!r}")
-        self.controls["layer"].value, self.controls["bits"].value = layer, bits
+        self.state.layer, self.state.bits = layer, int(bits)
         self.selected = (layer, int(bits))
         self.figure.mark(t.layers.index(layer), t.bits.index(bits))
         self.canvas.render()
@@ -239,7 +267,7 @@ class ScanView(SnapshotDisplay, widgets.VBox):
 
     @property
     def snapshot_title(self) -> str:
-        return f"Sensitivity scan: {SCOPE_LABELS[self._scope]} SQNR, {len(self.table.layers)} layers"
+        return f"Sensitivity scan: {SCOPE_LABELS[self.state.scope]} SQNR, {len(self.table.layers)} layers"
 
     def snapshot(self) -> tuple[bytes, str]:
         """The heatmap as PNG and the table (with the message line) as HTML: a static copy of
