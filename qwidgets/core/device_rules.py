@@ -13,6 +13,7 @@ from dataclasses import dataclass
 
 import torch
 
+from .blocks import SCALE_BITS, block_sums
 from .checks import check_bits
 from .grid import UniformGrid
 from .rounding import quantize
@@ -38,6 +39,9 @@ class DeviceRules:
         tensor)
     per_tensor_inputs : input (activation) grids have one scale and zero point per tensor
     weight_bits, input_bits : the allowed widths (e.g. ``(4, 8)``), or None for any in 1..16
+    scale_bits : how the device stores a block grid's scales: 16 (float16, the default, common
+        practice) or 32 (float32). Fitted block scales are rounded to that format, and each
+        block pays ``scale_bits`` in a plan's storage.
 
     Every grid made under rules also has an integer zero point (the device computes
     ``r = S (q - Z)``), so mid-rise grids are refused.
@@ -55,6 +59,7 @@ class DeviceRules:
     per_tensor_inputs: bool = True
     weight_bits: tuple[int, ...] | None = None
     input_bits: tuple[int, ...] | None = None
+    scale_bits: int = 16
 
     def __post_init__(self):
         for name in ("pow2_scales", "symmetric_weights", "per_channel_weights", "per_tensor_inputs"):
@@ -63,6 +68,8 @@ class DeviceRules:
                 raise TypeError(f"{name} must be True or False, got {v!r}")
         for name in ("weight_bits", "input_bits"):
             object.__setattr__(self, name, _menu(getattr(self, name), name))
+        if isinstance(self.scale_bits, bool) or self.scale_bits not in SCALE_BITS:
+            raise ValueError(f"scale_bits must be one of {SCALE_BITS}, got {self.scale_bits!r}")
 
     # ------------------------------------------------------------------ widths
     def bits_menu(self, role: str) -> tuple[int, ...] | None:
@@ -195,7 +202,7 @@ def power_of_two_fit(x: torch.Tensor, grid: UniformGrid, method: str) -> Uniform
                 z = torch.round(mid_code - (lo + hi) / (2 * cand_s)).clamp(grid.qmin, grid.qmax)
                 cand_o = -z * cand_s
             cand = _like(grid, cand_s, cand_o)
-            err = _sq_error(xd, quantize(xd, cand), grid.axis)
+            err = _sq_error(xd, quantize(xd, cand), grid)
             if best_err is None:
                 best_err, best_s, best_o = err, cand_s, cand_o
             else:
@@ -237,6 +244,10 @@ def conform_grid(grid: UniformGrid, x: torch.Tensor, rules: DeviceRules, role: s
 
 
 def _like(grid: UniformGrid, s: torch.Tensor, o: torch.Tensor) -> UniformGrid:
+    if grid.blocked:
+        dev = grid.scale.device
+        return grid.replace(scale=s.reshape(grid.scale.shape).to(dev, torch.float32),
+                            offset=o.reshape(grid.scale.shape).to(dev, torch.float32) + 0.0)
     if grid.axis is None:
         return grid.replace(scale=float(s.reshape(())), offset=float(o.reshape(())) + 0.0)
     dev = grid.scale_tensor().device
@@ -244,9 +255,13 @@ def _like(grid: UniformGrid, s: torch.Tensor, o: torch.Tensor) -> UniformGrid:
                         offset=o.reshape(-1).to(dev, torch.float32) + 0.0)
 
 
-def _sq_error(x: torch.Tensor, q: torch.Tensor, axis) -> torch.Tensor:
+def _sq_error(x: torch.Tensor, q: torch.Tensor, grid: UniformGrid) -> torch.Tensor:
+    """Squared error per tensor, channel or block (the grid's parameter layout)."""
     diff = (q.double() - x.double()).square()
+    axis = grid.axis
     if axis is None:
         return diff.sum()
+    if grid.blocked:
+        return block_sums(diff, axis % x.dim(), grid.block_size)
     return diff.movedim(axis, 0).reshape(diff.shape[axis], -1).sum(dim=1)
 

@@ -3,7 +3,9 @@
 A grid holds the integers ``k`` in ``[qmin, qmax]`` and maps them to ``scale * k + offset``.
 Scale and offset are plain floats or tensors; tensors that require gradients keep them, so the
 relaxed quantizer can learn them. With ``axis`` set, scale and offset hold one value per index
-of that axis of the tensor being quantized (per-channel quantization).
+of that axis of the tensor being quantized (per-channel quantization). With ``block_size`` too,
+they hold one value per block of consecutive values along ``axis`` (the blocked axis), in the
+layout of ONNX opset 21 blocked quantization (see ``blocks``).
 """
 
 from __future__ import annotations
@@ -12,57 +14,12 @@ from numbers import Integral
 
 import torch
 
+from .blocks import block_shape, check_block_params, check_block_size, expand_blocks
 from .checks import check_axis, check_bits, check_finite, check_positive, describe_values
+from .zero_rule import ZP_TOLERANCE, derived_offset, integer_zero_point, zero_points
 
 __all__ = ["UniformGrid", "ZP_TOLERANCE", "integer_zero_point", "zero_points", "code_values", "channel_shape",
-           "grid_params", "zero_point_param", "noise_param"]
-
-# One rule decides whether a grid has an integer zero point Z (offset == -Z * scale): -offset /
-# scale must lie within ZP_TOLERANCE * max(1, |Z|) of an integer. That is 4 float32 machine
-# epsilons: the rounding that storing -Z * scale in float32 may cost, and nothing more, so a
-# grid that has Z computes every value as (k - Z) * scale exactly. Grids decide it once, when
-# they are made (``UniformGrid.zero_point``); quantization, export and the plan files all use
-# that decision.
-ZP_TOLERANCE = 4 * torch.finfo(torch.float32).eps
-
-
-def integer_zero_point(scale, offset):
-    """The integer Z with ``offset == -Z * scale`` under the one tolerance, or None.
-
-    ``scale`` and ``offset`` are floats or tensors (broadcast against each other). Returns an
-    int for scalars, an int64 tensor for tensors, or None when any entry is not an integer
-    multiple (a grid has a zero point for all its channels or it has none).
-
-    >>> integer_zero_point(0.1, -0.3), integer_zero_point(0.1, -(0.3 + 2e-5))
-    (3, None)
-    """
-    z, whole = zero_points(scale, offset)
-    return z if whole is True else None
-
-
-def zero_points(scale, offset):
-    """Entry by entry: ``(Z, whole)``, Z the nearest integer to ``-offset / scale`` where it is one
-    under the tolerance (0 elsewhere) and ``whole`` True when every entry is, False when none
-    is, else a bool tensor (a per-channel grid may have integer zero points on some channels)."""
-    tensors = isinstance(scale, torch.Tensor) or isinstance(offset, torch.Tensor)
-    # the decision is made in float64 on the stored values, whatever dtype later computes with them
-    with torch.no_grad():
-        s = torch.as_tensor(scale.detach() if isinstance(scale, torch.Tensor) else scale, dtype=torch.float64)
-        o = torch.as_tensor(offset.detach() if isinstance(offset, torch.Tensor) else offset, dtype=torch.float64)
-        z = -o / s
-        zr = torch.round(z)
-        mask = torch.abs(z - zr) <= ZP_TOLERANCE * torch.clamp(torch.abs(zr), min=1.0)
-        zr = torch.where(mask, zr, 0.0) + 0.0
-    if bool(mask.all()):
-        whole = True
-    elif not bool(mask.any()):
-        whole = False
-    else:
-        whole = mask
-    if zr.dim() == 0 or not tensors:
-        return int(zr), whole
-    return zr.to(torch.int64), whole
-
+           "grid_params", "zero_point_param", "param_layout", "place_param", "block_axis"]
 
 def code_values(k: torch.Tensor, s: torch.Tensor, o: torch.Tensor, shift=None) -> torch.Tensor:
     """Grid values ``s * k + o`` for (float-typed) integer codes ``k``.
@@ -95,6 +52,12 @@ class UniformGrid:
     offset : float or tensor (shifts every grid point; ``offset == -zero_point * scale``)
     signed : ``k`` in ``[-2**(bits-1), 2**(bits-1) - 1]`` if True, else ``[0, 2**bits - 1]``
     axis : None for one scale / offset for the whole tensor, or the axis along which they vary
+        (per channel: 1-D scale / offset); with ``block_size``, the blocked axis
+    block_size : None, or ``g`` >= 1: one scale / offset per block of ``g`` consecutive values
+        along ``axis``. Scale and offset then have the tensor's full rank and shape, ``axis``
+        divided by ``g`` rounded up (a last short block is allowed): the ONNX opset 21 blocked
+        layout, e.g. scales ``[O, ceil(I / g), kh, kw]`` for a conv weight ``[O, I, kh, kw]``
+        blocked along ``axis=1``. A float offset applies to every block.
 
     Example
     -------
@@ -103,21 +66,27 @@ class UniformGrid:
     [-2.0, -1.5, -1.0, -0.5, 0.0, 0.5, 1.0, 1.5]
     >>> g.clip_range
     (-2.0, 1.5)
+    >>> UniformGrid(4, torch.ones(8, 3), axis=1, block_size=32).granularity
+    32
     """
 
-    __slots__ = ("bits", "scale", "offset", "signed", "axis", "_zp", "_whole")
-    _FIELDS = ("bits", "scale", "offset", "signed", "axis")
+    __slots__ = ("bits", "scale", "offset", "signed", "axis", "block_size", "_zp", "_whole")
+    _FIELDS = ("bits", "scale", "offset", "signed", "axis", "block_size")
 
-    def __init__(self, bits: int, scale, offset=0.0, signed: bool = True, axis: int | None = None):
+    def __init__(self, bits: int, scale, offset=0.0, signed: bool = True, axis: int | None = None,
+                 block_size: int | None = None):
         bits = check_bits(bits)
         if not isinstance(signed, bool):
             raise TypeError(f"signed must be a bool, got {signed!r}")
         if axis is not None and (isinstance(axis, bool) or not isinstance(axis, Integral)):
             raise TypeError(f"axis must be None or an int, got {axis!r}")
+        block_size = check_block_size(block_size)
         scale = check_positive(scale, "scale")
         offset = check_finite(offset, "offset")
+        if block_size is not None:
+            check_block_params(scale, offset, axis, block_size)
         for name, v in (("scale", scale), ("offset", offset)):
-            if isinstance(v, torch.Tensor):
+            if isinstance(v, torch.Tensor) and block_size is None:
                 if axis is None and v.numel() != 1:
                     raise ValueError(
                         f"{name} has {v.numel()} values but axis is None; give one value, "
@@ -131,13 +100,14 @@ class UniformGrid:
             and scale.numel() > 1
             and offset.numel() > 1
             and scale.numel() != offset.numel()
+            and block_size is None
         ):
             raise ValueError(
                 f"scale has {scale.numel()} channels but offset has {offset.numel()}; they must match"
             )
         zp, whole = zero_points(scale, offset)
         if whole is not False:
-            offset = _derived_offset(zp, whole, scale, offset)
+            offset = derived_offset(zp, whole, scale, offset)
         object.__setattr__(self, "_zp", None if whole is False else zp)
         object.__setattr__(self, "_whole", whole)
         object.__setattr__(self, "bits", bits)
@@ -145,6 +115,7 @@ class UniformGrid:
         object.__setattr__(self, "offset", offset)
         object.__setattr__(self, "signed", signed)
         object.__setattr__(self, "axis", None if axis is None else int(axis))
+        object.__setattr__(self, "block_size", block_size)
 
     def __setattr__(self, name, value):
         raise AttributeError("UniformGrid is immutable; use .replace(...) to make a changed copy")
@@ -158,7 +129,7 @@ class UniformGrid:
         return self
 
     def __reduce__(self):
-        return (UniformGrid, (self.bits, self.scale, self.offset, self.signed, self.axis))
+        return (UniformGrid, (self.bits, self.scale, self.offset, self.signed, self.axis, self.block_size))
 
     # ------------------------------------------------------------------ integer range
     @property
@@ -175,11 +146,25 @@ class UniformGrid:
 
     @property
     def per_channel(self) -> bool:
-        return self.axis is not None
+        """One scale per channel (a 1-D scale along ``axis``; False for block grids)."""
+        return self.axis is not None and self.block_size is None
+
+    @property
+    def blocked(self) -> bool:
+        """One scale per block of ``block_size`` values along ``axis``."""
+        return self.block_size is not None
+
+    @property
+    def granularity(self) -> str | int:
+        """``"tensor"``, ``"channel"`` or the block size."""
+        return "tensor" if self.axis is None else ("channel" if self.block_size is None else self.block_size)
 
     @property
     def n_channels(self) -> int | None:
-        """Number of channels the scale / offset carry (None for a per-tensor grid or scalars)."""
+        """Number of channels the scale / offset carry (None for a per-tensor grid or scalars;
+        for a block grid, the number of blocks)."""
+        if self.blocked:
+            return self.scale.numel()
         sizes = [v.numel() for v in (self.scale, self.offset) if isinstance(v, torch.Tensor)]
         sizes = [s for s in sizes if s > 1]
         return max(sizes) if sizes else None
@@ -194,6 +179,8 @@ class UniformGrid:
 
     def _as_tensor(self, v) -> torch.Tensor:
         t = v if isinstance(v, torch.Tensor) else torch.tensor(float(v))
+        if self.blocked:  # the block layout, a float offset broadcast to it
+            return t.expand(self.scale.shape) if t.numel() == 1 else t
         if self.axis is None:
             return t.reshape(())
         n = self.n_channels
@@ -202,12 +189,15 @@ class UniformGrid:
 
     @property
     def levels(self) -> torch.Tensor:
-        """All grid values, ascending: shape ``(n_levels,)``, or ``(channels, n_levels)``."""
+        """All grid values, ascending: shape ``(n_levels,)``, or ``(channels, n_levels)``
+        (a block grid: one row per block, blocks in the order of ``scale.reshape(-1)``)."""
         # Same arithmetic as ``quantize`` on default-dtype input, so its outputs are members.
         dtype = torch.get_default_dtype()
         k = torch.arange(self.qmin, self.qmax + 1, dtype=dtype)
         s = self.scale_tensor().detach().to(dtype)
         o = self.offset_tensor().detach().to(dtype)
+        if self.blocked:
+            s, o = s.reshape(-1), o.reshape(-1)
         shift = _shift(self, dtype, k.device, None if not (s.dim() or o.dim()) else (-1, 1))
         if s.dim() or o.dim():
             s, o = s.reshape(-1, 1), o.reshape(-1, 1)
@@ -286,39 +276,51 @@ class UniformGrid:
             return f"{v:.6g}"
 
         ax = "" if self.axis is None else f", axis={self.axis}"
+        ax += "" if self.block_size is None else f", block_size={self.block_size}"
         return (
             f"UniformGrid(bits={self.bits}, scale={fmt(self.scale)}, offset={fmt(self.offset)}, "
             f"signed={self.signed}{ax})"
         )
 
-def _derived_offset(zp, whole, scale, offset):
-    """``-zp * scale`` in the type the offset was given in (a learned offset keeps its graph),
-    on the entries that have an integer zero point (``whole``)."""
-    if isinstance(offset, torch.Tensor) and offset.requires_grad:
-        return offset  # learning: the value stays as given, quantization computes (k - Z) * s
-    if whole is not True:  # some channels only: derive those, keep the others
-        s = scale.detach() if isinstance(scale, torch.Tensor) else torch.tensor(float(scale))
-        o = offset.detach() if isinstance(offset, torch.Tensor) else torch.tensor(float(offset), dtype=s.dtype)
-        derived = -(torch.as_tensor(zp, dtype=s.dtype) * s) + 0.0
-        shape = torch.broadcast_shapes(derived.shape, o.shape, whole.shape)
-        return torch.where(whole.reshape(shape) if whole.numel() > 1 else whole, derived.to(o.dtype), o)
-    if not bool(torch.as_tensor(zp).any()):  # Z = 0: offset 0, in the type it was given
-        return torch.zeros_like(offset) if isinstance(offset, torch.Tensor) else 0.0
-    if not isinstance(scale, torch.Tensor) and not isinstance(offset, torch.Tensor):
-        return -zp * scale + 0.0
-    s = scale.detach() if isinstance(scale, torch.Tensor) else torch.tensor(float(scale), dtype=offset.dtype)
-    z = torch.as_tensor(zp, dtype=s.dtype)
-    value = (-(z * s) + 0.0)
-    if isinstance(offset, torch.Tensor):
-        value = torch.broadcast_to(value, torch.broadcast_shapes(value.shape, offset.shape))
-        return value.to(offset.dtype).reshape(offset.shape) if value.numel() == offset.numel() else value
-    return float(value) if value.numel() == 1 else value
+class _Blocked:
+    """Where block parameters meet ``x``: repeated over each block, or (``split``) shaped for
+    ``x`` viewed as ``(..., blocks, g, ...)`` (no copy of the parameters per value)."""
+
+    def __init__(self, grid: UniformGrid, axis: int, n: int, split: bool):
+        self.shape, self.axis, self.g, self.n, self.split = grid.scale.shape, axis, grid.block_size, n, split
+
+    def place(self, t: torch.Tensor) -> torch.Tensor:
+        t = t.reshape(self.shape)
+        return t.unsqueeze(self.axis + 1) if self.split else expand_blocks(t, self.axis, self.g, self.n)
+
+
+def block_axis(x: torch.Tensor, grid: UniformGrid) -> int:
+    """The blocked axis of ``grid`` on ``x`` (0..x.dim()-1), after checking that the block
+    scales fit ``x``'s shape."""
+    axis = check_axis(grid.axis, x.dim()) % x.dim()
+    want = block_shape(x.shape, axis, grid.block_size)
+    if tuple(grid.scale.shape) != want:
+        raise ValueError(
+            f"the grid's block scales have shape {tuple(grid.scale.shape)}, but x of shape "
+            f"{tuple(x.shape)} in blocks of {grid.block_size} along axis {grid.axis} needs {want}")
+    return axis
+
+
+def param_layout(x: torch.Tensor, grid: UniformGrid, split: bool = False):
+    """How the grid's parameters broadcast against ``x``: None (per tensor), a shape (per
+    channel) or a block placement; ``split`` for ``x`` viewed as ``(..., blocks, g, ...)``."""
+    if grid.blocked:
+        axis = block_axis(x, grid)
+        return _Blocked(grid, axis, x.shape[axis], split)
+    return channel_shape(x, grid)
 
 
 def channel_shape(x: torch.Tensor, grid: UniformGrid) -> tuple[int, ...] | None:
     """Shape that broadcasts a per-channel vector against ``x`` (None for per-tensor grids)."""
     if grid.axis is None:
         return None
+    if grid.blocked:
+        raise ValueError("a block grid has no per-channel shape; use param_layout")
     axis = check_axis(grid.axis, x.dim()) % x.dim()
     n = grid.n_channels
     if n is not None and n != x.shape[axis]:
@@ -330,28 +332,32 @@ def channel_shape(x: torch.Tensor, grid: UniformGrid) -> tuple[int, ...] | None:
     shape[axis] = x.shape[axis]
     return tuple(shape)
 
-def grid_params(x: torch.Tensor, grid: UniformGrid, dtype: torch.dtype | None = None):
-    """Scale and offset as tensors broadcastable against ``x`` (x's device; x's dtype unless given)."""
+def grid_params(x: torch.Tensor, grid: UniformGrid, dtype: torch.dtype | None = None, *,
+                split: bool = False):
+    """Scale and offset as tensors broadcastable against ``x`` (x's device; x's dtype unless
+    given). Block parameters are repeated over their blocks; with ``split``, shaped for ``x``
+    viewed as ``(..., blocks, g, ...)`` instead (the blocked axis a multiple of g)."""
     if not isinstance(grid, UniformGrid):
         raise TypeError(f"grid must be a UniformGrid, got {type(grid).__name__}")
-    shape = channel_shape(x, grid)
+    shape = param_layout(x, grid, split)
     dtype = dtype or x.dtype
-    return _param(grid.scale, x, shape, dtype), _param(grid.offset, x, shape, dtype)
+    return place_param(grid.scale, x, shape, dtype), place_param(grid.offset, x, shape, dtype)
 
-def _param(v, x: torch.Tensor, shape, dtype) -> torch.Tensor:
+def place_param(v, x: torch.Tensor, shape, dtype) -> torch.Tensor:
     if isinstance(v, torch.Tensor):
         t = v.to(device=x.device, dtype=dtype)
         if shape is None or t.numel() == 1:
             return t.reshape(())
-        return t.reshape(shape)
+        return shape.place(t) if isinstance(shape, _Blocked) else t.reshape(shape)
     return torch.tensor(float(v), dtype=dtype, device=x.device)
 
-def zero_point_param(x: torch.Tensor, grid: UniformGrid, dtype: torch.dtype | None = None):
+def zero_point_param(x: torch.Tensor, grid: UniformGrid, dtype: torch.dtype | None = None, *,
+                     split: bool = False):
     """``(z, rest)`` for :func:`code_values`, broadcastable against ``x``, or None when no
     entry of the grid has an integer zero point (``rest`` is None when every entry has one)."""
     if grid._zp is None:
         return None
-    return _shift(grid, dtype or x.dtype, x.device, channel_shape(x, grid))
+    return _shift(grid, dtype or x.dtype, x.device, param_layout(x, grid, split))
 
 
 def _shift(grid: UniformGrid, dtype, device, shape):
@@ -359,7 +365,9 @@ def _shift(grid: UniformGrid, dtype, device, shape):
         return None
 
     def shaped(t):
-        return t.reshape(()) if shape is None or t.numel() == 1 else t.reshape(shape)
+        if shape is None or t.numel() == 1:
+            return t.reshape(())
+        return shape.place(t) if isinstance(shape, _Blocked) else t.reshape(shape)
 
     z = shaped(torch.as_tensor(grid._zp, dtype=dtype, device=device))
     if grid._whole is True:
@@ -367,17 +375,3 @@ def _shift(grid: UniformGrid, dtype, device, shape):
     o = grid.offset_tensor().detach().to(device=device, dtype=dtype)
     rest = torch.where(grid._whole.to(device), torch.zeros_like(o), o)
     return z, shaped(rest)
-
-
-def noise_param(noise, x: torch.Tensor, grid: UniformGrid, name: str = "noise") -> torch.Tensor:
-    """The logistic noise width as a tensor broadcastable against ``x`` (scalar or per channel)."""
-    check_positive(noise, name)
-    if isinstance(noise, torch.Tensor) and noise.numel() > 1:
-        shape = channel_shape(x, grid)
-        if shape is None:
-            raise ValueError(f"{name} has {noise.numel()} values but the grid is per-tensor; give one")
-        n = shape[grid.axis % x.dim()]
-        if noise.numel() != n:
-            raise ValueError(f"{name} has {noise.numel()} values but the tensor has {n} channels")
-        return noise.to(device=x.device, dtype=x.dtype).reshape(shape)
-    return _param(noise, x, None, x.dtype)

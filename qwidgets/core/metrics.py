@@ -7,8 +7,9 @@ from dataclasses import asdict, dataclass
 
 import torch
 
+from .blocks import expand_blocks
 from .checks import as_input
-from .grid import UniformGrid, channel_shape, grid_params
+from .grid import UniformGrid, block_axis, channel_shape, grid_params
 
 __all__ = ["ErrorStats", "GridUsage", "error_stats", "grid_usage", "stats_from_sums"]
 
@@ -119,8 +120,8 @@ class GridUsage:
     clipped_fraction: float  # share of values beyond the clip range by more than half a step
     clipped_low: float
     clipped_high: float
-    bins_used: int  # distinct codes taken (summed over channels for a per-channel grid)
-    n_bins: int  # levels available (times channels for a per-channel grid)
+    bins_used: int  # distinct codes taken (summed over channels / blocks for those grids)
+    n_bins: int  # levels available (times channels / blocks for those grids)
 
     @property
     def used_fraction(self) -> float:
@@ -138,6 +139,8 @@ def grid_usage(x: torch.Tensor, grid: UniformGrid) -> GridUsage:
     x, _ = as_input(x)
     if x.numel() == 0:
         raise ValueError("x is empty")
+    if isinstance(grid, UniformGrid) and grid.blocked:
+        return _block_usage(x, grid)
     s, o = grid_params(x, grid)
     n = x.numel()
     with torch.no_grad():
@@ -173,3 +176,21 @@ def _usage_counts(rows: torch.Tensor, s: torch.Tensor, o: torch.Tensor, grid: Un
             seen = torch.bincount(codes.reshape(-1), minlength=(r1 - r0) * k)
             used[r0 * k : r1 * k] |= seen > 0
     return int(lo), int(hi), int(used.sum())
+
+
+def _block_usage(x: torch.Tensor, grid: UniformGrid) -> GridUsage:
+    """:func:`grid_usage` of a block grid: every value tagged with its block's index (repeated
+    over the block like the parameters), codes counted per block in one ``bincount``."""
+    n, k = x.numel(), grid.n_levels
+    with torch.no_grad():
+        s, o = grid_params(x, grid)
+        axis = block_axis(x, grid)
+        t = (x - o) / s
+        lo = int((t < grid.qmin - 0.5).sum())
+        hi = int((t > grid.qmax + 0.5).sum())
+        n_b = grid.scale.numel()
+        ids = torch.arange(n_b, device=x.device).reshape(grid.scale.shape)
+        ids = expand_blocks(ids, axis, grid.block_size, x.shape[axis])
+        codes = t.round_().clamp_(grid.qmin, grid.qmax).to(torch.int64) - grid.qmin + ids * k
+        used = int((torch.bincount(codes.reshape(-1), minlength=n_b * k) > 0).sum())
+    return GridUsage((lo + hi) / n, lo / n, hi / n, used, n_b * k)

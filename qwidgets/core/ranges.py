@@ -32,6 +32,7 @@ from numbers import Real
 
 import torch
 
+from .blocks import BlockRows, check_block_size, round_scales
 from .cell_sums import SortedRows
 from .checks import as_input, check_axis, check_bits, check_choice
 from .clip_search import GridSpec, GridSpecs, search_asymmetric, search_sample, search_symmetric
@@ -53,6 +54,7 @@ def fit_range(
     symmetric: bool = True,
     style: str = "midtread",
     axis: int | None = None,
+    block_size: int | None = None,
     percentile: float = 99.99,
     rules: DeviceRules | None = None,
     role: str = "weight",
@@ -74,7 +76,14 @@ def fit_range(
     style : ``"midtread"`` (a grid point at zero) or ``"midrise"`` (zero midway between two
         grid points, the classic equally spaced quantizer)
     axis : None for one grid for the whole tensor, or the axis of per-channel grids. Weights
-        of Linear / Conv layers are quantized per output channel along axis 0.
+        of Linear / Conv layers are quantized per output channel along axis 0. With
+        ``block_size``, the blocked axis (the input axis: 1 for a Linear or Conv weight)
+    block_size : None, or ``g``: one grid per block of ``g`` consecutive values along ``axis``
+        (the last block may be short), every block fitted on its own values exactly as a
+        per-tensor fit of that block would be, all blocks at once (blocks are the rows of the
+        search). The scales are rounded to float16 where they are stored at 16 bits
+        (``rules.scale_bits``, 16 without rules), so the scale stored is the scale used; the
+        offset keeps its ratio to the scale (an integer zero point stays one).
     percentile : in (0, 100], used by ``method="percentile"``
     rules : :class:`DeviceRules` the grid must obey (None: none). ``bits`` must be in the
         ``role``'s menu, and options that conflict with the rules are refused; with
@@ -96,10 +105,12 @@ def fit_range(
     (0.3333, 0.0, True)
     >>> [round(v, 4) for v in fit_range(torch.tensor([[0.0, 2.0], [1.0, 3.0]]), 2, "minmax", axis=0).scale.tolist()]
     [0.6667, 1.0]
+    >>> fit_range(torch.tensor([[1.0, 2.0, 3.0, -7.0, 0.5]]), 4, "minmax", axis=1, block_size=2).scale.tolist()
+    [[0.28564453125, 1.0, 0.0714111328125]]
     """
     bits = check_bits(bits)
     return fit_ranges(x, (bits,), method, signed=signed, symmetric=symmetric, style=style, axis=axis,
-                      percentile=percentile, rules=rules, role=role)[0]
+                      block_size=block_size, percentile=percentile, rules=rules, role=role)[0]
 
 
 def fit_ranges(
@@ -111,6 +122,7 @@ def fit_ranges(
     symmetric: bool = True,
     style: str = "midtread",
     axis: int | None = None,
+    block_size: int | None = None,
     percentile: float = 99.99,
     rules: DeviceRules | None = None,
     role: str = "weight",
@@ -127,8 +139,8 @@ def fit_ranges(
     >>> all(torch.equal(g.scale, fit_range(x, b, "mse", axis=0).scale) for g, b in zip(grids, (2, 4, 8)))
     True
     """
-    return _fit_ranges(x, bits, method, signed, symmetric, style, axis, percentile, rules, role,
-                       check=True)
+    return _fit_ranges(x, bits, method, signed, symmetric, style, axis, block_size, percentile, rules,
+                       role, check=True)
 
 
 def fit_ranges_unchecked(x: torch.Tensor, bits: Sequence[int], method: str = "mse",
@@ -142,17 +154,18 @@ def fit_ranges_unchecked(x: torch.Tensor, bits: Sequence[int], method: str = "ms
     return _fit_ranges(x, bits, method, **{**_FIT_DEFAULTS, **options}, check=False)
 
 
-_FIT_DEFAULTS = dict(signed=None, symmetric=True, style="midtread", axis=None, percentile=99.99,
-                     rules=None, role="weight")  # fit_ranges' keywords and their defaults
+_FIT_DEFAULTS = dict(signed=None, symmetric=True, style="midtread", axis=None, block_size=None,
+                     percentile=99.99, rules=None, role="weight")  # fit_ranges' keywords and their defaults
 
 
-def _fit_ranges(x, bits, method, signed, symmetric, style, axis, percentile, rules, role, *,
-                check: bool) -> list[UniformGrid]:
+def _fit_ranges(x, bits, method, signed, symmetric, style, axis, block_size, percentile, rules,
+                role, *, check: bool) -> list[UniformGrid]:
     if isinstance(bits, (str, bytes)) or not isinstance(bits, Sequence):
         raise TypeError(f"bits must be a sequence of ints in 1..16, got {bits!r}")
     bits = [check_bits(b, "bits") for b in bits]
     fitter = RangeFitter(x, method, signed=signed, symmetric=symmetric, style=style, axis=axis,
-                         percentile=percentile, rules=rules, role=role, check_finite=check)
+                         block_size=block_size, percentile=percentile, rules=rules, role=role,
+                         check_finite=check)
     return fitter.fit_many(bits)
 
 
@@ -176,10 +189,11 @@ class RangeFitter:
 
     def __init__(self, x: torch.Tensor, method: str = "mse", *, signed: bool | None = None,
                  symmetric: bool = True, style: str = "midtread", axis: int | None = None,
-                 percentile: float = 99.99, rules: DeviceRules | None = None,
-                 role: str = "weight", check_finite: bool = True):
+                 block_size: int | None = None, percentile: float = 99.99,
+                 rules: DeviceRules | None = None, role: str = "weight", check_finite: bool = True):
         method = check_choice(method, METHODS, "method")
         style = check_choice(style, STYLES, "style")
+        block_size = check_block_size(block_size)
         self.rules, self.role = check_rules(rules), role
         if self.rules is not None:
             symmetric, style, axis = rules.fit_options(role, symmetric=symmetric, style=style, axis=axis)
@@ -187,25 +201,33 @@ class RangeFitter:
             raise TypeError(f"signed must be None, True or False, got {signed!r}")
         if not isinstance(symmetric, bool):
             raise TypeError(f"symmetric must be True or False, got {symmetric!r}")
+        if block_size is not None and axis is None:
+            raise ValueError(f"block_size={block_size} needs axis, the blocked axis (1 for a Linear "
+                             "or Conv weight, 0 for a weight stored [in, out])")
         self._pct = _check_percentile(percentile)
         x, _ = as_input(x, check_finite=bool(check_finite))
         if x.numel() == 0:
             raise ValueError(f"x is empty (shape {tuple(x.shape)}); there is nothing to fit")
-        x2d, self.axis = _channels_first(x.detach(), axis)
+        if block_size is None:
+            x2d, self.axis = _channels_first(x.detach(), axis)
+            self._blocks, parts = None, [x2d]
+        else:  # blocks as rows: one 2-D view of the full blocks, one of the short last blocks
+            self.axis = check_axis(axis, x.dim()) % x.dim()
+            self._blocks = BlockRows(x.detach(), self.axis, block_size)
+            parts = self._blocks.parts
         if signed is None:
-            signed = bool(x2d.min() < 0)
+            signed = bool(x.detach().min() < 0)
         self.x, self.method, self.signed, self.symmetric, self.style = x, method, signed, symmetric, style
+        self.block_size = block_size
+        self._scale_bits = 16 if self.rules is None else self.rules.scale_bits
         with torch.no_grad():
-            self._xf = x2d.float()
-            self._sample = search_sample(self._xf) if method == "mse" else None
-        self._rows: SortedRows | None = None  # the sorted sample, made by the first width that sorts
-        self._extent = None
+            self._parts = [_RowSet(p.float(), method) for p in parts]
         self.digest: str | None = None  # of x's values, set by whoever needs it (grid_cache)
 
     def options_key(self) -> tuple:
         """Every option besides the values and the bit width that shapes this fitter's grids."""
         return (self.method, self.signed, self.symmetric, self.style, self.axis, self._pct,
-                self.rules, self.role)
+                self.rules, self.role, self.block_size, self._scale_bits)
 
     def fit(self, bits: int) -> UniformGrid:
         """The grid ``fit_range(x, bits, ...)`` gives, with the shared parts reused."""
@@ -218,31 +240,54 @@ class RangeFitter:
             bs = [self.rules.check_bits(b, self.role) for b in bs]
         if not bs:
             return []
-        specs = GridSpecs(bs, self.signed, self.symmetric, self.style, self._xf.device)
-        method = self.method
+        specs = GridSpecs(bs, self.signed, self.symmetric, self.style, self._parts[0].xf.device)
         with torch.no_grad():
-            if method == "mse" and self._rows is None:
-                self._rows = SortedRows(self._sample)
-            if self.symmetric:
-                if self._extent is None:
-                    self._extent = _sym_extent(self._xf, specs.specs[0], method, self._pct)
-                r = self._extent
-                r = search_symmetric(self._rows, specs, r) if method == "mse" else r[:, None].expand(-1, len(bs))
-                pairs = [spec.symmetric_grid(r[:, j]) for j, spec in enumerate(specs.specs)]
-            else:
-                if self._extent is None:
-                    self._extent = _asym_extent(self._xf, method, self._pct)
-                lo, hi = self._extent
-                if method == "mse":
-                    lo, hi = search_asymmetric(self._rows, specs, lo, hi)
-                else:
-                    lo, hi = lo[:, None].expand(-1, len(bs)), hi[:, None].expand(-1, len(bs))
-                pairs = [spec.asymmetric_grid(lo[:, j], hi[:, j]) for j, spec in enumerate(specs.specs)]
-            grids = [_make_grid(spec, s, o, self.axis, self.x.device)
-                     for spec, (s, o) in zip(specs.specs, pairs, strict=True)]
+            fitted = [p.pairs(specs, self.symmetric, self._pct) for p in self._parts]  # per part, per width
+            grids = []
+            for j, spec in enumerate(specs.specs):
+                if self._blocks is None:
+                    s, o = fitted[0][j]
+                    grids.append(_make_grid(spec, s, o, self.axis, self.x.device))
+                    continue
+                s, o = (self._blocks.assemble(*v) for v in zip(*(f[j] for f in fitted), strict=True))
+                s, o = round_scales(s, o, self._scale_bits)
+                grids.append(UniformGrid(spec.bits, s.to(self.x.device, torch.float32),
+                                         o.to(self.x.device, torch.float32) + 0.0, signed=self.signed,
+                                         axis=self.axis, block_size=self.block_size))
         if self.rules is not None and self.rules.pow2_scales:
-            grids = [power_of_two_fit(self.x, g, method) for g in grids]
+            grids = [power_of_two_fit(self.x, g, self.method) for g in grids]
         return grids
+
+
+class _RowSet:
+    """One 2-D view (rows: channels or blocks) with what every width reuses: the extents, the
+    MSE search sample and its sorted copy with prefix sums (made by the first search)."""
+
+    def __init__(self, xf: torch.Tensor, method: str):
+        self.xf, self.method = xf, method
+        self.sample = search_sample(xf) if method == "mse" else None
+        self.rows: SortedRows | None = None
+        self.extent = None
+
+    def pairs(self, specs: GridSpecs, symmetric: bool, pct: float) -> list:
+        """(scale, offset) per row, float64, for each width of ``specs``."""
+        method, n = self.method, len(specs.specs)
+        if method == "mse" and self.rows is None:
+            self.rows = SortedRows(self.sample)
+        if symmetric:
+            if self.extent is None:
+                self.extent = _sym_extent(self.xf, specs.specs[0], method, pct)
+            r = self.extent
+            r = search_symmetric(self.rows, specs, r) if method == "mse" else r[:, None].expand(-1, n)
+            return [spec.symmetric_grid(r[:, j]) for j, spec in enumerate(specs.specs)]
+        if self.extent is None:
+            self.extent = _asym_extent(self.xf, method, pct)
+        lo, hi = self.extent
+        if method == "mse":
+            lo, hi = search_asymmetric(self.rows, specs, lo, hi)
+        else:
+            lo, hi = lo[:, None].expand(-1, n), hi[:, None].expand(-1, n)
+        return [spec.asymmetric_grid(lo[:, j], hi[:, j]) for j, spec in enumerate(specs.specs)]
 
 
 def _make_grid(spec: GridSpec, scale: torch.Tensor, offset: torch.Tensor, axis, device) -> UniformGrid:

@@ -32,7 +32,15 @@ import torch
 import torch.nn.functional as F
 
 from .checks import as_input, check_positive
-from .grid import UniformGrid, code_values, grid_params, noise_param, zero_point_param
+from .grid import (
+    UniformGrid,
+    channel_shape,
+    code_values,
+    grid_params,
+    param_layout,
+    place_param,
+    zero_point_param,
+)
 
 __all__ = ["bin_probabilities", "expected_quantize", "relaxed_quantize"]
 
@@ -263,3 +271,23 @@ def _code_mean(weights: torch.Tensor, start: torch.Tensor) -> torch.Tensor:
     k = weights.shape[0]
     j = torch.arange(k, dtype=weights.dtype, device=weights.device)
     return start + torch.matmul(j, weights.reshape(k, -1)).reshape(weights.shape[1:])
+
+
+def noise_param(noise, x: torch.Tensor, grid: UniformGrid, name: str = "noise") -> torch.Tensor:
+    """The logistic noise width as a tensor broadcastable against ``x`` (scalar, per channel
+    or per block)."""
+    check_positive(noise, name)
+    if isinstance(noise, torch.Tensor) and noise.numel() > 1:
+        if grid.blocked:
+            if noise.numel() != grid.scale.numel():
+                raise ValueError(f"{name} has {noise.numel()} values but the grid has "
+                                 f"{grid.scale.numel()} blocks; give one, or one per block")
+            return place_param(noise, x, param_layout(x, grid), x.dtype)
+        shape = channel_shape(x, grid)
+        if shape is None:
+            raise ValueError(f"{name} has {noise.numel()} values but the grid is per-tensor; give one")
+        n = shape[grid.axis % x.dim()]
+        if noise.numel() != n:
+            raise ValueError(f"{name} has {noise.numel()} values but the tensor has {n} channels")
+        return noise.to(device=x.device, dtype=x.dtype).reshape(shape)
+    return place_param(noise, x, None, x.dtype)

@@ -12,7 +12,7 @@ from __future__ import annotations
 import torch
 
 from .checks import as_input
-from .grid import UniformGrid, code_values, grid_params, zero_point_param
+from .grid import UniformGrid, block_axis, code_values, grid_params, zero_point_param
 
 __all__ = ["quantize", "quantize_unchecked", "to_codes", "from_codes"]
 
@@ -41,14 +41,19 @@ def quantize_unchecked(x: torch.Tensor, grid: UniformGrid, out_dtype: torch.dtyp
         out_dtype = x.dtype if x.is_floating_point() else torch.float32
     if x.dtype in (torch.float16, torch.bfloat16) or not x.is_floating_point():
         x = x.float()
-    s, o = grid_params(x, grid)
+    view = _block_view(x, grid)
+    split = view is not None  # blocks as a new axis: parameters broadcast, no per-value copy
+    shape = x.shape
+    s, o = grid_params(x, grid, split=split)
+    shift = zero_point_param(x, grid, split=split)
+    if split:
+        x = x.unflatten(view[0], view[1:])
     if x.requires_grad or s.requires_grad or o.requires_grad:
         k = torch.clamp(torch.round((x - o) / s), grid.qmin, grid.qmax)
-        return code_values(k, s, o, zero_point_param(x, grid)).to(out_dtype)
-    shift = zero_point_param(x, grid)
+        return code_values(k, s, o, shift).to(out_dtype).reshape(shape)
     if shift is None:
         shift = (None, o)
-    return _chunked(x, s, o, grid.qmin, grid.qmax, shift).to(out_dtype)
+    return _chunked(x, s, o, grid.qmin, grid.qmax, shift).to(out_dtype).reshape(shape)
 
 
 def to_codes(x: torch.Tensor, grid: UniformGrid) -> torch.Tensor:
@@ -89,6 +94,17 @@ def from_codes(codes: torch.Tensor, grid: UniformGrid, dtype: torch.dtype = torc
 
 
 # ---------------------------------------------------------------------------- internals
+def _block_view(x: torch.Tensor, grid: UniformGrid):
+    """``(axis, blocks, g)`` for a block grid whose blocked axis is a multiple of ``g``: ``x``
+    can then be viewed as ``(..., blocks, g, ...)`` and the parameters broadcast over it (None
+    otherwise: they are repeated over each block)."""
+    if not isinstance(grid, UniformGrid) or not grid.blocked or x.dim() == 0:
+        return None
+    axis = block_axis(x, grid)
+    n, g = x.shape[axis], grid.block_size
+    return None if n % g or g == 1 else (axis, n // g, g)
+
+
 def _chunked(x, s, o, qmin, qmax, shift) -> torch.Tensor:
     """round / clamp in cache-sized slices, each element read and written once; with
     ``shift = (Z, rest)`` (Z the grid's zero point, or rest its offset) also rescale to values."""
