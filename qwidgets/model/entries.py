@@ -117,6 +117,7 @@ class Coverage:
     skipped: tuple = ()
     total_bits: int = 0
     float_activations: tuple = ()  # activations left in float (residual additions, norms, ...)
+    skipped_options: tuple = ()  # (entry, why it skipped a scanned option: blocks longer than its input axis)
 
     @property
     def fraction(self) -> float:
@@ -127,6 +128,8 @@ class Coverage:
              "skipped": [[n, r] for n, r in self.skipped], "total_bits": self.total_bits}
         if self.float_activations:
             d["float_activations"] = list(self.float_activations)
+        if self.skipped_options:
+            d["skipped_options"] = [[n, r] for n, r in self.skipped_options]
         return d
 
     def __str__(self) -> str:
@@ -139,6 +142,9 @@ class Coverage:
             shown = "; ".join(self.float_activations[:4])
             more = f"; ... ({len(self.float_activations) - 4} more)" if len(self.float_activations) > 4 else ""
             s += f"; activations left in float: {shown}{more}"
+        if self.skipped_options:
+            s += "; options skipped: " + ", ".join(f"{n} ({r})" for n, r in self.skipped_options[:6])
+            s += f", ... ({len(self.skipped_options) - 6} more)" if len(self.skipped_options) > 6 else ""
         return s
 
 

@@ -36,8 +36,11 @@ def grid_to_dict(g: UniformGrid | None) -> dict | None:
         zp = int(z) if isinstance(z, int) else [int(v) for v in z.reshape(-1).tolist()]
         if isinstance(zp, list) and isinstance(scale, list) and len(zp) == 1:
             zp = zp * len(scale)
-    return {"bits": g.bits, "signed": g.signed, "axis": g.axis, "scale": scale, "offset": offset,
-            "zero_point": zp}
+    out = {"bits": g.bits, "signed": g.signed, "axis": g.axis, "scale": scale, "offset": offset,
+           "zero_point": zp}
+    if g.blocked:  # the ONNX blocked layout: scale, offset, zero_point flat in the order of shape
+        out.update(block_size=g.block_size, shape=list(g.scale.shape))
+    return out
 
 
 class FieldError(ValueError):
@@ -98,7 +101,7 @@ def number_field(v, where: str, positive: bool = False) -> float:
 def grid_from_dict(d, where: str, channels: int | None) -> UniformGrid | None:
     if d is None:
         return None
-    check_fields(d, _GRID, where)
+    check_fields(d, _GRID, where, optional=("block_size", "shape") if "block_size" in d else ())
     bits = int_field(d["bits"], f"{where}.bits", 1, MAX_BITS)
     if not isinstance(d["signed"], bool):
         raise FieldError(f"{where}.signed must be true or false, got {kind_of(d['signed'])}")
@@ -125,13 +128,21 @@ def grid_from_dict(d, where: str, channels: int | None) -> UniformGrid | None:
     if len(set(lengths.values())) != 1:
         raise FieldError(f"{where} per-channel lists differ in length: {lengths}")
     n = next(iter(lengths.values()))
+    block = _block_fields(d, where, n)
+    if block is not None:
+        channels = None  # the caller checks the block shape against the weight
     if channels is not None and n != channels:
         raise FieldError(f"{where}.scale has {n} values but the weight has {channels} "
                          f"channels along axis {axis}")
     scale = [number_field(v, f"{where}.scale[{i}]", positive=True) for i, v in enumerate(lists["scale"])]
     offset = [number_field(v, f"{where}.offset[{i}]") for i, v in enumerate(lists["offset"])]
-    grid = UniformGrid(bits, torch.tensor(scale, dtype=torch.float32),
-                       torch.tensor(offset, dtype=torch.float32), signed=d["signed"], axis=axis)
+    shape = (-1,) if block is None else block[1]
+    try:
+        grid = UniformGrid(bits, torch.tensor(scale, dtype=torch.float32).reshape(shape),
+                           torch.tensor(offset, dtype=torch.float32).reshape(shape), signed=d["signed"],
+                           axis=axis, block_size=None if block is None else block[0])
+    except ValueError as e:
+        raise FieldError(f"{where}: {e}") from None
     if "zero_point" in lists:
         for i, z in enumerate(lists["zero_point"]):
             z = int_field(z, f"{where}.zero_point[{i}]")
@@ -139,6 +150,21 @@ def grid_from_dict(d, where: str, channels: int | None) -> UniformGrid | None:
                 raise FieldError(f"{where}.zero_point[{i}] = {z} does not match "
                                  f"offset / scale (offset {offset[i]}, scale {scale[i]})")
     return grid
+
+
+def _block_fields(d: dict, where: str, n: int):
+    """(block_size, shape) of a block grid's fields, or None for a per-channel grid."""
+    if "block_size" not in d:
+        return None
+    g = int_field(d["block_size"], f"{where}.block_size", 1)
+    shape = d.get("shape")
+    if not isinstance(shape, list) or not shape:
+        raise FieldError(f"{where}.shape must be a non-empty list of sizes, got {kind_of(shape)}")
+    shape = tuple(int_field(v, f"{where}.shape[{i}]", 1) for i, v in enumerate(shape))
+    if math.prod(shape) != n:
+        raise FieldError(f"{where}.shape {list(shape)} holds {math.prod(shape)} blocks but the "
+                         f"lists hold {n} values")
+    return g, shape
 
 
 def _zp_matches(z: int, grid: UniformGrid, i: int | None) -> bool:

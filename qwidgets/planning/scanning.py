@@ -27,6 +27,7 @@ sample of each layer's inputs (see :class:`qwidgets.model.statistics.RangeSample
 from __future__ import annotations
 
 import copy
+import dataclasses
 import threading
 import warnings
 from collections.abc import Callable, Sequence
@@ -50,6 +51,7 @@ from ..model.taps import fastpath_off, tapping
 from ..model.usage import entries_on
 from .device_checks import scan_bits
 from .distribute import merge_shares, worker_count
+from .granularity import block_skip_reason, grid_options, scan_granularity, split_granularities
 from .model_scope import model_scope as _model_scope
 from .passes import (
     attention_scope_powers,
@@ -72,7 +74,8 @@ def scan(model: nn.Module, data: Data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8),
          output: Callable | None = None, estimate: str = "exact",
          batch_size: int | None = None, executor: Executor | None = None,
          rules: DeviceRules | None = None, input_bits: Sequence[int] = (4, 6, 8),
-         inputs: int | str | Callable | None = None) -> SensitivityTable:
+         inputs: int | str | Callable | None = None,
+         granularity: Sequence | None = None) -> SensitivityTable:
     """Measure every quantizable weight (entry), quantized alone, at every bit width in ``bits``.
 
     Parameters
@@ -116,6 +119,12 @@ def scan(model: nn.Module, data: Data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8),
         skipped with a warning; weights per tensor where the device needs it)
     inputs : an index, a key or a function picking the model's inputs from each batch
         (``inputs=0`` for a ``DataLoader`` of ``(x, y)`` pairs)
+    granularity : the weight grids to measure, each at every width: ``"tensor"`` (one scale),
+        ``"channel"`` (one per output channel) or an int ``g`` (one per block of ``g`` weights
+        along the input axis), e.g. ``("channel", 32, 128)``. None: ``("channel",)``, or
+        ``("tensor",)`` with ``per_channel=False`` (giving both is an error). The first option
+        is the table's default one; entries whose input axis is shorter than a block skip
+        that option (NaN SQNR, no grids), and :attr:`~SensitivityTable.coverage` says so.
 
     The table's :attr:`~SensitivityTable.coverage` says how many weight values were scanned
     and why the others were not.
@@ -148,20 +157,27 @@ def scan(model: nn.Module, data: Data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8),
     ibits = scan_bits(_check_bits_tuple(input_bits, "input_bits"), check_rules(rules), "input") \
         if separate else ()
     bits = scan_bits(bits, check_rules(rules), "weight" if separate else quantize)
+    grans = scan_granularity(granularity, per_channel, rules, quantize)
     if rules is not None:
         per_channel = per_channel and rules.per_channel_weights
+    if quantize != "input":
+        per_channel = grans[0] == "channel"
     options = dict(rules=rules, bits=bits, quantize=quantize, method=method, per_channel=per_channel, scope=scope,
-                   max_samples=max_samples, output=output, estimate=estimate, batch_size=batch_size)
+                   max_samples=max_samples, output=output, estimate=estimate, batch_size=batch_size,
+                   granularity=grans)
     if not separate:
-        return _noted(SensitivityTable(**_scan_parts(model, data, options, progress, executor)))
+        return _noted(SensitivityTable(**split_granularities(_scan_parts(model, data, options, progress,
+                                                                         executor))))
     # each side quantized alone: a weight scan at ``bits`` and an input scan at ``input_bits``
     if executor is None:  # one checked source for both sides (workers get the data itself)
         data = data_source(model, cut_batches(data, batch_size), max_samples)
-    weights = _scan_parts(model, data, {**options, "quantize": "weight"}, progress, executor)
+    weights = split_granularities(_scan_parts(model, data, {**options, "quantize": "weight"}, progress,
+                                              executor))
     try:
         # the weight side's survey checked every layer input on this data: not again
         inputs = _scan_parts(model, data, {**options, "quantize": "input", "bits": ibits,
-                                           "inputs_checked": True}, progress, executor)
+                                           "inputs_checked": True, "granularity": ("tensor",)},
+                             progress, executor)
     except NoInputEntries:
         inputs = None  # only weight-only entries: no input rows at all
     return _noted(SensitivityTable(**_join_sides(weights, inputs, ibits)))
@@ -295,21 +311,26 @@ def _scan_entries(model, source, first, entries, usage, options, progress, share
 
     names = [f.entry.name for f in facts]
     info, wgrids, igrids, configs = {}, {}, {}, {}
+    grans = options["granularity"] if qw else (None,)
+    skipped_opts = []  # (entry, why a granularity option was skipped)
     with torch_threads("fit"):  # many small operations: one thread (see threads.py)
         for f in facts:
             e = f.entry
             act = e.kind == "activation"
             w = None if act else e.parameter(model).detach()
-            # one sort of the weight serves every bit width (the same grids as fitting each alone)
-            # fitted once per process for these values and options (grid_cache), every width together
-            wg = fit_cached(RangeFitter(w, method, axis=e.axis if per_channel else None, rules=rules),
-                            bits) if (qw and not act) else None
+            # one sort of the weight serves every bit width (the same grids as fitting each alone),
+            # fitted once per process for these values and options (grid_cache), every width
+            # together; one set of grids per granularity option, None where the entry skips it
+            # (an activation entry has no weight: None, its rows measured as they are)
+            wg = [_fit_option(w, e, opt, bits, method, rules, skipped_opts) for opt in grans] \
+                if (qw and not act) else None
             ig = [f.inputs.fit(b, method, rules=rules, role="input") for b in bits] \
                 if (qi and f.has_input) else None
             wgrids[e.name] = wg
             igrids[e.name] = ig if ig is not None else [None] * len(bits)
-            configs[e.name] = [(None if wg is None else wg[j], None if ig is None else ig[j])
-                               for j in range(len(bits))]
+            # columns: every width of the first option, then of the next, ...
+            configs[e.name] = [(None if g is None else g[j], None if ig is None else ig[j])
+                               for g in (wg or [None] * len(grans)) for j in range(len(bits))]
             info[e.name] = {"type": e.type_name, "weight_shape": e.shape, "input_shape": f.input_shape,
                             "macs": int(f.macs), "model_pass": "-", "kind": e.kind, "axis": e.axis,
                             "param": e.param, "has_input": bool(f.has_input),
@@ -322,15 +343,18 @@ def _scan_entries(model, source, first, entries, usage, options, progress, share
         layer_sq = _layer_scope(model, source, facts, configs) if scope != "model" else None
         model_sq, notes = None, []
         if scope != "layer":
-            model_sq = _model_scope(model, source, found, facts, configs, len(bits), info,
+            model_sq = _model_scope(model, source, found, facts, configs, len(bits) * len(grans), info,
                                     estimate=estimate, output=output, progress=progress, share=share,
                                     notes=notes)
     cov = coverage_of(model, [f.entry for f in facts], skipped, notes=usage.unusable,
                       float_activations=usage.float_activations)
+    if skipped_opts:
+        cov = dataclasses.replace(cov, skipped_options=tuple(skipped_opts))
     return dict(layers=names, bits=bits, quantize=quantize, method=method,
                 per_channel=per_channel, fingerprint=model_fingerprint(model), info=info,
                 layer_sqnr=layer_sq, model_sqnr=model_sq,
                 weight_grids=wgrids if qw else None, input_grids=igrids if qi else None,
+                granularities=grans if qw else None,
                 n_samples=found.n_samples, coverage=cov,
                 estimate=estimate if scope != "layer" else "exact", notes=notes)
 
@@ -373,6 +397,15 @@ def _layer_scope(model, source, facts, configs) -> np.ndarray:
         for batch in source:
             running.run_with_hooks(model, batch, {m: measure for m in with_input}, pre=True)
     return np.array([[db(signal[f.entry.name], v) for v in noise[f.entry.name]] for f in facts])
+
+
+def _fit_option(w, e, option, bits, method, rules, notes: list):
+    """The grids of one granularity option at every width, or None when the entry skips it."""
+    why = block_skip_reason(e.shape, e.axis, option) if isinstance(option, int) else None
+    if why is not None:
+        notes.append((e.name, why))
+        return None
+    return fit_cached(RangeFitter(w, method, rules=rules, **grid_options(option, e.axis)), bits)
 
 
 def _check_bits_tuple(bits, name: str = "bits") -> tuple[int, ...]:

@@ -11,12 +11,11 @@ from typing import Any
 import numpy as np
 from numpy.typing import ArrayLike
 
-from ..core.checks import check_bits
 from ..core.grid import UniformGrid
-from ..core.renamed import take_renamed
 from ..core.setting import LayerSetting
 from ..model.entries import Coverage
 from .files import read_text, write_text
+from .granularity import check_granularity
 from .plan import Plan
 from .synthetic import synthetic_table
 from .table_html import table_html, table_rows
@@ -41,7 +40,8 @@ class SensitivityTable:
                  input_grids: Mapping[str, Sequence[UniformGrid]] | None, n_samples: int,
                  coverage: Coverage | None = None, input_bits: Sequence[int] = (),
                  input_layer_sqnr: np.ndarray | None = None, input_model_sqnr: np.ndarray | None = None,
-                 estimate: str = "exact", notes: Sequence[str] = ()):
+                 estimate: str = "exact", notes: Sequence[str] = (), granularities: Sequence | None = None,
+                 granularity_rows: Mapping | None = None):
         self.notes = tuple(str(n) for n in notes)  #: slower paths the scan took, why (also warned)
         if estimate not in ESTIMATES:
             raise ValueError(f"estimate must be one of {ESTIMATES}, got {estimate!r}")
@@ -88,6 +88,38 @@ class SensitivityTable:
                 raise ValueError(f"input_{scope}_sqnr must be given exactly when {scope}_sqnr is")
             self._input_sqnr[scope] = None if arr is None else np.asarray(arr, dtype=float).copy()
         self._settings: dict = {}
+        self._set_granularities(granularities, granularity_rows)
+
+    def _set_granularities(self, granularities, rows) -> None:
+        """The weight granularity options (the first one is the rows above) and the rows of
+        the others: ``rows[option] = {"layer_sqnr", "model_sqnr", "weight_grids"}``."""
+        grans = check_granularity(granularities, self.per_channel)
+        rows = dict(rows or {})
+        if set(rows) != set(grans[1:]):
+            raise ValueError(f"granularity_rows must hold the options {list(grans[1:])} (the first, "
+                             f"{grans[0]!r}, is the table's own rows), got {list(rows)}")
+        self.granularities = grans  #: weight grid options measured: "tensor", "channel", block sizes
+        self._more = {}
+        shape = (len(self.layers), len(self.bits))
+        for opt, part in rows.items():
+            more = {}
+            for scope in ("layer", "model"):
+                arr = part.get(f"{scope}_sqnr")
+                if (arr is None) != (self._sqnr[scope] is None) or (arr is not None and np.shape(arr) != shape):
+                    raise ValueError(f"granularity_rows[{opt!r}]['{scope}_sqnr'] must be a {shape} array "
+                                     f"exactly when {scope}_sqnr is given")
+                more[scope] = None if arr is None else np.asarray(arr, dtype=float).copy()
+            g = part.get("weight_grids")
+            more["grids"] = None if g is None else {n: None if g.get(n) is None else list(g[n]) for n in self.layers}
+            self._more[opt] = more
+
+    def _weight_rows(self, granularity):
+        """(SQNR arrays by scope, weight grids by entry) of one granularity option."""
+        if granularity is None or granularity == self.granularities[0]:
+            return self._sqnr, self._grids["weight"]
+        if granularity not in self._more:
+            raise KeyError(f"granularity={granularity!r} was not scanned; scanned: {list(self.granularities)}")
+        return self._more[granularity], self._more[granularity]["grids"]
 
     # ------------------------------------------------------------------ look-ups
     def _row(self, layer: str) -> int:
@@ -130,24 +162,29 @@ class SensitivityTable:
                              "quantize='separate' to measure inputs on their own")
         return source
 
-    def sqnr_array(self, scope: str = "model", source: str = "weight") -> np.ndarray | None:
+    def sqnr_array(self, scope: str = "model", source: str = "weight", granularity=None) -> np.ndarray | None:
         """SQNR in dB as an (entries x widths) array (a copy), or None when that scope was not
         scanned. ``source="input"`` of a ``quantize="separate"`` table: the input rows, one
         column per input width (NaN for entries with no input rows); on other tables the one
-        set of rows, measured with the table's ``quantize``."""
+        set of rows, measured with the table's ``quantize``. ``granularity``: the weight rows
+        of that option of :attr:`granularities` (None: the first)."""
         if scope not in ("layer", "model"):
             raise ValueError(f"scope must be 'layer' or 'model', got {scope!r}")
         source = self._source(source)
+        if source == "input" and granularity is not None:
+            raise ValueError("granularity= selects weight rows; input rows have one granularity")
         arr = self._input_sqnr[scope] if source == "input" and self.quantize == "separate" \
-            else self._sqnr[scope]
+            else self._weight_rows(granularity)[0][scope]
         return None if arr is None else arr.copy()
 
-    def sqnr_db(self, layer: str, bits: int, scope: str = "model", source: str = "weight") -> float:
+    def sqnr_db(self, layer: str, bits: int, scope: str = "model", source: str = "weight",
+                granularity=None) -> float:
         """SQNR (dB) of ``layer``'s output (scope ``"layer"``) or the model's output (``"model"``)
         with only that entry quantized at ``bits``: its weights (``source="weight"``) or its
         input (``"input"``, tables scanned with ``quantize="separate"``; other tables have one
-        set of rows, measured with their ``quantize``)."""
-        arr = self.sqnr_array(scope, source)
+        set of rows, measured with their ``quantize``). ``granularity``: the weight grids of
+        that option of :attr:`granularities` (None: the first); NaN where the entry skipped it."""
+        arr = self.sqnr_array(scope, source, granularity)
         if arr is None:
             raise ValueError(f"the table holds no {scope}-scope SQNR; scan with scope={scope!r} or 'both'")
         if source == "input" and self.quantize == "separate" and not self.has_input_rows(layer):
@@ -229,9 +266,10 @@ class SensitivityTable:
         """How the model scope was measured: ``"stacked"``, ``"per bit width"`` or ``"-"``."""
         return self._info[self.layers[self._row(layer)]].get("model_pass", "-")
 
-    def weight_grid(self, layer: str, bits: int) -> UniformGrid | None:
-        """The weight grid fitted for ``layer`` at ``bits`` (None if weights were not scanned)."""
-        rows = (self._grids["weight"] or {}).get(self.layers[self._row(layer)])
+    def weight_grid(self, layer: str, bits: int, granularity=None) -> UniformGrid | None:
+        """The weight grid fitted for ``layer`` at ``bits`` (None if weights were not scanned, or
+        the entry skipped that ``granularity``; None: the first of :attr:`granularities`)."""
+        rows = (self._weight_rows(granularity)[1] or {}).get(self.layers[self._row(layer)])
         return None if rows is None else rows[self._col(bits)]
 
     def input_grid(self, layer: str, bits: int) -> UniformGrid | None:
@@ -265,53 +303,10 @@ class SensitivityTable:
         >>> p.bits, p.chosen_input_bits, s.input_bits
         ({'layer0': 2}, {'layer0': 8}, (4, 8))
         """
-        if renamed:
-            old = renamed.get("input_bits")  # chosen widths on a separate table, else BOPs' width
-            new = "chosen_input_bits" if isinstance(old, Mapping) or self.quantize == "separate" \
-                else "assumed_input_bits"
-            given = take_renamed(renamed, {"input_bits": new}, "SensitivityTable.make_plan")
-            chosen_input_bits = given.get("chosen_input_bits", chosen_input_bits)
-            assumed_input_bits = given.get("assumed_input_bits", assumed_input_bits)
-        if not isinstance(bits, Mapping):
-            raise TypeError(f"bits must be a mapping from entry name to bit width, got {type(bits).__name__}")
-        if not bits:
-            raise ValueError("bits must be a non-empty mapping from entry name to bit width")
-        unknown = [n for n in bits if n not in self._index]
-        if unknown:
-            raise KeyError(f"layers {unknown} are not in the table; layers: {self.layers}")
-        per_entry = isinstance(chosen_input_bits, Mapping)
-        if chosen_input_bits is not None and self.quantize != "separate":
-            raise ValueError("chosen_input_bits needs a table scanned with quantize='separate' "
-                             f"(this one: quantize={self.quantize!r})")
-        if per_entry:
-            extra = [n for n in chosen_input_bits if n not in bits]
-            if extra:
-                raise KeyError(f"chosen_input_bits names {extra}, which bits does not plan")
-        if assumed_input_bits is not None:
-            check_bits(assumed_input_bits, "assumed_input_bits")
-        settings, chosen = {}, {}
-        for name in self.layers:
-            if name not in bits:
-                continue
-            b = bits[name]
-            if self.quantize == "separate":
-                ib = chosen_input_bits.get(name) if per_entry else (
-                    chosen_input_bits if self.has_input_rows(name) else None)
-                if ib is not None and not self.has_input_rows(name):
-                    raise ValueError(f"chosen_input_bits[{name!r}]: {name!r} has no input rows")
-            else:
-                ib = b if self.quantize in ("input", "both") else None
-            settings[name] = self._setting(name, b, ib)
-            chosen[name] = int(b)
-        return Plan.unchecked(settings, chosen, fingerprint=self.fingerprint,
-                              weight_shapes={n: self._shape(n) for n in settings},
-                              macs={n: self._info[n]["macs"] for n in settings},
-                              assumed_input_bits=(None if self.quantize in ("input", "both")
-                                                  else assumed_input_bits),
-                              predicted_sqnr_db=predicted_sqnr_db,
-                              entries={n: self._entry_info(n) for n in settings},
-                              other_weight_bits=max(0, int(self.coverage.total_bits) - sum(
-                                  self._stored(n) for n in settings)))
+        from .table_plans import plan_from_table
+
+        return plan_from_table(self, bits, chosen_input_bits, assumed_input_bits, predicted_sqnr_db,
+                               renamed)
 
     def _entry_info(self, name: str) -> dict:
         """What a plan records of an entry (cached: a front's plans share it; read-only)."""

@@ -3,8 +3,10 @@
 from __future__ import annotations
 
 import json
+import math
 
 from .fields import FieldError, NonFinite, grid_to_dict, json_db
+from .granularity import option_label
 from .table_schema import TABLE_FORMAT, TABLE_VERSION, table_fields
 
 
@@ -31,13 +33,22 @@ def table_to_dict(self) -> dict:
             arr = self._input_sqnr[scope]
             entry[f"input_{scope}_sqnr_db"] = None if arr is None or not self.has_input_rows(name) \
                 else [json_db(v) for v in arr[i]]
+        if self._more:  # the rows of the other granularity options (NaN where skipped: null)
+            entry["granularity_rows"] = {option_label(opt): {
+                f"{scope}_sqnr_db": None if more[scope] is None else
+                [None if math.isnan(v) else json_db(v) for v in more[scope][i]]
+                for scope in ("layer", "model")} | {"weight_grids": None if more["grids"] is None else
+                                                     [grid_to_dict(x) for x in more["grids"][name]]}
+                for opt, more in self._more.items()}
         layers.append(entry)
     return {"format": TABLE_FORMAT, "version": TABLE_VERSION, "bits": list(self.bits),
             "input_bits": list(self._input_bits),
             "quantize": self.quantize, "method": self.method, "per_channel": self.per_channel,
             "fingerprint": self.fingerprint, "n_samples": self.n_samples,
             "coverage": self.coverage.to_dict(), "estimate": self.estimate, "layers": layers,
-            **({"notes": list(self.notes)} if self.notes else {})}
+            **({"notes": list(self.notes)} if self.notes else {}),
+            **({"granularities": [option_label(g) for g in self.granularities]}
+               if self.granularities != (("channel",) if self.per_channel else ("tensor",)) else {})}
 
 
 def table_from_text(cls, text: str):

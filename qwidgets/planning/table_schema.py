@@ -13,7 +13,12 @@ entry's input was scanned on its own). Optional entry fields: model_pass and kin
 axis (the weight's per-channel axis, default 0: with ``per_channel`` every weight grid has
 this axis, without it weight grids are whole-tensor, axis null), has_input (boolean),
 shared_with (a list of names), stored_bits (an integer or null) and digest (hex or null).
-Version 1 had no input_bits and no input rows.
+Version 1 had no input_bits and no input rows. Optional since: a top-level granularities (the
+weight grid options scanned, ``"tensor"``, ``"channel"`` or block sizes as digits; the first
+is the rows above, default ``["channel"]``, or ``["tensor"]`` without per_channel) and, when
+it names more than one, each entry's granularity_rows: for every other option an object of
+layer_sqnr_db / model_sqnr_db (null values where the entry skipped the option) and
+weight_grids (block grids with block_size and the shape of their scales).
 """
 
 from __future__ import annotations
@@ -22,6 +27,7 @@ import math
 
 import numpy as np
 
+from ..core.blocks import block_shape
 from ..core.checks import MAX_BITS
 from .fields import (
     FieldError,
@@ -35,6 +41,7 @@ from .fields import (
     string_field,
     string_list_field,
 )
+from .granularity import grid_options, option_from_label, option_label
 
 QUANTIZE_MODES = ("weight", "input", "both", "separate")
 SCOPES = ("layer", "model", "both")
@@ -58,7 +65,7 @@ def table_fields(d) -> dict:
         raise FieldError("expected a JSON object at the top level")
     version = d.get("version")
     keys = _TOP if version == 1 else _TOP + ("input_bits",)
-    if not set(keys) <= set(d) <= set(keys) | {"coverage", "estimate", "notes"}:
+    if not set(keys) <= set(d) <= set(keys) | {"coverage", "estimate", "notes", "granularities"}:
         raise FieldError(f"expected an object with fields {list(keys)} (and optionally coverage, "
                          "estimate, notes)")
     notes = d.get("notes", [])
@@ -86,7 +93,8 @@ def table_fields(d) -> dict:
     widths = {"weight": (bits, "bits"), "input": (ibits, "input_bits") if separate else (bits, "bits")}
     for k, e in enumerate(d["layers"]):
         where = f"layers[{k}]"
-        if not isinstance(e, dict) or not entry_keys <= set(e) or not set(e) <= entry_keys | set(optional):
+        if not isinstance(e, dict) or not entry_keys <= set(e) or not set(e) <= entry_keys | set(optional) | {
+                "granularity_rows"}:
             raise FieldError(f"{where} must be an object with fields {sorted(entry_keys)} "
                              f"(and optionally {sorted(optional)})")
         name = _table_entry(e, where, info)
@@ -119,6 +127,8 @@ def table_fields(d) -> dict:
                                      "given together")
         elif any(r is not None for r in isq[scope]):
             raise FieldError(f"input_{scope}_sqnr_db given without {scope}_sqnr_db")
+    grans = _granularities(d)
+    more = _granularity_rows(d["layers"], names, info, grans, bits, arrays)
     if separate:
         input_grids = {n: grids["input"].get(n) for n in names}
     else:
@@ -131,7 +141,7 @@ def table_fields(d) -> dict:
         input_grids=input_grids, n_samples=int(d["n_samples"]), input_bits=ibits,
         coverage=_coverage_from_json(d.get("coverage")), estimate=d.get("estimate", "exact"),
         input_layer_sqnr=arrays.get("input_layer"), input_model_sqnr=arrays.get("input_model"),
-        notes=notes)
+        notes=notes, granularities=grans, granularity_rows=more)
 
 
 def _widths(v, where: str) -> tuple:
@@ -203,7 +213,7 @@ def _grids(v, where: str, widths: tuple, column: str, kind: str, axis: int | Non
     out = []
     for j, g in enumerate(v):
         at = f"{where}[{j}]"
-        if isinstance(g, dict) and kind == "weight" and "axis" in g and (
+        if isinstance(g, dict) and kind == "weight" and "axis" in g and "block_size" not in g and (
                 g["axis"] != axis or isinstance(g["axis"], bool)):
             want = "null (per_channel is false)" if axis is None else \
                 f"{axis} (the entry's per-channel axis)"
@@ -222,16 +232,73 @@ def _coverage_from_json(c):
     if c is None:
         return None
     if not isinstance(c, dict) or not {"scanned", "total", "skipped", "total_bits"} <= set(c) <= {
-            "scanned", "total", "skipped", "total_bits", "float_activations"}:
+            "scanned", "total", "skipped", "total_bits", "float_activations", "skipped_options"}:
         raise FieldError("coverage must be an object with fields scanned, total, skipped, total_bits "
-                         "(and optionally float_activations)")
+                         "(and optionally float_activations, skipped_options)")
     floats = c.get("float_activations", [])
     if not isinstance(floats, list) or not all(isinstance(v, str) for v in floats):
         raise FieldError("coverage.float_activations must be a list of strings")
-    skipped = c["skipped"]
-    if not isinstance(skipped, list) or not all(
-            isinstance(v, list) and len(v) == 2 and all(isinstance(x, str) for x in v) for v in skipped):
-        raise FieldError("coverage.skipped must be a list of [parameter name, reason] pairs")
+    pairs = {}
+    for key in ("skipped", "skipped_options"):
+        v = c.get(key, [])
+        if not isinstance(v, list) or not all(
+                isinstance(p, list) and len(p) == 2 and all(isinstance(x, str) for x in p) for p in v):
+            raise FieldError(f"coverage.{key} must be a list of [name, reason] pairs")
+        pairs[key] = tuple((a, b) for a, b in v)
     return Coverage(int_field(c["scanned"], "coverage.scanned", 0), int_field(c["total"], "coverage.total", 0),
-                    tuple((a, b) for a, b in skipped), int_field(c["total_bits"], "coverage.total_bits", 0),
-                    tuple(floats))
+                    pairs["skipped"], int_field(c["total_bits"], "coverage.total_bits", 0), tuple(floats),
+                    pairs["skipped_options"])
+
+def _granularities(d: dict) -> tuple:
+    default = ["channel"] if d["per_channel"] else ["tensor"]
+    labels = d.get("granularities", default)
+    if not isinstance(labels, list) or not labels or labels[0] != default[0] or len(set(map(str, labels))) != len(labels):
+        raise FieldError(f"granularities must be a list of distinct options starting with {default[0]!r} "
+                         f"(per_channel is {str(d['per_channel']).lower()}), got {kind_of(labels)}")
+    try:
+        return tuple(option_from_label(v, "granularities") for v in labels)
+    except ValueError as e:
+        raise FieldError(str(e)) from None
+
+
+def _granularity_rows(layers: list, names: list, info: dict, grans: tuple, bits: tuple, arrays: dict):
+    """The rows of every option after the first: option -> the table's granularity_rows."""
+    labels = {option_label(g): g for g in grans[1:]}
+    out = {g: {"layer_sqnr": [], "model_sqnr": [], "weight_grids": {}} for g in grans[1:]}
+    for k, (e, name) in enumerate(zip(layers, names, strict=True)):
+        where = f"layers[{k}].granularity_rows"
+        rows = e.get("granularity_rows", {} if not labels else None)
+        if not isinstance(rows, dict) or set(rows) != set(labels):
+            raise FieldError(f"{where} must be an object with the options {sorted(labels)}, got {kind_of(rows)}")
+        shape, axis = info[name]["weight_shape"], info[name]["axis"]
+        for label, part in rows.items():
+            at, opt = f"{where}.{label}", labels[label]
+            if not isinstance(part, dict) or set(part) != {"layer_sqnr_db", "model_sqnr_db", "weight_grids"}:
+                raise FieldError(f"{at} must be an object with layer_sqnr_db, model_sqnr_db, weight_grids")
+            for scope in ("layer", "model"):
+                v = part[f"{scope}_sqnr_db"]
+                if (v is None) != (arrays[scope] is None):
+                    raise FieldError(f"{at}.{scope}_sqnr_db must be given exactly when {scope}_sqnr_db is")
+                if v is not None:
+                    if not isinstance(v, list):
+                        raise FieldError(f"{at}.{scope}_sqnr_db must hold {len(bits)} values")
+                    v = db_row([0.0 if x is None else x for x in v], len(bits), f"{at}.{scope}_sqnr_db")
+                    v = [math.nan if x is None else y for x, y in zip(part[f"{scope}_sqnr_db"], v, strict=True)]
+                out[opt][f"{scope}_sqnr"].append(v)
+            opts = grid_options(opt, axis)
+            gs = part["weight_grids"]
+            if gs is not None:
+                gs = _grids(gs, f"{at}.weight_grids", bits, "bits", "weight", opts["axis"], shape)
+                for j, g in enumerate(gs):
+                    if g is not None and (g.block_size != opts.get("block_size") or (
+                            g.blocked and (g.axis != opts["axis"] or tuple(g.scale.shape) != block_shape(
+                                shape, g.axis % len(shape), g.block_size)))):
+                        raise FieldError(f"{at}.weight_grids[{j}] is not a {label} grid of a weight of "
+                                         f"shape {list(shape)}")
+            out[opt]["weight_grids"][name] = gs
+    for part in out.values():
+        for scope in ("layer", "model"):
+            part[f"{scope}_sqnr"] = None if arrays[scope] is None else np.array(part[f"{scope}_sqnr"], dtype=float)
+        if any(v is None for v in part["weight_grids"].values()):
+            part["weight_grids"] = None
+    return out

@@ -1,0 +1,143 @@
+"""Weight granularity options: one scale per tensor, per output channel, or per block.
+
+An option is ``"tensor"``, ``"channel"`` or an int ``g`` >= 1 (one scale per block of ``g``
+consecutive weights along the input axis: 1 for a Linear / Conv weight [out, in, ...], 0 for
+a weight stored [in, out, ...] such as a transposed convolution's; embedding rows are blocked
+along the embedding dimension). Blocks follow the ONNX opset 21 blocked layout (see
+``core.blocks``).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from numbers import Integral
+
+import numpy as np
+
+from ..core.checks import check_int
+
+__all__ = ["check_granularity", "check_option", "input_axis", "option_label", "option_from_label",
+           "block_skip_reason", "grid_options", "scan_granularity", "split_granularities"]
+
+
+def check_option(option, name: str = "granularity"):
+    """One option: ``"tensor"``, ``"channel"`` or a block size (an int >= 1)."""
+    if isinstance(option, str):
+        if option not in ("tensor", "channel"):
+            raise ValueError(f"{name} options are 'tensor', 'channel' or a block size (an int "
+                             f">= 1), got {option!r}")
+        return option
+    if isinstance(option, bool) or not isinstance(option, Integral):
+        raise TypeError(f"{name} options are 'tensor', 'channel' or a block size (an int >= 1), "
+                        f"got {option!r} ({type(option).__name__})")
+    return check_int(option, f"{name} block size", minimum=1)
+
+
+def check_granularity(granularity, per_channel: bool = True, *, given_per_channel: bool = False,
+                      name: str = "granularity") -> tuple:
+    """The options to measure, in the order given, duplicates dropped. None: ``("channel",)``
+    (``("tensor",)`` when ``per_channel`` is False). Giving both ``per_channel=False``
+    (``given_per_channel``) and ``granularity`` is refused: say ``"tensor"`` instead.
+
+    >>> check_granularity(("channel", 32, 32, "tensor"))
+    ('channel', 32, 'tensor')
+    """
+    if granularity is None:
+        return ("channel",) if per_channel else ("tensor",)
+    if given_per_channel:
+        raise ValueError(f"give per_channel=False or {name}=, not both: per_channel=False is "
+                         f"{name}=('tensor',)")
+    if isinstance(granularity, (str, Integral)):
+        granularity = (granularity,)
+    if not isinstance(granularity, Sequence) or not granularity:
+        raise TypeError(f"{name} must be a non-empty tuple of options ('tensor', 'channel' or block "
+                        f"sizes), got {granularity!r}")
+    out: list = []
+    for v in granularity:
+        v = check_option(v, name)
+        if v not in out:
+            out.append(v)
+    return tuple(out)
+
+
+def input_axis(channel_axis: int) -> int:
+    """The blocked (input) axis of a weight whose per-channel (output) axis is ``channel_axis``."""
+    return 1 if channel_axis == 0 else 0
+
+
+def block_skip_reason(shape: Sequence[int], channel_axis: int, g: int) -> str | None:
+    """Why a weight of ``shape`` cannot take blocks of ``g`` (None when it can)."""
+    if len(shape) < 2:
+        return f"blocks of {g}: the weight has no input axis"
+    n = shape[input_axis(channel_axis)]
+    if n < g:
+        return f"blocks of {g}: its input axis holds {n} values, fewer than a block"
+    return None
+
+
+def grid_options(option, channel_axis: int) -> dict:
+    """The ``fit_range`` keywords (axis, block_size) of an option for a weight."""
+    if option == "tensor":
+        return {"axis": None}
+    if option == "channel":
+        return {"axis": channel_axis}
+    return {"axis": input_axis(channel_axis), "block_size": option}
+
+
+def option_label(option) -> str:
+    """An option as a JSON object key: ``"tensor"``, ``"channel"`` or the block size in digits."""
+    return option if isinstance(option, str) else str(int(option))
+
+
+def option_from_label(label: str, where: str):
+    if label in ("tensor", "channel"):
+        return label
+    if isinstance(label, str) and label.isdigit() and int(label) >= 1:
+        return int(label)
+    raise ValueError(f"{where}: a granularity is 'tensor', 'channel' or a block size, got {label!r}")
+
+
+def scan_granularity(granularity, per_channel, rules, quantize) -> tuple:
+    """The options a scan measures (see ``scan``'s ``granularity``), checked against its other
+    arguments."""
+    grans = check_granularity(granularity, per_channel, given_per_channel=per_channel is False)
+    if grans[0] not in ("tensor", "channel"):
+        raise ValueError(f"granularity={granularity!r}: the first option gives the table's default "
+                         "rows and must be 'channel' or 'tensor', e.g. ('channel', 32, 128)")
+    if granularity is not None and quantize == "input":
+        raise ValueError("granularity= chooses weight grids; quantize='input' scans no weights")
+    if rules is not None and not rules.per_channel_weights:
+        if granularity is None:
+            return ("tensor",)
+        if grans != ("tensor",):
+            raise ValueError(f"granularity={granularity!r} conflicts with the device rules "
+                             "(per_channel_weights=False: one scale per tensor); use ('tensor',)")
+    return grans
+
+
+def split_granularities(fields: dict) -> dict:
+    """A scan's fields with the columns of every granularity option (one block of widths per
+    option) split into the table's rows of the first option and ``granularity_rows`` of the
+    others; NaN where an entry skipped an option."""
+    grans = fields.pop("granularities", None)
+    if grans is None:
+        return fields
+    n, out = len(fields["bits"]), dict(fields)
+    wg = fields["weight_grids"]
+    rows = {}
+    for k, opt in enumerate(grans):
+        part = {}
+        for scope in ("layer", "model"):
+            arr = fields[f"{scope}_sqnr"]
+            if arr is not None:
+                arr = np.array(arr[:, k * n:(k + 1) * n], dtype=float)
+                for i, name in enumerate(fields["layers"]):
+                    if wg[name] is not None and wg[name][k] is None:  # skipped (None: no weight)
+                        arr[i] = np.nan
+            part[f"{scope}_sqnr"] = arr
+        part["weight_grids"] = {name: (wg[name] or [None] * len(grans))[k] or [None] * n
+                                for name in fields["layers"]}
+        rows[opt] = part
+    first = rows.pop(grans[0])
+    out.update(first, granularities=grans, granularity_rows=rows)
+    return out
