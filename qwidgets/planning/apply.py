@@ -178,11 +178,15 @@ def export_codes(model: nn.Module, plan: Plan, *, strict: bool = True,
     8 bits, int16 up to 16 signed or 15 unsigned, else int32), ``scale`` and ``offset``
     (float32 tensors, per channel when ``axis`` is set), ``zero_point`` (int32 tensor, or None
     when the grid has no integer zero point: see :attr:`UniformGrid.zero_point`), ``axis``,
-    ``bits``, ``signed``, and ``input`` (the input grid as a dict of the same fields, or None).
+    ``block_size`` (None, or g for a block grid: then ``scale``, ``offset`` and ``zero_point``
+    have the weight's rank and shape, ``axis`` divided by g rounded up, the ONNX opset 21
+    blocked layout, and each value applies to its block of g codes along ``axis``), ``bits``,
+    ``signed``, and ``input`` (the input grid as a dict of the same fields, or None).
 
     Where ``zero_point`` is given, ``(codes - zero_point) * scale`` in float64, cast to the
     weight's dtype, is exactly the weight of :func:`apply_plan`'s model (integer arithmetic,
-    then one rounding); without one, :func:`qwidgets.from_codes` with the grid decodes them
+    then one rounding; for a block grid with ``scale`` and ``zero_point`` repeated over each
+    block); without one, :func:`qwidgets.from_codes` with the grid decodes them
     (``codes * scale + offset`` in the weight's dtype for a per-tensor grid).
 
     >>> import torch
@@ -202,7 +206,7 @@ def export_codes(model: nn.Module, plan: Plan, *, strict: bool = True,
         s = plan.layers[name]
         entry = {"codes": None, **_grid_fields(s.weight)} if s.weight is not None else {
             "codes": None, "scale": None, "offset": None, "zero_point": None, "axis": None,
-            "bits": None, "signed": None}
+            "block_size": None, "bits": None, "signed": None}
         if s.weight is not None:
             codes = to_codes(e.parameter(model).detach(), s.weight)
             entry["codes"] = codes.to(_code_dtype(s.weight))
@@ -224,5 +228,5 @@ def _grid_fields(g: UniformGrid) -> dict:
         zp = torch.as_tensor(g.zero_point, dtype=torch.int32).clone()
         if g.axis is not None and zp.dim() == 0:
             zp = zp.expand(scale.shape).clone()
-    return {"scale": scale, "offset": offset, "zero_point": zp, "axis": g.axis, "bits": g.bits,
-            "signed": g.signed}
+    return {"scale": scale, "offset": offset, "zero_point": zp, "axis": g.axis, "block_size": g.block_size,
+            "bits": g.bits, "signed": g.signed}

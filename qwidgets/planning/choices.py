@@ -1,7 +1,9 @@
 """The menu the solver chooses from: one option per entry, its predicted noise and its costs.
 
-An option of an entry is a pair (weight width, input width); None stands for a side that
-stays float. What a table offers depends on how it was scanned:
+An option of an entry is a triple (weight width, input width, weight granularity); None
+stands for a side that stays float (and for the granularity of float weights). Every scanned
+granularity of :attr:`SensitivityTable.granularities` is offered with every weight width
+(except where the entry skipped it). What a table offers depends on how it was scanned:
 
 - ``quantize="weight"``: every scanned width for the weights, inputs float (BOPs count the
   ``assumed_input_bits``);
@@ -28,7 +30,8 @@ import numpy as np
 
 from ..core.checks import check_choice, check_int
 from ..core.setting import SOURCES
-from .costs import COSTS, FLOAT_BITS, layer_bops, weight_storage_bits
+from .costs import COSTS, FLOAT_BITS, grid_storage_bits, layer_bops, weight_storage_bits
+from .granularity import check_granularity
 from .table import SensitivityTable
 
 MAX_NOISE = 1e12  # noise power relative to the signal, cap (SQNR >= -120 dB) to keep sums finite
@@ -37,28 +40,28 @@ MAX_NOISE = 1e12  # noise power relative to the signal, cap (SQNR >= -120 dB) to
 
 @dataclass(frozen=True)
 class Menu:
-    """Options per entry: ``options[i]`` lists (weight bits, input bits); ``noise[i]`` their
-    predicted noise (relative to the signal power), same order."""
+    """Options per entry: ``options[i]`` lists (weight bits, input bits, granularity);
+    ``noise[i]`` their predicted noise (relative to the signal power), same order."""
 
     names: list
     options: list
     noise: list
     assumed_input_bits: int | None  # input width BOPs count where the input stays float
+    scale_bits: int = 16  # how block scales are stored
 
     def costs(self, table: SensitivityTable, cost: str) -> list:
         """Integer cost of every option of every entry (list of int64 arrays); the products of
-        two planned activations are in :meth:`pair_costs` instead."""
+        two planned activations are in :meth:`pair_costs` instead. Storage and mean bits count
+        the same stored bits (codes, scales, zero points)."""
         out = []
         paired = {n for i, j, _ in self.pairs(table) for n in (self.names[i], self.names[j])}
         for name, opts in zip(self.names, self.options, strict=True):
-            p, ch, macs = table.params(name), table.weight_channels(name), table.macs(name)
+            macs = table.macs(name)
             act = table.kind(name) == "activation"
             row = []
-            for wb, ib in opts:
-                if cost in ("model_kib", "planned_kib"):  # model_kib: + the unplanned weights
-                    row.append(weight_storage_bits(p, wb, ch))
-                elif cost == "mean_bits":
-                    row.append(p * (FLOAT_BITS if wb is None else wb))
+            for wb, ib, g in opts:
+                if cost in ("model_kib", "planned_kib", "mean_bits"):  # stored bits (model_kib: + the unplanned weights)
+                    row.append(option_storage_bits(table, name, wb, g, self.scale_bits))
                 elif act:  # its product with a float operand (counted at the assumed width)
                     row.append(0 if name in paired else layer_bops(macs, ib, self.assumed_input_bits))
                 else:
@@ -85,8 +88,8 @@ class Menu:
             return []
         out = []
         for i, j, macs in self.pairs(table):
-            a = np.array([ib for _, ib in self.options[i]], dtype=np.int64)
-            b = np.array([ib for _, ib in self.options[j]], dtype=np.int64)
+            a = np.array([o[1] for o in self.options[i]], dtype=np.int64)
+            b = np.array([o[1] for o in self.options[j]], dtype=np.int64)
             out.append((i, j, int(macs) * np.outer(a, b)))
         return out
 
@@ -100,10 +103,23 @@ class Menu:
             return []
         out = []
         for i, j, macs in self.pairs(table):
-            a = np.array([ib for _, ib in self.options[i]], dtype=np.int64)
-            b = np.array([ib for _, ib in self.options[j]], dtype=np.int64)
+            a = np.array([o[1] for o in self.options[i]], dtype=np.int64)
+            b = np.array([o[1] for o in self.options[j]], dtype=np.int64)
             out.append((i, j, -(-int(macs) * a * a // 2), -(-int(macs) * b * b // 2)))
         return out
+
+
+def option_storage_bits(table, name: str, wb: int | None, granularity, scale_bits: int = 16) -> int:
+    """Stored bits of ``name``'s weight at ``wb`` bits on the ``granularity`` grids."""
+    p = table.params(name)
+    if wb is None:
+        return FLOAT_BITS * p
+    if granularity == "tensor":
+        return weight_storage_bits(p, wb, 1)
+    if granularity == "channel":
+        return weight_storage_bits(p, wb, table.weight_shape(name)[table.weight_axis(name)])
+    return grid_storage_bits(table.weight_grid(name, wb, granularity=granularity), table.weight_shape(name),
+                             scale_bits)
 
 
 def check_table(table) -> SensitivityTable:
@@ -171,8 +187,9 @@ def _noise(sq: np.ndarray) -> np.ndarray:
         return np.minimum(np.power(10.0, -np.asarray(sq, dtype=float) / 10.0), MAX_NOISE)
 
 
-def _model_rows(table, source: str):
-    sq = table.sqnr_array("model", source=source) if table.quantize == "separate" else table.sqnr_array("model")
+def _model_rows(table, source: str, granularity=None):
+    sq = table.sqnr_array("model", source=source, granularity=granularity) if source == "weight" \
+        else table.sqnr_array("model", source=source)
     if sq is None:
         raise ValueError("the table holds no model-scope SQNR; plan budgets need it: "
                          "scan with scope='model' or scope='both'")
@@ -240,10 +257,35 @@ def _menus(table) -> tuple[tuple, tuple]:
 
 
 def _pin(table, name: str, value) -> tuple:
-    """``fixed[name]`` as (weight bits, input bits), None where not pinned."""
+    """``fixed[name]`` as (weight bits, input bits, granularity), None where not pinned."""
     where = f"fixed[{name!r}]"
     act = table.kind(name) == "activation"
-    if isinstance(value, Integral) and not isinstance(value, bool):
+    pg = None
+    if isinstance(value, Mapping):
+        extra = [k for k in value if k not in ("bits", "input_bits", "granularity")]
+        if extra or not value:
+            raise ValueError(f"{where} as a dict takes 'bits', 'input_bits' and / or 'granularity', "
+                             f"got {sorted(map(str, value))}")
+        if "granularity" in value:
+            pg = check_granularity((value["granularity"],), name=f"{where}['granularity']")[0]
+            if pg not in table.granularities:
+                raise ValueError(f"{where}: granularity {pg!r} was not scanned; scanned: "
+                                 f"{list(table.granularities)}")
+        if "bits" in value and "input_bits" in value:
+            value = (value["bits"], value["input_bits"])
+        elif "bits" in value or "input_bits" in value:
+            b = value.get("bits", value.get("input_bits"))
+            if isinstance(b, bool) or not isinstance(b, Integral):
+                raise TypeError(f"{where}: widths must be ints, got {b!r}")
+            if "input_bits" in value and table.quantize != "input":
+                value = (None, int(b))
+            else:
+                value = int(b)
+        else:
+            return None, None, pg
+    if isinstance(value, tuple) and len(value) == 2 and value[0] is None:
+        pw, pi = None, int(value[1])
+    elif isinstance(value, Integral) and not isinstance(value, bool):
         pw, pi = (None, int(value)) if (table.quantize == "input" or act) else (int(value), None)
     elif isinstance(value, tuple) and len(value) == 2 and all(
             isinstance(b, Integral) and not isinstance(b, bool) for b in value):
@@ -268,7 +310,7 @@ def _pin(table, name: str, value) -> tuple:
         pw = pi = pw if pw is not None else pi
     if pi is not None and not has_input_rows(table, name):
         raise ValueError(f"{where}: {name!r} has no input rows; pin its weight width only")
-    return pw, pi
+    return pw, pi, pg
 
 
 def has_input_rows(table, name: str) -> bool:
@@ -281,23 +323,39 @@ def has_input_rows(table, name: str) -> bool:
 def _all_options(table, name: str) -> list:
     q, bits = table.quantize, table.bits
     if table.kind(name) == "activation":  # no weight: an input width only
-        return [(None, b) for b in (table.input_bits if q == "separate" else bits)]
-    if q == "weight":
-        return [(b, None) for b in bits]
+        return [(None, b, None) for b in (table.input_bits if q == "separate" else bits)]
     if q == "input":
-        return [(None, b) for b in bits]
-    if q == "both":
-        return [(b, b) for b in bits]
-    if table.has_input_rows(name):
-        return [(w, i) for w in bits for i in table.input_bits]
-    return [(w, None) for w in bits]
+        return [(None, b, None) for b in bits]
+    if q == "weight":
+        pairs = [(b, None) for b in bits]
+    elif q == "both":
+        pairs = [(b, b) for b in bits]
+    elif table.has_input_rows(name):
+        pairs = [(w, i) for w in bits for i in table.input_bits]
+    else:
+        pairs = [(w, None) for w in bits]
+    return [(w, i, g) for g in table.granularities for w, i in pairs]
 
 
-def build_menu(table, *, fixed=None, allowed_bits=None, assumed_input_bits: int | None = 8) -> Menu:
-    """Every entry's options after ``fixed`` pins and the ``allowed_bits`` menu, with noise."""
+def _allowed_granularity(table, allowed) -> tuple:
+    if allowed is None:
+        return tuple(table.granularities)
+    allowed = check_granularity(allowed, name="allowed_granularity")
+    missing = [g for g in allowed if g not in table.granularities]
+    if missing:
+        raise ValueError(f"allowed_granularity holds {missing}, which the table did not scan; "
+                         f"scanned: {list(table.granularities)}")
+    return allowed
+
+
+def build_menu(table, *, fixed=None, allowed_bits=None, assumed_input_bits: int | None = 8,
+               allowed_granularity=None, scale_bits: int = 16) -> Menu:
+    """Every entry's options after ``fixed`` pins and the ``allowed_bits`` and
+    ``allowed_granularity`` menus, with noise (options an entry skipped in the scan: left out)."""
     check_table(table)
     assumed_input_bits = check_assumed_input_bits(assumed_input_bits)
     w_ok, i_ok = _allowed(table, allowed_bits)
+    g_ok = _allowed_granularity(table, allowed_granularity)
     if fixed is None:
         fixed = {}
     if not isinstance(fixed, Mapping):
@@ -306,29 +364,37 @@ def build_menu(table, *, fixed=None, allowed_bits=None, assumed_input_bits: int 
     if unknown:
         raise ValueError(f"fixed names {unknown}, not in the table; entries: {table.layers}")
     q = table.quantize
-    main = _model_rows(table, "weight")  # the rows over table.bits, whatever they quantized
+    main = {g: _model_rows(table, "weight", g) for g in table.granularities}  # over table.bits
     extra = _model_rows(table, "input") if q == "separate" else None
     col = {b: j for j, b in enumerate(table.bits)}
     i_col = {b: j for j, b in enumerate(table.input_bits)} if q == "separate" else {}
     options, noise = [], []
     for r, name in enumerate(table.layers):
         opts = _all_options(table, name)
+        pw = pi = pg = None
         if name in fixed:
-            pw, pi = _pin(table, name, fixed[name])
-            opts = [o for o in opts if (pw is None or o[0] == pw) and (pi is None or o[1] == pi)]
-        else:
+            pw, pi, pg = _pin(table, name, fixed[name])
+        opts = [o for o in opts if (pw is None or o[0] == pw) and (pi is None or o[1] == pi)
+                and (pg is None or o[2] == pg)]
+        if pw is None and pi is None:  # an entry with pinned widths is not restricted by the menus
             opts = [o for o in opts if (o[0] is None or o[0] in w_ok) and (o[1] is None or o[1] in i_ok)]
+        if pg is None:
+            opts = [o for o in opts if o[2] is None or o[2] in g_ok]
+        # options the entry skipped in the scan (blocks longer than its input axis): not offered
+        opts = [o for o in opts if (o[0] is None and q == "separate") or not math.isnan(
+            main[o[2] or table.granularities[0]][r, col[o[1] if o[0] is None else o[0]]])]
         if not opts:
-            raise ValueError(f"no option is left for {name!r} after fixed and allowed_bits")
+            raise ValueError(f"no option is left for {name!r} after fixed, allowed_bits and "
+                             "allowed_granularity")
         n = []
-        for wb, ib in opts:
+        for wb, ib, g in opts:
             if wb is None and q == "separate":
                 v = 0.0  # an activation: its input rows only
             else:
-                v = float(main[r, col[ib if wb is None else wb]])
+                v = float(main[g or table.granularities[0]][r, col[ib if wb is None else wb]])
             if q == "separate" and ib is not None:
                 v += float(extra[r, i_col[ib]])
             n.append(v)
         options.append(opts)
         noise.append(np.array(n, dtype=float))
-    return Menu(list(table.layers), options, noise, assumed_input_bits)
+    return Menu(list(table.layers), options, noise, assumed_input_bits, scale_bits)

@@ -10,7 +10,8 @@ opset and rewritten (:mod:`.onnx_graph`):
   embeddings) is stored as integer codes (int4 / uint4 up to 4 bits, int8 / uint8 up to
   8, int16 / uint16 up to 16; the grid's own, possibly narrower, range is what the codes use)
   followed by ``DequantizeLinear`` with the plan's scale and zero point (``axis`` where the grid
-  is per channel), so the deployed weights are ``(q - Z) * S``, exactly ``apply_plan``'s;
+  is per channel; ``axis`` and ``block_size``, the opset 21 blocked form, for a block grid), so
+  the deployed weights are ``(q - Z) * S``, exactly ``apply_plan``'s;
 - each planned input passes through ``QuantizeLinear`` then ``DequantizeLinear`` with the plan's
   scale and zero point (after a ``Clip`` to the grid's range when it is narrower than the
   integer type's, since ``QuantizeLinear`` saturates only at the type's ends).

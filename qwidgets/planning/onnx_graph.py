@@ -5,7 +5,8 @@ Works on the graph :mod:`.onnx_trace` wrote (weights as named graph inputs, acti
 behind ``Mark`` nodes), after its conversion to the file's opset. Each step is one method:
 :meth:`OnnxRewrite.weight` (one planned weight: codes or its float values),
 :meth:`OnnxRewrite.quantize_marks` (every marker of one activation point). A blocked
-``DequantizeLinear`` or a new kind of point is one more method of the same shape.
+``DequantizeLinear`` (a block grid: ``axis`` and ``block_size``, scales of the weight's full
+rank) takes the same method; a new kind of point is one more method of the same shape.
 """
 
 from __future__ import annotations
@@ -93,6 +94,8 @@ class OnnxRewrite:
         q = self._constant(self.name(pname + "_quantized"), codes.cpu().numpy(), onnx_code_type(grid))
         s, z, _, _ = self._scale_zero(pname, grid)
         attrs = {} if grid.axis is None else {"axis": grid.axis % value.dim()}
+        if grid.blocked:  # opset 21 blocked DequantizeLinear
+            attrs["block_size"] = grid.block_size
         self.nodes.insert(0, helper.make_node("DequantizeLinear", [q, s, z], [pname],
                                               name=self.name(pname + "_dequantize"), **attrs))
 
@@ -134,7 +137,9 @@ class OnnxRewrite:
     def _scale_zero(self, base: str, grid: UniformGrid):
         scale = grid.scale_tensor().detach().to(torch.float32).cpu().numpy()
         zp = np.asarray(torch.as_tensor(grid.zero_point).cpu().numpy(), dtype=np.int64)
-        if grid.axis is not None:
+        if grid.blocked:  # the blocked layout: one scale and zero point per block, full rank
+            zp = np.broadcast_to(zp, scale.shape).copy()
+        elif grid.axis is not None:
             n = max(scale.size, zp.size)
             scale, zp = np.broadcast_to(scale.reshape(-1), (n,)).copy(), np.broadcast_to(zp.reshape(-1), (n,)).copy()
         else:

@@ -11,10 +11,11 @@ from dataclasses import dataclass, replace
 
 from torch import nn
 
+from ..core.blocks import SCALE_BITS, block_shape
 from ..core.checks import check_bits
 from ..core.renamed import warn_renamed
 from ..core.setting import LayerSetting
-from .costs import FLOAT_BITS, layer_bops, weight_storage_bits
+from .costs import FLOAT_BITS, grid_storage_bits, layer_bops
 from .fields import FieldError, NonFinite, grid_to_dict
 from .files import read_text, write_text
 from .schema import FORMAT, VERSION, check_figures, plan_fields, plan_figures
@@ -62,7 +63,7 @@ class Plan:
     >>> p = Plan({"": LayerSetting(weight=UniformGrid(4, 0.1))}, {"": 4},
     ...          fingerprint=model_fingerprint(lin), weight_shapes={"": (2, 4)}, macs={"": 8})
     >>> p.planned_kib * 8192, p.mean_bits, p.bops  # 8 weights x 4 bits + one scale and zero point
-    (96.0, 4.0, 256)
+    (96.0, 12.0, 256)
     >>> Plan.from_json(p.to_json()).bits
     {'': 4}
     """
@@ -76,6 +77,7 @@ class Plan:
     predicted_sqnr_db: float | None = None
     entries: dict | None = None
     other_weight_bits: int | None = None
+    scale_bits: int = 16  # how block grids' scales are stored (DeviceRules.scale_bits)
 
     def __post_init__(self):
         if not isinstance(self.layers, Mapping) or not self.layers:
@@ -112,11 +114,19 @@ class Plan:
             object.__setattr__(self, "other_weight_bits", int(self.other_weight_bits))
         if self.predicted_sqnr_db is not None:
             object.__setattr__(self, "predicted_sqnr_db", float(self.predicted_sqnr_db))
+        if self.scale_bits not in SCALE_BITS or isinstance(self.scale_bits, bool):
+            raise ValueError(f"scale_bits must be one of {SCALE_BITS}, got {self.scale_bits!r}")
+        for n, s in layers.items():
+            g = s.weight
+            if g is not None and g.blocked and (not -len(shapes[n]) <= g.axis < len(shapes[n]) or tuple(
+                    g.scale.shape) != block_shape(shapes[n], g.axis % len(shapes[n]), g.block_size)):
+                raise ValueError(f"layers[{n!r}]: block scales of shape {tuple(g.scale.shape)} do not fit "
+                                 f"the weight shape {shapes[n]} in blocks of {g.block_size} along axis {g.axis}")
 
     @classmethod
     def unchecked(cls, layers: dict, bits: dict, *, fingerprint: str, weight_shapes: dict, macs: dict,
                   assumed_input_bits: int | None = 8, predicted_sqnr_db: float | None = None,
-                  entries: dict, other_weight_bits: int | None = None) -> Plan:
+                  entries: dict, other_weight_bits: int | None = None, scale_bits: int = 16) -> Plan:
         """A Plan from fields already checked (by :class:`SensitivityTable`, which builds them
         from its own validated grids): skips the per-entry checks, so a Pareto front's hundreds
         of plans of hundreds of entries cost milliseconds. Everyone else: use ``Plan(...)``."""
@@ -126,7 +136,8 @@ class Plan:
                      ("assumed_input_bits", assumed_input_bits),
                      ("predicted_sqnr_db", None if predicted_sqnr_db is None else float(predicted_sqnr_db)),
                      ("entries", entries),
-                     ("other_weight_bits", None if other_weight_bits is None else int(other_weight_bits))):
+                     ("other_weight_bits", None if other_weight_bits is None else int(other_weight_bits)),
+                     ("scale_bits", scale_bits)):
             object.__setattr__(plan, k, v)
         return plan
 
@@ -140,6 +151,12 @@ class Plan:
         """Deprecated: :attr:`chosen_input_bits` (``input_bits`` names menus of widths)."""
         warn_renamed("input_bits", "chosen_input_bits", "Plan")
         return self.chosen_input_bits
+
+    @property
+    def granularity(self) -> dict:
+        """Each entry's weight granularity: ``"tensor"``, ``"channel"`` or the block size (None
+        where its weight stays float)."""
+        return {n: None if s.weight is None else s.weight.granularity for n, s in self.layers.items()}
 
     # ------------------------------------------------------------------ edits
     def with_setting(self, layer_name: str, setting: LayerSetting) -> Plan:
@@ -169,7 +186,12 @@ class Plan:
         weight = old.weight if setting.weight is None else setting.weight.detached()
         inp = old.input if setting.input is None else setting.input.detached()
         shape = self.weight_shapes[layer_name]
-        if setting.weight is not None and weight.axis is not None:
+        if setting.weight is not None and weight.blocked:
+            try:
+                replace(self, layers={**self.layers, layer_name: LayerSetting(weight=weight)})
+            except ValueError as e:
+                raise ValueError(f"setting.weight: {e}") from None
+        elif setting.weight is not None and weight.axis is not None:
             if not -len(shape) <= weight.axis < len(shape):
                 raise ValueError(f"setting.weight.axis {weight.axis} does not fit layer {layer_name!r}'s "
                                  f"weight shape {shape}")
@@ -196,6 +218,8 @@ class Plan:
         if g is None or g.axis is None:
             return 1
         return self.weight_shapes[name][g.axis]
+    def _storage(self, name: str) -> int:
+        return grid_storage_bits(self.layers[name].weight, self.weight_shapes[name], self.scale_bits)
 
     def _weight_bits(self, name: str) -> int | None:
         g = self.layers[name].weight
@@ -208,9 +232,9 @@ class Plan:
     @property
     def planned_kib(self) -> float:
         """Weight storage of the planned entries in KiB (codes, float32 scales, int32 zero
-        points); what ``plan_budget(planned_kib=...)`` limits."""
-        return sum(weight_storage_bits(self._params(n), self._weight_bits(n), self._channels(n))
-                   for n in self.layers) / 8192
+        points; block grids: a scale per block at ``scale_bits``, a zero point per block at the
+        code width where asymmetric); what ``plan_budget(planned_kib=...)`` limits."""
+        return sum(self._storage(n) for n in self.layers) / 8192
 
     @property
     def model_kib(self) -> float | None:
@@ -237,12 +261,13 @@ class Plan:
 
     @property
     def mean_bits(self) -> float:
-        """Mean bits per weight of the planned entries (codes only; float weights count 32);
-        what ``plan_budget(mean_bits=...)`` limits."""
+        """Stored bits per weight of the planned entries: codes plus scales and zero points
+        (float weights count 32), the usual "bits per weight"; what ``plan_budget(mean_bits=...)``
+        limits."""
         total = sum(self._params(n) for n in self.layers)
         if total == 0:
             return 0.0
-        return sum(self._params(n) * (self._weight_bits(n) or FLOAT_BITS) for n in self.layers) / total
+        return sum(self._storage(n) for n in self.layers) / total
 
     # the previous release's names (one release, each warns once)
     @property
@@ -301,7 +326,7 @@ class Plan:
         """
         rows = []
         for n, s in self.layers.items():
-            stored = weight_storage_bits(self._params(n), self._weight_bits(n), self._channels(n))
+            stored = self._storage(n)
             rows.append({
                 "layer": n,
                 "bits": self.bits[n],
@@ -326,6 +351,8 @@ class Plan:
         """The plan as plain JSON-ready data (see the module docstring for the layout)."""
         pred = self.predicted_sqnr_db
         extra = {} if self.other_weight_bits is None else {"other_weight_bits": self.other_weight_bits}
+        if self.scale_bits != 16:
+            extra["scale_bits"] = self.scale_bits
         return {
             **extra,
             "format": FORMAT,
@@ -362,9 +389,9 @@ class Plan:
             raise ValueError(f"the plan is not valid JSON (truncated or damaged?): {e}") from None
         try:
             fields = plan_fields(data)
-            figures = fields.pop("figures")
+            figures, version = fields.pop("figures"), fields.pop("figures_version")
             plan = cls(**fields)
-            check_figures(plan, figures)
+            check_figures(plan, figures, version)
             return plan
         except FieldError as e:
             raise ValueError(f"invalid plan: {e}") from None

@@ -147,7 +147,7 @@ def refine_plan(
     >>> _ = torch.manual_seed(0)
     >>> net = nn.Sequential(nn.Linear(8, 16), nn.ReLU(), nn.Linear(16, 4))
     >>> x = torch.randn(256, 8)
-    >>> start = plan_budget(scan(net, x, bits=(2, 3), progress=False), mean_bits=2.5)
+    >>> start = plan_budget(scan(net, x, bits=(2, 3), progress=False), mean_bits=9.0)  # stored bits per weight
     >>> r = refine_plan(net, x, start, steps=40, progress=False)
     >>> r.sqnr_db >= r.start_sqnr_db, r.plan.bits == start.bits
     (True, True)

@@ -1,11 +1,11 @@
 """The plan file's JSON schema (tables: table_schema.py; the field checks both use: fields.py).
 
 A plan is data, never code: it is written and read as JSON (no pickle), and reading checks
-every field. Its JSON layout (``version`` 3)::
+every field. Its JSON layout (``version`` 4)::
 
     {
       "format": "qwidgets plan",
-      "version": 3,
+      "version": 4,
       "fingerprint": "<sha256 of the model's ordered parameter names and shapes>",
       "predicted_sqnr_db": 31.4,            # or null; +inf is written as null too
       "assumed_input_bits": 8,              # input width used for BOPs where no input grid
@@ -30,22 +30,31 @@ every field. Its JSON layout (``version`` 3)::
       "figures": {                          # the plan's figures under the Plan attributes'
         "model_kib": 5.93,                  # names (the plan_budget keywords): null without
         "planned_kib": 5.61,                # other_weight_bits; checked against the layers
-        "mean_bits": 3.36,                  # when read (relative 1e-9), so a file edited by
+        "mean_bits": 4.21,                  # when read (relative 1e-9), so a file edited by
         "bops": 1234567                     # hand cannot say one thing and hold another
       }
     }
 
 Versions (each still reads): 1, without ``figures``; 2 added ``figures``; 3 added
-activation entries (``weight_shape`` [], the optional ``partner``). Plans written before
+activation entries (``weight_shape`` [], the optional ``partner``); 4 added block grids and
+``scale_bits``, and its ``mean_bits`` counts stored bits (codes, scales and zero points;
+versions 2 and 3 counted code bits only). Plans written before
 entries were recorded (no optional fields) are read as they are: their layers have inputs, no
 digest is checked and ``Plan.model_kib`` is None.
 
 Per-channel grids (``axis`` set) hold one scale / offset / zero point per channel; a grid
-whose offset is not an integer multiple of its scale has ``"zero_point": null``.
+whose offset is not an integer multiple of its scale has ``"zero_point": null``. Block grids
+add ``"block_size"`` and ``"shape"`` (their scales' shape: the ONNX opset 21 blocked layout,
+``axis`` the blocked axis), their lists flat in that shape's order; the optional top-level
+``"scale_bits"`` (16 or 32, default 16) is how their scales are stored. Plans without them
+hold per-channel / per-tensor grids, as before.
 """
 
 from __future__ import annotations
 
+import math
+
+from ..core.blocks import block_shape
 from ..core.checks import MAX_BITS
 from ..core.setting import LayerSetting
 from .fields import (
@@ -63,8 +72,8 @@ from .fields import (
 )
 
 FORMAT = "qwidgets plan"
-VERSION = 3  # 2 added "figures", 3 activations ("partner"); every change of the fields bumps it
-READABLE = (1, 2, 3)
+VERSION = 4  # 2 "figures", 3 activations ("partner"), 4 block grids, scale_bits, mean_bits stored
+READABLE = (1, 2, 3, 4)
 
 FIGURES = ("model_kib", "planned_kib", "mean_bits", "bops")  # Plan attributes, budget keywords
 
@@ -75,7 +84,7 @@ _TOP = ("format", "version", "fingerprint", "predicted_sqnr_db", "assumed_input_
 _LAYER = ("bits", "weight_shape", "macs", "weight", "input")
 
 
-_TOP_OPTIONAL = ("other_weight_bits",)
+_TOP_OPTIONAL = ("other_weight_bits", "scale_bits")
 
 
 _LAYER_OPTIONAL = ("kind", "has_input", "shared_with", "weight_digest", "partner")
@@ -88,11 +97,12 @@ def plan_fields(data) -> dict:
     if isinstance(data, dict) and "version" in data and (version not in READABLE or isinstance(version, bool)):
         raise FieldError(f"version {kind_of(version)} is not supported; this qwidgets "
                          f"reads versions {', '.join(map(str, READABLE))}")
-    check_fields(data, _TOP + ("figures",) if version != 1 else _TOP, "the top level", _TOP_OPTIONAL)
+    check_fields(data, _TOP + ("figures",) if version != 1 else _TOP, "the top level",
+                 _TOP_OPTIONAL if version == 4 else ("other_weight_bits",))
     if data["format"] != FORMAT:
         raise FieldError(f"format must be {FORMAT!r}, got {kind_of(data['format'])}")
     figures = _figures(data["figures"]) if version != 1 else None
-    layer_optional = _LAYER_OPTIONAL if version == 3 else _LAYER_OPTIONAL[:-1]  # 3 added partner
+    layer_optional = _LAYER_OPTIONAL if version in (3, 4) else _LAYER_OPTIONAL[:-1]  # 3 added partner
     fp = fingerprint_field(data["fingerprint"])
     pred = data["predicted_sqnr_db"]
     pred = None if pred is None else number_field(pred, "predicted_sqnr_db")
@@ -124,6 +134,8 @@ def plan_fields(data) -> dict:
                 raise FieldError(f"{where}.weight.axis {wd['axis']} is out of range for "
                                  f"weight_shape {list(shape)}")
             channels = shape[wd["axis"]]
+        if isinstance(wd, dict) and "block_size" in wd and version != 4:
+            raise FieldError(f"{where}.weight is a block grid, which plan files hold from version 4")
         w = grid_from_dict(wd, f"{where}.weight", channels)
         x = grid_from_dict(entry["input"], f"{where}.input", None)
         if w is None and x is None:
@@ -136,9 +148,22 @@ def plan_fields(data) -> dict:
                              f"{'weight' if w is not None else 'input'} grid has {main.bits} bits")
         layers[name] = LayerSetting(weight=w, input=x)
         bits[name], shapes[name], macs[name] = b, shape, m
+    scale_bits = int_field(data.get("scale_bits", 16), "scale_bits", 16, 32)
+    if scale_bits not in (16, 32):
+        raise FieldError(f"scale_bits must be 16 or 32, got {scale_bits}")
+    for name, s in layers.items():
+        g = s.weight
+        if g is not None and g.blocked:
+            want = block_shape(shapes[name], g.axis % len(shapes[name]), g.block_size) \
+                if -len(shapes[name]) <= g.axis < len(shapes[name]) else None
+            if tuple(g.scale.shape) != want:
+                raise FieldError(f"layers[{name!r}].weight.shape {list(g.scale.shape)} does not fit "
+                                 f"weight_shape {list(shapes[name])} in blocks of {g.block_size} along "
+                                 f"axis {g.axis}")
     return dict(layers=layers, bits=bits, fingerprint=fp, weight_shapes=shapes, macs=macs,
                 assumed_input_bits=aib, predicted_sqnr_db=pred, entries=entries,
-                other_weight_bits=other, figures=figures)
+                other_weight_bits=other, figures=figures, scale_bits=scale_bits,
+                figures_version=version)
 
 
 def _figures(d) -> dict:
@@ -152,11 +177,19 @@ def plan_figures(plan) -> dict:
     return {k: getattr(plan, k) for k in FIGURES}
 
 
-def check_figures(plan, stated: dict | None) -> None:
-    """Refuse a file whose stated figures are not its layers' (edited by hand, say)."""
+def check_figures(plan, stated: dict | None, version: int = VERSION) -> None:
+    """Refuse a file whose stated figures are not its layers' (edited by hand, say). Versions 2
+    and 3 stated mean bits of the codes alone (version 4: stored bits, scales and zero points too)."""
     if stated is None:  # version 1
         return
-    for k, v in plan_figures(plan).items():
+    figures = plan_figures(plan)
+    if version in (2, 3):  # code bits: weights (activations hold none) at their widths, float at 32
+        params = {n: 0 if s.weight is None and s.input is not None and not plan.weight_shapes[n]
+                  else math.prod(plan.weight_shapes[n]) for n, s in plan.layers.items()}
+        total = sum(params.values())
+        figures["mean_bits"] = 0.0 if total == 0 else sum(
+            params[n] * (32 if s.weight is None else s.weight.bits) for n, s in plan.layers.items()) / total
+    for k, v in figures.items():
         s = stated[k]
         if (v is None) != (s is None) or (v is not None and abs(v - s) > 1e-9 * max(abs(v), 1.0)):
             raise FieldError(f"figures.{k} is {s!r} but the plan's layers give {v!r} (the file "

@@ -40,26 +40,33 @@ from .table import SensitivityTable
 
 def plan_budget(table: SensitivityTable, *, model_kib: float | None = None,
                 planned_kib: float | None = None, mean_bits: float | None = None,
-                bops: float | None = None, fixed: Mapping[str, int | tuple[int, int]] | None = None,
+                bops: float | None = None, fixed: Mapping[str, int | tuple[int, int] | Mapping] | None = None,
                 allowed_bits: Sequence[int] | Mapping[str, Sequence[int]] | None = None,
                 assumed_input_bits: int | None = 8, rules: DeviceRules | None = None,
-                **renamed: Any) -> Plan:
+                allowed_granularity: Sequence | None = None, **renamed: Any) -> Plan:
     """The plan with the least predicted model-output noise that meets every budget given.
 
     Budgets (give one or more; all must hold), each named after the :class:`Plan` attribute
     it limits: ``model_kib`` (weight storage of the whole model, KiB: the planned entries as
     planned, every floating-point weight the table does not plan at its stored width,
     :meth:`SensitivityTable.unplanned_bits`; what the device stores), ``planned_kib`` (weight
-    storage of the planned entries only, KiB), ``mean_bits`` (mean weight bits per planned
-    weight) and ``bops`` (bit operations per sample: MACs x weight bits x input bits). With a
-    table scanned with ``quantize="separate"`` each entry gets a weight width and an input
-    width.
+    storage of the planned entries only, KiB), ``mean_bits`` (stored bits per planned weight:
+    codes plus scales and zero points) and ``bops`` (bit operations per sample: MACs x weight
+    bits x input bits). With a table scanned with ``quantize="separate"`` each entry gets a
+    weight width and an input width. With a table scanned at several granularities
+    (``scan(..., granularity=("channel", 32, 128))``) each entry gets a weight width and a
+    granularity together: one option per (bits, granularity) pair, block grids paying for
+    their scales (and zero points) in storage and mean bits (block scales at
+    ``rules.scale_bits``, 16 without rules).
 
     ``fixed`` pins entries: ``{"conv1": 8}`` pins a weight width (the input width of a table
-    that quantized inputs only), ``{"conv1": (8, 8)}`` the weight and the input width.
+    that quantized inputs only), ``{"conv1": (8, 8)}`` the weight and the input width,
+    ``{"fc": {"bits": 4, "granularity": 128}}`` a width and a granularity (either alone too).
     ``allowed_bits`` restricts the menu of the other entries: ``{"weight": (4, 8), "input":
-    (8,)}``, or a plain tuple for the weight widths. ``assumed_input_bits`` is the input width
-    counted in BOPs where inputs stay float (None: float32), kept on the plan under that name.
+    (8,)}``, or a plain tuple for the weight widths; ``allowed_granularity`` (e.g.
+    ``("channel", 128)``) the granularities of entries whose granularity is not pinned.
+    ``assumed_input_bits`` is the input width counted in BOPs where inputs stay float (None:
+    float32), kept on the plan under that name.
     The result is the exact optimum of the additive-noise objective. With ``rules``
     (:class:`qwidgets.DeviceRules`) only the widths in the device's menus are chosen, and a
     table whose grids break the rules is refused. A budget that cannot be met raises
@@ -71,9 +78,9 @@ def plan_budget(table: SensitivityTable, *, model_kib: float | None = None,
     >>> from qwidgets import SensitivityTable
     >>> t = SensitivityTable.synthetic(np.array([[10.0, 30.0], [20.0, 40.0]]), params=[100, 100],
     ...                                bits=(4, 8))
-    >>> p = plan_budget(t, mean_bits=6)
+    >>> p = plan_budget(t, mean_bits=6.64)  # stored bits: 8 + 4 code bits, a 64-bit scale and zero point each
     >>> p.bits, round(p.predicted_sqnr_db, 2), p.mean_bits
-    ({'layer0': 8, 'layer1': 4}, 19.59, 6.0)
+    ({'layer0': 8, 'layer1': 4}, 19.59, 6.64)
     >>> plan_budget(t, mean_bits=8, fixed={"layer0": 4}).bits
     {'layer0': 4, 'layer1': 8}
     """
@@ -86,7 +93,8 @@ def plan_budget(table: SensitivityTable, *, model_kib: float | None = None,
     assumed_input_bits = given.pop("assumed_input_bits")
     budgets = check_budgets(**given)
     allowed_bits = rules_allowed_bits(table, rules, allowed_bits, assumed_input_bits)
-    menu = build_menu(table, fixed=fixed, allowed_bits=allowed_bits, assumed_input_bits=assumed_input_bits)
+    menu = build_menu(table, fixed=fixed, allowed_bits=allowed_bits, assumed_input_bits=assumed_input_bits,
+                      allowed_granularity=allowed_granularity, scale_bits=_scale_bits(rules))
     costs = {k: menu.costs(table, k) for k in budgets}
     pairs = {k: menu.pair_costs(table, k) for k in budgets}  # attention's products (BOPs)
     other = {k: table.unplanned_bits() if k == "model_kib" else 0
@@ -115,9 +123,10 @@ def plan_budget(table: SensitivityTable, *, model_kib: float | None = None,
 
 def pareto_front(table: SensitivityTable, cost: str = "model_kib", *,
                  assumed_input_bits: int | None = 8, max_points: int | None = 512,
-                 fixed: Mapping[str, int | tuple[int, int]] | None = None,
+                 fixed: Mapping[str, int | tuple[int, int] | Mapping] | None = None,
                  allowed_bits: Sequence[int] | Mapping[str, Sequence[int]] | None = None,
-                 rules: DeviceRules | None = None, **renamed: Any) -> list[tuple[float, float, Plan]]:
+                 rules: DeviceRules | None = None, allowed_granularity: Sequence | None = None,
+                 **renamed: Any) -> list[tuple[float, float, Plan]]:
     """Every Pareto-optimal plan for one budget: ``[(cost, predicted_sqnr_db, Plan), ...]`` by
     rising cost.
 
@@ -127,15 +136,16 @@ def pareto_front(table: SensitivityTable, cost: str = "model_kib", *,
     :func:`plan_budget` at its own cost; no other plan is both cheaper and less noisy.
     The front of a large model can hold tens of thousands of points: with more than
     ``max_points`` it is thinned to that many, spread evenly in cost, both ends kept (``None``
-    keeps every point). ``assumed_input_bits``, ``fixed``, ``allowed_bits`` and ``rules`` as
-    in :func:`plan_budget`.
+    keeps every point). ``assumed_input_bits``, ``fixed``, ``allowed_bits``,
+    ``allowed_granularity`` and ``rules`` as in :func:`plan_budget`: the front runs over bits
+    and granularity together.
 
     >>> import numpy as np
     >>> from qwidgets import SensitivityTable
     >>> t = SensitivityTable.synthetic(np.array([[10.0, 30.0], [20.0, 40.0]]), params=[100, 100],
     ...                                bits=(4, 8))
     >>> [(c, round(s, 2)) for c, s, _ in pareto_front(t, "mean_bits")]
-    [(4.0, 9.59), (6.0, 19.59), (8.0, 29.59)]
+    [(4.64, 9.59), (6.64, 19.59), (8.64, 29.59)]
     """
     if "weight_kib" in renamed:  # a budget keyword: pareto_front takes none
         raise TypeError("pareto_front() got an unexpected keyword argument 'weight_kib'")
@@ -144,7 +154,8 @@ def pareto_front(table: SensitivityTable, cost: str = "model_kib", *,
                                                                       assumed_input_bits)
     check_int(max_points, "max_points", minimum=2, none_ok=True)
     allowed_bits = rules_allowed_bits(table, rules, allowed_bits, assumed_input_bits)
-    menu = build_menu(table, fixed=fixed, allowed_bits=allowed_bits, assumed_input_bits=assumed_input_bits)
+    menu = build_menu(table, fixed=fixed, allowed_bits=allowed_bits, assumed_input_bits=assumed_input_bits,
+                      allowed_granularity=allowed_granularity, scale_bits=_scale_bits(rules))
     costs = menu.costs(table, cost)
     pairs = menu.pair_costs(table, cost)
     for i, j, share_i, share_j in menu.pair_shares(table, cost):  # an additive bound of the products
@@ -168,6 +179,8 @@ def _pair_rows(pairs: dict, order: list) -> list:
         for i, j, m in pairs.get(k, []):
             by_ij.setdefault((i, j), [None] * len(order))[r] = m
     return [(i, j, rows) for (i, j), rows in by_ij.items()]
+def _scale_bits(rules) -> int:
+    return 16 if rules is None else rules.scale_bits
 
 
 def _flat(rows: list) -> np.ndarray:
@@ -340,11 +353,14 @@ def make_plan(table: SensitivityTable, menu: Menu, choice: np.ndarray) -> Plan:
     picked = [menu.options[i][int(k)] for i, k in enumerate(choice)]
     q = table.quantize
     if q == "input":
-        bits = {n: ib for n, (_, ib) in zip(menu.names, picked, strict=True)}
+        bits = {n: ib for n, (_, ib, _) in zip(menu.names, picked, strict=True)}
         return table.make_plan(bits, assumed_input_bits=menu.assumed_input_bits, predicted_sqnr_db=predicted)
-    bits = {n: ib if wb is None else wb for n, (wb, ib) in zip(menu.names, picked, strict=True)}
+    bits = {n: ib if wb is None else wb for n, (wb, ib, _) in zip(menu.names, picked, strict=True)}
+    grans = {n: g for n, (_, _, g) in zip(menu.names, picked, strict=True)}
     if q == "separate":
-        inputs = {n: ib for n, (_, ib) in zip(menu.names, picked, strict=True)}
+        inputs = {n: ib for n, (_, ib, _) in zip(menu.names, picked, strict=True)}
         return table.make_plan(bits, chosen_input_bits=inputs, predicted_sqnr_db=predicted,
-                               assumed_input_bits=menu.assumed_input_bits)
-    return table.make_plan(bits, assumed_input_bits=menu.assumed_input_bits, predicted_sqnr_db=predicted)
+                               assumed_input_bits=menu.assumed_input_bits, granularity=grans,
+                               scale_bits=menu.scale_bits)
+    return table.make_plan(bits, assumed_input_bits=menu.assumed_input_bits, predicted_sqnr_db=predicted,
+                           granularity=grans, scale_bits=menu.scale_bits)

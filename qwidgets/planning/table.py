@@ -284,7 +284,7 @@ class SensitivityTable:
     def make_plan(self, bits: Mapping[str, int], *,
                   chosen_input_bits: int | Mapping[str, int | None] | None = None,
                   assumed_input_bits: int | None = 8, predicted_sqnr_db: float | None = None,
-                  **renamed: Any) -> Plan:
+                  granularity=None, scale_bits: int = 16, **renamed: Any) -> Plan:
         """A :class:`Plan` with the scanned grids of the given width per entry.
 
         ``bits``: entry -> weight width (the input width for a ``quantize="input"`` table).
@@ -292,7 +292,10 @@ class SensitivityTable:
         entries left out or None stay float) or one width for every entry with input rows (None:
         all float); :attr:`Plan.chosen_input_bits` holds them, :attr:`input_bits` is the menu.
         ``assumed_input_bits``: the input width BOPs count where an input stays float (None:
-        float32). ``input_bits``, the previous name of both, warns once.
+        float32). ``input_bits``, the previous name of both, warns once. ``granularity``: the
+        weight grids' option of :attr:`granularities`, one for every entry or a dict per entry
+        (None, or an entry left out: the first option); ``scale_bits``: how the plan costs
+        block scales.
 
         >>> t = SensitivityTable.synthetic(np.array([[12.0, 36.0]]), params=[64], bits=(2, 6))
         >>> t.make_plan({"layer0": 6}).bits
@@ -306,7 +309,7 @@ class SensitivityTable:
         from .table_plans import plan_from_table
 
         return plan_from_table(self, bits, chosen_input_bits, assumed_input_bits, predicted_sqnr_db,
-                               renamed)
+                               renamed, granularity, scale_bits)
 
     def _entry_info(self, name: str) -> dict:
         """What a plan records of an entry (cached: a front's plans share it; read-only)."""
@@ -331,15 +334,18 @@ class SensitivityTable:
     def _shape(self, name: str) -> tuple:
         return tuple(int(d) for d in self._info[name]["weight_shape"])
 
-    def _setting(self, name: str, b: int, ib: int | None) -> LayerSetting:
+    def _setting(self, name: str, b: int, ib: int | None, gran=None) -> LayerSetting:
         """The LayerSetting of one entry's choice (cached: plans of a front share them)."""
-        key = (name, b, ib)
+        key = (name, b, ib, gran)
         s = self._settings.get(key)
         if s is None:
             if self.quantize == "input" or self.kind(name) == "activation":  # no weight grid
                 s = LayerSetting(input=self.input_grid(name, b if ib is None else ib))
             else:
-                w = self.weight_grid(name, self.bits[self._col(b)])
+                w = self.weight_grid(name, self.bits[self._col(b)], granularity=gran)
+                if w is None and self._grids["weight"] is not None:
+                    raise ValueError(f"{name!r} has no {gran!r} grids: it skipped that granularity "
+                                     "in the scan (see the table's coverage)")
                 x = None if ib is None else self.input_grid(name, ib)
                 s = LayerSetting(weight=w, input=x)
             self._settings[key] = s

@@ -6,11 +6,12 @@ from collections.abc import Mapping
 
 from ..core.checks import check_bits
 from ..core.renamed import take_renamed
+from .granularity import check_granularity
 from .plan import Plan
 
 
 def plan_from_table(table, bits, chosen_input_bits, assumed_input_bits, predicted_sqnr_db,
-                    renamed: dict) -> Plan:
+                    renamed: dict, granularity=None, scale_bits: int = 16) -> Plan:
     """What :meth:`SensitivityTable.make_plan` returns (its arguments, checked here)."""
     if renamed:
         old = renamed.get("input_bits")  # chosen widths on a separate table, else BOPs' width
@@ -36,6 +37,7 @@ def plan_from_table(table, bits, chosen_input_bits, assumed_input_bits, predicte
             raise KeyError(f"chosen_input_bits names {extra}, which bits does not plan")
     if assumed_input_bits is not None:
         check_bits(assumed_input_bits, "assumed_input_bits")
+    grans = _granularities(table, granularity, bits)
     settings, chosen = {}, {}
     for name in table.layers:
         if name not in bits:
@@ -48,7 +50,7 @@ def plan_from_table(table, bits, chosen_input_bits, assumed_input_bits, predicte
                 raise ValueError(f"chosen_input_bits[{name!r}]: {name!r} has no input rows")
         else:
             ib = b if table.quantize in ("input", "both") else None
-        settings[name] = table._setting(name, b, ib)
+        settings[name] = table._setting(name, b, ib, grans.get(name))
         chosen[name] = int(b)
     return Plan.unchecked(settings, chosen, fingerprint=table.fingerprint,
                           weight_shapes={n: table._shape(n) for n in settings},
@@ -58,4 +60,24 @@ def plan_from_table(table, bits, chosen_input_bits, assumed_input_bits, predicte
                           predicted_sqnr_db=predicted_sqnr_db,
                           entries={n: table._entry_info(n) for n in settings},
                           other_weight_bits=max(0, int(table.coverage.total_bits) - sum(
-                              table._stored(n) for n in settings)))
+                              table._stored(n) for n in settings)), scale_bits=scale_bits)
+
+
+def _granularities(table, granularity, bits) -> dict:
+    """Entry -> granularity option (None: the table's first), checked against the table."""
+    if granularity is None:
+        return {}
+    if not isinstance(granularity, Mapping):
+        granularity = {n: granularity for n in bits}
+    extra = [n for n in granularity if n not in bits]
+    if extra:
+        raise KeyError(f"granularity names {extra}, which bits does not plan")
+    out = {}
+    for n, g in granularity.items():
+        if g is None:
+            continue
+        g = check_granularity((g,), name=f"granularity[{n!r}]")[0]
+        if g not in table.granularities:
+            raise ValueError(f"granularity[{n!r}] = {g!r} was not scanned; scanned: {list(table.granularities)}")
+        out[n] = None if g == table.granularities[0] else g
+    return out
