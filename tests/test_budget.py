@@ -188,7 +188,7 @@ def test_plan_budget_equals_exhaustive_for_every_budget_kind(seed):
     kib_bits = params[:, None] * b[None, :] + 64  # per-tensor grid: one scale and zero point
     cases = [
         ("planned_kib", kib_bits, float(rng.uniform(kib_bits.min(1).sum(), kib_bits.max(1).sum())) / 8192),
-        ("mean_bits", params[:, None] * b[None, :], float(rng.uniform(2, 8))),
+        ("mean_bits", kib_bits, float(rng.uniform(2, 8))),  # stored bits per weight, the same count
         ("bops", macs[:, None] * b[None, :] * 8, float(rng.uniform((macs * 16).sum(), (macs * 64).sum()))),
     ]
     for kind, costs, value in cases:
@@ -243,11 +243,13 @@ def test_large_table_is_solved_and_beats_greedy_and_uniform():
     greedy = _greedy_mean_bits(noise, params, t.bits, 5 * sum(params))
     greedy_noise = sum(noise[i, j] for i, j in enumerate(greedy))
     assert sum(p * t.bits[j] for p, j in zip(params, greedy, strict=True)) <= 5 * sum(params)
-    plan = plan_budget(t, mean_bits=5)
-    assert plan.mean_bits <= 5
+    # mean bits are stored bits: 5 code bits a weight plus one 64-bit scale and zero point an entry
+    five = (5 * sum(params) + 64 * len(params)) / sum(params)
+    plan = plan_budget(t, mean_bits=five)
+    assert plan.mean_bits <= five
     assert plan.predicted_sqnr_db >= -10 * math.log10(uniform_noise) - 1e-9
     assert plan.predicted_sqnr_db >= -10 * math.log10(greedy_noise) - 1e-9
-    assert uniform.mean_bits == 5
+    assert uniform.mean_bits == pytest.approx(five, rel=1e-12)
     # the solver's noise is what its own bit widths give, by the table
     chosen = sum(noise[i, t.bits.index(plan.bits[n])] for i, n in enumerate(t.layers))
     assert plan.predicted_sqnr_db == pytest.approx(-10 * math.log10(chosen), abs=1e-9)
@@ -260,7 +262,8 @@ def test_pareto_front_points_are_plan_budget_optima():
     costs = [c for c, _, _ in front]
     sq = [s for _, s, _ in front]
     assert costs == sorted(costs) and sq == sorted(sq)
-    assert costs[0] == 2.0 and costs[-1] == 8.0
+    total = sum(t.params(n) for n in t.layers)  # stored bits: codes + a 64-bit scale and zero point
+    assert costs[0] == pytest.approx(2 + 64 * 5 / total) and costs[-1] == pytest.approx(8 + 64 * 5 / total)
     for c, s, plan in front:
         assert plan.mean_bits == pytest.approx(c)
         assert plan_budget(t, mean_bits=c).predicted_sqnr_db == pytest.approx(s, abs=1e-9)
@@ -287,8 +290,9 @@ def test_infeasible_budget_states_the_smallest_feasible_one():
     need = float(re.search(r"smallest feasible budget is planned_kib=([0-9.]+) ", str(e.value)).group(1))
     assert need == pytest.approx((4000 * 4 + 128) / 8192, abs=1e-4)
     assert plan_budget(t, planned_kib=need).bits == {"layer0": 4, "layer1": 4}
-    with pytest.raises(ValueError, match=r"smallest feasible budget is mean_bits=4\.0000"):
-        plan_budget(t, mean_bits=3.9)
+    # stored bits per weight: (4000 x 4 + 2 x 64) / 4000
+    with pytest.raises(ValueError, match=r"smallest feasible budget is mean_bits=4\.0320"):
+        plan_budget(t, mean_bits=4.03)
     # (5000 + 7000) MACs x 4 weight bits x 8 input bits
     with pytest.raises(ValueError, match=r"bops=100 is infeasible; the smallest feasible budget is bops=384000 "):
         plan_budget(t, bops=100)
@@ -342,7 +346,7 @@ def _brute_plan(t, budgets, allowed=None, fixed=None, input_bits=8):
     for combo in itertools.product(*menus):
         b = np.array(combo)
         cost = {"planned_kib": float((params * b + 64).sum()) / 8192,
-                "mean_bits": float((params * b).sum()) / params.sum(),
+                "mean_bits": float((params * b + 64).sum()) / params.sum(),  # stored bits
                 "bops": int((macs * b * input_bits).sum())}
         if all(cost[k] <= v for k, v in budgets.items()):
             n = sum(noise[i, t.bits.index(x)] for i, x in enumerate(combo))
@@ -395,7 +399,7 @@ def test_budgets_infeasible_together_name_the_least_feasible_value(monkeypatch):
         def costs(self, table, cost):
             return by_cost[cost]
 
-    menu = Conflict(["layer0"], [[(4, None), (8, None)]], [np.array([0.1, 0.001])], 8)
+    menu = Conflict(["layer0"], [[(4, None, "tensor"), (8, None, "tensor")]], [np.array([0.1, 0.001])], 8)
     monkeypatch.setattr(solver_mod, "build_menu", lambda *a, **k: menu)
     assert plan_budget(t, planned_kib=3.0, bops=100).bits == {"layer0": 8}
     assert plan_budget(t, planned_kib=1.0, bops=300).bits == {"layer0": 4}

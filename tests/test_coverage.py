@@ -19,6 +19,7 @@ from qwidgets import (
     scan,
 )
 from qwidgets.planning.costs import weight_storage_bits
+from tests.stored_bits import mean_bits_for
 
 
 class TextLSTM(nn.Module):
@@ -62,7 +63,7 @@ def test_table_and_plan_files_keep_entries(scanned, tmp_path):
     u = SensitivityTable.load(tmp_path / "t.json")
     assert u.coverage == t.coverage and u.has_input("out") and not u.has_input("rnn.weight_hh_l0")
     assert u.weight_channels("emb") == 50
-    plan = plan_budget(u, mean_bits=6)
+    plan = plan_budget(u, mean_bits=mean_bits_for(u, 6))
     text = plan.to_json()
     layers = json.loads(text)["layers"]
     assert layers["emb"]["has_input"] is False and layers["out"]["has_input"] is True
@@ -89,7 +90,7 @@ def test_whole_model_budget_counts_unplanned_weights(scanned):
 
 def test_other_checkpoint_is_refused_unless_allowed(scanned):
     net, tokens, t = scanned
-    plan = plan_budget(t, mean_bits=6)
+    plan = plan_budget(t, mean_bits=mean_bits_for(t, 6))
     other = copy.deepcopy(net)
     with torch.no_grad():
         other.rnn.weight_hh_l0.mul_(1.01)
@@ -103,7 +104,7 @@ def test_other_checkpoint_is_refused_unless_allowed(scanned):
 
 def test_strict_raises_on_a_missing_entry(scanned):
     net, _, t = scanned
-    plan = plan_budget(t, mean_bits=6)
+    plan = plan_budget(t, mean_bits=mean_bits_for(t, 6))
     d = json.loads(plan.to_json())
     d["layers"]["renamed"] = d["layers"].pop("out")
     edited = Plan.from_json(json.dumps(d))

@@ -24,6 +24,7 @@ from qwidgets.planning.bootstrap import paired_drop_interval
 from qwidgets.planning.evaluate import evaluate_plan
 from qwidgets.planning.scanning import scan
 from qwidgets.planning.solver import plan_budget
+from tests.stored_bits import mean_bits_for
 
 
 def _mean(out, target):
@@ -87,7 +88,7 @@ def test_metric_curve_points_equal_evaluate_plan_and_plan_budget():
     curve = metric_curve(net, held_x, t, metric=_accuracy, target=held_y, cost="mean_bits", points=4,
                          n_boot=200, progress=lambda i, n: calls.append((i, n)))
     assert calls == [(1, 4), (2, 4), (3, 4), (4, 4)]
-    assert [round(p.budget, 6) for p in curve] == [2.0, 4.0, 6.0, 8.0]
+    assert [round(p.budget, 6) for p in curve] == [round(mean_bits_for(t, b), 6) for b in (2, 4, 6, 8)]
     for k, p in enumerate(curve):
         assert isinstance(p, CurvePoint)
         assert p.plan.mean_bits <= p.budget + 1e-9
@@ -106,7 +107,7 @@ def test_metric_curve_points_equal_evaluate_plan_and_plan_budget():
 def test_evaluate_plan_interval_over_many_batches_equals_one_batch():
     net, x, y = _classifier()
     t = scan(net, x[:100], bits=(2, 4), progress=False)
-    plan = plan_budget(t, mean_bits=2)
+    plan = plan_budget(t, mean_bits=mean_bits_for(t, 2))
     one = evaluate_plan(net, x, plan, metric=_accuracy, target=y, confidence=0.9, n_boot=100)
     batches = torch.utils.data.DataLoader(torch.utils.data.TensorDataset(x), batch_size=150)
     targets = [y[i:i + 150] for i in range(0, 600, 150)]
@@ -135,4 +136,4 @@ def test_confidence_needs_a_metric():
     net, x, _ = _classifier()
     t = scan(net, x[:50], bits=(2, 4), progress=False)
     with pytest.raises(ValueError, match="confidence needs a metric"):
-        evaluate_plan(net, x[:50], plan_budget(t, mean_bits=4), confidence=0.95)
+        evaluate_plan(net, x[:50], plan_budget(t, mean_bits=mean_bits_for(t, 4)), confidence=0.95)

@@ -26,6 +26,7 @@ from qwidgets import (
     scan,
 )
 from qwidgets.model.entries import find_entries
+from tests.stored_bits import mean_bits_for
 from tests.test_probe import assert_untouched, snapshot
 
 BITS = (3, 6)
@@ -78,7 +79,7 @@ def check_against_naive(model, data, expect_names, *, tol=1e-3):
                 own = 10 * math.log10(float((w * w).sum()) / float((err * err).sum()))
                 assert t.sqnr_db(name, b, "layer") == pytest.approx(own, abs=1e-6)
     # a whole plan, applied and evaluated, against the naive loop with every weight overwritten
-    plan = plan_budget(t, mean_bits=4.5)
+    plan = plan_budget(t, mean_bits=mean_bits_for(t, 4.5))
     rep = evaluate_plan(model, data, plan)
     replacements = {entries[n].param: plan.layers[n].weight for n in plan.layers}
     assert rep.measured_sqnr_db == pytest.approx(naive_sqnr(model, data, replacements), abs=tol)

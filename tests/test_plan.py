@@ -121,7 +121,7 @@ def test_costs_of_a_plan_counted_by_hand():
     bits = 216 * 4 + 144 * 8 + 320 * 12 + (8 + 4 + 5) * 64
     assert plan.planned_kib == bits / 8192
     assert plan.float_planned_kib == (216 + 144 + 320) * 32 / 8192
-    assert plan.mean_bits == (216 * 4 + 144 * 8 + 320 * 12) / 680
+    assert plan.mean_bits == bits / 680  # stored bits per weight: codes, scales, zero points
     # layer "0" has no input grid: the assumed 8 bits count
     assert plan.bops == 400 * 4 * 8 + 800 * 8 * 8 + 1200 * 12 * 12
     assert plan.float_bops == (400 + 800 + 1200) * 32 * 32

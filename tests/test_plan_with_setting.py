@@ -25,6 +25,7 @@ from qwidgets import (
     plan_budget,
     scan,
 )
+from tests.stored_bits import mean_bits_for
 
 
 def _naive_quantize(w: torch.Tensor, grid: UniformGrid) -> torch.Tensor:
@@ -71,7 +72,7 @@ def test_learned_grid_reaches_apply_evaluate_and_export(family):
     x = torch.randn(*shape)
     state = {k: v.clone() for k, v in model.state_dict().items()}
     table = scan(model, x, (3, 4, 6), scope="model", progress=False)
-    plan = plan_budget(table, mean_bits=4.0)
+    plan = plan_budget(table, mean_bits=mean_bits_for(table, 4.0))
     module = model.get_submodule(layer)
     inputs = capture_inputs(model, x, [layer])[layer]
     start = plan.layers[layer].weight
@@ -117,7 +118,8 @@ def test_learned_grid_reaches_apply_evaluate_and_export(family):
 def test_with_setting_bad_input():
     torch.manual_seed(0)
     model = nn.Sequential(nn.Linear(4, 6), nn.ReLU(), nn.Linear(6, 2))
-    plan = plan_budget(scan(model, torch.randn(8, 4), (2, 4), scope="model", progress=False), mean_bits=4.0)
+    table = scan(model, torch.randn(8, 4), (2, 4), scope="model", progress=False)
+    plan = plan_budget(table, mean_bits=mean_bits_for(table, 4.0))
     with pytest.raises(ValueError, match="layer_name 'nope' is not in the plan"):
         plan.with_setting("nope", LayerSetting(weight=UniformGrid(4, 0.1)))
     with pytest.raises(TypeError, match="layer_name must be a str"):

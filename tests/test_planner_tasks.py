@@ -12,6 +12,7 @@ from naive_loops import naive_sqnr_db
 from torch import nn
 
 from qwidgets import BudgetPlanner, evaluate_plan, metric_curve
+from tests.stored_bits import mean_bits_for
 
 
 def _accuracy(out, t):
@@ -27,7 +28,7 @@ def setup():
         y, held_y = net(x).argmax(1), net(held).argmax(1)  # labels the float model gets right
     p = BudgetPlanner(net, x, metric=_accuracy, target=y, eval_data=held, eval_target=held_y,
                       bits=(2, 3, 4, 8), progress=False)
-    p.set_budget("mean_bits", 3.0)
+    p.set_budget("mean_bits", mean_bits_for(p.table, 3.0))  # stored bits: codes + scales
     return net, x, held, held_y, p
 
 

@@ -23,6 +23,7 @@ from qwidgets import (
 )
 from qwidgets.learn.whole_plan import PlanGrids
 from qwidgets.planning.plan import model_fingerprint
+from tests.stored_bits import mean_bits_for
 
 # Max (1960), optimum uniform quantizer for a unit Gaussian (GUIDE.md): N levels -> (step, MSE)
 MAX_TABLE = {4: (0.9957, 0.1188), 8: (0.5860, 0.03744)}
@@ -384,7 +385,8 @@ def test_embedding_recurrent_attention_and_tied_entries():
     torch.manual_seed(0)
     model = TinyTagger().eval()
     tokens = torch.randint(0, 20, (48, 6))
-    plan = plan_budget(scan(model, tokens, bits=(2, 3), progress=False), mean_bits=2.5)
+    table = scan(model, tokens, bits=(2, 3), progress=False)
+    plan = plan_budget(table, mean_bits=mean_bits_for(table, 2.5))
     params = {e.name: e.param for e in find_entries(model)}
     assert {"emb", "rnn.weight_ih_l0", "attn.in_proj", "attn.out_proj"} <= set(plan.layers)
     snap = snapshot(model)

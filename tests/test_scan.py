@@ -27,6 +27,7 @@ from qwidgets.planning.evaluate import evaluate_plan
 from qwidgets.planning.scanning import scan
 from qwidgets.planning.solver import plan_budget
 from qwidgets.planning.table import SensitivityTable
+from tests.stored_bits import mean_bits_for
 
 # digits_mlp (a small MLP trained deterministically on sklearn's digits) is in conftest.py
 
@@ -203,7 +204,7 @@ def test_predicted_sqnr_at_six_bits_and_more(digits_mlp, mode):
     net, x, y = digits_mlp
     t = scan(net, x, bits=(6, 7, 8, 10), quantize=mode, progress=False)
     for mean_bits in (6.0, 6.6, 7.3, 8.5):
-        plan = plan_budget(t, mean_bits=mean_bits)
+        plan = plan_budget(t, mean_bits=mean_bits_for(t, mean_bits))
         assert min(plan.bits.values()) >= 6
         rep = evaluate_plan(net, x, plan, metric=_accuracy, target=y)
         ref, alone, together = _noise_per_layer(net, x, plan)
@@ -279,7 +280,7 @@ def test_table_costs_shapes_and_round_trip(tmp_path, digits_mlp):
     np.testing.assert_array_equal(u.sqnr_array("layer"), t.sqnr_array("layer"))
     for n in t.layers:
         assert torch.equal(u.weight_grid(n, 4).scale, t.weight_grid(n, 4).scale)
-    assert plan_budget(u, mean_bits=6).bits == plan_budget(t, mean_bits=6).bits
+    assert plan_budget(u, mean_bits=mean_bits_for(u, 6)).bits == plan_budget(t, mean_bits=mean_bits_for(t, 6)).bits
     from qwidgets.viz.heatmap import plot_sensitivity
 
     fig = plot_sensitivity(t)
@@ -341,7 +342,7 @@ def test_synthetic_infinite_sqnr_round_trips(tmp_path):
     t = SensitivityTable.synthetic(np.array([[10.0, math.inf]]), params=[8], bits=(4, 8))
     t.save(tmp_path / "t.json")
     assert SensitivityTable.load(tmp_path / "t.json").sqnr_db("layer0", 8) == math.inf
-    assert plan_budget(t, mean_bits=8).predicted_sqnr_db == math.inf
+    assert plan_budget(t, mean_bits=mean_bits_for(t, 8)).predicted_sqnr_db == math.inf
 
 
 def test_apply_plan_from_scan_matches_scan_at_single_layer(digits_mlp):

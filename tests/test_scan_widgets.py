@@ -276,7 +276,9 @@ def test_planner_kind_switch_keeps_the_plan(setup):
     p.controls["kind"].value = "mean_bits"
     assert p.plan is plan
     weights = {n: table.params(n) for n in plan.layers}
-    assert p.budget == pytest.approx(sum(weights[n] * plan.bits[n] for n in plan.layers) / sum(weights.values()))
+    # stored bits per weight: codes plus a float32 scale and an int32 zero point per channel
+    stored = sum(weights[n] * plan.bits[n] + 64 * table.weight_channels(n) for n in plan.layers)
+    assert p.budget == pytest.approx(stored / sum(weights.values()))
 
 
 def test_planner_keyboard_step_is_about_one_percent(setup):

@@ -151,7 +151,7 @@ def _brute(t, budgets, fixed=None, allowed=None):
     for combo in itertools.product(*menus):
         kib = sum(t.params(n) * w + 64 for n, (w, _) in zip(t.layers, combo, strict=True)) / 8192
         bops = sum(t.macs(n) * w * i for n, (w, i) in zip(t.layers, combo, strict=True))
-        mean = sum(t.params(n) * w for n, (w, _) in zip(t.layers, combo, strict=True)) / sum(t.params(n) for n in t.layers)
+        mean = kib * 8192 / sum(t.params(n) for n in t.layers)  # stored bits per weight
         cost = {"planned_kib": kib, "bops": bops, "mean_bits": mean}
         if all(cost[k] <= v for k, v in budgets.items()):
             noise = sum(nw[r, t.bits.index(w)] + ni[r, t.input_bits.index(i)] for r, (w, i) in enumerate(combo))
