@@ -40,7 +40,7 @@ def planned():
     x = torch.randn(40, 3, 4, 4)
     t = scan(net, x, bits=(3, 4, 8), progress=False, granularity=("channel", 16))
     kib = 0.2 * 32 * sum(t.params(n) for n in t.layers) / 8192
-    plan = plan_budget(t, weight_kib=kib, kib_scope="planned", fixed={"0": {"bits": 4, "granularity": "channel"}})
+    plan = plan_budget(t, planned_kib=kib, fixed={"0": {"bits": 4, "granularity": "channel"}})
     return net, x, plan, t
 
 

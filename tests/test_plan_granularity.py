@@ -9,13 +9,14 @@ today's rule for channel grids (a float32 scale and an int32 zero point per chan
 from __future__ import annotations
 
 import itertools
+import json
 import math
 
 import pytest
 import torch
 from torch import nn
 
-from qwidgets import DeviceRules, Plan, pareto_front, plan_budget, scan
+from qwidgets import DeviceRules, Plan, SensitivityTable, pareto_front, plan_budget, scan
 from qwidgets.planning.costs import block_storage_bits
 
 BITS = (2, 4, 8)
@@ -77,12 +78,12 @@ def test_planner_equals_exhaustive_search_under_a_kib_budget(table, fraction):
     float_bits = 32 * sum(table.params(n) for n in table.layers)
     kib = fraction * float_bits / 8192
     want = _exhaustive(table, math.floor(kib * 8192))
-    plan = plan_budget(table, weight_kib=kib, kib_scope="planned")
+    plan = plan_budget(table, planned_kib=kib)
     got = {n: (plan.bits[n], plan.granularity[n]) for n in table.layers}
     noise = sum(10 ** (-table.sqnr_db(n, b, granularity=g) / 10) for n, (b, g) in got.items())
     assert noise == pytest.approx(want[0], rel=1e-6)  # same optimum (ties may pick another plan)
-    assert plan.weight_kib * 8192 == sum(_storage(table, n, b, g) for n, (b, g) in got.items())
-    assert plan.weight_kib <= kib
+    assert plan.planned_kib * 8192 == sum(_storage(table, n, b, g) for n, (b, g) in got.items())
+    assert plan.planned_kib <= kib
 
 
 def test_mean_bits_are_stored_bits_and_blocks_pay_for_scales(table):
@@ -91,7 +92,7 @@ def test_mean_bits_are_stored_bits_and_blocks_pay_for_scales(table):
         want = _exhaustive(table, math.floor(mean_bits * params))
         plan = plan_budget(table, mean_bits=mean_bits)
         stored = sum(_storage(table, n, plan.bits[n], plan.granularity[n]) for n in table.layers)
-        assert plan.mean_weight_bits == stored / params <= mean_bits
+        assert plan.mean_bits == stored / params <= mean_bits
         noise = sum(10 ** (-table.sqnr_db(n, plan.bits[n], granularity=plan.granularity[n]) / 10)
                     for n in table.layers)
         assert noise == pytest.approx(want[0], rel=1e-6)
@@ -99,18 +100,18 @@ def test_mean_bits_are_stored_bits_and_blocks_pay_for_scales(table):
 
 def test_pins_and_granularity_menu(table):
     kib = 0.3 * 32 * sum(table.params(n) for n in table.layers) / 8192
-    p = plan_budget(table, weight_kib=kib, kib_scope="planned", fixed={"0": {"bits": 4, "granularity": 8}})
+    p = plan_budget(table, planned_kib=kib, fixed={"0": {"bits": 4, "granularity": 8}})
     assert (p.bits["0"], p.granularity["0"]) == (4, 8)
-    q = plan_budget(table, weight_kib=kib, kib_scope="planned", allowed_granularity=("channel",))
+    q = plan_budget(table, planned_kib=kib, allowed_granularity=("channel",))
     assert set(q.granularity.values()) == {"channel"}
     with pytest.raises(ValueError, match="did not scan"):
-        plan_budget(table, weight_kib=kib, allowed_granularity=(32,))
+        plan_budget(table, planned_kib=kib, allowed_granularity=(32,))
     with pytest.raises(ValueError, match="'bits', 'input_bits' and / or 'granularity'"):
-        plan_budget(table, weight_kib=kib, fixed={"0": {"width": 4}})
+        plan_budget(table, planned_kib=kib, fixed={"0": {"width": 4}})
 
 
 def test_pareto_front_runs_over_bits_and_granularity(table):
-    pts = pareto_front(table, "weight_kib", kib_scope="planned", max_points=None)
+    pts = pareto_front(table, "planned_kib", max_points=None)
     assert any(8 in p.granularity.values() for _, _, p in pts)
     for cost, sqnr, _ in pts:  # every point is the exhaustive optimum of its own cost
         want = _exhaustive(table, round(cost * 8192))
@@ -123,7 +124,7 @@ def test_plan_file_round_trips_block_grids(table, tmp_path):
     plan.save(tmp_path / "p.json")
     back = Plan.load(tmp_path / "p.json")
     assert back.granularity == plan.granularity and back.scale_bits == 32
-    assert back.weight_kib == plan.weight_kib
+    assert back.planned_kib == plan.planned_kib
     for n in table.layers:
         a, b = plan.layers[n].weight, back.layers[n].weight
         assert torch.equal(a.scale_tensor(), b.scale_tensor()) and a.block_size == b.block_size
@@ -136,7 +137,53 @@ def test_plan_file_round_trips_block_grids(table, tmp_path):
 
 def test_scale_bits_from_the_rules_cost_the_plan(table):
     kib = 0.3 * 32 * sum(table.params(n) for n in table.layers) / 8192
-    p = plan_budget(table, weight_kib=kib, kib_scope="planned", fixed={"0": {"bits": 4, "granularity": 8}},
+    p = plan_budget(table, planned_kib=kib, fixed={"0": {"bits": 4, "granularity": 8}},
                     rules=DeviceRules(scale_bits=32))
     assert p.scale_bits == 32
-    assert p.weight_kib * 8192 == sum(_storage(table, n, p.bits[n], p.granularity[n], 32) for n in table.layers)
+    assert p.planned_kib * 8192 == sum(_storage(table, n, p.bits[n], p.granularity[n], 32) for n in table.layers)
+
+
+def test_older_plan_and_table_versions_still_load(table):
+    plan = table.make_plan({n: 4 for n in table.layers})
+    d = json.loads(plan.to_json())
+    assert d["version"] == 3
+    # version 2: the same fields, its figures' mean bits counted code bits only
+    d["version"] = 2
+    d["figures"]["mean_bits"] = 4.0
+    assert Plan.from_json(json.dumps(d)).mean_bits == plan.mean_bits > 4.0
+    d["figures"]["mean_bits"] = plan.mean_bits  # stored bits in a version 2 file: not its meaning
+    with pytest.raises(ValueError, match="figures.mean_bits"):
+        Plan.from_json(json.dumps(d))
+    blocked = json.loads(table.make_plan({n: 4 for n in table.layers}, granularity={"0": 8}).to_json())
+    blocked["version"] = 2
+    with pytest.raises(ValueError, match="block grid, which plan files hold from version 3"):
+        Plan.from_json(json.dumps(blocked))
+    # a table of one granularity written as version 2 reads; granularity fields need version 3
+    t = table.to_dict()
+    assert t["version"] == 3 and "granularities" in t
+    one = scan_one_granularity_dict(t)
+    one["version"] = 2
+    assert _load(one).granularities == ("channel",)
+    t["version"] = 2
+    with pytest.raises(ValueError, match="expected an object with fields"):
+        _load(t)
+
+
+def scan_one_granularity_dict(d):
+    """The table's data with only its first granularity (what a version 2 file held)."""
+    d = json.loads(json.dumps(d))
+    del d["granularities"]
+    for e in d["layers"]:
+        del e["granularity_rows"]
+    d["coverage"].pop("notes", None)
+    return d
+
+
+def _load(d):
+    import tempfile
+    from pathlib import Path
+
+    with tempfile.TemporaryDirectory() as tmp:
+        path = Path(tmp) / "t.json"
+        path.write_text(json.dumps(d))
+        return SensitivityTable.load(path)

@@ -13,12 +13,13 @@ entry's input was scanned on its own). Optional entry fields: model_pass and kin
 axis (the weight's per-channel axis, default 0: with ``per_channel`` every weight grid has
 this axis, without it weight grids are whole-tensor, axis null), has_input (boolean),
 shared_with (a list of names), stored_bits (an integer or null) and digest (hex or null).
-Version 1 had no input_bits and no input rows. Optional since: a top-level granularities (the
+Version 1 had no input_bits and no input rows. Version 4 added, optional: a top-level granularities (the
 weight grid options scanned, ``"tensor"``, ``"channel"`` or block sizes as digits; the first
 is the rows above, default ``["channel"]``, or ``["tensor"]`` without per_channel) and, when
 it names more than one, each entry's granularity_rows: for every other option an object of
 layer_sqnr_db / model_sqnr_db (null values where the entry skipped the option) and
-weight_grids (block grids with block_size and the shape of their scales).
+weight_grids (block grids with block_size and the shape of their scales); coverage notes.
+Versions 1 to 3 still read (one granularity).
 """
 
 from __future__ import annotations
@@ -47,8 +48,9 @@ QUANTIZE_MODES = ("weight", "input", "both", "separate")
 SCOPES = ("layer", "model", "both")
 ESTIMATES = ("exact", "gain")  # how a table's model scope was found (see scan)
 TABLE_FORMAT = "qwidgets sensitivity table"
-TABLE_VERSION = 3  # 2 added input_bits and the input rows of quantize="separate", 3 activation
-# entries (weight_shape [], the optional partner); every version still reads
+TABLE_VERSION = 4  # 2 added input_bits and the input rows of quantize="separate", 3 activation
+# entries (weight_shape [], the optional partner), 4 granularities; every version still reads
+TABLE_READABLE = (1, 2, 3, 4)
 
 _TOP = ("format", "version", "bits", "quantize", "method", "per_channel", "fingerprint",
         "n_samples", "layers")
@@ -65,7 +67,8 @@ def table_fields(d) -> dict:
         raise FieldError("expected a JSON object at the top level")
     version = d.get("version")
     keys = _TOP if version == 1 else _TOP + ("input_bits",)
-    if not set(keys) <= set(d) <= set(keys) | {"coverage", "estimate", "notes", "granularities"}:
+    more = {"granularities"} if version == 4 else set()  # version 4: several granularities
+    if not set(keys) <= set(d) <= set(keys) | {"coverage", "estimate", "notes"} | more:
         raise FieldError(f"expected an object with fields {list(keys)} (and optionally coverage, "
                          "estimate, notes)")
     notes = d.get("notes", [])
@@ -74,8 +77,8 @@ def table_fields(d) -> dict:
     # tables written before "estimate" existed hold exact model scopes
     if d.get("estimate", "exact") not in ESTIMATES:
         raise FieldError(f"estimate must be one of {ESTIMATES}, got {d.get('estimate')!r}")
-    if d["format"] != TABLE_FORMAT or version not in (1, 2, TABLE_VERSION) or isinstance(version, bool):
-        raise FieldError(f"format / version must be {TABLE_FORMAT!r} / 1, 2 or {TABLE_VERSION}, "
+    if d["format"] != TABLE_FORMAT or version not in TABLE_READABLE or isinstance(version, bool):
+        raise FieldError(f"format / version must be {TABLE_FORMAT!r} / one of {TABLE_READABLE}, "
                          f"got {d['format']!r} / {version!r}")
     if not isinstance(d["bits"], list) or not d["bits"]:
         raise FieldError("bits must be a non-empty list of widths")
@@ -85,7 +88,7 @@ def table_fields(d) -> dict:
     if separate != bool(ibits):
         raise FieldError("input_bits must be non-empty exactly when quantize is 'separate'")
     entry_keys = set(_ENTRY) | ({"input_layer_sqnr_db", "input_model_sqnr_db"} if version != 1 else set())
-    optional = _ENTRY_OPTIONAL if version == 3 else _ENTRY_OPTIONAL[:-1]  # 3 added partner
+    optional = _ENTRY_OPTIONAL if version in (3, 4) else _ENTRY_OPTIONAL[:-1]  # 3 added partner
     if not isinstance(d["layers"], list) or not d["layers"]:
         raise FieldError("layers must be a non-empty list")
     names, info, sq, grids = [], {}, {"layer": [], "model": []}, {"weight": {}, "input": {}}
@@ -93,8 +96,8 @@ def table_fields(d) -> dict:
     widths = {"weight": (bits, "bits"), "input": (ibits, "input_bits") if separate else (bits, "bits")}
     for k, e in enumerate(d["layers"]):
         where = f"layers[{k}]"
-        if not isinstance(e, dict) or not entry_keys <= set(e) or not set(e) <= entry_keys | set(optional) | {
-                "granularity_rows"}:
+        if not isinstance(e, dict) or not entry_keys <= set(e) or not set(e) <= entry_keys | set(optional) | (
+                {"granularity_rows"} if more else set()):
             raise FieldError(f"{where} must be an object with fields {sorted(entry_keys)} "
                              f"(and optionally {sorted(optional)})")
         name = _table_entry(e, where, info)
@@ -139,7 +142,7 @@ def table_fields(d) -> dict:
         layer_sqnr=arrays["layer"], model_sqnr=arrays["model"],
         weight_grids={n: grids["weight"].get(n) for n in names} if grids["weight"] else None,
         input_grids=input_grids, n_samples=int(d["n_samples"]), input_bits=ibits,
-        coverage=_coverage_from_json(d.get("coverage")), estimate=d.get("estimate", "exact"),
+        coverage=_coverage_from_json(d.get("coverage"), version), estimate=d.get("estimate", "exact"),
         input_layer_sqnr=arrays.get("input_layer"), input_model_sqnr=arrays.get("input_model"),
         notes=notes, granularities=grans, granularity_rows=more)
 
@@ -226,13 +229,14 @@ def _grids(v, where: str, widths: tuple, column: str, kind: str, axis: int | Non
     return out
 
 
-def _coverage_from_json(c):
+def _coverage_from_json(c, version=TABLE_VERSION):
     from ..model.entries import Coverage
 
     if c is None:
         return None
     if not isinstance(c, dict) or not {"scanned", "total", "skipped", "total_bits"} <= set(c) <= {
-            "scanned", "total", "skipped", "total_bits", "float_activations", "skipped_options"}:
+            "scanned", "total", "skipped", "total_bits", "float_activations"} | (
+            {"skipped_options"} if version == 4 else set()):
         raise FieldError("coverage must be an object with fields scanned, total, skipped, total_bits "
                          "(and optionally float_activations, skipped_options)")
     floats = c.get("float_activations", [])
