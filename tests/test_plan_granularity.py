@@ -187,3 +187,14 @@ def _load(d):
         path = Path(tmp) / "t.json"
         path.write_text(json.dumps(d))
         return SensitivityTable.load(path)
+
+
+def test_planner_readout_names_each_entrys_granularity(table):
+    from qwidgets.widgets.planner_text import layers_html
+
+    plan = table.make_plan({n: 4 for n in table.layers}, granularity={"0": 8})
+    html = layers_html(table, plan, {})
+    assert "<th>granularity</th>" in html and "blocks of 8" in html and "per channel" in html
+    # each row's "model SQNR alone" is the table's figure for that entry's own granularity
+    assert f"{table.sqnr_db('0', 4, granularity=8):.1f}" in html
+    assert [r["granularity"] for r in plan.to_rows()] == [8, "channel", "channel"]

@@ -17,7 +17,8 @@ import numpy as np
 from ..core.checks import check_int
 
 __all__ = ["check_granularity", "check_option", "input_axis", "option_label", "option_from_label",
-           "block_skip_reason", "grid_options", "scan_granularity", "split_granularities"]
+           "block_skip_reason", "grid_options", "scan_granularity", "split_granularities",
+           "granularity_rows"]
 
 
 def check_option(option, name: str = "granularity"):
@@ -140,4 +141,27 @@ def split_granularities(fields: dict) -> dict:
         rows[opt] = part
     first = rows.pop(grans[0])
     out.update(first, granularities=grans, granularity_rows=rows)
+    return out
+
+
+def granularity_rows(rows, grans: tuple, layers: list, n_bits: int, sqnr: dict) -> dict:
+    """A table's rows of its options after the first, checked: option -> {"layer", "model"
+    (arrays of ``len(layers) x n_bits`` given exactly where the table's own ``sqnr`` is),
+    "grids" (entry -> grids, or None)}."""
+    rows = dict(rows or {})
+    if set(rows) != set(grans[1:]):
+        raise ValueError(f"granularity_rows must hold the options {list(grans[1:])} (the first, "
+                         f"{grans[0]!r}, is the table's own rows), got {list(rows)}")
+    out, shape = {}, (len(layers), n_bits)
+    for opt, part in rows.items():
+        more = {}
+        for scope in ("layer", "model"):
+            arr = part.get(f"{scope}_sqnr")
+            if (arr is None) != (sqnr[scope] is None) or (arr is not None and np.shape(arr) != shape):
+                raise ValueError(f"granularity_rows[{opt!r}]['{scope}_sqnr'] must be a {shape} array "
+                                 f"exactly when {scope}_sqnr is given")
+            more[scope] = None if arr is None else np.asarray(arr, dtype=float).copy()
+        g = part.get("weight_grids")
+        more["grids"] = None if g is None else {n: None if g.get(n) is None else list(g[n]) for n in layers}
+        out[opt] = more
     return out

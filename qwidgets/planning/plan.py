@@ -321,8 +321,9 @@ class Plan:
     def to_rows(self) -> list[dict]:
         """One dict per layer: bits, weight storage (bits, KiB) and BOPs, with float32 figures.
 
-        Keys: layer, bits, weight_bits, input_bits (None: float), params, storage_bits,
-        kib (its share of :attr:`planned_kib`), float_kib, bops, float_bops.
+        Keys: layer, bits, weight_bits, granularity (:attr:`granularity`), input_bits (None:
+        float), params, storage_bits, kib (its share of :attr:`planned_kib`), float_kib, bops,
+        float_bops.
         """
         rows = []
         for n, s in self.layers.items():
@@ -331,6 +332,7 @@ class Plan:
                 "layer": n,
                 "bits": self.bits[n],
                 "weight_bits": self._weight_bits(n),
+                "granularity": None if s.weight is None else s.weight.granularity,
                 "input_bits": None if s.input is None else s.input.bits,
                 "params": self._params(n),
                 "storage_bits": stored,

@@ -15,7 +15,7 @@ from ..core.grid import UniformGrid
 from ..core.setting import LayerSetting
 from ..model.entries import Coverage
 from .files import read_text, write_text
-from .granularity import check_granularity
+from .granularity import check_granularity, granularity_rows
 from .plan import Plan
 from .synthetic import synthetic_table
 from .table_html import table_html, table_rows
@@ -93,25 +93,8 @@ class SensitivityTable:
     def _set_granularities(self, granularities, rows) -> None:
         """The weight granularity options (the first one is the rows above) and the rows of
         the others: ``rows[option] = {"layer_sqnr", "model_sqnr", "weight_grids"}``."""
-        grans = check_granularity(granularities, self.per_channel)
-        rows = dict(rows or {})
-        if set(rows) != set(grans[1:]):
-            raise ValueError(f"granularity_rows must hold the options {list(grans[1:])} (the first, "
-                             f"{grans[0]!r}, is the table's own rows), got {list(rows)}")
-        self.granularities = grans  #: weight grid options measured: "tensor", "channel", block sizes
-        self._more = {}
-        shape = (len(self.layers), len(self.bits))
-        for opt, part in rows.items():
-            more = {}
-            for scope in ("layer", "model"):
-                arr = part.get(f"{scope}_sqnr")
-                if (arr is None) != (self._sqnr[scope] is None) or (arr is not None and np.shape(arr) != shape):
-                    raise ValueError(f"granularity_rows[{opt!r}]['{scope}_sqnr'] must be a {shape} array "
-                                     f"exactly when {scope}_sqnr is given")
-                more[scope] = None if arr is None else np.asarray(arr, dtype=float).copy()
-            g = part.get("weight_grids")
-            more["grids"] = None if g is None else {n: None if g.get(n) is None else list(g[n]) for n in self.layers}
-            self._more[opt] = more
+        self.granularities = check_granularity(granularities, self.per_channel)  #: options measured
+        self._more = granularity_rows(rows, self.granularities, self.layers, len(self.bits), self._sqnr)
 
     def _weight_rows(self, granularity):
         """(SQNR arrays by scope, weight grids by entry) of one granularity option."""

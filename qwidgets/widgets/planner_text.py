@@ -126,20 +126,32 @@ def layers_html(table: SensitivityTable, plan: Plan, edited: dict) -> str:
     """One row per planned layer: bits (weight, and input where planned), size, BOPs, SQNR alone."""
     rows = plan.to_rows()
     with_inputs = any(r["input_bits"] is not None for r in rows)
+    grans = getattr(table, "granularities", ("channel",))
+    with_grans = len(grans) > 1  # the scan measured several: say which each entry got
     body = []
     for row in rows:
         name = row["layer"]
-        w = row["weight_bits"]
-        alone = table.sqnr_db(name, w, "model") if w in table.bits and name in table.layers else None
+        w, g = row["weight_bits"], row["granularity"]
+        g = g if g in grans else None
+        alone = table.sqnr_db(name, w, "model", granularity=g) \
+            if w in table.bits and name in table.layers else None
         note = f" ({edited[name]})" if name in edited else ""
         inp = f"<td style='text-align:right'>{row['input_bits'] or 'float'}</td>" if with_inputs else ""
+        gcell = "" if not with_grans else f"<td style='text-align:right'>{_granularity_label(row['granularity'])}</td>"
         body.append(
-            f"<tr><td>{html.escape(name + note)}</td><td style='text-align:right'>{w or 'float'}</td>{inp}"
+            f"<tr><td>{html.escape(name + note)}</td><td style='text-align:right'>{w or 'float'}</td>{gcell}{inp}"
             f"<td style='text-align:right'>{row['params']:,}</td>"
             f"<td style='text-align:right'>{row['kib']:,.3f}</td>"
             f"<td style='text-align:right'>{row['bops']:,}</td>"
             f"<td style='text-align:right'>{'-' if alone is None else f'{alone:.1f}'}</td></tr>")
-    head_in = "<th>input bits</th>" if with_inputs else ""
+    head_in = ("<th>granularity</th>" if with_grans else "") + ("<th>input bits</th>" if with_inputs else "")
     return ("<table><tr><th>layer</th><th>weight bits</th>" + head_in +
             "<th>weights</th><th>KiB</th><th>BOPs</th><th>model SQNR alone (dB)</th></tr>"
             + "".join(body) + "</table>")
+
+
+def _granularity_label(g) -> str:
+    """"per channel", "per tensor", "blocks of 32" or "-" (float weights)."""
+    if g is None:
+        return "-"
+    return f"per {g}" if isinstance(g, str) else f"blocks of {g}"
