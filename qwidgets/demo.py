@@ -349,7 +349,7 @@ def readme_paragraph(figures: dict | None = None) -> str:
     return (f"With BatchNorm folded into the convolutions, at {BOARD_WEIGHT_BUDGET_KIB:g} KiB for the "
             f"whole model (codes, scales and zero points, and the biases that stay in float32) "
             f"the planner gives the layers {min(bits.values())} to "
-            f"{max(bits.values())} bits ({spread}; {f['mean_bits']:.2f} on average), "
+            f"{max(bits.values())} bits ({spread}; {f['mean_bits']:.2f} stored bits per weight, scales included), "
             f"{f['smaller']:.1f} times smaller than the planned weights in float32, and held-out "
             f"accuracy goes from "
             f"{f['float_accuracy']:.1%} in float to {f['planned_accuracy']:.1%} "

@@ -62,7 +62,7 @@ def _naive_costs(net: nn.Module, plan, assumed_input_bits: int = 8) -> dict:
     return {
         "model_kib": model_bits / 8192,
         "planned_kib": planned_bits / 8192,
-        "mean_bits": sum(weights[n] * plan.bits[n] for n in plan.layers) / sum(weights.values()),
+        "mean_bits": planned_bits / sum(weights.values()),  # stored bits per planned weight
         "bops": sum(macs[n] * plan.bits[n] * assumed_input_bits for n in plan.layers),
     }
 

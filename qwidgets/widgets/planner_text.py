@@ -46,7 +46,7 @@ def plan_cost(plan: Plan, kind: str) -> float:
     >>> p = Plan({"": LayerSetting(weight=UniformGrid(4, 0.1))}, {"": 4}, fingerprint="-",
     ...          weight_shapes={"": (2, 4)}, macs={"": 8})
     >>> plan_cost(p, "mean_bits"), plan_cost(p, "bops")
-    (4.0, 256)
+    (12.0, 256)
     """
     if kind == "model_kib" and plan.model_kib is None:  # a plan that does not record the rest
         return plan.planned_kib
