@@ -186,7 +186,7 @@ def test_scan_plan_and_evaluate_load_neither_matplotlib_nor_ipywidgets():
         net = nn.Sequential(nn.Linear(8, 16), nn.ReLU(), nn.Linear(16, 4)).eval()
         x = torch.randn(32, 8)
         table = qwidgets.scan(net, x, bits=(2, 4, 8), progress=False)
-        plan = qwidgets.plan_budget(table, mean_bits=5)
+        plan = qwidgets.plan_budget(table, mean_bits=10)  # stored bits per weight, scales included
         report = qwidgets.evaluate_plan(net, x, plan)
         assert report is not None
         loaded = sorted(m for m in sys.modules if m.split(".")[0] in ("matplotlib", "ipywidgets"))

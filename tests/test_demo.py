@@ -10,6 +10,7 @@ from sklearn.metrics import accuracy_score
 from torch import nn
 
 from qwidgets import demo
+from tests.stored_bits import mean_bits_for
 
 
 @pytest.fixture(scope="module")
@@ -240,5 +241,5 @@ def test_board_budget_fits_a_plan_that_keeps_accuracy(bundle):
     # tolerance, twice that allowance; no published source).
     assert report.metric_planned >= report.metric_float - 0.02
     # every layer at 8 bits would not fit the board: the budget forces real choices
-    all8 = plan_budget(table, mean_bits=8.0)
+    all8 = plan_budget(table, mean_bits=mean_bits_for(table, 8.0))  # 8 code bits a weight
     assert all8.model_kib > demo.BOARD_WEIGHT_BUDGET_KIB
