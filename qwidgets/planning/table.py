@@ -145,7 +145,8 @@ class SensitivityTable:
                              "quantize='separate' to measure inputs on their own")
         return source
 
-    def sqnr_array(self, scope: str = "model", source: str = "weight", granularity=None) -> np.ndarray | None:
+    def sqnr_array(self, scope: str = "model", source: str = "weight",
+                   granularity: str | int | None = None) -> np.ndarray | None:
         """SQNR in dB as an (entries x widths) array (a copy), or None when that scope was not
         scanned. ``source="input"`` of a ``quantize="separate"`` table: the input rows, one
         column per input width (NaN for entries with no input rows); on other tables the one
@@ -161,7 +162,7 @@ class SensitivityTable:
         return None if arr is None else arr.copy()
 
     def sqnr_db(self, layer: str, bits: int, scope: str = "model", source: str = "weight",
-                granularity=None) -> float:
+                granularity: str | int | None = None) -> float:
         """SQNR (dB) of ``layer``'s output (scope ``"layer"``) or the model's output (``"model"``)
         with only that entry quantized at ``bits``: its weights (``source="weight"``) or its
         input (``"input"``, tables scanned with ``quantize="separate"``; other tables have one
@@ -249,7 +250,7 @@ class SensitivityTable:
         """How the model scope was measured: ``"stacked"``, ``"per bit width"`` or ``"-"``."""
         return self._info[self.layers[self._row(layer)]].get("model_pass", "-")
 
-    def weight_grid(self, layer: str, bits: int, granularity=None) -> UniformGrid | None:
+    def weight_grid(self, layer: str, bits: int, granularity: str | int | None = None) -> UniformGrid | None:
         """The weight grid fitted for ``layer`` at ``bits`` (None if weights were not scanned, or
         the entry skipped that ``granularity``; None: the first of :attr:`granularities`)."""
         rows = (self._weight_rows(granularity)[1] or {}).get(self.layers[self._row(layer)])
@@ -267,7 +268,8 @@ class SensitivityTable:
     def make_plan(self, bits: Mapping[str, int], *,
                   chosen_input_bits: int | Mapping[str, int | None] | None = None,
                   assumed_input_bits: int | None = 8, predicted_sqnr_db: float | None = None,
-                  granularity=None, scale_bits: int = 16, **renamed: Any) -> Plan:
+                  granularity: str | int | Mapping[str, str | int | None] | None = None,
+                  scale_bits: int = 16, **renamed: Any) -> Plan:
         """A :class:`Plan` with the scanned grids of the given width per entry.
 
         ``bits``: entry -> weight width (the input width for a ``quantize="input"`` table).
