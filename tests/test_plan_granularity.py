@@ -175,7 +175,7 @@ def scan_one_granularity_dict(d):
     del d["granularities"]
     for e in d["layers"]:
         del e["granularity_rows"]
-    d["coverage"].pop("notes", None)
+    d["coverage"].pop("skipped_options", None)
     return d
 
 

@@ -15,7 +15,7 @@ import torch
 
 from .checks import check_int
 
-__all__ = ["check_block_size", "check_block_params", "n_blocks", "expand_blocks", "block_shape", "BlockRows",
+__all__ = ["check_block_size", "check_block_params", "check_block_fit", "n_blocks", "expand_blocks", "block_shape", "BlockRows",
            "block_sums", "round_scales", "SCALE_BITS"]
 
 SCALE_BITS = (16, 32)  # how a block scale is stored: float16 (common practice) or float32
@@ -34,6 +34,17 @@ def check_block_params(scale, offset, axis, g) -> None:
     if isinstance(offset, torch.Tensor) and offset.numel() > 1 and offset.shape != scale.shape:
         raise ValueError(f"offset has shape {tuple(offset.shape)} but the block scales have shape "
                          f"{tuple(scale.shape)}; they must match (or give one offset)")
+
+
+def check_block_fit(grid, shape, where: str) -> None:
+    """A block grid's scales fit a weight of ``shape`` (ValueError naming ``where``); other
+    grids (and None) pass."""
+    if grid is None or not grid.blocked:
+        return
+    n = len(shape)
+    if not -n <= grid.axis < n or tuple(grid.scale.shape) != block_shape(shape, grid.axis % n, grid.block_size):
+        raise ValueError(f"{where}: block scales of shape {tuple(grid.scale.shape)} do not fit the weight "
+                         f"shape {tuple(shape)} in blocks of {grid.block_size} along axis {grid.axis}")
 
 
 def check_block_size(block_size, name: str = "block_size") -> int | None:

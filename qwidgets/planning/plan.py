@@ -11,7 +11,7 @@ from dataclasses import dataclass, replace
 
 from torch import nn
 
-from ..core.blocks import SCALE_BITS, block_shape
+from ..core.blocks import SCALE_BITS, check_block_fit
 from ..core.checks import check_bits
 from ..core.renamed import warn_renamed
 from ..core.setting import LayerSetting
@@ -117,11 +117,7 @@ class Plan:
         if self.scale_bits not in SCALE_BITS or isinstance(self.scale_bits, bool):
             raise ValueError(f"scale_bits must be one of {SCALE_BITS}, got {self.scale_bits!r}")
         for n, s in layers.items():
-            g = s.weight
-            if g is not None and g.blocked and (not -len(shapes[n]) <= g.axis < len(shapes[n]) or tuple(
-                    g.scale.shape) != block_shape(shapes[n], g.axis % len(shapes[n]), g.block_size)):
-                raise ValueError(f"layers[{n!r}]: block scales of shape {tuple(g.scale.shape)} do not fit "
-                                 f"the weight shape {shapes[n]} in blocks of {g.block_size} along axis {g.axis}")
+            check_block_fit(s.weight, shapes[n], f"layers[{n!r}]")
 
     @classmethod
     def unchecked(cls, layers: dict, bits: dict, *, fingerprint: str, weight_shapes: dict, macs: dict,
@@ -187,10 +183,7 @@ class Plan:
         inp = old.input if setting.input is None else setting.input.detached()
         shape = self.weight_shapes[layer_name]
         if setting.weight is not None and weight.blocked:
-            try:
-                replace(self, layers={**self.layers, layer_name: LayerSetting(weight=weight)})
-            except ValueError as e:
-                raise ValueError(f"setting.weight: {e}") from None
+            check_block_fit(weight, shape, "setting.weight")
         elif setting.weight is not None and weight.axis is not None:
             if not -len(shape) <= weight.axis < len(shape):
                 raise ValueError(f"setting.weight.axis {weight.axis} does not fit layer {layer_name!r}'s "
@@ -213,12 +206,9 @@ class Plan:
     def _activation(self, name: str) -> bool:
         return (self.entries or {}).get(name, {}).get("kind") == "activation"
 
-    def _channels(self, name: str) -> int:
-        g = self.layers[name].weight
-        if g is None or g.axis is None:
-            return 1
-        return self.weight_shapes[name][g.axis]
     def _storage(self, name: str) -> int:
+        if self._activation(name):  # no weight stored
+            return 0
         return grid_storage_bits(self.layers[name].weight, self.weight_shapes[name], self.scale_bits)
 
     def _weight_bits(self, name: str) -> int | None:
