@@ -34,6 +34,7 @@ from tests.attention_models import (
     sequences,
     token_ids,
 )
+from tests.stored_bits import mean_bits_for
 
 
 def sqnr(ref: torch.Tensor, out: torch.Tensor) -> float:
@@ -218,7 +219,7 @@ def test_planned_activations_applied_and_evaluated(untouched, fastpath_on):
     model, x = MHAClassifier().eval(), sequences()
     keep = untouched(model)
     t = scan(model, x, bits=(4, 8), input_bits=(4, 8), quantize="separate", progress=False)
-    plan = plan_budget(t, mean_bits=8, fixed={"attn.probs": 4, "attn.query": 8})
+    plan = plan_budget(t, mean_bits=mean_bits_for(t, 8), fixed={"attn.probs": 4, "attn.query": 8})
     assert plan.chosen_input_bits["attn.probs"] == 4 and plan.layers["attn.probs"].weight is None
     planned = apply_plan(model, plan)
     keep.check()
@@ -324,7 +325,7 @@ def test_weight_scan_leaves_activations_out():
     model, x = MHAClassifier().eval(), sequences()
     t = scan(model, x, bits=(4,), quantize="weight", progress=False)
     assert t.layers == ["inp", "attn.in_proj", "attn.out_proj", "head"]
-    p = plan_budget(t, mean_bits=4)
+    p = plan_budget(t, mean_bits=mean_bits_for(t, 4))
     assert set(p.layers) == set(t.layers)
 
 
@@ -336,7 +337,7 @@ def test_refine_plan_learns_activation_grids():
     torch.manual_seed(8)
     model, x = MHAClassifier().eval(), sequences(n=16)
     t = scan(model, x, bits=(3, 8), input_bits=(4, 8), quantize="separate", progress=False)
-    plan = plan_budget(t, mean_bits=4, fixed={"attn.probs": 4, "attn.value": 4})
+    plan = plan_budget(t, mean_bits=mean_bits_for(t, 4), fixed={"attn.probs": 4, "attn.value": 4})
     refined = refine_plan(model, x, plan, steps=30, progress=False).plan
     for name in ("attn.probs", "attn.value"):
         assert refined.layers[name].input.bits == 4

@@ -21,6 +21,7 @@ from qwidgets import apply_plan, evaluate_plan, plan_budget, scan
 from qwidgets.core.rounding import quantize
 from qwidgets.model.usage import entries_named, find_usage
 from tests.attention_models import AddmmMLP
+from tests.stored_bits import mean_bits_for
 
 
 def sqnr(ref, out) -> float:
@@ -125,7 +126,7 @@ def test_plan_applied_to_weights_found_by_use(untouched):
     model, x = AddmmMLP().eval(), torch.randn(32, 6)
     keep = untouched(model)
     t = scan(model, x, bits=(4, 8), input_bits=(4, 8), quantize="separate", progress=False)
-    plan = plan_budget(t, mean_bits=6)
+    plan = plan_budget(t, mean_bits=mean_bits_for(t, 6))
     planned = apply_plan(model, plan)
     keep.check()
     naive = copy.deepcopy(model)

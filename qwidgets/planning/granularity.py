@@ -136,8 +136,8 @@ def split_granularities(fields: dict) -> dict:
                     if wg[name] is not None and wg[name][k] is None:  # skipped (None: no weight)
                         arr[i] = np.nan
             part[f"{scope}_sqnr"] = arr
-        part["weight_grids"] = {name: (wg[name] or [None] * len(grans))[k] or [None] * n
-                                for name in fields["layers"]}
+        part["weight_grids"] = {name: None if wg[name] is None else (wg[name][k] or [None] * n)
+                                for name in fields["layers"]}  # None: no weight (an activation)
         rows[opt] = part
     first = rows.pop(grans[0])
     out.update(first, granularities=grans, granularity_rows=rows)
