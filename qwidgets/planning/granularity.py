@@ -15,10 +15,12 @@ from numbers import Integral
 import numpy as np
 
 from ..core.checks import check_int
+from ..core.grid_cache import fit_cached
+from ..core.ranges import RangeFitter
 
 __all__ = ["check_granularity", "check_option", "input_axis", "option_label", "option_from_label",
            "block_skip_reason", "grid_options", "scan_granularity", "split_granularities",
-           "granularity_rows"]
+           "granularity_rows", "fit_option"]
 
 
 def check_option(option, name: str = "granularity"):
@@ -165,3 +167,13 @@ def granularity_rows(rows, grans: tuple, layers: list, n_bits: int, sqnr: dict) 
         more["grids"] = None if g is None else {n: None if g.get(n) is None else list(g[n]) for n in layers}
         out[opt] = more
     return out
+
+
+def fit_option(w, e, option, bits, method, rules, notes: list):
+    """The grids of one granularity option at every width, or None when the entry skips it."""
+    why = block_skip_reason(e.shape, e.axis, option) if isinstance(option, int) else None
+    if why is not None:
+        notes.append((e.name, why))
+        return None
+    # fitted once per process for these values and options (grid_cache), every width together
+    return fit_cached(RangeFitter(w, method, rules=rules, **grid_options(option, e.axis)), bits)

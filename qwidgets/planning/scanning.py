@@ -39,8 +39,7 @@ from torch import nn
 
 from ..core.checks import check_bits, check_bool, check_choice
 from ..core.device_rules import DeviceRules, check_rules
-from ..core.grid_cache import fit_cached
-from ..core.ranges import METHODS, RangeFitter
+from ..core.ranges import METHODS
 from ..model import outputs, running
 from ..model.batching import cut_batches
 from ..model.entries import call_inputs, coverage_of, tapped, weight_digest
@@ -51,7 +50,7 @@ from ..model.taps import fastpath_off, tapping
 from ..model.usage import entries_on
 from .device_checks import scan_bits
 from .distribute import merge_shares, worker_count
-from .granularity import block_skip_reason, grid_options, scan_granularity, split_granularities
+from .granularity import fit_option, scan_granularity, split_granularities
 from .model_scope import model_scope as _model_scope
 from .passes import (
     attention_scope_powers,
@@ -322,7 +321,7 @@ def _scan_entries(model, source, first, entries, usage, options, progress, share
             # fitted once per process for these values and options (grid_cache), every width
             # together; one set of grids per granularity option, None where the entry skips it
             # (an activation entry has no weight: None, its rows measured as they are)
-            wg = [_fit_option(w, e, opt, bits, method, rules, skipped_opts) for opt in grans] \
+            wg = [fit_option(w, e, opt, bits, method, rules, skipped_opts) for opt in grans] \
                 if (qw and not act) else None
             ig = [f.inputs.fit(b, method, rules=rules, role="input") for b in bits] \
                 if (qi and f.has_input) else None
@@ -397,15 +396,6 @@ def _layer_scope(model, source, facts, configs) -> np.ndarray:
         for batch in source:
             running.run_with_hooks(model, batch, {m: measure for m in with_input}, pre=True)
     return np.array([[db(signal[f.entry.name], v) for v in noise[f.entry.name]] for f in facts])
-
-
-def _fit_option(w, e, option, bits, method, rules, notes: list):
-    """The grids of one granularity option at every width, or None when the entry skips it."""
-    why = block_skip_reason(e.shape, e.axis, option) if isinstance(option, int) else None
-    if why is not None:
-        notes.append((e.name, why))
-        return None
-    return fit_cached(RangeFitter(w, method, rules=rules, **grid_options(option, e.axis)), bits)
 
 
 def _check_bits_tuple(bits, name: str = "bits") -> tuple[int, ...]:
