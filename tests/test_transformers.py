@@ -39,6 +39,7 @@ from qwidgets import (
     refine_plan,
     scan,
 )
+from tests.stored_bits import mean_bits_for
 
 RTOL = 1e-5  # a few float32 roundings of outputs of order 1
 METRIC_ABS = 1e-6  # a float32 mean of 0 / 1 values, per batch or over all samples at once
@@ -215,7 +216,7 @@ def user_fastpath(request):
 
 def _planned_pair(net, data, **kw):
     table = scan(net, data, bits=(4, 8), quantize="separate", input_bits=(8,), progress=False, **kw)
-    return table, plan_budget(table, mean_bits=6.5)
+    return table, plan_budget(table, mean_bits=mean_bits_for(table, 6.5))
 
 
 # ---------------------------------------------------------------------------- tests
@@ -310,7 +311,7 @@ def test_gpt_decoder_keyword_input_dataclass_output_and_loader_pairs(tmp_path):
     with pytest.raises(TypeError, match=r"inputs=0"):
         scan(net, loader, bits=(8,), progress=False)  # a pair without inputs=: the error says so
     table = scan(net, loader, bits=(4, 8), progress=False, inputs=pick, output=logits)
-    plan = plan_budget(table, mean_bits=6)
+    plan = plan_budget(table, mean_bits=mean_bits_for(table, 6))
     assert "emb" in plan.layers and "head" not in plan.layers  # tied: one entry
 
     report = evaluate_plan(net, loader, plan, metric=_token_acc, target=1, inputs=pick, output=logits,
@@ -344,8 +345,9 @@ def test_gpt_decoder_keyword_input_dataclass_output_and_loader_pairs(tmp_path):
     assert _rel(got[0], want.logits) < RTOL  # output_0: the dataclass's first tensor
 
     # activations too: scaled_dot_product_attention's operands and every layer's input
-    both = plan_budget(scan(net, {"input_ids": ids}, bits=(4, 8), quantize="separate", input_bits=(8,),
-                            progress=False, output=logits), mean_bits=6)
+    sep = scan(net, {"input_ids": ids}, bits=(4, 8), quantize="separate", input_bits=(8,), progress=False,
+               output=logits)
+    both = plan_budget(sep, mean_bits=mean_bits_for(sep, 6))
     sdpa = [n for n in both.layers if ".sdpa." in n]
     assert {n.rsplit(".", 1)[-1] for n in sdpa} == {"query", "key", "value"}
     r = refine_plan(net, {"input_ids": ids}, both, steps=2, batch_size=16, progress=False, output=logits)
@@ -360,8 +362,8 @@ def test_half_precision_models_export_as_float32_files(dtype, tmp_path):
     torch.manual_seed(3)
     half = nn.Sequential(nn.Linear(8, 16), nn.ReLU(), nn.Linear(16, 4)).eval().to(dtype)
     x = torch.randn(64, 8).to(dtype)
-    plan = plan_budget(scan(half, x, bits=(4, 8), quantize="separate", input_bits=(8,), progress=False),
-                       mean_bits=6)
+    table = scan(half, x, bits=(4, 8), quantize="separate", input_bits=(8,), progress=False)
+    plan = plan_budget(table, mean_bits=mean_bits_for(table, 6))
     with pytest.warns(UserWarning, match="computes in float32"):
         proto = export_onnx(half, plan, tmp_path / "h.onnx", x[:2])
     assert "float32" in proto.doc_string
@@ -391,7 +393,7 @@ def test_loader_pairs_need_inputs_and_take_index_targets():
     with pytest.raises(TypeError, match=r"pass inputs=0 \(and target=1"):
         scan(net, loader, bits=(8,), progress=False)
     table = scan(net, loader, bits=(4, 8), progress=False, inputs=0)
-    plan = plan_budget(table, mean_bits=6)
+    plan = plan_budget(table, mean_bits=mean_bits_for(table, 6))
     with pytest.raises(TypeError, match=r"data batch 0 is a tuple of 2 values.*pass inputs=0"):
         evaluate_plan(net, loader, plan)
 
@@ -440,8 +442,8 @@ def test_weights_found_by_use_export_with_their_inputs(tmp_path):
     torch.manual_seed(5)
     net = nn.Sequential(_InOut(6, 12), nn.ReLU(), _InOut(12, 3)).eval()
     x = torch.randn(32, 5, 6)
-    plan = plan_budget(scan(net, x, bits=(4, 8), quantize="separate", input_bits=(8,), progress=False),
-                       mean_bits=6)
+    table = scan(net, x, bits=(4, 8), quantize="separate", input_bits=(8,), progress=False)
+    plan = plan_budget(table, mean_bits=mean_bits_for(table, 6))
     assert {n: (s.weight.axis, s.input is not None) for n, s in plan.layers.items()} == {
         "0": (1, True), "2": (1, True)}  # output channels on axis 1 of an [in, out] weight
     proto = export_onnx(net, plan, tmp_path / "use.onnx", x[:2])
