@@ -146,7 +146,7 @@ def test_scale_bits_from_the_rules_cost_the_plan(table):
 def test_older_plan_and_table_versions_still_load(table):
     plan = table.make_plan({n: 4 for n in table.layers})
     d = json.loads(plan.to_json())
-    assert d["version"] == 3
+    assert d["version"] == 4
     # version 2: the same fields, its figures' mean bits counted code bits only
     d["version"] = 2
     d["figures"]["mean_bits"] = 4.0
@@ -156,11 +156,11 @@ def test_older_plan_and_table_versions_still_load(table):
         Plan.from_json(json.dumps(d))
     blocked = json.loads(table.make_plan({n: 4 for n in table.layers}, granularity={"0": 8}).to_json())
     blocked["version"] = 2
-    with pytest.raises(ValueError, match="block grid, which plan files hold from version 3"):
+    with pytest.raises(ValueError, match="block grid, which plan files hold from version 4"):
         Plan.from_json(json.dumps(blocked))
-    # a table of one granularity written as version 2 reads; granularity fields need version 3
+    # a table of one granularity written as version 2 reads; granularity fields need version 4
     t = table.to_dict()
-    assert t["version"] == 3 and "granularities" in t
+    assert t["version"] == 4 and "granularities" in t
     one = scan_one_granularity_dict(t)
     one["version"] = 2
     assert _load(one).granularities == ("channel",)

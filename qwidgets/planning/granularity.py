@@ -1,5 +1,11 @@
 """Weight granularity options: one scale per tensor, per output channel, or per block.
 
+``scan(..., granularity=("channel", 32, 128))`` measures every option at every width (the
+columns of the passes: every width of the first option, then of the next, ...); the first
+option gives the table's default rows and must be ``"tensor"`` or ``"channel"``; an entry
+whose input axis is shorter than a block skips that option (NaN rows, no grids) and the
+table's coverage says so (``skipped_options``).
+
 An option is ``"tensor"``, ``"channel"`` or an int ``g`` >= 1 (one scale per block of ``g``
 consecutive weights along the input axis: 1 for a Linear / Conv weight [out, in, ...], 0 for
 a weight stored [in, out, ...] such as a transposed convolution's; embedding rows are blocked
@@ -101,8 +107,8 @@ def option_from_label(label: str, where: str):
 
 
 def scan_granularity(granularity, per_channel, rules, quantize) -> tuple:
-    """The options a scan measures (see ``scan``'s ``granularity``), checked against its other
-    arguments."""
+    """(the options a scan measures, the table's per_channel), checked against the scan's other
+    arguments (see ``scan``'s ``granularity``)."""
     grans = check_granularity(granularity, per_channel, given_per_channel=per_channel is False)
     if grans[0] not in ("tensor", "channel"):
         raise ValueError(f"granularity={granularity!r}: the first option gives the table's default "
@@ -110,12 +116,13 @@ def scan_granularity(granularity, per_channel, rules, quantize) -> tuple:
     if granularity is not None and quantize == "input":
         raise ValueError("granularity= chooses weight grids; quantize='input' scans no weights")
     if rules is not None and not rules.per_channel_weights:
+        per_channel = False
         if granularity is None:
-            return ("tensor",)
-        if grans != ("tensor",):
+            grans = ("tensor",)
+        elif grans != ("tensor",):
             raise ValueError(f"granularity={granularity!r} conflicts with the device rules "
                              "(per_channel_weights=False: one scale per tensor); use ('tensor',)")
-    return grans
+    return grans, (per_channel if quantize == "input" else grans[0] == "channel")
 
 
 def split_granularities(fields: dict) -> dict:

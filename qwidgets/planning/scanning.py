@@ -118,12 +118,9 @@ def scan(model: nn.Module, data: Data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8),
         skipped with a warning; weights per tensor where the device needs it)
     inputs : an index, a key or a function picking the model's inputs from each batch
         (``inputs=0`` for a ``DataLoader`` of ``(x, y)`` pairs)
-    granularity : the weight grids to measure, each at every width: ``"tensor"`` (one scale),
-        ``"channel"`` (one per output channel) or an int ``g`` (one per block of ``g`` weights
-        along the input axis), e.g. ``("channel", 32, 128)``. None: ``("channel",)``, or
-        ``("tensor",)`` with ``per_channel=False`` (giving both is an error). The first option
-        is the table's default one; entries whose input axis is shorter than a block skip
-        that option (NaN SQNR, no grids), and :attr:`~SensitivityTable.coverage` says so.
+    granularity : weight grids measured at every width, e.g. ``("channel", 32, 128)`` (see
+        :mod:`qwidgets.planning.granularity`; None: ``("channel",)``, or ``("tensor",)`` with
+        ``per_channel=False``); the first option gives the table's default rows.
 
     The table's :attr:`~SensitivityTable.coverage` says how many weight values were scanned
     and why the others were not.
@@ -156,22 +153,15 @@ def scan(model: nn.Module, data: Data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8),
     ibits = scan_bits(_check_bits_tuple(input_bits, "input_bits"), check_rules(rules), "input") \
         if separate else ()
     bits = scan_bits(bits, check_rules(rules), "weight" if separate else quantize)
-    grans = scan_granularity(granularity, per_channel, rules, quantize)
-    if rules is not None:
-        per_channel = per_channel and rules.per_channel_weights
-    if quantize != "input":
-        per_channel = grans[0] == "channel"
+    grans, per_channel = scan_granularity(granularity, per_channel, rules, quantize)
     options = dict(rules=rules, bits=bits, quantize=quantize, method=method, per_channel=per_channel, scope=scope,
-                   max_samples=max_samples, output=output, estimate=estimate, batch_size=batch_size,
-                   granularity=grans)
+                   max_samples=max_samples, output=output, estimate=estimate, batch_size=batch_size, granularity=grans)
     if not separate:
-        return _noted(SensitivityTable(**split_granularities(_scan_parts(model, data, options, progress,
-                                                                         executor))))
+        return _noted(SensitivityTable(**split_granularities(_scan_parts(model, data, options, progress, executor))))
     # each side quantized alone: a weight scan at ``bits`` and an input scan at ``input_bits``
     if executor is None:  # one checked source for both sides (workers get the data itself)
         data = data_source(model, cut_batches(data, batch_size), max_samples)
-    weights = split_granularities(_scan_parts(model, data, {**options, "quantize": "weight"}, progress,
-                                              executor))
+    weights = split_granularities(_scan_parts(model, data, {**options, "quantize": "weight"}, progress, executor))
     try:
         # the weight side's survey checked every layer input on this data: not again
         inputs = _scan_parts(model, data, {**options, "quantize": "input", "bits": ibits,
@@ -317,17 +307,13 @@ def _scan_entries(model, source, first, entries, usage, options, progress, share
             e = f.entry
             act = e.kind == "activation"
             w = None if act else e.parameter(model).detach()
-            # one sort of the weight serves every bit width (the same grids as fitting each alone),
-            # fitted once per process for these values and options (grid_cache), every width
-            # together; one set of grids per granularity option, None where the entry skips it
-            # (an activation entry has no weight: None, its rows measured as they are)
+            # per granularity option, every width at once (fit_option; None: the entry skips it)
             wg = [fit_option(w, e, opt, bits, method, rules, skipped_opts) for opt in grans] \
                 if (qw and not act) else None
             ig = [f.inputs.fit(b, method, rules=rules, role="input") for b in bits] \
                 if (qi and f.has_input) else None
             wgrids[e.name] = wg
             igrids[e.name] = ig if ig is not None else [None] * len(bits)
-            # columns: every width of the first option, then of the next, ...
             configs[e.name] = [(None if g is None else g[j], None if ig is None else ig[j])
                                for g in (wg or [None] * len(grans)) for j in range(len(bits))]
             info[e.name] = {"type": e.type_name, "weight_shape": e.shape, "input_shape": f.input_shape,
@@ -347,8 +333,7 @@ def _scan_entries(model, source, first, entries, usage, options, progress, share
                                     notes=notes)
     cov = coverage_of(model, [f.entry for f in facts], skipped, notes=usage.unusable,
                       float_activations=usage.float_activations)
-    if skipped_opts:
-        cov = dataclasses.replace(cov, skipped_options=tuple(skipped_opts))
+    cov = dataclasses.replace(cov, skipped_options=tuple(skipped_opts))
     return dict(layers=names, bits=bits, quantize=quantize, method=method,
                 per_channel=per_channel, fingerprint=model_fingerprint(model), info=info,
                 layer_sqnr=layer_sq, model_sqnr=model_sq,
