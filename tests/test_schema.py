@@ -240,7 +240,7 @@ def test_a_version_2_table_still_reads(saved, tmp_path):
     assert data["version"] == 4
     data["version"] = 2
     loaded = _load(data, tmp_path)
-    assert loaded.to_dict() == {**data, "version": 3}  # written back as version 3
+    assert loaded.to_dict() == {**data, "version": 4}  # written back as version 4
     data["layers"][0]["partner"] = None  # version 3's field
     with pytest.raises(ValueError, match="and optionally"):
         _load(data, tmp_path)
