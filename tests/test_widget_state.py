@@ -15,6 +15,7 @@ from qwidgets import grid_usage
 from qwidgets.planning.scanning import scan
 from qwidgets.widgets.explorer import GridExplorer
 from qwidgets.widgets.planner import BudgetPlanner
+from tests.stored_bits import mean_bits_for
 
 
 @pytest.fixture
@@ -56,7 +57,7 @@ def test_budget_unit_switch_in_the_browser_keeps_a_plan_with_a_learned_grid():
     x = torch.randn(64, 16)
     table = scan(net, x, (2, 3, 4, 6, 8), progress=False)
     p = BudgetPlanner(net, x, table=table)
-    p.set_budget("mean_bits", 3.0)
+    p.set_budget("mean_bits", mean_bits_for(table, 3.0))  # stored bits: 3 for the codes, plus scales
     layer = max(p.plan.layers, key=table.params)
     ex = GridExplorer(net, x, layer=layer, bits=p.plan.bits[layer])
     ex.learn(steps=5)
