@@ -13,6 +13,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from qwidgets import UniformGrid, error_stats, fit_range, grid_usage, quantize
+from qwidgets.core.grid import grid_params
 from qwidgets.core.sorted_values import MAX_LEVELS, SortedValues
 
 
@@ -59,7 +60,19 @@ def test_same_figures_as_the_core_functions(bits, factor, shift, signed, per_cha
     assert stats.mse == pytest.approx(ref.mse, rel=1e-6, abs=1e-15)
     assert stats.cosine == pytest.approx(ref.cosine, abs=1e-9)
     assert stats.max_abs == pytest.approx(ref.max_abs, rel=1e-6, abs=1e-12)
-    assert usage == grid_usage(x, g)
+    expected = grid_usage(x, g)
+    # A value exactly on a rounding threshold (a minmax grid's extreme value, moved by half a
+    # step) is a tie that float32 steps and float64 thresholds may round either way: each such
+    # value may move one count. Elsewhere the figures are equal.
+    s_, o_ = (p.double() for p in grid_params(x, g))
+    t = (x.double() - o_) / s_
+    ties = int(((t - t.round()).abs() - 0.5).abs().le(1e-6).sum())
+    n = x.numel()
+    assert usage.n_bins == expected.n_bins and abs(usage.bins_used - expected.bins_used) <= ties
+    for name in ("clipped_low", "clipped_high"):
+        assert abs(getattr(usage, name) - getattr(expected, name)) * n <= ties + 1e-9, name
+    if ties == 0:
+        assert usage == expected
 
 
 def test_many_levels_are_measured_directly():
