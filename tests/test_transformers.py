@@ -465,3 +465,20 @@ def test_scan_view_takes_loader_pairs_with_inputs():
     for name in whole.layers:  # the same data, read in batches: float64 sums (float32 rounding apart)
         assert view.table.sqnr_db(name, 4) == pytest.approx(whole.sqnr_db(name, 4), abs=1e-3)
     assert view.pick("2", bits=4).explorer.grid.bits == 4  # the explorer reads the picked inputs
+
+
+def test_budget_planner_takes_loader_pairs_with_inputs_and_index_targets():
+    from qwidgets import BudgetPlanner
+
+    torch.manual_seed(7)
+    net = nn.Sequential(nn.Linear(5, 8), nn.ReLU(), nn.Linear(8, 3)).eval()
+    x, y = torch.randn(48, 5), torch.randint(0, 3, (48,))
+
+    def acc(out, t):
+        return float((out.argmax(1) == t).float().mean())
+    p = BudgetPlanner(net, DataLoader(TensorDataset(x, y), batch_size=16), inputs=0, metric=acc, target=1,
+                      bits=(4, 8), progress=False)
+    p.set_budget("mean_bits", 6)
+    report = p.measure()
+    want = evaluate_plan(net, x, p.plan, metric=acc, target=y)
+    assert report.metric_planned == pytest.approx(want.metric_planned, abs=METRIC_ABS)

@@ -73,7 +73,7 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, PlannerTasks, widgets.VBox):
     or else on ``data``, and computes ``metric(output, target) -> float`` for both, with
     ``eval_target`` (or ``target`` for ``data``). ``assumed_input_bits``: the input width
     counted in BOPs when only weights are planned (``input_bits`` until the next release).
-    ``rules`` (:class:`qwidgets.DeviceRules`) go to the scan, the budget and the Pareto front.
+    ``rules`` (:class:`qwidgets.DeviceRules`) go to the scan, the budget and the Pareto front; ``inputs`` (and ``target`` / ``eval_target`` as an index, a key or a function) pick each batch's parts everywhere, as in :func:`qwidgets.evaluate_plan`.
     A grid learned in a :class:`~qwidgets.GridExplorer` reaches the plan with :meth:`use_grid`
     (or the "use explorer's grid" button once :meth:`link_explorer` is called).
 
@@ -100,7 +100,7 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, PlannerTasks, widgets.VBox):
                  per_channel: bool = True, assumed_input_bits: int | None = 8, max_samples: int | None = None,
                  output: Callable | None = None, progress: bool = True, width: int = 760,
                  rules: DeviceRules | None = None, estimate: str = "exact", batch_size: int | None = None,
-                 **renamed: Any):
+                 inputs: int | str | Callable | None = None, **renamed: Any):
         super().__init__()
         assumed_input_bits = take_renamed(renamed, {"input_bits": "assumed_input_bits"}, "BudgetPlanner"
                                           ).get("assumed_input_bits", assumed_input_bits)
@@ -115,13 +115,13 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, PlannerTasks, widgets.VBox):
         if table is None:
             table = scan(model, data, bits, quantize=quantize, method=method, per_channel=per_channel,
                          scope="model", max_samples=max_samples, progress=progress, output=output, rules=rules,
-                         estimate=estimate, batch_size=batch_size)
+                         estimate=estimate, batch_size=batch_size, inputs=inputs)
         elif not isinstance(table, SensitivityTable):
             raise TypeError(f"table must be a SensitivityTable, got {type(table).__name__}")
         if "model" not in table.scopes:
             raise ValueError("the table holds no model-scope SQNR; scan with scope='model' or 'both'")
         self.model, self.data, self.metric, self.target, self.output = model, data, metric, target, output
-        self.eval_data, self.eval_target, self.table = eval_data, eval_target, table
+        self.eval_data, self.eval_target, self.table, self.inputs = eval_data, eval_target, table, inputs
         self.assumed_input_bits, self.rules, self._max_samples = assumed_input_bits, check_rules(rules), max_samples
         self._fronts: dict[str, list] = {}
         self.report: PlanReport | None = None
@@ -344,7 +344,7 @@ class BudgetPlanner(SnapshotDisplay, GridTaking, PlannerTasks, widgets.VBox):
             if limit is not None and isinstance(target, torch.Tensor):
                 target = target[:limit]  # the samples the scan used
         self.report = evaluate_plan(self.model, data, self.plan, metric=self.metric, target=target,
-                                    output=self.output, max_samples=limit)
+                                    output=self.output, max_samples=limit, inputs=self.inputs)
         self._draw()
         self.message.info(f"measured: {self.report.measured_sqnr_db:.2f} dB model-output SQNR "
                           f"on {self._measured_on()}")

@@ -65,7 +65,7 @@ class PlannerTasks:
             return should_stop()
 
         options.setdefault("rules", self.rules)
-        result = refine_plan(self.model, self.data, self.plan, steps=steps, progress=False,
+        result = refine_plan(self.model, self.data, self.plan, steps=steps, progress=False, inputs=getattr(self, "inputs", None),
                              callback=callback, **options)
         return before, result
 
@@ -104,7 +104,7 @@ class PlannerTasks:
         options.setdefault("rules", self.rules)  # the curve's plans are the planner's front's
         options.setdefault("assumed_input_bits", self.assumed_input_bits)
         try:
-            return metric_curve(self.model, data, self.table, metric=self.metric, target=target,
+            return metric_curve(self.model, data, self.table, metric=self.metric, target=target, inputs=getattr(self, "inputs", None),
                                 cost=self.kind, points=points, progress=progress, **options)
         except _Stopped:
             return None
