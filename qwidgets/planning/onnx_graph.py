@@ -185,7 +185,9 @@ class OnnxRewrite:
                                                    self._constant(self.name(base + "_max"), np.float32(hi))],
                                           [clipped], name=self.name(base + "_clip")))
             src = clipped
-        zero = self._constant(self.name(base + "_code_origin"), np.zeros((), np.int64), onnx_code_type(grid))
+        # one zero point for both where the grid's is 0 (the standard pair runtimes recognise)
+        zero = z if offset == 0 else self._constant(self.name(base + "_code_origin"), np.zeros((), np.int64),
+                                                    onnx_code_type(grid))
         q = self.name(base + "_quantized")
         nodes.append(helper.make_node("QuantizeLinear", [src, s, zero], [q], name=self.name(base + "_quantize")))
         nodes.append(helper.make_node("DequantizeLinear", [q, s, z], [out], name=self.name(base + "_dequantize")))
