@@ -482,3 +482,16 @@ def test_budget_planner_takes_loader_pairs_with_inputs_and_index_targets():
     report = p.measure()
     want = evaluate_plan(net, x, p.plan, metric=acc, target=y)
     assert report.metric_planned == pytest.approx(want.metric_planned, abs=METRIC_ABS)
+
+
+def test_notes_from_passes_with_the_fast_path_off_point_at_the_callers_line():
+    """Switching the fast path off adds no frame between the user's call and its warnings
+    (a DeprecationWarning attributed to a qwidgets module is hidden by Python's filters)."""
+    from qwidgets.planning.scanning import ScanNote
+
+    torch.manual_seed(8)
+    net = Attention().eval()
+    data = (torch.randn(8, 7, 6), torch.randn(8, 4, 5))
+    with pytest.warns(ScanNote) as seen:
+        scan(net, data, bits=(8,), progress=False)
+    assert {w.filename for w in seen if issubclass(w.category, ScanNote)} == {__file__}

@@ -34,7 +34,6 @@ from ..core.metrics import ErrorStats, error_stats
 from ..core.relaxed import relaxed_quantize
 from ..core.rounding import quantize
 from ..core.setting import SOURCES
-from ..model.fastpath import without_fastpath
 from ..model.layers import check_layer, layer_forward, output_on_grids
 from .optim import Adam
 
@@ -86,7 +85,6 @@ class LearnResult:
         return self.stats.sqnr_db - self.start_stats.sqnr_db
 
 
-@without_fastpath
 def learn_grid(
     layer: torch.nn.Module,
     inputs: torch.Tensor,

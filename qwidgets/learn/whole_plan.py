@@ -34,6 +34,7 @@ from ..core.relaxed import relaxed_quantize
 from ..core.rounding import quantize
 from ..core.setting import SOURCES, LayerSetting
 from ..model.entries import find_entries, replace_inputs, tapped
+from ..model.fastpath import attention_fastpath_off
 from ..model.tap_quantize import EachTap
 from ..model.taps import attach
 from ..model.usage import entries_named
@@ -270,8 +271,7 @@ def _window(grid: UniformGrid, window):
 def _call(model: nn.Module, weights: dict, data):
     from torch.func import functional_call
 
-    if isinstance(data, Mapping):
-        return functional_call(model, weights, (), dict(data))
-    if isinstance(data, tuple):
-        return functional_call(model, weights, data)
-    return functional_call(model, weights, (data,))
+    args, kwargs = ((), dict(data)) if isinstance(data, Mapping) else (
+        (data if isinstance(data, tuple) else (data,)), {})
+    with attention_fastpath_off():  # the decomposed attention, whose inputs the hooks quantize
+        return functional_call(model, weights, args, kwargs)

@@ -9,7 +9,6 @@ import torch
 from torch import nn
 
 from ..core.checks import finite_check
-from .fastpath import without_fastpath
 from .layers import LayerInputError, describe_layer, is_quantizable
 from .picking import split_data
 from .running import (
@@ -27,7 +26,6 @@ from .running import (
 from .sources import data_source
 
 
-@without_fastpath
 def quantizable_layers(model: nn.Module, data: Data | None = None) -> list[str]:
     """Qualified names of the model's quantizable layers.
 
@@ -59,7 +57,6 @@ def quantizable_layers(model: nn.Module, data: Data | None = None) -> list[str]:
     return order
 
 
-@without_fastpath
 def capture_inputs(model: nn.Module, data: Data, layers: str | Iterable[str] | None = None, *,
                    max_samples: int | None = None, inputs: int | str | Callable | None = None) -> dict[str, torch.Tensor]:
     """The tensor each layer received when ``model`` ran once on ``data``.

@@ -16,7 +16,6 @@ from ..core.renamed import warn_renamed
 from ..core.rounding import quantize, quantize_unchecked
 from ..core.setting import LayerSetting
 from .entries import Entry, call_inputs, find_entries, replace_inputs, tapped
-from .fastpath import without_fastpath
 from .layers import (
     LayerInputError,
     check_layer,
@@ -33,7 +32,6 @@ from .tap_quantize import QuantizeTap, tapped_inputs
 from .usage import entries_named
 
 
-@without_fastpath
 def layer_error(
     layer: nn.Module,
     inputs: torch.Tensor | Iterable[torch.Tensor],
@@ -122,7 +120,6 @@ class ModelError:
         return s
 
 
-@without_fastpath
 def model_error(
     model: nn.Module,
     data: Data,

@@ -14,6 +14,7 @@ import torch
 from torch import nn
 
 from ..core.checks import finite_check
+from .fastpath import attention_fastpath_off
 from .layers import LayerInputError, is_quantizable
 from .outputs import call_metric, flat_output, iter_tensors  # noqa: F401  (public here too)
 from .sources import Data, call_model, check_max_samples  # noqa: F401
@@ -35,7 +36,7 @@ def run_with_hooks(model: nn.Module, data, hooks: dict, *, pre: bool, params: di
             else:  # run before the user's own forward hooks, so they see the quantized output
                 handles.append(module.register_forward_hook(fn, with_kwargs=True, prepend=True))
         model.eval()
-        with torch.no_grad():
+        with torch.no_grad(), attention_fastpath_off():  # the decomposed attention, hooks see it
             try:
                 if params:
                     from torch.func import functional_call

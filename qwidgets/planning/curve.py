@@ -12,7 +12,6 @@ import numpy as np
 from torch import nn
 
 from ..core.device_rules import DeviceRules
-from ..model.fastpath import without_fastpath
 from .bootstrap import check_confidence
 from .choices import check_cost
 from .evaluate import evaluate_plan
@@ -42,7 +41,6 @@ class CurvePoint:
     drop_high: float
 
 
-@without_fastpath
 def metric_curve(model: nn.Module, data: Any, table: SensitivityTable, *, metric: Callable,
                  target: Any = None, cost: str = "model_kib", points: int = 6, confidence: float = 0.95,
                  n_boot: int = 1000, seed: int = 0, progress: Callable | None = None,

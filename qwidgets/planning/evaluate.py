@@ -10,7 +10,6 @@ from torch import nn
 
 from ..core.metrics import ErrorStats
 from ..core.renamed import warn_renamed
-from ..model.fastpath import without_fastpath
 from ..model.outputs import OutputComparison, call_metric, check_output_fn, float_parts
 from ..model.picking import cut_target, split_data
 from ..model.running import run_with_hooks
@@ -110,7 +109,6 @@ class PlanReport:
         return "\n".join(lines)
 
 
-@without_fastpath
 def evaluate_plan(model: nn.Module, data: Data, plan: Plan, *, metric: Callable | None = None,
                   target: Any = None, strict: bool = True, output: Callable | None = None,
                   max_samples: int | None = None, allow_other_weights: bool = False,

@@ -25,7 +25,6 @@ from ..core.device_rules import DeviceRules, check_rules
 from ..core.metrics import error_stats
 from ..learn.optim import Adam
 from ..learn.whole_plan import LEARNABLE, SOURCES, PlanGrids
-from ..model.fastpath import without_fastpath
 from ..model.outputs import check_output_fn, flat_output, float_parts, iter_tensors
 from ..model.picking import split_data
 from ..model.running import check_data, check_model
@@ -72,7 +71,6 @@ class RefineResult:
         return self.sqnr_db - self.start_sqnr_db
 
 
-@without_fastpath
 def refine_plan(
     model: nn.Module,
     data: Data,

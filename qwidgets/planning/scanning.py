@@ -43,7 +43,6 @@ from ..core.ranges import METHODS
 from ..model import outputs, running
 from ..model.batching import cut_batches
 from ..model.entries import call_inputs, coverage_of, tapped, weight_digest
-from ..model.fastpath import without_fastpath
 from ..model.picking import split_data
 from ..model.sources import Data, data_source
 from ..model.taps import fastpath_off, tapping
@@ -66,7 +65,6 @@ from .tap_scope import TapScope
 from .threads import pass_threads, threads, torch_threads
 
 
-@without_fastpath
 def scan(model: nn.Module, data: Data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8), *, quantize: str = "weight",
          method: str = "mse", per_channel: bool = True, scope: str = "both",
          max_samples: int | None = None, progress: bool = True,
@@ -241,7 +239,6 @@ def _merged(first: list, second: list) -> list:
     return out
 
 
-@without_fastpath
 def scan_share(model: nn.Module, data, options: dict, share: tuple[int, int]) -> dict:
     """What one executor task runs: the scan with the model scope of entries ``i % k == j`` only.
 
