@@ -142,8 +142,8 @@ def _count_scans(monkeypatch) -> list:
             monkeypatch.setattr(module, "finite_check", counting)
             patched.append(module.__name__)
     # the modules that scan data in these calls (a rename must not empty the test)
-    assert {"qwidgets.core.checks", "qwidgets.model.sources", "qwidgets.planning.survey",
-            "qwidgets.model.forward"} <= set(patched), patched
+    assert {"qwidgets.core.checks", "qwidgets.model.sources", "qwidgets.model.finite_state",
+            "qwidgets.planning.scanning", "qwidgets.planning.apply"} <= set(patched), patched
     return scanned
 
 
@@ -221,14 +221,24 @@ def test_evaluate_plan_scans_each_argument_once(monkeypatch):
 
 
 def test_activations_are_still_checked_where_they_are_not_the_data():
-    # the first layer makes inf: the second layer's input is refused, named, by each entry point
+    # the first layer overflows to inf from finite weights: the second layer's input is
+    # refused, named, by each entry point
     net, x = _net(), torch.randn(16, 6)
     with torch.no_grad():
-        net[0].bias[3] = float("inf")
+        net[0].bias[3] = 3e38  # float32's largest is 3.4e38: a positive sum above overflows
+        net[0].weight[3] = 1e38
     words = r"the input of layer '2' .* holds 0 NaN and \d+ inf"
     with pytest.raises(ValueError, match=words):
         qwidgets.scan(net, x, bits=(4,), progress=False)
     setting = {"2": qwidgets.LayerSetting(input=qwidgets.UniformGrid(6, 0.05))}
+    with pytest.raises(ValueError, match=words):
+        qwidgets.model_error(net, x, setting)
+    # an inf in the weights themselves: the error names that weight
+    with torch.no_grad():
+        net[0].bias[3] = float("inf")
+    words = r"weight '0.bias' \(0 NaN, 1 inf of 8\).* so the input of layer '2'"
+    with pytest.raises(ValueError, match=words):
+        qwidgets.scan(net, x, bits=(4,), progress=False)
     with pytest.raises(ValueError, match=words):
         qwidgets.model_error(net, x, setting)
     bad = x.clone()

@@ -151,7 +151,7 @@ def test_batchnorm_that_cannot_be_folded_stays_with_a_reason():
     with pytest.warns(UserWarning) as rec:
         folded = fold_batchnorm(net)
     msg = str(rec[0].message)
-    assert "also used elsewhere" in msg and "does not directly follow" in msg
+    assert "also used elsewhere" in msg and "'bn2' (it follows 'act', a ReLU" in msg
     x = torch.randn(2, 2, 3, 3)
     with torch.no_grad():
         assert torch.equal(folded(x), net(x))
@@ -160,3 +160,78 @@ def test_batchnorm_that_cannot_be_folded_stays_with_a_reason():
         fold_batchnorm(nostats)
     with pytest.raises(TypeError, match="model must be a torch.nn.Module"):
         fold_batchnorm("net")
+
+
+def _transposed_formula(layer, bn):
+    """The folding formula for a transposed convolution, one output channel at a time (a naive
+    loop written here): weight (in, out / groups, *k), output channel o = g * out_g + j is
+    column j of group g's rows."""
+    w = layer.weight.detach().double().clone()
+    out_c, groups = layer.out_channels, layer.groups
+    in_g, out_g = w.shape[0] // groups, out_c // groups
+    b = layer.bias.detach().double() if layer.bias is not None else torch.zeros(out_c, dtype=torch.float64)
+    bn = {k: v.detach().double() for k, v in bn.state_dict().items()} | {"eps": bn.eps}
+    new_b = torch.empty(out_c, dtype=torch.float64)
+    for o in range(out_c):
+        g, j = divmod(o, out_g)
+        f = float(bn["weight"][o]) / (float(bn["running_var"][o]) + bn["eps"]) ** 0.5
+        w[g * in_g:(g + 1) * in_g, j] *= f
+        new_b[o] = (float(b[o]) - float(bn["running_mean"][o])) * f + float(bn["bias"][o])
+    return w, new_b
+
+
+@pytest.mark.parametrize("make, shape", [
+    (lambda: nn.Sequential(nn.ConvTranspose1d(3, 4, 3), nn.BatchNorm1d(4), nn.ReLU()), (2, 3, 7)),
+    (lambda: nn.Sequential(nn.ConvTranspose2d(4, 6, 3, stride=2, groups=2, bias=False),
+                           nn.BatchNorm2d(6)), (2, 4, 5, 5)),
+    (lambda: nn.Sequential(nn.ConvTranspose3d(2, 3, 2), nn.BatchNorm3d(3)), (2, 2, 3, 3, 3)),
+])
+def test_batchnorm_after_a_transposed_convolution_is_folded(make, shape):
+    torch.manual_seed(5)
+    net = _randomise_bn(make()).train()
+    snap = _snapshot(net)
+    assert foldable_batchnorm(net) == {"1": "0"}
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        folded = fold_batchnorm(net)
+    assert _same(net, snap) and isinstance(folded[1], nn.Identity)
+    w, b = _transposed_formula(net[0], net[1])
+    # float64 folding rounded once to float32: a few float32 ulps of the values
+    assert torch.allclose(folded[0].weight.double(), w, rtol=1e-6, atol=1e-7)
+    assert torch.allclose(folded[0].bias.double(), b, rtol=1e-6, atol=1e-6)
+    net.eval()
+    x = torch.randn(shape)
+    with torch.no_grad():  # against torch's own BatchNorm in eval mode
+        assert torch.allclose(folded(x), net(x), rtol=1e-5, atol=1e-5)
+    assert foldable_batchnorm(folded) == {}
+
+
+def test_foldable_lists_exactly_what_fold_leaves_and_the_reasons_are_true():
+    class Mixed(nn.Module):
+        def __init__(self):
+            super().__init__()
+            self.up, self.bn_up = nn.ConvTranspose2d(2, 2, 2, stride=2), nn.BatchNorm2d(2)
+            self.act, self.bn_act = nn.ReLU(), nn.BatchNorm2d(2)
+            self.bn_op = nn.BatchNorm2d(2)
+            self.conv, self.bn_nostats = nn.Conv2d(2, 2, 1), nn.BatchNorm2d(2)
+
+        def forward(self, x):
+            y = self.bn_up(self.up(x))
+            y = self.bn_act(self.act(y))
+            y = self.bn_op(torch.tanh(y))
+            return self.bn_nostats(self.conv(y))
+
+    net = _randomise_bn(Mixed()).eval()
+    net.bn_nostats = nn.BatchNorm2d(2, track_running_stats=False)
+    bns = {n for n, m in net.named_modules() if isinstance(m, nn.BatchNorm2d)}
+    assert foldable_batchnorm(net) == {"bn_up": "up"}  # not bn_nostats: fold_batchnorm leaves it
+    with pytest.warns(UserWarning) as rec:
+        folded = fold_batchnorm(net)
+    msg = str(rec[0].message)
+    assert "'bn_act' (it follows 'act', a ReLU" in msg
+    assert "'bn_op' (it follows the operation 'tanh'" in msg
+    assert "'bn_nostats' (it has no running statistics" in msg
+    assert "does not directly follow" not in msg
+    left = {n for n, m in folded.named_modules() if isinstance(m, nn.BatchNorm2d)}
+    assert left == bns - set(foldable_batchnorm(net)) == {"bn_act", "bn_op", "bn_nostats"}
+    assert foldable_batchnorm(folded) == {}

@@ -73,7 +73,7 @@ def test_json_read_by_the_json_module_holds_the_plan_values():
     net, x = _net(), _data()
     plan = _plan(net, x)
     data = json.loads(plan.to_json())
-    assert data["format"] == "qwidgets plan" and data["version"] == 4
+    assert data["format"] == "qwidgets plan" and data["version"] == 5
     # the figures under the names of the Plan attributes and budget keywords
     assert data["figures"] == {"model_kib": plan.model_kib, "planned_kib": plan.planned_kib,
                                "mean_bits": plan.mean_bits, "bops": plan.bops}
@@ -137,8 +137,9 @@ def test_a_version_1_plan_still_reads():
     data = json.loads(plan.to_json())
     data["version"] = 1
     del data["figures"]
+    data.pop("state_digests", None)
     back = Plan.from_json(json.dumps(data))
-    assert back.bits == plan.bits and back.to_json() == plan.to_json()  # written back as version 2
+    assert back.bits == plan.bits and json.loads(back.to_json()) == _without_digests(plan)  # as version 4
     data["figures"] = json.loads(plan.to_json())["figures"]  # version 1 has no figures field
     with pytest.raises(ValueError, match=r"unknown field\(s\) \['figures'\]"):
         Plan.from_json(json.dumps(data))
@@ -152,11 +153,32 @@ def test_a_version_2_plan_still_reads():
     # versions 2 and 3 stated the mean bits of the codes alone (version 4: stored bits)
     params = {n: math.prod(s) for n, s in plan.weight_shapes.items()}
     data["figures"]["mean_bits"] = sum(params[n] * plan.bits[n] for n in params) / sum(params.values())
+    data.pop("state_digests", None)
     back = Plan.from_json(json.dumps(data))
-    assert back.bits == plan.bits and back.to_json() == plan.to_json()  # written back as version 4
+    assert back.bits == plan.bits and json.loads(back.to_json()) == _without_digests(plan)  # as version 5
     data["layers"]["3"]["partner"] = None  # version 3's field
     with pytest.raises(ValueError, match=r"unknown field\(s\) \['partner'\]"):
         Plan.from_json(json.dumps(data))
+
+
+def test_a_version_4_plan_still_reads():
+    # version 4 (before state_digests and pinned): read without them, checking planned weights only
+    plan = _plan(_net(), _data())
+    data = json.loads(plan.to_json())
+    data["version"] = 4
+    data.pop("state_digests", None)
+    back = Plan.from_json(json.dumps(data))
+    assert back.state_digests is None and json.loads(back.to_json()) == _without_digests(plan)
+    data["state_digests"] = {"0.weight": "0123456789abcdef"}  # version 4's field
+    with pytest.raises(ValueError, match=r"unknown field\(s\) \['state_digests'\]"):
+        Plan.from_json(json.dumps(data))
+
+
+def _without_digests(plan) -> dict:
+    """The plan's JSON data without version 4's state_digests."""
+    d = json.loads(plan.to_json())
+    d.pop("state_digests", None)
+    return d
 
 
 def _broken(text, fn):
@@ -171,7 +193,7 @@ def _bad_cases():
         ("not an object", lambda t: "[1, 2]", "the top level must be a JSON object"),
         ("missing field", lambda t: _broken(t, lambda d: d.pop("fingerprint")), r"missing field\(s\) \['fingerprint'\]"),
         ("extra field", lambda t: _broken(t, lambda d: d.update(note="x")), r"unknown field\(s\) \['note'\]"),
-        ("wrong version", lambda t: _broken(t, lambda d: d.update(version=5)), "version an integer \\(5\\) is not supported"),
+        ("wrong version", lambda t: _broken(t, lambda d: d.update(version=6)), "version an integer \\(6\\) is not supported"),
         ("version 2 without figures", lambda t: _broken(t, lambda d: d.pop("figures")), r"missing field\(s\) \['figures'\]"),
         ("figures edited", lambda t: _broken(t, lambda d: d["figures"].update(mean_bits=2.0)),
          r"figures.mean_bits is 2.0 but the plan's layers give"),

@@ -66,8 +66,9 @@ def test_budget_planner_plans_only_what_the_device_runs():
     torch.manual_seed(2)
     net = nn.Sequential(nn.Linear(8, 16), nn.ReLU(), nn.Linear(16, 4))
     rules = DeviceRules(pow2_scales=True, symmetric_weights=True, weight_bits=(4, 8))
-    with pytest.warns(UserWarning, match="skips bit widths"):
-        p = BudgetPlanner(net, torch.randn(64, 8), bits=(2, 4, 8), rules=rules, progress=False)
+    with pytest.raises(ValueError, match=r"width\(s\) \[2\] that the device rules do not allow"):
+        BudgetPlanner(net, torch.randn(64, 8), bits=(2, 4, 8), rules=rules, progress=False)
+    p = BudgetPlanner(net, torch.randn(64, 8), bits=(4, 8), rules=rules, progress=False)
     plan = p.set_budget("mean_bits", 12).plan  # stored bits: about 6 for the codes, 6 for the scales
     assert set(plan.bits.values()) <= {4, 8}
     assert all(rules.obeys(s.weight, "weight") for s in plan.layers.values())

@@ -8,8 +8,8 @@ from collections.abc import Callable, Iterable
 import torch
 from torch import nn
 
-from ..core.checks import finite_check
-from .layers import LayerInputError, describe_layer, is_quantizable
+from .finite_state import check_layer_input
+from .layers import describe_layer, is_quantizable
 from .picking import split_data
 from .running import (
     Data,
@@ -101,7 +101,7 @@ def capture_inputs(model: nn.Module, data: Data, layers: str | Iterable[str] | N
         name = names[id(module)]
         x = first_input(module, name, args, kwargs)
         if x.is_floating_point():
-            finite_check(x, f"the input of layer {name!r} ({describe_layer(module)})", LayerInputError)
+            check_layer_input(x, f"the input of layer {name!r} ({describe_layer(module)})", model)
         calls.setdefault(name, []).append(x.detach().clone())
 
     for batch in source:

@@ -367,5 +367,5 @@ def weight_digest(t: torch.Tensor) -> str:
 
     t = t.detach().to("cpu").contiguous()
     h = hashlib.sha256(f"{t.dtype}:{tuple(t.shape)}:".encode())
-    h.update(t.reshape(-1).view(torch.uint8).numpy().tobytes())
+    h.update(t.reshape(-1).view(torch.uint8).numpy())  # the buffer itself, not a bytes copy
     return h.hexdigest()[:16]

@@ -5,7 +5,11 @@ with the weight scaled per output channel and the bias shifted,
 
     w' = w * gamma / sqrt(var + eps),   b' = (b - mean) * gamma / sqrt(var + eps) + beta
 
-(common practice), and the folded weight's per-channel ranges differ from the unfolded one's,
+(common practice). A Linear / Conv weight has its output channels on axis 0; a transposed
+convolution's weight is (in_channels, out_channels / groups, *kernel): output channel
+``g * out_channels / groups + j`` is column ``j`` of group ``g``'s rows, so the factor is
+applied along axis 1, group by group. The folded weight's per-channel ranges differ from the
+unfolded one's, the folded weight's per-channel ranges differ from the unfolded one's,
 so a plan should be scanned and fitted on the folded model. Pairs are found in the graph
 ``torch.fx`` traces where the model traces, else from the module order inside each
 ``nn.Sequential``; BatchNorm layers that neither finds are left as they are and named in a
@@ -22,15 +26,18 @@ from torch import nn
 
 __all__ = ["fold_batchnorm", "foldable_batchnorm"]
 
-_FOLDABLE = (nn.Linear, nn.Conv1d, nn.Conv2d, nn.Conv3d)
+_FOLDABLE = (nn.Linear, nn.Conv1d, nn.Conv2d, nn.Conv3d,
+             nn.ConvTranspose1d, nn.ConvTranspose2d, nn.ConvTranspose3d)
 _BN = (nn.BatchNorm1d, nn.BatchNorm2d, nn.BatchNorm3d)
 
 
 def foldable_batchnorm(model: nn.Module) -> dict[str, str]:
-    """The BatchNorm layers that directly follow a Linear / Conv layer: ``{bn name: layer name}``.
+    """The BatchNorm layers :func:`fold_batchnorm` folds: ``{bn name: layer name}``.
 
-    Empty when there is nothing to fold (for example on the output of :func:`fold_batchnorm`).
-    Found as :func:`fold_batchnorm` finds them (traced graph, else ``nn.Sequential`` order).
+    Exactly those it would fold (after a Linear, Conv or ConvTranspose layer, with running
+    statistics), found as it finds them (traced graph, else ``nn.Sequential`` order); every
+    other BatchNorm is one its warning names with the reason. Empty when there is nothing to
+    fold (for example on the output of :func:`fold_batchnorm`).
 
     >>> from torch import nn
     >>> net = nn.Sequential(nn.Conv2d(3, 4, 3), nn.BatchNorm2d(4), nn.ReLU())
@@ -40,12 +47,13 @@ def foldable_batchnorm(model: nn.Module) -> dict[str, str]:
     if not isinstance(model, nn.Module):
         raise TypeError(f"model must be a torch.nn.Module, got {type(model).__name__}")
     pairs, _, _ = _find_pairs(model)
-    return {bn: layer for layer, bn in pairs}
+    modules = dict(model.named_modules())
+    return {bn: layer for layer, bn in pairs if _unfoldable(modules[bn]) is None}
 
 
 def fold_batchnorm(model: nn.Module) -> nn.Module:
-    """An eval-mode copy of ``model`` with every BatchNorm that directly follows a Linear or
-    Conv1d/2d/3d layer folded into that layer (and replaced by ``nn.Identity``).
+    """An eval-mode copy of ``model`` with every BatchNorm that directly follows a Linear,
+    Conv1d/2d/3d or ConvTranspose1d/2d/3d layer folded into that layer (and replaced by ``nn.Identity``).
 
     The copy's outputs equal the original's in eval mode within float rounding; ``model`` itself
     is untouched. A BatchNorm that cannot be folded (after another kind of layer, after a layer
@@ -94,7 +102,7 @@ def _find_pairs(model: nn.Module):
         pairs = _sequential_pairs(model)
         paired = {bn for _, bn in pairs}
         left = {n: "the model does not trace with torch.fx and it does not follow a Linear / Conv "
-                   "layer inside an nn.Sequential" for n in bns if n not in paired}
+                   "/ ConvTranspose layer inside an nn.Sequential" for n in bns if n not in paired}
         return pairs, left, "found from nn.Sequential order"
     return (*_traced_pairs(model, graph, bns), "found from the torch.fx graph")
 
@@ -113,7 +121,7 @@ def _traced_pairs(model: nn.Module, graph, bns):
         src = node.args[0] if node.args else None
         layer = modules.get(src.target) if getattr(src, "op", None) == "call_module" else None
         if not isinstance(layer, _FOLDABLE):
-            left[bn] = "it does not directly follow a Linear / Conv layer"
+            left[bn] = _what_precedes(src, layer)
         elif calls.get(bn, 0) != 1 or calls.get(src.target, 0) != 1:
             left[bn] = "the layer or the BatchNorm is called more than once"
         elif len(src.users) != 1:
@@ -126,6 +134,18 @@ def _traced_pairs(model: nn.Module, graph, bns):
         if bn not in left and all(bn != b for _, b in pairs):
             left[bn] = "not called by the traced forward"
     return pairs, left
+
+
+def _what_precedes(src, layer) -> str:
+    """Why a BatchNorm after ``src`` (a graph node; ``layer`` its module, if one) cannot be folded."""
+    if layer is not None:
+        return (f"it follows {src.target!r}, a {type(layer).__name__}, which has no per-channel "
+                "weight to fold it into")
+    if getattr(src, "op", None) == "placeholder":
+        return "it is applied to the model's input, not to a layer's output"
+    what = getattr(src, "target", src)
+    what = getattr(what, "__name__", what)
+    return f"it follows the operation {what!r}, not a Linear / Conv / ConvTranspose layer"
 
 
 def _sequential_pairs(model: nn.Module):
@@ -161,8 +181,14 @@ def _fold_into(layer: nn.Module, bn: nn.Module) -> None:
         gamma = bn.weight.double() if bn.weight is not None else torch.ones_like(var)
         beta = bn.bias.double() if bn.bias is not None else torch.zeros_like(var)
         factor = gamma / torch.sqrt(var + bn.eps)
-        shape = (-1,) + (1,) * (w.dim() - 1)
-        new_w = (w.double() * factor.reshape(shape)).to(w.dtype)
+        if isinstance(layer, nn.modules.conv._ConvTransposeNd):
+            # (in, out / groups, *k): group g's rows feed output channels g * out / groups + j
+            g = layer.groups
+            wg = w.double().reshape(g, w.shape[0] // g, *w.shape[1:])
+            f = factor.reshape(g, 1, w.shape[1], *(1,) * (w.dim() - 2))
+            new_w = (wg * f).reshape(w.shape).to(w.dtype)
+        else:
+            new_w = (w.double() * factor.reshape((-1,) + (1,) * (w.dim() - 1))).to(w.dtype)
         b = layer.bias.double() if layer.bias is not None else torch.zeros_like(var)
         new_b = ((b - mean) * factor + beta).to(w.dtype)
         layer.weight.copy_(new_w)

@@ -9,13 +9,13 @@ from typing import Any
 import torch
 from torch import nn
 
-from ..core.checks import finite_check
 from ..core.grid import UniformGrid, grid_params
 from ..core.metrics import ErrorStats, error_stats
 from ..core.renamed import warn_renamed
 from ..core.rounding import quantize, quantize_unchecked
 from ..core.setting import LayerSetting
 from .entries import Entry, call_inputs, find_entries, replace_inputs, tapped
+from .finite_state import check_layer_input
 from .layers import (
     LayerInputError,
     check_layer,
@@ -181,8 +181,8 @@ def model_error(
         if metric is not None:
             t = target if targets is None else cut_target(next(targets, None), _samples(batch))
             w = 1 if source.single else _samples(batch)
-            mf += w * call_metric(metric, ref, t)
-            mq += w * call_metric(metric, out, t)
+            mf += w * call_metric(metric, ref, t, "on the float model")
+            mq += w * call_metric(metric, out, t, "on the quantized model")
             n_metric += w
     if chosen:
         sums.check_varies()
@@ -289,8 +289,8 @@ def quantized_call(model: nn.Module, batch, settings: Mapping[Entry, LayerSettin
             if not inputs_checked:
                 for x in {id(x): x for x in xs}.values():  # self-attention: one tensor, thrice
                     if x.is_floating_point() and id(x) not in checked:  # the batch's: checked
-                        finite_check(x, f"the input of layer {e.name!r} ({describe_layer(module)})",
-                                     LayerInputError)
+                        check_layer_input(x, f"the input of layer {e.name!r} ({describe_layer(module)})",
+                                          model)
             if e.name not in ran:
                 ran.append(e.name)
             args, kwargs = replace_inputs(e, args, kwargs, lambda v, g=grid: quantize_unchecked(v, g))

@@ -156,7 +156,10 @@ def check_varies(lo: float, hi: float, n: int, what: str = "the model's float ou
             "logits or hidden states)")
 
 
-def call_metric(metric, output, target) -> float:
+def call_metric(metric, output, target, where: str = "") -> float:
+    """``metric(output, target)`` as a finite float; ``where`` (e.g. "on the planned model of
+    Plan(...)") completes the error that names a metric returning NaN / inf."""
+    import math
     from numbers import Real
 
     value = metric(output, target)
@@ -164,7 +167,16 @@ def call_metric(metric, output, target) -> float:
         value = value.item()
     if isinstance(value, bool) or not isinstance(value, Real):
         raise TypeError(f"metric(output, target) must return a float, got {type(value).__name__}")
+    if not math.isfinite(value):
+        raise ValueError(f"metric {metric_name(metric)} returned {float(value)}{' ' + where if where else ''}; "
+                         "a metric must return a finite number (an empty class in a ratio? a log of 0?)")
     return float(value)
+
+
+def metric_name(metric) -> str:
+    """A metric's name for messages: its name, else its class's."""
+    name = getattr(metric, "__name__", None) or getattr(getattr(metric, "func", None), "__name__", None)
+    return repr(name or type(metric).__name__)
 
 
 Output = Any

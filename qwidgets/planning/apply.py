@@ -8,9 +8,13 @@ import warnings
 import torch
 from torch import nn
 
+from ..core.checks import finite_check
 from ..core.grid import UniformGrid
-from ..core.rounding import quantize, quantize_unchecked, to_codes
+from ..core.grid_cache import tensor_digest
+from ..core.rounding import quantize_unchecked, to_codes
 from ..model.entries import find_entries, replace_inputs, tapped, weight_digest
+from ..model.finite_state import check_layer_input
+from ..model.state_digest import state_differences
 from ..model.tap_quantize import QuantizeTap
 from ..model.taps import attach
 from ..model.usage import entries_named
@@ -67,12 +71,22 @@ def match_plan(model: nn.Module, plan: Plan, strict: bool, allow_other_weights: 
                          "renamed or reshaped). Pass strict=False to apply the layers that match")
     if not found:
         raise ValueError(f"no planned layer matches the model by name and shape: {', '.join(skipped)}")
-    if not allow_other_weights:
+    if not allow_other_weights and plan.state_digests is not None:
+        differ = state_differences(plan.state_digests, model, strict=strict)
+        if differ:
+            listed = ", ".join(differ[:8]) + (f", ... ({len(differ)} in all)" if len(differ) > 8 else "")
+            raise ValueError(
+                f"the model's weights or buffers differ from those the plan was made for: {listed} "
+                "(another checkpoint of the same architecture?); the plan's grids and predictions "
+                "depend on every weight and buffer. Scan this model again, or pass "
+                "allow_other_weights=True to apply the plan anyway")
+    elif not allow_other_weights:  # a plan from before whole-state digests: its weights only
         for name, e in found.items():
             if e.kind == "activation":
                 continue
             want = plan.weight_digest(name)
-            if want is not None and weight_digest(e.parameter(model)) != want:
+            digest = weight_digest if want is not None and len(want) == 16 else tensor_digest  # older: SHA-256
+            if want is not None and digest(e.parameter(model)) != want:
                 raise ValueError(
                     f"the weights of planned entry {name!r} differ from those the plan was made for "
                     "(another checkpoint of the same architecture?); the plan's grids were fitted "
@@ -85,16 +99,16 @@ class _QuantizeInput:
     """Forward pre-hook of a planned copy: fake-quantizes the entry's inputs (a layer's first
     argument; an attention projection's query / key / value)."""
 
-    def __init__(self, entry, grid: UniformGrid, checked):
-        self.entry, self.grid, self.checked = entry, grid, checked
+    def __init__(self, entry, grid: UniformGrid, checked, model):
+        self.entry, self.grid, self.checked, self.model = entry, grid, checked, model
 
     def __call__(self, module, args, kwargs):
         return replace_inputs(self.entry, args, kwargs, self._quantize)
 
     def _quantize(self, v):
-        if id(v) in self.checked:  # the caller checked these values (a batch of evaluate_plan)
-            return quantize_unchecked(v, self.grid)
-        return quantize(v, self.grid)
+        if id(v) not in self.checked:  # the caller checked these values (a batch of evaluate_plan)
+            check_layer_input(v, f"the input of layer {self.entry.name!r}", self.model)
+        return quantize_unchecked(v, self.grid)
 
 
 def apply_plan(model: nn.Module, plan: Plan, *, strict: bool = True,
@@ -107,8 +121,9 @@ def apply_plan(model: nn.Module, plan: Plan, *, strict: bool = True,
     missing from the model or made for a model with other parameter names or shapes (naming
     the first mismatching entries); ``strict=False`` applies the entries that match by name and
     weight shape, warns about the rest and lists them in the copy's ``qwidgets_skipped``
-    attribute (``qwidgets_applied`` lists the applied ones). A model whose planned weights
-    differ from those the plan was made for is refused unless ``allow_other_weights=True``.
+    attribute (``qwidgets_applied`` lists the applied ones). A model whose floating-point
+    weights or buffers (BatchNorm statistics included) differ from those the plan was made for
+    is refused, naming them, unless ``allow_other_weights=True``.
 
     >>> import torch
     >>> from torch import nn
@@ -145,12 +160,13 @@ def planned_copy(model: nn.Module, plan: Plan, *, strict: bool, allow_other_weig
             setting = plan.layers[name]
             if setting.weight is not None:
                 w = e.parameter(new)  # the copy keeps tied parameters tied
-                w.copy_(quantize(w.detach(), setting.weight))
+                finite_check(w.detach(), f"weight {e.param!r}")
+                w.copy_(quantize_unchecked(w.detach(), setting.weight))
             if setting.input is not None and tapped(e):
                 through_taps[e] = setting.input
             elif setting.input is not None:
                 owner = new.get_submodule(e.module) if e.module else new
-                owner.register_forward_pre_hook(_QuantizeInput(e, setting.input, checked),
+                owner.register_forward_pre_hook(_QuantizeInput(e, setting.input, checked, new),
                                                 with_kwargs=True)
     if through_taps:  # attention activations, out_proj's context, inputs of weights found by use
         attach(new, QuantizeTap(through_taps, checked=checked))
@@ -208,7 +224,9 @@ def export_codes(model: nn.Module, plan: Plan, *, strict: bool = True,
             "codes": None, "scale": None, "offset": None, "zero_point": None, "axis": None,
             "block_size": None, "bits": None, "signed": None}
         if s.weight is not None:
-            codes = to_codes(e.parameter(model).detach(), s.weight)
+            w = e.parameter(model).detach()
+            finite_check(w, f"weight {e.param!r}")
+            codes = to_codes(w, s.weight)
             entry["codes"] = codes.to(_code_dtype(s.weight))
         entry["input"] = None if s.input is None else _grid_fields(s.input)
         entry["shared_with"] = list(e.shared_with)

@@ -115,7 +115,8 @@ def paired_drop_interval(metric: Callable, out_a, out_b, target, *, confidence: 
     for k in range(n_boot):
         idx = rng.integers(0, n, n)
         t = take(target, idx)
-        diffs[k] = call_metric(metric, take(out_a, idx), t) - call_metric(metric, take(out_b, idx), t)
+        diffs[k] = (call_metric(metric, take(out_a, idx), t, "on a bootstrap resample")
+                    - call_metric(metric, take(out_b, idx), t, "on a bootstrap resample"))
     diffs = diffs[np.isfinite(diffs)]
     if diffs.size == 0:
         return math.nan, math.nan

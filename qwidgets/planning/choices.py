@@ -40,14 +40,14 @@ MAX_NOISE = 1e12  # noise power relative to the signal, cap (SQNR >= -120 dB) to
 
 @dataclass(frozen=True)
 class Menu:
-    """Options per entry: ``options[i]`` lists (weight bits, input bits, granularity);
-    ``noise[i]`` their predicted noise (relative to the signal power), same order."""
+    """Options per entry: ``options[i]`` lists (weight bits, input bits, granularity); ``noise[i]`` their predicted noise (relative to the signal power), same order."""
 
     names: list
     options: list
     noise: list
     assumed_input_bits: int | None  # input width BOPs count where the input stays float
     scale_bits: int = 16  # how block scales are stored
+    pinned: tuple = ()  # entries pinned by ``fixed`` (a plan records them)
 
     def costs(self, table: SensitivityTable, cost: str) -> list:
         """Integer cost of every option of every entry (list of int64 arrays); the products of
@@ -397,4 +397,4 @@ def build_menu(table, *, fixed=None, allowed_bits=None, assumed_input_bits: int 
             n.append(v)
         options.append(opts)
         noise.append(np.array(n, dtype=float))
-    return Menu(list(table.layers), options, noise, assumed_input_bits, scale_bits)
+    return Menu(list(table.layers), options, noise, assumed_input_bits, scale_bits, tuple(n for n in table.layers if n in fixed))

@@ -3,7 +3,6 @@ scanned grids obey the rules (a table scanned without them cannot be planned und
 
 from __future__ import annotations
 
-import warnings
 from collections.abc import Mapping
 
 from ..core.device_rules import DeviceRules, check_rules
@@ -11,18 +10,38 @@ from ..core.device_rules import DeviceRules, check_rules
 __all__ = ["scan_bits", "rules_allowed_bits"]
 
 
-def scan_bits(bits: tuple[int, ...], rules: DeviceRules | None, quantize: str) -> tuple[int, ...]:
-    """The widths of ``bits`` a scan under ``rules`` measures (those in the menus it uses)."""
+def scan_bits(bits: tuple[int, ...], rules: DeviceRules | None, quantize: str,
+              name: str = "bits") -> tuple[int, ...]:
+    """``bits`` (given as ``name``), checked against the menus a scan under ``rules`` uses.
+
+    A width the rules do not allow is an error naming it and the call that scans what the
+    device runs (a scan never measures fewer widths than it was asked for).
+    """
     if check_rules(rules) is None:
         return bits
-    keep = tuple(b for b in bits if _allowed(rules, b, quantize))
-    if not keep:
-        raise ValueError(f"none of bits={bits} is allowed by the device rules "
-                         f"(weight_bits={rules.weight_bits}, input_bits={rules.input_bits})")
-    dropped = sorted(set(bits) - set(keep))
-    if dropped:
-        warnings.warn(f"scan skips bit widths {dropped}: not allowed by the device rules", stacklevel=3)
-    return keep
+    dropped = [b for b in bits if not _allowed(rules, b, quantize)]
+    if not dropped:
+        return bits
+    menus = f"weight_bits={rules.weight_bits}, input_bits={rules.input_bits}"
+    raise ValueError(f"{name}={bits} asks for width(s) {dropped} that the device rules do not allow "
+                     f"for quantize={quantize!r} ({menus}); {_suggestion(bits, rules, quantize, name)}")
+
+
+def _suggestion(bits: tuple[int, ...], rules: DeviceRules, quantize: str, name: str) -> str:
+    """The scan call that measures what the device runs, for :func:`scan_bits`' error."""
+    def menu(role):
+        keep = tuple(b for b in bits if rules.allows_bits(b, role))
+        return keep or rules.bits_menu(role)
+
+    if quantize == "both":
+        wb, ib = menu("weight"), menu("input")
+        if wb == ib:
+            return f"scan with bits={wb}"
+        return (f"with different weight and input menus, scan the weights and the inputs each at "
+                f"their own widths: scan(model, data, quantize='separate', bits={wb}, "
+                f"input_bits={ib}, rules=rules)")
+    role = "input" if quantize == "input" or name == "input_bits" else "weight"
+    return f"scan with {name}={menu(role)}"
 
 
 def rules_allowed_bits(table, rules: DeviceRules | None, allowed_bits, input_bits: int | None):

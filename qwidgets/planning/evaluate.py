@@ -29,7 +29,8 @@ class PlanReport:
     ``drop_low`` / ``drop_high``: the paired bootstrap interval of :attr:`drop` at
     ``confidence`` (when asked for). ``planned_kib``, ``mean_bits``, ``bops`` (and their float32
     figures) are the applied entries' :class:`Plan` figures of those names; ``model_kib`` the
-    plan's whole-model storage.
+    plan's whole-model storage; ``pinned``: the entries whose width ``fixed=`` pinned
+    (``"name (8 bits)"``; a pinned width may lie outside ``allowed_bits``).
     """
 
     measured_sqnr_db: float
@@ -48,6 +49,7 @@ class PlanReport:
     drop_low: float | None = None
     drop_high: float | None = None
     confidence: float | None = None
+    pinned: tuple = ()
 
     @property
     def drop(self) -> float | None:
@@ -105,6 +107,8 @@ class PlanReport:
                          f"[{self.drop_low:.4g}, {self.drop_high:.4g}] (paired bootstrap over samples)")
         if self.skipped:
             lines.append(f"skipped layers: {', '.join(self.skipped)}")
+        if self.pinned:
+            lines.append(f"pinned by fixed= (not chosen by the budget): {', '.join(self.pinned)}")
         lines.append(self.caution)
         return "\n".join(lines)
 
@@ -173,8 +177,8 @@ def evaluate_plan(model: nn.Module, data: Data, plan: Plan, *, metric: Callable 
         if metric is not None:
             t = target if targets is None else cut_target(next(targets, None), batch_size(batch))
             w = 1 if source.single else batch_size(batch)
-            mf += w * call_metric(metric, ref, t)
-            mp += w * call_metric(metric, out, t)
+            mf += w * call_metric(metric, ref, t, f"on the float model (evaluating {plan!r})")
+            mp += w * call_metric(metric, out, t, f"on the planned model of {plan!r}")
             weight += w
             if confidence is not None:
                 kept.append((ref, out, t))
@@ -210,6 +214,7 @@ def evaluate_plan(model: nn.Module, data: Data, plan: Plan, *, metric: Callable 
         drop_low=low,
         drop_high=high,
         confidence=None if confidence is None else float(confidence),
+        pinned=tuple(f"{n} ({plan.bits[n]} bits)" for n in plan.layers if plan.entries[n].get("pinned")),
     )
 
 

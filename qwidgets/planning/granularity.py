@@ -176,11 +176,14 @@ def granularity_rows(rows, grans: tuple, layers: list, n_bits: int, sqnr: dict) 
     return out
 
 
-def fit_option(w, e, option, bits, method, rules, notes: list):
-    """The grids of one granularity option at every width, or None when the entry skips it."""
+def fit_option(w, e, option, bits, method, rules, notes: list, digest: str | None = None):
+    """The grids of one granularity option at every width, or None when the entry skips it.
+    ``w``'s values are checked by the caller; ``digest``: its grid-cache digest, when known."""
     why = block_skip_reason(e.shape, e.axis, option) if isinstance(option, int) else None
     if why is not None:
         notes.append((e.name, why))
         return None
     # fitted once per process for these values and options (grid_cache), every width together
-    return fit_cached(RangeFitter(w, method, rules=rules, **grid_options(option, e.axis)), bits)
+    fitter = RangeFitter(w, method, rules=rules, check_finite=False, **grid_options(option, e.axis))
+    fitter.digest = digest  # the scan's state digest: no second hash of the weight
+    return fit_cached(fitter, bits)

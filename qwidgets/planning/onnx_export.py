@@ -65,7 +65,7 @@ def require_onnx(what: str, runtime: bool = False):
 
 def export_onnx(model: nn.Module, plan: Plan, path: str | os.PathLike,
                 example_inputs: torch.Tensor | tuple[Any, ...] | dict[str, Any], *,
-                opset: int = 21) -> onnx.ModelProto:
+                opset: int = 21, allow_other_weights: bool = False) -> onnx.ModelProto:
     """Write ``model`` with ``plan`` applied as an ONNX file; return the ``onnx.ModelProto``.
 
     ``example_inputs``: a tensor, a tuple of positional inputs (graph inputs ``input_0``,
@@ -75,8 +75,10 @@ def export_onnx(model: nn.Module, plan: Plan, path: str | os.PathLike,
     graph's outputs ``output_0``, ... are the tensors of the model's output, in order (a
     tuple, dict or dataclass output flattened as :func:`qwidgets.evaluate_plan` reads it).
     ``model`` is not changed. Every planned grid must have an integer zero point that fits its
-    integer type; others are refused with the layer named. The exported model computes what
-    ``apply_plan(model, plan)`` computes, up to the rounding order of the input quantization
+    integer type; others are refused with the layer named. A model whose weights or buffers
+    differ from those the plan was made for is refused, naming them, unless
+    ``allow_other_weights=True`` (as in :func:`qwidgets.apply_plan`). The exported model
+    computes what ``apply_plan(model, plan)`` computes, up to the rounding order of the input quantization
     (ONNX rounds ``x / S`` and adds ``Z``); :func:`qwidgets.check_onnx` compares the two.
     Needs the ``onnx`` package (``pip install 'qwidgets[onnx]'``).
 
@@ -102,7 +104,7 @@ def export_onnx(model: nn.Module, plan: Plan, path: str | os.PathLike,
     if not isinstance(path, (str, os.PathLike)):
         raise TypeError(f"path must be a str or os.PathLike, got {type(path).__name__}")
     names, tensors, call = _check_inputs(example_inputs)
-    found, _ = match_plan(model, plan, strict=True)
+    found, _ = match_plan(model, plan, strict=True, allow_other_weights=allow_other_weights)
     for name in found:
         s = plan.layers[name]
         for role, grid in (("weight", s.weight), ("input", s.input)):

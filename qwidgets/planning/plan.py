@@ -78,6 +78,7 @@ class Plan:
     entries: dict | None = None
     other_weight_bits: int | None = None
     scale_bits: int = 16  # how block grids' scales are stored (DeviceRules.scale_bits)
+    state_digests: dict | None = None  # state_dict name -> digest of every float weight / buffer
 
     def __post_init__(self):
         if not isinstance(self.layers, Mapping) or not self.layers:
@@ -122,7 +123,7 @@ class Plan:
     @classmethod
     def unchecked(cls, layers: dict, bits: dict, *, fingerprint: str, weight_shapes: dict, macs: dict,
                   assumed_input_bits: int | None = 8, predicted_sqnr_db: float | None = None,
-                  entries: dict, other_weight_bits: int | None = None, scale_bits: int = 16) -> Plan:
+                  entries: dict, other_weight_bits: int | None = None, scale_bits: int = 16, state_digests: dict | None = None) -> Plan:
         """A Plan from fields already checked (by :class:`SensitivityTable`, which builds them
         from its own validated grids): skips the per-entry checks, so a Pareto front's hundreds
         of plans of hundreds of entries cost milliseconds. Everyone else: use ``Plan(...)``."""
@@ -133,7 +134,7 @@ class Plan:
                      ("predicted_sqnr_db", None if predicted_sqnr_db is None else float(predicted_sqnr_db)),
                      ("entries", entries),
                      ("other_weight_bits", None if other_weight_bits is None else int(other_weight_bits)),
-                     ("scale_bits", scale_bits)):
+                     ("scale_bits", scale_bits), ("state_digests", state_digests)):
             object.__setattr__(plan, k, v)
         return plan
 
@@ -345,6 +346,7 @@ class Plan:
         extra = {} if self.other_weight_bits is None else {"other_weight_bits": self.other_weight_bits}
         if self.scale_bits != 16:
             extra["scale_bits"] = self.scale_bits
+        extra.update({} if self.state_digests is None else {"state_digests": dict(self.state_digests)})
         return {
             **extra,
             "format": FORMAT,

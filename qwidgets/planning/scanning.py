@@ -29,7 +29,6 @@ from __future__ import annotations
 import copy
 import dataclasses
 import threading
-import warnings
 from collections.abc import Callable, Sequence
 from concurrent.futures import Executor
 from numbers import Integral
@@ -37,7 +36,7 @@ from numbers import Integral
 import numpy as np
 from torch import nn
 
-from ..core.checks import check_bits, check_bool, check_choice
+from ..core.checks import check_bits, check_bool, check_choice, finite_check
 from ..core.device_rules import DeviceRules, check_rules
 from ..core.ranges import METHODS
 from ..model import outputs, running
@@ -45,8 +44,10 @@ from ..model.batching import cut_batches
 from ..model.entries import call_inputs, coverage_of, tapped, weight_digest
 from ..model.picking import split_data
 from ..model.sources import Data, data_source
+from ..model.state_digest import state_digests
 from ..model.taps import fastpath_off, tapping
 from ..model.usage import entries_on
+from .confirm import ScanNote, check_confirm, noted, scanned_table  # noqa: F401 (ScanNote: public here)
 from .device_checks import scan_bits
 from .distribute import merge_shares, worker_count
 from .granularity import fit_option, scan_granularity, split_granularities
@@ -72,7 +73,7 @@ def scan(model: nn.Module, data: Data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8),
          batch_size: int | None = None, executor: Executor | None = None,
          rules: DeviceRules | None = None, input_bits: Sequence[int] = (4, 6, 8),
          inputs: int | str | Callable | None = None,
-         granularity: Sequence | None = None) -> SensitivityTable:
+         granularity: Sequence | None = None, confirm: int = 0) -> SensitivityTable:
     """Measure every quantizable weight (entry), quantized alone, at every bit width in ``bits``.
 
     Parameters
@@ -112,13 +113,16 @@ def scan(model: nn.Module, data: Data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8),
         ``dask.distributed`` client's ``get_executor()``): the model-scope work is split across
         its workers by entry, each receives the model and the data once, and the parts are
         merged into the table a serial scan gives
-    rules : :class:`qwidgets.DeviceRules` every fitted grid obeys (widths outside the menus are
-        skipped with a warning; weights per tensor where the device needs it)
+    rules : :class:`qwidgets.DeviceRules` every fitted grid obeys (a width outside the menus is
+        an error naming it and the call that works, e.g. ``quantize="separate"`` with
+        ``input_bits=``; weights per tensor where the device needs it)
     inputs : an index, a key or a function picking the model's inputs from each batch
         (``inputs=0`` for a ``DataLoader`` of ``(x, y)`` pairs)
     granularity : weight grids measured at every width, e.g. ``("channel", 32, 128)`` (see
         :mod:`qwidgets.planning.granularity`; None: ``("channel",)``, or ``("tensor",)`` with
         ``per_channel=False``); the first option gives the table's default rows.
+    confirm : with ``estimate="gain"``, the ``confirm`` most uncertain cells measured exactly
+        (:meth:`SensitivityTable.uncertain`; :attr:`SensitivityTable.confirmed` lists them)
 
     The table's :attr:`~SensitivityTable.coverage` says how many weight values were scanned
     and why the others were not.
@@ -147,18 +151,21 @@ def scan(model: nn.Module, data: Data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8),
     if batch_size is not None and batch_size < 1:
         raise ValueError(f"batch_size must be None or an int >= 1, got {batch_size!r}")
     output = outputs.check_output_fn(output)
+    confirm = check_confirm(confirm, estimate, scope)
     separate = quantize == "separate"
-    ibits = scan_bits(_check_bits_tuple(input_bits, "input_bits"), check_rules(rules), "input") \
-        if separate else ()
-    bits = scan_bits(bits, check_rules(rules), "weight" if separate else quantize)
+    ibits = scan_bits(_check_bits_tuple(input_bits, "input_bits"), check_rules(rules), "input",
+                      "input_bits") if separate else ()
+    bits = scan_bits(bits, check_rules(rules), quantize)
     grans, per_channel = scan_granularity(granularity, per_channel, rules, quantize)
     options = dict(rules=rules, bits=bits, quantize=quantize, method=method, per_channel=per_channel, scope=scope,
-                   max_samples=max_samples, output=output, estimate=estimate, batch_size=batch_size, granularity=grans)
-    if not separate:
-        return _noted(SensitivityTable(**split_granularities(_scan_parts(model, data, options, progress, executor))))
-    # each side quantized alone: a weight scan at ``bits`` and an input scan at ``input_bits``
-    if executor is None:  # one checked source for both sides (workers get the data itself)
+                   max_samples=max_samples, output=output, estimate=estimate, batch_size=batch_size, granularity=grans,
+                   confirm=confirm, digests=state_digests(model))  # each float tensor hashed once
+    if executor is None and (separate or confirm):  # one checked source for every pass over it
         data = data_source(model, cut_batches(data, batch_size), max_samples)
+    if not separate:
+        return noted(scanned_table(model, data, split_granularities(
+            _scan_parts(model, data, options, progress, executor)), options))
+    # each side quantized alone: a weight scan at ``bits`` and an input scan at ``input_bits``
     weights = split_granularities(_scan_parts(model, data, {**options, "quantize": "weight"}, progress, executor))
     try:
         # the weight side's survey checked every layer input on this data: not again
@@ -167,18 +174,8 @@ def scan(model: nn.Module, data: Data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8),
                              progress, executor)
     except NoInputEntries:
         inputs = None  # only weight-only entries: no input rows at all
-    return _noted(SensitivityTable(**_join_sides(weights, inputs, ibits)))
+    return noted(scanned_table(model, data, _join_sides(weights, inputs, ibits), options))
 
-
-def _noted(table: SensitivityTable) -> SensitivityTable:
-    """The table, with a warning for each slower path the scan took (``table.notes``)."""
-    for note in table.notes:
-        warnings.warn(f"scan: {note}", ScanNote, stacklevel=3)
-    return table
-
-
-class ScanNote(UserWarning):
-    """A scan took a slower path than it could have (the reason is in ``table.notes`` too)."""
 
 
 def _scan_parts(model, data, options: dict, progress: bool, executor) -> dict:
@@ -304,9 +301,12 @@ def _scan_entries(model, source, first, entries, usage, options, progress, share
             e = f.entry
             act = e.kind == "activation"
             w = None if act else e.parameter(model).detach()
-            # per granularity option, every width at once (fit_option; None: the entry skips it)
-            wg = [fit_option(w, e, opt, bits, method, rules, skipped_opts) for opt in grans] \
-                if (qw and not act) else None
+            # per granularity option, every width at once (fit_option; None: the entry skips it);
+            # the values checked once here (a NaN / inf names the weight)
+            if qw and not act:
+                finite_check(w, f"weight {e.param!r}")
+            wg = [fit_option(w, e, opt, bits, method, rules, skipped_opts, options["digests"].get(e.param))
+                  for opt in grans] if (qw and not act) else None
             ig = [f.inputs.fit(b, method, rules=rules, role="input") for b in bits] \
                 if (qi and f.has_input) else None
             wgrids[e.name] = wg
@@ -318,7 +318,8 @@ def _scan_entries(model, source, first, entries, usage, options, progress, share
                             "param": e.param, "has_input": bool(f.has_input),
                             "shared_with": list(e.shared_with),
                             "stored_bits": 0 if act else e.numel * w.element_size() * 8,
-                            "digest": None if act else weight_digest(w)}
+                            "digest": None if act else (options["digests"].get(e.param)
+                                                        or weight_digest(w))}
             if act:
                 info[e.name]["partner"] = f.partner
     with threads(n_threads):

@@ -23,7 +23,8 @@ every field. Its JSON layout (``version`` 4)::
           "has_input": true,                # optional: false for weight-only entries
           "shared_with": [],                # optional: other places using the same tensor
           "weight_digest": "<16 hex digits>", # optional: the planned weight's values (or null)
-          "partner": "att.key"              # optional, activations: the product's other operand
+          "partner": "att.key",             # optional, activations: the product's other operand
+          "pinned": true                    # optional: the width was pinned by fixed=
         }
       },
       "other_weight_bits": 2656,            # optional: the model's other float weights, bits
@@ -32,7 +33,9 @@ every field. Its JSON layout (``version`` 4)::
         "planned_kib": 5.61,                # other_weight_bits; checked against the layers
         "mean_bits": 4.21,                  # when read (relative 1e-9), so a file edited by
         "bops": 1234567                     # hand cannot say one thing and hold another
-      }
+      },
+      "state_digests": {"features.0.weight": "<16 hex digits>", ...}
+                                            # optional: every floating-point weight and buffer
     }
 
 Versions (each still reads): 1, without ``figures``; 2 added ``figures``; 3 added
@@ -40,7 +43,9 @@ activation entries (``weight_shape`` [], the optional ``partner``); 4 added bloc
 ``scale_bits``, and its ``mean_bits`` counts stored bits (codes, scales and zero points;
 versions 2 and 3 counted code bits only). Plans written before
 entries were recorded (no optional fields) are read as they are: their layers have inputs, no
-digest is checked and ``Plan.model_kib`` is None.
+digest is checked and ``Plan.model_kib`` is None. 5 added the optional ``state_digests``
+and per-layer ``pinned``; plans without ``state_digests`` are read with
+``Plan.state_digests`` None: only their planned weights' digests are checked.
 
 Per-channel grids (``axis`` set) hold one scale / offset / zero point per channel; a grid
 whose offset is not an integer multiple of its scale has ``"zero_point": null``. Block grids
@@ -72,8 +77,9 @@ from .fields import (
 )
 
 FORMAT = "qwidgets plan"
-VERSION = 4  # 2 "figures", 3 activations ("partner"), 4 block grids, scale_bits, mean_bits stored
-READABLE = (1, 2, 3, 4)
+VERSION = 5  # 2 "figures", 3 activations ("partner"), 4 block grids, scale_bits, mean_bits stored,
+#             5 "state_digests" and "pinned"
+READABLE = (1, 2, 3, 4, 5)
 
 FIGURES = ("model_kib", "planned_kib", "mean_bits", "bops")  # Plan attributes, budget keywords
 
@@ -84,10 +90,10 @@ _TOP = ("format", "version", "fingerprint", "predicted_sqnr_db", "assumed_input_
 _LAYER = ("bits", "weight_shape", "macs", "weight", "input")
 
 
-_TOP_OPTIONAL = ("other_weight_bits", "scale_bits")
+_TOP_OPTIONAL = ("other_weight_bits", "scale_bits", "state_digests")
 
 
-_LAYER_OPTIONAL = ("kind", "has_input", "shared_with", "weight_digest", "partner")
+_LAYER_OPTIONAL = ("kind", "has_input", "shared_with", "weight_digest", "partner", "pinned")
 
 
 def plan_fields(data) -> dict:
@@ -97,12 +103,13 @@ def plan_fields(data) -> dict:
     if isinstance(data, dict) and "version" in data and (version not in READABLE or isinstance(version, bool)):
         raise FieldError(f"version {kind_of(version)} is not supported; this qwidgets "
                          f"reads versions {', '.join(map(str, READABLE))}")
-    check_fields(data, _TOP + ("figures",) if version != 1 else _TOP, "the top level",
-                 _TOP_OPTIONAL if version == 4 else ("other_weight_bits",))
+    top_optional = _TOP_OPTIONAL[:{1: 1, 2: 1, 3: 1, 4: 2}.get(version, 3)]  # 4 scale_bits, 5 state_digests
+    check_fields(data, _TOP + ("figures",) if version != 1 else _TOP, "the top level", top_optional)
     if data["format"] != FORMAT:
         raise FieldError(f"format must be {FORMAT!r}, got {kind_of(data['format'])}")
     figures = _figures(data["figures"]) if version != 1 else None
-    layer_optional = _LAYER_OPTIONAL if version in (3, 4) else _LAYER_OPTIONAL[:-1]  # 3 added partner
+    # 3 added partner, 5 pinned
+    layer_optional = _LAYER_OPTIONAL[:{1: 4, 2: 4, 3: 5, 4: 5}.get(version, len(_LAYER_OPTIONAL))]
     fp = fingerprint_field(data["fingerprint"])
     pred = data["predicted_sqnr_db"]
     pred = None if pred is None else number_field(pred, "predicted_sqnr_db")
@@ -114,6 +121,13 @@ def plan_fields(data) -> dict:
     layers, bits, shapes, macs, entries = {}, {}, {}, {}, {}
     other = data.get("other_weight_bits")
     other = None if other is None else int_field(other, "other_weight_bits", 0)
+    states = data.get("state_digests")
+    if states is not None:
+        if not isinstance(states, dict):
+            raise FieldError(f"state_digests must be an object of state_dict name -> digest, got {kind_of(states)}")
+        states = {k: digest_field(v, f"state_digests[{k!r}]") for k, v in states.items()}
+        if any(v is None for v in states.values()):
+            raise FieldError("state_digests values must be hex digests, not null")
     for name, entry in layers_d.items():
         where = f"layers[{name!r}]"
         check_fields(entry, _LAYER, where, layer_optional)
@@ -134,7 +148,7 @@ def plan_fields(data) -> dict:
                 raise FieldError(f"{where}.weight.axis {wd['axis']} is out of range for "
                                  f"weight_shape {list(shape)}")
             channels = shape[wd["axis"]]
-        if isinstance(wd, dict) and "block_size" in wd and version != 4:
+        if isinstance(wd, dict) and "block_size" in wd and version not in (4, 5):
             raise FieldError(f"{where}.weight is a block grid, which plan files hold from version 4")
         w = grid_from_dict(wd, f"{where}.weight", channels)
         x = grid_from_dict(entry["input"], f"{where}.input", None)
@@ -163,7 +177,7 @@ def plan_fields(data) -> dict:
     return dict(layers=layers, bits=bits, fingerprint=fp, weight_shapes=shapes, macs=macs,
                 assumed_input_bits=aib, predicted_sqnr_db=pred, entries=entries,
                 other_weight_bits=other, figures=figures, scale_bits=scale_bits,
-                figures_version=version)
+                figures_version=version, state_digests=states)
 
 
 def _figures(d) -> dict:
@@ -197,7 +211,8 @@ def check_figures(plan, stated: dict | None, version: int = VERSION) -> None:
 
 
 def _entry_fields(entry: dict, where: str) -> dict:
-    """The optional entry fields of a plan layer (kind, has_input, shared_with, weight_digest)."""
+    """The optional entry fields of a plan layer (kind, has_input, shared_with, weight_digest,
+    pinned)."""
     out = {}
     if "kind" in entry:
         out["kind"] = string_field(entry["kind"], f"{where}.kind")
@@ -210,4 +225,6 @@ def _entry_fields(entry: dict, where: str) -> dict:
     if "partner" in entry:  # an activation: the other operand of its product (null: float)
         p = entry["partner"]
         out["partner"] = None if p is None else string_field(p, f"{where}.partner")
+    if "pinned" in entry:
+        out["pinned"] = bool_field(entry["pinned"], f"{where}.pinned")
     return out

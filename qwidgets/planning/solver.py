@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping, Sequence
+from dataclasses import replace
 from typing import Any
 
 import numpy as np
@@ -348,6 +349,16 @@ def cost_as_noise(cost: list) -> list:
 
 
 def make_plan(table: SensitivityTable, menu: Menu, choice: np.ndarray) -> Plan:
+    """The plan of one choice per entry; entries ``fixed`` pinned are recorded as pinned (their
+    width was not chosen by the budget, and may lie outside ``allowed_bits``)."""
+    plan = _table_plan(table, menu, choice)
+    if not menu.pinned:
+        return plan
+    entries = {n: ({**d, "pinned": True} if n in menu.pinned else d) for n, d in plan.entries.items()}
+    return replace(plan, entries=entries)
+
+
+def _table_plan(table: SensitivityTable, menu: Menu, choice: np.ndarray) -> Plan:
     noise = sum(float(n[int(k)]) for n, k in zip(menu.noise, choice, strict=True))
     predicted = math.inf if noise == 0 else -10.0 * math.log10(noise)
     picked = [menu.options[i][int(k)] for i, k in enumerate(choice)]

@@ -21,6 +21,7 @@ from torch import nn
 from ..core.checks import finite_check
 from ..model import layers, outputs, running
 from ..model.entries import Entry, call_inputs, tapped
+from ..model.finite_state import check_layer_input
 from ..model.sources import DataSource, batch_size, batch_tensors
 from ..model.statistics import RangeSample
 from ..model.tap_quantize import EachTap
@@ -130,8 +131,8 @@ def survey(model: nn.Module, source: DataSource, entries: list[Entry], *, want_i
                 continue
             for v in xs:  # each tensor once (self-attention: one tensor, thrice)
                 if v.is_floating_point() and id(v) not in seen and not inputs_checked:
-                    finite_check(v, f"the input of layer {f.entry.name!r} ({layers.describe_layer(module)})",
-                                 layers.LayerInputError)
+                    check_layer_input(v, f"the input of layer {f.entry.name!r} ({layers.describe_layer(module)})",
+                                      model)
                 seen.add(id(v))
             f.has_input = True
             if first_batch[0]:

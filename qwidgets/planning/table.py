@@ -21,6 +21,7 @@ from .synthetic import synthetic_table
 from .table_html import table_html, table_rows
 from .table_json import table_from_text, table_to_dict
 from .table_schema import ESTIMATES
+from .uncertainty import uncertain_cells
 
 
 class SensitivityTable:
@@ -41,8 +42,12 @@ class SensitivityTable:
                  coverage: Coverage | None = None, input_bits: Sequence[int] = (),
                  input_layer_sqnr: np.ndarray | None = None, input_model_sqnr: np.ndarray | None = None,
                  estimate: str = "exact", notes: Sequence[str] = (), granularities: Sequence | None = None,
-                 granularity_rows: Mapping | None = None):
+                 granularity_rows: Mapping | None = None, state_digests: Mapping[str, str] | None = None,
+                 confirmed: Sequence[tuple[str, str, int]] = ()):
         self.notes = tuple(str(n) for n in notes)  #: slower paths the scan took, why (also warned)
+        # confirmed: cells (entry, source, bits) measured exactly after a gain estimate (confirm=)
+        self.confirmed = frozenset((str(n), str(s), int(b)) for n, s, b in confirmed)
+        self.state_digests = None if state_digests is None else dict(state_digests)
         if estimate not in ESTIMATES:
             raise ValueError(f"estimate must be one of {ESTIMATES}, got {estimate!r}")
         self.estimate = estimate  #: model scope "exact" or "gain" (estimated from noise gains)
@@ -160,6 +165,10 @@ class SensitivityTable:
         arr = self._input_sqnr[scope] if source == "input" and self.quantize == "separate" \
             else self._weight_rows(granularity)[0][scope]
         return None if arr is None else arr.copy()
+
+    def uncertain(self, source: str = "weight") -> np.ndarray:
+        """Entries x widths, True where a gain estimate may be far off (see planning/uncertainty.py)."""
+        return uncertain_cells(self, self._source(source))
 
     def sqnr_db(self, layer: str, bits: int, scope: str = "model", source: str = "weight",
                 granularity: str | int | None = None) -> float:
@@ -339,8 +348,7 @@ class SensitivityTable:
     # ------------------------------------------------------------------ display
     def to_rows(self) -> list[dict]:
         """One dict per (layer, bit width): layer, type, bits, params, macs, layer / model SQNR
-        (tables scanned with ``quantize="separate"``: weight rows, then input rows, with a
-        ``source`` key)."""
+        (``quantize="separate"``: weight rows, then input rows, with a ``source`` key)."""
         return table_rows(self)
 
     def __repr__(self) -> str:
@@ -349,8 +357,12 @@ class SensitivityTable:
                 f"quantize={self.quantize!r}, scopes={list(self.scopes)}, estimate={self.estimate!r}; "
                 f"{self.coverage})")
 
-    def _repr_html_(self) -> str:
+    def to_html(self) -> str:
+        """The table as HTML: model scope (else layer scope), gain-estimated cells that may be far
+        off marked "?" (:meth:`uncertain`), cells measured exactly by ``confirm=`` marked "="."""
         return table_html(self)
+
+    _repr_html_ = to_html
 
     # ------------------------------------------------------------------ JSON
     def to_dict(self) -> dict:

@@ -17,6 +17,7 @@ def table_html(table) -> str:
     out = []
     for source, widths in blocks:
         arr = table.sqnr_array(scope, source)
+        marks = cell_marks(table, scope, source)
         head = "".join(f"<th>{b} bits</th>" for b in widths)
         ok = np.isfinite(arr)
         lo, hi = (float(arr[ok].min()), float(arr[ok].max())) if ok.any() else (0.0, 1.0)
@@ -25,10 +26,11 @@ def table_html(table) -> str:
             if source == "input" and not table.has_input_rows(name):
                 continue
             cells = []
-            for v in arr[i]:
+            for j, v in enumerate(arr[i]):
                 shade = 0.0 if not np.isfinite(v) or hi == lo else (v - lo) / (hi - lo)
                 bg = f"rgba(46,134,193,{0.08 + 0.5 * shade:.2f})"
-                cells.append(f'<td style="background:{bg};text-align:right">{fmt_db(v)}</td>')
+                cells.append(f'<td style="background:{bg};text-align:right">{fmt_db(v)}'
+                             f"{marks[i][j]}</td>")
             shared = table.shared_with(name)
             label = html.escape(name) + (f" <small>(also {html.escape(', '.join(shared))})</small>"
                                          if shared else "")
@@ -43,7 +45,39 @@ def table_html(table) -> str:
                    f"one layer at a time ({table.n_samples} samples)<table>"
                    f"<tr><th>layer</th><th>type</th><th>input</th><th>weights</th><th>MACs / sample</th>"
                    f"{head}</tr>" + "".join(body) + "</table></div>")
-    return "".join(out) + f"<div><small>{html.escape(str(table.coverage))}</small></div>"
+    return "".join(out) + marks_legend(table, scope) + \
+        f"<div><small>{html.escape(str(table.coverage))}</small></div>"
+
+
+UNCERTAIN_MARK = '<sup title="gain estimate; its first-order error may be large">?</sup>'
+CONFIRMED_MARK = '<sup title="measured exactly after the gain estimate (confirm=)">=</sup>'
+
+
+def cell_marks(table, scope: str, source: str = "weight") -> list[list[str]]:
+    """The HTML mark after each cell's value: :data:`UNCERTAIN_MARK` where the gain estimate may
+    be far off (:meth:`SensitivityTable.uncertain`), :data:`CONFIRMED_MARK` where ``confirm=``
+    measured it exactly, else ""."""
+    widths = table.input_bits if source == "input" and table.quantize == "separate" else table.bits
+    if scope != "model" or table.estimate != "gain":
+        return [[""] * len(widths) for _ in table.layers]
+    unsure = table.uncertain(source)
+    return [[UNCERTAIN_MARK if unsure[i, j] else CONFIRMED_MARK if (name, source, b) in table.confirmed
+             else "" for j, b in enumerate(widths)] for i, name in enumerate(table.layers)]
+
+
+def marks_legend(table, scope: str) -> str:
+    """A line explaining the marks (empty when the table has none in ``scope``)."""
+    if scope != "model" or table.estimate != "gain":
+        return ""
+    from .uncertainty import UNCERTAIN_BITS, UNCERTAIN_LAYER_DB
+
+    rule = (f"the layer's own output SQNR is below {UNCERTAIN_LAYER_DB:g} dB" if "layer" in table.scopes
+            else f"the width is {UNCERTAIN_BITS} bits or fewer")
+    n = sum(int(table.uncertain(s).sum()) for s in (("weight", "input") if table.quantize == "separate"
+                                                    else ("weight",)))
+    done = f"; = measured exactly ({len(table.confirmed)} cells, confirm=)" if table.confirmed else ""
+    return (f"<div><small>? gain estimate whose first-order error may be large ({n} cells: {rule}); "
+            f"scan(..., confirm=k) measures the k most uncertain exactly{done}</small></div>")
 
 
 def how_measured(table, scope: str) -> str:

@@ -41,7 +41,10 @@ def table_to_dict(self) -> dict:
                                                      [grid_to_dict(x) for x in more["grids"][name]]}
                 for opt, more in self._more.items()}
         layers.append(entry)
-    return {"format": TABLE_FORMAT, "version": TABLE_VERSION, "bits": list(self.bits),
+    extra = {} if self.state_digests is None else {"state_digests": dict(self.state_digests)}
+    if self.confirmed:
+        extra["confirmed"] = [list(c) for c in sorted(self.confirmed)]
+    return {**extra, "format": TABLE_FORMAT, "version": TABLE_VERSION, "bits": list(self.bits),
             "input_bits": list(self._input_bits),
             "quantize": self.quantize, "method": self.method, "per_channel": self.per_channel,
             "fingerprint": self.fingerprint, "n_samples": self.n_samples,

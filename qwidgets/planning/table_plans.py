@@ -60,7 +60,8 @@ def plan_from_table(table, bits, chosen_input_bits, assumed_input_bits, predicte
                           predicted_sqnr_db=predicted_sqnr_db,
                           entries={n: table._entry_info(n) for n in settings},
                           other_weight_bits=max(0, int(table.coverage.total_bits) - sum(
-                              table._stored(n) for n in settings)), scale_bits=scale_bits)
+                              table._stored(n) for n in settings)), scale_bits=scale_bits,
+                          state_digests=table.state_digests)
 
 
 def _granularities(table, granularity, bits) -> dict:

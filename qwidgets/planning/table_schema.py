@@ -1,10 +1,13 @@
 """The sensitivity table's JSON schema, as strict as the plan's (schema.py); the field checks
 both use are in fields.py.
 
-Version 3 layout (version 3 added activation entries: ``weight_shape`` [] and the optional
-``partner``; versions 1 and 2 still read): the top level holds format, version, bits, input_bits (the input widths of
+Version 5 layout (3 added activation entries: ``weight_shape`` [] and the optional
+``partner``; 4 granularities; 5 the optional state_digests and confirmed; every version still reads): the top
+level holds format, version, bits, input_bits (the input widths of
 ``quantize="separate"``, else empty), quantize, method, per_channel, fingerprint, n_samples
-and layers (optionally coverage and estimate); each entry of layers holds name, type,
+and layers (optionally coverage, estimate, state_digests: state_dict name -> digest of
+every floating-point weight and buffer of the scanned model, and confirmed: the
+[entry, source, bits] cells of a gain estimate measured exactly afterwards); each entry of layers holds name, type,
 weight_shape, input_shape, macs, layer_sqnr_db / model_sqnr_db (one value per bit width, or
 null), weight_grids / input_grids (one grid per width, or null: the grid of column ``j`` has
 the width ``bits[j]``, an input grid of ``quantize="separate"`` the width ``input_bits[j]``)
@@ -48,9 +51,10 @@ QUANTIZE_MODES = ("weight", "input", "both", "separate")
 SCOPES = ("layer", "model", "both")
 ESTIMATES = ("exact", "gain")  # how a table's model scope was found (see scan)
 TABLE_FORMAT = "qwidgets sensitivity table"
-TABLE_VERSION = 4  # 2 added input_bits and the input rows of quantize="separate", 3 activation
-# entries (weight_shape [], the optional partner), 4 granularities; every version still reads
-TABLE_READABLE = (1, 2, 3, 4)
+TABLE_VERSION = 5  # 2 added input_bits and the input rows of quantize="separate", 3 activation
+# entries (weight_shape [], the optional partner), 4 granularities, 5 the optional state_digests
+# and confirmed; every version still reads
+TABLE_READABLE = (1, 2, 3, 4, 5)
 
 _TOP = ("format", "version", "bits", "quantize", "method", "per_channel", "fingerprint",
         "n_samples", "layers")
@@ -67,7 +71,8 @@ def table_fields(d) -> dict:
         raise FieldError("expected a JSON object at the top level")
     version = d.get("version")
     keys = _TOP if version == 1 else _TOP + ("input_bits",)
-    more = {"granularities"} if version == 4 else set()  # version 4: several granularities
+    more = {"granularities"} if version != 1 and version not in (2, 3) else set()  # 4: granularities
+    more |= {"state_digests", "confirmed"} if version not in (1, 2, 3, 4) else set()  # 5
     if not set(keys) <= set(d) <= set(keys) | {"coverage", "estimate", "notes"} | more:
         raise FieldError(f"expected an object with fields {list(keys)} (and optionally coverage, "
                          "estimate, notes)")
@@ -88,7 +93,7 @@ def table_fields(d) -> dict:
     if separate != bool(ibits):
         raise FieldError("input_bits must be non-empty exactly when quantize is 'separate'")
     entry_keys = set(_ENTRY) | ({"input_layer_sqnr_db", "input_model_sqnr_db"} if version != 1 else set())
-    optional = _ENTRY_OPTIONAL if version in (3, 4) else _ENTRY_OPTIONAL[:-1]  # 3 added partner
+    optional = _ENTRY_OPTIONAL if version in (3, 4, 5) else _ENTRY_OPTIONAL[:-1]  # 3 added partner
     if not isinstance(d["layers"], list) or not d["layers"]:
         raise FieldError("layers must be a non-empty list")
     names, info, sq, grids = [], {}, {"layer": [], "model": []}, {"weight": {}, "input": {}}
@@ -144,7 +149,33 @@ def table_fields(d) -> dict:
         input_grids=input_grids, n_samples=int(d["n_samples"]), input_bits=ibits,
         coverage=_coverage_from_json(d.get("coverage"), version), estimate=d.get("estimate", "exact"),
         input_layer_sqnr=arrays.get("input_layer"), input_model_sqnr=arrays.get("input_model"),
-        notes=notes, granularities=grans, granularity_rows=more)
+        notes=notes, granularities=grans, granularity_rows=more,
+        state_digests=_state_digests(d.get("state_digests")),
+        confirmed=_confirmed(d.get("confirmed", []), names, bits, ibits))
+
+
+def _confirmed(v, names, bits, ibits) -> list:
+    """The optional confirmed cells: [entry, "weight" / "input", bits] each, of this table."""
+    if not isinstance(v, list):
+        raise FieldError(f"confirmed must be a list of [entry, source, bits], got {kind_of(v)}")
+    out = []
+    for k, c in enumerate(v):
+        ok = (isinstance(c, list) and len(c) == 3 and c[0] in names and c[1] in ("weight", "input")
+              and isinstance(c[2], int) and c[2] in (ibits if c[1] == "input" and ibits else bits))
+        if not ok:
+            raise FieldError(f"confirmed[{k}] must be [entry, 'weight' or 'input', a scanned width], got {c!r}")
+        out.append(tuple(c))
+    return out
+
+
+def _state_digests(v):
+    """The optional state_digests object (tables written before it: None)."""
+    if v is None:
+        return None
+    if not isinstance(v, dict) or not all(isinstance(x, str) and x and set(x) <= set("0123456789abcdef")
+                                          for x in v.values()):
+        raise FieldError(f"state_digests must be an object of state_dict name -> hex digest, got {kind_of(v)}")
+    return dict(v)
 
 
 def _widths(v, where: str) -> tuple:
@@ -236,7 +267,7 @@ def _coverage_from_json(c, version=TABLE_VERSION):
         return None
     if not isinstance(c, dict) or not {"scanned", "total", "skipped", "total_bits"} <= set(c) <= {
             "scanned", "total", "skipped", "total_bits", "float_activations"} | (
-            {"skipped_options"} if version == 4 else set()):
+            {"skipped_options"} if version in (4, 5) else set()):
         raise FieldError("coverage must be an object with fields scanned, total, skipped, total_bits "
                          "(and optionally float_activations, skipped_options)")
     floats = c.get("float_activations", [])

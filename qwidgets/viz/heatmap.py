@@ -18,7 +18,7 @@ from matplotlib.colors import to_hex
 from matplotlib.figure import Figure
 
 from ..planning.table import SensitivityTable
-from ..planning.table_html import fmt_db, how_measured
+from ..planning.table_html import cell_marks, fmt_db, how_measured, marks_legend
 from .labels import literal
 
 __all__ = ["CMAP", "cell_colors", "draw_heatmap", "plot_sensitivity", "sqnr_limits", "sqnr_table_html"]
@@ -124,10 +124,10 @@ def sqnr_table_html(table: SensitivityTable, scope: str, vmin: float | None = No
     bg, fg = cell_colors(arr, vmin, vmax)
     widths = table.input_bits if source == "input" and table.quantize == "separate" else table.bits
     head = "".join(f"<th>{b} bits</th>" for b in widths)
-    body = []
+    body, marks = [], cell_marks(table, scope, source)
     for i, name in enumerate(table.layers):
         cells = "".join(f'<td style="background:{bg[i][j]};color:{fg[i][j]};text-align:right">'
-                        f"{'-' if np.isnan(v) else fmt_db(v)}</td>" for j, v in enumerate(arr[i]))
+                        f"{'-' if np.isnan(v) else fmt_db(v)}{marks[i][j]}</td>" for j, v in enumerate(arr[i]))
         body.append(f"<tr><td>{html.escape(name)}</td><td>{html.escape(table.layer_type(name))}</td>"
                     f'<td style="text-align:right">{table.params(name):,}</td>'
                     f'<td style="text-align:right">{table.macs(name):,}</td>{cells}</tr>')
@@ -138,7 +138,7 @@ def sqnr_table_html(table: SensitivityTable, scope: str, vmin: float | None = No
     return (f"<div><b>{scope.capitalize()}-output SQNR (dB)</b>{how}, {html.escape(what)}, "
             f"one layer at a time ({table.n_samples} samples)<table>"
             f"<tr><th>layer</th><th>type</th><th>weights</th><th>MACs / sample</th>{head}</tr>"
-            + "".join(body) + "</table></div>")
+            + "".join(body) + "</table></div>" + marks_legend(table, scope))
 
 
 def plot_sensitivity(table: SensitivityTable, scope: str = "model", ax: Axes | None = None) -> Figure:
