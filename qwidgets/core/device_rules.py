@@ -92,7 +92,8 @@ class DeviceRules:
         return bits
 
     # ------------------------------------------------------------------ grids
-    def fit_options(self, role: str, *, symmetric: bool, style: str, axis):
+    def fit_options(self, role: str, *, symmetric: bool, style: str,
+                    axis: int | None) -> tuple[bool, str, int | None]:
         """(symmetric, style, axis) for fitting a ``role`` grid under the rules; raises on conflicts."""
         role = check_role(role)
         if style != "midtread":

@@ -11,6 +11,7 @@ layout of ONNX opset 21 blocked quantization (see ``blocks``).
 from __future__ import annotations
 
 from numbers import Integral
+from typing import Any
 
 import torch
 
@@ -73,8 +74,8 @@ class UniformGrid:
     __slots__ = ("bits", "scale", "offset", "signed", "axis", "block_size", "_zp", "_whole")
     _FIELDS = ("bits", "scale", "offset", "signed", "axis", "block_size")
 
-    def __init__(self, bits: int, scale, offset=0.0, signed: bool = True, axis: int | None = None,
-                 block_size: int | None = None):
+    def __init__(self, bits: int, scale: float | torch.Tensor, offset: float | torch.Tensor = 0.0,
+                 signed: bool = True, axis: int | None = None, block_size: int | None = None):
         bits = check_bits(bits)
         if not isinstance(signed, bool):
             raise TypeError(f"signed must be a bool, got {signed!r}")
@@ -217,7 +218,7 @@ class UniformGrid:
         return lo, hi
 
     @property
-    def zero_point(self):
+    def zero_point(self) -> int | torch.Tensor:
         """The integer Z with ``offset == -Z * scale`` (int, or int64 tensor per channel).
 
         Decided once, when the grid is made, by :func:`integer_zero_point` (the one tolerance,
@@ -238,7 +239,7 @@ class UniformGrid:
         return self._whole is True
 
     # ------------------------------------------------------------------ copies
-    def replace(self, **changes) -> UniformGrid:
+    def replace(self, **changes: Any) -> UniformGrid:
         """A copy with some fields changed (validated like the constructor)."""
         fields = {k: getattr(self, k) for k in self._FIELDS}
         unknown = set(changes) - set(fields)

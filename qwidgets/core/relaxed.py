@@ -47,7 +47,8 @@ __all__ = ["bin_probabilities", "expected_quantize", "relaxed_quantize"]
 _MAX_FULL_ELEMENTS = 1 << 28  # values x bins beyond this need a window (about 1 GiB a temporary)
 
 
-def bin_probabilities(x: torch.Tensor, grid: UniformGrid, noise, window: int | None = None):
+def bin_probabilities(x: torch.Tensor, grid: UniformGrid, noise: float | torch.Tensor,
+                      window: int | None = None) -> tuple[torch.Tensor, torch.Tensor]:
     """Probabilities of each grid bin for ``x + Logistic(0, noise)`` noise.
 
     Returns ``(probs, codes)``: ``probs`` has shape ``x.shape + (K,)`` (K = all ``n_levels``
@@ -71,7 +72,8 @@ def bin_probabilities(x: torch.Tensor, grid: UniformGrid, noise, window: int | N
     return probs.movedim(0, -1).contiguous().to(b.out_dtype), codes
 
 
-def expected_quantize(x: torch.Tensor, grid: UniformGrid, noise, window: int | None = None):
+def expected_quantize(x: torch.Tensor, grid: UniformGrid, noise: float | torch.Tensor,
+                      window: int | None = None) -> torch.Tensor:
     """``sum_k P_k g_k``: the mean grid value under the noise (a smooth quantizer).
 
     >>> import torch
@@ -86,12 +88,12 @@ def expected_quantize(x: torch.Tensor, grid: UniformGrid, noise, window: int | N
 def relaxed_quantize(
     x: torch.Tensor,
     grid: UniformGrid,
-    noise,
-    temperature,
+    noise: float | torch.Tensor,
+    temperature: float | torch.Tensor,
     hard: bool = False,
     window: int | None = None,
     generator: torch.Generator | None = None,
-):
+) -> torch.Tensor:
     """A concrete (Gumbel-softmax) sample over the bins: ``sum_k z_k g_k``.
 
     ``z = softmax((log P + G) / temperature)`` with ``G ~ Gumbel(0, 1)``. With ``hard=True`` the

@@ -15,8 +15,13 @@ layer.
 from __future__ import annotations
 
 import html
+import os
+from collections.abc import Callable, Sequence
+from typing import Any
 
 import ipywidgets as widgets
+import torch
+from torch import nn
 
 from ..core.checks import check_bits, check_bool, check_choice, check_positive
 from ..core.device_rules import DeviceRules, check_rules
@@ -97,13 +102,12 @@ class GridExplorer(SnapshotDisplay, widgets.VBox):
     many cache-sized slices: on two cores a second thread saves a few ms when the machine is
     idle and costs several times more when another process holds the other core."""
 
-    def __init__(self, obj, data=None, *, layer: str | None = None, bits: int = 4,
-                 method: str = "mse", source: str | None = None, per_channel: bool = False,
-                 noise: float | None = None, noise_steps: float | None = None,
-                 temperature: float = 0.5, max_samples: int | None = None,
-                 grid: UniformGrid | None = None, output: widgets.Output | None = None,
-                 width: int = 720, height: int = 600, clock=None,
-                 rules: DeviceRules | None = None):
+    def __init__(self, obj: nn.Module | torch.Tensor, data: Any = None, *, layer: str | None = None,
+                 bits: int = 4, method: str = "mse", source: str | None = None, per_channel: bool = False,
+                 noise: float | None = None, noise_steps: float | None = None, temperature: float = 0.5,
+                 max_samples: int | None = None, grid: UniformGrid | None = None,
+                 output: widgets.Output | None = None, width: int = 720, height: int = 600,
+                 clock: Callable[[], float] | None = None, rules: DeviceRules | None = None):
         super().__init__()
         bits = check_bits(bits)
         check_choice(method, METHODS, "method")
@@ -233,16 +237,13 @@ class GridExplorer(SnapshotDisplay, widgets.VBox):
         self._note(f"fitted the range ({METHOD_LABELS[self.state.method]}, {grid.bits} bits)")
         return grid
 
-    def learn(self, steps: int = 200, lr: float = 0.2, **options) -> LearnResult:
+    def learn(self, steps: int = 200, lr: float = 0.2, **options: Any) -> LearnResult:
         """Learn scale, offset and noise of the current source's grid by relaxed quantization.
 
-        Runs :func:`qwidgets.learn_grid` on the layer's output error; the plots follow about
-        every half second, and the best grid (by the hard quantizer's layer-output error) is
-        kept and remembered for this bit width. ``options`` go to ``learn_grid``
-        (``temperature`` defaults to the widget's, ``window``, ``learn_offset``, ``seed``).
-        Needs a layer. The *learn* button runs the same in the background and becomes a stop
-        button meanwhile.
-        """
+        Runs :func:`qwidgets.learn_grid` on the layer's output error (needs a layer); the plots
+        follow every half second; the best grid (hard quantizer's layer-output error) is kept
+        for this bit width. ``options`` go to ``learn_grid`` (``temperature``: the widget's).
+        The *learn* button runs the same in the background and is a stop button meanwhile."""
         return self.learner.run(int(steps), lr, options)
 
     def _learn_clicked(self) -> None:
@@ -299,7 +300,7 @@ class GridExplorer(SnapshotDisplay, widgets.VBox):
             self.refresh()
         return self.canvas.last_png, self.readout.value
 
-    def save_figure(self, path) -> None:
+    def save_figure(self, path: str | os.PathLike) -> None:
         """Write the four plots as PNG or SVG (by ``path``'s extension), up to date."""
         if self._updater.pending or self._moving:
             self.refresh()
@@ -314,7 +315,7 @@ class GridExplorer(SnapshotDisplay, widgets.VBox):
         finally:
             self.figure.set_caption("")
 
-    def to_setting(self, sources=None) -> LayerSetting:
+    def to_setting(self, sources: str | Sequence[str] | None = None) -> LayerSetting:
         """The grids as a :class:`LayerSetting` for the plan.
 
         ``sources``: which grids to include, ``"weight"``, ``"input"`` or both (the default for
