@@ -39,13 +39,13 @@ class EncoderClassifier(nn.Module):
 class SdpaBlock(nn.Module):
     """A decoder block: causal self-attention by F.scaled_dot_product_attention, an MLP."""
 
-    def __init__(self, d, heads):
+    def __init__(self, d, heads, mlp=2):
         super().__init__()
         self.heads = heads
         self.ln1, self.ln2 = nn.LayerNorm(d), nn.LayerNorm(d)
         self.qkv = nn.Linear(d, 3 * d)
         self.proj = nn.Linear(d, d)
-        self.fc, self.out = nn.Linear(d, 2 * d), nn.Linear(2 * d, d)
+        self.fc, self.out = nn.Linear(d, mlp * d), nn.Linear(mlp * d, d)
 
     def forward(self, x):
         b, t, d = x.shape
