@@ -86,12 +86,7 @@ class Menu:
         (option of i, option of j), exact integers; empty for costs other than BOPs."""
         if cost != "bops":
             return []
-        out = []
-        for i, j, macs in self.pairs(table):
-            a = np.array([o[1] for o in self.options[i]], dtype=np.int64)
-            b = np.array([o[1] for o in self.options[j]], dtype=np.int64)
-            out.append((i, j, int(macs) * np.outer(a, b)))
-        return out
+        return [(i, j, macs * np.outer(a, b)) for i, j, macs, a, b in self._pair_widths(table)]
 
     def pair_shares(self, table: SensitivityTable, cost: str) -> list:
         """``(i, j, share of i, share of j)``: each product's BOPs split between its operands for
@@ -101,12 +96,15 @@ class Menu:
         never costs more than the front's bound; the front reports each plan's exact BOPs."""
         if cost != "bops":
             return []
-        out = []
-        for i, j, macs in self.pairs(table):
-            a = np.array([o[1] for o in self.options[i]], dtype=np.int64)
-            b = np.array([o[1] for o in self.options[j]], dtype=np.int64)
-            out.append((i, j, -(-int(macs) * a * a // 2), -(-int(macs) * b * b // 2)))
-        return out
+        return [(i, j, -(-macs * a * a // 2), -(-macs * b * b // 2))
+                for i, j, macs, a, b in self._pair_widths(table)]
+
+    def _pair_widths(self, table: SensitivityTable) -> list:
+        """``(i, j, MACs, widths of i's options, widths of j's options)`` for each pair."""
+        def widths(k: int) -> np.ndarray:
+            return np.array([o[1] for o in self.options[k]], dtype=np.int64)
+
+        return [(i, j, int(macs), widths(i), widths(j)) for i, j, macs in self.pairs(table)]
 
 
 def option_storage_bits(table, name: str, wb: int | None, granularity, scale_bits: int = 16) -> int:
