@@ -286,6 +286,16 @@ def test_float_passes_equal_the_float_model_with_the_fast_path_on(user_fastpath)
     assert torch.backends.mha.get_fastpath_enabled() is user_fastpath
 
 
+def test_one_module_switches_the_fast_path():
+    """Every pass goes through model/fastpath.py; no second helper sets torch's switch."""
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parents[1] / "qwidgets"
+    setters = sorted(str(p.relative_to(root)) for p in root.rglob("*.py")
+                     if "set_fastpath_enabled" in p.read_text())
+    assert setters == ["model/fastpath.py"]
+
+
 def test_gpt_decoder_keyword_input_dataclass_output_and_loader_pairs(tmp_path):
     torch.manual_seed(2)
     net = TinyGPT().eval()

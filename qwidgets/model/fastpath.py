@@ -1,5 +1,9 @@
 """PyTorch's attention fast path, switched off while qwidgets runs a model.
 
+The one place that switches it: every pass (scan, evaluation, refinement, export, taps
+kept on a planned copy) goes through :func:`attention_fastpath_off` or the
+:func:`switch_fastpath_off` / :func:`restore_fastpath` pair.
+
 In eval mode ``nn.MultiheadAttention`` and ``nn.TransformerEncoder(Layer)`` take a fused
 kernel (``torch._transformer_encoder_layer_fwd``, ``torch._native_multi_head_attention``)
 that hooks cannot see into, that skips the projections' own modules, and that the ONNX
@@ -16,7 +20,20 @@ from contextlib import contextmanager
 
 import torch
 
-__all__ = ["attention_fastpath_off", "without_fastpath"]
+__all__ = ["attention_fastpath_off", "without_fastpath", "switch_fastpath_off", "restore_fastpath"]
+
+
+def switch_fastpath_off() -> bool:
+    """Switch the fast path off; return the setting it had (for :func:`restore_fastpath`).
+    For passes bracketed by hooks rather than a ``with`` block (a planned copy's forward)."""
+    before = torch.backends.mha.get_fastpath_enabled()
+    torch.backends.mha.set_fastpath_enabled(False)
+    return before
+
+
+def restore_fastpath(before: bool) -> None:
+    """Put back the setting :func:`switch_fastpath_off` returned."""
+    torch.backends.mha.set_fastpath_enabled(before)
 
 
 @contextmanager
@@ -31,12 +48,11 @@ def attention_fastpath_off():
     >>> torch.backends.mha.get_fastpath_enabled() == before
     True
     """
-    before = torch.backends.mha.get_fastpath_enabled()
-    torch.backends.mha.set_fastpath_enabled(False)
+    before = switch_fastpath_off()
     try:
         yield
     finally:
-        torch.backends.mha.set_fastpath_enabled(before)
+        restore_fastpath(before)
 
 
 def without_fastpath(fn):

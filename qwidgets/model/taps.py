@@ -33,6 +33,7 @@ from torch import nn
 from torch.overrides import TorchFunctionMode
 
 from .attention import ROLES, attention_forward, product_macs
+from .fastpath import attention_fastpath_off, restore_fastpath, switch_fastpath_off
 
 T = torch.Tensor
 
@@ -266,17 +267,6 @@ def roles_of(func):
 
 
 @contextlib.contextmanager
-def fastpath_off():
-    """PyTorch's attention fast path off for the block, the user's setting restored after."""
-    before = torch.backends.mha.get_fastpath_enabled()
-    try:
-        torch.backends.mha.set_fastpath_enabled(False)
-        yield
-    finally:
-        torch.backends.mha.set_fastpath_enabled(before)
-
-
-@contextlib.contextmanager
 def tapping(model: nn.Module, tap: Tap):
     """Run the block's forwards of ``model`` with ``tap`` (hooks removed and the fast-path
     setting restored after, also on an error)."""
@@ -286,7 +276,7 @@ def tapping(model: nn.Module, tap: Tap):
         for m in model.modules():
             handles.append(m.register_forward_pre_hook(mode.push, with_kwargs=True, prepend=True))
             handles.append(m.register_forward_hook(mode.pop, with_kwargs=True, always_call=True))
-        with fastpath_off(), mode:
+        with attention_fastpath_off(), mode:
             yield mode
     finally:
         for h in handles:
@@ -312,12 +302,11 @@ class _Attached:
         self.mode, self.saved = mode, []
 
     def enter(self, module, args, kwargs):
-        self.saved.append(torch.backends.mha.get_fastpath_enabled())
-        torch.backends.mha.set_fastpath_enabled(False)
+        self.saved.append(switch_fastpath_off())
         self.mode.__enter__()
         self.mode.push(module, args, kwargs)
 
     def leave(self, module, args, kwargs, output):
         self.mode.pop(module, args, kwargs, output)
         self.mode.__exit__(None, None, None)
-        torch.backends.mha.set_fastpath_enabled(self.saved.pop())
+        restore_fastpath(self.saved.pop())

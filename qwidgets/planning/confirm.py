@@ -10,8 +10,8 @@ from numbers import Integral
 
 from ..model.batching import cut_batches
 from ..model.entries import find_entries
+from ..model.fastpath import attention_fastpath_off
 from ..model.sources import data_source
-from ..model.taps import fastpath_off
 from .model_scope import model_scope
 from .survey import survey
 from .table import SensitivityTable
@@ -71,7 +71,7 @@ def confirm_cells(model, data, table, k: int, options: dict) -> dict:
     source = data_source(model, cut_batches(data, options["batch_size"]), options["max_samples"])
     by_name = {e.name: e for e in find_entries(model)}  # probed entries are known modules'
     wanted = [n for n in table.layers if any(c[0] == n for c in cells)]
-    with fastpath_off():  # as the scan's passes ran (the attention fast path off)
+    with attention_fastpath_off():  # as the scan's passes ran (the attention fast path off)
         return _measure(model, source, table, cells, wanted, by_name, options)
 
 

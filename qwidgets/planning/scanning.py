@@ -42,10 +42,11 @@ from ..core.ranges import METHODS
 from ..model import outputs, running
 from ..model.batching import cut_batches
 from ..model.entries import call_inputs, coverage_of, tapped, weight_digest
+from ..model.fastpath import attention_fastpath_off
 from ..model.picking import split_data
 from ..model.sources import Data, data_source
 from ..model.state_digest import state_digests
-from ..model.taps import fastpath_off, tapping
+from ..model.taps import tapping
 from ..model.usage import entries_on
 from .confirm import ScanNote, check_confirm, noted, scanned_table  # noqa: F401 (ScanNote: public here)
 from .device_checks import scan_bits
@@ -251,7 +252,7 @@ _SHARE_LOCK = threading.Lock()
 def _run_scan(model, data, options: dict, progress: bool, share) -> dict:
     source = data_source(model, cut_batches(data, options["batch_size"]), options["max_samples"])
     first = source.first_batch()
-    with fastpath_off():  # every pass computes what the tool's taps see (fast path or not)
+    with attention_fastpath_off():  # every pass computes what the tool's taps see (fast path or not)
         with threads(pass_threads(model)):  # every forward on the passes' threads
             entries, usage = entries_on(model, first)
         if not entries:
