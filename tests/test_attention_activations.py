@@ -105,11 +105,17 @@ def test_attention_forward_refuses_bias_kv():
         attention_forward(args, {}, lambda r, t: t)
 
 
-def test_mha_activations_scanned_like_a_hand_written_attention(untouched, fastpath_on):
+@pytest.mark.parametrize("estimate", ["exact", "gain"])
+def test_mha_activations_scanned_like_a_hand_written_attention(untouched, fastpath_on, estimate):
     torch.manual_seed(0)
     model, x = MHAClassifier().eval(), sequences()
     keep = untouched(model)
-    t = scan(model, x, bits=(4, 6), quantize="input", progress=False)
+    t = scan(model, x, bits=(4, 6), quantize="input", progress=False, estimate=estimate)
+    taps = ("attn.query", "attn.key", "attn.value", "attn.probs", "attn.out_proj")
+    if estimate == "gain":  # tapped entries are measured exactly, and the table says so
+        assert {t.model_pass(n) for n in taps} == {"per bit width"}
+        assert t.model_pass("inp") == "probes"
+        assert any("not estimated" in n and "attn.probs" in n for n in t.notes)
     assert torch.backends.mha.get_fastpath_enabled()  # the user's setting, restored
     keep.check()
     for name in ("attn.query", "attn.key", "attn.value", "attn.probs", "attn.out_proj"):

@@ -97,8 +97,14 @@ def model_scope(model, source, found, facts, configs, n_bits: int, info, *, esti
     if slow:
         notes.append(f"{_names(slow)} measured with one full forward pass per bit width (slower): "
                      "no recorded pass to replay after them, and no stacked pass applies "
-                     "(weight-only, tied or shared weights, or a model that mixes samples)")
+                     "(weight-only, tied or shared weights, or a model that mixes samples)"
+                     + (_EXACT_UNDER_GAIN if estimate == "gain" else ""))
     return model_sq
+
+
+_EXACT_UNDER_GAIN = ("; these are exact, not estimated: estimate='gain' probes layers run as modules, "
+                     "not attention activations, attention projections, weights found by use or "
+                     "weight-only entries (table.model_pass says how each entry was measured)")
 
 
 def _names(names: list) -> str:
