@@ -22,6 +22,7 @@ __version__ = "0.1.0"
 _EXPORTS = {
     # core math
     "UniformGrid": "core.grid",
+    "TokenGrid": "core.token_grid",
     "quantize": "core.rounding",
     "to_codes": "core.rounding",
     "from_codes": "core.rounding",

@@ -399,7 +399,7 @@ def test_budgets_infeasible_together_name_the_least_feasible_value(monkeypatch):
         def costs(self, table, cost):
             return by_cost[cost]
 
-    menu = Conflict(["layer0"], [[(4, None, "tensor"), (8, None, "tensor")]], [np.array([0.1, 0.001])], 8)
+    menu = Conflict(["layer0"], [[(4, None, "tensor", None), (8, None, "tensor", None)]], [np.array([0.1, 0.001])], 8)
     monkeypatch.setattr(solver_mod, "build_menu", lambda *a, **k: menu)
     assert plan_budget(t, planned_kib=3.0, bops=100).bits == {"layer0": 8}
     assert plan_budget(t, planned_kib=1.0, bops=300).bits == {"layer0": 4}

@@ -73,7 +73,7 @@ def test_json_read_by_the_json_module_holds_the_plan_values():
     net, x = _net(), _data()
     plan = _plan(net, x)
     data = json.loads(plan.to_json())
-    assert data["format"] == "qwidgets plan" and data["version"] == 5
+    assert data["format"] == "qwidgets plan" and data["version"] == 6
     # the figures under the names of the Plan attributes and budget keywords
     assert data["figures"] == {"model_kib": plan.model_kib, "planned_kib": plan.planned_kib,
                                "mean_bits": plan.mean_bits, "bops": plan.bops}
@@ -193,7 +193,7 @@ def _bad_cases():
         ("not an object", lambda t: "[1, 2]", "the top level must be a JSON object"),
         ("missing field", lambda t: _broken(t, lambda d: d.pop("fingerprint")), r"missing field\(s\) \['fingerprint'\]"),
         ("extra field", lambda t: _broken(t, lambda d: d.update(note="x")), r"unknown field\(s\) \['note'\]"),
-        ("wrong version", lambda t: _broken(t, lambda d: d.update(version=6)), "version an integer \\(6\\) is not supported"),
+        ("wrong version", lambda t: _broken(t, lambda d: d.update(version=7)), "version an integer \\(7\\) is not supported"),
         ("version 2 without figures", lambda t: _broken(t, lambda d: d.pop("figures")), r"missing field\(s\) \['figures'\]"),
         ("figures edited", lambda t: _broken(t, lambda d: d["figures"].update(mean_bits=2.0)),
          r"figures.mean_bits is 2.0 but the plan's layers give"),

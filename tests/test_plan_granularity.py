@@ -106,7 +106,7 @@ def test_pins_and_granularity_menu(table):
     assert set(q.granularity.values()) == {"channel"}
     with pytest.raises(ValueError, match="did not scan"):
         plan_budget(table, planned_kib=kib, allowed_granularity=(32,))
-    with pytest.raises(ValueError, match="'bits', 'input_bits' and / or 'granularity'"):
+    with pytest.raises(ValueError, match="'bits', 'input_bits', 'granularity' and / or 'input_granularity'"):
         plan_budget(table, planned_kib=kib, fixed={"0": {"width": 4}})
 
 
@@ -146,7 +146,7 @@ def test_scale_bits_from_the_rules_cost_the_plan(table):
 def test_older_plan_and_table_versions_still_load(table):
     plan = table.make_plan({n: 4 for n in table.layers})
     d = json.loads(plan.to_json())
-    assert d["version"] == 5
+    assert d["version"] == 6
     # version 2: the same fields, its figures' mean bits counted code bits only
     d["version"] = 2
     d.pop("state_digests", None)  # version 5's field
@@ -162,7 +162,7 @@ def test_older_plan_and_table_versions_still_load(table):
         Plan.from_json(json.dumps(blocked))
     # a table of one granularity written as version 2 reads; granularity fields need version 4
     t = table.to_dict()
-    assert t["version"] == 5 and "granularities" in t
+    assert t["version"] == 6 and "granularities" in t
     one = scan_one_granularity_dict(t)
     one["version"] = 2
     one.pop("state_digests", None)

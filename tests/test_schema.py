@@ -81,7 +81,7 @@ CASES = [
     ("missing layer field", _drop("macs", 0), r"layers\[0\] must be an object with fields"),
     ("has_input string", _layer(0, "has_input", "true"), r"layers\[0\].has_input must be true or false"),
     ("bool version", _set("version", True), "format / version must be|expected an object with fields"),
-    ("wrong version", _set("version", 6), "format / version must be"),
+    ("wrong version", _set("version", 7), "format / version must be"),
     ("float n_samples", _set("n_samples", 16.0), "n_samples must be an integer"),
     ("bad fingerprint", _set("fingerprint", "abc"), "fingerprint must be 64 lowercase hex"),
     ("empty layers", _set("layers", []), "layers must be a non-empty list"),
@@ -237,11 +237,11 @@ def test_a_version_2_table_still_reads(saved, tmp_path):
     # version 2 (before activation entries): no "partner" fields
     table, text = saved
     data = json.loads(text)
-    assert data["version"] == 5
+    assert data["version"] == 6
     data["version"] = 2
     del data["state_digests"]  # version 5's field
     loaded = _load(data, tmp_path)
-    assert loaded.to_dict() == {**data, "version": 5}  # written back as version 5
+    assert loaded.to_dict() == {**data, "version": 6}  # written back as version 6
     data["layers"][0]["partner"] = None  # version 3's field
     with pytest.raises(ValueError, match="and optionally"):
         _load(data, tmp_path)

@@ -17,6 +17,7 @@ from .blocks import SCALE_BITS, block_sums
 from .checks import check_bits
 from .grid import UniformGrid
 from .rounding import quantize
+from .token_grid import TokenGrid
 
 __all__ = ["DeviceRules", "ROLES", "power_of_two_fit", "is_power_of_two", "conform_grid"]
 
@@ -115,10 +116,18 @@ class DeviceRules:
         """The axis a weight grid may use: ``axis`` if per-channel weights are allowed, else None."""
         return axis if self.per_channel_weights else None
 
-    def violations(self, grid: UniformGrid, role: str) -> list[str]:
+    def violations(self, grid: UniformGrid | TokenGrid, role: str) -> list[str]:
         """What about ``grid`` breaks the rules for ``role`` (empty when it obeys them)."""
+        if isinstance(grid, TokenGrid):  # a scale per row, computed at run time
+            role = check_role(role)
+            out = [] if self.allows_bits(grid.bits, role) else [
+                f"{grid.bits} bits is not in the {role} menu {self.bits_menu(role)}"]
+            if role != "input" or self.per_tensor_inputs or self.pow2_scales:
+                out.append("per-token grid (a scale per row at run time), but the device takes "
+                           + ("power-of-two scales" if self.pow2_scales else "one input scale per tensor"))
+            return out
         if not isinstance(grid, UniformGrid):
-            raise TypeError(f"grid must be a UniformGrid, got {type(grid).__name__}")
+            raise TypeError(f"grid must be a UniformGrid or a TokenGrid, got {type(grid).__name__}")
         role = check_role(role)
         out = []
         if not self.allows_bits(grid.bits, role):

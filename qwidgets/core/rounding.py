@@ -13,14 +13,16 @@ import torch
 
 from .checks import as_input
 from .grid import UniformGrid, block_axis, code_values, grid_params, zero_point_param
+from .token_grid import TokenGrid, quantize_rows
 
 __all__ = ["quantize", "quantize_unchecked", "to_codes", "from_codes"]
 
 _CHUNK = 1 << 17  # elements per chunk: 512 KiB of float32, fits in L2; fewer chunks, fewer thread dispatches
 
 
-def quantize(x: torch.Tensor, grid: UniformGrid) -> torch.Tensor:
+def quantize(x: torch.Tensor, grid: UniformGrid | TokenGrid) -> torch.Tensor:
     """Fake-quantize ``x`` onto ``grid``: nearest grid value, ties to even, saturating at the ends.
+    A :class:`~qwidgets.core.token_grid.TokenGrid` quantizes each row on its own scale.
 
     Returns a new tensor of ``x``'s dtype (float32 for integer input); ``x`` is not modified.
 
@@ -32,11 +34,13 @@ def quantize(x: torch.Tensor, grid: UniformGrid) -> torch.Tensor:
     return quantize_unchecked(x, grid, out_dtype)
 
 
-def quantize_unchecked(x: torch.Tensor, grid: UniformGrid, out_dtype: torch.dtype | None = None):
+def quantize_unchecked(x: torch.Tensor, grid: UniformGrid | TokenGrid, out_dtype: torch.dtype | None = None):
     """:func:`quantize` for a caller that checked ``x`` at its own public boundary (a real
     tensor with finite values): no second NaN / inf scan. Low-precision floats are computed
     in float32 and returned as ``out_dtype`` (default: what :func:`quantize` returns, ``x``'s
     dtype for floats, float32 for integers)."""
+    if isinstance(grid, TokenGrid):  # a scale per row, computed from the row
+        return quantize_rows(x, grid, out_dtype)
     if out_dtype is None:
         out_dtype = x.dtype if x.is_floating_point() else torch.float32
     if x.dtype in (torch.float16, torch.bfloat16) or not x.is_floating_point():

@@ -5,6 +5,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 from .grid import UniformGrid
+from .token_grid import TokenGrid
 
 __all__ = ["LayerSetting", "SOURCES"]
 
@@ -23,13 +24,20 @@ class LayerSetting:
     """
 
     weight: UniformGrid | None = None
-    input: UniformGrid | None = None
+    input: UniformGrid | TokenGrid | None = None  # a TokenGrid: a scale per row, at run time
 
     def __post_init__(self):
-        for name in ("weight", "input"):
-            v = getattr(self, name)
-            if v is not None and not isinstance(v, UniformGrid):
-                raise TypeError(f"LayerSetting.{name} must be a UniformGrid or None, got {type(v).__name__}")
+        if self.weight is not None and not isinstance(self.weight, UniformGrid):
+            raise TypeError(f"LayerSetting.weight must be a UniformGrid or None, got {type(self.weight).__name__}")
+        if self.input is not None and not isinstance(self.input, (UniformGrid, TokenGrid)):
+            raise TypeError(f"LayerSetting.input must be a UniformGrid, a TokenGrid or None, got "
+                            f"{type(self.input).__name__}")
+
+    @property
+    def input_granularity(self) -> str | None:
+        """``"token"`` for a :class:`TokenGrid` input, ``"tensor"`` / ``"channel"`` for a
+        fitted one, None where the input stays float."""
+        return None if self.input is None else self.input.granularity
 
     @property
     def is_empty(self) -> bool:

@@ -5,7 +5,8 @@ model (eval mode, parameters frozen), parameterises each entry's weight grid and
 :func:`qwidgets.learn_grid` does, and runs the copy either with *relaxed* grids (concrete
 samples through :func:`qwidgets.relaxed_quantize`, differentiable in every scale, offset and
 noise width at once) or with *hard* grids (round to nearest, what :func:`qwidgets.apply_plan`
-computes).
+computes). A per-token input (:class:`qwidgets.TokenGrid`) has nothing to learn: it is kept
+as it is and quantizes the same way in both modes, gradients passing straight through.
 
 Entries are the plan's, found with :func:`qwidgets.model.entries.find_entries` (Linear, Conv,
 ConvTranspose, attention projections, recurrent matrices, embeddings; a tied tensor once):
@@ -31,8 +32,9 @@ from torch import nn
 
 from ..core.grid import UniformGrid, grid_params
 from ..core.relaxed import relaxed_quantize
-from ..core.rounding import quantize
+from ..core.rounding import quantize, quantize_unchecked
 from ..core.setting import SOURCES, LayerSetting
+from ..core.token_grid import TokenGrid
 from ..model.entries import find_entries, replace_inputs, tapped
 from ..model.fastpath import attention_fastpath_off
 from ..model.tap_quantize import EachTap
@@ -150,7 +152,8 @@ class PlanGrids:
         found = {e.name: e for e in find_entries(self.model)}
         found.update(entries_named(self.model, [n for n in settings if n not in found]))
         self.entries: list[GridEntry] = []
-        self._inputs: dict[str, GridEntry] = {}
+        self._inputs: dict[str, GridEntry | None] = {}  # None: a per-token input (kept fixed)
+        self._token: dict[str, TokenGrid] = {}
         self._mode: tuple | None = None  # how the input hooks quantize during a forward
         through_taps = []  # attention activations, out_proj's context, inputs of weights found by use
         for name, setting in settings.items():
@@ -161,6 +164,9 @@ class PlanGrids:
             w = _float_like(self.model) if entry.kind == "activation" else entry.parameter(self.model)
             for source in SOURCES:
                 grid = getattr(setting, source)
+                if isinstance(grid, TokenGrid):  # a scale per row at run time: nothing to learn
+                    self._token[name] = grid
+                    continue
                 if grid is None:
                     continue
                 if source == "weight":
@@ -171,7 +177,7 @@ class PlanGrids:
                 self.entries.append(self._entry(name, source, grid.detached(), entry.param, w.dtype,
                                                 noise_steps, learn if source in sources else set()))
             if setting.input is not None:
-                self._inputs[name] = next(e for e in self.entries if e.name == name and e.source == "input")
+                self._inputs[name] = next((e for e in self.entries if e.name == name and e.source == "input"), None)
                 if tapped(entry):
                     through_taps.append(entry)
                     continue
@@ -200,6 +206,8 @@ class PlanGrids:
         out: dict[str, dict] = {}
         for e in self.entries:
             out.setdefault(e.name, {})[e.source] = e.final()
+        for name, g in self._token.items():
+            out.setdefault(name, {})["input"] = g
         return {n: LayerSetting(**g) for n, g in out.items()}
 
     # ------------------------------------------------------------------ forwards
@@ -243,6 +251,8 @@ class PlanGrids:
         mode = self._mode
         if mode is None:
             return None
+        if name in self._token:  # the same rounding either way; gradients pass straight through
+            return quantize_unchecked(x, self._token[name])
         if mode[0] == "hard":
             return quantize(x, mode[1][name].input)
         _, grids, temperature, factor, generator, window = mode

@@ -24,6 +24,7 @@ from ..core.checks import as_input
 from ..core.grid import UniformGrid, grid_params
 from ..core.ranges import fit_range
 from ..core.rounding import quantize, quantize_unchecked
+from ..core.token_grid import TokenGrid
 
 QUANTIZABLE_TYPES: tuple[type[nn.Module], ...] = (
     nn.Linear, nn.Conv1d, nn.Conv2d, nn.Conv3d,
@@ -111,7 +112,7 @@ def layer_output(
 
 def check_layer_grids(layer: nn.Module, weight_grid, input_grid) -> None:
     """Both grids None or a UniformGrid; a per-channel weight grid fits the weight's shape."""
-    if input_grid is not None:
+    if input_grid is not None and not isinstance(input_grid, TokenGrid):
         check_grid(input_grid, "input_grid")
     if weight_grid is not None:
         check_grid(weight_grid, "weight_grid")

@@ -12,6 +12,7 @@ from ..core.checks import finite_check
 from ..core.grid import UniformGrid
 from ..core.grid_cache import tensor_digest
 from ..core.rounding import quantize_unchecked, to_codes
+from ..core.token_grid import TokenGrid
 from ..model.entries import find_entries, replace_inputs, tapped, weight_digest
 from ..model.finite_state import check_layer_input
 from ..model.state_digest import state_differences
@@ -197,7 +198,9 @@ def export_codes(model: nn.Module, plan: Plan, *, strict: bool = True,
     ``block_size`` (None, or g for a block grid: then ``scale``, ``offset`` and ``zero_point``
     have the weight's rank and shape, ``axis`` divided by g rounded up, the ONNX opset 21
     blocked layout, and each value applies to its block of g codes along ``axis``), ``bits``,
-    ``signed``, and ``input`` (the input grid as a dict of the same fields, or None).
+    ``signed``, and ``input`` (the input grid as a dict of the same fields, or None; a
+    per-token input, :class:`qwidgets.TokenGrid`, has ``"granularity": "token"``, ``axis`` -1
+    and no scale, offset or zero point: they are computed from each row at run time).
 
     Where ``zero_point`` is given, ``(codes - zero_point) * scale`` in float64, cast to the
     weight's dtype, is exactly the weight of :func:`apply_plan`'s model (integer arithmetic,
@@ -237,7 +240,10 @@ def export_codes(model: nn.Module, plan: Plan, *, strict: bool = True,
     return out
 
 
-def _grid_fields(g: UniformGrid) -> dict:
+def _grid_fields(g: UniformGrid | TokenGrid) -> dict:
+    if isinstance(g, TokenGrid):  # nothing stored: each row's scale is computed at run time
+        return {"scale": None, "offset": None, "zero_point": None, "axis": g.axis, "block_size": None,
+                "bits": g.bits, "signed": True, "granularity": "token"}
     g = g.detached()
     scale = g.scale_tensor().to(torch.float32).clone()
     offset = g.offset_tensor().to(torch.float32).clone()

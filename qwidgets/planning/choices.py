@@ -1,7 +1,9 @@
 """The menu the solver chooses from: one option per entry, its predicted noise and its costs.
 
-An option of an entry is a triple (weight width, input width, weight granularity); None
-stands for a side that stays float (and for the granularity of float weights). Every scanned
+An option of an entry is a tuple (weight width, input width, weight granularity, input
+granularity); None stands for a side that stays float (and for the granularity of a float
+side). Input granularities are those of :attr:`SensitivityTable.input_granularities`
+(``"token"``: a scale per row at run time, costed like a static grid of its width). Every scanned
 granularity of :attr:`SensitivityTable.granularities` is offered with every weight width
 (except where the entry skipped it). What a table offers depends on how it was scanned:
 
@@ -32,6 +34,8 @@ from ..core.checks import check_choice, check_int
 from ..core.setting import SOURCES
 from .costs import COSTS, FLOAT_BITS, grid_storage_bits, layer_bops, weight_storage_bits
 from .granularity import check_granularity
+from .pins import allowed_input_options, pin_entry
+from .pins import menus as _menus
 from .table import SensitivityTable
 
 MAX_NOISE = 1e12  # noise power relative to the signal, cap (SQNR >= -120 dB) to keep sums finite
@@ -40,7 +44,8 @@ MAX_NOISE = 1e12  # noise power relative to the signal, cap (SQNR >= -120 dB) to
 
 @dataclass(frozen=True)
 class Menu:
-    """Options per entry: ``options[i]`` lists (weight bits, input bits, granularity); ``noise[i]`` their predicted noise (relative to the signal power), same order."""
+    """Options per entry: ``options[i]`` lists (weight bits, input bits, granularity, input
+    granularity); ``noise[i]`` their predicted noise (relative to the signal power), same order."""
 
     names: list
     options: list
@@ -59,7 +64,7 @@ class Menu:
             macs = table.macs(name)
             act = table.kind(name) == "activation"
             row = []
-            for wb, ib, g in opts:
+            for wb, ib, g, _ in opts:
                 if cost in ("model_kib", "planned_kib", "mean_bits"):  # stored bits (model_kib: + the unplanned weights)
                     row.append(option_storage_bits(table, name, wb, g, self.scale_bits))
                 elif act:  # its product with a float operand (counted at the assumed width)
@@ -242,88 +247,13 @@ def _allowed(table, allowed_bits) -> tuple[tuple, tuple]:
     return w, (w if table.quantize == "both" else i_all)
 
 
-def _menus(table) -> tuple[tuple, tuple]:
-    """Scanned (weight widths, input widths) of the table's options."""
-    q = table.quantize
-    if q == "weight":
-        return table.bits, ()
-    if q == "input":
-        return (), table.bits
-    if q == "both":
-        return table.bits, table.bits
-    return table.bits, tuple(table.input_bits)
-
-
-def _pin(table, name: str, value) -> tuple:
-    """``fixed[name]`` as (weight bits, input bits, granularity), None where not pinned."""
-    where = f"fixed[{name!r}]"
-    act = table.kind(name) == "activation"
-    pg = None
-    if isinstance(value, Mapping):
-        extra = [k for k in value if k not in ("bits", "input_bits", "granularity")]
-        if extra or not value:
-            raise ValueError(f"{where} as a dict takes 'bits', 'input_bits' and / or 'granularity', "
-                             f"got {sorted(map(str, value))}")
-        if "granularity" in value:
-            pg = check_granularity((value["granularity"],), name=f"{where}['granularity']")[0]
-            if pg not in table.granularities:
-                raise ValueError(f"{where}: granularity {pg!r} was not scanned; scanned: "
-                                 f"{list(table.granularities)}")
-        if "bits" in value and "input_bits" in value:
-            value = (value["bits"], value["input_bits"])
-        elif "bits" in value or "input_bits" in value:
-            b = value.get("bits", value.get("input_bits"))
-            if isinstance(b, bool) or not isinstance(b, Integral):
-                raise TypeError(f"{where}: widths must be ints, got {b!r}")
-            if "input_bits" in value and table.quantize != "input":
-                value = (None, int(b))
-            else:
-                value = int(b)
-        else:
-            return None, None, pg
-    if isinstance(value, tuple) and len(value) == 2 and value[0] is None:
-        pw, pi = None, int(value[1])
-    elif isinstance(value, Integral) and not isinstance(value, bool):
-        pw, pi = (None, int(value)) if (table.quantize == "input" or act) else (int(value), None)
-    elif isinstance(value, tuple) and len(value) == 2 and all(
-            isinstance(b, Integral) and not isinstance(b, bool) for b in value):
-        pw, pi = int(value[0]), int(value[1])
-    else:
-        raise TypeError(f"{where} must be a width (int) or a (weight bits, input bits) pair of ints, "
-                        f"got {value!r}")
-    w_all, i_all = _menus(table)
-    if act and pw is not None:
-        raise ValueError(f"{where}: {name!r} is an activation (no weight); pin its width as one int")
-    if act and table.quantize == "both":
-        i_all = table.bits
-    if pw is not None and pw not in w_all:
-        raise ValueError(f"{where}: weight width {pw} is not among the table's weight widths {list(w_all)}")
-    if pi is not None and pi not in i_all:
-        raise ValueError(f"{where}: input width {pi} is not among the table's input widths {list(i_all)}"
-                         + ("; scan with quantize='separate' to plan inputs" if not i_all else ""))
-    if table.quantize == "both" and pw is not None and pi is not None and pw != pi:
-        raise ValueError(f"{where}: a table scanned with quantize='both' uses one width for weights "
-                         f"and input, got {value!r}")
-    if table.quantize == "both" and not act:
-        pw = pi = pw if pw is not None else pi
-    if pi is not None and not has_input_rows(table, name):
-        raise ValueError(f"{where}: {name!r} has no input rows; pin its weight width only")
-    return pw, pi, pg
-
-
-def has_input_rows(table, name: str) -> bool:
-    """Whether the table offers input widths for entry ``name``."""
-    if table.quantize in ("input", "both"):
-        return True
-    return table.quantize == "separate" and table.has_input_rows(name)
-
-
 def _all_options(table, name: str) -> list:
     q, bits = table.quantize, table.bits
+    igs = table.input_granularities if q == "separate" and table.has_input_rows(name) else ("tensor",)
     if table.kind(name) == "activation":  # no weight: an input width only
-        return [(None, b, None) for b in (table.input_bits if q == "separate" else bits)]
+        return [(None, b, None, ig) for ig in igs for b in (table.input_bits if q == "separate" else bits)]
     if q == "input":
-        return [(None, b, None) for b in bits]
+        return [(None, b, None, "tensor") for b in bits]
     if q == "weight":
         pairs = [(b, None) for b in bits]
     elif q == "both":
@@ -332,7 +262,8 @@ def _all_options(table, name: str) -> list:
         pairs = [(w, i) for w in bits for i in table.input_bits]
     else:
         pairs = [(w, None) for w in bits]
-    return [(w, i, g) for g in table.granularities for w, i in pairs]
+    return [(w, i, g, None if i is None else ig) for g in table.granularities for ig in igs
+            for w, i in pairs if i is not None or ig == igs[0]]
 
 
 def _allowed_granularity(table, allowed) -> tuple:
@@ -347,13 +278,15 @@ def _allowed_granularity(table, allowed) -> tuple:
 
 
 def build_menu(table, *, fixed=None, allowed_bits=None, assumed_input_bits: int | None = 8,
-               allowed_granularity=None, scale_bits: int = 16) -> Menu:
-    """Every entry's options after ``fixed`` pins and the ``allowed_bits`` and
-    ``allowed_granularity`` menus, with noise (options an entry skipped in the scan: left out)."""
+               allowed_granularity=None, scale_bits: int = 16, allowed_input_granularity=None) -> Menu:
+    """Every entry's options after ``fixed`` pins and the ``allowed_bits``,
+    ``allowed_granularity`` and ``allowed_input_granularity`` menus, with noise (options an
+    entry skipped in the scan: left out)."""
     check_table(table)
     assumed_input_bits = check_assumed_input_bits(assumed_input_bits)
     w_ok, i_ok = _allowed(table, allowed_bits)
     g_ok = _allowed_granularity(table, allowed_granularity)
+    ig_ok = allowed_input_options(table, allowed_input_granularity)
     if fixed is None:
         fixed = {}
     if not isinstance(fixed, Mapping):
@@ -363,35 +296,38 @@ def build_menu(table, *, fixed=None, allowed_bits=None, assumed_input_bits: int 
         raise ValueError(f"fixed names {unknown}, not in the table; entries: {table.layers}")
     q = table.quantize
     main = {g: _model_rows(table, "weight", g) for g in table.granularities}  # over table.bits
-    extra = _model_rows(table, "input") if q == "separate" else None
+    extra = {ig: _noise(table.sqnr_array("model", "input", None if ig == "tensor" else ig))
+             for ig in table.input_granularities} if q == "separate" else None
     col = {b: j for j, b in enumerate(table.bits)}
     i_col = {b: j for j, b in enumerate(table.input_bits)} if q == "separate" else {}
     options, noise = [], []
     for r, name in enumerate(table.layers):
         opts = _all_options(table, name)
-        pw = pi = pg = None
+        pw = pi = pg = pig = None
         if name in fixed:
-            pw, pi, pg = _pin(table, name, fixed[name])
+            pw, pi, pg, pig = pin_entry(table, name, fixed[name])
         opts = [o for o in opts if (pw is None or o[0] == pw) and (pi is None or o[1] == pi)
-                and (pg is None or o[2] == pg)]
+                and (pg is None or o[2] == pg) and (pig is None or o[3] == pig)]
         if pw is None and pi is None:  # an entry with pinned widths is not restricted by the menus
             opts = [o for o in opts if (o[0] is None or o[0] in w_ok) and (o[1] is None or o[1] in i_ok)]
         if pg is None:
             opts = [o for o in opts if o[2] is None or o[2] in g_ok]
+        if pig is None:
+            opts = [o for o in opts if o[3] is None or o[3] in ig_ok]
         # options the entry skipped in the scan (blocks longer than its input axis): not offered
         opts = [o for o in opts if (o[0] is None and q == "separate") or not math.isnan(
             main[o[2] or table.granularities[0]][r, col[o[1] if o[0] is None else o[0]]])]
         if not opts:
-            raise ValueError(f"no option is left for {name!r} after fixed, allowed_bits and "
-                             "allowed_granularity")
+            raise ValueError(f"no option is left for {name!r} after fixed, allowed_bits, "
+                             "allowed_granularity and allowed_input_granularity")
         n = []
-        for wb, ib, g in opts:
+        for wb, ib, g, ig in opts:
             if wb is None and q == "separate":
                 v = 0.0  # an activation: its input rows only
             else:
                 v = float(main[g or table.granularities[0]][r, col[ib if wb is None else wb]])
             if q == "separate" and ib is not None:
-                v += float(extra[r, i_col[ib]])
+                v += float(extra[ig][r, i_col[ib]])
             n.append(v)
         options.append(opts)
         noise.append(np.array(n, dtype=float))

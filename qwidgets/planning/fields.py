@@ -14,13 +14,16 @@ import torch
 
 from ..core.checks import MAX_BITS
 from ..core.grid import UniformGrid
+from ..core.token_grid import TokenGrid
 
 HEX = "0123456789abcdef"
 
 
-def grid_to_dict(g: UniformGrid | None) -> dict | None:
+def grid_to_dict(g: UniformGrid | TokenGrid | None) -> dict | None:
     if g is None:
         return None
+    if isinstance(g, TokenGrid):  # nothing stored: a scale per row at run time
+        return {"bits": g.bits, "granularity": "token"}
     g = g.detached()
     if g.axis is None:  # floats as given (a 0-d tensor's value as a float)
         scale, offset = float(g.scale), float(g.offset) + 0.0
@@ -96,6 +99,19 @@ def number_field(v, where: str, positive: bool = False) -> float:
     if positive and v <= 0:
         raise FieldError(f"{where} must be > 0, got {v}")
     return float(v)
+
+
+def input_grid_from_dict(d, where: str, version: int) -> UniformGrid | TokenGrid | None:
+    """A plan's input grid: a fitted grid, or (version 6) ``{"bits": b, "granularity": "token"}``."""
+    if not (isinstance(d, dict) and "granularity" in d):
+        return grid_from_dict(d, where, None)
+    if version < 6:
+        raise FieldError(f"{where} is a per-token input, which plan files hold from version 6")
+    check_fields(d, ("bits", "granularity"), where)
+    if d["granularity"] != "token":
+        raise FieldError(f"{where}.granularity must be 'token', got {d['granularity']!r}")
+    bits = int_field(d["bits"], f"{where}.bits", 2, MAX_BITS)
+    return TokenGrid(bits)
 
 
 def grid_from_dict(d, where: str, channels: int | None) -> UniformGrid | None:

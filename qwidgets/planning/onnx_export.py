@@ -14,7 +14,11 @@ opset and rewritten (:mod:`.onnx_graph`):
   the deployed weights are ``(q - Z) * S``, exactly ``apply_plan``'s;
 - each planned input passes through ``QuantizeLinear`` then ``DequantizeLinear`` with the plan's
   scale and zero point (after a ``Clip`` to the grid's range when it is narrower than the
-  integer type's, since ``QuantizeLinear`` saturates only at the type's ends).
+  integer type's, since ``QuantizeLinear`` saturates only at the type's ends); a per-token
+  input (:class:`qwidgets.TokenGrid`) computes its scales in the graph (``Abs``,
+  ``ReduceMax`` over the last axis, ``Div`` by qmax, ``Max`` with float32's smallest normal
+  number) and passes through a blocked ``QuantizeLinear`` / ``DequantizeLinear`` whose
+  ``block_size`` is the last axis (one scale per row; ``output_dtype`` signed, no zero point).
 
 Opset 21 is the first with 4-bit and 16-bit integer types for these operators. The file is
 written with IR version 10 (the lowest that holds opset 21), which runtimes that read only up to
@@ -38,6 +42,7 @@ import torch
 from torch import nn
 
 from ..core.rounding import to_codes
+from ..core.token_grid import TokenGrid
 from .apply import match_plan
 from .onnx_graph import OnnxRewrite, check_onnx_grid, onnx_code_type, unmark
 from .onnx_trace import float32_copy, graph_inputs, quantization_points, trace_float
@@ -108,13 +113,14 @@ def export_onnx(model: nn.Module, plan: Plan, path: str | os.PathLike,
     for name in found:
         s = plan.layers[name]
         for role, grid in (("weight", s.weight), ("input", s.input)):
-            if grid is not None:
+            if grid is not None and not isinstance(grid, TokenGrid):  # a token grid: scales in the graph
                 check_onnx_grid(grid, f"layer {name!r} {role}")
 
     net, widened = float32_copy(model)
     if widened:
         tensors = [t.float() if t.is_floating_point() else t for t in tensors]
-    points = quantization_points(net, plan, found)
+    shapes: dict = {}  # tag -> (rank, last axis) of each marked tensor, filled by the trace
+    points = quantization_points(net, plan, found, shapes)
     weights = {e.param: name for name, e in found.items() if e.kind != "activation"}  # no weight
     proto = trace_float(net, names, tensors, call, list(weights))
     marked = unmark(proto)
@@ -131,7 +137,7 @@ def export_onnx(model: nn.Module, plan: Plan, path: str | os.PathLike,
             raise ValueError(f"planned input {point.tag!r} is not computed in the exported graph (the "
                              "model's forward on example_inputs never reached it); its grid cannot be "
                              "exported")
-        graph.quantize_marks(point.tag, point.grid, nodes)
+        graph.quantize_marks(point.tag, point.grid, nodes, shapes)
     graph.finish()
     proto.ir_version = max(10, onnx.helper.find_min_ir_version_for(list(proto.opset_import)))
     if widened:

@@ -1,5 +1,6 @@
 """Rewriting the traced graph: planned weights become integer codes + ``DequantizeLinear``,
-marked activations become (``Clip``,) ``QuantizeLinear`` / ``DequantizeLinear``.
+marked activations become (``Clip``,) ``QuantizeLinear`` / ``DequantizeLinear`` (per-token
+inputs: their row scales computed in the graph, then a blocked pair).
 
 Works on the graph :mod:`.onnx_trace` wrote (weights as named graph inputs, activations
 behind ``Mark`` nodes), after its conversion to the file's opset. Each step is one method:
@@ -15,6 +16,7 @@ import numpy as np
 import torch
 
 from ..core.grid import UniformGrid
+from ..core.token_grid import TINY_SCALE, TokenGrid
 from .onnx_trace import MARK_DOMAIN
 
 __all__ = ["OnnxRewrite", "onnx_code_type", "type_range", "check_onnx_grid", "unmark"]
@@ -108,11 +110,19 @@ class OnnxRewrite:
                 out.setdefault(marked[node.output[0]], []).append(node)
         return out
 
-    def quantize_marks(self, tag: str, grid: UniformGrid, nodes: list) -> None:
-        """Each marker of ``tag`` becomes (Clip,) QuantizeLinear, DequantizeLinear with ``grid``."""
+    def quantize_marks(self, tag: str, grid: UniformGrid | TokenGrid, nodes: list,
+                       last_axis: dict | None = None) -> None:
+        """Each marker of ``tag`` becomes (Clip,) QuantizeLinear, DequantizeLinear with ``grid``
+        (a token grid: its scales computed in the graph, :meth:`_per_token`; ``last_axis``:
+        tag -> (rank, length of the last axis) of the tensor it marks)."""
         for node in nodes:
             at = next(i for i, n in enumerate(self.nodes) if n is node)
-            self.nodes[at:at + 1] = self._quantize_dequantize(node.input[0], node.output[0], grid, tag)
+            if isinstance(grid, TokenGrid):
+                rank, length = (last_axis or {})[tag]
+                new = self._per_token(node.input[0], node.output[0], grid, tag, rank, length)
+            else:
+                new = self._quantize_dequantize(node.input[0], node.output[0], grid, tag)
+            self.nodes[at:at + 1] = new
 
     def finish(self) -> None:
         del self.graph.node[:]
@@ -192,3 +202,28 @@ class OnnxRewrite:
         nodes.append(helper.make_node("QuantizeLinear", [src, s, zero], [q], name=self.name(base + "_quantize")))
         nodes.append(helper.make_node("DequantizeLinear", [q, s, z], [out], name=self.name(base + "_dequantize")))
         return nodes
+
+    def _per_token(self, src: str, out: str, grid: TokenGrid, base: str, rank: int, length: int) -> list:
+        """apply_plan's per-row grid (:mod:`qwidgets.core.token_grid`), operation for operation
+        in float32: S = max(ReduceMax(|x|, last axis) / qmax, tiny), then a blocked
+        QuantizeLinear / DequantizeLinear (``block_size`` the last axis, so one scale per row;
+        ``output_dtype`` signed, no zero point) whose codes never leave [-qmax, qmax]."""
+        from onnx import TensorProto, helper
+
+        if rank < 2 or length < 1:  # one axis may be the dynamic batch axis: no fixed block size
+            raise ValueError(f"{base}: a per-token input needs a tensor of rank >= 2 whose last axis "
+                             f"has a fixed length, got rank {rank}, last axis {length or 'dynamic'}")
+        n = lambda what: self.name(f"{base}_{what}")  # noqa: E731
+        absolute, peak, ratio, scale, q = n("abs"), n("row_max"), n("row_ratio"), n("row_scale"), n("quantized")
+        axes = self._constant(n("last_axis"), np.array([-1], dtype=np.int64))
+        qmax = self._constant(n("qmax"), np.float32(grid.qmax))
+        tiny = self._constant(n("tiny"), np.float32(TINY_SCALE))
+        dtype = TensorProto.INT4 if grid.bits <= 4 else TensorProto.INT8 if grid.bits <= 8 else TensorProto.INT16
+        attrs = {"axis": rank - 1, "block_size": length}
+        return [helper.make_node("Abs", [src], [absolute], name=n("abs_op")),
+                helper.make_node("ReduceMax", [absolute, axes], [peak], keepdims=1, name=n("row_max_op")),
+                helper.make_node("Div", [peak, qmax], [ratio], name=n("row_ratio_op")),
+                helper.make_node("Max", [ratio, tiny], [scale], name=n("row_scale_op")),
+                helper.make_node("QuantizeLinear", [src, scale], [q], output_dtype=dtype,
+                                 name=n("quantize"), **attrs),
+                helper.make_node("DequantizeLinear", [q, scale], [out], name=n("dequantize"), **attrs)]

@@ -25,6 +25,7 @@ import torch
 from torch import nn
 
 from ..core.grid import UniformGrid
+from ..core.token_grid import TokenGrid
 from ..model.entries import replace_inputs, tapped
 from ..model.fastpath import attention_fastpath_off
 from ..model.outputs import iter_tensors
@@ -42,7 +43,7 @@ class QuantPoint:
     """A planned activation quantization point: the tag its markers carry, and its grid."""
 
     tag: str
-    grid: UniformGrid
+    grid: UniformGrid | TokenGrid
 
 
 class _Mark(torch.autograd.Function):
@@ -59,23 +60,29 @@ class _Mark(torch.autograd.Function):
         return out
 
 
-def mark(x: torch.Tensor, tag: str) -> torch.Tensor:
-    """``x``, marked in a trace as quantization point ``tag`` (floating-point tensors only)."""
-    return _Mark.apply(x, tag) if x.is_floating_point() else x
+def mark(x: torch.Tensor, tag: str, shapes: dict | None = None) -> torch.Tensor:
+    """``x``, marked in a trace as quantization point ``tag`` (floating-point tensors only);
+    ``shapes`` receives tag -> (rank, length of the last axis), for per-token grids (the
+    example's sizes: only axis 0 is exported as dynamic)."""
+    if not x.is_floating_point():
+        return x
+    if shapes is not None:
+        shapes[tag] = (x.dim(), int(x.shape[-1]) if x.dim() else 1)
+    return _Mark.apply(x, tag)
 
 
 class _MarkInputs:
     """Forward pre-hook of the export's copy: marks the entry's inputs (apply_plan's
     ``_QuantizeInput`` quantizes the same arguments)."""
 
-    def __init__(self, entry, tag: str):
-        self.entry, self.tag = entry, tag
+    def __init__(self, entry, tag: str, shapes: dict | None = None):
+        self.entry, self.tag, self.shapes = entry, tag, shapes
 
     def __call__(self, module, args, kwargs):
-        return replace_inputs(self.entry, args, kwargs, lambda v: mark(v, self.tag))
+        return replace_inputs(self.entry, args, kwargs, lambda v: mark(v, self.tag, self.shapes))
 
 
-def quantization_points(net: nn.Module, plan, found: dict) -> list[QuantPoint]:
+def quantization_points(net: nn.Module, plan, found: dict, shapes: dict | None = None) -> list[QuantPoint]:
     """Install the markers of every planned activation on ``net`` (the export's own copy).
 
     An entry whose input its owner module receives (a layer's input; an attention
@@ -97,9 +104,9 @@ def quantization_points(net: nn.Module, plan, found: dict) -> list[QuantPoint]:
             through_taps.append(entry)
             continue
         owner = net.get_submodule(entry.module) if entry.module else net
-        owner.register_forward_pre_hook(_MarkInputs(entry, tag), with_kwargs=True)
+        owner.register_forward_pre_hook(_MarkInputs(entry, tag, shapes), with_kwargs=True)
     if through_taps:
-        attach(net, EachTap(through_taps, lambda name, t: mark(t, _tag(name))))
+        attach(net, EachTap(through_taps, lambda name, t: mark(t, _tag(name), shapes)))
     return points
 
 

@@ -2,14 +2,11 @@
 
 from __future__ import annotations
 
-import hashlib
 import json
 import math
 import os
 from collections.abc import Mapping
 from dataclasses import dataclass, replace
-
-from torch import nn
 
 from ..core.blocks import SCALE_BITS, check_block_fit
 from ..core.checks import check_bits
@@ -18,6 +15,7 @@ from ..core.setting import LayerSetting
 from .costs import FLOAT_BITS, grid_storage_bits, layer_bops
 from .fields import FieldError, NonFinite, grid_to_dict
 from .files import read_text, write_text
+from .fingerprint import model_fingerprint  # noqa: F401 (imported from here by others)
 from .schema import FORMAT, VERSION, check_figures, plan_fields, plan_figures
 
 CAUTION = (
@@ -25,22 +23,6 @@ CAUTION = (
     "the quantized model. For safety-relevant use (vehicles, medical devices) validate the "
     "deployed model on its target hardware with the full test procedure."
 )
-
-
-def model_fingerprint(model: nn.Module) -> str:
-    """SHA-256 of the model's ordered parameter names and shapes (values do not matter).
-
-    >>> from torch import nn
-    >>> a, b = nn.Linear(3, 2), nn.Linear(3, 2)
-    >>> model_fingerprint(a) == model_fingerprint(b), model_fingerprint(a) == model_fingerprint(nn.Linear(2, 2))
-    (True, False)
-    """
-    if not isinstance(model, nn.Module):
-        raise TypeError(f"model must be a torch.nn.Module, got {type(model).__name__}")
-    h = hashlib.sha256()
-    for name, p in model.named_parameters():
-        h.update(f"{name}:{tuple(p.shape)}\n".encode())
-    return h.hexdigest()
 
 
 @dataclass(frozen=True, eq=False)
@@ -154,6 +136,12 @@ class Plan:
         """Each entry's weight granularity: ``"tensor"``, ``"channel"`` or the block size (None
         where its weight stays float)."""
         return {n: None if s.weight is None else s.weight.granularity for n, s in self.layers.items()}
+
+    @property
+    def input_granularity(self) -> dict:
+        """Each entry's input granularity: ``"tensor"`` (a fitted grid), ``"token"`` (a scale
+        per row at run time, :class:`qwidgets.TokenGrid`), None where its input stays float."""
+        return {n: s.input_granularity for n, s in self.layers.items()}
 
     # ------------------------------------------------------------------ edits
     def with_setting(self, layer_name: str, setting: LayerSetting) -> Plan:
@@ -313,7 +301,7 @@ class Plan:
         """One dict per layer: bits, weight storage (bits, KiB) and BOPs, with float32 figures.
 
         Keys: layer, bits, weight_bits, granularity (:attr:`granularity`), input_bits (None:
-        float), params, storage_bits, kib (its share of :attr:`planned_kib`), float_kib, bops,
+        float), input_granularity (:attr:`input_granularity`), params, storage_bits, kib (its share of :attr:`planned_kib`), float_kib, bops,
         float_bops.
         """
         rows = []
@@ -325,6 +313,7 @@ class Plan:
                 "weight_bits": self._weight_bits(n),
                 "granularity": None if s.weight is None else s.weight.granularity,
                 "input_bits": None if s.input is None else s.input.bits,
+                "input_granularity": s.input_granularity,
                 "params": self._params(n),
                 "storage_bits": stored,
                 "kib": stored / 8192,

@@ -39,6 +39,7 @@ from torch import nn
 from ..core.checks import check_bits, check_bool, check_choice, finite_check
 from ..core.device_rules import DeviceRules, check_rules
 from ..core.ranges import METHODS
+from ..core.token_grid import TokenGrid
 from ..model import outputs, running
 from ..model.batching import cut_batches
 from ..model.entries import call_inputs, coverage_of, tapped, weight_digest
@@ -52,6 +53,7 @@ from .confirm import ScanNote, check_confirm, noted, scanned_table  # noqa: F401
 from .device_checks import scan_bits
 from .distribute import merge_shares, worker_count
 from .granularity import fit_option, scan_granularity, split_granularities
+from .input_granularity import scan_input_granularity, split_token_columns
 from .model_scope import model_scope as _model_scope
 from .passes import (
     attention_scope_powers,
@@ -60,6 +62,7 @@ from .passes import (
     weight_scope_powers,
 )
 from .plan import model_fingerprint
+from .scan_sides import NoInputEntries, join_sides
 from .survey import survey
 from .table import SensitivityTable
 from .table_schema import ESTIMATES, QUANTIZE_MODES, SCOPES
@@ -74,7 +77,8 @@ def scan(model: nn.Module, data: Data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8),
          batch_size: int | None = None, executor: Executor | None = None,
          rules: DeviceRules | None = None, input_bits: Sequence[int] = (4, 6, 8),
          inputs: int | str | Callable | None = None,
-         granularity: Sequence | None = None, confirm: int = 0) -> SensitivityTable:
+         granularity: Sequence | None = None, confirm: int = 0,
+         input_granularity: Sequence[str] | None = None) -> SensitivityTable:
     """Measure every quantizable weight (entry), quantized alone, at every bit width in ``bits``.
 
     Parameters
@@ -126,6 +130,10 @@ def scan(model: nn.Module, data: Data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8),
         ``per_channel=False``); the first option gives the table's default rows.
     confirm : with ``estimate="gain"``, the ``confirm`` most uncertain cells measured exactly
         (:meth:`SensitivityTable.uncertain`; :attr:`SensitivityTable.confirmed` lists them)
+    input_granularity : with ``quantize="separate"``, the input grids measured at every input
+        width: ``("tensor",)`` (the default: one fitted scale) or ``("tensor", "token")`` (also
+        a scale per row computed at run time, :class:`qwidgets.TokenGrid`; see
+        :mod:`qwidgets.planning.input_granularity`)
 
     The table's :attr:`~SensitivityTable.coverage` says how many weight values were scanned
     and why the others were not.
@@ -160,6 +168,7 @@ def scan(model: nn.Module, data: Data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8),
                       "input_bits") if separate else ()
     bits = scan_bits(bits, check_rules(rules), quantize)
     grans, per_channel = scan_granularity(granularity, per_channel, rules, quantize)
+    igrans = scan_input_granularity(input_granularity, quantize, rules)
     options = dict(rules=rules, bits=bits, quantize=quantize, method=method, per_channel=per_channel, scope=scope,
                    max_samples=max_samples, output=output, estimate=estimate, batch_size=batch_size, granularity=grans,
                    confirm=confirm, digests=state_digests(model))  # each float tensor hashed once
@@ -173,11 +182,12 @@ def scan(model: nn.Module, data: Data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8),
     try:
         # the weight side's survey checked every layer input on this data: not again
         inputs = _scan_parts(model, data, {**options, "quantize": "input", "bits": ibits,
-                                           "inputs_checked": True, "granularity": ("tensor",)},
-                             progress, executor)
+                                           "inputs_checked": True, "granularity": ("tensor",),
+                                           "token": "token" in igrans}, progress, executor)
+        inputs = split_token_columns(inputs, len(ibits))
     except NoInputEntries:
         inputs = None  # only weight-only entries: no input rows at all
-    return noted(scanned_table(model, data, _join_sides(weights, inputs, ibits), options))
+    return noted(scanned_table(model, data, join_sides(weights, inputs, ibits), options))
 
 
 
@@ -188,55 +198,6 @@ def _scan_parts(model, data, options: dict, progress: bool, executor) -> dict:
     k = worker_count(executor)
     futures = [executor.submit(scan_share, copy.deepcopy(model), data, options, (i, k)) for i in range(k)]
     return merge_shares([f.result() for f in futures], k)
-
-
-class NoInputEntries(ValueError):
-    """A scan of inputs found no entry whose input can be measured (all weight-only)."""
-
-
-def _join_sides(weights: dict, inputs: dict | None, ibits: tuple) -> dict:
-    """One "separate" table from a weight scan and an input scan of the same model and data
-    (activations, which have no weight, come from the input scan alone, in execution order)."""
-    names = _merged(weights["layers"], [] if inputs is None else inputs["layers"])
-    pos = {} if inputs is None else {n: j for j, n in enumerate(inputs["layers"])}
-    wpos = {n: j for j, n in enumerate(weights["layers"])}
-
-    def rows(side, key, width):
-        if side is None or side[key] is None:
-            return None
-        at = wpos if side is weights else pos
-        arr = np.full((len(names), width), np.nan)
-        for r, name in enumerate(names):
-            if name in at:
-                arr[r] = side[key][at[name]]
-        return arr
-
-    out = dict(weights)
-    nb = len(weights["bits"])
-    out.update(layers=names, layer_sqnr=rows(weights, "layer_sqnr", nb),
-               model_sqnr=rows(weights, "model_sqnr", nb),
-               info={n: weights["info"][n] if n in wpos else inputs["info"][n] for n in names},
-               weight_grids={n: weights["weight_grids"].get(n) for n in names})
-    if inputs is not None:
-        out["notes"] = list(dict.fromkeys(list(weights.get("notes", ())) + list(inputs.get("notes", ()))))
-    out.update(quantize="separate", input_bits=ibits,
-               input_layer_sqnr=rows(inputs, "layer_sqnr", len(ibits)),
-               input_model_sqnr=rows(inputs, "model_sqnr", len(ibits)),
-               input_grids={n: (list(inputs["input_grids"][n]) if n in pos else None) for n in names})
-    return out
-
-
-def _merged(first: list, second: list) -> list:
-    """``first`` with the names only ``second`` holds inserted after their predecessor there."""
-    out = list(first)
-    known = set(out)
-    for j, n in enumerate(second):
-        if n in known:
-            continue
-        prev = next((second[i] for i in range(j - 1, -1, -1) if second[i] in known), None)
-        out.insert(0 if prev is None else out.index(prev) + 1, n)
-        known.add(n)
-    return out
 
 
 def scan_share(model: nn.Module, data, options: dict, share: tuple[int, int]) -> dict:
@@ -316,6 +277,8 @@ def _scan_entries(model, source, first, entries, usage, options, progress, share
             igrids[e.name] = ig if ig is not None else [None] * len(bits)
             configs[e.name] = [(None if g is None else g[j], None if ig is None else ig[j])
                                for g in (wg or [None] * len(grans)) for j in range(len(bits))]
+            if options.get("token"):  # the input at each width on a scale per row, after the fitted
+                configs[e.name] += [(None, TokenGrid(b)) for b in bits]
             info[e.name] = {"type": e.type_name, "weight_shape": e.shape, "input_shape": f.input_shape,
                             "macs": int(f.macs), "model_pass": "-", "kind": e.kind, "axis": e.axis,
                             "param": e.param, "has_input": bool(f.has_input),
@@ -329,7 +292,7 @@ def _scan_entries(model, source, first, entries, usage, options, progress, share
         layer_sq = _layer_scope(model, source, facts, configs) if scope != "model" else None
         model_sq, notes = None, []
         if scope != "layer":
-            model_sq = _model_scope(model, source, found, facts, configs, len(bits) * len(grans), info,
+            model_sq = _model_scope(model, source, found, facts, configs, len(configs[names[0]]), info,
                                     estimate=estimate, output=output, progress=progress, share=share,
                                     notes=notes)
     cov = coverage_of(model, [f.entry for f in facts], skipped, notes=usage.unusable,

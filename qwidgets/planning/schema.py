@@ -45,7 +45,10 @@ versions 2 and 3 counted code bits only). Plans written before
 entries were recorded (no optional fields) are read as they are: their layers have inputs, no
 digest is checked and ``Plan.model_kib`` is None. 5 added the optional ``state_digests``
 and per-layer ``pinned``; plans without ``state_digests`` are read with
-``Plan.state_digests`` None: only their planned weights' digests are checked.
+``Plan.state_digests`` None: only their planned weights' digests are checked. 6 added
+per-token inputs: ``"input": {"bits": 8, "granularity": "token"}`` (a
+:class:`~qwidgets.core.token_grid.TokenGrid`, nothing stored); older files hold fitted input
+grids only (``Plan.input_granularity`` "tensor").
 
 Per-channel grids (``axis`` set) hold one scale / offset / zero point per channel; a grid
 whose offset is not an integer multiple of its scale has ``"zero_point": null``. Block grids
@@ -69,6 +72,7 @@ from .fields import (
     digest_field,
     fingerprint_field,
     grid_from_dict,
+    input_grid_from_dict,
     int_field,
     kind_of,
     number_field,
@@ -77,9 +81,9 @@ from .fields import (
 )
 
 FORMAT = "qwidgets plan"
-VERSION = 5  # 2 "figures", 3 activations ("partner"), 4 block grids, scale_bits, mean_bits stored,
-#             5 "state_digests" and "pinned"
-READABLE = (1, 2, 3, 4, 5)
+VERSION = 6  # 2 "figures", 3 activations ("partner"), 4 block grids, scale_bits, mean_bits stored,
+#             5 "state_digests" and "pinned", 6 per-token inputs
+READABLE = (1, 2, 3, 4, 5, 6)
 
 FIGURES = ("model_kib", "planned_kib", "mean_bits", "bops")  # Plan attributes, budget keywords
 
@@ -148,10 +152,10 @@ def plan_fields(data) -> dict:
                 raise FieldError(f"{where}.weight.axis {wd['axis']} is out of range for "
                                  f"weight_shape {list(shape)}")
             channels = shape[wd["axis"]]
-        if isinstance(wd, dict) and "block_size" in wd and version not in (4, 5):
+        if isinstance(wd, dict) and "block_size" in wd and version not in (4, 5, 6):
             raise FieldError(f"{where}.weight is a block grid, which plan files hold from version 4")
         w = grid_from_dict(wd, f"{where}.weight", channels)
-        x = grid_from_dict(entry["input"], f"{where}.input", None)
+        x = input_grid_from_dict(entry["input"], f"{where}.input", version)
         if w is None and x is None:
             raise FieldError(f"{where} has neither a weight nor an input grid")
         if activation and w is not None:

@@ -44,7 +44,8 @@ def plan_budget(table: SensitivityTable, *, model_kib: float | None = None,
                 bops: float | None = None, fixed: Mapping[str, int | tuple[int, int] | Mapping] | None = None,
                 allowed_bits: Sequence[int] | Mapping[str, Sequence[int]] | None = None,
                 assumed_input_bits: int | None = 8, rules: DeviceRules | None = None,
-                allowed_granularity: Sequence | None = None, **renamed: Any) -> Plan:
+                allowed_granularity: Sequence | None = None,
+                allowed_input_granularity: Sequence[str] | None = None, **renamed: Any) -> Plan:
     """The plan with the least predicted model-output noise that meets every budget given.
 
     Budgets (give one or more; all must hold), each named after the :class:`Plan` attribute
@@ -65,7 +66,12 @@ def plan_budget(table: SensitivityTable, *, model_kib: float | None = None,
     ``{"fc": {"bits": 4, "granularity": 128}}`` a width and a granularity (either alone too).
     ``allowed_bits`` restricts the menu of the other entries: ``{"weight": (4, 8), "input":
     (8,)}``, or a plain tuple for the weight widths; ``allowed_granularity`` (e.g.
-    ``("channel", 128)``) the granularities of entries whose granularity is not pinned.
+    ``("channel", 128)``) the granularities of entries whose granularity is not pinned. With a
+    table that measured inputs per token too (``scan(..., input_granularity=("tensor",
+    "token"))``) each planned input also gets a granularity, ``"tensor"`` or ``"token"``
+    (:attr:`Plan.input_granularity`; a token grid stores nothing and costs the BOPs of its
+    width): pin it with ``{"fc": {"input_bits": 8, "input_granularity": "token"}}``, restrict
+    it with ``allowed_input_granularity=("tensor",)``.
     ``assumed_input_bits`` is the input width counted in BOPs where inputs stay float (None:
     float32), kept on the plan under that name.
     The result is the exact optimum of the additive-noise objective. With ``rules``
@@ -95,7 +101,8 @@ def plan_budget(table: SensitivityTable, *, model_kib: float | None = None,
     budgets = check_budgets(**given)
     allowed_bits = rules_allowed_bits(table, rules, allowed_bits, assumed_input_bits)
     menu = build_menu(table, fixed=fixed, allowed_bits=allowed_bits, assumed_input_bits=assumed_input_bits,
-                      allowed_granularity=allowed_granularity, scale_bits=_scale_bits(rules))
+                      allowed_granularity=allowed_granularity, scale_bits=_scale_bits(rules),
+                      allowed_input_granularity=allowed_input_granularity)
     costs = {k: menu.costs(table, k) for k in budgets}
     pairs = {k: menu.pair_costs(table, k) for k in budgets}  # attention's products (BOPs)
     other = {k: table.unplanned_bits() if k == "model_kib" else 0
@@ -127,6 +134,7 @@ def pareto_front(table: SensitivityTable, cost: str = "model_kib", *,
                  fixed: Mapping[str, int | tuple[int, int] | Mapping] | None = None,
                  allowed_bits: Sequence[int] | Mapping[str, Sequence[int]] | None = None,
                  rules: DeviceRules | None = None, allowed_granularity: Sequence | None = None,
+                 allowed_input_granularity: Sequence[str] | None = None,
                  **renamed: Any) -> list[tuple[float, float, Plan]]:
     """Every Pareto-optimal plan for one budget: ``[(cost, predicted_sqnr_db, Plan), ...]`` by
     rising cost.
@@ -138,8 +146,8 @@ def pareto_front(table: SensitivityTable, cost: str = "model_kib", *,
     The front of a large model can hold tens of thousands of points: with more than
     ``max_points`` it is thinned to that many, spread evenly in cost, both ends kept (``None``
     keeps every point). ``assumed_input_bits``, ``fixed``, ``allowed_bits``,
-    ``allowed_granularity`` and ``rules`` as in :func:`plan_budget`: the front runs over bits
-    and granularity together.
+    ``allowed_granularity``, ``allowed_input_granularity`` and ``rules`` as in
+    :func:`plan_budget`: the front runs over bits and granularities together.
 
     >>> import numpy as np
     >>> from qwidgets import SensitivityTable
@@ -156,7 +164,8 @@ def pareto_front(table: SensitivityTable, cost: str = "model_kib", *,
     check_int(max_points, "max_points", minimum=2, none_ok=True)
     allowed_bits = rules_allowed_bits(table, rules, allowed_bits, assumed_input_bits)
     menu = build_menu(table, fixed=fixed, allowed_bits=allowed_bits, assumed_input_bits=assumed_input_bits,
-                      allowed_granularity=allowed_granularity, scale_bits=_scale_bits(rules))
+                      allowed_granularity=allowed_granularity, scale_bits=_scale_bits(rules),
+                      allowed_input_granularity=allowed_input_granularity)
     costs = menu.costs(table, cost)
     pairs = menu.pair_costs(table, cost)
     for i, j, share_i, share_j in menu.pair_shares(table, cost):  # an additive bound of the products
@@ -364,14 +373,15 @@ def _table_plan(table: SensitivityTable, menu: Menu, choice: np.ndarray) -> Plan
     picked = [menu.options[i][int(k)] for i, k in enumerate(choice)]
     q = table.quantize
     if q == "input":
-        bits = {n: ib for n, (_, ib, _) in zip(menu.names, picked, strict=True)}
+        bits = {n: o[1] for n, o in zip(menu.names, picked, strict=True)}
         return table.make_plan(bits, assumed_input_bits=menu.assumed_input_bits, predicted_sqnr_db=predicted)
-    bits = {n: ib if wb is None else wb for n, (wb, ib, _) in zip(menu.names, picked, strict=True)}
-    grans = {n: g for n, (_, _, g) in zip(menu.names, picked, strict=True)}
+    bits = {n: ib if wb is None else wb for n, (wb, ib, _, _) in zip(menu.names, picked, strict=True)}
+    grans = {n: o[2] for n, o in zip(menu.names, picked, strict=True)}
     if q == "separate":
-        inputs = {n: ib for n, (_, ib, _) in zip(menu.names, picked, strict=True)}
+        inputs = {n: o[1] for n, o in zip(menu.names, picked, strict=True)}
         return table.make_plan(bits, chosen_input_bits=inputs, predicted_sqnr_db=predicted,
                                assumed_input_bits=menu.assumed_input_bits, granularity=grans,
-                               scale_bits=menu.scale_bits)
+                               scale_bits=menu.scale_bits,
+                               input_granularity={n: o[3] for n, o in zip(menu.names, picked, strict=True)})
     return table.make_plan(bits, assumed_input_bits=menu.assumed_input_bits, predicted_sqnr_db=predicted,
                            granularity=grans, scale_bits=menu.scale_bits)

@@ -13,7 +13,7 @@ from ..core.grid import UniformGrid
 
 def synthetic_table(cls, model_sqnr_db, *, params: Sequence[int], bits: Sequence[int],
                     input_sqnr_db=None, input_bits: Sequence[int] = (), macs: Sequence[int] | None = None,
-                    names: Sequence[str] | None = None):
+                    names: Sequence[str] | None = None, input_token_sqnr_db=None):
     """See :meth:`SensitivityTable.synthetic`."""
     arr = np.asarray(model_sqnr_db, dtype=float)
     if arr.ndim != 2 or arr.shape[0] != len(params) or arr.shape[1] != len(bits):
@@ -37,10 +37,18 @@ def synthetic_table(cls, model_sqnr_db, *, params: Sequence[int], bits: Sequence
                   for i, n in enumerate(names)}
     elif input_bits:
         raise ValueError("input_bits needs input_sqnr_db")
+    more = {}
+    if input_token_sqnr_db is not None:
+        tarr = np.asarray(input_token_sqnr_db, dtype=float)
+        if iarr is None or tarr.shape != iarr.shape:
+            raise ValueError(f"input_token_sqnr_db must have input_sqnr_db's shape "
+                             f"{None if iarr is None else iarr.shape}, got {tarr.shape}")
+        more = dict(input_granularities=("tensor", "token"),
+                    input_granularity_rows={"token": {"layer": None, "model": tarr}})
     return cls(layers=names, bits=bits, quantize=quantize, method="mse", per_channel=False,
                fingerprint=fp, info=info, layer_sqnr=None, model_sqnr=arr, weight_grids=grids,
                input_grids=igrids, n_samples=1, input_bits=input_bits if iarr is not None else (),
-               input_model_sqnr=iarr)
+               input_model_sqnr=iarr, **more)
 
 
 def _hash_lines(lines) -> str:

@@ -12,10 +12,11 @@ import numpy as np
 from numpy.typing import ArrayLike
 
 from ..core.grid import UniformGrid
-from ..core.setting import LayerSetting
+from ..core.token_grid import TokenGrid
 from ..model.entries import Coverage
 from .files import read_text, write_text
 from .granularity import check_granularity, granularity_rows
+from .input_granularity import input_grid_of, input_rows
 from .plan import Plan
 from .synthetic import synthetic_table
 from .table_html import table_html, table_rows
@@ -43,7 +44,8 @@ class SensitivityTable:
                  input_layer_sqnr: np.ndarray | None = None, input_model_sqnr: np.ndarray | None = None,
                  estimate: str = "exact", notes: Sequence[str] = (), granularities: Sequence | None = None,
                  granularity_rows: Mapping | None = None, state_digests: Mapping[str, str] | None = None,
-                 confirmed: Sequence[tuple[str, str, int]] = ()):
+                 confirmed: Sequence[tuple[str, str, int]] = (), input_granularities: Sequence[str] | None = None,
+                 input_granularity_rows: Mapping | None = None):
         self.notes = tuple(str(n) for n in notes)  #: slower paths the scan took, why (also warned)
         # confirmed: cells (entry, source, bits) measured exactly after a gain estimate (confirm=)
         self.confirmed = frozenset((str(n), str(s), int(b)) for n, s, b in confirmed)
@@ -94,6 +96,9 @@ class SensitivityTable:
             self._input_sqnr[scope] = None if arr is None else np.asarray(arr, dtype=float).copy()
         self._settings: dict = {}
         self._set_granularities(granularities, granularity_rows)
+        #: input options measured: ("tensor",), or ("tensor", "token") (a scale per row, at run time)
+        self.input_granularities, self._input_more = input_rows(
+            input_granularities, input_granularity_rows, self.layers, len(self._input_bits), self._input_sqnr)
 
     def _set_granularities(self, granularities, rows) -> None:
         """The weight granularity options (the first one is the rows above) and the rows of
@@ -108,6 +113,12 @@ class SensitivityTable:
         if granularity not in self._more:
             raise KeyError(f"granularity={granularity!r} was not scanned; scanned: {list(self.granularities)}")
         return self._more[granularity], self._more[granularity]["grids"]
+
+    def _input_option(self, granularity) -> str:
+        if granularity not in (None, "tensor") and granularity not in self._input_more:
+            raise KeyError(f"input granularity={granularity!r} was not scanned; scanned: "
+                           f"{list(self.input_granularities)} (scan with input_granularity=)")
+        return granularity or "tensor"
 
     # ------------------------------------------------------------------ look-ups
     def _row(self, layer: str) -> int:
@@ -156,14 +167,17 @@ class SensitivityTable:
         scanned. ``source="input"`` of a ``quantize="separate"`` table: the input rows, one
         column per input width (NaN for entries with no input rows); on other tables the one
         set of rows, measured with the table's ``quantize``. ``granularity``: the weight rows
-        of that option of :attr:`granularities` (None: the first)."""
+        of that option of :attr:`granularities` (None: the first); of input rows, an option of
+        :attr:`input_granularities` (``"token"``: a scale per row)."""
         if scope not in ("layer", "model"):
             raise ValueError(f"scope must be 'layer' or 'model', got {scope!r}")
         source = self._source(source)
-        if source == "input" and granularity is not None:
-            raise ValueError("granularity= selects weight rows; input rows have one granularity")
-        arr = self._input_sqnr[scope] if source == "input" and self.quantize == "separate" \
-            else self._weight_rows(granularity)[0][scope]
+        if source == "input" and self._input_option(granularity) != "tensor":
+            arr = self._input_more[granularity][scope]
+        elif source == "input" and self.quantize == "separate":
+            arr = self._input_sqnr[scope]
+        else:
+            arr = self._weight_rows(granularity)[0][scope]
         return None if arr is None else arr.copy()
 
     def uncertain(self, source: str = "weight") -> np.ndarray:
@@ -176,7 +190,8 @@ class SensitivityTable:
         with only that entry quantized at ``bits``: its weights (``source="weight"``) or its
         input (``"input"``, tables scanned with ``quantize="separate"``; other tables have one
         set of rows, measured with their ``quantize``). ``granularity``: the weight grids of
-        that option of :attr:`granularities` (None: the first); NaN where the entry skipped it."""
+        that option of :attr:`granularities` (None: the first); NaN where the entry skipped it;
+        with ``source="input"``, ``"tensor"`` or ``"token"`` (:attr:`input_granularities`)."""
         arr = self.sqnr_array(scope, source, granularity)
         if arr is None:
             raise ValueError(f"the table holds no {scope}-scope SQNR; scan with scope={scope!r} or 'both'")
@@ -265,20 +280,22 @@ class SensitivityTable:
         rows = (self._weight_rows(granularity)[1] or {}).get(self.layers[self._row(layer)])
         return None if rows is None else rows[self._col(bits)]
 
-    def input_grid(self, layer: str, bits: int) -> UniformGrid | None:
+    def input_grid(self, layer: str, bits: int, granularity: str | None = None) -> UniformGrid | TokenGrid | None:
         """The input grid fitted for ``layer`` at ``bits`` (an input width of
-        :attr:`input_bits`; None if the entry's input was not scanned)."""
+        :attr:`input_bits`; None if the entry's input was not scanned); ``granularity="token"``:
+        its :class:`TokenGrid` (nothing fitted: a scale per row at run time)."""
         g = self._grids["input"]
         if g is None or g[self.layers[self._row(layer)]] is None:
             return None
-        return g[self.layers[self._row(layer)]][self._col(bits, "input")]
+        return input_grid_of(self._input_option(granularity), bits, g[self.layers[self._row(layer)]][self._col(bits, "input")])
 
     # ------------------------------------------------------------------ plans
     def make_plan(self, bits: Mapping[str, int], *,
                   chosen_input_bits: int | Mapping[str, int | None] | None = None,
                   assumed_input_bits: int | None = 8, predicted_sqnr_db: float | None = None,
                   granularity: str | int | Mapping[str, str | int | None] | None = None,
-                  scale_bits: int = 16, **renamed: Any) -> Plan:
+                  scale_bits: int = 16, input_granularity: str | Mapping[str, str | None] | None = None,
+                  **renamed: Any) -> Plan:
         """A :class:`Plan` with the scanned grids of the given width per entry.
 
         ``bits``: entry -> weight width (the input width for a ``quantize="input"`` table).
@@ -289,7 +306,9 @@ class SensitivityTable:
         float32). ``input_bits``, the previous name of both, warns once. ``granularity``: the
         weight grids' option of :attr:`granularities`, one for every entry or a dict per entry
         (None, or an entry left out: the first option); ``scale_bits``: how the plan costs
-        block scales.
+        block scales. ``input_granularity``: ``"tensor"`` (the fitted input grid, the
+        default) or ``"token"`` (:class:`TokenGrid`, an option of
+        :attr:`input_granularities`), one for every entry with a chosen input width or a dict.
 
         >>> t = SensitivityTable.synthetic(np.array([[12.0, 36.0]]), params=[64], bits=(2, 6))
         >>> t.make_plan({"layer0": 6}).bits
@@ -303,7 +322,7 @@ class SensitivityTable:
         from .table_plans import plan_from_table
 
         return plan_from_table(self, bits, chosen_input_bits, assumed_input_bits, predicted_sqnr_db,
-                               renamed, granularity, scale_bits)
+                               renamed, granularity, scale_bits, input_granularity)
 
     def _entry_info(self, name: str) -> dict:
         """What a plan records of an entry (cached: a front's plans share it; read-only)."""
@@ -316,34 +335,6 @@ class SensitivityTable:
                 d["partner"] = self.partner(name)
             self._settings[key] = d
         return d
-
-    def _stored(self, name: str) -> int:
-        """:meth:`stored_bits`, cached (a front's plans each sum it over every entry)."""
-        key = ("stored", name)
-        v = self._settings.get(key)
-        if v is None:
-            v = self._settings[key] = self.stored_bits(name)
-        return v
-
-    def _shape(self, name: str) -> tuple:
-        return tuple(int(d) for d in self._info[name]["weight_shape"])
-
-    def _setting(self, name: str, b: int, ib: int | None, gran=None) -> LayerSetting:
-        """The LayerSetting of one entry's choice (cached: plans of a front share them)."""
-        key = (name, b, ib, gran)
-        s = self._settings.get(key)
-        if s is None:
-            if self.quantize == "input" or self.kind(name) == "activation":  # no weight grid
-                s = LayerSetting(input=self.input_grid(name, b if ib is None else ib))
-            else:
-                w = self.weight_grid(name, self.bits[self._col(b)], granularity=gran)
-                if w is None and self._grids["weight"] is not None:
-                    raise ValueError(f"{name!r} has no {gran!r} grids: it skipped that granularity "
-                                     "in the scan (see the table's coverage)")
-                x = None if ib is None else self.input_grid(name, ib)
-                s = LayerSetting(weight=w, input=x)
-            self._settings[key] = s
-        return s
 
     # ------------------------------------------------------------------ display
     def to_rows(self) -> list[dict]:
@@ -382,12 +373,13 @@ class SensitivityTable:
     @classmethod
     def synthetic(cls, model_sqnr_db: ArrayLike, *, params: Sequence[int], bits: Sequence[int],
                   input_sqnr_db: ArrayLike | None = None, input_bits: Sequence[int] = (), macs: Sequence[int] | None = None,
-                  names: Sequence[str] | None = None) -> SensitivityTable:
+                  names: Sequence[str] | None = None, input_token_sqnr_db: ArrayLike | None = None) -> SensitivityTable:
         """A table from given model-scope SQNRs (for planning experiments, tests and benchmarks).
 
         ``model_sqnr_db``: (entries x bits) weight rows. With ``input_sqnr_db`` (entries x
         input_bits; a row of NaN: an entry with no input rows) the table is a ``"separate"``
-        one. Each entry gets a ``(params, 1)`` weight; every grid is per tensor, of scale 1.
+        one (``input_token_sqnr_db``, same shape: its per-token input rows). Each entry gets a
+        ``(params, 1)`` weight; every grid is per tensor, of scale 1.
 
         >>> t = SensitivityTable.synthetic([[10.0, 30.0]], params=[100], bits=(4, 8),
         ...                                input_sqnr_db=[[25.0, 35.0]], input_bits=(6, 8))
@@ -395,4 +387,5 @@ class SensitivityTable:
         ('separate', (6, 8), 25.0)
         """
         return synthetic_table(cls, model_sqnr_db, params=params, bits=bits, input_sqnr_db=input_sqnr_db,
-                               input_bits=input_bits, macs=macs, names=names)
+                               input_bits=input_bits, macs=macs, names=names,
+                               input_token_sqnr_db=input_token_sqnr_db)

@@ -7,6 +7,7 @@ import math
 
 from .fields import FieldError, NonFinite, grid_to_dict, json_db
 from .granularity import option_label
+from .input_granularity import input_rows_to_json
 from .table_schema import TABLE_FORMAT, TABLE_VERSION, table_fields
 
 
@@ -40,8 +41,12 @@ def table_to_dict(self) -> dict:
                 for scope in ("layer", "model")} | {"weight_grids": None if more["grids"] is None else
                                                      [grid_to_dict(x) for x in more["grids"][name]]}
                 for opt, more in self._more.items()}
+        if self._input_more and self.has_input_rows(name):  # per-token input rows
+            entry["input_granularity_rows"] = input_rows_to_json(self._input_more, i)
         layers.append(entry)
     extra = {} if self.state_digests is None else {"state_digests": dict(self.state_digests)}
+    if self.input_granularities != ("tensor",):
+        extra["input_granularities"] = list(self.input_granularities)
     if self.confirmed:
         extra["confirmed"] = [list(c) for c in sorted(self.confirmed)]
     return {**extra, "format": TABLE_FORMAT, "version": TABLE_VERSION, "bits": list(self.bits),

@@ -22,7 +22,10 @@ is the rows above, default ``["channel"]``, or ``["tensor"]`` without per_channe
 it names more than one, each entry's granularity_rows: for every other option an object of
 layer_sqnr_db / model_sqnr_db (null values where the entry skipped the option) and
 weight_grids (block grids with block_size and the shape of their scales); coverage notes.
-Versions 1 to 3 still read (one granularity).
+Versions 1 to 3 still read (one granularity). Version 6 added, optional: a top-level
+input_granularities (``["tensor", "token"]`` when inputs were also measured per token) and each
+entry's input_granularity_rows (``{"token": {"layer_sqnr_db", "model_sqnr_db"}}``, one value
+per input width; absent for entries without input rows).
 """
 
 from __future__ import annotations
@@ -46,15 +49,16 @@ from .fields import (
     string_list_field,
 )
 from .granularity import grid_options, option_from_label, option_label
+from .input_granularity import check_input_granularity, input_rows_from_json
 
 QUANTIZE_MODES = ("weight", "input", "both", "separate")
 SCOPES = ("layer", "model", "both")
 ESTIMATES = ("exact", "gain")  # how a table's model scope was found (see scan)
 TABLE_FORMAT = "qwidgets sensitivity table"
-TABLE_VERSION = 5  # 2 added input_bits and the input rows of quantize="separate", 3 activation
+TABLE_VERSION = 6  # 2 added input_bits and the input rows of quantize="separate", 3 activation
 # entries (weight_shape [], the optional partner), 4 granularities, 5 the optional state_digests
-# and confirmed; every version still reads
-TABLE_READABLE = (1, 2, 3, 4, 5)
+# and confirmed, 6 per-token input rows; every version still reads
+TABLE_READABLE = (1, 2, 3, 4, 5, 6)
 
 _TOP = ("format", "version", "bits", "quantize", "method", "per_channel", "fingerprint",
         "n_samples", "layers")
@@ -73,6 +77,7 @@ def table_fields(d) -> dict:
     keys = _TOP if version == 1 else _TOP + ("input_bits",)
     more = {"granularities"} if version != 1 and version not in (2, 3) else set()  # 4: granularities
     more |= {"state_digests", "confirmed"} if version not in (1, 2, 3, 4) else set()  # 5
+    more |= {"input_granularities"} if version not in (1, 2, 3, 4, 5) else set()  # 6
     if not set(keys) <= set(d) <= set(keys) | {"coverage", "estimate", "notes"} | more:
         raise FieldError(f"expected an object with fields {list(keys)} (and optionally coverage, "
                          "estimate, notes)")
@@ -93,7 +98,8 @@ def table_fields(d) -> dict:
     if separate != bool(ibits):
         raise FieldError("input_bits must be non-empty exactly when quantize is 'separate'")
     entry_keys = set(_ENTRY) | ({"input_layer_sqnr_db", "input_model_sqnr_db"} if version != 1 else set())
-    optional = _ENTRY_OPTIONAL if version in (3, 4, 5) else _ENTRY_OPTIONAL[:-1]  # 3 added partner
+    optional = _ENTRY_OPTIONAL if version in (3, 4, 5, 6) else _ENTRY_OPTIONAL[:-1]  # 3 added partner
+    optional += ("input_granularity_rows",) if "input_granularities" in more else ()
     if not isinstance(d["layers"], list) or not d["layers"]:
         raise FieldError("layers must be a non-empty list")
     names, info, sq, grids = [], {}, {"layer": [], "model": []}, {"weight": {}, "input": {}}
@@ -137,6 +143,12 @@ def table_fields(d) -> dict:
             raise FieldError(f"input_{scope}_sqnr_db given without {scope}_sqnr_db")
     grans = _granularities(d)
     more = _granularity_rows(d["layers"], names, info, grans, bits, arrays)
+    try:
+        igrans = check_input_granularity(d.get("input_granularities", ["tensor"]), "input_granularities")
+    except (TypeError, ValueError) as e:
+        raise FieldError(str(e)) from None
+    irows = input_rows_from_json(d["layers"], names, igrans, len(ibits),
+                                 [n in grids["input"] for n in names], arrays) if separate else {}
     if separate:
         input_grids = {n: grids["input"].get(n) for n in names}
     else:
@@ -151,7 +163,8 @@ def table_fields(d) -> dict:
         input_layer_sqnr=arrays.get("input_layer"), input_model_sqnr=arrays.get("input_model"),
         notes=notes, granularities=grans, granularity_rows=more,
         state_digests=_state_digests(d.get("state_digests")),
-        confirmed=_confirmed(d.get("confirmed", []), names, bits, ibits))
+        confirmed=_confirmed(d.get("confirmed", []), names, bits, ibits),
+        input_granularities=igrans, input_granularity_rows=irows)
 
 
 def _confirmed(v, names, bits, ibits) -> list:
@@ -267,7 +280,7 @@ def _coverage_from_json(c, version=TABLE_VERSION):
         return None
     if not isinstance(c, dict) or not {"scanned", "total", "skipped", "total_bits"} <= set(c) <= {
             "scanned", "total", "skipped", "total_bits", "float_activations"} | (
-            {"skipped_options"} if version in (4, 5) else set()):
+            {"skipped_options"} if version in (4, 5, 6) else set()):
         raise FieldError("coverage must be an object with fields scanned, total, skipped, total_bits "
                          "(and optionally float_activations, skipped_options)")
     floats = c.get("float_activations", [])
