@@ -310,3 +310,46 @@ def test_attention_activations_take_token_grids_in_apply_and_onnx(tmp_path):
     for got in (ReferenceEvaluator(str(path)).run(None, feed)[0], _ort(path).run(None, feed)[0]):
         # float32 attention and matmuls summed in another order
         np.testing.assert_allclose(got, want, rtol=1e-5, atol=1e-5 * float(np.abs(want).max()))
+
+
+def test_table_views_show_token_rows_and_device_rules_decide(token_setup):
+    from qwidgets import DeviceRules
+
+    net, x, t = token_setup
+    rows = [r for r in t.to_rows() if r.get("input_granularity") == "token"]
+    assert len(rows) == len(t.layers) * len(t.input_bits)
+    assert rows[0]["model_sqnr_db"] == t.sqnr_db(rows[0]["layer"], rows[0]["bits"], source="input", granularity="token")
+    assert "a scale per token" in t.to_html()
+    with pytest.raises(ValueError, match="per_tensor_inputs=True"):
+        scan(net, x[:4], bits=(8,), quantize="separate", input_bits=(8,), progress=False,
+             rules=DeviceRules(), input_granularity=("tensor", "token"))
+    ok = scan(net, x[:4], bits=(8,), quantize="separate", input_bits=(8,), progress=False, scope="layer",
+              rules=DeviceRules(per_tensor_inputs=False), input_granularity=("tensor", "token"))
+    assert ok.input_granularities == ("tensor", "token")
+    assert DeviceRules().violations(TokenGrid(8), "input") and not \
+        DeviceRules(per_tensor_inputs=False).violations(TokenGrid(8), "input")
+
+
+def test_gain_estimate_and_split_scan_measure_token_rows(token_setup):
+    from concurrent.futures import ThreadPoolExecutor
+
+    net, x, t = token_setup
+    kw = dict(bits=(4, 8), quantize="separate", input_bits=(4, 8), progress=False,
+              granularity=("channel", 8), input_granularity=("tensor", "token"))
+    with ThreadPoolExecutor(2) as pool:
+        split = scan(net, x, executor=pool, **kw)
+    np.testing.assert_array_equal(split.sqnr_array("model", "input", "token"), t.sqnr_array("model", "input", "token"))
+    gain = scan(net, x, estimate="gain", **kw)
+    # first-order estimate of the same noise: close at 8 bits (common practice: fine grids add noise linearly)
+    np.testing.assert_allclose(gain.sqnr_array("model", "input", "token")[:, 1],
+                               t.sqnr_array("model", "input", "token")[:, 1], atol=1.0)
+
+
+def test_check_onnx_accepts_the_token_file(token_setup, tmp_path):
+    from qwidgets import check_onnx
+
+    net, x, t = token_setup
+    p = _mixed_plan(t)
+    export_onnx(net, p, tmp_path / "m.onnx", x[:2])
+    c = check_onnx(tmp_path / "m.onnx", net, p, x)
+    assert c.matches, c

@@ -339,7 +339,8 @@ class SensitivityTable:
     # ------------------------------------------------------------------ display
     def to_rows(self) -> list[dict]:
         """One dict per (layer, bit width): layer, type, bits, params, macs, layer / model SQNR
-        (``quantize="separate"``: weight rows, then input rows, with a ``source`` key)."""
+        (``quantize="separate"``: weight rows, then input rows, with a ``source`` key; input rows
+        of a table with token rows also say their ``input_granularity``)."""
         return table_rows(self)
 
     def __repr__(self) -> str:

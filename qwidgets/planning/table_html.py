@@ -11,13 +11,13 @@ def table_html(table) -> str:
     """The table as HTML: model-scope SQNR (else layer scope) per entry and width, shaded; a
     table scanned with ``quantize="separate"`` shows its weight rows, then its input rows."""
     scope = "model" if "model" in table.scopes else "layer"
-    blocks = [("weight", table.bits)]
+    blocks = [("weight", table.bits, None)]
     if table.quantize == "separate":
-        blocks.append(("input", table.input_bits))
+        blocks += [("input", table.input_bits, g) for g in table.input_granularities]
     out = []
-    for source, widths in blocks:
-        arr = table.sqnr_array(scope, source)
-        marks = cell_marks(table, scope, source)
+    for source, widths, gran in blocks:
+        arr = table.sqnr_array(scope, source, None if gran == "tensor" else gran)
+        marks = cell_marks(table, scope, source) if gran != "token" else [[""] * len(widths)] * len(arr)
         head = "".join(f"<th>{b} bits</th>" for b in widths)
         ok = np.isfinite(arr)
         lo, hi = (float(arr[ok].min()), float(arr[ok].max())) if ok.any() else (0.0, 1.0)
@@ -39,7 +39,8 @@ def table_html(table) -> str:
                         f'<td style="text-align:right">{table.params(name):,}</td>'
                         f'<td style="text-align:right">{table.macs(name):,}</td>' + "".join(cells) + "</tr>")
         what = (f"{table.quantize} quantized" if table.quantize != "separate"
-                else f"{source}s quantized on their own")
+                else f"{source}s quantized on their own" + (", a scale per token (row), computed at run time"
+                                                            if gran == "token" else ""))
         how = f" ({how_measured(table, scope)})" if how_measured(table, scope) else ""
         out.append(f"<div><b>{scope.capitalize()}-output SQNR (dB)</b>{how}, {what}, "
                    f"one layer at a time ({table.n_samples} samples)<table>"
@@ -97,17 +98,17 @@ def fmt_db(v: float) -> str:
 
 def table_rows(table) -> list[dict]:
     """:meth:`SensitivityTable.to_rows`: one dict per (entry, width)."""
-    sources = [("weight", table.bits)]
+    sources = [("weight", table.bits, None)]
     if table.quantize == "separate":
-        sources.append(("input", table.input_bits))
-    arrays = {source: {scope: table.sqnr_array(scope, source) for scope in ("layer", "model")}
-              for source, _ in sources}
+        sources += [("input", table.input_bits, g) for g in table.input_granularities]
+    arrays = {(source, g): {scope: table.sqnr_array(scope, source, None if g == "tensor" else g)
+                            for scope in ("layer", "model")} for source, _, g in sources}
     rows = []
     for i, name in enumerate(table.layers):
-        for source, widths in sources:
+        for source, widths, gran in sources:
             if source == "input" and not table.has_input_rows(name):
                 continue
-            arrs = arrays[source]
+            arrs = arrays[(source, gran)]
             for j, b in enumerate(widths):
                 row = {
                     "layer": name,
@@ -120,5 +121,7 @@ def table_rows(table) -> list[dict]:
                 }
                 if table.quantize == "separate":
                     row["source"] = source
+                if gran is not None and len(table.input_granularities) > 1:
+                    row["input_granularity"] = gran  # the input rows of a table with token rows
                 rows.append(row)
     return rows
