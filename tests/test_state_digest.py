@@ -94,7 +94,7 @@ def test_state_digests_survive_both_json_files(tmp_path):
     assert set(plan.state_digests) == floats  # every persistent float entry, nothing else
     # a version 4 table file (before the field) still loads, without digests
     d = json.loads((tmp_path / "t.json").read_text())
-    assert d["version"] == 5
+    assert d["version"] == 6
     d["version"] = 4
     del d["state_digests"]
     (tmp_path / "v2.json").write_text(json.dumps(d))
