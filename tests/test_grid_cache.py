@@ -1,6 +1,7 @@
 """Fitted grids are cached per process: a second scan of the same model does not refit.
 
-References: the grids fitted afresh (RangeFitter.fit_many, counted), and the first scan's table.
+References: the grids fitted afresh (each fitter handed to fit_together, the one place grids are
+fitted for the cache, counted with its widths), and the first scan's table.
 """
 
 from __future__ import annotations
@@ -8,7 +9,7 @@ from __future__ import annotations
 import torch
 from torch import nn
 
-from qwidgets.core import ranges
+from qwidgets.core import grid_cache, ranges
 from qwidgets.core.grid_cache import GRID_CACHE, GridCache, fit_cached, tensor_digest
 from qwidgets.core.ranges import RangeFitter
 from qwidgets.planning.scanning import scan
@@ -16,13 +17,13 @@ from qwidgets.planning.scanning import scan
 
 def _count_fits(monkeypatch):
     calls = []
-    original = ranges.RangeFitter.fit_many
+    original = ranges.fit_together
 
-    def counted(self, bits):
-        calls.append(tuple(bits))
-        return original(self, bits)
+    def counted(fitters, bits):
+        calls.extend(tuple(bits) for _ in fitters)
+        return original(fitters, bits)
 
-    monkeypatch.setattr(ranges.RangeFitter, "fit_many", counted)
+    monkeypatch.setattr(grid_cache, "fit_together", counted)
     return calls
 
 

@@ -16,7 +16,7 @@ import torch
 from qwidgets import UniformGrid, fit_range, quantize
 from qwidgets.core import clip_search
 from qwidgets.core.clip_search import GridSpec
-from qwidgets.core.ranges import RangeFitter, fit_ranges
+from qwidgets.core.ranges import RangeFitter, fit_ranges, fit_together
 
 GOLD = (math.sqrt(5.0) - 1.0) / 2.0
 
@@ -161,3 +161,23 @@ def test_fit_many_equals_fit_per_width_and_fit_range():
     for b, g in zip((8, 2, 5), many, strict=True):
         assert torch.equal(g.scale_tensor(), fitter.fit(b).scale_tensor())
         assert torch.equal(g.scale_tensor(), fit_range(x, b, "mse", axis=0).scale_tensor())
+
+
+@pytest.mark.parametrize("symmetric", [True, False])
+def test_fits_searched_together_equal_each_fit_alone(symmetric):
+    # three tensors with 300 values a row (one with an all-zero row, which takes its own tensor's
+    # widest extent), one with 40, one per tensor: the grids of fit_together are each fit's own
+    a = _values((5, 300), "heavy", seed=9)
+    a[2] = 0.0
+    tensors = [a, _values((7, 300), "randn", seed=10), _values((40,), "relu", seed=11) - 0.5,
+               _values((3, 40), "randn", seed=12), _values((2, 300), "relu", seed=13)]
+    axes = [0, 0, None, 0, 0]
+    fitters = [RangeFitter(t, "mse", axis=ax, symmetric=symmetric) for t, ax in zip(tensors, axes, strict=True)]
+    assert len({f.group_key() for f in fitters}) == 3  # 300 values signed, 300 unsigned, 40
+    together = fit_together(fitters, (2, 5, 8))
+    for t, ax, grids in zip(tensors, axes, together, strict=True):
+        alone = RangeFitter(t, "mse", axis=ax, symmetric=symmetric).fit_many((2, 5, 8))
+        for g, h in zip(grids, alone, strict=True):
+            assert torch.equal(g.scale_tensor(), h.scale_tensor())
+            assert torch.equal(g.offset_tensor(), h.offset_tensor())
+            assert g.axis == h.axis and g.signed == h.signed

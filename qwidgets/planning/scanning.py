@@ -52,7 +52,7 @@ from ..model.usage import entries_on
 from .confirm import ScanNote, check_confirm, noted, scanned_table  # noqa: F401 (ScanNote: public here)
 from .device_checks import scan_bits
 from .distribute import merge_shares, worker_count
-from .granularity import fit_option, scan_granularity, split_granularities
+from .granularity import fit_options, scan_granularity, split_granularities
 from .input_granularity import scan_input_granularity, split_token_columns
 from .model_scope import model_scope as _model_scope
 from .passes import (
@@ -261,16 +261,19 @@ def _scan_entries(model, source, first, entries, usage, options, progress, share
     grans = options["granularity"] if qw else (None,)
     skipped_opts = []  # (entry, why a granularity option was skipped)
     with torch_threads("fit"):  # many small operations: one thread (see threads.py)
+        weights = {f.entry.name: f.entry.parameter(model).detach() for f in facts if f.entry.kind != "activation"}
+        for f in facts:  # the values checked once here (a NaN / inf names the weight)
+            if qw and f.entry.name in weights:
+                finite_check(weights[f.entry.name], f"weight {f.entry.param!r}")
+        # per granularity option, every width of every weight together (None: the entry skips it)
+        fitted = fit_options([(weights[f.entry.name], f.entry, options["digests"].get(f.entry.param))
+                              for f in facts if f.entry.name in weights], grans, bits, method, rules,
+                             skipped_opts) if qw else {}
         for f in facts:
             e = f.entry
             act = e.kind == "activation"
-            w = None if act else e.parameter(model).detach()
-            # per granularity option, every width at once (fit_option; None: the entry skips it);
-            # the values checked once here (a NaN / inf names the weight)
-            if qw and not act:
-                finite_check(w, f"weight {e.param!r}")
-            wg = [fit_option(w, e, opt, bits, method, rules, skipped_opts, options["digests"].get(e.param))
-                  for opt in grans] if (qw and not act) else None
+            w = weights.get(e.name)
+            wg = fitted.get(e.name)
             ig = [f.inputs.fit(b, method, rules=rules, role="input") for b in bits] \
                 if (qi and f.has_input) else None
             wgrids[e.name] = wg
