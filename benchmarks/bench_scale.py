@@ -90,9 +90,10 @@ class ResNet18Layout(nn.Module):
 WIDTHS = (16, 32, 64, 128)  # a quarter of ResNet-18's
 
 
-def make_model() -> nn.Module:
+def make_model(widths=WIDTHS) -> nn.Module:
+    """The residual network at ``widths``: seeded weights, BatchNorm with non-trivial statistics."""
     torch.manual_seed(0)
-    model = ResNet18Layout(WIDTHS)
+    model = ResNet18Layout(widths)
     with torch.no_grad():
         for m in model.modules():
             if isinstance(m, nn.BatchNorm2d):
@@ -101,8 +102,8 @@ def make_model() -> nn.Module:
     return model.eval()
 
 
-def images(n: int) -> torch.Tensor:
-    return torch.randn(n, 3, SIZE, SIZE, generator=torch.Generator().manual_seed(1))
+def images(n: int, size: int = SIZE) -> torch.Tensor:
+    return torch.randn(n, 3, size, size, generator=torch.Generator().manual_seed(1))
 
 
 def naive_loop(model: nn.Module, x, table) -> dict:
@@ -125,19 +126,10 @@ def naive_loop(model: nn.Module, x, table) -> dict:
 def model_cases() -> dict:
     """name -> (description, make model, make data, timing rounds)."""
     def resnet(widths):
-        def make():
-            torch.manual_seed(0)
-            model = ResNet18Layout(widths)
-            with torch.no_grad():
-                for m in model.modules():
-                    if isinstance(m, nn.BatchNorm2d):
-                        m.running_mean.uniform_(-0.1, 0.1)
-                        m.running_var.uniform_(0.5, 1.5)
-            return model.eval()
-        return make
+        return lambda: make_model(widths)
 
     def imgs(n, size):
-        return lambda: torch.randn(n, 3, size, size, generator=torch.Generator().manual_seed(1))
+        return lambda: images(n, size)
 
     return {
         "cnn48": ("residual CNN (ResNet-18 layout), widths 16-128, 16 images 48x48",

@@ -34,14 +34,12 @@ class GridSpec:
         self.qmin = -(2 ** (bits - 1)) if signed else 0
         self.qmax = 2 ** (bits - 1) - 1 if signed else 2**bits - 1
         self.n = 2**bits
+        self.sym_div = max(self.qmax, 1) if style == "midtread" else (self.n // 2 if signed else self.n)
+        self.steps = self.n - 1 if style == "midtread" else self.n  # gaps between levels / bins
 
     def symmetric_grid(self, r: torch.Tensor):
         """(scale, offset) for the clipping extent ``r`` > 0 (tensors of r's shape)."""
-        if self.style == "midtread":
-            scale = r / max(self.qmax, 1)
-            return scale, torch.zeros_like(scale)
-        scale = r / (self.n // 2 if self.signed else self.n)
-        return scale, scale / 2
+        return _symmetric_grid(r, self.sym_div, self.style)
 
     def asymmetric_grid(self, lo: torch.Tensor, hi: torch.Tensor):
         """(scale, offset) for the range ``[lo, hi]`` with lo <= 0 <= hi and hi > lo.
@@ -50,28 +48,7 @@ class GridSpec:
         ``nb`` steps below zero and the rest above, ``scale = max(-lo / nb, hi / (steps - nb))``,
         minimised over the integer ``nb`` (at the floor or ceiling of where the two cross).
         """
-        steps = self.n - 1 if self.style == "midtread" else self.n  # gaps between levels / bins
-        cross = steps * (-lo) / (hi - lo)
-        best_s = best_nb = None
-        for nb in (torch.floor(cross), torch.ceil(cross)):
-            nb = nb.clamp(0, steps)
-            below = torch.where(nb > 0, -lo / nb.clamp(min=1), torch.where(lo < 0, math.inf, 0.0))
-            above = torch.where(nb < steps, hi / (steps - nb).clamp(min=1),
-                                torch.where(hi > 0, math.inf, 0.0))
-            s = torch.maximum(below, above)
-            if best_s is None:
-                best_s, best_nb = s, nb
-            else:
-                better = s < best_s
-                best_s, best_nb = torch.where(better, s, best_s), torch.where(better, nb, best_nb)
-        # 1-bit mid-tread ({0, s} or {-s, 0}) cannot cover both signs: keep the larger side
-        stuck = torch.isinf(best_s)
-        if bool(stuck.any()):
-            best_nb = torch.where(stuck, torch.where(-lo >= hi, steps, 0).to(best_nb), best_nb)
-            best_s = torch.where(stuck, torch.maximum(-lo, hi) / steps, best_s)
-        if self.style == "midtread":  # integer zero point Z = qmin + nb
-            return best_s, -(self.qmin + best_nb) * best_s
-        return best_s, (0.5 - best_nb - self.qmin) * best_s  # zero on the edge of bin nb
+        return _asymmetric_grid(lo, hi, self.steps, self.qmin, self.style)
 
 
 class GridSpecs:
@@ -79,48 +56,56 @@ class GridSpecs:
 
     ``symmetric_grid`` / ``asymmetric_grid`` take tensors whose second-to-last axis runs over the
     widths, ``(rows, widths, candidates)``, and give each width exactly what its ``GridSpec``
-    gives (the same float64 operations, the width's constants as tensors).
+    gives (the same float64 operations, the width's constants as a column of tensors).
     """
 
     def __init__(self, bits, signed: bool, symmetric: bool, style: str, device=None):
         self.specs = [GridSpec(b, signed, symmetric, style) for b in bits]
         self.signed, self.symmetric, self.style = signed, symmetric, style
 
-        def col(values):
-            return torch.tensor([[float(v)] for v in values], dtype=torch.float64, device=device)
+        def col(name):
+            return torch.tensor([[float(getattr(s, name))] for s in self.specs], dtype=torch.float64,
+                                device=device)
 
-        sp = self.specs
-        self.qmin, self.qmax = col([s.qmin for s in sp]), col([s.qmax for s in sp])
-        self.sym_div = col([max(s.qmax, 1) if style == "midtread" else (s.n // 2 if signed else s.n) for s in sp])
-        self.steps = col([s.n - 1 if style == "midtread" else s.n for s in sp])
-        self.layout = Layout([s.qmin for s in sp], [s.qmax for s in sp], device)
+        self.qmin, self.qmax, self.sym_div, self.steps = col("qmin"), col("qmax"), col("sym_div"), col("steps")
+        self.layout = Layout([s.qmin for s in self.specs], [s.qmax for s in self.specs], device)
 
     def symmetric_grid(self, r: torch.Tensor):
-        scale = r / self.sym_div
-        return scale, (torch.zeros_like(scale) if self.style == "midtread" else scale / 2)
+        return _symmetric_grid(r, self.sym_div, self.style)
 
     def asymmetric_grid(self, lo: torch.Tensor, hi: torch.Tensor):
-        steps = self.steps
-        cross = steps * (-lo) / (hi - lo)
-        best_s = best_nb = None
-        for nb in (torch.floor(cross), torch.ceil(cross)):
-            nb = torch.minimum(nb.clamp(min=0), steps)
-            below = torch.where(nb > 0, -lo / nb.clamp(min=1), torch.where(lo < 0, math.inf, 0.0))
-            above = torch.where(nb < steps, hi / (steps - nb).clamp(min=1),
-                                torch.where(hi > 0, math.inf, 0.0))
-            s = torch.maximum(below, above)
-            if best_s is None:
-                best_s, best_nb = s, nb
-            else:
-                better = s < best_s
-                best_s, best_nb = torch.where(better, s, best_s), torch.where(better, nb, best_nb)
-        stuck = torch.isinf(best_s)
-        if bool(stuck.any()):
-            best_nb = torch.where(stuck, torch.where(-lo >= hi, steps, 0.0).to(best_nb), best_nb)
-            best_s = torch.where(stuck, torch.maximum(-lo, hi) / steps, best_s)
-        if self.style == "midtread":
-            return best_s, -(self.qmin + best_nb) * best_s
-        return best_s, (0.5 - best_nb - self.qmin) * best_s
+        return _asymmetric_grid(lo, hi, self.steps, self.qmin, self.style)
+
+
+def _symmetric_grid(r, sym_div, style: str):
+    """(scale, offset) of extent ``r``; ``sym_div``: a number, or a column of one per width."""
+    scale = r / sym_div
+    return scale, (torch.zeros_like(scale) if style == "midtread" else scale / 2)
+
+
+def _asymmetric_grid(lo, hi, steps, qmin, style: str):
+    """(scale, offset) of the range [lo, hi] (see :meth:`GridSpec.asymmetric_grid`); ``steps`` and
+    ``qmin``: numbers, or columns of one per width (the same float64 operations either way)."""
+    cross = steps * (-lo) / (hi - lo)
+    best_s = best_nb = None
+    for nb in (torch.floor(cross), torch.ceil(cross)):
+        nb = torch.minimum(nb.clamp(min=0), torch.as_tensor(steps, dtype=nb.dtype, device=nb.device))
+        below = torch.where(nb > 0, -lo / nb.clamp(min=1), torch.where(lo < 0, math.inf, 0.0))
+        above = torch.where(nb < steps, hi / (steps - nb).clamp(min=1), torch.where(hi > 0, math.inf, 0.0))
+        s = torch.maximum(below, above)
+        if best_s is None:
+            best_s, best_nb = s, nb
+        else:
+            better = s < best_s
+            best_s, best_nb = torch.where(better, s, best_s), torch.where(better, nb, best_nb)
+    # 1-bit mid-tread ({0, s} or {-s, 0}) cannot cover both signs: keep the larger side
+    stuck = torch.isinf(best_s)
+    if bool(stuck.any()):
+        best_nb = torch.where(stuck, torch.where(-lo >= hi, steps, 0.0).to(best_nb), best_nb)
+        best_s = torch.where(stuck, torch.maximum(-lo, hi) / steps, best_s)
+    if style == "midtread":  # integer zero point Z = qmin + nb
+        return best_s, -(qmin + best_nb) * best_s
+    return best_s, (0.5 - best_nb - qmin) * best_s  # zero on the edge of bin nb
 
 
 def search_sample(xf: torch.Tensor) -> torch.Tensor:
@@ -216,12 +201,14 @@ class _Objective:
         self.slack = (_PRUNE_SLACK * rows.total2)[:, None, None]
 
     def error(self, t: torch.Tensor) -> torch.Tensor:
-        s, o = self.make(t.reshape(self.c, self.w, -1))
-        return self.rows.sse(self.specs.layout, s, o).reshape(self.c * self.w, -1)
+        return self._measured(self.rows.sse, t)
 
     def lower(self, t: torch.Tensor) -> torch.Tensor:
+        return self._measured(self.rows.clip_sse, t, self.slack)
+
+    def _measured(self, measure, t: torch.Tensor, less=0.0) -> torch.Tensor:
         s, o = self.make(t.reshape(self.c, self.w, -1))
-        return (self.rows.clip_sse(self.specs.layout, s, o) - self.slack).reshape(self.c * self.w, -1)
+        return (measure(self.specs.layout, s, o) - less).reshape(self.c * self.w, -1)
 
     def search(self) -> torch.Tensor:
         """The best fraction per (row, width), shape (rows, widths)."""
@@ -254,12 +241,16 @@ def search_asymmetric(rows: SortedRows, specs: GridSpecs, lo0: torch.Tensor, hi0
         return rows.sse(specs.layout, *grid(lo[..., None], hi[..., None]))[..., 0]
 
     t = _Objective(rows, specs, lambda t: grid(t * lo0c, t * hi0c)).search()
-    lo, hi = t * lo0[:, None], t * hi0[:, None]
-    # coordinate steps: each end searched over (0, its min-max value], the other held
-    t = _Objective(rows, specs, lambda t: grid(lo[..., None], t * hi0c)).search()
-    hi_new = t * hi0[:, None]
-    hi = torch.where(sse(lo, hi) <= sse(lo, hi_new), hi, hi_new)
-    t = _Objective(rows, specs, lambda t: grid(t * lo0c, hi[..., None])).search()
-    lo_new = t * lo0[:, None]
-    lo = torch.where(sse(lo, hi) <= sse(lo_new, hi), lo, lo_new)
+    ends = [t * lo0[:, None], t * hi0[:, None]]
+    # coordinate steps: each end searched over (0, its min-max value], the other held (hi first)
+    for k in (1, 0):
+        end0 = (lo0, hi0)[k]
+
+        def moved(t, k=k, end0=end0):
+            return [t * end0[:, None, None] if j == k else ends[j][..., None] for j in (0, 1)]
+
+        new = list(ends)
+        new[k] = _Objective(rows, specs, lambda t: grid(*moved(t))).search() * end0[:, None]
+        ends[k] = torch.where(sse(*ends) <= sse(*new), ends[k], new[k])
+    lo, hi = ends
     return lo, torch.maximum(hi, lo + tiny)
