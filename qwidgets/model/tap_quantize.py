@@ -57,18 +57,22 @@ class QuantizeTap(EachTap):
 
     ``grids``: entry -> input grid (only entries with :func:`~.entries.tapped` inputs);
     ``check``: scan each value for NaN / inf before quantizing it (except tensors whose ``id``
-    is in ``checked``).
+    is in ``checked``); ``observe(name, value, quantized)``: called on each quantized value.
     """
 
-    def __init__(self, grids: Mapping[Entry, UniformGrid], *, check: bool = True, checked=frozenset()):
+    def __init__(self, grids: Mapping[Entry, UniformGrid], *, check: bool = True, checked=frozenset(),
+                 observe=None):
         super().__init__(grids, self._quantize)
         self.grids = {e.name: g for e, g in grids.items()}
-        self.check, self.checked = check, checked
+        self.check, self.checked, self.observe = check, checked, observe
 
     def _quantize(self, name, t):
         if self.check and id(t) not in self.checked and t.is_floating_point():
             finite_check(t, f"the input of {name!r}", LayerInputError)
-        return quantize_unchecked(t, self.grids[name])
+        q = quantize_unchecked(t, self.grids[name])
+        if self.observe is not None:
+            self.observe(name, t, q)
+        return q
 
 
 def tapped_inputs(settings: Mapping) -> dict:

@@ -100,8 +100,9 @@ class _QuantizeInput:
     """Forward pre-hook of a planned copy: fake-quantizes the entry's inputs (a layer's first
     argument; an attention projection's query / key / value)."""
 
-    def __init__(self, entry, grid: UniformGrid, checked, model):
+    def __init__(self, entry, grid: UniformGrid, checked, model, observe=None):
         self.entry, self.grid, self.checked, self.model = entry, grid, checked, model
+        self.observe = observe
 
     def __call__(self, module, args, kwargs):
         return replace_inputs(self.entry, args, kwargs, self._quantize)
@@ -109,7 +110,10 @@ class _QuantizeInput:
     def _quantize(self, v):
         if id(v) not in self.checked:  # the caller checked these values (a batch of evaluate_plan)
             check_layer_input(v, f"the input of layer {self.entry.name!r}", self.model)
-        return quantize_unchecked(v, self.grid)
+        q = quantize_unchecked(v, self.grid)
+        if self.observe is not None:
+            self.observe(self.entry.name, v, q)
+        return q
 
 
 def apply_plan(model: nn.Module, plan: Plan, *, strict: bool = True,
@@ -145,13 +149,15 @@ def apply_plan(model: nn.Module, plan: Plan, *, strict: bool = True,
 
 
 def planned_copy(model: nn.Module, plan: Plan, *, strict: bool, allow_other_weights: bool,
-                 checked=frozenset()) -> tuple[nn.Module, list[str]]:
+                 checked=frozenset(), observe=None) -> tuple[nn.Module, list[str]]:
     """:func:`apply_plan`'s copy and the skipped entries, without the warning.
 
     ``checked``: a set of ``id`` of tensors whose values the caller checked already
     (:func:`evaluate_plan` puts each batch's tensors in it before running the copy): the copy's
     input hooks quantize those without a second NaN / inf scan. The weights' values are
-    checked here, once, when they are quantized.
+    checked here, once, when they are quantized. ``observe(entry name, value, quantized)``:
+    called on every input the copy quantizes, in the order it quantizes them
+    (:func:`qwidgets.check_onnx` compares them with the file's).
     """
     found, skipped = match_plan(model, plan, strict, allow_other_weights)
     new = copy.deepcopy(model)
@@ -167,10 +173,10 @@ def planned_copy(model: nn.Module, plan: Plan, *, strict: bool, allow_other_weig
                 through_taps[e] = setting.input
             elif setting.input is not None:
                 owner = new.get_submodule(e.module) if e.module else new
-                owner.register_forward_pre_hook(_QuantizeInput(e, setting.input, checked, new),
+                owner.register_forward_pre_hook(_QuantizeInput(e, setting.input, checked, new, observe),
                                                 with_kwargs=True)
     if through_taps:  # attention activations, out_proj's context, inputs of weights found by use
-        attach(new, QuantizeTap(through_taps, checked=checked))
+        attach(new, QuantizeTap(through_taps, checked=checked, observe=observe))
     new.qwidgets_applied = tuple(found)
     new.qwidgets_skipped = tuple(skipped)
     return new, skipped

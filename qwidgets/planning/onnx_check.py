@@ -20,6 +20,7 @@ from ..model.running import run_with_hooks
 from ..model.sources import batch_size, data_source
 from .apply import planned_copy
 from .onnx_export import require_onnx
+from .onnx_levels import LevelReport, Levels, forced_model, read_points
 from .onnx_trace import float32_copy, graph_inputs
 from .plan import Plan
 
@@ -37,14 +38,26 @@ _OPTIMIZED_NOTE = (
     "ONNX reference evaluator. Judge the deployed accuracy on the runtime that will serve it.")
 
 
-_FLIP_NOTE = (
-    "The file computes the float operations between quantizers (normalizations, matrix "
-    "products, softmax, GELU) with its own kernels, whose results differ from torch's by float32 "
-    "rounding; an activation value within that rounding of a boundary of its grid then rounds to "
-    "the neighbouring level, a whole step away. With quantized activations a few such values make "
-    "the file differ by more than float rounding without any error in it: compare the difference "
-    "with the plan's own effect above, and check that the weights alone match (a plan without "
-    "input grids).")
+_LEVELS_NOTE = (
+    "The file computes apply_plan's arithmetic: fed apply_plan's quantized activations, its output "
+    "matches to float32 rounding. Left to itself it differs more because its runtime's kernels for "
+    "the float operations between quantizers (normalizations, matrix products, softmax, GELU) "
+    "round differently from torch's in the last bits: the few activation values that lie within "
+    "that rounding of a boundary between two levels of their grid round to the neighbouring "
+    "level, a whole step away, and that step carries through the rest of the model. Any runtime "
+    "other than torch does this (its kernels are not torch's); judge the deployed model by its "
+    "own outputs (metric= shows the metric on them).")
+
+_MISMATCH_NOTE = (
+    "Fed apply_plan's quantized activations, the file still differs from apply_plan (or values "
+    "before a quantizer differ by more than float rounding): its arithmetic is not apply_plan's. "
+    "Was it exported from this model and plan?")
+
+_NO_POINTS_NOTE = (
+    "The file records no activation points (written by an older export_onnx, or a file without "
+    "quantized activations), so level flips cannot be told apart from errors: an activation "
+    "value within float32 rounding of a boundary of its grid may round to the neighbouring level "
+    "in the file's kernels. Export it again to have them checked level by level.")
 
 
 @dataclass(frozen=True)
@@ -63,6 +76,15 @@ class OnnxCheck:
     rewrote the graph into one it then refused), else None, with the optimized figures NaN.
     ``plan_diff``: the relative difference of apply_plan's output from the float model's (the
     plan's own effect), the scale against which a file's difference is small or not.
+
+    ``reference_levels`` / ``runtime_levels`` (:class:`~qwidgets.planning.onnx_levels.LevelReport`,
+    None for a file whose activation points are not recorded): the file fed apply_plan's
+    quantized activations. Its kernels for the float operations between quantizers round
+    differently from torch's, so an activation value within that rounding of a boundary of its
+    grid may round to the neighbouring level in the file; ``matches`` is also true when the
+    outputs differ only that way: fed apply_plan's levels, the file matches under
+    ``tolerance``, its values before each quantizer too, and each value that the file rounds to
+    another level was within float rounding (``tolerance`` relative) of a boundary.
     """
 
     path: str
@@ -80,19 +102,30 @@ class OnnxCheck:
     note: str = ""
     optimized_error: str | None = None
     plan_diff: float = math.nan
+    reference_levels: LevelReport | None = None
+    runtime_levels: LevelReport | None = None
+
+    @property
+    def exact(self) -> bool:
+        """The file's own outputs match apply_plan's under ``tolerance`` in both runs."""
+        return self.reference_diff < self.tolerance and self.runtime_diff < self.tolerance
 
     @property
     def matches(self) -> bool:
-        return self.reference_diff < self.tolerance and self.runtime_diff < self.tolerance
+        if self.exact:
+            return True
+        levels = (self.reference_levels, self.runtime_levels)
+        return all(lv is not None and lv.agrees(self.tolerance) for lv in levels)
 
     def __str__(self) -> str:
-        verdict = "matches" if self.matches else "does NOT match"
+        verdict = ("matches" if self.exact else "matches, level for level," if self.matches
+                   else "does NOT match")
         lines = [f"{self.path} {verdict} apply_plan on {self.n_samples} samples "
                  f"(relative difference < {self.tolerance:g}):",
                  f"  ONNX reference evaluator:            {self.reference_diff:.3g} "
-                 f"(max abs {self.reference_max_abs:.3g})",
+                 f"(max abs {self.reference_max_abs:.3g}){_levels_text(self.reference_levels)}",
                  f"  ONNX Runtime, optimizations off:     {self.runtime_diff:.3g} "
-                 f"(max abs {self.runtime_max_abs:.3g})"]
+                 f"(max abs {self.runtime_max_abs:.3g}){_levels_text(self.runtime_levels)}"]
         if self.optimized_error is None:
             lines.append(f"  ONNX Runtime, default optimizations: {self.optimized_diff:.3g} "
                          f"(max abs {self.optimized_max_abs:.3g})")
@@ -105,11 +138,19 @@ class OnnxCheck:
         lines.append(f"  (the plan itself moves the output by {self.plan_diff:.3g} relative to the float model)")
         if self.note:
             lines.append("  " + self.note)
-        if not self.matches:
-            lines.append(_FLIP_NOTE)
+        if not self.exact:
+            none = self.reference_levels is None or self.runtime_levels is None
+            lines.append(_NO_POINTS_NOTE if none else _LEVELS_NOTE if self.matches else _MISMATCH_NOTE)
         if self.optimized_error is not None or not self.optimized_diff < self.tolerance:
             lines.append(_OPTIMIZED_NOTE)
         return "\n".join(lines)
+
+
+def _levels_text(lv: LevelReport | None) -> str:
+    if lv is None or not lv.flips:
+        return ""
+    return (f"\n      {lv.flips:,} of {lv.n_values:,} activation values on the neighbouring level (each "
+            f"within {lv.flip_gap:.2g} steps of a boundary); fed apply_plan's levels: {lv.forced_diff:.3g}")
 
 
 class _Sums:
@@ -181,9 +222,20 @@ def check_onnx(path: str | os.PathLike, model: nn.Module, plan: Plan, data: Any,
     path = os.fspath(path)
     data, target = split_data(data, inputs, target, uses_target=metric is not None)
     net, widened = float32_copy(model)
-    planned, _ = planned_copy(net if widened else model, plan, strict=True, allow_other_weights=widened)
-    names = [i.name for i in onnx.load(path, load_external_data=False).graph.input]
+    proto = onnx.load(path)
+    points = read_points(proto)
+    observed: dict[str, list] = {}  # entry -> (value, quantized value) of each quantization
+
+    def observe(entry, x, q):
+        observed.setdefault(entry, []).append((x.detach().clone(), q.detach()))
+
+    planned, _ = planned_copy(net if widened else model, plan, strict=True, allow_other_weights=widened,
+                              observe=observe if points else None)
+    names = [i.name for i in proto.graph.input]
     sessions, optimized_error = _sessions(path, ort, ReferenceEvaluator)
+    forced, extra = _forced_sessions(proto, points, ort, ReferenceEvaluator)
+    levels = {k: Levels(points, plan, MATCH_RTOL) for k in forced}
+    forced_sums = {k: _Sums() for k in forced}
     source = data_source(model, data, max_samples)
     targets = None if (source.single or metric is None) else iter(target)
     sums = {k: _Sums() for k in sessions}
@@ -193,6 +245,7 @@ def check_onnx(path: str | os.PathLike, model: nn.Module, plan: Plan, data: Any,
     for batch in source:
         feed = _feed(batch, names, widened)
         args, kwargs = _call(batch, widened)
+        observed.clear()
         with torch.no_grad():
             want = planned.eval()(*args, **kwargs)
         flat = list(iter_tensors(want))
@@ -215,6 +268,14 @@ def check_onnx(path: str | os.PathLike, model: nn.Module, plan: Plan, data: Any,
             sums[k].add(float_parts(rebuilt, "file", output), float_parts(want, "planned", output))
             if metric is not None:
                 metrics[k] += w * call_metric(metric, rebuilt, t)
+        forced_feed = levels["reference"].feed(observed, feed) if forced else None
+        if forced and forced_feed is None:  # apply_plan quantized other values than the file marks
+            forced, levels = {}, {}
+        for k, run in forced.items():
+            got = [np.asarray(v) for v in run(forced_feed)]
+            rebuilt = refill(want, [torch.as_tensor(g) for g in got[:len(flat)]])
+            forced_sums[k].add(float_parts(rebuilt, "file", output), float_parts(want, "planned", output))
+            levels[k].add(observed, {**feed, **dict(zip(extra, got[len(flat):], strict=True))})
     note = ""
     if widened:
         kinds = sorted({str(p.dtype).replace("torch.", "") for p in model.parameters() if p.is_floating_point()})
@@ -227,7 +288,8 @@ def check_onnx(path: str | os.PathLike, model: nn.Module, plan: Plan, data: Any,
                      sums["runtime"].max_abs, math.nan if opt is None else opt.max_abs,
                      metric_planned=m["planned"], metric_runtime=m["runtime"],
                      metric_optimized=m.get("optimized"), note=note, optimized_error=optimized_error,
-                     plan_diff=effect.relative())
+                     plan_diff=effect.relative(),
+                     **{f"{k}_levels": lv.report(forced_sums[k].relative()) for k, lv in levels.items()})
 
 
 def _sessions(path: str, ort, reference_evaluator) -> tuple[dict, str | None]:
@@ -243,6 +305,24 @@ def _sessions(path: str, ort, reference_evaluator) -> tuple[dict, str | None]:
         return out, f"{type(e).__name__}: {e}"
     out["optimized"] = lambda feed: optimized.run(None, feed)
     return out, None
+
+
+def _forced_sessions(proto, points, ort, reference_evaluator) -> tuple[dict, list[str]]:
+    """The file fed apply_plan's quantized activations (:func:`.onnx_levels.forced_model`), in
+    the reference evaluator and ONNX Runtime without optimizations, and the names of its extra
+    outputs (the values before quantization)."""
+    if not points:
+        return {}, []
+    import onnx
+
+    data = forced_model(proto, points)
+    extra = [o.name for o in onnx.load_from_string(data).graph.output][len(proto.graph.output):]
+    plain = ort.SessionOptions()
+    plain.graph_optimization_level = ort.GraphOptimizationLevel.ORT_DISABLE_ALL
+    runtime = ort.InferenceSession(data, plain, providers=["CPUExecutionProvider"])
+    ref = reference_evaluator(onnx.load_from_string(data))
+    return ({"reference": lambda feed: ref.run(None, feed),
+             "runtime": lambda feed: runtime.run(None, feed)}, extra)
 
 
 def _call(batch, widened: bool):

@@ -45,6 +45,7 @@ from ..core.rounding import to_codes
 from ..core.token_grid import TokenGrid
 from .apply import match_plan
 from .onnx_graph import OnnxRewrite, check_onnx_grid, onnx_code_type, unmark
+from .onnx_levels import write_points
 from .onnx_trace import float32_copy, graph_inputs, quantization_points, trace_float
 from .plan import Plan
 
@@ -131,14 +132,17 @@ def export_onnx(model: nn.Module, plan: Plan, path: str | os.PathLike,
         value = net.get_parameter(pname).detach()
         graph.weight(pname, value, grid, None if grid is None else to_codes(value, grid))
     by_tag = graph.marks(marked)
+    places = []  # (entry, value quantized, its quantized value) of each point, in graph order
     for point in points:
         nodes = by_tag.pop(point.tag, [])
         if not nodes:
             raise ValueError(f"planned input {point.tag!r} is not computed in the exported graph (the "
                              "model's forward on example_inputs never reached it); its grid cannot be "
                              "exported")
+        places += [(point.entry, n.input[0], n.output[0]) for n in nodes]
         graph.quantize_marks(point.tag, point.grid, nodes, shapes)
     graph.finish()
+    write_points(proto, places)
     proto.ir_version = max(10, onnx.helper.find_min_ir_version_for(list(proto.opset_import)))
     if widened:
         kinds = sorted({str(p.dtype).replace("torch.", "") for p in model.parameters() if p.is_floating_point()})

@@ -144,9 +144,9 @@ class OnnxRewrite:
         self.graph.initializer.append(t)
         return name
 
-    def _scale_zero(self, base: str, grid: UniformGrid):
+    def _scale_zero(self, base: str, grid: UniformGrid, code_type: str | None = None, shift: int = 0):
         scale = grid.scale_tensor().detach().to(torch.float32).cpu().numpy()
-        zp = np.asarray(torch.as_tensor(grid.zero_point).cpu().numpy(), dtype=np.int64)
+        zp = np.asarray(torch.as_tensor(grid.zero_point).cpu().numpy(), dtype=np.int64) + shift
         if grid.blocked:  # the blocked layout: one scale and zero point per block, full rank
             zp = np.broadcast_to(zp, scale.shape).copy()
         elif grid.axis is not None:
@@ -155,7 +155,7 @@ class OnnxRewrite:
         else:
             scale, zp = scale.reshape(()), zp.reshape(())
         s = self._constant(self.name(base + "_scale"), scale.astype(np.float32))
-        z = self._constant(self.name(base + "_zero_point"), zp, onnx_code_type(grid))
+        z = self._constant(self.name(base + "_zero_point"), zp, code_type or onnx_code_type(grid))
         return s, z, scale, zp
 
     def _quantize_dequantize(self, src: str, out: str, grid: UniformGrid, base: str) -> list:
@@ -164,10 +164,17 @@ class OnnxRewrite:
         with zero point 0 rounds ``(x - o) / S`` (``x / S + Z`` would round the other way at
         some ties), the ``Clip`` before it keeps k in the grid's range where that is narrower
         than the type's, and ``DequantizeLinear`` with Z gives (k - Z) * S. A per-channel grid
-        uses ``QuantizeLinear`` with its zero point directly (``axis`` set)."""
+        uses ``QuantizeLinear`` with its zero point directly (``axis`` set).
+
+        Signed 8-bit codes are written as uint8 with both zero points moved up by 128
+        (``QuantizeLinear`` rounds, then adds its zero point: the same levels, exactly). ONNX
+        Runtime's default session rewrites int8 pairs into uint8 ones itself and, around a
+        ``Transpose`` it moved a quantizer across, left a ``QuantizeLinear`` it then refused
+        (``output_dtype INT8 does not match y_zero_point type UINT8``, onnxruntime 1.32)."""
         from onnx import helper
 
-        s, z, scale, zp = self._scale_zero(base, grid)
+        code_type, shift = ("uint8", 128) if onnx_code_type(grid) == "int8" else (None, 0)
+        s, z, scale, zp = self._scale_zero(base, grid, code_type, shift)
         lo_t, hi_t = type_range(grid)
         narrow = (grid.qmin, grid.qmax) != (lo_t, hi_t)
         if grid.axis is not None:
@@ -196,8 +203,9 @@ class OnnxRewrite:
                                           [clipped], name=self.name(base + "_clip")))
             src = clipped
         # one zero point for both where the grid's is 0 (the standard pair runtimes recognise)
-        zero = z if offset == 0 else self._constant(self.name(base + "_code_origin"), np.zeros((), np.int64),
-                                                    onnx_code_type(grid))
+        zero = z if offset == 0 else self._constant(self.name(base + "_code_origin"),
+                                                    np.full((), shift, np.int64),
+                                                    code_type or onnx_code_type(grid))
         q = self.name(base + "_quantized")
         nodes.append(helper.make_node("QuantizeLinear", [src, s, zero], [q], name=self.name(base + "_quantize")))
         nodes.append(helper.make_node("DequantizeLinear", [q, s, z], [out], name=self.name(base + "_dequantize")))

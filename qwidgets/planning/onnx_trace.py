@@ -40,10 +40,12 @@ TRACE_OPSET = 18  # what the TorchScript exporter writes; converted to the file'
 
 @dataclass(frozen=True)
 class QuantPoint:
-    """A planned activation quantization point: the tag its markers carry, and its grid."""
+    """A planned activation quantization point: the tag its markers carry, its grid and the
+    planned entry whose input it is."""
 
     tag: str
     grid: UniformGrid | TokenGrid
+    entry: str = ""
 
 
 class _Mark(torch.autograd.Function):
@@ -99,7 +101,7 @@ def quantization_points(net: nn.Module, plan, found: dict, shapes: dict | None =
         if grid is None:
             continue
         tag = _tag(name)
-        points.append(QuantPoint(tag, grid))
+        points.append(QuantPoint(tag, grid, name))
         if tapped(entry):
             through_taps.append(entry)
             continue
