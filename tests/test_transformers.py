@@ -495,3 +495,36 @@ def test_notes_from_passes_with_the_fast_path_off_point_at_the_callers_line():
     with pytest.warns(ScanNote) as seen:
         scan(net, data, bits=(8,), progress=False)
     assert {w.filename for w in seen if issubclass(w.category, ScanNote)} == {__file__}
+
+
+def test_grid_explorer_takes_a_transformer_batch_with_inputs():
+    """GridExplorer(model, (tokens, targets), layer=..., inputs=0) explores what a forward
+    pre-hook on that layer sees when the model runs on the tokens alone (the naive capture)."""
+    from qwidgets import GridExplorer
+    from tests.attention_models import TinyDecoder, token_ids
+
+    torch.manual_seed(3)
+    net = TinyDecoder().eval()
+    ids = token_ids(12, 8)
+    nxt = torch.roll(ids, -1, dims=1)
+    seen = []
+    h = net.blocks[1].fc.register_forward_pre_hook(lambda m, a: seen.append(a[0].detach().clone()))
+    with torch.no_grad():
+        net(ids)
+    h.remove()
+    ex = GridExplorer(net, (ids, nxt), layer="blocks.1.fc", inputs=0)
+    # float32 passes on other thread counts or batch splits round differently: a float32 tolerance
+    close = dict(rtol=1e-5, atol=1e-6)
+    torch.testing.assert_close(ex.subject.values["input"], seen[0].reshape(ex.subject.values["input"].shape),
+                               **close)
+    loader = DataLoader(TensorDataset(ids, nxt), batch_size=4)
+    by_batches = GridExplorer(net, loader, layer="blocks.1.fc", inputs=lambda b: b[0])
+    torch.testing.assert_close(by_batches.subject.values["input"], ex.subject.values["input"], **close)
+    layer_only = GridExplorer(net.blocks[1].fc, (seen[0], nxt), inputs=0)  # a layer and its input pair
+    assert torch.equal(layer_only.subject.values["input"], seen[0])
+    with pytest.raises(TypeError, match="inputs=0"):
+        GridExplorer(net, (ids, nxt), layer="blocks.1.fc")  # a pair without inputs=: the error says so
+    with pytest.raises(TypeError, match="inputs"):
+        GridExplorer(torch.randn(4, 4), inputs=0)
+    with pytest.raises(TypeError, match="inputs must be"):
+        GridExplorer(net, (ids, nxt), layer="blocks.1.fc", inputs=1.5)

@@ -68,10 +68,10 @@ class GridExplorer(SnapshotDisplay, widgets.VBox):
     ``GridExplorer(tensor)`` explores a tensor; ``GridExplorer(layer, data)`` a Linear / Conv
     layer with ``data`` as its input; ``GridExplorer(model, data, layer="name")`` captures
     that layer's input from one run of ``model`` on ``data`` (any data source the model
-    accepts). The starting grid has ``bits`` bits and a range fitted by ``method``;
+    accepts; ``inputs=`` picks the model's inputs from each batch, as in :func:`qwidgets.scan`,
+    so a ``(tokens, targets)`` batch or loader works). The starting grid has ``bits`` bits and a range fitted by ``method``;
     ``noise_steps`` is the logistic noise width as a fraction of the grid step (``noise``, its
-    previous name here, warns: the core functions' ``noise`` is in value units) and ``temperature`` the relaxed samples' temperature. ``max_samples`` keeps the first
-    rows of ``data``. ``grid``: start from this grid for the weights (e.g. a plan's), see
+    previous name here, warns: the core functions' ``noise`` is in value units) and ``temperature`` the relaxed samples' temperature. ``max_samples`` keeps the first rows of ``data``. ``grid``: start from this grid for the weights (e.g. a plan's), see
     :meth:`show_setting`. ``output``: an ``ipywidgets.Output`` that captures the progress of
     learning runs (default: the explorer's own).
 
@@ -105,7 +105,7 @@ class GridExplorer(SnapshotDisplay, widgets.VBox):
     def __init__(self, obj: nn.Module | torch.Tensor, data: Any = None, *, layer: str | None = None,
                  bits: int = 4, method: str = "mse", source: str | None = None, per_channel: bool = False,
                  noise: float | None = None, noise_steps: float | None = None, temperature: float = 0.5,
-                 max_samples: int | None = None, grid: UniformGrid | None = None,
+                 max_samples: int | None = None, grid: UniformGrid | None = None, inputs: int | str | Callable | None = None,
                  output: widgets.Output | None = None, width: int = 720, height: int = 600,
                  clock: Callable[[], float] | None = None, rules: DeviceRules | None = None):
         super().__init__()
@@ -122,7 +122,7 @@ class GridExplorer(SnapshotDisplay, widgets.VBox):
         check_bool(per_channel, "per_channel")
         if output is not None and not isinstance(output, widgets.Output):
             raise TypeError(f"output must be an ipywidgets.Output or None, got {type(output).__name__}")
-        self.subject = ExplorerSubject(obj, data, layer, max_samples)
+        self.subject = ExplorerSubject(obj, data, layer, max_samples, inputs)
         sources = self.subject.sources
         if source is None:
             source = sources[0]

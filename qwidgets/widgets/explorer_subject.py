@@ -18,6 +18,7 @@ from torch import nn
 from ..core.checks import as_input
 from ..model.capture import capture_inputs
 from ..model.layers import is_quantizable, layer_output
+from ..model.picking import check_picker, split_data
 
 __all__ = ["ExplorerSubject"]
 
@@ -36,13 +37,14 @@ class ExplorerSubject:
     (torch.float32, torch.Size([5, 3]))
     """
 
-    def __init__(self, obj, data, layer: str | None, max_samples: int | None):
+    def __init__(self, obj, data, layer: str | None, max_samples: int | None, inputs=None):
         self.layer: nn.Module | None = None
+        inputs = check_picker(inputs, "inputs")
         self.layer_name: str | None = None
         if isinstance(obj, (torch.Tensor, np.ndarray)):
-            if data is not None or layer is not None:
-                raise TypeError("GridExplorer(tensor) takes no data or layer; give a layer and "
-                                "its input as GridExplorer(layer, data)")
+            if data is not None or layer is not None or inputs is not None:
+                raise TypeError("GridExplorer(tensor) takes no data, layer or inputs; give a layer "
+                                "and its input as GridExplorer(layer, data)")
             values, _ = as_input(obj, "tensor")
             if values.numel() == 0:
                 raise ValueError("tensor is empty; there is nothing to explore")
@@ -60,7 +62,7 @@ class ExplorerSubject:
         if layer is not None:
             if not isinstance(layer, str):
                 raise TypeError(f"layer must be the name of a layer in the model, got {type(layer).__name__}")
-            captured = capture_inputs(obj, data, [layer], max_samples=max_samples)
+            captured = capture_inputs(obj, data, [layer], max_samples=max_samples, inputs=inputs)
             module = obj.get_submodule(layer) if layer else obj
             inputs = captured[layer]
             self.layer_name = layer
@@ -72,7 +74,7 @@ class ExplorerSubject:
                     f"model's layers give its name, e.g. layer={names[0]!r} (layers: {names})"
                     if names else f"{type(obj).__name__} has no Linear / Conv layer to explore"
                 )
-            module, inputs = obj, data
+            module, inputs = obj, (data if inputs is None else split_data(data, inputs)[0])
             if not isinstance(inputs, torch.Tensor):
                 raise TypeError(f"data must be the layer's input tensor, got {type(inputs).__name__}")
             if max_samples is not None:
