@@ -17,7 +17,7 @@ import torch
 
 from .sources import is_one_batch
 
-__all__ = ["split_data", "check_picker", "pick"]
+__all__ = ["split_data", "check_picker", "pick", "join_batches"]
 
 
 def check_picker(value, name: str):
@@ -117,3 +117,39 @@ def cut_target(t, n: int):
 
 
 Picker = int | str | Callable | None
+
+
+def join_batches(data, target=None, what: str = "this function") -> tuple:
+    """``(data, target)`` as one batch: many batches (and their per-batch targets, as
+    :func:`split_data` gives them) joined along axis 0, for a function that holds its data in
+    memory; one batch is returned as it is.
+
+    >>> import torch
+    >>> batches = iter([(torch.zeros(2, 3), torch.ones(2)), (torch.ones(1, 3), torch.zeros(1))])
+    >>> x, y = join_batches(*split_data(batches, inputs=0, target=1))
+    >>> tuple(x.shape), y.tolist()
+    ((3, 3), [1.0, 1.0, 0.0])
+    """
+    if is_one_batch(data):
+        return data, target
+    batches = list(data)
+    if not batches:
+        raise ValueError("data holds no batch")
+    if target is not None and not isinstance(target, torch.Tensor):
+        target = _join(list(target), what, "target")
+    return _join(batches, what, "data"), target
+
+
+def _join(parts: list, what: str, name: str):
+    first = parts[0]
+    try:
+        if isinstance(first, torch.Tensor):
+            return torch.cat(parts) if first.dim() >= 1 else first
+        if isinstance(first, (tuple, list)):
+            return tuple(_join([p[i] for p in parts], what, name) for i in range(len(first)))
+        if isinstance(first, Mapping):
+            return {k: _join([p[k] for p in parts], what, name) for k in first}
+    except (RuntimeError, TypeError, KeyError, IndexError) as e:
+        raise ValueError(f"{what} holds its {name} in memory as one batch, and the batches cannot be "
+                         f"joined along axis 0 ({type(e).__name__}: {e}); give one batch") from e
+    return first

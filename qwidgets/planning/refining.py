@@ -26,7 +26,7 @@ from ..core.metrics import error_stats
 from ..learn.optim import Adam
 from ..learn.whole_plan import LEARNABLE, SOURCES, PlanGrids
 from ..model.outputs import check_output_fn, flat_output, float_parts, iter_tensors
-from ..model.picking import split_data
+from ..model.picking import join_batches, split_data
 from ..model.running import check_data, check_model
 from ..model.sources import Data
 from .apply import match_plan
@@ -122,7 +122,8 @@ def refine_plan(
     Parameters
     ----------
     model : the user's model (only read)
-    data : a batch the model accepts (tensor, tuple of args or dict of kwargs); tensors whose
+    data : a batch the model accepts (tensor, tuple of args or dict of kwargs), or an iterable
+        of such batches (a ``DataLoader``: joined along axis 0, held in memory); tensors whose
         first dimension is the number of samples are cut into mini-batches, others are passed whole
     plan : a :class:`qwidgets.Plan` made for ``model``
     steps : Adam steps (>= 0; 0 only measures the start)
@@ -152,7 +153,7 @@ def refine_plan(
     """
     check_model(model)
     output = check_output_fn(output)
-    data, target = split_data(data, inputs, target)
+    data, target = join_batches(*split_data(data, inputs, target), "refine_plan")
     if not isinstance(plan, Plan):
         raise TypeError(f"plan must be a Plan, got {type(plan).__name__}")
     _, skipped = match_plan(model, plan, strict=True)
