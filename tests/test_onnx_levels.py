@@ -19,7 +19,7 @@ import onnx
 import onnxruntime as ort
 import pytest
 import torch
-from attention_models import EncoderClassifier, TinyDecoder, sequences, token_ids
+from attention_models import EncoderClassifier, TinyDecoder, TinyViT, sequences, token_ids
 from onnx import helper, numpy_helper
 from onnx.reference import ReferenceEvaluator
 from stored_bits import mean_bits_for
@@ -39,26 +39,6 @@ from qwidgets.planning.onnx_levels import POINTS_KEY
 from qwidgets.planning.plan import model_fingerprint
 
 RTOL = 1e-5
-
-
-class TinyViT(nn.Module):
-    """A vision transformer: 4x4 patches of 8x8 images by a strided Conv2d, a class token,
-    learned positions, a pre-norm nn.TransformerEncoder with GELU, a Linear head."""
-
-    def __init__(self, d=16, heads=2, classes=3):
-        super().__init__()
-        self.patch = nn.Conv2d(1, d, 4, stride=4)
-        self.cls = nn.Parameter(torch.randn(1, 1, d) * 0.1)
-        self.pos = nn.Parameter(torch.randn(1, 5, d) * 0.1)
-        layer = nn.TransformerEncoderLayer(d, heads, 32, dropout=0.0, activation="gelu", batch_first=True,
-                                           norm_first=True)
-        self.encoder = nn.TransformerEncoder(layer, 2, enable_nested_tensor=False)
-        self.norm, self.head = nn.LayerNorm(d), nn.Linear(d, classes)
-
-    def forward(self, img):
-        p = self.patch(img).flatten(2).transpose(1, 2)
-        x = torch.cat([self.cls.expand(img.shape[0], -1, -1), p], dim=1) + self.pos
-        return self.head(self.norm(self.encoder(x))[:, 0])
 
 
 def _images(n=64, seed=3):

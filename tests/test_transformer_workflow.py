@@ -15,9 +15,8 @@ import math
 
 import pytest
 import torch
-from attention_models import EncoderClassifier, TinyDecoder
+from attention_models import EncoderClassifier, TinyDecoder, TinyViT
 from stored_bits import mean_bits_for
-from test_onnx_levels import TinyViT
 from torch.utils.data import DataLoader, TensorDataset
 
 from qwidgets import check_onnx, export_onnx, plan_budget, refine_plan, scan
