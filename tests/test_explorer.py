@@ -6,6 +6,7 @@ import asyncio
 import json
 import math
 
+import matplotlib
 import numpy as np
 import pytest
 import torch
@@ -138,7 +139,7 @@ def test_plot_artists_change_with_the_controls(subject):
             ticks=np.array(f.grid_ticks.get_xdata(), float).copy(),
             hard=np.array(f.hard_line.get_ydata(), float).copy(),
             soft=np.array(f.soft_line.get_ydata(), float).copy(),
-            image=np.array(f.map_img.get_array(), float).copy(),
+            image=np.array(f.map_values, float).copy(),
             bars=f.bars.get_data().values.copy(),
             scatter=np.array(f.out_points.get_ydata(), float).copy(),
             png=ex.canvas.last_png,
@@ -160,8 +161,11 @@ def test_plot_artists_change_with_the_controls(subject):
     ex.state.probe = ex.controls["probe"].positions.lo * 0.5
     ex.refresh()
     assert "bars" in changed(after_noise, grab())
-    # the image shown is the core's bin probabilities: each column is a distribution over bins
-    np.testing.assert_allclose(f.map_img.get_array().sum(axis=0), 1.0, atol=1e-5)
+    # the image shown is the core's bin probabilities: each column is a distribution over bins,
+    # drawn in matplotlib's viridis colours (0 to 1)
+    np.testing.assert_allclose(f.map_values.sum(axis=0), 1.0, atol=1e-5)
+    viridis = matplotlib.colormaps["viridis"](f.map_values, bytes=True)
+    np.testing.assert_array_equal(np.asarray(f.map_img.get_array()), viridis)
 
 
 class FakeLoop:

@@ -51,6 +51,26 @@ def test_frame_encoder_recompresses_changed_bands_and_decodes_to_the_same_pixels
         FrameEncoder(band_rows=0)
 
 
+def test_frame_encoder_prepares_the_rows_outside_a_span_and_then_compresses_the_rest():
+    """``prepare`` compresses the changed bands wholly outside the span given; the next frame,
+    changed inside the span too, compresses only the bands the span touches, and decodes
+    (Pillow's decoder, as above) to exactly that frame, as a fresh encoder's PNG does."""
+    rng = np.random.default_rng(3)
+    frame = np.full((100, 61, 4), 255, np.uint8)
+    enc = FrameEncoder(band_rows=16)
+    enc.encode(frame)
+    frame[:, 2:30, :3] = rng.integers(0, 256, size=(100, 28, 3), dtype=np.uint8)  # every band
+    before = enc.bands_encoded
+    enc.prepare(frame, (40, 70))  # bands 2, 3 and 4 (rows 32..79) reach into rows 40..69
+    assert enc.bands_encoded - before == 4
+    frame[45:60, 40:50, :3] = 7  # inside the span: drawn after prepare
+    png = enc.encode(frame)
+    assert enc.bands_encoded - before == 7
+    with Image.open(io.BytesIO(png)) as im:
+        np.testing.assert_array_equal(np.asarray(im.convert("RGB")), frame[..., :3])
+    assert png == FrameEncoder(band_rows=16).encode(frame)
+
+
 def test_adler32_combine_equals_zlib_on_the_joined_bytes():
     """Reference: zlib.adler32 of the joined bytes (lengths beyond the modulus 65521 too)."""
     rng = np.random.default_rng(2)

@@ -9,6 +9,8 @@
                  is given) on the next render, after changing a title, ticks, a legend or other
                  non-animated artists; a change of an axes' limits is noticed by itself
                  and repaints only that axes (and any whose labels reach into it);
+    ``.encode_ahead(*axes)``  draw, and compress the rows no given axes reaches (theirs wait
+                 for new data); the next render compresses only the rest;
     ``.render()``  draw and return a PNG (also kept as ``.last_png``); only the bands of
                  rows that changed are compressed again (:class:`~qwidgets.viz.png.FrameEncoder`);
     ``.save(path)``  a full-quality PNG or SVG, by the file's extension;
@@ -131,7 +133,7 @@ class BlitCanvas:
     def _buffer(self) -> np.ndarray:
         return np.asarray(self._canvas.buffer_rgba())
 
-    def draw(self) -> np.ndarray:
+    def draw(self, wait: tuple = ()) -> np.ndarray:
         """Bring the Agg buffer up to date and return it as an ``(H, W, 4)`` uint8 array.
 
         The background (everything not animated: axes, ticks, labels, static artists) is
@@ -139,6 +141,8 @@ class BlitCanvas:
         them) are repainted into it, or restored from the pixels kept for those limits; an
         :meth:`invalidate` or a new axes repaints everything. Then each axes whose animated
         artists changed is blitted (see the module's notes); the others keep their pixels.
+        The animated artists of the axes in ``wait`` are left for the next draw (they are
+        about to change).
         """
         sig = self._axes_signature()
         fresh = True  # the buffer holds the background alone
@@ -153,16 +157,19 @@ class BlitCanvas:
                     self._full_draw()
             else:
                 fresh = False
-        if fresh or not self._frame_ok or not self._blit_axes():
+        if fresh or not self._frame_ok or not self._blit_axes(wait):
             if not fresh:
                 np.copyto(self._buffer(), self._background)
             self._snaps.clear()
             renderer = self._canvas.get_renderer()
             for a in self._animated:
+                if a.axes in wait:
+                    a.stale = True  # drawn by the next draw
+                    continue
                 if a.get_visible():
                     a.draw(renderer)
                 a.stale = False
-            self.blits += len({a.axes for a in self._animated})
+            self.blits += len({a.axes for a in self._animated if a.axes not in wait})
             self._frame_ok = True
         return self._buffer()
 
@@ -189,8 +196,9 @@ class BlitCanvas:
                     return None
         return groups, boxes
 
-    def _blit_axes(self) -> bool:
-        """Redraw the animated artists of the axes where one changed; False: not possible here."""
+    def _blit_axes(self, wait: tuple = ()) -> bool:
+        """Redraw the animated artists of the axes where one changed (but those in ``wait``);
+        False: not possible here."""
         found = self._groups()
         if found is None:
             return False
@@ -199,7 +207,7 @@ class BlitCanvas:
         buf = self._buffer()
         for ax, arts in groups.items():
             stale = [a.stale for a in arts]
-            if not any(stale):
+            if not any(stale) or ax in wait:
                 continue  # its pixels are those of the last frame
             first = stale.index(True)
             r0, r1, c0, c1 = boxes[ax]
@@ -211,9 +219,12 @@ class BlitCanvas:
                 self._snaps[ax] = snap
             else:
                 buf[r0:r1, c0:c1] = self._background[r0:r1, c0:c1]
+            # keep the pixels of the unchanged artists; when all are drawn, those of the first
+            # (the bin map under a probe line): a move of the later ones starts from them
+            keep_at = first if first > start else (1 if start == 0 < len(arts) - 1 else None)
             for i, a in enumerate(arts[start:], start):
-                if i == first and first > start:  # keep the unchanged artists' pixels
-                    self._snaps[ax] = (first, buf[r0:r1, c0:c1].copy())
+                if i == keep_at:
+                    self._snaps[ax] = (i, buf[r0:r1, c0:c1].copy())
                 if a.get_visible():
                     a.draw(renderer)
                 a.stale = False
@@ -337,6 +348,18 @@ class BlitCanvas:
         buf[r0:r1, c0:c1] = pixels
         self._kept.move_to_end(key)
         return True
+
+    def encode_ahead(self, *axes) -> None:
+        """Draw now and compress the rows of the frame that none of ``axes`` reaches: while
+        their artists wait for data, the next :meth:`render` compresses only their rows."""
+        buf = self.draw(wait=axes)
+        h = buf.shape[0]
+        spans = []
+        for ax in axes:
+            y0, y1 = ax.bbox.extents[1], ax.bbox.extents[3]
+            spans.append((max(0, h - math.ceil(y1) - 1), min(h, h - math.floor(y0) + 1)))
+        if spans:
+            self._encoder.prepare(buf, (min(a for a, _ in spans), max(b for _, b in spans)))
 
     def render(self) -> bytes:
         """Draw and encode as PNG; returns the PNG bytes (also kept in :attr:`last_png`)."""

@@ -69,8 +69,9 @@ class PlotData:
     curve_hard: np.ndarray
     curve_expected: np.ndarray
     curve_samples: list  # (x, y) arrays of relaxed samples
-    out_x: np.ndarray  # float output sample (or error positions for a tensor)
-    out_y: np.ndarray  # quantized output sample (or error histogram counts)
+    out_x: np.ndarray | None  # float output sample (or error positions for a tensor)
+    out_y: np.ndarray | None  # quantized output sample (or error histogram counts); None:
+    # the output plot is left as it is (and given its data by update_out)
 
 
 class ExplorerFigure:
@@ -145,6 +146,8 @@ class ExplorerFigure:
         # new bit width moves no tick and repaints no background; the readout names the codes.
         self.map_img = ax.imshow(np.zeros((2, 2)), origin="lower", aspect="auto", cmap="viridis",
                                  vmin=0.0, vmax=1.0, interpolation="nearest", extent=(0, 1, 0, 1))
+        self._map_colours = matplotlib.colormaps["viridis"]  # probabilities 0..1 -> RGBA
+        self.map_values = np.zeros((2, 2))
         self.probe_line = ax.axvline(0.0, color="white", lw=1.2, ls="--")
         ax.set_title("Bin probabilities under noise")
         ax.set_xlim(0, 1)
@@ -254,7 +257,8 @@ class ExplorerFigure:
         self._update_hist(d)
         self._update_map(d)
         self._update_curve(d)
-        self._update_out(d)
+        if d.out_x is not None:
+            self.update_out(d.out_x, d.out_y)
 
     def _update_hist(self, d: PlotData):
         lo, hi = d.clip
@@ -283,7 +287,10 @@ class ExplorerFigure:
         x0, x1, y0, y1 = d.map_extent  # in grid steps and codes; drawn stretched over 0..1
         self.map_codes = (int(round(y0 + 0.5)), int(round(y1 - 0.5)))
         if self._new("map", d.map_image):
-            self.map_img.set_data(d.map_image)
+            # coloured here, once per new map: an RGBA image is drawn without the colour
+            # mapping matplotlib would repeat on every draw (the map is redrawn under a probe move)
+            self.map_values = d.map_image  # the probabilities shown, (bins, positions)
+            self.map_img.set_data(self._map_colours(d.map_image, bytes=True))
         px = (d.probe_pos - x0) / (x1 - x0)
         if self._new("probe", [px]):
             self.probe_line.set_xdata([px, px])
@@ -302,14 +309,15 @@ class ExplorerFigure:
         if self._new("samples", xs, ys):
             self.sample_points.set_data(xs, ys)
 
-    def _update_out(self, d: PlotData):
-        if not self._new("out", d.out_x, d.out_y):
+    def update_out(self, out_x: np.ndarray, out_y: np.ndarray) -> None:
+        """Move the output plot (the layer-output scatter, or the error histogram) only."""
+        if not self._new("out", out_x, out_y):
             return
         if self.has_layer:
-            self.out_points.set_data(d.out_x, d.out_y)
+            self.out_points.set_data(out_x, out_y)
         else:
-            self.out_points.set_data(d.out_y, d.out_x)
-            top = float(d.out_y.max()) if d.out_y.size else 1.0
+            self.out_points.set_data(out_y, out_x)
+            top = float(out_y.max()) if out_y.size else 1.0
             if self.ax_out.get_ylim()[1] < top or self.ax_out.get_ylim()[1] > 3 * top:
                 self.ax_out.set_ylim(0, 1.25 * top)
 

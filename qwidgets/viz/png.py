@@ -120,6 +120,22 @@ class FrameEncoder:
 
     def encode(self, rgba: np.ndarray) -> bytes:
         arr = np.asarray(rgba)
+        self._compress(arr, None)
+        h, w = arr.shape[:2]
+        b = self.band_rows
+        adler = 1
+        for i, a in enumerate(self._adlers):
+            adler = adler32_combine(adler, a, (min(h, (i + 1) * b) - i * b) * (1 + 3 * w))
+        idat = b"".join((b"\x78\x01", *self._bands, _FINAL_BLOCK, struct.pack(">I", adler)))
+        return _png(w, h, idat)
+
+    def prepare(self, rgba: np.ndarray, rows: tuple) -> None:
+        """Compress now the changed bands that lie wholly outside ``rows = (first, end)``
+        (whose pixels are final): the next :meth:`encode` of a frame that differs from
+        ``rgba`` only inside those rows compresses just the bands they touch."""
+        self._compress(np.asarray(rgba), rows)
+
+    def _compress(self, arr: np.ndarray, skip: tuple | None) -> None:
         _check(arr, self.level)
         h, w = arr.shape[:2]
         b = self.band_rows
@@ -132,6 +148,10 @@ class FrameEncoder:
             changed = np.ones(n, bool)
         else:
             changed = self._changed_bands(arr, n)
+        if skip is not None:  # bands that reach into the rows still to be drawn wait
+            first, end = skip
+            starts = np.arange(n) * b
+            changed &= (starts + b <= first) | (starts >= end)
         for i in np.flatnonzero(changed):
             r0, r1 = i * b, min(h, (i + 1) * b)
             self._last[r0:r1] = arr[r0:r1]
@@ -140,11 +160,6 @@ class FrameEncoder:
             self._bands[i] = c.compress(rows.data) + c.flush(zlib.Z_SYNC_FLUSH)
             self._adlers[i] = zlib.adler32(rows.data)
             self.bands_encoded += 1
-        adler = 1
-        for i, a in enumerate(self._adlers):
-            adler = adler32_combine(adler, a, (min(h, (i + 1) * b) - i * b) * (1 + 3 * w))
-        idat = b"".join((b"\x78\x01", *self._bands, _FINAL_BLOCK, struct.pack(">I", adler)))
-        return _png(w, h, idat)
 
     def _changed_bands(self, arr: np.ndarray, n: int) -> np.ndarray:
         h = arr.shape[0]

@@ -371,10 +371,16 @@ class GridExplorer(SnapshotDisplay, widgets.VBox):
                 self._probe_view = self.figure.view
                 self.panel.place_probe(self._probe_view)  # may move the probe into the view
                 self._updater.cancel()  # this redraw shows it already
-            layer = self.numbers.layer(self.state, rows) if self.subject.has_layer else None
-            data = self.numbers.plot_data(self.state, self.figure.view, self.axes.error_sample,
-                                          None if layer is None else _sample_xy(layer, self.subject))
-            self.figure.update(data)
+            # the layer output is measured on a worker thread while the other plots are drawn
+            job = self.subject.has_layer and self.numbers.layer_soon(self.state, rows,
+                                                                     threads=self.refresh_threads)
+            self.figure.update(self.numbers.plot_data(self.state, self.figure.view,
+                                                      self.axes.error_sample))
+            if job:
+                self.canvas.encode_ahead(self.figure.ax_out)  # (and compressed) meanwhile
+            layer = job() if job else None
+            if layer is not None:
+                self.figure.update_out(*layer[1])
             self.readout.value = self._readout_html(layer)
             self.canvas.render()
 
@@ -392,9 +398,3 @@ class GridExplorer(SnapshotDisplay, widgets.VBox):
         if self.learner.running:
             title += " (learning)"
         return readout_html(title, self._rows(layer))
-
-
-def _sample_xy(layer, subject):
-    sample = layer[1]
-    return sample if isinstance(sample, tuple) else (subject.scatter_x, sample)
-

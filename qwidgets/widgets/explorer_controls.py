@@ -151,8 +151,8 @@ class ExplorerControls:
         return LogPositions(lo, hi, n=STEP_POSITIONS)
 
     def _offset_positions(self) -> LinearPositions:
-        v = self.state.shown_values()
-        r = max(abs(float(v.min())), abs(float(v.max())), 2 * abs(self.state.offset), 1e-12)
+        lo, hi = self.state.shown_range()
+        r = max(abs(lo), abs(hi), 2 * abs(self.state.offset), 1e-12)
         return LinearPositions(-r, r, OFFSET_POSITIONS)
 
     def _place_step(self) -> None:

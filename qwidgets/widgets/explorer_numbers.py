@@ -16,6 +16,8 @@ model functions and caches what does not depend on the control that moved:
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 import torch
@@ -25,7 +27,8 @@ from ..core.metrics import ErrorStats, error_stats
 from ..core.relaxed import bin_probabilities, expected_quantize, relaxed_quantize
 from ..core.rounding import quantize
 from ..core.sorted_values import SortedValues
-from ..model.layers import layer_output
+from ..model.layers import output_on_grids
+from ..planning.threads import threads
 from ..viz.explorer_figure import PlotData
 from .explorer_state import ExplorerState
 from .explorer_subject import ExplorerSubject
@@ -37,6 +40,7 @@ ZOOM_BINS = 33
 CURVE_POINTS = 1200
 SAMPLE_POINTS = 300
 ERROR_SAMPLE = 20000
+MAPS_KEPT = 8  # bin maps remembered, for moves back and forth between widths or noise levels
 
 
 class SampledError:
@@ -54,12 +58,14 @@ class ExplorerNumbers:
         self._sorted: dict = {}
         self._caches: dict = {}
 
-    def _cached(self, name: str, key, compute):
-        hit = self._caches.get(name)
-        if hit is not None and hit[0] == key:
-            return hit[1]
-        value = compute()
-        self._caches[name] = (key, value)
+    def _cached(self, name: str, key, compute, keep: int = 1):
+        """``compute()``'s value for ``key``, the last ``keep`` keys of ``name`` remembered."""
+        entries = self._caches.setdefault(name, {})
+        if key in entries:
+            return entries[key]
+        value = entries[key] = compute()
+        while len(entries) > keep:
+            del entries[next(iter(entries))]
         return value
 
     # ------------------------------------------------------------------ readout figures
@@ -76,34 +82,39 @@ class ExplorerNumbers:
         return self._cached("tensor", (src, st.version[src], id(g)), compute)
 
     def layer(self, st: ExplorerState, rows: int | None = None):
-        """(ErrorStats or SampledError, output sample for the scatter) with the current grid.
+        """(ErrorStats or SampledError, (float, quantized) output sample for the scatter) with
+        the current grid.
 
         ``rows``: measure on that many evenly spread input rows (None: all of them)."""
+        return self.layer_soon(st, rows, threads=None, background=False)()
+
+    def layer_soon(self, st: ExplorerState, rows: int | None = None, *, threads: int | None = 1,
+                   background: bool = True) -> Callable[[], tuple]:
+        """Start :meth:`layer` for the current state on a worker thread (``threads``: torch's
+        intra-op threads there, None: torch's setting) and return a function that waits for
+        it. The layer output is a matrix product that runs without Python's lock, so the plots
+        that do not need it are drawn meanwhile on the caller's thread."""
         sub, src, g = self.subject, st.source, st.grid
         n = sub.inputs.shape[0]
         sampled = rows is not None and rows < n
+        key = (src, st.version[src], id(g), rows if sampled else None)
+        hit = self._caches.get("layer", {})
+        if key in hit:
+            value = hit[key]
+            return lambda: value
+        job = _LayerJob(sub, src, g, rows if sampled else None)
+        if not background:
+            value = job.run(threads)
+            self._caches["layer"] = {key: value}
+            return lambda: value
+        future = _worker().submit(job.run, threads)
 
-        def compute():
-            kw = {"weight_grid": g} if src == "weight" else {"input_grid": g}
-            if not sampled:
-                out = layer_output(sub.layer, sub.inputs, **kw)
-                sample = out.reshape(-1)[sub.scatter_idx].double().numpy()
-                return error_stats(sub.reference, out), sample
-            idx = torch.linspace(0, n - 1, rows).round().long().unique()
-            out = layer_output(sub.layer, sub.inputs[idx], **kw)
-            ref = sub.reference[idx]
-            stats = error_stats(ref, out)
-            per = out.shape[0]
-            e = (out - ref).double().reshape(per, -1).square().sum(1)
-            s = ref.double().reshape(per, -1).square().sum(1)
-            se = _ratio_se_db(e, s, per, n)
-            flat = out.reshape(-1)
-            pick = torch.randperm(flat.numel(), generator=torch.Generator().manual_seed(0))
-            pick = pick[: min(len(sub.scatter_x), flat.numel())]
-            xs = ref.reshape(-1)[pick].double().numpy()
-            return SampledError(stats, idx.numel(), n, se), (xs, flat[pick].double().numpy())
+        def result():
+            value = future.result()
+            self._caches["layer"] = {key: value}
+            return value
 
-        return self._cached("layer", (src, st.version[src], id(g), rows if sampled else None), compute)
+        return result
 
     # ------------------------------------------------------------------ plot data
     def plot_data(self, st: ExplorerState, view: tuple, error_sample: torch.Tensor,
@@ -131,8 +142,8 @@ class ExplorerNumbers:
         xs_few = torch.linspace(v0, v1, SAMPLE_POINTS)
         samples = relaxed_quantize(xs_few.expand(3, -1), g, noise_w, st.temperature,
                                    window=window, generator=gen).numpy()
-        if self.subject.has_layer:
-            out_x, out_y = layer_sample
+        if self.subject.has_layer:  # None: the scatter is updated on its own (update_out)
+            out_x, out_y = layer_sample if layer_sample is not None else (None, None)
         else:
             ev = error_sample
             err = ((quantize(ev, g) - ev) / step).double()
@@ -169,7 +180,51 @@ class ExplorerNumbers:
             image[codes[r, c], r] = probs[r, c]
             return image, (k0 - 1.5, k1 + 1.5, k0 - 0.5, k1 + 0.5)
 
-        return self._cached("map", key, compute)
+        return self._cached("map", key, compute, keep=MAPS_KEPT)
+
+
+_WORKER: list = []  # one thread for every explorer's layer outputs (updates run one at a time)
+
+
+def _worker() -> ThreadPoolExecutor:
+    if not _WORKER:
+        _WORKER.append(ThreadPoolExecutor(1, thread_name_prefix="qwidgets-explorer"))
+    return _WORKER[0]
+
+
+class _LayerJob:
+    """The layer-output measurement of one grid, from values that do not change meanwhile."""
+
+    def __init__(self, subject: ExplorerSubject, source: str, grid: UniformGrid, rows: int | None):
+        self.subject, self.source, self.grid, self.rows = subject, source, grid, rows
+
+    def run(self, n_threads: int | None):
+        with threads(n_threads):
+            return self._measure()
+
+    def _measure(self):
+        sub, g, rows = self.subject, self.grid, self.rows
+        # the values were checked when the explorer was made: the unchecked core functions
+        # compute what layer_output computes, without a second NaN / inf scan
+        kw = {"weight_grid": g} if self.source == "weight" else {"input_grid": g}
+        if rows is None:
+            out = output_on_grids(sub.layer, sub.inputs, **kw)
+            sample = out.reshape(-1)[sub.scatter_idx].double().numpy()
+            return error_stats(sub.reference, out), (sub.scatter_x, sample)
+        n = sub.inputs.shape[0]
+        idx = torch.linspace(0, n - 1, rows).round().long().unique()
+        out = output_on_grids(sub.layer, sub.inputs[idx], **kw)
+        ref = sub.reference[idx]
+        stats = error_stats(ref, out)
+        per = out.shape[0]
+        e = (out - ref).double().reshape(per, -1).square().sum(1)
+        s = ref.double().reshape(per, -1).square().sum(1)
+        se = _ratio_se_db(e, s, per, n)
+        flat = out.reshape(-1)
+        pick = torch.randperm(flat.numel(), generator=torch.Generator().manual_seed(0))
+        pick = pick[: min(len(sub.scatter_x), flat.numel())]
+        xs = ref.reshape(-1)[pick].double().numpy()
+        return SampledError(stats, idx.numel(), n, se), (xs, flat[pick].double().numpy())
 
 
 def _window(grid: UniformGrid):

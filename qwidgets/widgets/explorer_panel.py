@@ -139,8 +139,8 @@ def clip_warning(state, usage) -> str:
     """
     if usage.clipped_fraction <= WARN_CLIPPED:
         return ""
-    v = state.values[state.source]
     why = ""
-    if not state.grid.signed and float(v.min()) < 0:
-        why = f" (unsigned codes on signed values: {100 * float((v < 0).double().mean()):.3g} % are negative)"
+    negative = state.negative_share(state.source)
+    if not state.grid.signed and negative > 0:
+        why = f" (unsigned codes on signed values: {100 * negative:.3g} % are negative)"
     return f"warning: this grid clips {100 * usage.clipped_fraction:.3g} % of the values{why}"

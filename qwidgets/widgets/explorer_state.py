@@ -82,6 +82,7 @@ class ExplorerState(traitlets.HasTraits):
         self.version: dict = {}  # source -> edit counter
         self._fitted: dict = {}  # (source, bits, method, signed, axis) -> grid
         self._fitters: dict = {}  # (source, method, signed, axis) -> RangeFitter
+        self._ranges: dict = {}  # (source, channel shown) -> (min, max); share below 0
         super().__init__(source=source, method=method, noise_steps=noise_steps, temperature=temperature)
 
     @property
@@ -359,6 +360,22 @@ class ExplorerState(traitlets.HasTraits):
         if self.grid.axis is not None:
             return v.movedim(self.grid.axis, 0)[self.channel].reshape(-1)
         return v.reshape(-1)
+
+    def shown_range(self) -> tuple:
+        """(lowest, highest) of :meth:`shown_values`, kept per source and channel (the
+        values never change; a width or layout change asks again)."""
+        key = (self.source, None if self.grid.axis is None else (self.grid.axis, self.channel))
+        hit = self._ranges.get(key)
+        if hit is None:
+            v = self.shown_values()
+            hit = self._ranges[key] = (float(v.min()), float(v.max()))
+        return hit
+
+    def negative_share(self, source: str) -> float:
+        """The share of ``source``'s values below zero (kept: the values never change)."""
+        if ("negative", source) not in self._ranges:
+            self._ranges[("negative", source)] = float((self.values[source] < 0).double().mean())
+        return self._ranges[("negative", source)]
 
     def fitted_step(self) -> float:
         """The fitted step of the channel shown (the centre of the step control's window)."""
