@@ -24,7 +24,8 @@ from qwidgets import (
     layer_error,
     quantize,
 )
-from qwidgets.widgets import events
+from qwidgets.widgets import events, explorer_state
+from qwidgets.widgets.explorer import SETTLE_S
 
 
 @pytest.fixture(scope="module")
@@ -222,6 +223,41 @@ def test_a_burst_of_200_changes_costs_a_few_renders_and_ends_in_the_last_value(s
     assert ex.grid.scale == pytest.approx(values[-1])
     _assert_stats_close(ex.stats, error_stats(layer.weight, quantize(layer.weight.detach(), ex.grid)))
     assert ex.readouts["tensor SQNR"] in ex.readout.value
+
+
+def test_while_idle_after_a_draw_the_other_widths_are_fitted_one_step_at_a_time(subject, monkeypatch):
+    """After a draw the kernel fits ahead, one width per idle step, nearest first (3 and 5 next
+    to 4, then 2, 6, 1, 7, 8, then 4 bits unsigned); a move waiting stops the steps, the next
+    draw starts them again; a width fitted ahead costs no fit when it is chosen."""
+    layer, x = subject
+    ex = GridExplorer(layer, x, bits=4)
+    loop = FakeLoop()
+    monkeypatch.setattr(events, "_running_loop", lambda: loop)
+    fits = []
+    real = explorer_state.fit_cached
+
+    def counting(fitter, widths):
+        fits.append((round(loop.now, 4), widths[0], fitter.signed))
+        return real(fitter, widths)
+
+    monkeypatch.setattr(explorer_state, "fit_cached", counting)
+    ex.state.scale = ex.grid.scale * 1.1
+    loop.advance(0.03)  # the coalesced redraw
+    assert fits == []
+    loop.advance(SETTLE_S + events.IDLE_STEP_S / 2)  # the first idle step
+    assert [b for _, b, _ in fits] == [3]
+    ex.state.noise_steps = 0.5  # a move waits: no idle step runs before its redraw
+    loop.advance(0.02)
+    assert len(fits) == 1
+    loop.advance(5.0)
+    assert [(b, signed) for _, b, signed in fits] == [
+        (3, True), (5, True), (2, True), (6, True), (1, True), (7, True), (8, True), (4, False)]
+    times = [t for t, _, _ in fits]
+    assert all(b - a >= events.IDLE_STEP_S - 1e-9 for a, b in zip(times[:-1], times[1:], strict=True))
+    ex.state.bits = 7
+    assert len(fits) == 8 and ex.grid.bits == 7  # fitted ahead: no fit now
+    assert not ex.state.prefetch(limit=1)  # one fit was left around 7 bits, and is done:
+    assert [(b, signed) for _, b, signed in fits[8:]] == [(7, False)]  # 7 bits unsigned
 
 
 def test_refresh_leaves_torch_thread_count_as_it_was(subject):

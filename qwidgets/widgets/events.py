@@ -1,10 +1,13 @@
-"""Event plumbing shared by the widgets: coalesced updates, the message line.
+"""Event plumbing shared by the widgets: coalesced updates, idle steps, the message line.
 
 ``Coalescer(callback, delay=0.03, on_error=None)``
     ``.request()`` records that an update is due and schedules one ``callback`` call on the
     running event loop (the kernel's); more requests before it runs add nothing, so a burst of
     slider events costs one update and the update sees the latest values. ``.flush()`` runs a
     pending call now. With no running loop (a script, a test) requests wait for ``flush()``.
+``IdleSteps(step, busy, delay)``
+    ``.start()``: run ``step()`` while the kernel is idle, one short step at a time, until it
+    says it is done or something else waits (the explorer fits other bit widths this way).
 ``MessageLine()``
     ``.widget`` (an ``ipywidgets.HTML``), ``.text``, ``.error(exc, context)``, ``.info(text)``,
     ``.clear()``, ``.run(context, fn)`` and ``.guard(context)``: a context manager that shows an
@@ -36,6 +39,36 @@ def _running_loop():
         return asyncio.get_running_loop()
     except RuntimeError:
         return None
+
+
+class IdleSteps:
+    """Run ``step()`` while the kernel is idle: ``delay`` seconds after :meth:`start`, then
+    again every few milliseconds while it returns True (more to do) and ``busy()`` is False
+    (nothing else waits). A new start replaces the one waiting. No running loop: nothing.
+
+    >>> IdleSteps(lambda: True, lambda: False, 0.1).start()  # no running loop here
+    """
+
+    def __init__(self, step: Callable[[], bool], busy: Callable[[], bool], delay: float):
+        self.step, self.busy, self.delay = step, busy, float(delay)
+        self._handle = None
+
+    def start(self) -> None:
+        loop = _running_loop()
+        if loop is None:
+            return
+        if self._handle is not None:
+            self._handle.cancel()
+        self._handle = loop.call_later(self.delay, self._run)
+
+    def _run(self) -> None:
+        self._handle = None
+        loop = _running_loop()
+        if loop is not None and not self.busy() and self.step():
+            self._handle = loop.call_later(IDLE_STEP_S, self._run)
+
+
+IDLE_STEP_S = 0.005  # between idle steps: the loop reads waiting messages in between
 
 
 class Coalescer:

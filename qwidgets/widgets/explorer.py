@@ -34,7 +34,7 @@ from ..learn.one_grid import DEFAULT_NOISE_STEPS, LearnResult
 from ..planning.threads import threads
 from ..viz.explorer_figure import ExplorerFigure
 from .display_snapshot import SnapshotDisplay
-from .events import Coalescer, MessageLine, running_loop
+from .events import Coalescer, IdleSteps, MessageLine, running_loop
 from .explorer_controls import ExplorerControls
 from .explorer_learning import LearnRunner
 from .explorer_numbers import ExplorerNumbers
@@ -135,6 +135,8 @@ class GridExplorer(SnapshotDisplay, widgets.VBox):
         self._clock, self._moving, self._settle_handle = clock, False, None
         self._updater = Coalescer(self._interactive_redraw, delay=0.03,
                                   on_error=lambda e: self.message.error(e, "update"))
+        self._prefetch = IdleSteps(lambda: self.state.prefetch(limit=1), lambda: self._updater.pending,
+                                   SETTLE_S)
         if grid is not None:
             self.show_setting(LayerSetting(weight=grid), note=False)
         self._build_widgets(width, height, output)
@@ -350,8 +352,7 @@ class GridExplorer(SnapshotDisplay, widgets.VBox):
             if self._settle_handle is not None:
                 self._settle_handle.cancel()
             self._settle_handle = loop.call_later(SETTLE_S, self._settle)
-        if loop is not None:  # after the first draw, fit the neighbouring widths while idle
-            loop.call_later(SETTLE_S, lambda: None if self._updater.pending else self.state.prefetch())
+        self._prefetch.start()  # after a draw, fit other widths while idle, one at a time
 
     def _settle(self) -> None:
         self._settle_handle = None
@@ -376,11 +377,10 @@ class GridExplorer(SnapshotDisplay, widgets.VBox):
                                                                      threads=self.refresh_threads)
             self.figure.update(self.numbers.plot_data(self.state, self.figure.view,
                                                       self.axes.error_sample))
+            layer = None
             if job:
                 self.canvas.encode_ahead(self.figure.ax_out)  # (and compressed) meanwhile
-            layer = job() if job else None
-            if layer is not None:
-                self.figure.update_out(*layer[1])
+                self.figure.update_out(*(layer := job())[1])
             self.readout.value = self._readout_html(layer)
             self.canvas.render()
 

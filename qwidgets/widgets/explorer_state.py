@@ -35,7 +35,9 @@ from ..core.grid_cache import fit_cached
 from ..core.ranges import METHODS, RangeFitter
 from ..model.layers import WEIGHT_AXIS
 
-__all__ = ["ExplorerState", "role"]
+__all__ = ["ExplorerState", "role", "PREFETCH_UP_TO"]
+
+PREFETCH_UP_TO = 8  # widths fitted ahead while idle: all up to this many bits (the usual choices)
 
 
 class ExplorerState(traitlets.HasTraits):
@@ -82,7 +84,7 @@ class ExplorerState(traitlets.HasTraits):
         self.version: dict = {}  # source -> edit counter
         self._fitted: dict = {}  # (source, bits, method, signed, axis) -> grid
         self._fitters: dict = {}  # (source, method, signed, axis) -> RangeFitter
-        self._ranges: dict = {}  # (source, channel shown) -> (min, max); share below 0
+        self._ranges: dict = {}  # (source, channel) -> (min, max); source -> share below 0
         super().__init__(source=source, method=method, noise_steps=noise_steps, temperature=temperature)
 
     @property
@@ -278,13 +280,21 @@ class ExplorerState(traitlets.HasTraits):
         self.probe = self.probes[self.source]
         self._follow()
 
-    def prefetch(self) -> None:
-        """Fit the widths next to the current one (a kernel calls this while idle, so the next
-        width change finds its range fitted)."""
+    def prefetch(self, limit: int | None = None) -> bool:
+        """Fit ahead, nearest first: the widths next to the current one, the others up to
+        :data:`PREFETCH_UP_TO` bits, then (without device rules) the other signedness.
+        ``limit``: at most that many fits (a kernel fits one at a time while idle, so a move
+        arriving meanwhile waits for one fit at most). Returns whether any is left to fit."""
         g, menu = self.grid, self.bits_menu()
         i = menu.index(g.bits) if g.bits in menu else 0
-        for bits in menu[max(i - 1, 0):i + 2]:
-            self.fitted(self.source, bits, g.signed, g.axis is not None)
+        near = menu[max(i - 1, 0):i + 2]
+        rest = sorted((b for b in menu if b <= PREFETCH_UP_TO and b not in near), key=lambda b: (abs(b - g.bits), b))
+        todo = [(b, g.signed) for b in (*near, *rest)] + [(g.bits, not g.signed)] * (self.rules is None)
+        axis = None if g.axis is None else WEIGHT_AXIS
+        todo = [(b, sg) for b, sg in todo if (self.source, b, self.method, sg, axis) not in self._fitted]
+        for bits, signed in todo[:limit]:
+            self.fitted(self.source, bits, signed, axis is not None)
+        return limit is not None and len(todo) > limit
 
     def fitted_now(self) -> UniformGrid:
         """The fitted grid for the current source, bits, signedness and per-channel choice."""
@@ -362,20 +372,18 @@ class ExplorerState(traitlets.HasTraits):
         return v.reshape(-1)
 
     def shown_range(self) -> tuple:
-        """(lowest, highest) of :meth:`shown_values`, kept per source and channel (the
-        values never change; a width or layout change asks again)."""
-        key = (self.source, None if self.grid.axis is None else (self.grid.axis, self.channel))
-        hit = self._ranges.get(key)
-        if hit is None:
+        """(lowest, highest) of :meth:`shown_values` (kept: the values never change)."""
+        key = (self.source, None if self.grid.axis is None else self.channel)
+        if key not in self._ranges:
             v = self.shown_values()
-            hit = self._ranges[key] = (float(v.min()), float(v.max()))
-        return hit
+            self._ranges[key] = (float(v.min()), float(v.max()))
+        return self._ranges[key]
 
     def negative_share(self, source: str) -> float:
         """The share of ``source``'s values below zero (kept: the values never change)."""
-        if ("negative", source) not in self._ranges:
-            self._ranges[("negative", source)] = float((self.values[source] < 0).double().mean())
-        return self._ranges[("negative", source)]
+        if source not in self._ranges:
+            self._ranges[source] = float((self.values[source] < 0).double().mean())
+        return self._ranges[source]
 
     def fitted_step(self) -> float:
         """The fitted step of the channel shown (the centre of the step control's window)."""
