@@ -92,6 +92,26 @@ def test_every_control_on_the_demo_reports_no_failure():
         assert torch.equal(v, before[k]), k  # the user's model is untouched
 
 
+def test_every_control_on_a_transformer_reports_no_failure():
+    """The second kind of model of the issue: an encoder (attention and feed-forward blocks,
+    tests/attention_models.py); layers inside its blocks get 3-D inputs (batch, sequence,
+    features). The model's state and torch's attention fast-path switch are left as they were."""
+    from attention_models import EncoderClassifier, sequences
+
+    torch.manual_seed(5)
+    model = EncoderClassifier().eval()
+    before = copy.deepcopy(model.state_dict())
+    fastpath = torch.backends.mha.get_fastpath_enabled()
+    for name in ("encoder.layers.0.linear1", "encoder.layers.1.linear2"):
+        ex = GridExplorer(model, sequences(n=12), layer=name, bits=4)
+        assert ex.subject.inputs.dim() == 3
+        messages = _move_every_control(ex)
+        assert any(m.startswith("fitted the range") for m in messages)
+    assert torch.backends.mha.get_fastpath_enabled() == fastpath
+    for k, v in model.state_dict().items():
+        assert torch.equal(v, before[k]), k
+
+
 @pytest.mark.parametrize("dtype", [torch.float32, torch.float16, torch.bfloat16])
 def test_every_control_on_a_small_conv_net_reports_no_failure(dtype):
     torch.manual_seed(4)
