@@ -123,9 +123,11 @@ class OnnxCheck:
         lines = [f"{self.path} {verdict} apply_plan on {self.n_samples} samples "
                  f"(relative difference < {self.tolerance:g}):",
                  f"  ONNX reference evaluator:            {self.reference_diff:.3g} "
-                 f"(max abs {self.reference_max_abs:.3g}){_levels_text(self.reference_levels)}",
+                 f"(max abs {self.reference_max_abs:.3g})"
+                 f"{_levels_text(self.reference_levels, self.reference_diff, self.tolerance)}",
                  f"  ONNX Runtime, optimizations off:     {self.runtime_diff:.3g} "
-                 f"(max abs {self.runtime_max_abs:.3g}){_levels_text(self.runtime_levels)}"]
+                 f"(max abs {self.runtime_max_abs:.3g})"
+                 f"{_levels_text(self.runtime_levels, self.runtime_diff, self.tolerance)}"]
         if self.optimized_error is None:
             lines.append(f"  ONNX Runtime, default optimizations: {self.optimized_diff:.3g} "
                          f"(max abs {self.optimized_max_abs:.3g})")
@@ -146,11 +148,14 @@ class OnnxCheck:
         return "\n".join(lines)
 
 
-def _levels_text(lv: LevelReport | None) -> str:
-    if lv is None or not lv.flips:
+def _levels_text(lv: LevelReport | None, diff: float, tolerance: float) -> str:
+    if lv is None or (diff < tolerance and not lv.flips):
         return ""
-    return (f"\n      {lv.flips:,} of {lv.n_values:,} activation values on the neighbouring level (each "
-            f"within {lv.flip_gap:.2g} steps of a boundary); fed apply_plan's levels: {lv.forced_diff:.3g}")
+    flips = (f"{lv.flips:,} of {lv.n_values:,} on the neighbouring level, each within "
+             f"{lv.flip_gap:.2g} steps of a boundary" if lv.flips else f"none of {lv.n_values:,} on another level")
+    return (f"\n      fed apply_plan's levels: {lv.forced_diff:.3g}; activation values before each quantizer "
+            f"within {lv.value_diff:.2g}, {flips}"
+            + ("" if lv.misquantized == 0 else f"; {lv.misquantized:,} quantized off the plan's grids"))
 
 
 class _Sums:

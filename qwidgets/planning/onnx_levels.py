@@ -89,7 +89,9 @@ class LevelReport:
     ``forced_diff``: the relative difference of its output from apply_plan's (the file's
     arithmetic between quantizers alone); ``value_diff``: the largest relative difference,
     over the points, of the values before quantization; ``flips``: values (of ``n_values``)
-    the file rounds to another level than apply_plan; ``flip_gap``: the largest difference of
+    the file rounds to another level than apply_plan with apply_plan's levels upstream (left
+    to itself the file may flip other values as close to a boundary: its upstream then
+    differs from torch's by float rounding too); ``flip_gap``: the largest difference of
     a flipped value from apply_plan's, in steps of its grid (a boundary lies between the two
     values, so each was at most that far from it); ``flip_rel``: the same difference relative
     to the largest magnitude of its point's values. ``misquantized``: values the file's own
