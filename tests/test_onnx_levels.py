@@ -168,3 +168,24 @@ def test_a_file_on_other_grids_does_not_match(part, tmp_path):
         assert levels.misquantized > 0
     else:
         assert levels.forced_diff > RTOL and levels.misquantized == 0
+
+
+def test_a_file_traced_with_a_fixed_batch_size_is_explained(tmp_path):
+    """A forward that reads len(x) fixes the example's batch size in the trace; the runtimes
+    then refuse other batch sizes, and check_onnx says why and what to write instead."""
+
+    class FixedBatch(TinyViT):
+        def forward(self, img):
+            p = self.patch(img).flatten(2).transpose(1, 2)
+            x = torch.cat([self.cls.expand(len(img), -1, -1), p], dim=1) + self.pos
+            return self.head(self.norm(self.encoder(x))[:, 0])
+
+    torch.manual_seed(0)
+    net, x = FixedBatch().eval(), _images(8)
+    table = scan(net, x, bits=(8,), progress=False)
+    plan = plan_budget(table, mean_bits=mean_bits_for(table, 8))
+    path = tmp_path / "fixed.onnx"
+    export_onnx(net, plan, path, x[:2])
+    assert check_onnx(path, net, plan, x[:2]).matches  # its own batch size runs
+    with pytest.raises(ValueError, match=r"batch of 8 samples.*len\(x\).*x\.shape\[0\]"):
+        check_onnx(path, net, plan, x)

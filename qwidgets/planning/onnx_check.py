@@ -256,7 +256,7 @@ def check_onnx(path: str | os.PathLike, model: nn.Module, plan: Plan, data: Any,
         flat = list(iter_tensors(want))
         ref = run_with_hooks(net if widened else model, _batch_of(args, kwargs), {}, pre=False)
         effect.add(float_parts(want, "planned", output), float_parts(ref, "float", output))
-        outs = {k: [np.asarray(v) for v in run(feed)] for k, run in sessions.items()}
+        outs = {k: _run(k, run, feed, batch_size(batch)) for k, run in sessions.items()}
         k_n = batch_size(batch)
         n += k_n
         t = None
@@ -277,7 +277,7 @@ def check_onnx(path: str | os.PathLike, model: nn.Module, plan: Plan, data: Any,
         if forced and forced_feed is None:  # apply_plan quantized other values than the file marks
             forced, levels = {}, {}
         for k, run in forced.items():
-            got = [np.asarray(v) for v in run(forced_feed)]
+            got = _run(k, run, forced_feed, batch_size(batch))
             rebuilt = refill(want, [torch.as_tensor(g) for g in got[:len(flat)]])
             forced_sums[k].add(float_parts(rebuilt, "file", output), float_parts(want, "planned", output))
             levels[k].add(observed, {**feed, **dict(zip(extra, got[len(flat):], strict=True))})
@@ -310,6 +310,22 @@ def _sessions(path: str, ort, reference_evaluator) -> tuple[dict, str | None]:
         return out, f"{type(e).__name__}: {e}"
     out["optimized"] = lambda feed: optimized.run(None, feed)
     return out, None
+
+
+_RUNS = {"reference": "the ONNX reference evaluator", "runtime": "ONNX Runtime (optimizations off)",
+         "optimized": "ONNX Runtime's default session"}
+
+
+def _run(kind: str, run, feed: dict, n: int) -> list:
+    try:
+        return [np.asarray(v) for v in run(feed)]
+    except Exception as e:  # the runtimes raise their own types; say what usually causes it
+        raise ValueError(
+            f"the file could not run a batch of {n} samples in {_RUNS[kind]} ({type(e).__name__}: "
+            f"{str(e)[:300]}). If it runs the batch size of export_onnx's example_inputs only, the "
+            "model's forward fixed that size in the trace (a Python int such as len(x) or "
+            "int(x.shape[0]) becomes a constant): write x.shape[0] / x.size(0) in the forward, or "
+            "export with example_inputs of the batch size you will run") from e
 
 
 def _forced_sessions(proto, points, ort, reference_evaluator) -> tuple[dict, list[str]]:
