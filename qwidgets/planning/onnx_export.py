@@ -19,6 +19,10 @@ opset and rewritten (:mod:`.onnx_graph`):
   ``ReduceMax`` over the last axis, ``Div`` by qmax, ``Max`` with float32's smallest normal
   number) and passes through a blocked ``QuantizeLinear`` / ``DequantizeLinear`` whose
   ``block_size`` is the last axis (one scale per row; ``output_dtype`` signed, no zero point).
+  Signed 8-bit codes of a fitted input grid are written as uint8 with the zero point + 128 (the
+  same levels: ``QuantizeLinear`` rounds before it adds the zero point), which ONNX Runtime's
+  default session loads on attention graphs where its own int8 rewrite failed. The activation
+  points are recorded in the file's ``metadata_props`` for :func:`qwidgets.check_onnx`.
 
 Opset 21 is the first with 4-bit and 16-bit integer types for these operators. The file is
 written with IR version 10 (the lowest that holds opset 21), which runtimes that read only up to
