@@ -65,8 +65,8 @@ class PlotData:
     probe_pos: float  # probe position in grid steps
     probe_codes: np.ndarray  # bins of the bars
     probe_probs: np.ndarray  # their probabilities
-    curve_x: np.ndarray
-    curve_hard: np.ndarray
+    curve_x: np.ndarray  # positions of the relaxed expectation
+    curve_hard: tuple  # (x, y) vertices of the hard quantizer's line
     curve_expected: np.ndarray
     curve_samples: list  # (x, y) arrays of relaxed samples
     out_x: np.ndarray | None  # float output sample (or error positions for a tensor)
@@ -173,8 +173,7 @@ class ExplorerFigure:
         # the relaxed samples, one after another in one artist (one marker draw, not three)
         (self.sample_points,) = ax.plot([], [], ls="none", marker=".", ms=2.5, color=SAMPLE_COLOR,
                                         alpha=0.6, label="relaxed samples")
-        (self.hard_line,) = ax.plot([], [], color=HARD_COLOR, lw=1.4, drawstyle="steps-mid",
-                                    label="hard (round to nearest)")
+        (self.hard_line,) = ax.plot([], [], color=HARD_COLOR, lw=1.4, label="hard (round to nearest)")
         (self.soft_line,) = ax.plot([], [], color=SOFT_COLOR, lw=1.3, ls="--",
                                     label="relaxed expectation")
         ax.set_title("Transfer curve")
@@ -300,8 +299,8 @@ class ExplorerFigure:
             self.bars.set_data(d.probe_probs, edges)
 
     def _update_curve(self, d: PlotData):
-        if self._new("hard", d.curve_x, d.curve_hard):
-            self.hard_line.set_data(d.curve_x, d.curve_hard)
+        if self._new("hard", *d.curve_hard):
+            self.hard_line.set_data(*d.curve_hard)
         if self._new("soft", d.curve_x, d.curve_expected):
             self.soft_line.set_data(d.curve_x, d.curve_expected)
         xs = np.concatenate([x for x, _ in d.curve_samples]) if d.curve_samples else np.zeros(0)

@@ -119,43 +119,42 @@ class ExplorerNumbers:
     # ------------------------------------------------------------------ plot data
     def plot_data(self, st: ExplorerState, view: tuple, error_sample: torch.Tensor,
                   layer_sample=None) -> PlotData:
+        """What the plots show for ``st``; each part is recomputed only when what it depends on
+        moved (a temperature move draws new relaxed samples and nothing else)."""
         g = st.shown_grid()
         step, offset = float(g.scale), float(g.offset)
         noise_w = st.noise_steps * step
         window = _window(g)
-        probe = st.probe
-        probe_pos = (probe - offset) / step
+        shown = (g.bits, g.signed, step, offset)  # the shown grid, as a key
+        probe_pos = (st.probe - offset) / step
         image, extent = self._map(g, probe_pos, st.noise_steps)
-        pp, pk = bin_probabilities(torch.tensor([probe]), g, noise_w, window=window)
-        pk = pk.reshape(-1).numpy()
-        pp = pp.reshape(-1).double().numpy()
-        k0, k1 = extent[2] + 0.5, extent[3] - 0.5
-        keep = (pk >= k0) & (pk <= k1)
-        codes = np.arange(int(k0), int(k1) + 1)
-        probs = np.zeros(codes.size)
-        probs[(pk[keep] - int(k0)).astype(int)] = pp[keep]
+        codes, probs = self._cached("bars", (shown, noise_w, st.probe, extent),
+                                    lambda: _probe_bars(g, st.probe, noise_w, window, extent))
         v0, v1 = view
+        hard_x, hard_y = self._cached("hard", (shown, view), lambda: _hard_curve(g, v0, v1))
         xs = torch.linspace(v0, v1, CURVE_POINTS)
-        hard = quantize(xs, g).numpy()
-        expected = expected_quantize(xs, g, noise_w, window=window).numpy()
-        gen = torch.Generator().manual_seed(2)
-        xs_few = torch.linspace(v0, v1, SAMPLE_POINTS)
-        samples = relaxed_quantize(xs_few.expand(3, -1), g, noise_w, st.temperature,
-                                   window=window, generator=gen).numpy()
+        expected = self._cached("soft", (shown, noise_w, view),
+                                lambda: expected_quantize(xs, g, noise_w, window=window).numpy())
+
+        def draw_samples():
+            gen = torch.Generator().manual_seed(2)
+            xs_few = torch.linspace(v0, v1, SAMPLE_POINTS)
+            ys = relaxed_quantize(xs_few.expand(3, -1), g, noise_w, st.temperature, window=window,
+                                  generator=gen).numpy()
+            return [(xs_few.numpy(), y) for y in ys]
+
+        samples = self._cached("samples", (shown, noise_w, st.temperature, view), draw_samples)
         if self.subject.has_layer:  # None: the scatter is updated on its own (update_out)
             out_x, out_y = layer_sample if layer_sample is not None else (None, None)
         else:
-            ev = error_sample
-            err = ((quantize(ev, g) - ev) / step).double()
-            edges = np.linspace(-2.5, 2.5, 51)
-            counts = torch.histc(err.clamp(-2.5, 2.5), bins=50, min=-2.5, max=2.5).numpy()
-            out_x, out_y = edges, counts / max(err.numel(), 1)
-        lo, hi = g.clip_range
+            # (the sample is kept with its histogram, so its id stays its own while cached)
+            out_x, out_y, _ = self._cached("errors", (shown, id(error_sample)),
+                                           lambda: (*_error_histogram(g, error_sample), error_sample))
         return PlotData(
-            levels=g.levels.double().numpy(), clip=(lo, hi), step=step, map_image=image,
+            levels=g.levels.double().numpy(), clip=g.clip_range, step=step, map_image=image,
             map_extent=extent, probe_pos=probe_pos, probe_codes=codes, probe_probs=probs,
-            curve_x=xs.numpy(), curve_hard=hard, curve_expected=expected,
-            curve_samples=[(xs_few.numpy(), y) for y in samples], out_x=out_x, out_y=out_y,
+            curve_x=xs.numpy(), curve_hard=(hard_x, hard_y), curve_expected=expected,
+            curve_samples=samples, out_x=out_x, out_y=out_y,
         )
 
     def _map(self, g: UniformGrid, probe_pos: float, noise_steps: float):
@@ -225,6 +224,42 @@ class _LayerJob:
         pick = pick[: min(len(sub.scatter_x), flat.numel())]
         xs = ref.reshape(-1)[pick].double().numpy()
         return SampledError(stats, idx.numel(), n, se), (xs, flat[pick].double().numpy())
+
+
+def _probe_bars(g: UniformGrid, probe: float, noise: float, window, extent):
+    """(codes, probabilities) of the bins shown by the map, at the probe."""
+    pp, pk = bin_probabilities(torch.tensor([probe]), g, noise, window=window)
+    pk = pk.reshape(-1).numpy()
+    pp = pp.reshape(-1).double().numpy()
+    k0, k1 = extent[2] + 0.5, extent[3] - 0.5
+    keep = (pk >= k0) & (pk <= k1)
+    codes = np.arange(int(k0), int(k1) + 1)
+    probs = np.zeros(codes.size)
+    probs[(pk[keep] - int(k0)).astype(int)] = pp[keep]
+    return codes, probs
+
+
+def _hard_curve(g: UniformGrid, v0: float, v1: float):
+    """The hard quantizer over ``[v0, v1]`` as a step line: a vertex pair at each rounding
+    boundary (halfway between grid levels) in view, each flat piece's value from
+    :func:`quantize` at its middle. With more steps in view than the curve has points (they
+    would be under a pixel) the quantizer sampled at those points instead."""
+    levels = g.levels.double()
+    cuts = ((levels[:-1] + levels[1:]) / 2).numpy()
+    cuts = cuts[(cuts > v0) & (cuts < v1)]
+    if 2 * cuts.size > CURVE_POINTS:
+        xs = torch.linspace(v0, v1, CURVE_POINTS)
+        return xs.double().numpy(), quantize(xs, g).double().numpy()
+    ends = np.concatenate([[v0], cuts, [v1]])
+    flat = quantize(torch.from_numpy((ends[:-1] + ends[1:]) / 2), g).numpy()
+    return np.repeat(ends, 2)[1:-1], np.repeat(flat, 2)
+
+
+def _error_histogram(g: UniformGrid, values: torch.Tensor):
+    """Shares of ``values`` by quantization error in steps, 50 bins over -2.5..2.5."""
+    err = ((quantize(values, g) - values) / float(g.scale)).double()
+    counts = torch.histc(err.clamp(-2.5, 2.5), bins=50, min=-2.5, max=2.5).numpy()
+    return np.linspace(-2.5, 2.5, 51), counts / max(err.numel(), 1)
 
 
 def _window(grid: UniformGrid):
