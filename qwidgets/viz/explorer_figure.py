@@ -14,7 +14,8 @@ from dataclasses import dataclass
 import matplotlib
 import numpy as np
 from matplotlib.gridspec import GridSpec
-from matplotlib.patches import Rectangle
+from matplotlib.patches import PathPatch
+from matplotlib.path import Path
 from matplotlib.ticker import FuncFormatter, NullFormatter, NullLocator
 
 from .canvas import BlitCanvas
@@ -51,6 +52,14 @@ def _count_label(v: float, _pos=None) -> str:
         if v >= unit:
             return f"{v / unit:g}{name}"
     return f"{v:g}"
+
+
+def _two_boxes(a0: float, a1: float, b0: float, b1: float) -> Path:
+    """Two full-height boxes, x from ``a0`` to ``a1`` and from ``b0`` to ``b1`` (y 0..1)."""
+    box = [(0, 0), (0, 1), (1, 1), (1, 0), (0, 0)]
+    verts = [(a0 + (a1 - a0) * x, y) for x, y in box] + [(b0 + (b1 - b0) * x, y) for x, y in box]
+    codes = [Path.MOVETO, Path.LINETO, Path.LINETO, Path.LINETO, Path.CLOSEPOLY] * 2
+    return Path(verts, codes)
 
 
 @dataclass
@@ -120,17 +129,16 @@ class ExplorerFigure:
         xform = ax.get_xaxis_transform()
         (self.grid_ticks,) = ax.plot([], [], color=GRID_COLOR, lw=0.8, transform=xform,
                                      label="grid points")
-        self.clip_low = Rectangle((0, 0), 0, 1, transform=xform, color=CLIP_FILL, alpha=0.08, lw=0)
-        self.clip_high = Rectangle((0, 0), 0, 1, transform=xform, color=CLIP_FILL, alpha=0.08, lw=0)
-        ax.add_patch(self.clip_low)
-        ax.add_patch(self.clip_high)
+        # the shaded ranges below and above the grid, one patch of two rectangles (one draw)
+        self.clip_shade = PathPatch(_two_boxes(0, 0, 0, 0), transform=xform, color=CLIP_FILL,
+                                    alpha=0.08, lw=0)
+        ax.add_patch(self.clip_shade)
         (self.clip_lines,) = ax.plot([], [], color=GRID_COLOR, lw=1.0, ls="--", transform=xform)
         ax.set_ylabel("count (log scale)")
         self._hist_legend()
         # Numbers live in the readout panel beside the figure: text is the slowest thing to
         # blit (several ms a label), so the plots carry no changing text.
-        self.canvas.animate(self.hist_clipped, self.grid_ticks, self.clip_low, self.clip_high,
-                            self.clip_lines)
+        self.canvas.animate(self.hist_clipped, self.grid_ticks, self.clip_shade, self.clip_lines)
 
     def _hist_legend(self):
         with matplotlib.rc_context(_RC):
@@ -275,10 +283,7 @@ class ExplorerFigure:
         if self._new("ticks", xs, ys):
             self.grid_ticks.set_data(xs, ys)
         if self._new("clip", [v0, v1, lo, hi]):
-            self.clip_low.set_x(v0)
-            self.clip_low.set_width(max(0.0, lo - v0))
-            self.clip_high.set_x(hi)
-            self.clip_high.set_width(max(0.0, v1 - hi))
+            self.clip_shade.set_path(_two_boxes(v0, max(v0, lo), min(v1, hi), v1))
             self.clip_lines.set_data([lo, lo, np.nan, hi, hi], [0, 1, np.nan, 0, 1])
         self.ticks_every = every  # 1 in ``every`` grid points drawn (the readout says so)
 

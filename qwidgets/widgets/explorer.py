@@ -364,8 +364,7 @@ class GridExplorer(SnapshotDisplay, widgets.VBox):
     _probe_view: tuple | None = None  # the value axis the probe's slider spans
 
     def _redraw(self, rows: int | None = None) -> None:
-        self._moving = rows is not None
-        self._rows_shown = rows
+        self._moving, self._rows_shown = rows is not None, rows
         with threads(self.refresh_threads):
             self.axes.select(self.state)
             if self.axes.place(self.state) or self._probe_view != self.figure.view:
@@ -379,6 +378,7 @@ class GridExplorer(SnapshotDisplay, widgets.VBox):
                                                       self.axes.error_sample))
             layer = None
             if job:
+                self.numbers.tensor(self.state)  # the readout's other figures, meanwhile
                 self.canvas.encode_ahead(self.figure.ax_out)  # (and compressed) meanwhile
                 self.figure.update_out(*(layer := job())[1])
             self.readout.value = self._readout_html(layer)

@@ -95,7 +95,7 @@ def readout_rows(state, tensor, layer, *, map_codes=None, ticks_every: int = 1) 
     rows.append(("clipped", f"{100 * usage.clipped_fraction:.3g} %"))
     if usage.clipped_fraction > WARN_CLIPPED:
         why = " (unsigned codes on signed values)" if not g.signed and \
-            float(state.values[state.source].min()) < 0 else ""
+            state.negative_share(state.source) > 0 else ""
         rows.append(("warning", f"{100 * usage.clipped_fraction:.3g} % of the values clip{why}"))
     rows.append(("bins used", f"{usage.bins_used:,} of {usage.n_bins:,} "
                               f"({100 * usage.used_fraction:.0f} %)"))
