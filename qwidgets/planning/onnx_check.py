@@ -54,10 +54,12 @@ _MISMATCH_NOTE = (
     "Was it exported from this model and plan?")
 
 _NO_POINTS_NOTE = (
-    "The file records no activation points (written by an older export_onnx, or a file without "
-    "quantized activations), so level flips cannot be told apart from errors: an activation "
-    "value within float32 rounding of a boundary of its grid may round to the neighbouring level "
-    "in the file's kernels. Export it again to have them checked level by level.")
+    "The file's activation points could not be compared with apply_plan's level by level (the "
+    "file records no activation points: written by an older export_onnx or another tool; or "
+    "apply_plan quantized other values than the file marks), so level flips cannot be told "
+    "apart from errors: an activation value within float32 rounding of a boundary of its grid "
+    "may round to the neighbouring level in the file's kernels. Export it again with this "
+    "model and plan to have it checked level by level.")
 
 
 @dataclass(frozen=True)
