@@ -1,6 +1,6 @@
 """A GPT-style decoder for the benchmarks: token and position embeddings, pre-norm blocks of
 causal self-attention (separate query / key / value / output Linears, written with
-``F.scaled_dot_product_attention``) and a 4x MLP, a final LayerNorm and an output layer tied to
+``F.scaled_dot_product_attention``) and an MLP (4x the width unless ``mlp`` is given), a final LayerNorm and an output layer tied to
 the token embedding. Random weights at the usual initial scale (normal, std 0.02)."""
 
 from __future__ import annotations
@@ -11,12 +11,12 @@ from torch import nn
 
 
 class _Block(nn.Module):
-    def __init__(self, width: int, heads: int):
+    def __init__(self, width: int, heads: int, mlp: int):
         super().__init__()
         self.heads = heads
         self.ln1, self.ln2 = nn.LayerNorm(width), nn.LayerNorm(width)
         self.q, self.k, self.v, self.o = (nn.Linear(width, width) for _ in range(4))
-        self.up, self.down = nn.Linear(width, 4 * width), nn.Linear(4 * width, width)
+        self.up, self.down = nn.Linear(width, mlp), nn.Linear(mlp, width)
 
     def _split(self, t, b, n):
         return t.view(b, n, self.heads, -1).transpose(1, 2)
@@ -31,10 +31,11 @@ class _Block(nn.Module):
 
 
 class Decoder(nn.Module):
-    def __init__(self, vocab: int = 8000, width: int = 256, layers: int = 4, heads: int = 4, context: int = 64):
+    def __init__(self, vocab: int = 8000, width: int = 256, layers: int = 4, heads: int = 4, context: int = 64,
+                 mlp: int | None = None):
         super().__init__()
         self.tok, self.pos = nn.Embedding(vocab, width), nn.Embedding(context, width)
-        self.blocks = nn.Sequential(*(_Block(width, heads) for _ in range(layers)))
+        self.blocks = nn.Sequential(*(_Block(width, heads, mlp or 4 * width) for _ in range(layers)))
         self.ln = nn.LayerNorm(width)
         self.head = nn.Linear(width, vocab, bias=False)
         self.head.weight = self.tok.weight  # tied

@@ -33,11 +33,14 @@ saturations, it departs from the exact model scope most.
 
 from __future__ import annotations
 
+import contextlib
 import math
 
 import numpy as np
 import torch
+import torch.nn.functional as F
 from torch import nn
+from torch.overrides import TorchFunctionMode
 
 from ..core.rounding import quantize_unchecked
 from ..model import layers
@@ -67,17 +70,50 @@ def probeable(entry) -> bool:
             and bool(entry.module) and entry.param == f"{entry.module}.weight")
 
 
-def probe_noise(model: nn.Module, source, entries: dict, configs: dict, output, n_samples: int
-                ) -> dict[str, np.ndarray]:
+def probe_places(model: nn.Module, entry, configs) -> tuple[str, ...] | None:
+    """The modules whose output errors carry the entry's error, or None (not probed).
+
+    A :func:`probeable` layer: its own module. An embedding, or a weight tied between modules
+    (a language model's embedding and output layer), quantized alone (no input grid): every
+    module holding the tensor as its ``weight``, when each is a plain ``nn.Embedding`` (no
+    ``max_norm``) or a quantizable layer with its base forward; the model's output error is
+    then, to first order, the sum of what each place's output error causes. A use of the
+    tensor outside these modules' calls (``F.linear(h, self.tok.weight)`` in a forward) is
+    found on every batch and the entry is measured exactly instead (:func:`probe_noise`).
+    """
+    if probeable(entry):
+        return (entry.module,)
+    if entry.kind not in ("layer", "embedding") or not entry.module or any(ig is not None for _, ig in configs):
+        return None
+    p = entry.parameter(model)
+    places = (entry.module, *entry.shared_with)
+    for path in places:
+        m = model.get_submodule(path) if path in dict(model.named_modules()) else None
+        if m is None or m.__dict__.get("_parameters", {}).get("weight") is not p:
+            return None
+        plain_embedding = type(m).forward is nn.Embedding.forward and m.max_norm is None
+        if not plain_embedding and type(m).forward not in layers.BASE_FORWARDS:
+            return None
+    return places
+
+
+def probe_noise(model: nn.Module, source, entries: dict, configs: dict, output, n_samples: int,
+                places: dict | None = None) -> dict[str, np.ndarray]:
     """Estimated model-output error power of each entry at each config (float64 sums over
-    batches), for ``entries`` (row -> entry, all :func:`probeable`).
+    batches), for ``entries`` (row -> entry); ``places``: row -> :func:`probe_places` (default:
+    the entry's own module, for :func:`probeable` entries).
 
     An entry whose output does not reach the model's output through gradients (a detached or
-    integer path) is left out of the result; the caller measures it exactly.
+    integer path), or whose tensor is used outside its places' calls, is left out of the
+    result; the caller measures it exactly.
     """
+    places = places or {row: (e.module,) for row, e in entries.items()}
     by_module: dict[nn.Module, list] = {}
-    for row, e in entries.items():
-        by_module.setdefault(model.get_submodule(e.module), []).append(row)
+    for row in entries:
+        for path in places[row]:
+            by_module.setdefault(model.get_submodule(path), []).append(row)
+    watched = {row: entries[row].parameter(model) for row in entries if places[row] != (entries[row].module,)
+               or entries[row].kind != "layer"}  # tensors whose every use is counted
     noise = {row: np.zeros(len(configs[e.name])) for row, e in entries.items()}
     # each config's quantized weight is made in the layer's hook and dropped after it: one
     # entry's quantized copies at a time, not every entry's (a weight's few quantizations per
@@ -94,7 +130,7 @@ def probe_noise(model: nn.Module, source, entries: dict, configs: dict, output, 
                 n = batch_size(piece)
                 try:
                     _one_batch(model, piece, (index, row0, piece is not batch), by_module, entries,
-                               configs, output, probes, noise, lost, cap=n > 1)
+                               configs, output, probes, noise, lost, watched, cap=n > 1)
                 except _TooLarge:
                     a, b = Batches(piece, (n + 1) // 2)
                     pending += [(b, row0 + (n + 1) // 2), (a, row0)]
@@ -109,11 +145,12 @@ class _TooLarge(Exception):
 
 
 def _one_batch(model, batch, where, by_module, entries, configs, output, probes, noise,
-               lost, *, cap: bool):
+               lost, watched, *, cap: bool):
     """Add this batch's estimates to ``noise``. ``where``: (batch index, its first row within
     the source's batch, whether it is a part of that batch)."""
     calls: dict = {row: [] for row in entries}  # row -> [(leaf added to the output, errors)]
     kept = [0]
+    weights = {m: m.weight.detach() for m in by_module}  # read here: the hooks run under _Uses
 
     def hook(module, args, kwargs, out):
         x = (args[0] if args else next(iter(kwargs.values()))).detach()
@@ -122,9 +159,9 @@ def _one_batch(model, batch, where, by_module, entries, configs, output, probes,
         with torch.no_grad():
             for row in by_module[module]:
                 # the scan checked these inputs (survey) and the weight once already
-                w = module.weight.detach()
-                errs = [layers.layer_forward(module, x if ig is None else quantize_unchecked(x, ig),
-                                             w if wg is None else quantize_unchecked(w, wg)) - ref
+                w = weights[module]
+                errs = [_place_output(module, x if ig is None else quantize_unchecked(x, ig),
+                                      w if wg is None else quantize_unchecked(w, wg)) - ref
                         for wg, ig in configs[entries[row].name]]
                 calls[row].append((z, _stacked(errs)))
                 kept[0] += calls[row][-1][1].numel() * 4
@@ -133,8 +170,9 @@ def _one_batch(model, batch, where, by_module, entries, configs, output, probes,
         return out + z
 
     handles = [m.register_forward_hook(hook, with_kwargs=True, prepend=True) for m in by_module]
+    uses = _Uses(watched.values())
     try:
-        with torch.enable_grad():
+        with torch.enable_grad(), (uses if watched else contextlib.nullcontext()):
             out = call_model(model, batch)
     except RuntimeError:  # no gradients here (e.g. data made under inference_mode): measure exactly
         lost.update(entries)
@@ -142,6 +180,9 @@ def _one_batch(model, batch, where, by_module, entries, configs, output, probes,
     finally:
         for h in handles:
             h.remove()
+    for row, p in watched.items():  # one use per call of a place, none elsewhere
+        if uses.count[id(p)] != len(calls[row]):
+            lost.add(row)
     if output is not None:
         out = output(out)
     parts = [t for t in iter_tensors(out) if t.is_floating_point() and t.requires_grad]
@@ -151,13 +192,22 @@ def _one_batch(model, batch, where, by_module, entries, configs, output, probes,
         return
     leaves = list({id(z): z for z in leaves}.values())  # one leaf per call of a module
     n = _batch_rows(parts, leaves)
-    per_sample = n is not None and _keeps_samples_apart(parts, leaves, n)
+    # a module output without the sample axis (a position embedding added to every sample)
+    # gets one dot product per random probe over the whole batch: sum_i r_i . J_i e, unbiased
+    # as the samples' probes are independent
+    rowed = [z for z in leaves if n is not None and z.dim() >= 2 and z.shape[0] == n]
+    per_sample = n is not None and _keeps_samples_apart(parts, rowed, n)
     index, row0, part = where
     if part and not per_sample:  # samples that interact cannot be measured in parts: exactly
         lost.update(entries)
         return
     values = sum(p[0].numel() if per_sample else p.numel() for p in parts)
     exact = values <= EXACT_VALUES
+    if exact and per_sample:  # one-hot directions are the same in every sample: a whole-batch
+        # dot product would add the samples' terms before squaring, so such rows are measured
+        for row, items in calls.items():
+            if any(z.dim() < 2 or z.shape[0] != n for z, _ in items):
+                lost.add(row)
     directions = values if exact else (probes if per_sample else _MAX_PROBES)
     gen = torch.Generator(device=parts[0].device)
     for k in range(directions):
@@ -168,7 +218,11 @@ def _one_batch(model, batch, where, by_module, entries, configs, output, probes,
             if any(g_of[id(z)] is None for z, _ in items):
                 lost.add(row)
                 continue
-            dots = sum(_dots(g_of[id(z)], errs, per_sample) for z, errs in items)
+            ds = [_dots(g_of[id(z)], errs, per_sample and z.dim() >= 2 and z.shape[0] == n)
+                  for z, errs in items]
+            if len({d.shape[0] for d in ds}) > 1:  # per-sample and whole-batch terms: whole batch
+                ds = [d.sum(0, keepdim=True) for d in ds]
+            dots = sum(ds)
             noise[row] += (dots * dots).sum(dim=0).cpu().numpy() / (1.0 if exact else directions)
 
 
@@ -213,12 +267,38 @@ def _dots(g: torch.Tensor, errs: torch.Tensor, per_sample: bool) -> torch.Tensor
 
 
 def _batch_rows(parts, leaves) -> int | None:
-    """The common length of axis 0 of every output part and layer output (of two or more
-    axes), else None."""
-    if any(z.dim() < 2 for z in leaves):
+    """The common length of axis 0 of every output part and of the layer outputs (of two or
+    more axes) that have it, when that is the batch's; else None. A layer output whose axis 0
+    differs (a position embedding's (positions, width)) is measured over the whole batch."""
+    sizes = {t.shape[0] if t.dim() else None for t in parts}
+    if len(sizes) != 1 or None in sizes:
         return None
-    sizes = {t.shape[0] if t.dim() else None for t in list(parts) + list(leaves)}
-    return next(iter(sizes)) if len(sizes) == 1 and None not in sizes else None
+    n = next(iter(sizes))
+    if any(z.dim() < 2 for z in leaves) or not any(z.shape[0] == n for z in leaves):
+        return None
+    return n
+
+
+def _place_output(module: nn.Module, x: torch.Tensor, w: torch.Tensor) -> torch.Tensor:
+    """The module's output with weight ``w`` (:func:`probe_places`: an embedding or a layer)."""
+    if isinstance(module, nn.Embedding):
+        return F.embedding(x, w, module.padding_idx)
+    return layers.layer_forward(module, x, w)
+
+
+class _Uses(TorchFunctionMode):
+    """Counts the torch calls that receive each watched tensor (as itself, not a copy)."""
+
+    def __init__(self, tensors):
+        super().__init__()
+        self.count = {id(t): 0 for t in tensors}
+
+    def __torch_function__(self, func, types, args=(), kwargs=None):
+        kwargs = kwargs or {}
+        for a in (*args, *kwargs.values()):
+            if id(a) in self.count:
+                self.count[id(a)] += 1
+        return func(*args, **kwargs)
 
 
 def _keeps_samples_apart(parts, leaves, n: int) -> bool:

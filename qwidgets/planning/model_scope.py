@@ -20,7 +20,7 @@ import torch
 
 from ..model import outputs
 from ..model.replay import evaluating, trace_or_reason
-from .gain_probes import probe_noise, probeable
+from .gain_probes import probe_noise, probe_places
 from .passes import db, model_scope_noise, suffix_noise
 
 
@@ -41,12 +41,22 @@ def model_scope(model, source, found, facts, configs, n_bits: int, info, *, esti
     mine = [i for i in range(len(facts)) if share is None or i % share[1] == share[0]]
     probed: dict = {}
     if estimate == "gain":
-        wanted = {i: facts[i].entry for i in mine if facts[i].has_input and probeable(facts[i].entry)}
-        probed = probe_noise(model, source, wanted, configs, output, found.n_samples) if wanted else {}
+        places = {}  # row -> the modules whose output errors carry the entry's error
+        for i in mine:
+            f = facts[i]
+            if f.has_input or f.entry.kind == "embedding" or f.entry.shared_with:
+                where = probe_places(model, f.entry, configs[f.entry.name])
+                if where is not None:
+                    places[i] = where
+        wanted = {i: facts[i].entry for i in places}
+        probed = (probe_noise(model, source, wanted, configs, output, found.n_samples, places)
+                  if wanted else {})
         lost = sorted(names[i] for i in wanted if i not in probed)
         if lost:
             notes.append(f"estimate='gain': {_names(lost)} measured exactly (slower): their output "
-                         "does not reach the model's output through gradients, or a batch too "
+                         "does not reach the model's output through gradients, their tensor is "
+                         "used outside the modules that hold it, their output has no sample axis "
+                         "while few output values call for exact one-hot probes, or a batch too "
                          "large for the probes was split and the model mixes samples")
         for i, noise_i in probed.items():
             model_sq[i] = [db(sig, v) for v in noise_i]
@@ -102,8 +112,9 @@ def model_scope(model, source, found, facts, configs, n_bits: int, info, *, esti
     return model_sq
 
 
-_EXACT_UNDER_GAIN = ("; these are exact, not estimated: estimate='gain' probes layers run as modules, "
-                     "not attention activations, attention projections, weights found by use or "
+_EXACT_UNDER_GAIN = ("; these are exact, not estimated: estimate='gain' probes layers run as modules "
+                     "and embeddings or tied weights used only through such modules, not attention "
+                     "activations, attention projections, weights found by use or other "
                      "weight-only entries (table.model_pass says how each entry was measured)")
 
 
