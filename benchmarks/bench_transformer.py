@@ -65,7 +65,17 @@ def _stage(rows, out, key, base_kib, fn):
     peak = (_timing.status_kib("VmHWM") - base_kib) / 2**20
     out[key] = {"seconds": wall, "cpu_seconds": cpu, "peak_gib_over_model": peak, "load": os.getloadavg()}
     rows.append((key, f"{wall:.1f} s", f"{peak:.2f} GiB", f"cpu {cpu:.1f} s, load {os.getloadavg()[0]:.1f}"))
+    print(*rows[-1], sep="  ", flush=True)
+    _write(out)  # after every stage: a long run that is stopped keeps what it measured
     return result
+
+
+def _write(out) -> Path:
+    size = out["size"]
+    path = Path(__file__).parent / "results" / ("transformer.json" if size == "124m" else f"transformer_{size}.json")
+    path.parent.mkdir(exist_ok=True)
+    path.write_text(json.dumps(out, indent=2, default=str) + "\n")
+    return path
 
 
 def decision(model, x, rows, out, prefix, base, **scan_kw):
@@ -89,6 +99,7 @@ def decision(model, x, rows, out, prefix, base, **scan_kw):
     rows.append((f"{prefix}: whole decision", f"{total:.1f} s", "",
                  f"{len(table.layers)} entries; SQNR predicted {plan.predicted_sqnr_db:.1f} dB, "
                  f"measured {report.measured_sqnr_db:.1f} dB"))
+    print(*rows[-1], sep="  ", flush=True)
     return table
 
 
@@ -118,10 +129,7 @@ def main(size: str, exact: bool, activations: bool) -> None:
     w = max(len(r[0]) for r in rows)
     for r in rows:
         print(f"{r[0]:<{w}}  {r[1]:>9}  {r[2]:>10}  {r[3]}")
-    path = Path(__file__).parent / "results" / ("transformer.json" if size == "124m" else f"transformer_{size}.json")
-    path.parent.mkdir(exist_ok=True)
-    path.write_text(json.dumps(out, indent=2, default=str) + "\n")
-    print(f"wrote {path}")
+    print(f"wrote {_write(out)}")
 
 
 if __name__ == "__main__":

@@ -148,7 +148,7 @@ def _one_batch(model, batch, where, by_module, entries, configs, output, probes,
                lost, watched, *, cap: bool):
     """Add this batch's estimates to ``noise``. ``where``: (batch index, its first row within
     the source's batch, whether it is a part of that batch)."""
-    calls: dict = {row: [] for row in entries}  # row -> [(leaf added to the output, errors)]
+    seen: dict = {row: [] for row in entries}  # row -> [(module, input, output, leaf)] per call
     kept = [0]
     weights = {m: m.weight.detach() for m in by_module}  # read here: the hooks run under _Uses
 
@@ -156,17 +156,11 @@ def _one_batch(model, batch, where, by_module, entries, configs, output, probes,
         x = (args[0] if args else next(iter(kwargs.values()))).detach()
         ref = out.detach()
         z = torch.zeros_like(ref, requires_grad=True)
-        with torch.no_grad():
-            for row in by_module[module]:
-                # the scan checked these inputs (survey) and the weight once already
-                w = weights[module]
-                errs = [_place_output(module, x if ig is None else quantize_unchecked(x, ig),
-                                      w if wg is None else quantize_unchecked(w, wg)) - ref
-                        for wg, ig in configs[entries[row].name]]
-                calls[row].append((z, _stacked(errs)))
-                kept[0] += calls[row][-1][1].numel() * 4
-                if cap and kept[0] > ERROR_BYTES:
-                    raise _TooLarge
+        for row in by_module[module]:
+            seen[row].append((module, x, ref, z))
+            kept[0] += ref.numel() * len(configs[entries[row].name]) * 4
+            if cap and kept[0] > ERROR_BYTES:
+                raise _TooLarge
         return out + z
 
     handles = [m.register_forward_hook(hook, with_kwargs=True, prepend=True) for m in by_module]
@@ -181,8 +175,9 @@ def _one_batch(model, batch, where, by_module, entries, configs, output, probes,
         for h in handles:
             h.remove()
     for row, p in watched.items():  # one use per call of a place, none elsewhere
-        if uses.count[id(p)] != len(calls[row]):
+        if uses.count[id(p)] != len(seen[row]):
             lost.add(row)
+    calls = {row: _errors(items, configs[entries[row].name], weights) for row, items in seen.items()}
     if output is not None:
         out = output(out)
     parts = [t for t in iter_tensors(out) if t.is_floating_point() and t.requires_grad]
@@ -224,6 +219,23 @@ def _one_batch(model, batch, where, by_module, entries, configs, output, probes,
                 ds = [d.sum(0, keepdim=True) for d in ds]
             dots = sum(ds)
             noise[row] += (dots * dots).sum(dim=0).cpu().numpy() / (1.0 if exact else directions)
+
+
+def _errors(items, configs, weights) -> list:
+    """[(leaf, each config's output error)] of one entry's calls: each config's quantized weight
+    made once for all its places (an embedding and the output layer tied to it) and dropped
+    before the next. The scan checked the inputs (survey) and the weight once already."""
+    if not items:
+        return []
+    w = weights[items[0][0]]
+    errs: list = [[] for _ in items]
+    with torch.no_grad():
+        for wg, ig in configs:
+            wq = w if wg is None else quantize_unchecked(w, wg)
+            for j, (module, x, ref, _) in enumerate(items):
+                errs[j].append(_place_output(module, x if ig is None else quantize_unchecked(x, ig), wq) - ref)
+            del wq
+    return [(z, _stacked(e)) for (_, _, _, z), e in zip(items, errs, strict=True)]
 
 
 def _random_probes(parts, gen, index: int, row0: int, k: int, per_sample: bool) -> list:
