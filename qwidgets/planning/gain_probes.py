@@ -21,6 +21,11 @@ apart, which is checked: a probe on the first and on the last sample's output mu
 that sample's row of every layer output. Otherwise one dot product per probe is taken over the
 whole batch, with 32 random probes.
 
+An embedding, or a weight tied between modules (a language model's embedding and output
+layer), adds its error at each module that holds it (:func:`probe_places`); to first order the
+output moves by the sum of what each place's error causes, so its dot products are summed over
+the places before squaring.
+
 So model scope costs one forward with gradients and ``probes`` backward passes per batch, for
 all layers together, instead of one pass per layer and bit width. The probes are seeded per
 sample, so a scan split across an executor's workers gives the serial numbers. The layer

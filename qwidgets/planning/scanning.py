@@ -108,10 +108,11 @@ def scan(model: nn.Module, data: Data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8),
         batch for all layers and bit widths together; :mod:`qwidgets.planning.gain_probes`):
         the model's first-order response to each width's actual error (additive
         quantization noise, Widrow & Kollar 2008). Exact where the rest of the model is
-        linear; it departs most at 2-3 bits, where errors switch ReLUs. Entries that are not
-        a module's own weight (attention, recurrent, embedding, tied), attention's activations
-        (``<mha>.query`` ... ``.probs``, ``<module>.sdpa.*``) and weights found by use are
-        measured exactly. ``table.estimate`` records which; ``table.model_pass(entry)`` says
+        linear; it departs most at 2-3 bits, where errors switch ReLUs. Embeddings and tied
+        weights (a language model's embedding and output layer) are probed at every module
+        that holds them when only those modules' calls use them; attention and recurrent
+        weights, attention's activations (``<mha>.query`` ... ``.probs``,
+        ``<module>.sdpa.*``) and weights found by use are measured exactly. ``table.estimate`` records which; ``table.model_pass(entry)`` says
         how each entry was measured (``"probes"`` for the estimated ones).
     batch_size : cut data given as one batch into batches of this many samples (None: one
         batch); only power sums are kept between batches, so memory is about one batch of
