@@ -191,7 +191,6 @@ def scan(model: nn.Module, data: Data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8),
     return noted(scanned_table(model, data, join_sides(weights, inputs, ibits), options))
 
 
-
 def _scan_parts(model, data, options: dict, progress: bool, executor) -> dict:
     """The table's fields, from this process or split across ``executor``'s workers."""
     if executor is None or options["scope"] == "layer":
