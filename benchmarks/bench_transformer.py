@@ -1,6 +1,6 @@
 """The whole decision on a GPT-style decoder at scale: gain scan, plan, evaluation; peak memory.
 
-Run:  .venv/bin/python benchmarks/bench_transformer.py [--size 124m | --size 1.1b] [--no-exact]
+Run:  .venv/bin/python benchmarks/bench_transformer.py [--size 124m | --size 1.1b | --size tiny] [--no-exact]
       [--no-activations]
 (prints a table, writes results/transformer.json, or results/transformer_1.1b.json)
 
@@ -9,7 +9,10 @@ Models (benchmarks/_decoder.py, random weights, normal with std 0.02; attention 
 - 124m: 12 layers, width 768, 12 heads, MLP 3072, vocabulary 50257, 8 sequences of 128 tokens
   (about 124M parameters);
 - 1.1b: 22 layers, width 2048, 32 heads, MLP 5632, vocabulary 32000, 4 sequences of 128 tokens
-  (about 1.1B parameters; needs about 12 GiB).
+  (about 1.1B parameters; needs about 12 GiB);
+- tiny: 2 layers of width 64 (a quick check that the script runs).
+
+While a stage runs, its elapsed time and memory are written to the results file every 15 s.
 
 Timed, each from a cold grid cache (every grid fitted, as in a fresh process):
 - weights only: ``scan(estimate="gain")`` at its defaults, ``plan_budget(mean_bits=4.5)``
@@ -29,6 +32,7 @@ from __future__ import annotations
 import json
 import os
 import sys
+import threading
 import time
 from pathlib import Path
 
@@ -57,10 +61,29 @@ def _reset_peak() -> int:
     return _timing.status_kib("VmRSS")
 
 
+_LOCK = threading.Lock()
+
+
+def _watch(out, base_kib, every: float = 15.0) -> None:
+    """Every ``every`` seconds, the running stage's elapsed time and memory into the results
+    file (a run stopped in the middle of a long stage keeps how far it got)."""
+    while True:
+        time.sleep(every)
+        stage = out.get("running")
+        if stage is not None:
+            out["progress"] = {"stage": stage[0], "elapsed_s": time.perf_counter() - stage[1],
+                               "rss_gib_over_model": (_timing.status_kib("VmRSS") - base_kib) / 2**20,
+                               "peak_gib_over_model": (_timing.status_kib("VmHWM") - base_kib) / 2**20,
+                               "load": os.getloadavg()}
+            _write(out)
+
+
 def _stage(rows, out, key, base_kib, fn):
     _reset_peak()
     t0, c0 = time.perf_counter(), time.process_time()
+    out["running"] = (key, t0)
     result = fn()
+    out["running"] = None
     wall, cpu = time.perf_counter() - t0, time.process_time() - c0
     peak = (_timing.status_kib("VmHWM") - base_kib) / 2**20
     out[key] = {"seconds": wall, "cpu_seconds": cpu, "peak_gib_over_model": peak, "load": os.getloadavg()}
@@ -74,7 +97,9 @@ def _write(out) -> Path:
     size = out["size"]
     path = Path(__file__).parent / "results" / ("transformer.json" if size == "124m" else f"transformer_{size}.json")
     path.parent.mkdir(exist_ok=True)
-    path.write_text(json.dumps(out, indent=2, default=str) + "\n")
+    with _LOCK:
+        path.write_text(json.dumps({k: v for k, v in out.items() if k != "running"}, indent=2,
+                                   default=str) + "\n")
     return path
 
 
@@ -114,6 +139,7 @@ def main(size: str, exact: bool, activations: bool) -> None:
     rows, out = [], {"size": size, "parameters": params, "sequences": spec["sequences"],
                      "model_rss_gib": base / 2**20, "torch_threads": torch.get_num_threads(),
                      "cpus": os.cpu_count(), "load_start": os.getloadavg()}
+    threading.Thread(target=_watch, args=(out, base), daemon=True).start()
     with torch.no_grad():
         decision(model, x, rows, out, "weights", base)
         if activations:
@@ -124,6 +150,7 @@ def main(size: str, exact: bool, activations: bool) -> None:
                        lambda: scan(model, x, scope="model", progress=False))
             out["exact notes"] = list(t.notes)
     out["load_end"] = os.getloadavg()
+    out.pop("progress", None)
     print(f"{size} decoder: {params / 1e6:.0f}M parameters, {spec['sequences']}x{spec['model']['context']} tokens, "
           f"float model {base / 2**20:.2f} GiB resident; load {out['load_start'][0]:.1f} -> {out['load_end'][0]:.1f}")
     w = max(len(r[0]) for r in rows)
