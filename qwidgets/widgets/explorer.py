@@ -374,11 +374,11 @@ class GridExplorer(SnapshotDisplay, widgets.VBox):
             # the layer output is measured on a worker thread while the other plots are drawn
             job = self.subject.has_layer and self.numbers.layer_soon(self.state, rows,
                                                                      threads=self.refresh_threads)
-            self.figure.update(self.numbers.plot_data(self.state, self.figure.view,
-                                                      self.axes.error_sample))
+            data = self.numbers.plot_data(self.state, self.figure.view, self.axes.error_sample)
+            self.numbers.tensor(self.state)  # the readout's other figures
+            self.figure.update(data)
             layer = None
             if job:
-                self.numbers.tensor(self.state)  # the readout's other figures, meanwhile
                 self.canvas.encode_ahead(self.figure.ax_out)  # (and compressed) meanwhile
                 self.figure.update_out(*(layer := job())[1])
             self.readout.value = self._readout_html(layer)
