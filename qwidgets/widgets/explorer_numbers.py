@@ -107,7 +107,8 @@ class ExplorerNumbers:
             value = job.run(threads)
             self._caches["layer"] = {key: value}
             return lambda: value
-        future = _worker().submit(job.run, threads)
+        # a new thread starts from torch's default count: give it the caller's for None
+        future = _worker().submit(job.run, torch.get_num_threads() if threads is None else threads)
 
         def result():
             value = future.result()
