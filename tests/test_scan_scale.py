@@ -18,7 +18,7 @@ from __future__ import annotations
 import copy
 import json
 import multiprocessing
-from concurrent.futures import ProcessPoolExecutor, ThreadPoolExecutor
+from concurrent.futures import Executor, ProcessPoolExecutor, ThreadPoolExecutor
 
 import numpy as np
 import pytest
@@ -345,10 +345,50 @@ def test_dask_cluster_executor_gives_the_serial_table():
     net = _mlp()
     x = torch.randn(30, 6, generator=torch.Generator().manual_seed(8))
     serial = scan(net, x, bits=(3, 8), progress=False, estimate="gain")
-    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+    # two threads a worker: two tasks on each share the copy scattered to it
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=2, processes=True,
                                   dashboard_address=None, host="127.0.0.1") as cluster, \
             distributed.Client(cluster) as client:
         spread = scan(net, x, bits=(3, 8), progress=False, estimate="gain",
                       executor=client.get_executor())
     _assert_same_tables(serial, spread)
     assert spread.estimate == "gain"
+
+
+class _RecordingClient:
+    """A stand-in for a dask.distributed client that records what it is sent (its futures are
+    the values themselves; tasks run in this process)."""
+
+    def __init__(self, workers: int):
+        self.workers, self.scattered, self.submitted = workers, [], []
+
+    def nthreads(self):
+        return {f"w{i}": 2 for i in range(self.workers)}
+
+    def scatter(self, values, broadcast=False, hash=True):
+        self.scattered.append((len(values), broadcast))
+        return [("future", v) for v in values]
+
+    def submit(self, fn, *args, pure=True):
+        self.submitted.append(args)
+        return fn(*[a[1] if isinstance(a, tuple) and a and a[0] == "future" else a for a in args])
+
+    def gather(self, futures):
+        return list(futures)
+
+
+def test_dask_executor_sends_the_weights_once_per_worker_not_per_task():
+    # the client's scatter(broadcast=True) sends one copy to every worker; every task gets the
+    # futures, never the model itself (dask.distributed's documented way to share large inputs)
+    net = _mlp()
+    x = torch.randn(30, 6, generator=torch.Generator().manual_seed(9))
+    client = _RecordingClient(workers=2)
+    executor = type("ClientExecutor", (Executor,), {})()
+    executor._client = client
+    spread = scan(net, x, bits=(3, 8), progress=False, executor=executor)
+    assert client.scattered == [(1, True)]  # the model and the data, once, to every worker
+    assert len(client.submitted) == 4  # one task per worker thread
+    for args in client.submitted:
+        assert not any(isinstance(a, (nn.Module, torch.Tensor)) for a in args)
+        assert any(isinstance(a, tuple) and a[:1] == ("future",) for a in args)
+    _assert_same_tables(scan(net, x, bits=(3, 8), progress=False), spread)

@@ -1,16 +1,19 @@
 """Splitting a scan across the workers of a ``concurrent.futures.Executor``, and merging it.
 
-One task per worker: each receives the model and the data once (a process pool or a Dask
-cluster pickles them once per task), runs the whole scan's cheap part (survey, range fitting,
-layer scope) and the model scope of its share of the entries, interleaved in execution order
-(entries ``i % k == j`` to task ``j``, so long and short suffixes spread evenly), and sends
-back the table's fields. The merge takes each model-scope row from the task that measured it:
+One task per worker thread. A Dask cluster receives the model and the data once per worker
+(scattered to every worker, each task given the futures; a worker's tasks share its copy and
+run one at a time), a process pool once per task (one task per process). Each task runs the
+whole scan's cheap part (survey, range fitting, layer scope) and the model scope of its share
+of the entries, interleaved in execution order (entries ``i % k == j`` to task ``j``, so long
+and short suffixes spread evenly), and sends back the table's fields. The merge takes each model-scope row from the task that measured it:
 the table of a serial scan.
 """
 
 from __future__ import annotations
 
+import copy
 import os
+from collections.abc import Callable
 from concurrent.futures import Executor
 
 import numpy as np
@@ -21,13 +24,45 @@ def worker_count(executor: Executor) -> int:
     n = getattr(executor, "_max_workers", None)  # concurrent.futures pools keep it here
     if isinstance(n, int) and n > 0:
         return n
-    client = getattr(executor, "_client", None)  # dask.distributed's ClientExecutor
+    client = dask_client(executor)
     if client is not None:
-        try:
-            return max(1, sum(client.nthreads().values()))
-        except Exception:  # noqa: BLE001 - a client that cannot say: one task per core here
-            pass
+        return max(1, sum(client.nthreads().values()))
     return os.cpu_count() or 1
+
+
+def dask_client(executor: Executor):
+    """The ``dask.distributed`` client behind ``client.get_executor()``, else None."""
+    client = getattr(executor, "_client", None)
+    return client if client is not None and hasattr(client, "scatter") else None
+
+
+def run_shares(executor: Executor, task: Callable, model, data, options: dict, k: int) -> list:
+    """``[task(model, data, options, (j, k)) for j in range(k)]`` on ``executor``'s workers.
+
+    On a Dask cluster the model and the data go to every worker once (``scatter`` with
+    ``broadcast=True``: one copy per worker, however many tasks it runs); other executors get
+    them with each task (a thread pool a copy of the model per task, so no two share one).
+    """
+    client = dask_client(executor)
+    if client is not None:
+        # one object pickled whole (Dask's own serializer for torch modules drops their hook
+        # dictionaries' type), scattered once to every worker, where it stays deserialized
+        [payload] = client.scatter([_Payload(model, data)], broadcast=True, hash=False)
+        futures = [client.submit(_run_payload, task, payload, options, (j, k), pure=False) for j in range(k)]
+        return client.gather(futures)
+    futures = [executor.submit(task, copy.deepcopy(model), data, options, (j, k)) for j in range(k)]
+    return [f.result() for f in futures]
+
+
+class _Payload:
+    """The model and the data as one object (pickled whole)."""
+
+    def __init__(self, model, data):
+        self.model, self.data = model, data
+
+
+def _run_payload(task: Callable, payload: _Payload, options: dict, share: tuple[int, int]) -> dict:
+    return task(payload.model, payload.data, options, share)
 
 
 def merge_shares(parts: list[dict], k: int) -> dict:

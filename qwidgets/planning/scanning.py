@@ -26,7 +26,6 @@ sample of each layer's inputs (see :class:`qwidgets.model.statistics.RangeSample
 
 from __future__ import annotations
 
-import copy
 import dataclasses
 import threading
 from collections.abc import Callable, Sequence
@@ -51,7 +50,7 @@ from ..model.taps import tapping
 from ..model.usage import entries_on
 from .confirm import ScanNote, check_confirm, noted, scanned_table  # noqa: F401 (ScanNote: public here)
 from .device_checks import scan_bits
-from .distribute import merge_shares, worker_count
+from .distribute import merge_shares, run_shares, worker_count
 from .granularity import fit_options, scan_granularity, split_granularities
 from .input_granularity import scan_input_granularity, split_token_columns
 from .model_scope import model_scope as _model_scope
@@ -196,8 +195,7 @@ def _scan_parts(model, data, options: dict, progress: bool, executor) -> dict:
     if executor is None or options["scope"] == "layer":
         return _run_scan(model, data, options, progress, None)
     k = worker_count(executor)
-    futures = [executor.submit(scan_share, copy.deepcopy(model), data, options, (i, k)) for i in range(k)]
-    return merge_shares([f.result() for f in futures], k)
+    return merge_shares(run_shares(executor, scan_share, model, data, options, k), k)
 
 
 def scan_share(model: nn.Module, data, options: dict, share: tuple[int, int]) -> dict:
