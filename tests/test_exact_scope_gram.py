@@ -54,13 +54,13 @@ def test_final_linear_scope_from_the_gram_matrix_equals_the_naive_loop(monkeypat
     x = torch.randint(0, 300, (4, 16), generator=torch.Generator().manual_seed(1))
     assert trace(net).final_linear()[0] == "out"
     grams = []
-    original = passes._gram
+    original = passes.head_gram
 
     def counted(replay, head, cache):
         grams.append(head)
         return original(replay, head, cache)
 
-    monkeypatch.setattr(passes, "_gram", counted)
+    monkeypatch.setattr(passes, "head_gram", counted)
     t = scan(net, x, bits=(3, 6), progress=False, scope="model")
     assert grams and set(grams) == {"out"}  # used for the layers before the head
     for name in ("up1", "down1", "up2", "down2", "out"):

@@ -62,8 +62,9 @@ class GraphReplay:
         for node in self.nodes:
             if node.op == "call_module" and is_quantizable(self._modules[node.target]):
                 self.layer_nodes.setdefault(node.target, []).append(node)
-        self._after: dict[str, list[fx.Node]] = {}
+        self._after: dict = {}
         self.values: dict[fx.Node, object] = {}
+        self._batched: set = set()  # recorded values that carry the batch along axis 0
 
     # ------------------------------------------------------------------ one batch
     def record(self, data) -> object:
@@ -92,34 +93,58 @@ class GraphReplay:
                 break
             env[node] = self._run(node, env)
         self.values = env
+        self._batched = _batch_values(self.nodes, env, placeholders)
         return out
 
     def rerun(self, name: str, replace: Callable[[torch.Tensor], torch.Tensor],
-              until: fx.Node | None = None) -> object:
+              until: fx.Node | None = None, copies: int = 1) -> object:
         """The output with each call of layer ``name`` computing ``replace(its input)`` instead.
 
         Only the nodes that depend on the layer's outputs are recomputed; the rest come from
         the last :meth:`record`. ``until``: stop there and return that node's value instead.
-        Call inside :func:`evaluating` (eval mode, no gradient).
+        ``copies`` > 1: ``replace`` returns that many versions stacked along axis 0, and every
+        recorded value those nodes read that carries the batch (a tensor computed from the data
+        whose axis 0 is the batch's) is read repeated as many times, so the rest of the model
+        runs once for all versions (valid when it keeps samples apart: the caller checks).
+        Each value is dropped after its last use. Call inside :func:`evaluating` (eval mode,
+        no gradient).
         """
         env = self.values
         local: dict[fx.Node, object] = {}
+        tiled: dict[fx.Node, object] = {}
+        order, last = self._suffix(name), self._last_use(name)
 
         def get(n: fx.Node):
-            return local[n] if n in local else env[n]
+            if n in local:
+                return local[n]
+            v = env[n]
+            if copies == 1 or n not in self._batched:
+                return v
+            if n not in tiled:
+                tiled[n] = v.repeat((copies,) + (1,) * (v.dim() - 1))
+            return tiled[n]
 
-        for node in self._suffix(name):
+        for i, node in enumerate(order):
             if until is not None and node.op == "output":
                 return get(until)
             if node.op == "output":
                 return fx.node.map_arg(node.args[0], get)
-            if node.op == "call_module" and node.target == name:
-                local[node] = replace(fx.node.map_arg(node.args[0], get))
+            if node.op == "call_module" and node.target == name:  # its own input, not repeated
+                local[node] = replace(fx.node.map_arg(node.args[0], lambda n: local.get(n, env.get(n))))
             else:
                 local[node] = self._run(node, get)
             if node is until:
                 return local[node]
+            for a in node.all_input_nodes:
+                if last.get(a) == i:
+                    local.pop(a, None)
+                    tiled.pop(a, None)
         raise RuntimeError("the traced graph has no output node")
+
+    def carries_batch(self, node: fx.Node) -> bool:
+        """Whether the recorded value of ``node`` is computed from the data and has the batch
+        along axis 0 (what :meth:`rerun` repeats for ``copies``)."""
+        return node in self._batched
 
     def final_linear(self) -> tuple[str, fx.Node] | None:
         """(name, input node) of the ``nn.Linear`` whose output is the model's whole output, if any.
@@ -153,6 +178,19 @@ class GraphReplay:
                     order.append(node)
             self._after[name] = order
         return self._after[name]
+
+    def _last_use(self, name: str) -> dict:
+        """node -> the position in ``_suffix(name)`` of its last reader there (the output node's
+        inputs, and ``until`` nodes, are never dropped: the output is read at its own step)."""
+        key = ("last", name)
+        if key not in self._after:
+            order = self._suffix(name)
+            last: dict = {}
+            for i, node in enumerate(order):
+                for a in node.all_input_nodes:
+                    last[a] = i if node.op != "output" else len(order)
+            self._after[key] = last
+        return self._after[key]
 
     def _run(self, node: fx.Node, env):
         get = env.__getitem__ if isinstance(env, Mapping) else env
@@ -200,6 +238,23 @@ def trace_or_reason(model: nn.Module) -> tuple[GraphReplay | None, str | None]:
         text = str(e).strip().splitlines()[0][:160] if str(e).strip() else ""
         return None, f"{type(e).__name__}: {text}" if text else type(e).__name__
     return GraphReplay(model, graph), None
+
+
+def _batch_values(nodes, env, placeholders) -> set:
+    """The nodes computed from the data whose value is a tensor with the batch along axis 0
+    (the batch: axis 0 of the first tensor argument)."""
+    first = next((env[p] for p in placeholders if isinstance(env.get(p), torch.Tensor) and env[p].dim()), None)
+    if first is None:
+        return set()
+    n = first.shape[0]
+    from_data, out = set(placeholders), set()
+    for node in nodes:
+        if node in from_data or any(a in from_data for a in node.all_input_nodes):
+            from_data.add(node)
+            v = env.get(node)
+            if isinstance(v, torch.Tensor) and v.dim() and v.shape[0] == n:
+                out.add(node)
+    return out
 
 
 def _as_call(data) -> tuple[tuple, dict]:

@@ -22,6 +22,7 @@ from ..model import outputs
 from ..model.replay import evaluating, trace_or_reason
 from .gain_probes import probe_noise, probe_places
 from .passes import db, model_scope_noise, suffix_noise
+from .stacked_suffix import stacked_suffix_noise
 
 
 def model_scope(model, source, found, facts, configs, n_bits: int, info, *, estimate: str, output,
@@ -72,14 +73,25 @@ def model_scope(model, source, found, facts, configs, n_bits: int, info, *, esti
         if replayed:
             noise = {i: np.zeros(n_bits) for i in replayed}
             gram: dict = {}  # the final Linear's W^T W, once for all batches
+            unstacked: set = set()  # entries replayed one width at a time
             for batch, ref_parts in zip(source, found.refs, strict=True):
                 with evaluating(model):
                     replay.record(batch)
                     for i in replayed:
                         e = facts[i].entry
-                        noise[i] += suffix_noise(replay, model.get_submodule(e.module), e.module,
-                                                 configs[e.name], ref_parts, output, gram)
+                        layer = model.get_submodule(e.module)
+                        # every width through one stacked suffix where the rest keeps samples apart
+                        n = None if e.name in unstacked else stacked_suffix_noise(
+                            replay, layer, e.module, configs[e.name], ref_parts, output, gram)
+                        if n is None:
+                            unstacked.add(e.name)
+                            n = suffix_noise(replay, layer, e.module, configs[e.name], ref_parts, output, gram)
+                        noise[i] += n
             replay.values = {}  # the last batch's record
+            if unstacked and n_bits > 1:
+                notes.append(f"{_names(sorted(unstacked))} replayed one bit width at a time (slower): "
+                             "the rest of the model mixes samples along axis 0, or the stacked "
+                             "widths would pass the memory cap (stacked_suffix.STACK_BYTES)")
             for i in replayed:
                 info[names[i]]["model_pass"] = "suffix"
                 model_sq[i] = [db(sig, v) for v in noise[i]]

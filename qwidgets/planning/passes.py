@@ -173,11 +173,11 @@ def model_scope_noise(model, batch, entry, configs, ref_parts, *, stackable: boo
         q, _ = forward.quantized_call(model, batch, {entry: LayerSetting(weight=wg, input=ig)},
                                       params=params, inputs_checked=True)
         parts = model_outputs.float_parts(q, "quantized", output)
-        out.append(_error_power(ref_parts, parts))
+        out.append(error_power(ref_parts, parts))
     return out, "per bit width"
 
 
-def _error_power(ref_parts, parts) -> float:
+def error_power(ref_parts, parts) -> float:
     if len(parts) != len(ref_parts):
         raise ValueError(f"the quantized output holds {len(parts)} floating-point tensors, the float "
                          f"output {len(ref_parts)}")
@@ -297,7 +297,7 @@ def suffix_noise(replay, layer: nn.Module, name: str, configs, ref_parts, output
     w = layer.weight.detach()
     head = replay.final_linear() if output is None and len(ref_parts) == 1 else None
     if head is not None and head[0] != name:
-        g = _gram(replay, head[0], gram)
+        g = head_gram(replay, head[0], gram)
         ref_in = replay.values[head[1]]
     out = []
     for wg, ig in configs:
@@ -311,11 +311,11 @@ def suffix_noise(replay, layer: nn.Module, name: str, configs, ref_parts, output
             out.append(float(((d @ g) * d).sum()))
             continue
         parts = model_outputs.float_parts(replay.rerun(name, replace), "quantized", output)
-        out.append(_error_power(ref_parts, parts))
+        out.append(error_power(ref_parts, parts))
     return out
 
 
-def _gram(replay, head: str, cache: dict | None):
+def head_gram(replay, head: str, cache: dict | None):
     """W^T W of the final layer (float32 product, float64 after), made once per scan."""
     key = (id(replay), head)
     if cache is not None and key in cache:
