@@ -26,7 +26,9 @@ import torch
 from torch import nn
 
 from qwidgets.core.metrics import error_stats
+from qwidgets.core.ranges import fit_range
 from qwidgets.core.rounding import quantize
+from qwidgets.model.layers import layer_forward
 from qwidgets.planning import gain_probes
 from qwidgets.planning.gain_probes import probe_count
 from qwidgets.planning.scanning import scan
@@ -392,3 +394,20 @@ def test_dask_executor_sends_the_weights_once_per_worker_not_per_task():
         assert not any(isinstance(a, (nn.Module, torch.Tensor)) for a in args)
         assert any(isinstance(a, tuple) and a[:1] == ("future",) for a in args)
     _assert_same_tables(scan(net, x, bits=(3, 8), progress=False), spread)
+
+
+@pytest.mark.parametrize("layer,shape", [(nn.Linear(6, 5), (4, 3, 6)), (nn.Conv2d(3, 4, 3, padding=1), (2, 3, 5, 5))])
+def test_probe_layer_errors_stacked_along_output_channels_equal_each_configs_difference(layer, shape):
+    # reference: torch's own layer call with each quantized weight, less the float output
+    # (float32 rounding of the two routes differs by about 1e-6 of the output's scale)
+    torch.manual_seed(5)
+    x = torch.randn(*shape)
+    w = layer.weight.detach()
+    configs = [(None, None)] + [(fit_range(w, b, "minmax", axis=0), None) for b in (2, 4)]
+    with torch.no_grad():
+        ref = layer(x)
+        got = gain_probes._layer_errors(layer, x, w, configs)
+        want = torch.stack([(layer_forward(layer, x, w if g is None else quantize(w, g)) - ref).reshape(shape[0], -1)
+                            for g, _ in configs], dim=1)
+    assert got.shape == want.shape
+    torch.testing.assert_close(got, want, rtol=0, atol=1e-5 * float(ref.abs().max()))
