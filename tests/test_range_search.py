@@ -181,3 +181,14 @@ def test_fits_searched_together_equal_each_fit_alone(symmetric):
             assert torch.equal(g.scale_tensor(), h.scale_tensor())
             assert torch.equal(g.offset_tensor(), h.offset_tensor())
             assert g.axis == h.axis and g.signed == h.signed
+
+
+def test_short_rows_measure_every_sweep_candidate_with_the_same_grids(monkeypatch):
+    # rows under PRUNE_MIN_VALUES skip the bound; with the bound forced on they give the same grids
+    x = _values((50, 100), "heavy", seed=14)
+    assert x.shape[1] < clip_search.PRUNE_MIN_VALUES
+    plain = fit_ranges(x, (2, 5, 8), "mse", axis=0)
+    monkeypatch.setattr(clip_search, "PRUNE_MIN_VALUES", 1)
+    pruned = fit_ranges(x, (2, 5, 8), "mse", axis=0)
+    for p, f in zip(pruned, plain, strict=True):
+        assert torch.equal(p.scale_tensor(), f.scale_tensor())

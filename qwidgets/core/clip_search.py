@@ -7,7 +7,7 @@ at once: a geometric sweep of candidate ranges, then a golden-section refinement
 best candidate. Candidate grids are measured exactly from the rows sorted once with prefix sums
 (:mod:`qwidgets.core.cell_sums`), without quantizing the tensor; a sweep candidate whose
 clipping error alone exceeds the error of a candidate already measured cannot win and is not
-measured (the same grid, fewer evaluations).
+measured (the same grid, fewer evaluations; rows of at least ``PRUNE_MIN_VALUES`` values).
 """
 
 from __future__ import annotations
@@ -23,6 +23,7 @@ _COARSE_LOW = 1e-4  # smallest candidate range, as a fraction of the min-max ran
 _GOLDEN_ITERS = 22  # golden-section steps after the sweep: bracket shrinks by 0.618**22 ~ 2.5e-5
 _GOLD = (math.sqrt(5.0) - 1.0) / 2.0
 _PRUNE_SLACK = 1e-9  # a candidate is skipped only when its bound beats the best by this x sum(x**2)
+PRUNE_MIN_VALUES = 256  # rows of at least this many values prune the sweep with the bound
 SEARCH_CAP = 1 << 24  # values the MSE search looks at, at most (a seeded subset beyond)
 
 
@@ -212,7 +213,11 @@ class _Objective:
 
     def search(self) -> torch.Tensor:
         """The best fraction per (row, width), shape (rows, widths)."""
-        t = _search(self.error, self.c * self.w, self.rows.xs.device, self.lower)
+        # the bound costs two binary searches and eight lookups per candidate: on rows shorter
+        # than PRUNE_MIN_VALUES measuring every candidate is cheaper (measured on 1000 x 128 and
+        # 32 x 16 weights: 1.3-1.8x; on 384 x 1152 the bound saves 1.4x). The grids are the same.
+        lower = self.lower if self.rows.m >= PRUNE_MIN_VALUES else None
+        t = _search(self.error, self.c * self.w, self.rows.xs.device, lower)
         return t.reshape(self.c, self.w)
 
 
