@@ -1,7 +1,8 @@
 """The scan at scale, at the default settings (method="mse"): four models, peak memory, fitting.
 
 Run:  .venv/bin/python benchmarks/bench_scale.py [cnn48 resnet18q resnet18 decoder] [--no-extras]
-(prints a table, writes results/scale.json; the named models only, all by default)
+(prints a table, writes results/scale.json: the named models' entries replaced, the others kept;
+all models by default)
 
 Models (random weights; BatchNorm with non-trivial statistics; bit widths 2, 3, 4, 5, 6, 8):
 - cnn48: a residual CNN with ResNet-18's layout (7x7 stride-2 stem and max pooling, four stages
@@ -32,6 +33,7 @@ from __future__ import annotations
 
 import copy
 import json
+import os
 import statistics
 import subprocess
 import sys
@@ -196,7 +198,8 @@ def _bench_one(key, rows, out):
                  + " ".join(f"{b}b {v:.2f}" for b, v in med.items()) + " dB; two scans identical: "
                  + ", ".join(k for k, v in identical.items() if v)))
     out["model_scope"][key] = {
-        "description": desc, "layers": len(exact.layers), "bits": list(BITS), "rounds": rounds,
+        "description": desc, "run": time.strftime("%Y-%m-%d %H:%M UTC", time.gmtime()),
+        "load_average": os.getloadavg()[0], "layers": len(exact.layers), "bits": list(BITS), "rounds": rounds,
         "seconds": t, "speedup_vs_naive": speed, "cached_grids_seconds": {"exact": warm_exact, "gain": warm_gain},
         "max_abs_diff_exact_vs_naive_db": diff, "gain_median_error_db": med, "identical_tables": identical,
         "gain_worst_error_db": {b: float(err[:, j].max()) for j, b in enumerate(BITS)},
@@ -274,7 +277,10 @@ def main(names, extras: bool) -> None:
     for r in rows:
         print(f"{r[0]:<{w}}  {r[1]:>16}  {r[2]:>14}  {r[3]}")
     RESULTS.parent.mkdir(exist_ok=True)
-    RESULTS.write_text(json.dumps(out, indent=2, default=str) + "\n")
+    # the models not run this time keep their last figures (each entry says when it was run)
+    before = json.loads(RESULTS.read_text()) if RESULTS.exists() else {}
+    merged = {**before, **out, "model_scope": {**before.get("model_scope", {}), **out.get("model_scope", {})}}
+    RESULTS.write_text(json.dumps(merged, indent=2, default=str) + "\n")
     print(f"wrote {RESULTS}")
 
 

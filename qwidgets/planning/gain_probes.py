@@ -210,12 +210,18 @@ def _one_batch(model, batch, where, by_module, entries, configs, output, probes,
                 lost.add(row)
     directions = values if exact else (probes if per_sample else _MAX_PROBES)
     gen = torch.Generator(device=parts[0].device)
-    for k in range(directions):
-        rs = _one_hot(parts, k, per_sample) if exact else _random_probes(parts, gen, index, row0, k, per_sample)
-        grads = torch.autograd.grad(parts, leaves, grad_outputs=rs, retain_graph=True, allow_unused=True)
-        g_of = {id(z): g for z, g in zip(leaves, grads, strict=True)}
+    # the gradients of several probes are kept and projected together: each layer's errors are
+    # read once per group of probes (one matrix product), not once per probe
+    step = max(1, min(directions, ERROR_BYTES // max(1, 4 * sum(z.numel() for z in leaves))))
+    for k0 in range(0, directions, step):
+        g_of: dict = {id(z): [] for z in leaves}
+        for k in range(k0, min(directions, k0 + step)):
+            rs = _one_hot(parts, k, per_sample) if exact else _random_probes(parts, gen, index, row0, k, per_sample)
+            grads = torch.autograd.grad(parts, leaves, grad_outputs=rs, retain_graph=True, allow_unused=True)
+            for z, g in zip(leaves, grads, strict=True):
+                g_of[id(z)].append(g)
         for row, items in calls.items():
-            if any(g_of[id(z)] is None for z, _ in items):
+            if any(g is None for z, _ in items for g in g_of[id(z)]):
                 lost.add(row)
                 continue
             ds = [_dots(g_of[id(z)], errs, per_sample and z.dim() >= 2 and z.shape[0] == n)
@@ -223,7 +229,7 @@ def _one_batch(model, batch, where, by_module, entries, configs, output, probes,
             if len({d.shape[0] for d in ds}) > 1:  # per-sample and whole-batch terms: whole batch
                 ds = [d.sum(0, keepdim=True) for d in ds]
             dots = sum(ds)
-            noise[row] += (dots * dots).sum(dim=0).cpu().numpy() / (1.0 if exact else directions)
+            noise[row] += (dots * dots).sum(dim=(0, 1)).cpu().numpy() / (1.0 if exact else directions)
 
 
 def _errors(items, configs, weights) -> list:
@@ -305,10 +311,13 @@ def _stacked(errs) -> torch.Tensor:
     return torch.stack([v.float().reshape(v.shape[0], -1) for v in errs], dim=1)
 
 
-def _dots(g: torch.Tensor, errs: torch.Tensor, per_sample: bool) -> torch.Tensor:
-    """(rows, configs) dot products of the probe's gradient with each config's error (one
-    batched matrix product of float32 terms), or (1, configs) over the whole batch; float64."""
-    d = torch.bmm(errs, g.float().reshape(errs.shape[0], -1, 1)).squeeze(-1).double()
+def _dots(gs: list, errs: torch.Tensor, per_sample: bool) -> torch.Tensor:
+    """(rows, probes, configs) dot products of each probe's gradient with each config's error
+    (one batched matrix product of float32 terms, the errors read as they lie), or
+    (1, probes, configs) over the whole batch; float64."""
+    rows = errs.shape[0]
+    g = torch.stack([v.float().reshape(rows, -1) for v in gs], dim=1)  # (rows, probes, values)
+    d = torch.bmm(g, errs.transpose(1, 2)).double()
     return d if per_sample else d.sum(0, keepdim=True)
 
 
