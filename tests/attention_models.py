@@ -128,3 +128,16 @@ def sequences(n=8, t=5, features=6, seed=0):
 def token_ids(n=6, t=8, vocab=20, seed=0):
     g = torch.Generator().manual_seed(seed)
     return torch.randint(0, vocab, (n, t), generator=g)
+
+
+class TokenMLP(nn.Module):
+    """Token features through a residual MLP and a head: rows of very different ranges."""
+
+    def __init__(self, d=16):
+        super().__init__()
+        self.ln = nn.LayerNorm(d)
+        self.fc1, self.fc2, self.head = nn.Linear(d, 2 * d), nn.Linear(2 * d, d), nn.Linear(d, 5)
+
+    def forward(self, x):
+        h = x + self.fc2(F.gelu(self.fc1(self.ln(x))))
+        return self.head(h)

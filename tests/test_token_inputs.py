@@ -19,9 +19,8 @@ import numpy as np
 import onnxruntime as ort
 import pytest
 import torch
-import torch.nn.functional as F
+from attention_models import TokenMLP
 from onnx.reference import ReferenceEvaluator
-from torch import nn
 
 from qwidgets import (
     LayerSetting,
@@ -71,19 +70,6 @@ def test_token_grid_refuses_one_bit_and_rides_in_settings():
     assert s.input_granularity == "token" and LayerSetting().input_granularity is None
     with pytest.raises(TypeError, match="LayerSetting.weight must be a UniformGrid"):
         LayerSetting(weight=TokenGrid(8))
-
-
-class TokenMLP(nn.Module):
-    """Token features through a residual MLP and a head: rows of very different ranges."""
-
-    def __init__(self, d=16):
-        super().__init__()
-        self.ln = nn.LayerNorm(d)
-        self.fc1, self.fc2, self.head = nn.Linear(d, 2 * d), nn.Linear(2 * d, d), nn.Linear(d, 5)
-
-    def forward(self, x):
-        h = x + self.fc2(F.gelu(self.fc1(self.ln(x))))
-        return self.head(h)
 
 
 @pytest.fixture(scope="module")

@@ -107,16 +107,18 @@ def draw_heatmap(ax, arr: np.ndarray, layers: Sequence[str], bits: Sequence[int]
 
 
 def sqnr_table_html(table: SensitivityTable, scope: str, vmin: float | None = None,
-                    vmax: float | None = None, source: str = "weight") -> str:
+                    vmax: float | None = None, source: str = "weight", granularity=None) -> str:
     """The table's SQNR for one scope as an HTML table, cells in the heatmap's colours;
     ``source="input"``: the input rows of a ``quantize="separate"`` table (one column per
-    input width; "-" where an entry's input was not scanned).
+    input width; "-" where an entry's input was not scanned); ``granularity``: the rows of
+    that option (weights: ``"tensor"``, ``"channel"`` or a block size, "-" where an entry
+    skipped it; inputs: ``"tensor"`` or ``"token"``; None: the table's first).
 
     >>> t = SensitivityTable.synthetic(np.array([[12.0, 36.0]]), params=[64], bits=(2, 6))
     >>> "#440154" in sqnr_table_html(t, "model") and "Model-output SQNR" in sqnr_table_html(t, "model")
     True
     """
-    arr = table.sqnr_array(scope, source)
+    arr = table.sqnr_array(scope, source, None if granularity == "tensor" and source == "input" else granularity)
     if arr is None:
         raise ValueError(f"the table holds no {scope}-scope SQNR; it holds {list(table.scopes)}")
     if vmin is None or vmax is None:
@@ -124,7 +126,9 @@ def sqnr_table_html(table: SensitivityTable, scope: str, vmin: float | None = No
     bg, fg = cell_colors(arr, vmin, vmax)
     widths = table.input_bits if source == "input" and table.quantize == "separate" else table.bits
     head = "".join(f"<th>{b} bits</th>" for b in widths)
-    body, marks = [], cell_marks(table, scope, source)
+    first = table.granularities[0] if source == "weight" else "tensor"
+    body, marks = [], cell_marks(table, scope, source) if granularity in (None, first) else \
+        [[""] * len(widths)] * len(table.layers)  # the gain marks are of the first option's rows
     for i, name in enumerate(table.layers):
         cells = "".join(f'<td style="background:{bg[i][j]};color:{fg[i][j]};text-align:right">'
                         f"{'-' if np.isnan(v) else fmt_db(v)}{marks[i][j]}</td>" for j, v in enumerate(arr[i]))
@@ -135,6 +139,9 @@ def sqnr_table_html(table: SensitivityTable, scope: str, vmin: float | None = No
     what = f"{table.quantize} quantized"
     if table.quantize == "separate":
         what = "layer inputs quantized" if source == "input" else "weights quantized"
+    if granularity not in (None, "tensor") or (source == "weight" and len(table.granularities) > 1):
+        g = granularity or table.granularities[0]
+        what += " per token" if g == "token" else f", {'per ' + g if isinstance(g, str) else f'blocks of {g}'}"
     return (f"<div><b>{scope.capitalize()}-output SQNR (dB)</b>{how}, {html.escape(what)}, "
             f"one layer at a time ({table.n_samples} samples)<table>"
             f"<tr><th>layer</th><th>type</th><th>weights</th><th>MACs / sample</th>{head}</tr>"

@@ -54,7 +54,7 @@ __all__ = ["GridExplorer", "CSS"]
 
 CSS = {"root": "qw-explorer", "plot": "qw-plot", "readout": "qw-readout",
        "message": "qw-message", "heading": "qw-heading"}
-STATE_TRAITS = ["source", "bits", "signed", "per_channel", "channel", "scale", "offset", "method",
+STATE_TRAITS = ["source", "bits", "signed", "per_channel", "channel", "block", "scale", "offset", "method",
                 "keep_clip", "noise_steps", "temperature", "probe", "grid"]
 
 SAMPLED_ROWS = 32  # rows measured while a control of a large layer moves (exact when it stops)

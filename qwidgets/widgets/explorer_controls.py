@@ -17,6 +17,7 @@ from __future__ import annotations
 import ipywidgets as widgets
 
 from ..core.ranges import METHODS
+from .explorer_blocks import blocks_per_channel, granularity_label
 from .explorer_panel import METHOD_LABELS, SOURCE_LABELS, fmt3
 from .explorer_state import ExplorerState
 from .number_control import LinearPositions, LogPositions, NumberControl, bind
@@ -75,8 +76,17 @@ class ExplorerControls:
                                        layout=widgets.Layout(width="130px"))
         c["per_channel"] = widgets.Checkbox(description="per channel", indent=False,
                                             layout=widgets.Layout(width="120px"))
+        c["granularity"] = widgets.Dropdown(options=self._granularity_options(), value=st.granularity,
+                                            description="grid per", style={"description_width": "52px"},
+                                            tooltip="one step per tensor, per output channel, or per "
+                                                    "block of that many inputs of a channel",
+                                            layout=widgets.Layout(width="180px"))
         c["channel"] = widgets.BoundedIntText(value=0, min=0, max=0, description="channel", style=small,
                                               layout=widgets.Layout(width="150px"))
+        c["block"] = widgets.BoundedIntText(value=0, min=0, max=0, description="block",
+                                            style={"description_width": "40px"},
+                                            tooltip="the block shown, within the channel (block grids)",
+                                            layout=widgets.Layout(width="120px"))
         c["keep_clip"] = widgets.Checkbox(description="keep clip range", indent=False,
                                           tooltip="a new bit width keeps the clip range instead of "
                                                   "refitting it", layout=widgets.Layout(width="130px"))
@@ -99,9 +109,12 @@ class ExplorerControls:
         self.controls = c
         bind(st, "bits", c["bits"], on_error=on_error, before=before, show=self._show_bits)
         bind(st, "channel", c["channel"], on_error=on_error, before=before, show=self._show_channel)
+        bind(st, "block", c["block"], on_error=on_error, before=before, show=self._show_channel)
+        bind(st, "granularity", c["granularity"], on_error=on_error, before=before, show=self._show_granularity)
         for name in ("source", "signed", "per_channel", "keep_clip", "method"):
             bind(st, name, c[name], on_error=on_error, before=before)
-        st.observe(self._layout_changed, names=["source", "bits", "signed", "per_channel", "channel"])
+        st.observe(self._layout_changed, names=["source", "bits", "signed", "per_channel", "channel",
+                                                "granularity", "block"])
         st.observe(lambda _ch: self._place_offset(), names="offset")
         st.observe(lambda _ch: self._place_step(), names="scale")
         self.enable(True)
@@ -111,7 +124,8 @@ class ExplorerControls:
         c, row = self.controls, widgets.Layout(align_items="center")
         return [
             heading,
-            widgets.HBox([c["source"], c["signed"], c["per_channel"], c["channel"]], layout=row),
+            widgets.HBox([c["source"], c["signed"], c["per_channel"], c["granularity"], c["channel"],
+                          c["block"]], layout=row),
             c["bits"],
             widgets.HBox([widgets.VBox([c["scale"], c["offset"]]),
                           widgets.VBox([c["noise"], c["temperature"], c["probe"]])]),
@@ -137,10 +151,27 @@ class ExplorerControls:
             b.value = self.state.bits
 
     def _show_channel(self) -> None:
-        ch = self.controls["channel"]
-        with ch.hold_sync():
-            ch.max = max(self.state.n_channels() - 1, 0)
-            ch.value = self.state.channel
+        for name, n, v in (("channel", self.state.n_channels(), self.state.channel),
+                           ("block", blocks_per_channel(self.state.grid), self.state.block)):
+            box = self.controls[name]
+            with box.hold_sync():
+                box.max = max(n - 1, 0)
+                box.value = v
+
+    def _granularity_options(self) -> list:
+        st = self.state
+        opts = ["tensor"] + (["channel", *st.block_options()] if st.can_per_channel(st.source) else [])
+        if st.granularity not in opts:  # a grid given from elsewhere (a plan's block size)
+            opts.append(st.granularity)
+        return [(granularity_label(o), o) for o in opts]
+
+    def _show_granularity(self) -> None:
+        d = self.controls["granularity"]
+        options = self._granularity_options()
+        with d.hold_sync():
+            if list(d.options) != options:
+                d.options = options
+            d.value = self.state.granularity
 
     def _step_positions(self) -> LogPositions:
         centre = self.state.fitted_step()
@@ -169,6 +200,7 @@ class ExplorerControls:
         self.controls["scale"].set_positions(self._step_positions())
         self.controls["offset"].set_positions(self._offset_positions())
         self._show_channel()
+        self._show_granularity()
         self.enable(self.enabled)
 
     def place_probe(self, view: tuple) -> None:
@@ -182,7 +214,7 @@ class ExplorerControls:
 
     def enable(self, enabled: bool) -> None:
         """Enable or disable every control but the learn / stop button (while learning);
-        enabled, the per-channel choice, channel and offset follow the state."""
+        enabled, the per-channel and granularity choices, channel, block and offset follow the state."""
         st, c = self.state, self.controls
         self.enabled = enabled
         for name, w in c.items():
@@ -192,6 +224,8 @@ class ExplorerControls:
             c["source"].disabled = len(st.sources) == 1
             c["per_channel"].disabled = not st.can_per_channel(st.source) or (
                 st.rules is not None and not st.rules.per_channel_weights)
+            c["granularity"].disabled = c["per_channel"].disabled
             c["channel"].disabled = st.grid.axis is None
+            c["block"].disabled = not st.grid.blocked
             c["offset"].disabled = st.symmetric_only(st.source)
 

@@ -23,7 +23,7 @@ import numpy as np
 import torch
 
 from ..core.grid import UniformGrid
-from ..core.metrics import ErrorStats, error_stats
+from ..core.metrics import ErrorStats, error_stats, grid_usage
 from ..core.relaxed import bin_probabilities, expected_quantize, relaxed_quantize
 from ..core.rounding import quantize
 from ..core.sorted_values import SortedValues
@@ -74,6 +74,9 @@ class ExplorerNumbers:
         src, g = st.source, st.grid
 
         def compute():
+            if g.blocked:  # a block grid: the core's blocked quantize and usage, once per grid
+                v = self.subject.values[src]
+                return error_stats(v, quantize(v, g)), grid_usage(v, g)
             key = (src, g.axis)
             if key not in self._sorted:
                 self._sorted[key] = SortedValues(self.subject.values[src], axis=g.axis)

@@ -10,6 +10,7 @@ from __future__ import annotations
 import html
 import math
 
+from .explorer_blocks import block_label, granularity_label
 from .number_control import eng
 
 __all__ = ["METHOD_LABELS", "SOURCE_LABELS", "WARN_CLIPPED", "fmt3", "fmt_value", "readout_html",
@@ -69,18 +70,22 @@ def readout_rows(state, tensor, layer, *, map_codes=None, ticks_every: int = 1) 
     ``tensor``: (ErrorStats, GridUsage) of the whole tensor; ``layer``: the layer-output
     ErrorStats, a sampled estimate (``.stats``, ``.sqnr_se_db``, ``.rows``, ``.total``) or
     None. In per-channel mode the channel's grid and the whole tensor's figures are headed as
-    such. ``map_codes``: the codes the bin map shows; ``ticks_every``: 1 in that many grid
+    such; with a block grid, the block's (``block 3 of 8 (inputs 96-127)``). ``map_codes``: the codes the bin map shows; ``ticks_every``: 1 in that many grid
     points is drawn in the histogram.
     """
     g, shown = state.grid, state.shown_grid()
     stats, usage = tensor
     step = float(shown.scale)
     per_channel = g.axis is not None
-    rows = [("bits", f"{g.bits} ({g.n_levels:,} levels, {'signed' if g.signed else 'unsigned'})"),
+    per = "" if g.axis is None else f", {granularity_label(g.granularity)}"  # per channel / blocks of g
+    rows = [("bits", f"{g.bits} ({g.n_levels:,} levels, {'signed' if g.signed else 'unsigned'}){per}"),
             ("grid shown", origin_text(state.origin()))]
     if per_channel:
         s = g.scale_tensor()
-        rows.append((f"channel {state.channel} of {s.numel()}", None))
+        rows.append((f"channel {state.channel} of {state.n_channels()}", None))
+        if g.blocked:  # the figures above the whole tensor's are the block's
+            rows.append((block_label(g, state.channel, state.block, state.values[state.source].shape[g.axis]),
+                         None))
     rows.append(("step", fmt_value(step, step)))
     rows.append(("offset", fmt_value(float(shown.offset), step)))
     lo, hi = shown.clip_range
@@ -90,7 +95,8 @@ def readout_rows(state, tensor, layer, *, map_codes=None, ticks_every: int = 1) 
     if ticks_every > 1:
         rows.append(("grid points drawn", f"1 in {ticks_every}"))
     if per_channel:
-        rows.append(("steps of all channels", f"{float(s.min()):.3g} to {float(s.max()):.3g}"))
+        rows.append((f"steps of all {'blocks' if g.blocked else 'channels'}",
+                     f"{float(s.min()):.3g} to {float(s.max()):.3g}"))
         rows.append(("whole tensor", None))
     rows.append(("clipped", f"{100 * usage.clipped_fraction:.3g} %"))
     if usage.clipped_fraction > WARN_CLIPPED:

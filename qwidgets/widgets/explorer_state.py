@@ -10,15 +10,17 @@ boundary (a clear error names the trait):
 - ``bits``: refits the range with ``method`` (unless ``keep_clip``: the clip range is cut into
   the new number of steps), or brings back the grid learned earlier for that (source, width);
   a width the device rules do not run moves to the next allowed one and ``note`` says so;
-- ``scale`` / ``offset``: the step and offset of the grid (of the channel shown, per channel),
+- ``scale`` / ``offset``: the step and offset of the grid (of the channel / block shown),
   moved onto the device rules (power-of-two steps, whole-step or zero offsets);
-- ``signed``, ``per_channel``: refit with that choice; ``channel``: which channel is shown;
+- ``signed``, ``per_channel``, ``granularity`` (``"tensor"``, ``"channel"`` or a block size of
+  :meth:`ExplorerState.block_options`): refit with that choice; ``channel``: which channel is
+  shown, ``block``: which block of it (block grids; ``per_channel`` is then True too);
 - ``source``: which tensor (``"weight"`` / ``"input"``, or ``"values"``); each keeps its grid.
 
-Traits that describe the grid follow it when the grid changes by other means (a fit, a
-learning run, a loaded setting); an edit that asks for what the grid already is changes
-nothing. Grids come from the core (:class:`qwidgets.core.ranges.RangeFitter`, one per
-source, method and layout, so a new width costs the range search, not another sort).
+Traits that describe the grid follow it when it changes by other means (a fit, a learning
+run, a loaded setting); an edit asking for what the grid already is changes nothing. Grids
+come from the core (:class:`qwidgets.core.ranges.RangeFitter`, one per source, method and
+layout: a new width costs the range search, not another sort).
 """
 
 from __future__ import annotations
@@ -29,18 +31,21 @@ import torch
 import traitlets
 
 from ..core.checks import check_bits
-from ..core.device_rules import DeviceRules, conform_grid
+from ..core.device_rules import DeviceRules
 from ..core.grid import UniformGrid
 from ..core.grid_cache import fit_cached
 from ..core.ranges import METHODS, RangeFitter
 from ..model.layers import WEIGHT_AXIS
+from . import explorer_blocks as blocks
+from .explorer_blocks import ShownPart
+from .explorer_rules import RulesOfState, role
 
 __all__ = ["ExplorerState", "role", "PREFETCH_UP_TO"]
 
 PREFETCH_UP_TO = 8  # widths fitted ahead while idle: all up to this many bits (the usual choices)
 
 
-class ExplorerState(traitlets.HasTraits):
+class ExplorerState(RulesOfState, ShownPart, traitlets.HasTraits):
     """What a :class:`~qwidgets.GridExplorer` shows (``explorer.state``); observe or link it.
 
     >>> import torch
@@ -63,6 +68,9 @@ class ExplorerState(traitlets.HasTraits):
     signed = traitlets.Bool(True, help="signed integer codes")
     per_channel = traitlets.Bool(False, help="one step and offset per output channel")
     channel = traitlets.Int(0, help="the channel shown (per-channel grids)")
+    granularity = traitlets.Union([traitlets.Enum(("tensor", "channel")), traitlets.Int()], default_value="tensor",
+                                  help="'tensor', 'channel' or a block size (a step per block of inputs)")
+    block = traitlets.Int(0, help="the block shown, within the channel (block grids)")
     scale = traitlets.Float(1.0, help="the grid step (of the channel shown), exact")
     offset = traitlets.Float(0.0, help="the grid offset (of the channel shown), exact")
     method = traitlets.Enum(METHODS, default_value="mse", help="range fit of a new grid")
@@ -82,9 +90,9 @@ class ExplorerState(traitlets.HasTraits):
         self.origins: dict = {}  # source -> how its current grid came about (see origin())
         self.probes: dict = {}  # source -> probe value
         self.version: dict = {}  # source -> edit counter
-        self._fitted: dict = {}  # (source, bits, method, signed, axis) -> grid
-        self._fitters: dict = {}  # (source, method, signed, axis) -> RangeFitter
-        self._ranges: dict = {}  # (source, channel) -> (min, max); source -> share below 0
+        self._fitted: dict = {}  # (source, bits, method, signed, granularity) -> grid
+        self._fitters: dict = {}  # (source, method, signed, granularity) -> RangeFitter
+        self._ranges: dict = {}  # (source, channel shown) -> (min, max); source -> share below 0
         super().__init__(source=source, method=method, noise_steps=noise_steps, temperature=temperature)
 
     @property
@@ -146,6 +154,25 @@ class ExplorerState(traitlets.HasTraits):
                 f"{'the layer input' if self.source == 'input' else self.source}")
         return proposal["value"]
 
+    @traitlets.validate("granularity")
+    def _check_granularity(self, proposal):
+        v = proposal["value"]
+        if v == "tensor" or (self.grid is not None and v == self.grid.granularity):
+            return v
+        if not self.can_per_channel(self.source) or (self.rules is not None and not self.rules.per_channel_weights):
+            raise traitlets.TraitError(f"granularity {v!r}: only 'tensor' is offered for {self.source} here")
+        if v != "channel" and v not in self.block_options():
+            raise traitlets.TraitError(f"granularity must be 'tensor', 'channel' or a block size of "
+                                       f"{list(self.block_options())}, got {v!r}")
+        return v
+
+    @traitlets.validate("block")
+    def _check_block(self, proposal):
+        n = blocks.blocks_per_channel(self.grid) if self.grid is not None else 1
+        if not 0 <= int(proposal["value"]) < n:
+            raise traitlets.TraitError(f"block must be in 0..{n - 1}, got {proposal['value']}")
+        return int(proposal["value"])
+
     @traitlets.validate("channel")
     def _check_channel(self, proposal):
         n = self.n_channels() if self.grid is not None else 1
@@ -161,7 +188,7 @@ class ExplorerState(traitlets.HasTraits):
         if g is None or bits == g.bits:
             return
         kept, origin = self.kept.get((self.source, bits), (None, None))
-        if kept is not None and kept.signed == g.signed and (kept.axis is None) == (g.axis is None):
+        if kept is not None and kept.signed == g.signed and kept.granularity == g.granularity:
             self.set_grid(kept, origin=origin)  # a learned or hand-edited grid stays
         elif self.keep_clip:  # the same clip range cut into more (or fewer) steps
             new = g.replace(bits=bits)
@@ -170,7 +197,7 @@ class ExplorerState(traitlets.HasTraits):
             self.set_grid(self.obeying(g.replace(bits=bits, scale=scale), self.source),
                           origin=("clip range kept", g.bits))
         else:
-            self.set_grid(self.fitted(self.source, bits, g.signed, g.axis is not None),
+            self.set_grid(self.fitted(self.source, bits, g.signed, g.granularity),
                           origin=("fitted", self.method))
 
     @traitlets.observe("scale", "offset")
@@ -185,22 +212,30 @@ class ExplorerState(traitlets.HasTraits):
             new = g.replace(**{name: value})
         else:
             t = (g.scale_tensor() if name == "scale" else g.offset_tensor()).detach().clone()
-            t[self.channel] = value
+            if g.blocked:  # the block shown, of the channel shown
+                t = t.expand_as(g.scale_tensor()).contiguous()
+                t.view(-1)[blocks.block_flat_index(g, self.channel, self.block)] = value
+            else:
+                t[self.channel] = value
             new = g.replace(**{name: t})
         self.kept[(self.source, new.bits)] = (new, ("edited", None))
         self.set_grid(new, origin=("edited", None))
 
-    @traitlets.observe("signed", "per_channel")
+    @traitlets.observe("signed", "per_channel", "granularity")
     def _on_layout(self, change):
         g = self.grid
-        if g is None or (self.signed == g.signed and self.per_channel == (g.axis is not None)):
+        if g is None:
             return
-        if change["name"] == "per_channel":
-            self.channel = 0
-        new = self.fitted(self.source, g.bits, self.signed, self.per_channel)
+        if change["name"] == "per_channel":  # per channel (blocks are within channels too)
+            if self.per_channel != (g.axis is not None):
+                self.granularity = "channel" if self.per_channel else "tensor"
+            return
+        if self.signed == g.signed and self.granularity == g.granularity:
+            return
+        new = self.fitted(self.source, g.bits, self.signed, self.granularity)
         self.set_grid(new, origin=("fitted", self.method))
 
-    @traitlets.observe("channel")
+    @traitlets.observe("channel", "block")
     def _on_channel(self, change):
         self._follow()
 
@@ -221,15 +256,18 @@ class ExplorerState(traitlets.HasTraits):
         """Make ``grid`` the current grid of ``source`` (default: the current source);
         ``origin``: how it came about, ``(kind, detail)`` (see :meth:`origin`)."""
         source = source or self.source
-        if not isinstance(grid, UniformGrid):
-            raise TypeError(f"grid must be a UniformGrid, got {type(grid).__name__}")
+        if not isinstance(grid, UniformGrid):  # a TokenGrid's scales come from each row, at run time
+            raise TypeError(f"grid must be a UniformGrid (a fixed grid to explore), got {type(grid).__name__}")
         self.grids[source] = grid
         self.origins[source] = origin
         self.version[source] = self.version.get(source, 0) + 1
         if source == self.source:
-            if grid.axis is None or self.channel >= self.n_channels_of(grid, source):
-                self.channel = 0 if grid.axis is None else min(self.channel, 0)
-            self.grid = grid
+            with self.hold_trait_notifications():  # observers see the new grid with its channel
+                if grid.axis is None or self.channel >= self.n_channels_of(grid, source):
+                    self.channel = 0 if grid.axis is None else min(self.channel, 0)
+                if self.block >= blocks.blocks_per_channel(grid):
+                    self.block = 0
+                self.grid = grid
             self._follow()
 
     def _follow(self) -> None:
@@ -238,6 +276,7 @@ class ExplorerState(traitlets.HasTraits):
         with self.hold_trait_notifications():
             self.signed = g.signed
             self.per_channel = g.axis is not None
+            self.granularity = g.granularity
             self.bits = g.bits
             self.scale = float(shown.scale)
             self.offset = float(shown.offset)
@@ -249,21 +288,31 @@ class ExplorerState(traitlets.HasTraits):
         v = self.values[source]
         return source != "input" and v.dim() >= 2 and v.shape[0] > 1
 
-    def fitted(self, source: str, bits: int, signed: bool | None, per_channel: bool,
+    def block_options(self, source: str | None = None) -> tuple:
+        """Block sizes offered for ``source`` (default: the current): shorter than its axis 1."""
+        return blocks.block_options(self.values[source or self.source], self.can_per_channel(source or self.source))
+
+    def fitted(self, source: str, bits: int, signed: bool | None, per_channel: bool | str | int,
                method: str | None = None) -> UniformGrid:
-        """The range fitted by ``method`` (default: the selected one), cached."""
+        """The range fitted by ``method`` (default: the selected one), cached; ``per_channel``:
+        True / False, or a granularity (``"tensor"``, ``"channel"`` or a block size)."""
         method = self.method if method is None else method
-        axis = WEIGHT_AXIS if per_channel else None
-        key = (source, bits, method, signed, axis)
+        if isinstance(per_channel, bool):
+            per_channel = "channel" if per_channel else "tensor"
+        if isinstance(per_channel, int):  # blocks along the input axis of each channel
+            layout = {"axis": 1 - WEIGHT_AXIS, "block_size": per_channel}
+        else:
+            layout = {"axis": WEIGHT_AXIS if per_channel == "channel" else None}
+        key = (source, bits, method, signed, per_channel)
         if key not in self._fitted:
-            fitter = self._fitters.get((source, method, signed, axis))
+            fitter = self._fitters.get((source, method, signed, per_channel))
             if fitter is None:  # one per tensor and layout: its sorted copy serves every width
                 extra = {} if self.rules is None else {"rules": self.rules, "role": role(source)}
-                fitter = RangeFitter(self.values[source], method, signed=signed, axis=axis, **extra)
-                self._fitters[(source, method, signed, axis)] = fitter
-                self._fitters[(source, method, fitter.signed, axis)] = fitter
+                fitter = RangeFitter(self.values[source], method, signed=signed, **layout, **extra)
+                self._fitters[(source, method, signed, per_channel)] = fitter
+                self._fitters[(source, method, fitter.signed, per_channel)] = fitter
             g = fit_cached(fitter, (bits,))[0]  # shared with scans of the same values
-            self._fitted[key] = self._fitted[(source, bits, method, g.signed, axis)] = g
+            self._fitted[key] = self._fitted[(source, bits, method, g.signed, per_channel)] = g
         return self._fitted[key]
 
     def start(self, bits: int, per_channel: bool) -> None:
@@ -290,16 +339,15 @@ class ExplorerState(traitlets.HasTraits):
         near = menu[max(i - 1, 0):i + 2]
         rest = sorted((b for b in menu if b <= PREFETCH_UP_TO and b not in near), key=lambda b: (abs(b - g.bits), b))
         todo = [(b, g.signed) for b in (*near, *rest)] + [(g.bits, not g.signed)] * (self.rules is None)
-        axis = None if g.axis is None else WEIGHT_AXIS
-        todo = [(b, sg) for b, sg in todo if (self.source, b, self.method, sg, axis) not in self._fitted]
+        todo = [(b, sg) for b, sg in todo if (self.source, b, self.method, sg, g.granularity) not in self._fitted]
         for bits, signed in todo[:limit]:
-            self.fitted(self.source, bits, signed, axis is not None)
+            self.fitted(self.source, bits, signed, g.granularity)
         return limit is not None and len(todo) > limit
 
     def fitted_now(self) -> UniformGrid:
         """The fitted grid for the current source, bits, signedness and per-channel choice."""
         g = self.grid
-        return self.fitted(self.source, g.bits, g.signed, g.axis is not None)
+        return self.fitted(self.source, g.bits, g.signed, g.granularity)
 
     def fit(self, method: str | None = None) -> UniformGrid:
         """Refit the current grid's range (with ``method``, which becomes the selected one)."""
@@ -323,75 +371,3 @@ class ExplorerState(traitlets.HasTraits):
         """How the current grid came about: ``("fitted", method)``, ``("learned", steps)``,
         ``("edited", None)``, ``("clip range kept", from_bits)`` or ``("given", None)``."""
         return self.origins.get(self.source, ("given", None))
-
-    # ------------------------------------------------------------------ device rules
-    def allowed_bits(self, source: str, bits: int, up: bool = True) -> int:
-        """``bits`` if the rules allow it for ``source``, else the next allowed width in the
-        direction of the change (the nearest one at the ends of the menu)."""
-        menu = self.bits_menu(source)
-        if bits in menu:
-            return bits
-        ahead = [b for b in menu if (b > bits if up else b < bits)]
-        if ahead:
-            return min(ahead) if up else max(ahead)
-        return min(menu, key=lambda b: (abs(b - bits), b))
-
-    def bits_menu(self, source: str | None = None) -> tuple:
-        """The widths offered for ``source`` (default: the current one)."""
-        menu = None if self.rules is None else self.rules.bits_menu(role(source or self.source))
-        return tuple(range(1, 17)) if menu is None else tuple(sorted(menu))
-
-    def symmetric_only(self, source: str) -> bool:
-        return self.rules is not None and self.rules.symmetric_weights and role(source) == "weight"
-
-    def obeying(self, grid: UniformGrid, source: str) -> UniformGrid:
-        """``grid`` moved onto the device rules (zero point, power-of-two scale), if any."""
-        if self.rules is None:
-            return grid
-        return conform_grid(grid, self.values[source], self.rules, role(source))
-
-    # ------------------------------------------------------------------ views
-    def n_channels_of(self, grid: UniformGrid, source: str) -> int:
-        return 1 if grid.axis is None else int(self.values[source].shape[grid.axis])
-
-    def n_channels(self) -> int:
-        return self.n_channels_of(self.grid, self.source)
-
-    def shown_grid(self) -> UniformGrid:
-        """The grid of the channel shown (the grid itself when it is per-tensor)."""
-        g = self.grid
-        if g.axis is None:
-            return g
-        return UniformGrid(g.bits, float(g.scale_tensor()[self.channel]),
-                           float(g.offset_tensor()[self.channel]) + 0.0, signed=g.signed)
-
-    def shown_values(self) -> torch.Tensor:
-        v = self.values[self.source]
-        if self.grid.axis is not None:
-            return v.movedim(self.grid.axis, 0)[self.channel].reshape(-1)
-        return v.reshape(-1)
-
-    def shown_range(self) -> tuple:
-        """(lowest, highest) of :meth:`shown_values` (kept: the values never change)."""
-        key = (self.source, None if self.grid.axis is None else self.channel)
-        if key not in self._ranges:
-            v = self.shown_values()
-            self._ranges[key] = (float(v.min()), float(v.max()))
-        return self._ranges[key]
-
-    def negative_share(self, source: str) -> float:
-        """The share of ``source``'s values below zero (kept: the values never change)."""
-        if source not in self._ranges:
-            self._ranges[source] = float((self.values[source] < 0).double().mean())
-        return self._ranges[source]
-
-    def fitted_step(self) -> float:
-        """The fitted step of the channel shown (the centre of the step control's window)."""
-        g = self.fitted_now()
-        s = g.scale_tensor()
-        return float(s[self.channel] if g.axis is not None else s.reshape(-1)[0])
-
-
-def role(source: str) -> str:
-    """Which device rules apply to a source: inputs follow the input rules, the rest the weight rules."""
-    return "input" if source == "input" else "weight"

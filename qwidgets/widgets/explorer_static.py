@@ -23,11 +23,11 @@ class ValueAxes:
         self.figure, self.subject = figure, subject
         self.data_range = (0.0, 1.0)
         self.error_sample = None
-        self.shown: tuple | None = None  # (source, channel, per_channel) the histogram is of
+        self.shown: tuple | None = None  # (source, channel, granularity, block) the histogram is of
 
     def select(self, state) -> None:
         """Histogram of the values shown (recomputed only when the source or channel changes)."""
-        key = (state.source, state.channel, state.grid.axis is not None)
+        key = (state.source, state.channel, state.grid.granularity, state.block if state.grid.blocked else 0)
         if key == self.shown:
             return
         self.shown = key
@@ -40,6 +40,8 @@ class ValueAxes:
         n = v.numel()
         what = (f"Channel {state.channel} of {state.n_channels()}: {n:,} {label}"
                 if state.grid.axis is not None else f"All {n:,} {label}")
+        if state.grid.blocked:
+            what = f"Channel {state.channel}, block {state.block}: {n:,} {label}"
         unit = {"weight": "weight value", "input": "input value", "values": "value"}[state.source]
         self.figure.set_values(counts, np.linspace(lo, hi, HIST_BINS + 1), what, unit)
         self.data_range = (lo, hi)

@@ -136,7 +136,8 @@ def layers_html(table: SensitivityTable, plan: Plan, edited: dict) -> str:
         alone = table.sqnr_db(name, w, "model", granularity=g) \
             if w in table.bits and name in table.layers else None
         note = f" ({edited[name]})" if name in edited else ""
-        inp = f"<td style='text-align:right'>{row['input_bits'] or 'float'}</td>" if with_inputs else ""
+        ig = " per token" if row.get("input_granularity") == "token" else ""  # scales at run time
+        inp = f"<td style='text-align:right'>{row['input_bits'] or 'float'}{ig}</td>" if with_inputs else ""
         gcell = "" if not with_grans else f"<td style='text-align:right'>{_granularity_label(row['granularity'])}</td>"
         body.append(
             f"<tr><td>{html.escape(name + note)}</td><td style='text-align:right'>{w or 'float'}</td>{gcell}{inp}"

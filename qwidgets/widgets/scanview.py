@@ -3,7 +3,10 @@
 The view draws a :class:`~qwidgets.scan.SensitivityTable` (made by :func:`qwidgets.scan`, or
 given); it computes nothing itself. Its state (the scope shown, the layer and width chosen) is
 a ``traitlets.HasTraits`` model, :class:`ScanState` (``view.state``), the controls are bound to.
-A table with input rows (``quantize="separate"``) shows them beside the weight rows. Picking a layer (the drop-down, or :meth:`ScanView.pick`)
+A table with input rows (``quantize="separate"``) shows them beside the weight rows; a table
+of several weight granularities (or with per-token input rows) offers a choice of the rows
+shown (``state.granularity``, ``state.input_granularity``), and the explorer opens on the
+weight granularity shown. Picking a layer (the drop-down, or :meth:`ScanView.pick`)
 marks its row in the heatmap (:class:`~qwidgets.viz.scan_figure.ScanFigure`) and opens a :class:`~qwidgets.widgets.explorer.GridExplorer` for
 that layer, starting at the picked bit width with the scan's range method.
 """
@@ -20,6 +23,7 @@ import traitlets
 from torch import nn
 
 from ..core.checks import check_choice
+from ..core.setting import LayerSetting
 from ..model.picking import split_data
 from ..model.sources import Data
 from ..planning.plan import Plan
@@ -30,6 +34,7 @@ from ..viz.heatmap import sqnr_limits, sqnr_table_html
 from ..viz.scan_figure import ScanFigure
 from .display_snapshot import SnapshotDisplay
 from .events import MessageLine
+from .explorer_blocks import granularity_label
 from .fold_note import batchnorm_note
 from .image_canvas import PlotCanvas
 from .number_control import bind
@@ -46,6 +51,8 @@ CSS = {
     "layer": "qw-scan-layer",
     "bits": "qw-scan-bits",
     "scope": "qw-scan-scope",
+    "granularity": "qw-scan-granularity",
+    "input_granularity": "qw-scan-input-granularity",
     "open": "qw-scan-open",
     "use_grid": "qw-scan-use-grid",
     "explorer": "qw-scan-explorer",
@@ -54,17 +61,31 @@ SCOPE_LABELS = {"model": "model output", "layer": "layer output"}
 
 
 class ScanState(traitlets.HasTraits):
-    """What a :class:`ScanView` shows (``view.state``): the scope, and the layer and width
-    chosen for the explorer. Set, observe or link these traits.
+    """What a :class:`ScanView` shows (``view.state``): the scope, the granularity of the
+    weight rows and of the input rows shown, and the layer and width chosen for the explorer.
+    Set, observe or link these traits.
 
-    >>> st = ScanState(scope="model", layer="fc", bits=4)
-    >>> st.scope, st.layer, st.bits
-    ('model', 'fc', 4)
+    >>> st = ScanState(scope="model", layer="fc", bits=4, granularity=32)
+    >>> st.scope, st.layer, st.bits, st.granularity, st.input_granularity
+    ('model', 'fc', 4, 32, 'tensor')
     """
 
     scope = traitlets.Enum(("model", "layer"), default_value="model", help="whose output's SQNR")
     layer = traitlets.Unicode("", help="the layer chosen")
     bits = traitlets.Int(4, help="the width chosen")
+    granularity = traitlets.Union([traitlets.Enum(("tensor", "channel")), traitlets.Int()], default_value="channel",
+                                  help="the weight rows shown: 'tensor', 'channel' or a block size")
+    input_granularity = traitlets.Enum(("tensor", "token"), default_value="tensor",
+                                       help="the input rows shown: one fitted scale, or a scale per token")
+    options = traitlets.Dict(help="trait -> the values the table holds (checked when set)")
+
+    @traitlets.validate("granularity", "input_granularity")
+    def _check_option(self, proposal):
+        name, v = proposal["trait"].name, proposal["value"]
+        scanned = self.options.get(name)
+        if scanned is not None and v not in scanned:
+            raise traitlets.TraitError(f"{name} must be one the table scanned, {list(scanned)}; got {v!r}")
+        return v
 
 
 class ScanView(SnapshotDisplay, widgets.VBox):
@@ -121,13 +142,17 @@ class ScanView(SnapshotDisplay, widgets.VBox):
         self.selected: tuple[str, int] | None = None
         t = self.table
         self.state = ScanState(scope="model" if "model" in t.scopes else "layer", layer=t.layers[0],
-                               bits=t.bits[len(t.bits) // 2])
+                               bits=t.bits[len(t.bits) // 2], granularity=t.granularities[0],
+                               options={"granularity": tuple(t.granularities),
+                                        "input_granularity": tuple(t.input_granularities)})
         self.inputs = t.quantize == "separate"  # input rows beside the weight rows
         # one colour scale for heatmap and table, for both scopes and both kinds of rows
-        self.color_limits = sqnr_limits(*(t.sqnr_array(s) for s in t.scopes),
-                                        *(t.sqnr_array(s, "input") for s in t.scopes if self.inputs))
+        self.color_limits = sqnr_limits(*(t.sqnr_array(s, granularity=g) for s in t.scopes for g in t.granularities),
+                                        *(t.sqnr_array(s, "input", g) for s in t.scopes if self.inputs
+                                          for g in t.input_granularities))
         self._build(width)
-        self.state.observe(lambda _ch: self.message.run("scope", self._draw), names="scope")
+        self.state.observe(lambda ch: self.message.run(ch["name"], self._draw),
+                           names=["scope", "granularity", "input_granularity"])
         self._draw()
 
     # ------------------------------------------------------------------ layout
@@ -138,6 +163,15 @@ class ScanView(SnapshotDisplay, widgets.VBox):
             "scope": widgets.ToggleButtons(options=[(SCOPE_LABELS[s], s) for s in t.scopes],
                                            value=self.state.scope, description="SQNR of",
                                            style={"description_width": "60px", "button_width": "110px"}),
+            "granularity": widgets.ToggleButtons(
+                options=[(granularity_label(g), g) for g in t.granularities], value=self.state.granularity,
+                description="weights", tooltip="the weight grids whose SQNR is shown",
+                style={"description_width": "60px", "button_width": "100px"}),
+            "input_granularity": widgets.ToggleButtons(
+                options=[(granularity_label(g), g) for g in t.input_granularities],
+                value=self.state.input_granularity, description="inputs",
+                tooltip="the input grids whose SQNR is shown (per token: scales computed at run time)",
+                style={"description_width": "60px", "button_width": "100px"}),
             "layer": widgets.Dropdown(options=t.layers, value=self.state.layer, description="layer",
                                       style={"description_width": "60px"},
                                       layout=widgets.Layout(width="260px")),
@@ -156,7 +190,7 @@ class ScanView(SnapshotDisplay, widgets.VBox):
         for name, w in self.controls.items():
             w.add_class(CSS[name])
         refused = lambda exc, name: self.message.error(exc, f"setting {name}")  # noqa: E731
-        for name in ("scope", "layer", "bits"):  # a note about the picked layer no longer matches
+        for name in ("scope", "granularity", "input_granularity", "layer", "bits"):  # a stale note goes
             bind(self.state, name, self.controls[name], on_error=refused, before=self.message.clear)
         self.controls["open"].on_click(lambda _b: self.message.run("explore", lambda: self.pick(
             self.state.layer, bits=self.state.bits)))
@@ -176,26 +210,31 @@ class ScanView(SnapshotDisplay, widgets.VBox):
                             self.controls["use_grid"]],
                            layout=widgets.Layout(align_items="center"))
         self.batchnorm_note = batchnorm_note(self.model, t.layers, width)
-        self.children = [self.controls["scope"], self.canvas.image, self.table_html, bar,
-                         self.message.widget, self.batchnorm_note, self.explorer_box]
+        choices = [self.controls[k] for k, n in (("granularity", len(t.granularities)),
+                                                 ("input_granularity", len(t.input_granularities))) if n > 1]
+        self.children = [widgets.HBox([self.controls["scope"], *choices]), self.canvas.image, self.table_html,
+                         bar, self.message.widget, self.batchnorm_note, self.explorer_box]
         self.add_class(CSS["root"])
 
     # ------------------------------------------------------------------ drawing
     def _draw(self) -> None:
         """Heatmap and table of the current scope, with the one colour scale."""
-        t, (vmin, vmax) = self.table, self.color_limits
-        scope = self.state.scope
+        t, (vmin, vmax), st = self.table, self.color_limits, self.state
+        scope, g, ig = st.scope, st.granularity, st.input_granularity
         how = ", estimated" if how_measured(t, scope) else ""
         what = "weights" if self.inputs else t.quantize
+        if len(t.granularities) > 1:
+            what = f"\n{what}, {granularity_label(g)},"  # a second line: the title stays inside
         inputs = None
         if self.inputs:
-            inputs = (t.sqnr_array(scope, "input"), t.input_bits, "layer inputs quantized")
-        self.figure.show(t.sqnr_array(scope), t.layers, t.bits,
+            inputs = (t.sqnr_array(scope, "input", ig), t.input_bits,
+                      "layer inputs quantized" + (" per token" if ig == "token" else ""))
+        self.figure.show(t.sqnr_array(scope, granularity=g), t.layers, t.bits,
                          f"{SCOPE_LABELS[scope]} SQNR (dB{how}), one layer at a time: {what} quantized",
                          vmin=vmin, vmax=vmax, inputs=inputs)
-        html_ = sqnr_table_html(t, scope, vmin, vmax)
+        html_ = sqnr_table_html(t, scope, vmin, vmax, granularity=g)
         if self.inputs:
-            html_ += sqnr_table_html(t, scope, vmin, vmax, source="input")
+            html_ += sqnr_table_html(t, scope, vmin, vmax, source="input", granularity=ig)
         self.table_html.value = html_
         self.canvas.render()
 
@@ -220,24 +259,28 @@ class ScanView(SnapshotDisplay, widgets.VBox):
         self.canvas.render()
         self.message.clear()
         if self.model is None:
-            self.message.info(f"{layer} at {bits} bits: {_summary(t, layer, bits)} "
+            self.message.info(f"{layer} at {bits} bits: {_summary(t, layer, bits, self.state.granularity)} "
                               "(give model= and data= to explore the grid)")
             return self
         if not t.has_input(layer) or t.kind(layer) != "layer":
-            self.message.info(f"{layer} at {bits} bits: {_summary(t, layer, bits)} (a "
+            self.message.info(f"{layer} at {bits} bits: {_summary(t, layer, bits, self.state.granularity)} (a "
                               f"{t.layer_type(layer)} entry: the grid explorer opens layers run as "
                               "modules)")
             return self
         from .explorer import GridExplorer
 
+        g = self.state.granularity  # the explorer opens on the granularity shown
         self.explorer = GridExplorer(self.model, self.data, layer=layer, bits=int(bits),
-                                     method=t.method, per_channel=t.per_channel and t.quantize != "input",
+                                     method=t.method, per_channel=g != "tensor" and t.quantize != "input",
                                      source="input" if t.quantize == "input" else "weight",
                                      max_samples=self._max_samples)
+        grid = t.weight_grid(layer, int(bits), granularity=g) if isinstance(g, int) else None
+        if grid is not None:  # a block grid: the scan's own
+            self.explorer.show_setting(LayerSetting(weight=grid), note=False)
         self.explorer_box.children = [widgets.HTML(f"<b>Grid explorer: layer {html.escape(layer)}</b>"),
                                       self.explorer]
         self.controls["use_grid"].disabled = self.planner is None
-        self.message.info(f"{layer} at {bits} bits: {_summary(t, layer, bits)}")
+        self.message.info(f"{layer} at {bits} bits: {_summary(t, layer, bits, self.state.granularity)}")
         return self
 
     def link_planner(self, planner: BudgetPlanner) -> ScanView:
@@ -280,8 +323,12 @@ class ScanView(SnapshotDisplay, widgets.VBox):
         self.canvas.save(path)
 
 
-def _summary(t: SensitivityTable, layer: str, bits: int) -> str:
-    parts = [f"{s} SQNR {t.sqnr_db(layer, bits, s):.2f} dB" for s in t.scopes]
+def _summary(t: SensitivityTable, layer: str, bits: int, g=None) -> str:
+    """The picked cell's figures (weights on the ``g`` grids shown, when the table has several)."""
+    g = None if g is None or t.quantize == "input" or t.kind(layer) == "activation" else g
+    parts = [f"{s} SQNR {t.sqnr_db(layer, bits, s, granularity=g):.2f} dB" for s in t.scopes]
+    if len(t.granularities) > 1 and g is not None:
+        parts[0] = f"{granularity_label(g)}: {parts[0]}"
     parts.append(f"{t.params(layer):,} weights, {t.macs(layer):,} MACs per sample")
     return ", ".join(parts)
 
