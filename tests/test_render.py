@@ -295,3 +295,15 @@ def test_message_line_shows_errors_and_notes():
     m.clear()
     assert m.text == "" and m.widget.value == ""
     assert "qw-message" in m.widget._dom_classes
+
+
+def test_a_first_prepare_then_encode_of_the_same_pixels_encodes_every_band():
+    """A first frame prepared with its middle rows skipped, then encoded unchanged: the
+    skipped bands are encoded then (they were never compressed, whatever the pixels kept
+    say); Pillow's decoder reads back exactly the frame."""
+    frame = np.zeros((100, 61, 4), np.uint8)  # the same pixels as a fresh encoder's kept frame
+    enc = FrameEncoder(band_rows=16)
+    enc.prepare(frame, (40, 70))
+    png = enc.encode(frame)
+    with Image.open(io.BytesIO(png)) as im:
+        np.testing.assert_array_equal(np.asarray(im.convert("RGB")), frame[..., :3])

@@ -155,13 +155,16 @@ class FrameEncoder:
         b = self.band_rows
         n = -(-h // b)
         if self._last is None or self._last.shape != arr.shape:
-            self._last = np.empty_like(arr)
+            # zeros, not empty: a band a first prepare() skipped is compared with these pixels
+            # by the next encode (uninitialised memory may hold this very frame: a band left
+            # unencoded)
+            self._last = np.zeros_like(arr)
             self._rows = np.empty((h, 1 + 3 * w), np.uint8)
             self._bands = [None] * n
             self._adlers = [1] * n
             changed = np.ones(n, bool)
-        else:
-            changed = self._changed_bands(arr, n)
+        else:  # and every band never encoded (one a first prepare() skipped)
+            changed = self._changed_bands(arr, n) | np.array([x is None for x in self._bands])
         if skip is not None:  # bands that reach into the rows still to be drawn wait
             first, end = skip
             starts = np.arange(n) * b
