@@ -116,3 +116,16 @@ def test_rerun_repeats_only_the_values_computed_from_the_batch():
     torch.testing.assert_close(both[3:], ref, rtol=0, atol=1e-6)
     params = {n for n in replay.nodes if n.op == "get_attr"}
     assert not any(replay.carries_batch(n) for n in params)
+
+
+def test_stacking_is_skipped_beyond_the_memory_cap_and_says_so(monkeypatch):
+    # the largest value after the layer (here the stem's 5 x 6 x 10 x 10 output), seven times, is
+    # over a cap of 10 KiB: each width replayed alone, the same numbers
+    torch.manual_seed(0)
+    net = _Residual().eval()
+    x = torch.randn(5, 3, 10, 10, generator=torch.Generator().manual_seed(1))
+    stacked = scan(net, x, bits=(2, 4, 8), method="minmax", progress=False, scope="model")
+    monkeypatch.setattr(stacked_suffix, "STACK_BYTES", 10 << 10)
+    with pytest.warns(ScanNote, match="memory cap"):
+        capped = scan(net, x, bits=(2, 4, 8), method="minmax", progress=False, scope="model")
+    np.testing.assert_allclose(stacked.sqnr_array("model"), capped.sqnr_array("model"), rtol=0, atol=1e-4)

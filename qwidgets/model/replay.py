@@ -141,6 +141,13 @@ class GraphReplay:
                     tiled.pop(a, None)
         raise RuntimeError("the traced graph has no output node")
 
+    def largest_after(self, name: str) -> int:
+        """Bytes of the largest tensor the last :meth:`record` computed at or after layer
+        ``name`` (what a :meth:`rerun` with ``copies`` holds that many times over)."""
+        sizes = [v.numel() * v.element_size() for n in self._suffix(name)
+                 if isinstance(v := self.values.get(n), torch.Tensor)]
+        return max(sizes, default=0)
+
     def carries_batch(self, node: fx.Node) -> bool:
         """Whether the recorded value of ``node`` is computed from the data and has the batch
         along axis 0 (what :meth:`rerun` repeats for ``copies``)."""

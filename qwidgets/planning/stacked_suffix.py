@@ -20,7 +20,7 @@ from ..model import layers
 from ..model import outputs as model_outputs
 from . import passes
 
-STACK_BYTES = 256 << 20  # the stacked layer output at most (the suffix's activations scale with it)
+STACK_BYTES = 256 << 20  # the largest value of the stacked rerun at most (an attention's scores, ...)
 CHECK_RATIO = 1e-3  # the float copy's error power at most this much of the smallest noise power
 
 # what a stacked pass over a graph that does not batch along axis 0 raises (shape mismatches)
@@ -38,7 +38,9 @@ def stacked_suffix_noise(replay, layer, name: str, configs, ref_parts, output=No
         return None
     w = layer.weight.detach()
     first = replay.values[replay.layer_nodes[name][0]]  # the recorded float output
-    if not isinstance(first, torch.Tensor) or first.dim() == 0 or first.numel() * first.element_size() * (b + 1) > STACK_BYTES:
+    if not isinstance(first, torch.Tensor) or first.dim() == 0:
+        return None
+    if replay.largest_after(name) * (b + 1) > STACK_BYTES:  # every value after it, b + 1 times
         return None
     order: list = list(range(b))
     order.insert(b // 2, None)  # the float copy, between the configs
