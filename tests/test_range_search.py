@@ -192,3 +192,15 @@ def test_short_rows_measure_every_sweep_candidate_with_the_same_grids(monkeypatc
     pruned = fit_ranges(x, (2, 5, 8), "mse", axis=0)
     for p, f in zip(pruned, plain, strict=True):
         assert torch.equal(p.scale_tensor(), f.scale_tensor())
+
+
+def test_pruning_keeps_the_best_candidate_where_the_bound_is_the_whole_error(monkeypatch):
+    # at 1 bit the two clipping runs are every value: the bound equals the error, which rows
+    # of fewer than 1024 values measure by float32 rounding (about 1e-7 relative off the float64
+    # bound); pruning must still give the grids of measuring every candidate
+    x = _values((40, 300), "heavy", seed=15)
+    pruned = fit_ranges(x, (1, 2, 8), "mse", axis=0)
+    monkeypatch.setattr(clip_search, "PRUNE_MIN_VALUES", 1 << 30)  # no row prunes
+    full = fit_ranges(x, (1, 2, 8), "mse", axis=0)
+    for p, f in zip(pruned, full, strict=True):
+        assert torch.equal(p.scale_tensor(), f.scale_tensor())

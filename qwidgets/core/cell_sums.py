@@ -138,9 +138,11 @@ class SortedRows:
                 n = part.qmax[i] - part.qmin[i] + 1
                 out[:, j] = self.total2[rows, None] - runs[..., a:a + n].sum(dim=2)
         rounded = tuple(j for j in range(w) if direct[j])
+        if len(rounded) == w:  # every width rounded (short rows): no picking
+            return self._rounded(lay, rows, s, o)
         if rounded:
             pick = torch.tensor(rounded, device=s.device)
-            part = lay.part(rounded) if len(rounded) < w else lay
+            part = lay.part(rounded)
             out.index_copy_(1, pick, self._rounded(part, rows, s.index_select(1, pick), o.index_select(1, pick)))
         return out
 

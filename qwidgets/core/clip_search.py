@@ -23,6 +23,9 @@ _COARSE_LOW = 1e-4  # smallest candidate range, as a fraction of the min-max ran
 _GOLDEN_ITERS = 22  # golden-section steps after the sweep: bracket shrinks by 0.618**22 ~ 2.5e-5
 _GOLD = (math.sqrt(5.0) - 1.0) / 2.0
 _PRUNE_SLACK = 1e-9  # a candidate is skipped only when its bound beats the best by this x sum(x**2)
+# ... and by this fraction of itself: errors measured by rounding in float32 may sit about 1e-7
+# (relative) below the float64 bound, and at 1 bit the bound is the whole error
+_PRUNE_REL = 1e-5
 PRUNE_MIN_VALUES = 256  # rows of at least this many values prune the sweep with the bound
 SEARCH_CAP = 1 << 24  # values the MSE search looks at, at most (a seeded subset beyond)
 
@@ -205,7 +208,7 @@ class _Objective:
         return self._measured(self.rows.sse, t)
 
     def lower(self, t: torch.Tensor) -> torch.Tensor:
-        return self._measured(self.rows.clip_sse, t, self.slack)
+        return self._measured(lambda *a: self.rows.clip_sse(*a) * (1.0 - _PRUNE_REL), t, self.slack)
 
     def _measured(self, measure, t: torch.Tensor, less=0.0) -> torch.Tensor:
         s, o = self.make(t.reshape(self.c, self.w, -1))
