@@ -1,6 +1,7 @@
 """A GPT-style decoder for the benchmarks: token and position embeddings, pre-norm blocks of
 causal self-attention (separate query / key / value / output Linears, written with
-``F.scaled_dot_product_attention``) and an MLP (4x the width unless ``mlp`` is given), a final LayerNorm and an output layer tied to
+``F.scaled_dot_product_attention``) and an MLP (4x the width unless ``mlp`` is given; with
+``gated``, ``down(silu(gate(h)) * up(h))``), a final LayerNorm and an output layer tied to
 the token embedding. Random weights at the usual initial scale (normal, std 0.02)."""
 
 from __future__ import annotations
@@ -11,12 +12,13 @@ from torch import nn
 
 
 class _Block(nn.Module):
-    def __init__(self, width: int, heads: int, mlp: int):
+    def __init__(self, width: int, heads: int, mlp: int, gated: bool = False):
         super().__init__()
         self.heads = heads
         self.ln1, self.ln2 = nn.LayerNorm(width), nn.LayerNorm(width)
         self.q, self.k, self.v, self.o = (nn.Linear(width, width) for _ in range(4))
         self.up, self.down = nn.Linear(width, mlp), nn.Linear(mlp, width)
+        self.gate = nn.Linear(width, mlp) if gated else None
 
     def _split(self, t, b, n):
         return t.view(b, n, self.heads, -1).transpose(1, 2)
@@ -27,15 +29,18 @@ class _Block(nn.Module):
         q, k, v = self._split(self.q(h), b, n), self._split(self.k(h), b, n), self._split(self.v(h), b, n)
         a = F.scaled_dot_product_attention(q, k, v, is_causal=True)
         x = x + self.o(a.transpose(1, 2).reshape(b, n, -1))
-        return x + self.down(F.gelu(self.up(self.ln2(x))))
+        h = self.ln2(x)
+        if self.gate is None:
+            return x + self.down(F.gelu(self.up(h)))
+        return x + self.down(F.silu(self.gate(h)) * self.up(h))
 
 
 class Decoder(nn.Module):
     def __init__(self, vocab: int = 8000, width: int = 256, layers: int = 4, heads: int = 4, context: int = 64,
-                 mlp: int | None = None):
+                 mlp: int | None = None, gated: bool = False):
         super().__init__()
         self.tok, self.pos = nn.Embedding(vocab, width), nn.Embedding(context, width)
-        self.blocks = nn.Sequential(*(_Block(width, heads, mlp or 4 * width) for _ in range(layers)))
+        self.blocks = nn.Sequential(*(_Block(width, heads, mlp or 4 * width, gated) for _ in range(layers)))
         self.ln = nn.LayerNorm(width)
         self.head = nn.Linear(width, vocab, bias=False)
         self.head.weight = self.tok.weight  # tied

@@ -8,8 +8,9 @@ Models (benchmarks/_decoder.py, random weights, normal with std 0.02; attention 
 ``F.scaled_dot_product_attention``; the output layer tied to the token embedding):
 - 124m: 12 layers, width 768, 12 heads, MLP 3072, vocabulary 50257, 8 sequences of 128 tokens
   (about 124M parameters);
-- 1.1b: 22 layers, width 2048, 32 heads, MLP 5632, vocabulary 32000, 4 sequences of 128 tokens
-  (about 1.1B parameters; needs about 12 GiB);
+- 1.1b: 22 layers, width 2048, 32 heads, a gated MLP of width 5632 (gate, up, down), vocabulary
+  32000, 4 sequences of 128 tokens (1.2B parameters with the tied output layer; needs about
+  12 GiB);
 - tiny: 2 layers of width 64 (a quick check that the script runs).
 
 While a stage runs, its elapsed time and memory are written to the results file every 15 s.
@@ -48,7 +49,8 @@ from qwidgets.planning.solver import plan_budget
 SIZES = {
     "tiny": dict(model=dict(vocab=500, width=64, layers=2, heads=4, context=32, mlp=256), sequences=4),
     "124m": dict(model=dict(vocab=50257, width=768, layers=12, heads=12, context=128, mlp=3072), sequences=8),
-    "1.1b": dict(model=dict(vocab=32000, width=2048, layers=22, heads=32, context=128, mlp=5632), sequences=4),
+    "1.1b": dict(model=dict(vocab=32000, width=2048, layers=22, heads=32, context=128, mlp=5632, gated=True),
+                 sequences=4),
 }
 MEAN_BITS = 4.5  # stored bits per planned weight (codes, scales and zero points)
 BOPS_FRACTION = 0.3  # the weights-and-activations plan: this fraction of 8-bit x 8-bit BOPs
