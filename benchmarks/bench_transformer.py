@@ -1,7 +1,7 @@
 """The whole decision on a GPT-style decoder at scale: gain scan, plan, evaluation; peak memory.
 
 Run:  .venv/bin/python benchmarks/bench_transformer.py [--size 124m | --size 1.1b | --size tiny] [--no-exact]
-      [--no-activations]
+      [--no-activations] [--threads N]
 (prints a table, writes results/transformer.json, or results/transformer_1.1b.json)
 
 Models (benchmarks/_decoder.py, random weights, normal with std 0.02; attention written with
@@ -22,6 +22,10 @@ Timed, each from a cold grid cache (every grid fitted, as in a fresh process):
   (weights at 2-8 bits, inputs and attention's query / key / value at 4, 6, 8 bits) and a
   BOPs budget of ``BOPS_FRACTION`` of the plan with every width at 8 bits;
 - the exact model scope (unless --no-exact): ``scan(scope="model")``, weights only.
+
+Threads: one torch thread unless ``--threads`` says otherwise (the scan's passes follow torch's
+setting; on the shared two-core machine a second thread mostly waits for a core another
+process holds).
 
 Peak memory: the peak resident set (Linux ``VmHWM``, reset through ``/proc/self/clear_refs``
 before each stage) above the resident set with the float model built (``VmRSS``). The machine
@@ -130,7 +134,8 @@ def decision(model, x, rows, out, prefix, base, **scan_kw):
     return table
 
 
-def main(size: str, exact: bool, activations: bool) -> None:
+def main(size: str, exact: bool, activations: bool, n_threads: int) -> None:
+    torch.set_num_threads(n_threads)
     spec = SIZES[size]
     model = make_decoder(**spec["model"])
     x = tokens(spec["sequences"], spec["model"]["context"], spec["model"]["vocab"])
@@ -166,4 +171,5 @@ if __name__ == "__main__":
     chosen = args[args.index("--size") + 1] if "--size" in args else "124m"
     if chosen not in SIZES:
         raise SystemExit(f"--size must be one of {', '.join(SIZES)}, got {chosen!r}")
-    main(chosen, "--no-exact" not in args, "--no-activations" not in args)
+    main(chosen, "--no-exact" not in args, "--no-activations" not in args,
+         int(args[args.index("--threads") + 1]) if "--threads" in args else 1)
