@@ -224,21 +224,49 @@ class _Objective:
         return t.reshape(self.c, self.w)
 
 
-def search_symmetric(rows: SortedRows, specs: GridSpecs, r_max: torch.Tensor) -> torch.Tensor:
-    """The extent r in (0, r_max] minimising each row's squared error, per width: (rows, widths)."""
+ROW_CHUNK_VALUES = 1 << 22  # a larger sample is searched in chunks of rows (bounds memory)
+
+
+def row_chunks(sample: torch.Tensor) -> list[slice]:
+    """Slices of rows of about :data:`ROW_CHUNK_VALUES` values each (one slice for fewer).
+
+    Each chunk is sorted and searched on its own: the grids are those of one search over all
+    rows (every step reads its own row only, and the sweep's pruning skips only candidates
+    that cannot win any row of the chunk), with the sorted copy, its prefix sums and the
+    sweep's bounds held for one chunk at a time (a 50257 x 768 embedding: 2.4 GiB at once)."""
+    c, m = sample.shape
+    step = max(1, ROW_CHUNK_VALUES // max(1, m))
+    return [slice(i, min(c, i + step)) for i in range(0, c, step)]
+
+
+def sorted_rows(sample: torch.Tensor) -> SortedRows | torch.Tensor:
+    """The sample's :class:`SortedRows`, or the sample itself when it is searched in
+    :func:`row_chunks` (the searches sort each chunk)."""
+    return SortedRows(sample) if len(row_chunks(sample)) == 1 else sample
+
+
+def search_symmetric(rows: SortedRows | torch.Tensor, specs: GridSpecs, r_max: torch.Tensor) -> torch.Tensor:
+    """The extent r in (0, r_max] minimising each row's squared error, per width: (rows, widths).
+
+    ``rows``: the sorted rows, or the unsorted sample, then searched in :func:`row_chunks`."""
+    if isinstance(rows, torch.Tensor):
+        return torch.cat([search_symmetric(SortedRows(rows[k]), specs, r_max[k]) for k in row_chunks(rows)])
     r_col = r_max[:, None, None]
     tiny = torch.finfo(torch.float32).tiny
     t = _Objective(rows, specs, lambda t: specs.symmetric_grid((t * r_col).clamp(min=tiny))).search()
     return t * r_max[:, None]
 
 
-def search_asymmetric(rows: SortedRows, specs: GridSpecs, lo0: torch.Tensor, hi0: torch.Tensor):
+def search_asymmetric(rows: SortedRows | torch.Tensor, specs: GridSpecs, lo0: torch.Tensor, hi0: torch.Tensor):
     """The range [lo, hi] inside [lo0, hi0] minimising each row's squared error, per width.
 
     First both ends shrink together towards zero; then each end is searched alone with the
     other one held (one round of coordinate descent); every step is a batched 1-D search.
-    Returns (lo, hi), each (rows, widths).
+    Returns (lo, hi), each (rows, widths). ``rows`` as in :func:`search_symmetric`.
     """
+    if isinstance(rows, torch.Tensor):
+        parts = [search_asymmetric(SortedRows(rows[k]), specs, lo0[k], hi0[k]) for k in row_chunks(rows)]
+        return torch.cat([p[0] for p in parts]), torch.cat([p[1] for p in parts])
     tiny = torch.finfo(torch.float32).tiny
     lo0c, hi0c = lo0[:, None, None], hi0[:, None, None]
 

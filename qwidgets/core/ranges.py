@@ -31,8 +31,8 @@ from numbers import Real
 
 import torch
 
+from . import clip_search
 from .blocks import BlockRows, check_block_size, round_scales
-from .cell_sums import SortedRows
 from .checks import as_input, check_axis, check_bits, check_choice
 from .clip_search import GridSpec, GridSpecs, search_asymmetric, search_sample, search_symmetric
 from .device_rules import DeviceRules, check_rules, power_of_two_fit
@@ -345,7 +345,7 @@ class _RowSet:
     def __init__(self, xf: torch.Tensor | None, method: str):
         self.xf, self.method = xf, method
         self.sample = search_sample(xf) if method == "mse" and xf is not None else None
-        self.rows: SortedRows | None = None
+        self.rows = None  # SortedRows, or the sample of a large search (sorted in chunks)
         self.extent = None
 
     def extent_for(self, specs: GridSpecs, symmetric: bool, pct: float):
@@ -359,7 +359,7 @@ class _RowSet:
         """(scale, offset) per row, float64, for each width of ``specs``."""
         method, n = self.method, len(specs.specs)
         if method == "mse" and self.rows is None:
-            self.rows = SortedRows(self.sample)
+            self.rows = clip_search.sorted_rows(self.sample)
         if symmetric:
             r = self.extent_for(specs, symmetric, pct)
             r = search_symmetric(self.rows, specs, r) if method == "mse" else r[:, None].expand(-1, n)
