@@ -69,11 +69,6 @@ def test_frame_encoder_prepares_the_rows_outside_a_span_and_then_compresses_the_
     with Image.open(io.BytesIO(png)) as im:
         np.testing.assert_array_equal(np.asarray(im.convert("RGB")), frame[..., :3])
     assert png == FrameEncoder(band_rows=16).encode(frame)
-    # half of many changed bands compressed by a helper thread: the same bytes
-    frame[:, 30:60, :3] = rng.integers(0, 256, size=(100, 30, 3), dtype=np.uint8)
-    parallel = enc.encode(frame, parallel=True)
-    assert enc.bands_encoded - before == 14
-    assert parallel == FrameEncoder(band_rows=16).encode(frame)
 
 
 def test_adler32_combine_equals_zlib_on_the_joined_bytes():

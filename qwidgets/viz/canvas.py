@@ -363,7 +363,7 @@ class BlitCanvas:
 
     def render(self) -> bytes:
         """Draw and encode as PNG; returns the PNG bytes (also kept in :attr:`last_png`)."""
-        png = self._encoder.encode(self.draw(), parallel=True)
+        png = self._encoder.encode(self.draw())
         self.renders += 1
         self.last_png = png
         return png

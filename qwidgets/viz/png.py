@@ -10,9 +10,7 @@ bands of rows that changed since the previous frame.
     bands of ``band_rows`` rows, each compressed on its own (a raw deflate segment ended by a
     sync flush, so the segments join into one valid stream); a band whose pixels equal the
     previous frame's keeps its compressed bytes. A control that moves one plot re-encodes the
-    rows that plot spans, not the whole figure. ``.encode(rgba, parallel=True)``: a helper
-    thread compresses half of the changed bands meanwhile (zlib releases Python's lock).
-    ``.prepare(rgba, rows)`` compresses the changed bands outside ``rows`` ahead (while the
+    rows that plot spans, not the whole figure. ``.prepare(rgba, rows)`` compresses the changed bands outside ``rows`` ahead (while the
     plots in those rows wait for data). ``.bands_encoded`` counts the bands compressed
     (tests, benchmarks).
 
@@ -28,21 +26,13 @@ from __future__ import annotations
 
 import struct
 import zlib
-from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 
 __all__ = ["FrameEncoder", "encode_png"]
 
 _SIGNATURE = b"\x89PNG\r\n\x1a\n"
-PARALLEL_BANDS = 6  # from this many changed bands on, a parallel encode splits them in two
-_HELPER: list = []  # one thread shared by every encoder (frames are encoded one at a time)
 
-
-def _helper() -> ThreadPoolExecutor:
-    if not _HELPER:
-        _HELPER.append(ThreadPoolExecutor(1, thread_name_prefix="qwidgets-png"))
-    return _HELPER[0]
 _FINAL_BLOCK = b"\x03\x00"  # an empty final deflate block (fixed Huffman, end of block)
 
 
@@ -130,11 +120,9 @@ class FrameEncoder:
         self._adlers: list = []  # Adler-32 of each band's scanlines
         self.bands_encoded = 0
 
-    def encode(self, rgba: np.ndarray, parallel: bool = False) -> bytes:
-        """PNG bytes of ``rgba``; ``parallel``: a helper thread compresses half of the changed
-        bands meanwhile (zlib runs without Python's lock)."""
+    def encode(self, rgba: np.ndarray) -> bytes:
         arr = np.asarray(rgba)
-        self._compress(arr, None, parallel)
+        self._compress(arr, None)
         h, w = arr.shape[:2]
         b = self.band_rows
         adler = 1
@@ -149,7 +137,7 @@ class FrameEncoder:
         ``rgba`` only inside those rows compresses just the bands they touch."""
         self._compress(np.asarray(rgba), rows)
 
-    def _compress(self, arr: np.ndarray, skip: tuple | None, parallel: bool = False) -> None:
+    def _compress(self, arr: np.ndarray, skip: tuple | None) -> None:
         _check(arr, self.level)
         h, w = arr.shape[:2]
         b = self.band_rows
@@ -169,27 +157,14 @@ class FrameEncoder:
             first, end = skip
             starts = np.arange(n) * b
             changed &= (starts + b <= first) | (starts >= end)
-        todo = [int(i) for i in np.flatnonzero(changed)]
-        if parallel and len(todo) >= PARALLEL_BANDS:
-            half = len(todo) // 2
-            other = _helper().submit(self._compress_bands, arr, todo[:half])
-            done = self._compress_bands(arr, todo[half:]) + other.result()
-        else:
-            done = self._compress_bands(arr, todo)
-        for i, data, adler in done:
-            self._bands[i], self._adlers[i] = data, adler
-        self.bands_encoded += len(todo)
-
-    def _compress_bands(self, arr: np.ndarray, bands: list) -> list:
-        """``(band, compressed bytes, Adler-32)`` of each band, its pixels kept as the last."""
-        h, b, out = arr.shape[0], self.band_rows, []
-        for i in bands:
+        for i in np.flatnonzero(changed):
             r0, r1 = i * b, min(h, (i + 1) * b)
             self._last[r0:r1] = arr[r0:r1]
             rows = _rows(arr[r0:r1], self._rows[r0:r1])
             c = zlib.compressobj(self.level, zlib.DEFLATED, -15)
-            out.append((i, c.compress(rows.data) + c.flush(zlib.Z_SYNC_FLUSH), zlib.adler32(rows.data)))
-        return out
+            self._bands[i] = c.compress(rows.data) + c.flush(zlib.Z_SYNC_FLUSH)
+            self._adlers[i] = zlib.adler32(rows.data)
+            self.bands_encoded += 1
 
     def _changed_bands(self, arr: np.ndarray, n: int) -> np.ndarray:
         h = arr.shape[0]

@@ -25,9 +25,9 @@ import torch
 from ..core.grid import UniformGrid
 from ..core.metrics import ErrorStats, error_stats, grid_usage
 from ..core.relaxed import bin_probabilities, expected_quantize, relaxed_quantize
-from ..core.rounding import quantize
+from ..core.rounding import quantize, quantize_unchecked
 from ..core.sorted_values import SortedValues
-from ..model.layers import output_on_grids
+from ..model.layers import layer_forward
 from ..planning.threads import threads
 from ..viz.explorer_figure import PlotData
 from .explorer_state import ExplorerState
@@ -107,14 +107,14 @@ class ExplorerNumbers:
             return lambda: value
         job = _LayerJob(sub, src, g, rows if sampled else None)
         if not background:
-            value = job.run(threads)
+            value = job.measure(job.forward(threads))
             self._caches["layer"] = {key: value}
             return lambda: value
         # a new thread starts from torch's default count: give it the caller's for None
-        future = _worker().submit(job.run, torch.get_num_threads() if threads is None else threads)
+        future = _worker().submit(job.forward, torch.get_num_threads() if threads is None else threads)
 
         def result():
-            value = future.result()
+            value = job.measure(future.result())
             self._caches["layer"] = {key: value}
             return value
 
@@ -196,28 +196,36 @@ def _worker() -> ThreadPoolExecutor:
 
 
 class _LayerJob:
-    """The layer-output measurement of one grid, from values that do not change meanwhile."""
+    """The layer-output measurement of one grid in three parts: the quantized operand
+    (caller's thread), the layer's forward (one call that runs without Python's lock, so a
+    worker thread needs the lock only to start and to finish: no hand-offs while the caller
+    draws) and the error figures (caller's thread). The arithmetic is layer_output's, in
+    the same order, so the figures equal :func:`qwidgets.layer_error`'s."""
 
     def __init__(self, subject: ExplorerSubject, source: str, grid: UniformGrid, rows: int | None):
-        self.subject, self.source, self.grid, self.rows = subject, source, grid, rows
+        self.subject, self.rows = subject, rows
+        n = subject.inputs.shape[0]
+        self.idx = None if rows is None else torch.linspace(0, n - 1, rows).round().long().unique()
+        x = subject.inputs if self.idx is None else subject.inputs[self.idx]
+        w = subject.layer.weight.detach()
+        with torch.no_grad():  # (the values were checked when the explorer was made)
+            if source == "input":
+                x = quantize_unchecked(x, grid)
+            else:
+                w = quantize(w, grid)
+        self.x, self.w = x, w
 
-    def run(self, n_threads: int | None):
-        with threads(n_threads):
-            return self._measure()
+    def forward(self, n_threads: int | None) -> torch.Tensor:
+        with threads(n_threads), torch.no_grad():
+            return layer_forward(self.subject.layer, self.x, self.w)
 
-    def _measure(self):
-        sub, g, rows = self.subject, self.grid, self.rows
-        # the values were checked when the explorer was made: the unchecked core functions
-        # compute what layer_output computes, without a second NaN / inf scan
-        kw = {"weight_grid": g} if self.source == "weight" else {"input_grid": g}
-        if rows is None:
-            out = output_on_grids(sub.layer, sub.inputs, **kw)
+    def measure(self, out: torch.Tensor):
+        sub = self.subject
+        if self.idx is None:
             sample = out.reshape(-1)[sub.scatter_idx].double().numpy()
             return error_stats(sub.reference, out), (sub.scatter_x, sample)
         n = sub.inputs.shape[0]
-        idx = torch.linspace(0, n - 1, rows).round().long().unique()
-        out = output_on_grids(sub.layer, sub.inputs[idx], **kw)
-        ref = sub.reference[idx]
+        ref = sub.reference[self.idx]
         stats = error_stats(ref, out)
         per = out.shape[0]
         e = (out - ref).double().reshape(per, -1).square().sum(1)
@@ -227,7 +235,7 @@ class _LayerJob:
         pick = torch.randperm(flat.numel(), generator=torch.Generator().manual_seed(0))
         pick = pick[: min(len(sub.scatter_x), flat.numel())]
         xs = ref.reshape(-1)[pick].double().numpy()
-        return SampledError(stats, idx.numel(), n, se), (xs, flat[pick].double().numpy())
+        return SampledError(stats, self.idx.numel(), n, se), (xs, flat[pick].double().numpy())
 
 
 def _probe_bars(g: UniformGrid, probe: float, noise: float, window, extent):
