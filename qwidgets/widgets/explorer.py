@@ -372,15 +372,15 @@ class GridExplorer(SnapshotDisplay, widgets.VBox):
                 self.panel.place_probe(self._probe_view)  # may move the probe into the view
                 self._updater.cancel()  # this redraw shows it already
             # the layer output is measured on a worker thread while the other plots are drawn
-            job = self.subject.has_layer and self.numbers.layer_soon(self.state, rows,
-                                                                     threads=self.refresh_threads)
-            data = self.numbers.plot_data(self.state, self.figure.view, self.axes.error_sample)
-            self.numbers.tensor(self.state)  # the readout's other figures
-            self.figure.update(data)
-            layer = None
-            if job:
+            st, job = self.state, None
+            if self.subject.has_layer:
+                job = self.numbers.layer_soon(st, rows, threads=self.refresh_threads)
+            self.figure.update(self.numbers.plot_data(st, self.figure.view, self.axes.error_sample))
+            self.numbers.tensor(st)  # the readout's other figures
+            if job is not None and job.waiting:
                 self.canvas.encode_ahead(self.figure.ax_out)  # (and compressed) meanwhile
-                self.figure.update_out(*(layer := job())[1])
+            if (layer := None if job is None else job()) is not None:
+                self.figure.update_out(*layer[1])
             self.readout.value = self._readout_html(layer)
             self.canvas.render()
 

@@ -92,7 +92,7 @@ class ExplorerNumbers:
         return self.layer_soon(st, rows, threads=None, background=False)()
 
     def layer_soon(self, st: ExplorerState, rows: int | None = None, *, threads: int | None = 1,
-                   background: bool = True) -> Callable[[], tuple]:
+                   background: bool = True) -> _Soon:
         """Start :meth:`layer` for the current state on a worker thread (``threads``: torch's
         intra-op threads there, None: torch's setting) and return a function that waits for
         it. The layer output is a matrix product that runs without Python's lock, so the plots
@@ -103,13 +103,12 @@ class ExplorerNumbers:
         key = (src, st.version[src], id(g), rows if sampled else None)
         hit = self._caches.get("layer", {})
         if key in hit:
-            value = hit[key]
-            return lambda: value
+            return _Soon(lambda: hit[key], waiting=False)
         job = _LayerJob(sub, src, g, rows if sampled else None)
         if not background:
             value = job.measure(job.forward(threads))
             self._caches["layer"] = {key: value}
-            return lambda: value
+            return _Soon(lambda: value, waiting=False)
         # a new thread starts from torch's default count: give it the caller's for None
         future = _worker().submit(job.forward, torch.get_num_threads() if threads is None else threads)
 
@@ -118,7 +117,7 @@ class ExplorerNumbers:
             self._caches["layer"] = {key: value}
             return value
 
-        return result
+        return _Soon(result, waiting=True)
 
     # ------------------------------------------------------------------ plot data
     def plot_data(self, st: ExplorerState, view: tuple, error_sample: torch.Tensor,
@@ -193,6 +192,16 @@ def _worker() -> ThreadPoolExecutor:
     if not _WORKER:
         _WORKER.append(ThreadPoolExecutor(1, thread_name_prefix="qwidgets-explorer"))
     return _WORKER[0]
+
+
+class _Soon:
+    """A value on its way: call it to wait for it; ``waiting``: it is being computed."""
+
+    def __init__(self, get: Callable[[], tuple], waiting: bool):
+        self.get, self.waiting = get, waiting
+
+    def __call__(self) -> tuple:
+        return self.get()
 
 
 class _LayerJob:
