@@ -274,16 +274,21 @@ def test_refine_keeps_token_inputs_and_learns_the_rest(token_setup):
 
 
 @pytest.mark.filterwarnings("ignore::qwidgets.planning.scanning.ScanNote")
-def test_attention_activations_take_token_grids_in_apply_and_onnx(tmp_path):
-    from attention_models import SdpaBlock
+@pytest.mark.parametrize("kind", ["sdpa", "mha"])
+def test_attention_activations_take_token_grids_in_apply_and_onnx(tmp_path, kind):
+    from attention_models import MHAClassifier, SdpaBlock
 
     torch.manual_seed(2)
-    net = SdpaBlock(16, 2).eval()
-    x = torch.randn(6, 5, 16) * torch.logspace(-1, 1, 5).reshape(1, 5, 1)
+    if kind == "sdpa":
+        net = SdpaBlock(16, 2).eval()
+        x = torch.randn(6, 5, 16) * torch.logspace(-1, 1, 5).reshape(1, 5, 1)
+    else:
+        net = MHAClassifier().eval()
+        x = torch.randn(6, 5, net.inp.in_features) * torch.logspace(-1, 1, 5).reshape(1, 5, 1)
     t = scan(net, x, bits=(8,), quantize="separate", input_bits=(4, 8), progress=False,
              input_granularity=("tensor", "token"))
     acts = [n for n in t.layers if t.kind(n) == "activation"]
-    assert "sdpa.query" in acts
+    assert ("sdpa.query" if kind == "sdpa" else "attn.probs") in acts
     for n in acts:
         assert np.isfinite(t.sqnr_db(n, 8, source="input", granularity="token"))
     p = plan_budget(t, mean_bits=64, fixed={n: {"input_bits": 8, "input_granularity": "token"} for n in acts})
