@@ -23,6 +23,7 @@ from qwidgets import (
     LayerSetting,
     ScanView,
     TokenGrid,
+    UniformGrid,
     error_stats,
     scan,
 )
@@ -108,10 +109,14 @@ def test_per_channel_and_tensor_choices_leave_blocks(explorer):
         ex.state.block = 1
 
 
-def test_a_token_input_cannot_be_explored_and_says_why(explorer):
-    ex, _ = explorer
-    with pytest.raises(TypeError, match="must be a UniformGrid, got TokenGrid"):
-        ex.show_setting(LayerSetting(input=TokenGrid(8)))  # its scales come from each row at run time
+def test_a_token_input_is_not_explored_and_the_note_says_why():
+    ex = GridExplorer(nn.Linear(64, 16), torch.randn(128, 64), bits=4)
+    before = ex.state.grids.get("input")
+    w = UniformGrid(4, 0.05, signed=True)
+    ex.show_setting(LayerSetting(weight=w, input=TokenGrid(8)))  # a plan's entry with a token input
+    assert ex.state.grids.get("weight") is w  # the weight grid is shown
+    assert ex.state.grids.get("input") is before  # its scales come from each row at run time
+    assert "per-token grid is computed at run time" in ex.message.text
     with pytest.raises(TypeError, match="a fixed grid to explore"):
         ex.state.set_grid(TokenGrid(8), "input")
 

@@ -7,9 +7,8 @@ functions, :class:`~qwidgets.viz.explorer_figure.ExplorerFigure` draws it. A cha
 state schedules one redraw (:class:`~qwidgets.widgets.events.Coalescer`), so dragging a slider
 never builds a backlog.
 
-The user's model is only read: the explorer keeps float32 copies of the layer's weight and of
-its input, and learned grids live in the explorer (``.grid``, ``.to_setting()``), never in the
-layer.
+The user's model is only read: the explorer keeps float32 copies of the layer's weight and
+input; learned grids live in the explorer (``.grid``, ``.to_setting()``), never in the layer.
 """
 
 from __future__ import annotations
@@ -30,6 +29,7 @@ from ..core.metrics import ErrorStats, GridUsage
 from ..core.ranges import METHODS
 from ..core.renamed import warn_renamed
 from ..core.setting import LayerSetting
+from ..core.token_grid import TokenGrid
 from ..learn.one_grid import DEFAULT_NOISE_STEPS, LearnResult
 from ..planning.threads import threads
 from ..viz.explorer_figure import ExplorerFigure
@@ -255,29 +255,29 @@ class GridExplorer(SnapshotDisplay, widgets.VBox):
             self.learner.start(int(self.controls["steps"].value))
 
     def reset(self) -> None:
-        """Back to the fitted grid of the current bit width, and the starting noise and
-        temperature (a grid learned for this width is forgotten)."""
+        """Back to the fitted grid (a learned one is dropped), starting noise and temperature."""
         self.state.reset()
         self.state.noise_steps, self.state.temperature = self._start
         self._note(f"reset to the fitted grid ({self.grid.bits} bits)")
 
     def show_setting(self, setting: LayerSetting, *, note: bool = True) -> None:
         """Show the grids of a :class:`LayerSetting` (e.g. a plan's entry for this layer):
-        its weight grid becomes the weights' grid, its input grid the input's. A tensor
-        explorer takes the weight grid."""
+        its weight grid becomes the weights' grid, its input grid the input's (a per-token
+        input grid is computed at run time: the input keeps its grid, and the note says so)."""
         if not isinstance(setting, LayerSetting):
             raise TypeError(f"setting must be a LayerSetting, got {type(setting).__name__}")
         pairs = [("weight" if self.subject.has_layer else "values", setting.weight)]
         if self.subject.has_layer:
             pairs.append(("input", setting.input))
+        token = any(isinstance(g, TokenGrid) for _, g in pairs)
+        pairs = [(source, g) for source, g in pairs if isinstance(g, UniformGrid)]
         for source, g in pairs:
-            if g is not None:
-                grid_params(self.subject.values[source], g)  # a grid that fits (clear error)
+            grid_params(self.subject.values[source], g)  # a grid that fits (clear error)
         for source, g in pairs:
-            if g is not None:
-                self.state.set_grid(g, source, origin=("given", None))
-        if note:
-            self._note("showing the given setting")
+            self.state.set_grid(g, source, origin=("given", None))
+        if note or token:
+            self._note("showing the given setting" + ("; its input's per-token grid is computed at "
+                       "run time, so the input's grid shown is unchanged" if token else ""))
 
     def _note(self, text: str) -> None:
         self.message.info(text)
