@@ -31,6 +31,19 @@ def naive_sqnr_db(model: nn.Module, x, plan: Plan) -> float:
     return 10 * math.log10(float(ref.square().sum()) / float((out - ref).square().sum()))
 
 
+def naive_weight_sqnr_db(model: nn.Module, x, name: str, grid) -> float:
+    """Reference written here: deep copy, overwrite one layer's weight with its quantized
+    version, one full forward, SQNR of the model's output by hand (float64)."""
+    with torch.no_grad():
+        ref = model(x).double()
+        c = copy.deepcopy(model)
+        layer = c.get_submodule(name)
+        layer.weight.copy_(quantize(layer.weight, grid))
+        out = c(x).double()
+    noise = float((out - ref).square().sum())  # no error at all: an infinite SQNR
+    return math.inf if noise == 0 else 10 * math.log10(float(ref.square().sum()) / noise)
+
+
 def _call(model: nn.Module, x):
     if isinstance(x, tuple):
         return model(*x)

@@ -15,7 +15,6 @@ Outside checks:
 
 from __future__ import annotations
 
-import copy
 import json
 import multiprocessing
 from concurrent.futures import Executor, ProcessPoolExecutor, ThreadPoolExecutor
@@ -23,9 +22,9 @@ from concurrent.futures import Executor, ProcessPoolExecutor, ThreadPoolExecutor
 import numpy as np
 import pytest
 import torch
+from naive_loops import naive_weight_sqnr_db
 from torch import nn
 
-from qwidgets.core.metrics import error_stats
 from qwidgets.core.ranges import fit_range
 from qwidgets.core.rounding import quantize
 from qwidgets.model.layers import layer_forward
@@ -73,15 +72,6 @@ def _mlp() -> nn.Module:
     return nn.Sequential(nn.Linear(6, 12), nn.ReLU(), nn.Linear(12, 8), nn.Tanh(), nn.Linear(8, 3)).eval()
 
 
-def _naive(model, x, name, grid) -> float:
-    """Deep copy, overwrite one layer's weight with its quantized version, full forward."""
-    with torch.no_grad():
-        ref = model(x)
-        c = copy.deepcopy(model)
-        layer = c.get_submodule(name)
-        layer.weight.copy_(quantize(layer.weight, grid))
-        return error_stats(ref, c(x)).sqnr_db
-
 
 def _state(model):
     return ({k: v.clone() for k, v in model.state_dict().items()},
@@ -107,7 +97,7 @@ def test_residual_model_scope_equals_naive_loop_from_the_replayed_suffix(device)
     for name in t.layers:
         assert t.weight_grid(name, 4).scale.device.type == device
         for b in t.bits:
-            assert abs(t.sqnr_db(name, b) - _naive(net, x, name, t.weight_grid(name, b))) <= 0.01
+            assert abs(t.sqnr_db(name, b) - naive_weight_sqnr_db(net, x, name, t.weight_grid(name, b))) <= 0.01
 
 
 def test_replay_is_kept_when_the_passes_run_on_fewer_threads(monkeypatch):
@@ -127,7 +117,7 @@ def test_replay_is_kept_when_the_passes_run_on_fewer_threads(monkeypatch):
         torch.set_num_threads(before)
     assert {t.model_pass(n) for n in t.layers} == {"suffix"}
     for b in t.bits:  # and the numbers are the naive loop's
-        assert t.sqnr_db("a", b) == pytest.approx(_naive(mix, xm, "a", t.weight_grid("a", b)), abs=1e-3)
+        assert t.sqnr_db("a", b) == pytest.approx(naive_weight_sqnr_db(mix, xm, "a", t.weight_grid("a", b)), abs=1e-3)
 
 
 # ---------------------------------------------------------------------------- batches
@@ -191,7 +181,7 @@ def test_gain_estimate_is_exact_where_the_rest_of_the_model_is_linear(rest, devi
     assert gain.model_pass(name) == "probes"
     for b in gain.bits:
         # float32 outputs, float64 sums: equal to 1e-3 dB
-        assert abs(gain.sqnr_db(name, b) - _naive(net, x, name, gain.weight_grid(name, b))) <= 1e-3
+        assert abs(gain.sqnr_db(name, b) - naive_weight_sqnr_db(net, x, name, gain.weight_grid(name, b))) <= 1e-3
 
 
 class _Thresholded(nn.Module):
@@ -213,7 +203,7 @@ def test_gain_estimate_measures_exactly_what_gradients_do_not_reach():
     assert (gain.model_pass("a"), gain.model_pass("b")) == ("suffix", "probes")
     for name in ("a", "b"):
         for b in gain.bits:  # the naive loop written here (inf where no threshold flips)
-            want = _naive(net, x, name, gain.weight_grid(name, b))
+            want = naive_weight_sqnr_db(net, x, name, gain.weight_grid(name, b))
             assert gain.sqnr_db(name, b) == pytest.approx(want, abs=1e-3)
     assert np.isfinite(gain.sqnr_db("a", 2))  # a flip at 2 bits, which a gradient cannot see
 
@@ -265,7 +255,7 @@ def test_gain_estimate_measures_a_large_batch_in_parts_with_the_same_numbers(mon
     t = scan(mix, xm, bits=(3, 6), progress=False, estimate="gain")
     assert t.model_pass("a") == "suffix"  # measured exactly
     for b in t.bits:
-        assert t.sqnr_db("a", b) == pytest.approx(_naive(mix, xm, "a", t.weight_grid("a", b)), abs=1e-3)
+        assert t.sqnr_db("a", b) == pytest.approx(naive_weight_sqnr_db(mix, xm, "a", t.weight_grid("a", b)), abs=1e-3)
 
 
 def test_gain_estimate_tracks_the_exact_model_scope_of_a_residual_network():

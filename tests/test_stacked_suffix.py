@@ -9,15 +9,12 @@ error power is about 1e-6 relative, 4e-6 dB), the naive loop to 0.01 dB as elsew
 
 from __future__ import annotations
 
-import copy
-
 import numpy as np
 import pytest
 import torch
+from naive_loops import naive_weight_sqnr_db
 from torch import nn
 
-from qwidgets.core.metrics import error_stats
-from qwidgets.core.rounding import quantize
 from qwidgets.model.replay import evaluating, trace
 from qwidgets.planning import model_scope, stacked_suffix
 from qwidgets.planning.confirm import ScanNote
@@ -50,14 +47,6 @@ class _BatchMean(nn.Module):
         return self.b(torch.relu(h - h.mean(dim=0, keepdim=True)))
 
 
-def _naive(model, x, name, grid) -> float:
-    with torch.no_grad():
-        ref = model(x)
-        c = copy.deepcopy(model)
-        layer = c.get_submodule(name)
-        layer.weight.copy_(quantize(layer.weight, grid))
-        return error_stats(ref, c(x)).sqnr_db
-
 
 def _per_width(monkeypatch):
     monkeypatch.setattr(model_scope, "stacked_suffix_noise", lambda *a, **k: None)
@@ -88,7 +77,7 @@ def test_stacked_suffix_equals_the_per_width_replay_and_the_naive_loop(monkeypat
     for name in stacked.layers:
         assert stacked.model_pass(name) == "suffix"
         for b in stacked.bits:
-            assert abs(stacked.sqnr_db(name, b) - _naive(net, x, name, stacked.weight_grid(name, b))) < 0.01
+            assert abs(stacked.sqnr_db(name, b) - naive_weight_sqnr_db(net, x, name, stacked.weight_grid(name, b))) < 0.01
 
 
 def test_a_model_that_mixes_samples_is_replayed_one_width_at_a_time_and_says_so():
@@ -99,7 +88,7 @@ def test_a_model_that_mixes_samples_is_replayed_one_width_at_a_time_and_says_so(
         t = scan(net, x, bits=(3, 6), progress=False, scope="model")
     assert any("'a'" in n and "mixes samples" in n for n in t.notes)
     for b in t.bits:  # the fallback's numbers are the naive loop's
-        assert abs(t.sqnr_db("a", b) - _naive(net, x, "a", t.weight_grid("a", b))) < 0.01
+        assert abs(t.sqnr_db("a", b) - naive_weight_sqnr_db(net, x, "a", t.weight_grid("a", b))) < 0.01
 
 
 def test_rerun_repeats_only_the_values_computed_from_the_batch():
