@@ -19,7 +19,7 @@ import numpy as np
 import onnxruntime as ort
 import pytest
 import torch
-from attention_models import TokenMLP
+from attention_models import MHAClassifier, TokenMLP, sequences
 from onnx.reference import ReferenceEvaluator
 
 from qwidgets import (
@@ -344,3 +344,22 @@ def test_check_onnx_accepts_the_token_file(token_setup, tmp_path):
     export_onnx(net, p, tmp_path / "m.onnx", x[:2])
     c = check_onnx(tmp_path / "m.onnx", net, p, x)
     assert c.matches, c
+
+
+def test_separate_scan_of_attention_keeps_every_weight_granularity_on_its_row():
+    # a separate scan adds rows without weights (the attention's query ... probs) between the
+    # weight rows; each block option's rows must follow the names (before: the weight scan's
+    # block rows were kept in their own order and the table refused them). Reference: the
+    # weight-only scan of the same model and data, which has no activation rows
+    torch.manual_seed(2)
+    net, x = MHAClassifier().eval(), sequences(n=12)
+    kw = dict(bits=(4, 8), granularity=("channel", 8), progress=False)
+    both = scan(net, x, quantize="separate", input_bits=(8,), **kw)
+    weights = scan(net, x, **kw)
+    assert "attn.probs" in both.layers and "attn.probs" not in weights.layers
+    for name in weights.layers:
+        for b in (4, 8):
+            np.testing.assert_equal(both.sqnr_db(name, b, granularity=8),  # NaN: 'inp' skips blocks
+                                    weights.sqnr_db(name, b, granularity=8))
+            assert both.weight_grid(name, b, granularity=8) == weights.weight_grid(name, b, granularity=8)
+    assert both.weight_grid("attn.probs", 4, granularity=8) is None

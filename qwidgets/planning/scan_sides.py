@@ -19,10 +19,9 @@ def join_sides(weights: dict, inputs: dict | None, ibits: tuple) -> dict:
     pos = {} if inputs is None else {n: j for j, n in enumerate(inputs["layers"])}
     wpos = {n: j for j, n in enumerate(weights["layers"])}
 
-    def rows(side, key, width):
+    def rows(side, key, width, at=wpos):  # ``at``: where each name is in ``side``'s rows
         if side is None or side[key] is None:
             return None
-        at = wpos if side is weights else pos  # the input side's (its token rows too)
         arr = np.full((len(names), width), np.nan)
         for r, name in enumerate(names):
             if name in at:
@@ -31,6 +30,11 @@ def join_sides(weights: dict, inputs: dict | None, ibits: tuple) -> dict:
 
     out = dict(weights)
     nb = len(weights["bits"])
+    if weights.get("granularity_rows"):  # the other weight granularities, on the merged rows too
+        out["granularity_rows"] = {opt: {
+            **{k: rows(part, k, nb) for k in ("layer_sqnr", "model_sqnr")},
+            "weight_grids": {n: (part.get("weight_grids") or {}).get(n) for n in names}}
+            for opt, part in weights["granularity_rows"].items()}
     out.update(layers=names, layer_sqnr=rows(weights, "layer_sqnr", nb),
                model_sqnr=rows(weights, "model_sqnr", nb),
                info={n: weights["info"][n] if n in wpos else inputs["info"][n] for n in names},
@@ -38,12 +42,12 @@ def join_sides(weights: dict, inputs: dict | None, ibits: tuple) -> dict:
     if inputs is not None:
         out["notes"] = list(dict.fromkeys(list(weights.get("notes", ())) + list(inputs.get("notes", ()))))
     out.update(quantize="separate", input_bits=ibits,
-               input_layer_sqnr=rows(inputs, "layer_sqnr", len(ibits)),
-               input_model_sqnr=rows(inputs, "model_sqnr", len(ibits)),
+               input_layer_sqnr=rows(inputs, "layer_sqnr", len(ibits), pos),
+               input_model_sqnr=rows(inputs, "model_sqnr", len(ibits), pos),
                input_grids={n: (list(inputs["input_grids"][n]) if n in pos else None) for n in names})
     if inputs is not None and inputs.get("token_sqnr") is not None:  # rows per token too
         out.update(input_granularities=("tensor", "token"), input_granularity_rows={"token": {
-            scope: rows(inputs["token_sqnr"], scope, len(ibits)) for scope in ("layer", "model")}})
+            scope: rows(inputs["token_sqnr"], scope, len(ibits), pos) for scope in ("layer", "model")}})
     return out
 
 
