@@ -22,7 +22,7 @@ import numpy as np
 
 from ..core.checks import check_int
 from ..core.grid_cache import fit_cached_together
-from ..core.ranges import RangeFitter
+from ..core.ranges import GROUP_VALUES, RangeFitter
 
 __all__ = ["check_granularity", "check_option", "input_axis", "option_label", "option_from_label",
            "block_skip_reason", "grid_options", "scan_granularity", "split_granularities",
@@ -194,6 +194,15 @@ def fit_options(weights: list, options: tuple, bits, method, rules, notes: list)
             fitter.digest = digest  # the scan's state digest: no second hash of the weight
             fitters.append(fitter)
             where.append((e.name, k))
-    for (name, k), grids in zip(where, fit_cached_together(fitters, bits), strict=True):
-        out[name][k] = grids
+    # a weight of GROUP_VALUES values or more is searched alone in any case: fitted one at a
+    # time and dropped, so its sorted copy and prefix sums (20 bytes a value) go with it (a
+    # large model's weights are not all held sorted at once); the others together
+    alone = [i for i, f in enumerate(fitters) if f.x.numel() >= GROUP_VALUES]
+    together = sorted(set(range(len(fitters))) - set(alone))
+    grids_of = dict(zip(together, fit_cached_together([fitters[i] for i in together], bits), strict=True))
+    for i in alone:
+        grids_of[i] = fit_cached_together([fitters[i]], bits)[0]
+        fitters[i] = None
+    for i, (name, k) in enumerate(where):
+        out[name][k] = grids_of[i]
     return out
