@@ -23,9 +23,10 @@ Timed, each from a cold grid cache (every grid fitted, as in a fresh process):
   BOPs budget of ``BOPS_FRACTION`` of the plan with every width at 8 bits;
 - the exact model scope (unless --no-exact): ``scan(scope="model")``, weights only.
 
-Threads: one torch thread unless ``--threads`` says otherwise (the scan's passes follow torch's
-setting; on the shared two-core machine a second thread mostly waits for a core another
-process holds).
+Threads: torch's default (the machine's cores) unless ``--threads N`` sets it, so the scan runs
+at its own defaults (qwidgets/planning/threads.py: the passes on torch's thread count, fitting
+on one thread); the count is recorded in the results (``torch_threads``). On a shared machine a
+second thread mostly waits for a core another process holds: compare runs at the same count.
 
 Peak memory: the peak resident set (Linux ``VmHWM``, reset through ``/proc/self/clear_refs``
 before each stage) above the resident set with the float model built (``VmRSS``). The machine
@@ -134,8 +135,9 @@ def decision(model, x, rows, out, prefix, base, **scan_kw):
     return table
 
 
-def main(size: str, exact: bool, activations: bool, n_threads: int) -> None:
-    torch.set_num_threads(n_threads)
+def main(size: str, exact: bool, activations: bool, n_threads: int | None) -> None:
+    if n_threads is not None:  # else torch's default, which the scan's passes follow
+        torch.set_num_threads(n_threads)
     spec = SIZES[size]
     model = make_decoder(**spec["model"])
     x = tokens(spec["sequences"], spec["model"]["context"], spec["model"]["vocab"])
@@ -159,7 +161,8 @@ def main(size: str, exact: bool, activations: bool, n_threads: int) -> None:
     out["load_end"] = os.getloadavg()
     out.pop("progress", None)
     print(f"{size} decoder: {params / 1e6:.0f}M parameters, {spec['sequences']}x{spec['model']['context']} tokens, "
-          f"float model {base / 2**20:.2f} GiB resident; load {out['load_start'][0]:.1f} -> {out['load_end'][0]:.1f}")
+          f"float model {base / 2**20:.2f} GiB resident; {out['torch_threads']} torch threads; "
+          f"load {out['load_start'][0]:.1f} -> {out['load_end'][0]:.1f}")
     w = max(len(r[0]) for r in rows)
     for r in rows:
         print(f"{r[0]:<{w}}  {r[1]:>9}  {r[2]:>10}  {r[3]}")
@@ -172,4 +175,4 @@ if __name__ == "__main__":
     if chosen not in SIZES:
         raise SystemExit(f"--size must be one of {', '.join(SIZES)}, got {chosen!r}")
     main(chosen, "--no-exact" not in args, "--no-activations" not in args,
-         int(args[args.index("--threads") + 1]) if "--threads" in args else 1)
+         int(args[args.index("--threads") + 1]) if "--threads" in args else None)
