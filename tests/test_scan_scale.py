@@ -265,7 +265,10 @@ def test_gain_estimate_tracks_the_exact_model_scope_of_a_residual_network():
     gain = scan(net, x, bits=(3, 4, 6, 8), method="minmax", progress=False, estimate="gain")
     assert (exact.estimate, gain.estimate) == ("exact", "gain")
     assert {gain.model_pass(n) for n in gain.layers} == {"probes"}
-    np.testing.assert_allclose(gain.sqnr_array("layer"), exact.sqnr_array("layer"), atol=1e-9)
+    # the gain scan's layer scope comes from its probe pass's errors (other product shapes than
+    # the layer pass's): float32 rounding only, far under 1e-4 dB here (the bound is derived in
+    # test_gain_layer_scope.py)
+    np.testing.assert_allclose(gain.sqnr_array("layer"), exact.sqnr_array("layer"), atol=1e-4)
     # the head's output is the model's (5 values a sample: one-hot probes): exact there
     np.testing.assert_allclose(gain.sqnr_array("model")[-1], exact.sqnr_array("model")[-1], atol=1e-3)
     # elsewhere the rest is nonlinear (ReLUs): first order, close where the error is small

@@ -50,6 +50,16 @@ def cut_batches(data, batch_size: int | None):
     return Batches(data, int(batch_size))
 
 
+def take_rows(data, a: int, b: int):
+    """Rows ``a:b`` along axis 0 of one batch (a tensor, tuple or dict of tensors; views).
+
+    >>> import torch
+    >>> take_rows((torch.arange(5), 7), 1, 3)
+    (tensor([1, 2]), 7)
+    """
+    return _slice(data, a, b)
+
+
 def _tensors(data):
     if isinstance(data, torch.Tensor):
         yield data

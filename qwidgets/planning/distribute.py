@@ -83,11 +83,14 @@ def merge_shares(parts: list[dict], k: int) -> dict:
             raise RuntimeError("the executor's workers found different entries; is the model or data "
                                "random or different on each worker?")
     model_sq = np.array(out["model_sqnr"], dtype=float, copy=True)
+    layer_sq = None if out.get("layer_sqnr") is None else np.array(out["layer_sqnr"], dtype=float, copy=True)
     info = {n: dict(v) for n, v in out["info"].items()}
     for i, name in enumerate(names):
         part = parts[i % k]
         model_sq[i] = part["model_sqnr"][i]
+        if layer_sq is not None:  # each task measured the layer scope of its own entries
+            layer_sq[i] = part["layer_sqnr"][i]
         info[name]["model_pass"] = part["info"][name].get("model_pass", "-")
-    out["model_sqnr"], out["info"] = model_sq, info
+    out["model_sqnr"], out["layer_sqnr"], out["info"] = model_sq, layer_sq, info
     out["notes"] = list(dict.fromkeys(n for p in parts for n in p.get("notes", ())))
     return out

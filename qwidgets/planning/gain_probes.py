@@ -30,10 +30,15 @@ So model scope costs one forward with gradients and ``probes`` backward passes p
 all layers together, instead of one pass per layer and bit width. The probes are seeded per
 sample, so a scan split across an executor's workers gives the serial numbers. The layer
 errors of one pass are kept for the probes (one copy of each layer's output per bit width);
-a batch for which they would pass :data:`ERROR_BYTES` is measured in halves (samples kept apart,
-the same estimate; a model that mixes samples is then measured exactly). The linearisation
-is what makes it an estimate: at 2-3 bits, where the error is large enough to switch ReLUs and
+a batch for which they would pass :data:`ERROR_BYTES` is measured in pieces (samples kept
+apart, the same estimate; a model that mixes samples is then measured exactly): the first
+such batch runs one sample alone, which gives the bytes a sample keeps, and every later piece
+is sized from them, so no forward is begun that the cap would stop. The linearisation is what
+makes it an estimate: at 2-3 bits, where the error is large enough to switch ReLUs and
 saturations, it departs from the exact model scope most.
+
+The same errors give the layer scope of every probed layer (its output's power and each
+config's error power, ``layer_powers=``): a scan with both scopes needs no second pass for them.
 """
 
 from __future__ import annotations
@@ -43,21 +48,31 @@ import math
 
 import numpy as np
 import torch
-import torch.nn.functional as F
 from torch import nn
-from torch.overrides import TorchFunctionMode
 
 from ..core.rounding import quantize_unchecked
 from ..model import layers
-from ..model.batching import Batches
+from ..model.batching import Batches, take_rows
 from ..model.outputs import iter_tensors
 from ..model.sources import batch_size, call_model
+from .gain_dots import (
+    Uses,
+    batch_rows,
+    dots,
+    error_powers,
+    keeps_samples_apart,
+    one_hot,
+    place_output,
+    power,
+    stacked,
+    stacks_outputs,
+)
 
 EXACT_VALUES = 64  # one-hot probes (exact) up to this many output values per sample
 _TARGET = 96  # random probes: about this many (probe, sample) pairs over all samples
 _MIN_PROBES, _MAX_PROBES = 4, 32
 SEED = 17  # of every random probe (with the batch, sample, probe and output part)
-ERROR_BYTES = 256 << 20  # layer errors kept for one pass at most; a larger batch is halved
+ERROR_BYTES = 256 << 20  # layer errors kept for one pass at most; a larger batch is cut in pieces
 
 
 def probe_count(n_samples: int) -> int:
@@ -103,7 +118,7 @@ def probe_places(model: nn.Module, entry, configs) -> tuple[str, ...] | None:
 
 
 def probe_noise(model: nn.Module, source, entries: dict, configs: dict, output, n_samples: int,
-                places: dict | None = None) -> dict[str, np.ndarray]:
+                places: dict | None = None, layer_powers: dict | None = None) -> dict[str, np.ndarray]:
     """Estimated model-output error power of each entry at each config (float64 sums over
     batches), for ``entries`` (row -> entry); ``places``: row -> :func:`probe_places` (default:
     the entry's own module, for :func:`probeable` entries).
@@ -111,6 +126,11 @@ def probe_noise(model: nn.Module, source, entries: dict, configs: dict, output, 
     An entry whose output does not reach the model's output through gradients (a detached or
     integer path), or whose tensor is used outside its places' calls, is left out of the
     result; the caller measures it exactly.
+
+    ``layer_powers``: a dict to which ``row -> (signal power, each config's error power)`` of
+    the layer's own output is written (float64 sums over batches, as
+    :func:`.passes.layer_scope_powers` gives them) for every :func:`probeable` entry whose
+    layer runs its base forward: the layer scope from the errors the probes use.
     """
     places = places or {row: (e.module,) for row, e in entries.items()}
     by_module: dict[nn.Module, list] = {}
@@ -120,28 +140,43 @@ def probe_noise(model: nn.Module, source, entries: dict, configs: dict, output, 
     watched = {row: entries[row].parameter(model) for row in entries if places[row] != (entries[row].module,)
                or entries[row].kind != "layer"}  # tensors whose every use is counted
     noise = {row: np.zeros(len(configs[e.name])) for row, e in entries.items()}
+    powers = {} if layer_powers is None else {
+        row: [0.0, np.zeros(len(configs[e.name]))] for row, e in entries.items()
+        if probeable(e) and type(model.get_submodule(e.module)).forward in layers.BASE_FORWARDS}
     # each config's quantized weight is made in the layer's hook and dropped after it: one
     # entry's quantized copies at a time, not every entry's (a weight's few quantizations per
     # batch cost little next to the batch's forward and backward passes)
     lost: set = set()
     probes = probe_count(n_samples)
     flags = [(m, m.training) for m in model.modules()]
+    per_sample: list = [None]  # bytes of layer errors one sample keeps, once a sample was measured
     try:
         model.eval()
         for index, batch in enumerate(source):
             pending = [(batch, 0)]
-            while pending:  # halve a batch whose layer errors would not fit in ERROR_BYTES
+            while pending:  # pieces of a batch whose layer errors would not fit in ERROR_BYTES
                 piece, row0 = pending.pop()
                 n = batch_size(piece)
+                size = n if per_sample[0] is None else max(1, ERROR_BYTES // max(1, per_sample[0]))
+                if size < n:  # cut ahead: no forward begun that the cap would stop
+                    pending += [(p, row0 + i * size) for i, p in enumerate(Batches(piece, size))][::-1]
+                    continue
                 try:
-                    _one_batch(model, piece, (index, row0, piece is not batch), by_module, entries,
-                               configs, output, probes, noise, lost, watched, cap=n > 1)
+                    kept = _one_batch(model, piece, (index, row0, piece is not batch), by_module, entries,
+                                      configs, output, probes, noise, lost, watched, powers, cap=n > 1)
                 except _TooLarge:
-                    a, b = Batches(piece, (n + 1) // 2)
-                    pending += [(b, row0 + (n + 1) // 2), (a, row0)]
+                    # one sample first: what it keeps sizes the rest (halves once that is known,
+                    # where a part without the sample axis made the estimate short)
+                    cut = 1 if per_sample[0] is None else (n + 1) // 2
+                    pending += [(take_rows(piece, cut, n), row0 + cut), (take_rows(piece, 0, cut), row0)]
+                    continue
+                if n == 1 and per_sample[0] is None:
+                    per_sample[0] = kept
     finally:
         for m, flag in flags:
             m.training = flag
+    if layer_powers is not None:
+        layer_powers.update({row: (s, v) for row, (s, v) in powers.items()})
     return {row: v for row, v in noise.items() if row not in lost}
 
 
@@ -150,12 +185,13 @@ class _TooLarge(Exception):
 
 
 def _one_batch(model, batch, where, by_module, entries, configs, output, probes, noise,
-               lost, watched, *, cap: bool):
-    """Add this batch's estimates to ``noise``. ``where``: (batch index, its first row within
-    the source's batch, whether it is a part of that batch)."""
+               lost, watched, powers, *, cap: bool) -> int:
+    """Add this batch's estimates to ``noise`` and its layer powers to ``powers``; the bytes of
+    layer errors it kept. ``where``: (batch index, its first row within the source's batch,
+    whether it is a part of that batch)."""
     seen: dict = {row: [] for row in entries}  # row -> [(module, input, output, leaf)] per call
     kept = [0]
-    weights = {m: m.weight.detach() for m in by_module}  # read here: the hooks run under _Uses
+    weights = {m: m.weight.detach() for m in by_module}  # read here: the hooks run under Uses
 
     def hook(module, args, kwargs, out):
         x = (args[0] if args else next(iter(kwargs.values()))).detach()
@@ -169,13 +205,14 @@ def _one_batch(model, batch, where, by_module, entries, configs, output, probes,
         return out + z
 
     handles = [m.register_forward_hook(hook, with_kwargs=True, prepend=True) for m in by_module]
-    uses = _Uses(watched.values())
+    uses = Uses(watched.values())
     try:
         with torch.enable_grad(), (uses if watched else contextlib.nullcontext()):
             out = call_model(model, batch)
     except RuntimeError:  # no gradients here (e.g. data made under inference_mode): measure exactly
         lost.update(entries)
-        return
+        powers.clear()  # nor the layer scope from this pass
+        return kept[0]
     finally:
         for h in handles:
             h.remove()
@@ -183,24 +220,28 @@ def _one_batch(model, batch, where, by_module, entries, configs, output, probes,
         if uses.count[id(p)] != len(seen[row]):
             lost.add(row)
     calls = {row: _errors(items, configs[entries[row].name], weights) for row, items in seen.items()}
+    for row, acc in powers.items():  # the layer scope: the owner's output and its errors
+        for (_, _, ref, _), (_, errs) in zip(seen[row], calls[row], strict=True):
+            acc[0] += power(ref)
+            acc[1] += error_powers(errs).cpu().numpy()
     if output is not None:
         out = output(out)
     parts = [t for t in iter_tensors(out) if t.is_floating_point() and t.requires_grad]
     leaves = [z for row in calls for z, _ in calls[row]]
     if not parts or not leaves:
         lost.update(entries)
-        return
+        return kept[0]
     leaves = list({id(z): z for z in leaves}.values())  # one leaf per call of a module
-    n = _batch_rows(parts, leaves)
+    n = batch_rows(parts, leaves)
     # a module output without the sample axis (a position embedding added to every sample)
     # gets one dot product per random probe over the whole batch: sum_i r_i . J_i e, unbiased
     # as the samples' probes are independent
     rowed = [z for z in leaves if n is not None and z.dim() >= 2 and z.shape[0] == n]
-    per_sample = n is not None and _keeps_samples_apart(parts, rowed, n)
+    per_sample = n is not None and keeps_samples_apart(parts, rowed, n)
     index, row0, part = where
     if part and not per_sample:  # samples that interact cannot be measured in parts: exactly
         lost.update(entries)
-        return
+        return kept[0]
     values = sum(p[0].numel() if per_sample else p.numel() for p in parts)
     exact = values <= EXACT_VALUES
     if exact and per_sample:  # one-hot directions are the same in every sample: a whole-batch
@@ -216,7 +257,7 @@ def _one_batch(model, batch, where, by_module, entries, configs, output, probes,
     for k0 in range(0, directions, step):
         g_of: dict = {id(z): [] for z in leaves}
         for k in range(k0, min(directions, k0 + step)):
-            rs = _one_hot(parts, k, per_sample) if exact else _random_probes(parts, gen, index, row0, k, per_sample)
+            rs = one_hot(parts, k, per_sample) if exact else _random_probes(parts, gen, index, row0, k, per_sample)
             grads = torch.autograd.grad(parts, leaves, grad_outputs=rs, retain_graph=True, allow_unused=True)
             for z, g in zip(leaves, grads, strict=True):
                 g_of[id(z)].append(g)
@@ -224,12 +265,13 @@ def _one_batch(model, batch, where, by_module, entries, configs, output, probes,
             if any(g is None for z, _ in items for g in g_of[id(z)]):
                 lost.add(row)
                 continue
-            ds = [_dots(g_of[id(z)], errs, per_sample and z.dim() >= 2 and z.shape[0] == n)
+            ds = [dots(g_of[id(z)], errs, per_sample and z.dim() >= 2 and z.shape[0] == n)
                   for z, errs in items]
             if len({d.shape[0] for d in ds}) > 1:  # per-sample and whole-batch terms: whole batch
                 ds = [d.sum(0, keepdim=True) for d in ds]
-            dots = sum(ds)
-            noise[row] += (dots * dots).sum(dim=(0, 1)).cpu().numpy() / (1.0 if exact else directions)
+            total = sum(ds)
+            noise[row] += (total * total).sum(dim=(0, 1)).cpu().numpy() / (1.0 if exact else directions)
+    return kept[0]
 
 
 def _errors(items, configs, weights) -> list:
@@ -240,7 +282,7 @@ def _errors(items, configs, weights) -> list:
         return []
     w = weights[items[0][0]]
     module, x, ref, z = items[0]
-    if len(items) == 1 and all(ig is None for _, ig in configs) and _stacks_outputs(module, ref):
+    if len(items) == 1 and all(ig is None for _, ig in configs) and stacks_outputs(module, ref):
         with torch.no_grad():
             return [(z, _layer_errors(module, x, w, configs))]
     errs: list = [[] for _ in items]
@@ -248,9 +290,9 @@ def _errors(items, configs, weights) -> list:
         for wg, ig in configs:
             wq = w if wg is None else quantize_unchecked(w, wg)
             for j, (module, x, ref, _) in enumerate(items):
-                errs[j].append(_place_output(module, x if ig is None else quantize_unchecked(x, ig), wq) - ref)
+                errs[j].append(place_output(module, x if ig is None else quantize_unchecked(x, ig), wq) - ref)
             del wq
-    return [(z, _stacked(e)) for (_, _, _, z), e in zip(items, errs, strict=True)]
+    return [(z, stacked(e)) for (_, _, _, z), e in zip(items, errs, strict=True)]
 
 
 def _random_probes(parts, gen, index: int, row0: int, k: int, per_sample: bool) -> list:
@@ -292,96 +334,3 @@ def _layer_errors(module, x: torch.Tensor, w: torch.Tensor, configs) -> torch.Te
     if isinstance(module, nn.Linear):  # (rows, ..., configs * out) -> (rows, configs, ... x out)
         y = y.unflatten(-1, (b, -1)).movedim(-2, 1)
     return y.reshape(y.shape[0], b, -1).float()
-
-
-def _stacks_outputs(module, ref: torch.Tensor) -> bool:
-    """Whether configs' weights stack along the output channels: a Linear, or a convolution with
-    one group and its channels on weight axis 0 (not an embedding), output rows along axis 0."""
-    if ref.dim() < 2 or isinstance(module, nn.Embedding) or layers.weight_axis(module) != 0:
-        return False
-    return isinstance(module, nn.Linear) or (isinstance(module, (nn.Conv1d, nn.Conv2d, nn.Conv3d))
-                                             and module.groups == 1)
-
-
-def _stacked(errs) -> torch.Tensor:
-    """Each config's output error in one (rows, configs, values) float32 tensor: rows along
-    axis 0 of a layer output of two or more axes, else one row."""
-    if errs[0].dim() < 2:
-        return torch.stack([v.float().reshape(-1) for v in errs]).unsqueeze(0)
-    return torch.stack([v.float().reshape(v.shape[0], -1) for v in errs], dim=1)
-
-
-def _dots(gs: list, errs: torch.Tensor, per_sample: bool) -> torch.Tensor:
-    """(rows, probes, configs) dot products of each probe's gradient with each config's error
-    (one batched matrix product of float32 terms, the errors read as they lie), or
-    (1, probes, configs) over the whole batch; float64."""
-    rows = errs.shape[0]
-    g = torch.stack([v.float().reshape(rows, -1) for v in gs], dim=1)  # (rows, probes, values)
-    d = torch.bmm(g, errs.transpose(1, 2)).double()
-    return d if per_sample else d.sum(0, keepdim=True)
-
-
-def _batch_rows(parts, leaves) -> int | None:
-    """The common length of axis 0 of every output part and of the layer outputs (of two or
-    more axes) that have it, when that is the batch's; else None. A layer output whose axis 0
-    differs (a position embedding's (positions, width)) is measured over the whole batch."""
-    sizes = {t.shape[0] if t.dim() else None for t in parts}
-    if len(sizes) != 1 or None in sizes:
-        return None
-    n = next(iter(sizes))
-    if any(z.dim() < 2 for z in leaves) or not any(z.shape[0] == n for z in leaves):
-        return None
-    return n
-
-
-def _place_output(module: nn.Module, x: torch.Tensor, w: torch.Tensor) -> torch.Tensor:
-    """The module's output with weight ``w`` (:func:`probe_places`: an embedding or a layer)."""
-    if isinstance(module, nn.Embedding):
-        return F.embedding(x, w, module.padding_idx)
-    return layers.layer_forward(module, x, w)
-
-
-class _Uses(TorchFunctionMode):
-    """Counts the torch calls that receive each watched tensor (as itself, not a copy)."""
-
-    def __init__(self, tensors):
-        super().__init__()
-        self.count = {id(t): 0 for t in tensors}
-
-    def __torch_function__(self, func, types, args=(), kwargs=None):
-        kwargs = kwargs or {}
-        for a in (*args, *kwargs.values()):
-            if id(a) in self.count:
-                self.count[id(a)] += 1
-        return func(*args, **kwargs)
-
-
-def _keeps_samples_apart(parts, leaves, n: int) -> bool:
-    """A probe on output row i reaches only row i of every layer output (i = first and last)."""
-    if n == 1:
-        return True
-    for i in {0, n - 1}:
-        rs = []
-        for p in parts:
-            r = torch.zeros_like(p)
-            r[i] = 1.0
-            rs.append(r)
-        grads = torch.autograd.grad(parts, leaves, grad_outputs=rs, retain_graph=True, allow_unused=True)
-        for g in grads:
-            if g is not None and (bool(g[:i].ne(0).any()) or bool(g[i + 1:].ne(0).any())):
-                return False
-    return True
-
-
-def _one_hot(parts, k: int, per_sample: bool) -> list[torch.Tensor]:
-    """Direction ``k`` of the output values (all parts in order): of one sample's values, on
-    every sample at once, when ``per_sample``; else of the whole batch's."""
-    rs = []
-    for p in parts:
-        r = torch.zeros_like(p)
-        size = p[0].numel() if per_sample else p.numel()
-        if 0 <= k < size:
-            r.reshape(p.shape[0] if per_sample else 1, -1)[:, k] = 1.0
-        k -= size
-        rs.append(r)
-    return rs

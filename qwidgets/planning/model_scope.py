@@ -27,11 +27,14 @@ from .stacked_suffix import stacked_suffix_noise
 
 def model_scope(model, source, found, facts, configs, n_bits: int, info, *, estimate: str, output,
                 progress: bool, share: tuple[int, int] | None = None,
-                notes: list | None = None) -> np.ndarray:
+                notes: list | None = None, layer_powers: dict | None = None) -> np.ndarray:
     """Model-scope SQNR (entries x bits) in dB; ``info[name]["model_pass"]`` set for each entry.
 
     ``share=(j, k)``: only the entries ``i % k == j`` (the other rows stay NaN): one executor
     task's part. ``notes``: a list to which each slower path taken, and why, is appended.
+    ``layer_powers``: a dict to which ``name -> (signal, noise per config)`` of the layer scope
+    is written for the layers the gain estimate's probes measured (their errors are the layer
+    scope's; :func:`.gain_probes.probe_noise`).
     """
     notes = [] if notes is None else notes
     from tqdm.auto import tqdm
@@ -50,8 +53,12 @@ def model_scope(model, source, found, facts, configs, n_bits: int, info, *, esti
                 if where is not None:
                     places[i] = where
         wanted = {i: facts[i].entry for i in places}
-        probed = (probe_noise(model, source, wanted, configs, output, found.n_samples, places)
+        powers: dict = {}
+        probed = (probe_noise(model, source, wanted, configs, output, found.n_samples, places,
+                              layer_powers=powers if layer_powers is not None else None)
                   if wanted else {})
+        if layer_powers is not None:
+            layer_powers.update({names[i]: v for i, v in powers.items()})
         lost = sorted(names[i] for i in wanted if i not in probed)
         if lost:
             notes.append(f"estimate='gain': {_names(lost)} measured exactly (slower): their output "

@@ -7,7 +7,9 @@ Two scopes, measured for every entry and bit width:
 - layer scope: the layer's own output, computed functionally from the inputs it received
   (streamed batch by batch; powers summed over batches). A weight-only entry (attention,
   recurrent, embedding, a layer whose parent uses its weight directly) has no input to measure:
-  its layer scope is the SQNR of the weight itself.
+  its layer scope is the SQNR of the weight itself. With ``estimate="gain"`` the probe pass
+  computes every probed layer's output errors anyway: their layer scope comes from it (the same
+  inputs and arithmetic), and only the other entries get a layer-scope pass.
 - model scope: the model's output with only that entry quantized. For a layer run as a module
   whose weight is used nowhere else, the model runs once per batch with the layer's output
   replaced by a stack along the batch axis of ``len(bits) + 1`` versions (one per bit width
@@ -290,12 +292,14 @@ def _scan_entries(model, source, first, entries, usage, options, progress, share
             if act:
                 info[e.name]["partner"] = f.partner
     with threads(n_threads):
-        layer_sq = _layer_scope(model, source, facts, configs) if scope != "model" else None
         model_sq, notes = None, []
+        given: dict = {}  # name -> the layer scope's powers from the gain estimate's probe pass
         if scope != "layer":
             model_sq = _model_scope(model, source, found, facts, configs, len(configs[names[0]]), info,
                                     estimate=estimate, output=output, progress=progress, share=share,
-                                    notes=notes)
+                                    notes=notes, layer_powers=given if scope == "both" else None)
+        mine = None if share is None else {n for i, n in enumerate(names) if i % share[1] == share[0]}
+        layer_sq = _layer_scope(model, source, facts, configs, given, mine) if scope != "model" else None
     cov = coverage_of(model, [f.entry for f in facts], skipped, notes=usage.unusable,
                       float_activations=usage.float_activations)
     cov = dataclasses.replace(cov, skipped_options=tuple(skipped_opts))
@@ -308,16 +312,24 @@ def _scan_entries(model, source, first, entries, usage, options, progress, share
                 estimate=estimate if scope != "layer" else "exact", notes=notes)
 
 
-def _layer_scope(model, source, facts, configs) -> np.ndarray:
+def _layer_scope(model, source, facts, configs, given: dict, mine: set | None) -> np.ndarray:
     """Layer-scope SQNR of every entry: from each layer's inputs, streamed (one forward per batch
-    with hooks that measure in place), or from the weight itself for weight-only entries."""
+    with hooks that measure in place), or from the weight itself for weight-only entries.
+
+    ``given``: name -> (signal, noise per config) already measured on the same inputs (the gain
+    estimate's probe pass computes every probed layer's output errors): no pass for those.
+    ``mine``: the names of one executor task's share (the other rows are NaN, merged later)."""
     signal = {f.entry.name: 0.0 for f in facts}
     noise = {f.entry.name: np.zeros(len(configs[f.entry.name])) for f in facts}
     with_input: dict = {}  # owner module -> entries measured from its inputs
     through_taps = []  # entries measured by taps
     for f in facts:
         e = f.entry
-        if f.has_input and tapped(e):
+        if mine is not None and e.name not in mine:
+            continue
+        if f.has_input and not tapped(e) and e.kind == "layer" and e.name in given:
+            signal[e.name], noise[e.name] = given[e.name][0], np.asarray(given[e.name][1])
+        elif f.has_input and tapped(e):
             through_taps.append(e)
         elif f.has_input:
             with_input.setdefault(model.get_submodule(e.module) if e.module else model, []).append(e)
@@ -345,7 +357,8 @@ def _layer_scope(model, source, facts, configs) -> np.ndarray:
     elif with_input:
         for batch in source:
             running.run_with_hooks(model, batch, {m: measure for m in with_input}, pre=True)
-    return np.array([[db(signal[f.entry.name], v) for v in noise[f.entry.name]] for f in facts])
+    return np.array([[np.nan if mine is not None and f.entry.name not in mine else db(signal[f.entry.name], v)
+                      for v in noise[f.entry.name]] for f in facts])
 
 
 def _check_bits_tuple(bits, name: str = "bits") -> tuple[int, ...]:
