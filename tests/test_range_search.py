@@ -106,18 +106,19 @@ def test_sorted_search_gives_the_grids_of_the_quantizing_search(shape, kind, sty
 
 
 def test_pruned_sweep_picks_what_measuring_every_candidate_picks(monkeypatch):
-    # the same search with the lower-bound pruning switched off is the reference
+    # the same search with the bound pruning switched off is the reference
     x = _values((200, 300), "heavy", seed=5)
     kw = dict(axis=0)
     pruned = fit_ranges(x, (2, 4, 8), "mse", **kw) + fit_ranges(x, (3, 5), "mse", symmetric=False, **kw)
     calls = []
-    original = clip_search._search
+    original = clip_search.minimise_fraction
 
-    def no_bound(evaluate, n_rows, device, lower=None):
-        calls.append(lower is not None)
-        return original(evaluate, n_rows, device, None)
+    def no_bound(problem):
+        calls.append(problem.prune)
+        problem.prune = False
+        return original(problem)
 
-    monkeypatch.setattr(clip_search, "_search", no_bound)
+    monkeypatch.setattr(clip_search, "minimise_fraction", no_bound)
     full = fit_ranges(x, (2, 4, 8), "mse", **kw) + fit_ranges(x, (3, 5), "mse", symmetric=False, **kw)
     assert calls and all(calls)
     for p, f in zip(pruned, full, strict=True):
@@ -129,18 +130,23 @@ def test_pruning_skips_most_sweep_candidates():
     x = _values((64, 576), "randn", seed=6)
     rows = clip_search.SortedRows(x)
     specs = clip_search.GridSpecs((2, 4, 8), True, True, "midtread")
-    measured = []
-    obj = clip_search._Objective(rows, specs, lambda t: specs.symmetric_grid(t * x.abs().amax(1).double()[:, None, None]))
-    original = obj.error
+    r = x.abs().amax(1).double()
+    obj = clip_search._Objective(rows, specs, lambda t, p: specs.symmetric_grid(t * p.row(r), p.which()))
+    measured = []  # candidates measured, per (row, width) pair
+    rect, items = obj.error, obj.error_items
 
     def counted(t):
         measured.append(t.shape[1])
-        return original(t)
+        return rect(t)
 
-    obj.error = counted
+    def counted_items(pairs, t):
+        measured.append(pairs.numel() / obj.n)
+        return items(pairs, t)
+
+    obj.error, obj.error_items = counted, counted_items
     obj.search()
     sweep = sum(measured) - 24  # the golden-section phase measures 24 points
-    assert sweep <= 48 // 2
+    assert sweep <= 48 // 8
 
 
 def test_rows_are_fitted_independently_of_each_other():
@@ -184,11 +190,11 @@ def test_fits_searched_together_equal_each_fit_alone(symmetric):
 
 
 def test_short_rows_measure_every_sweep_candidate_with_the_same_grids(monkeypatch):
-    # rows under PRUNE_MIN_VALUES skip the bound; with the bound forced on they give the same grids
+    # rows under FLOOR_MIN_VALUES skip the bounds; with the bounds forced on they give the same grids
     x = _values((50, 100), "heavy", seed=14)
-    assert x.shape[1] < clip_search.PRUNE_MIN_VALUES
+    assert x.shape[1] < clip_search.FLOOR_MIN_VALUES
     plain = fit_ranges(x, (2, 5, 8), "mse", axis=0)
-    monkeypatch.setattr(clip_search, "PRUNE_MIN_VALUES", 1)
+    monkeypatch.setattr(clip_search, "FLOOR_MIN_VALUES", 1)
     pruned = fit_ranges(x, (2, 5, 8), "mse", axis=0)
     for p, f in zip(pruned, plain, strict=True):
         assert torch.equal(p.scale_tensor(), f.scale_tensor())
@@ -200,7 +206,8 @@ def test_pruning_keeps_the_best_candidate_where_the_bound_is_the_whole_error(mon
     # bound); pruning must still give the grids of measuring every candidate
     x = _values((40, 300), "heavy", seed=15)
     pruned = fit_ranges(x, (1, 2, 8), "mse", axis=0)
-    monkeypatch.setattr(clip_search, "PRUNE_MIN_VALUES", 1 << 30)  # no row prunes
+    monkeypatch.setattr(clip_search, "FLOOR_MIN_VALUES", 1 << 30)  # no row prunes
+    monkeypatch.setattr(clip_search, "PRUNE_MIN_VALUES", 1 << 30)
     full = fit_ranges(x, (1, 2, 8), "mse", axis=0)
     for p, f in zip(pruned, full, strict=True):
         assert torch.equal(p.scale_tensor(), f.scale_tensor())

@@ -15,8 +15,11 @@ the clipping runs). A width with more than one level per 512 values of the row g
 from the runs (binary searches cost more than rounding): it is measured by rounding the sorted row
 directly (:data:`DIRECT_LEVELS_PER_VALUE`).
 
-:meth:`SortedRows.clip_sse` is the error of the two clipping runs alone: a lower bound of the
-whole error, used to skip candidates of the sweep that cannot win.
+:meth:`SortedRows.clip_sse` is the error of the two clipping runs alone, and
+:meth:`SortedRows.clamp_sse` the error of the values beyond the outermost levels (a part of
+those runs): lower bounds of the whole error, used to skip candidates of the sweep that cannot
+win. :meth:`SortedRows.sse_rows` measures one grid per listed row (the candidates a sweep
+keeps differ from row to row), with the numbers :meth:`SortedRows.sse` gives.
 """
 
 from __future__ import annotations
@@ -27,6 +30,8 @@ import torch
 __all__ = ["SortedRows", "Layout", "DIRECT_LEVELS_PER_VALUE"]
 
 _CHUNK_ELEMS = 1 << 20  # search values (rows x candidates x boundaries) per block: bounds memory
+_ROUND_ELEMS = 1 << 18  # values rounded per block (1 MiB of float32: stays in the core's cache)
+_ROW_SUM = 1 << 20  # a longer row's squared errors are summed in float32 pieces of this many values
 # a width is rounded directly when its levels exceed this fraction of the row's values: a run
 # costs a binary search (about 100 ns in torch) and a few float64 operations, a directly rounded
 # value seven vectorised float32 ones (measured on the benchmark network's and the decoder's
@@ -112,39 +117,32 @@ class SortedRows:
         same numbers whatever else is evaluated with it).
         """
         c, w, k = scale.shape
-        out = torch.empty(c, w, k, dtype=torch.float64, device=scale.device)
         direct = self.direct_widths(lay)
-        run_positions = sum(hi - lo + 2 for lo, hi, d in zip(lay.qmin, lay.qmax, direct, strict=True) if not d)
-        per = max(1, _CHUNK_ELEMS // max(1, run_positions, sum(direct) * self.m))  # (row, candidate) pairs
+        if all(direct):  # every width rounded (short rows): no picking
+            return self._rounded(lay, scale, offset).clamp_(min=0)
+        out = torch.empty(c, w, k, dtype=torch.float64, device=scale.device)
+        by_runs = tuple(j for j in range(w) if not direct[j])
+        part = lay.part(by_runs) if len(by_runs) < w else lay
+        pick = torch.tensor(by_runs, device=scale.device)
+        s_runs, o_runs = scale.index_select(1, pick), offset.index_select(1, pick)
+        per = max(1, _CHUNK_ELEMS // part.size)  # (row, candidate) pairs a block
         k_step = max(1, min(k, per))
         c_step = max(1, min(c, per // k_step))
         for c0 in range(0, c, c_step):
             rows = slice(c0, c0 + c_step)
             for k0 in range(0, k, k_step):
-                s, o = scale[rows, :, k0:k0 + k_step], offset[rows, :, k0:k0 + k_step]
-                out[rows, :, k0:k0 + k_step] = self._block(lay, direct, rows, s, o)
-        return out.clamp_(min=0)
-
-    def _block(self, lay, direct, rows, s, o):
-        c, w, k = s.shape
-        out = torch.empty(c, w, k, dtype=torch.float64, device=s.device)
-        by_runs = tuple(j for j in range(w) if not direct[j])
-        if by_runs:
-            part = lay.part(by_runs) if len(by_runs) < w else lay
-            pick = torch.tensor(by_runs, device=s.device)
-            runs = self._runs(part, rows, s.index_select(1, pick), o.index_select(1, pick))
-            for i, j in enumerate(by_runs):
-                a = part.start[i]
-                n = part.qmax[i] - part.qmin[i] + 1
-                out[:, j] = self.total2[rows, None] - runs[..., a:a + n].sum(dim=2)
+                cand = slice(k0, k0 + k_step)
+                runs = self._runs(part, rows, s_runs[rows, :, cand], o_runs[rows, :, cand])
+                for i, j in enumerate(by_runs):
+                    a = part.start[i]
+                    n = part.qmax[i] - part.qmin[i] + 1
+                    out[rows, j, cand] = self.total2[rows, None] - runs[..., a:a + n].sum(dim=2)
         rounded = tuple(j for j in range(w) if direct[j])
-        if len(rounded) == w:  # every width rounded (short rows): no picking
-            return self._rounded(lay, rows, s, o)
         if rounded:
-            pick = torch.tensor(rounded, device=s.device)
-            part = lay.part(rounded)
-            out.index_copy_(1, pick, self._rounded(part, rows, s.index_select(1, pick), o.index_select(1, pick)))
-        return out
+            pick = torch.tensor(rounded, device=scale.device)
+            out.index_copy_(1, pick, self._rounded(lay.part(rounded), scale.index_select(1, pick),
+                                                   offset.index_select(1, pick)))
+        return out.clamp_(min=0)
 
     def _runs(self, lay, rows, s, o):
         """g (2 S1 - g n) of every run, (c, k, positions - 1); a width's runs are its slice."""
@@ -158,49 +156,89 @@ class SortedRows:
         g = se[..., :-1] * lay.gcode + oe[..., :-1]
         return g * (2 * s1 - g * cnt)
 
-    def _rounded(self, lay, rows, s, o):
-        """(c, w, k) squared errors by rounding every value of the rows (float32, as quantize).
+    def _rounded(self, lay, s, o):
+        """(c, w, k) squared errors by rounding every value of every row (float32, as quantize).
 
         Laid out (widths, candidates, rows, values): the rows broadcast over the leading axes and
-        each candidate's scale over its row, both of which torch runs at full speed."""
-        xs = self.xs[rows]
-        c, m = xs.shape
+        each candidate's scale over its row, both of which torch runs at full speed; in blocks of
+        rows of about ``_ROUND_ELEMS`` values (kept in the core's cache)."""
+        c, m = self.xs.shape
         w, k = s.shape[1:]
         s32 = s.float().permute(1, 2, 0).unsqueeze(3)  # (w, k, c, 1)
         o32 = o.float().permute(1, 2, 0).unsqueeze(3)
         centred = bool((o32 == 0).all())  # x - 0 is x: skip the subtraction
-        out = torch.zeros(w, k, c, dtype=torch.float64, device=xs.device)
-        m_step = max(1, min(m, _CHUNK_ELEMS // max(1, c * w * k)))
-        for m0 in range(0, m, m_step):
-            xx = xs[:, m0:m0 + m_step]
-            t = (xx / s32) if centred else (xx - o32).div_(s32)
-            t.round_()
-            for j in range(w):
-                t[j].clamp_(lay.qmin[j], lay.qmax[j])
-            t.mul_(s32)
-            if not centred:
-                t.add_(o32)
-            out += _square_sums(t.sub_(xx))
+        out = torch.zeros(w, k, c, dtype=torch.float64, device=self.xs.device)
+        piece = min(m, _ROW_SUM)
+        c_step = max(1, _ROUND_ELEMS // (w * k * piece))
+        for c0 in range(0, c, c_step):
+            rows = slice(c0, c0 + c_step)
+            ss, oo = s32[:, :, rows], o32[:, :, rows]
+            for m0 in range(0, m, piece):
+                xx = self.xs[rows, m0:m0 + piece]
+                t = (xx / ss) if centred else (xx - oo).div_(ss)
+                t.round_()
+                for j in range(w):
+                    t[j].clamp_(lay.qmin[j], lay.qmax[j])
+                t.mul_(ss)
+                if not centred:
+                    t.add_(oo)
+                out[:, :, rows] += _square_sums(t.sub_(xx))
         return out.permute(2, 0, 1)
+
+    def sse_rows(self, lay: Layout, rows: torch.Tensor, scale: torch.Tensor, offset: torch.Tensor) -> torch.Tensor:
+        """Squared error of row ``rows[i]`` on the grid (``scale[i]``, ``offset[i]``), by rounding
+        the row: ``lay`` holds one width, measured by rounding (:meth:`direct_widths`). Each
+        entry is the number :meth:`sse` gives for that row and grid (the same float32 operations
+        over the row and the same sum), float64 of ``scale``'s shape (N,)."""
+        n = rows.numel()
+        out = torch.zeros(n, dtype=torch.float64, device=scale.device)
+        piece = min(self.m, _ROW_SUM)
+        step = max(1, _ROUND_ELEMS // piece)
+        lo, hi = lay.qmin[0], lay.qmax[0]
+        for i in range(0, n, step):
+            s32, o32 = scale[i:i + step, None].float(), offset[i:i + step, None].float()
+            centred = bool((o32 == 0).all())
+            some = self.xs.index_select(0, rows[i:i + step])
+            for m0 in range(0, self.m, piece):
+                xx = some[:, m0:m0 + piece]
+                t = (xx / s32) if centred else (xx - o32).div_(s32)
+                t.round_().clamp_(lo, hi).mul_(s32)
+                if not centred:
+                    t.add_(o32)
+                out[i:i + step] += _square_sums(t.sub_(xx))
+        return out.clamp_(min=0)
 
     def clip_sse(self, lay: Layout, scale: torch.Tensor, offset: torch.Tensor) -> torch.Tensor:
         """Squared error of the two clipping runs alone (below the first boundary, above the last):
         a lower bound of :meth:`sse` (every other run adds a square), same shapes."""
-        c, w, k = scale.shape
         lo_g, hi_g = scale * lay.low + offset, scale * lay.high + offset
-        lo_e = (scale * lay.first_edge + offset).float().reshape(c, -1)
-        hi_e = (scale * lay.last_edge + offset).float().reshape(c, -1)
-        i_lo = torch.searchsorted(self.xs, lo_e)
-        i_hi = torch.searchsorted(self.xs, hi_e)
+        return self._outer_runs(scale * lay.first_edge + offset, lo_g, scale * lay.last_edge + offset, hi_g,
+                                "left", "left")
 
-        def run_error(i0, i1, g):  # runs [i0, i1) of each row, level g
-            n = (i1 - i0).double().reshape(c, w, k)
-            s1 = (self.p1.gather(1, i1) - self.p1.gather(1, i0)).reshape(c, w, k)
-            s2 = (self.p2.gather(1, i1) - self.p2.gather(1, i0)).reshape(c, w, k)
+    def clamp_sse(self, lay: Layout, scale: torch.Tensor, offset: torch.Tensor):
+        """(below, above): the squared error of the values below the lowest level and of those
+        above the highest (those values round to that level), each a lower bound of the error
+        of :meth:`sse`'s clipping runs; same shapes. On grids whose outermost levels move
+        outwards, each can only fall: the values beyond shrink, and each one's distance."""
+        lo_g, hi_g = scale * lay.low + offset, scale * lay.high + offset
+        return self._outer_runs(lo_g, lo_g, hi_g, hi_g, "left", "right", apart=True)
+
+    def _outer_runs(self, lo_edge, lo_g, hi_edge, hi_g, lo_side, hi_side, apart=False):
+        """The error of the values below ``lo_edge`` at level ``lo_g`` and of those above
+        ``hi_edge`` at ``hi_g`` (the edges rounded to float32, as the values are)."""
+        c, w, k = lo_g.shape
+        i_lo = torch.searchsorted(self.xs, lo_edge.float().reshape(c, -1), side=lo_side)
+        i_hi = torch.searchsorted(self.xs, hi_edge.float().reshape(c, -1), side=hi_side)
+
+        def run_error(n, s1, s2, g):  # a run of n values with sums s1, s2, at level g
+            n, s1, s2 = n.double().reshape(c, w, k), s1.reshape(c, w, k), s2.reshape(c, w, k)
             return (s2 - g * (2 * s1 - g * n)).clamp_(min=0)
 
-        zero, end = torch.zeros_like(i_lo), torch.full_like(i_hi, self.m)
-        return run_error(zero, i_lo, lo_g) + run_error(i_hi, end, hi_g)
+        # the prefix sums start at 0.0 and end at the totals: the runs' sums without lookups there
+        p1_hi, p2_hi = self.p1.gather(1, i_hi), self.p2.gather(1, i_hi)
+        below = run_error(i_lo, self.p1.gather(1, i_lo), self.p2.gather(1, i_lo), lo_g)
+        above = run_error(self.m - i_hi, self.total1[:, None] - p1_hi, self.total2[:, None] - p2_hi, hi_g)
+        return (below, above) if apart else below + above
 
 
 def _square_sums(t: torch.Tensor) -> torch.Tensor:

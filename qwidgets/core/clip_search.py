@@ -3,11 +3,12 @@
 ``GridSpec`` holds the fixed part of a grid and maps a clipping range to (scale, offset);
 ``GridSpecs`` does the same for several bit widths at once. The search is one batched 1-D search
 over the clipping range for every row (channel, block, or the whole tensor) and every bit width
-at once: a geometric sweep of candidate ranges, then a golden-section refinement around the
-best candidate. Candidate grids are measured exactly from the rows sorted once with prefix sums
-(:mod:`qwidgets.core.cell_sums`), without quantizing the tensor; a sweep candidate whose
-clipping error alone exceeds the error of a candidate already measured cannot win and is not
-measured (the same grid, fewer evaluations; rows of at least ``PRUNE_MIN_VALUES`` values).
+at once (:mod:`qwidgets.core.fraction_search`): a geometric sweep of candidate ranges, then a
+golden-section refinement around the best candidate. Candidate grids are measured exactly from
+the rows sorted once with prefix sums (:mod:`qwidgets.core.cell_sums`), without quantizing the
+tensor; a sweep candidate whose error beyond the grid's outermost levels alone exceeds the
+error of a candidate its row has already measured cannot win and is not measured (the same
+grid, fewer evaluations; rows of at least ``PRUNE_MIN_VALUES`` values).
 """
 
 from __future__ import annotations
@@ -17,16 +18,17 @@ import math
 import torch
 
 from .cell_sums import Layout, SortedRows
+from .fraction_search import minimise_fraction, sweep_fractions
 
-_COARSE = 48  # candidate ranges in the coarse sweep
-_COARSE_LOW = 1e-4  # smallest candidate range, as a fraction of the min-max range
-_GOLDEN_ITERS = 22  # golden-section steps after the sweep: bracket shrinks by 0.618**22 ~ 2.5e-5
-_GOLD = (math.sqrt(5.0) - 1.0) / 2.0
 _PRUNE_SLACK = 1e-9  # a candidate is skipped only when its bound beats the best by this x sum(x**2)
 # ... and by this fraction of itself: errors measured by rounding in float32 may sit about 1e-7
 # (relative) below the float64 bound, and at 1 bit the bound is the whole error
 _PRUNE_REL = 1e-5
-PRUNE_MIN_VALUES = 256  # rows of at least this many values prune the sweep with the bound
+FLOOR_MIN_VALUES = 256  # rows of at least this many values prune the sweep (floor bisection)
+# the search before the floor bound pruned rows of at least this many values with the clipping
+# bound over every candidate (measured then on 1000 x 128 and 32 x 16 weights: 1.3-1.8x slower
+# than measuring every candidate; on 384 x 1152 1.4x faster); its grids are the search's grids
+PRUNE_MIN_VALUES = 256
 SEARCH_CAP = 1 << 24  # values the MSE search looks at, at most (a seeded subset beyond)
 
 
@@ -74,11 +76,19 @@ class GridSpecs:
         self.qmin, self.qmax, self.sym_div, self.steps = col("qmin"), col("qmax"), col("sym_div"), col("steps")
         self.layout = Layout([s.qmin for s in self.specs], [s.qmax for s in self.specs], device)
 
-    def symmetric_grid(self, r: torch.Tensor):
-        return _symmetric_grid(r, self.sym_div, self.style)
+    def symmetric_grid(self, r: torch.Tensor, which=None):
+        """``which``: None (all widths, a column each), a width's index (a (1, 1) column), or
+        one width index per entry of ``r`` (the constants gathered: the same float64 values)."""
+        return _symmetric_grid(r, self._col(self.sym_div, which), self.style)
 
-    def asymmetric_grid(self, lo: torch.Tensor, hi: torch.Tensor):
-        return _asymmetric_grid(lo, hi, self.steps, self.qmin, self.style)
+    def asymmetric_grid(self, lo: torch.Tensor, hi: torch.Tensor, which=None):
+        return _asymmetric_grid(lo, hi, self._col(self.steps, which), self._col(self.qmin, which), self.style)
+
+    @staticmethod
+    def _col(col: torch.Tensor, which):
+        if which is None:
+            return col
+        return col[which:which + 1] if isinstance(which, int) else col[which, 0]
 
 
 def _symmetric_grid(r, sym_div, style: str):
@@ -130,98 +140,117 @@ def search_sample(xf: torch.Tensor) -> torch.Tensor:
 
 
 
-def _search(evaluate, n_rows: int, device, lower=None) -> torch.Tensor:
-    """Minimise ``evaluate(t) -> (R, K) errors`` over the fraction t in (0, 1], per row.
-
-    A geometric sweep of ``_COARSE`` fractions from ``_COARSE_LOW`` to 1, then golden-section
-    steps inside the bracket around each row's best sweep point; returns the best t seen.
-    ``lower(t)``: a lower bound of ``evaluate(t)`` (less a safety margin for float rounding).
-    With it, the sweep first measures t = 1 (and a point halfway to the first candidate still
-    in play), then only the fractions from the smallest one whose bound does not exceed the
-    best error measured, in any row, upwards. A fraction whose bound exceeds its row's best
-    cannot be that row's minimum (nor tie with it), so the sweep picks the point that
-    measuring every fraction picks.
-    """
-    t = torch.logspace(math.log10(_COARSE_LOW), 0.0, _COARSE, dtype=torch.float64, device=device)
-    grid = t.expand(n_rows, -1)
-    if lower is None:
-        err = evaluate(grid)
-    else:
-        bound = lower(grid)
-        err = torch.full((n_rows, _COARSE), math.inf, dtype=torch.float64, device=device)
-        last = _COARSE - 1
-        err[:, last:] = evaluate(grid[:, last:])
-        k0 = _first_alive(bound, err)
-        if last - k0 > 2:  # one more point halfway: a tighter bound for the rest
-            mid = (k0 + last) // 2
-            err[:, mid:mid + 1] = evaluate(grid[:, mid:mid + 1])
-            k0 = _first_alive(bound, err)
-        if k0 < last:
-            err[:, k0:last] = evaluate(grid[:, k0:last])
-        err = torch.where(bound <= err.min(dim=1, keepdim=True).values, err, math.inf)
-    # on ties take the widest range: it clips least of data not seen here (all-zero rows: t=1)
-    best_i = _COARSE - 1 - err.flip(1).argmin(dim=1)
-    best_t = t[best_i]
-    best_e = err.gather(1, best_i[:, None]).squeeze(1)
-    a = t[(best_i - 1).clamp(min=0)]
-    b = t[(best_i + 1).clamp(max=_COARSE - 1)]
-    a = torch.where(best_i == 0, torch.zeros_like(a), a)  # open the bracket down to 0
-
-    c, d = b - _GOLD * (b - a), a + _GOLD * (b - a)
-    fc = evaluate(c[:, None]).squeeze(1)
-    fd = evaluate(d[:, None]).squeeze(1)
-    for _ in range(_GOLDEN_ITERS):
-        left = fc <= fd  # the minimum lies in [a, d]
-        b = torch.where(left, d, b)
-        a = torch.where(left, a, c)
-        new = torch.where(left, b - _GOLD * (b - a), a + _GOLD * (b - a))
-        fnew = evaluate(new[:, None]).squeeze(1)
-        c, d, fc, fd = (
-            torch.where(left, new, d),
-            torch.where(left, c, new),
-            torch.where(left, fnew, fd),
-            torch.where(left, fc, fnew),
-        )
-        for cand, f in ((c, fc), (d, fd)):
-            better = f < best_e
-            best_t = torch.where(better, cand, best_t)
-            best_e = torch.where(better, f, best_e)
-    return best_t
-
-
-def _first_alive(bound: torch.Tensor, err: torch.Tensor) -> int:
-    """The smallest sweep index whose bound does not exceed its row's best error, in any row."""
-    alive = (bound <= err.min(dim=1, keepdim=True).values).any(dim=0)
-    alive[-1] = True
-    return int(alive.nonzero()[0])
-
-
 class _Objective:
-    """Errors and lower bounds of the grids ``make(t)`` gives, for (rows * widths, K) fractions."""
+    """Errors and lower bounds of the grids ``make(t, pick)`` gives, for the search over
+    (rows * widths) pairs (:func:`minimise_fraction`). ``pick``: a :class:`_Pick` saying how the
+    fractions line up with the rows and widths (a rectangle, or one fraction per listed pair)."""
 
     def __init__(self, rows: SortedRows, specs: GridSpecs, make):
         self.rows, self.specs, self.make = rows, specs, make
         self.c, self.w = rows.xs.shape[0], len(specs.specs)
+        self.n, self.device = self.c * self.w, rows.xs.device
         self.slack = (_PRUNE_SLACK * rows.total2)[:, None, None]
+        # a bound costs two binary searches and four lookups per candidate: on short rows
+        # measuring every candidate is cheaper. The grids are the same either way.
+        self.prune = rows.m >= FLOOR_MIN_VALUES
+        self.prune_reference = rows.m >= PRUNE_MIN_VALUES  # the search before the floor bound
+        self._outward = None
 
     def error(self, t: torch.Tensor) -> torch.Tensor:
         return self._measured(self.rows.sse, t)
 
     def lower(self, t: torch.Tensor) -> torch.Tensor:
+        """The clipping runs' error (a lower bound of the error), less the safety margin."""
         return self._measured(lambda *a: self.rows.clip_sse(*a) * (1.0 - _PRUNE_REL), t, self.slack)
 
+    def floor(self, t: torch.Tensor) -> torch.Tensor:
+        """The error of the values beyond the outermost levels, counted on each side where that
+        level moves outwards as t grows (so it cannot rise with t), less the safety margin."""
+        lo_out, hi_out = self._outward_sides()
+
+        def measure(lay, s, o):
+            below, above = self.rows.clamp_sse(lay, s, o)
+            return (below * lo_out + above * hi_out) * (1.0 - _PRUNE_REL)
+
+        return self._measured(measure, t, self.slack)
+
+    def _outward_sides(self):
+        """Per (row, width): whether the lowest level never rises and the highest never falls
+        from one sweep fraction to the next (checked on the fractions the bisection reads)."""
+        if self._outward is None:
+            lay, t = self.specs.layout, sweep_fractions(self.device)
+            lo_out = torch.ones(self.c, self.w, dtype=torch.bool, device=self.device)
+            hi_out = lo_out.clone()
+            step = 16  # fractions at a time (bounds memory), each block overlapping the last by one
+            for i in range(0, len(t) - 1, step - 1):
+                s, o = self.make(t[i:i + step].expand(self.c, self.w, -1), _Pick())
+                lo_out &= ((s * lay.low + o).diff(dim=2) <= 0).all(dim=2)
+                hi_out &= ((s * lay.high + o).diff(dim=2) >= 0).all(dim=2)
+            self._outward = lo_out.double()[..., None], hi_out.double()[..., None]
+        return self._outward
+
     def _measured(self, measure, t: torch.Tensor, less=0.0) -> torch.Tensor:
-        s, o = self.make(t.reshape(self.c, self.w, -1))
-        return (measure(self.specs.layout, s, o) - less).reshape(self.c * self.w, -1)
+        s, o = self.make(t.reshape(self.c, self.w, -1), _Pick())
+        return (measure(self.specs.layout, s, o) - less).reshape(self.n, -1)
+
+    def error_items(self, pairs: torch.Tensor, t: torch.Tensor) -> torch.Tensor:
+        """The error of pair ``pairs[i]`` (row * widths + width) at fraction ``t[i]``, (N,)."""
+        rows, widths = pairs // self.w, pairs % self.w
+        out = torch.empty(t.shape, dtype=torch.float64, device=t.device)
+        direct = self.rows.direct_widths(self.specs.layout)
+        for j in range(self.w):
+            sel = (widths == j).nonzero().squeeze(1)
+            if not sel.numel():
+                continue
+            r, part = rows[sel], self.specs.layout.part((j,))
+            if direct[j]:  # each pair's row rounded at its own grid
+                s, o = self.make(t[sel], _Pick(r, widths[sel]))
+                out[sel] = self.rows.sse_rows(part, r, s, o)
+                continue
+            # measured by runs: every row at the most fractions any row needs (slots padded with t = 1)
+            slot = _rank_within(r, self.c)
+            tt = torch.ones(self.c, 1, int(slot.max()) + 1, dtype=torch.float64, device=t.device)
+            tt[r, 0, slot] = t[sel]
+            s, o = self.make(tt, _Pick(width=j))
+            out[sel] = self.rows.sse(part, s, o)[r, 0, slot]
+        return out
 
     def search(self) -> torch.Tensor:
         """The best fraction per (row, width), shape (rows, widths)."""
-        # the bound costs two binary searches and eight lookups per candidate: on rows shorter
-        # than PRUNE_MIN_VALUES measuring every candidate is cheaper (measured on 1000 x 128 and
-        # 32 x 16 weights: 1.3-1.8x; on 384 x 1152 the bound saves 1.4x). The grids are the same.
-        lower = self.lower if self.rows.m >= PRUNE_MIN_VALUES else None
-        t = _search(self.error, self.c * self.w, self.rows.xs.device, lower)
-        return t.reshape(self.c, self.w)
+        return minimise_fraction(self).reshape(self.c, self.w)
+
+
+class _Pick:
+    """How fractions line up with the rows and widths: ``_Pick()`` a (rows, widths, K) rectangle;
+    ``_Pick(rows, widths)`` one fraction per listed (row, width) pair; ``_Pick(width=j)``
+    a (rows, 1, K) rectangle of width ``j`` alone."""
+
+    def __init__(self, rows=None, widths=None, width=None):
+        self.rows, self.widths, self.width = rows, widths, width
+
+    def row(self, v: torch.Tensor) -> torch.Tensor:
+        """A per-row value lined up with the fractions."""
+        return v[:, None, None] if self.rows is None else v[self.rows]
+
+    def cell(self, v: torch.Tensor) -> torch.Tensor:
+        """A per-(row, width) value, (rows, widths), lined up with the fractions."""
+        if self.rows is not None:
+            return v[self.rows, self.widths]
+        return (v if self.width is None else v[:, self.width:self.width + 1])[..., None]
+
+    def which(self):
+        """The widths lined up with the fractions (see :meth:`GridSpecs.symmetric_grid`)."""
+        return self.widths if self.rows is not None else self.width
+
+
+def _rank_within(r: torch.Tensor, c: int) -> torch.Tensor:
+    """For each entry of ``r`` (row indices), how many earlier entries hold the same row."""
+    order = torch.argsort(r, stable=True)
+    counts = torch.bincount(r, minlength=c)
+    start = torch.cumsum(counts, 0) - counts
+    rank = torch.empty_like(r)
+    rank[order] = torch.arange(r.numel(), device=r.device) - start[r[order]]
+    return rank
 
 
 ROW_CHUNK_VALUES = 1 << 22  # a larger sample is searched in chunks of rows (bounds memory)
@@ -251,10 +280,12 @@ def search_symmetric(rows: SortedRows | torch.Tensor, specs: GridSpecs, r_max: t
     ``rows``: the sorted rows, or the unsorted sample, then searched in :func:`row_chunks`."""
     if isinstance(rows, torch.Tensor):
         return torch.cat([search_symmetric(SortedRows(rows[k]), specs, r_max[k]) for k in row_chunks(rows)])
-    r_col = r_max[:, None, None]
     tiny = torch.finfo(torch.float32).tiny
-    t = _Objective(rows, specs, lambda t: specs.symmetric_grid((t * r_col).clamp(min=tiny))).search()
-    return t * r_max[:, None]
+
+    def make(t, pick):
+        return specs.symmetric_grid((t * pick.row(r_max)).clamp(min=tiny), pick.which())
+
+    return _Objective(rows, specs, make).search() * r_max[:, None]
 
 
 def search_asymmetric(rows: SortedRows | torch.Tensor, specs: GridSpecs, lo0: torch.Tensor, hi0: torch.Tensor):
@@ -268,25 +299,24 @@ def search_asymmetric(rows: SortedRows | torch.Tensor, specs: GridSpecs, lo0: to
         parts = [search_asymmetric(SortedRows(rows[k]), specs, lo0[k], hi0[k]) for k in row_chunks(rows)]
         return torch.cat([p[0] for p in parts]), torch.cat([p[1] for p in parts])
     tiny = torch.finfo(torch.float32).tiny
-    lo0c, hi0c = lo0[:, None, None], hi0[:, None, None]
 
-    def grid(lo, hi):
-        return specs.asymmetric_grid(lo, torch.maximum(hi, lo + tiny))
+    def grid(lo, hi, which=None):
+        return specs.asymmetric_grid(lo, torch.maximum(hi, lo + tiny), which)
 
     def sse(lo, hi):
         return rows.sse(specs.layout, *grid(lo[..., None], hi[..., None]))[..., 0]
 
-    t = _Objective(rows, specs, lambda t: grid(t * lo0c, t * hi0c)).search()
+    t = _Objective(rows, specs, lambda t, p: grid(t * p.row(lo0), t * p.row(hi0), p.which())).search()
     ends = [t * lo0[:, None], t * hi0[:, None]]
     # coordinate steps: each end searched over (0, its min-max value], the other held (hi first)
     for k in (1, 0):
         end0 = (lo0, hi0)[k]
 
-        def moved(t, k=k, end0=end0):
-            return [t * end0[:, None, None] if j == k else ends[j][..., None] for j in (0, 1)]
+        def moved(t, p, k=k, end0=end0):
+            return grid(*[t * p.row(end0) if j == k else p.cell(ends[j]) for j in (0, 1)], p.which())
 
         new = list(ends)
-        new[k] = _Objective(rows, specs, lambda t: grid(*moved(t))).search() * end0[:, None]
+        new[k] = _Objective(rows, specs, moved).search() * end0[:, None]
         ends[k] = torch.where(sse(*ends) <= sse(*new), ends[k], new[k])
     lo, hi = ends
     return lo, torch.maximum(hi, lo + tiny)
