@@ -212,33 +212,36 @@ class SortedRows:
         """Squared error of the two clipping runs alone (below the first boundary, above the last):
         a lower bound of :meth:`sse` (every other run adds a square), same shapes."""
         lo_g, hi_g = scale * lay.low + offset, scale * lay.high + offset
-        return self._outer_runs(scale * lay.first_edge + offset, lo_g, scale * lay.last_edge + offset, hi_g,
-                                "left", "left")
+        below, above = self._outer_runs(scale * lay.first_edge + offset, lo_g, scale * lay.last_edge + offset, hi_g)
+        return below + above
 
     def clamp_sse(self, lay: Layout, scale: torch.Tensor, offset: torch.Tensor):
         """(below, above): the squared error of the values below the lowest level and of those
-        above the highest (those values round to that level), each a lower bound of the error
+        from the highest up (those values round to that level), each a lower bound of the error
         of :meth:`sse`'s clipping runs; same shapes. On grids whose outermost levels move
         outwards, each can only fall: the values beyond shrink, and each one's distance."""
         lo_g, hi_g = scale * lay.low + offset, scale * lay.high + offset
-        return self._outer_runs(lo_g, lo_g, hi_g, hi_g, "left", "right", apart=True)
+        return self._outer_runs(lo_g, lo_g, hi_g, hi_g)
 
-    def _outer_runs(self, lo_edge, lo_g, hi_edge, hi_g, lo_side, hi_side, apart=False):
-        """The error of the values below ``lo_edge`` at level ``lo_g`` and of those above
-        ``hi_edge`` at ``hi_g`` (the edges rounded to float32, as the values are)."""
+    def _outer_runs(self, lo_edge, lo_g, hi_edge, hi_g):
+        """The error of the values below ``lo_edge`` at level ``lo_g`` and of those from
+        ``hi_edge`` up at ``hi_g`` (the edges rounded to float32, as the values are); both
+        edges of a row searched in one pass over it."""
         c, w, k = lo_g.shape
-        i_lo = torch.searchsorted(self.xs, lo_edge.float().reshape(c, -1), side=lo_side)
-        i_hi = torch.searchsorted(self.xs, hi_edge.float().reshape(c, -1), side=hi_side)
+        edges = torch.cat([lo_edge.float().reshape(c, -1), hi_edge.float().reshape(c, -1)], dim=1)
+        idx = torch.searchsorted(self.xs, edges)
+        s1, s2 = self.p1.gather(1, idx), self.p2.gather(1, idx)
+        half = w * k
 
         def run_error(n, s1, s2, g):  # a run of n values with sums s1, s2, at level g
             n, s1, s2 = n.double().reshape(c, w, k), s1.reshape(c, w, k), s2.reshape(c, w, k)
             return (s2 - g * (2 * s1 - g * n)).clamp_(min=0)
 
         # the prefix sums start at 0.0 and end at the totals: the runs' sums without lookups there
-        p1_hi, p2_hi = self.p1.gather(1, i_hi), self.p2.gather(1, i_hi)
-        below = run_error(i_lo, self.p1.gather(1, i_lo), self.p2.gather(1, i_lo), lo_g)
-        above = run_error(self.m - i_hi, self.total1[:, None] - p1_hi, self.total2[:, None] - p2_hi, hi_g)
-        return (below, above) if apart else below + above
+        below = run_error(idx[:, :half], s1[:, :half], s2[:, :half], lo_g)
+        above = run_error(self.m - idx[:, half:], self.total1[:, None] - s1[:, half:],
+                          self.total2[:, None] - s2[:, half:], hi_g)
+        return below, above
 
 
 def _square_sums(t: torch.Tensor) -> torch.Tensor:

@@ -145,8 +145,8 @@ class _Objective:
     (rows * widths) pairs (:func:`minimise_fraction`). ``pick``: a :class:`_Pick` saying how the
     fractions line up with the rows and widths (a rectangle, or one fraction per listed pair)."""
 
-    def __init__(self, rows: SortedRows, specs: GridSpecs, make):
-        self.rows, self.specs, self.make = rows, specs, make
+    def __init__(self, rows: SortedRows, specs: GridSpecs, make, scaled: bool = False):
+        self.rows, self.specs, self.make, self.scaled = rows, specs, make, scaled
         self.c, self.w = rows.xs.shape[0], len(specs.specs)
         self.n, self.device = self.c * self.w, rows.xs.device
         self.slack = (_PRUNE_SLACK * rows.total2)[:, None, None]
@@ -176,17 +176,26 @@ class _Objective:
 
     def _outward_sides(self):
         """Per (row, width): whether the lowest level never rises and the highest never falls
-        from one sweep fraction to the next (checked on the fractions the bisection reads)."""
+        from one sweep fraction to the next. Grids that scale with t (``scaled``: symmetric
+        ones, scale and offset proportional to t): a level moves outwards unless it is above
+        zero (the lowest level of an unsigned mid-rise grid); other grids are checked on the
+        fractions the bisection reads."""
         if self._outward is None:
-            lay, t = self.specs.layout, sweep_fractions(self.device)
-            lo_out = torch.ones(self.c, self.w, dtype=torch.bool, device=self.device)
-            hi_out = lo_out.clone()
-            step = 16  # fractions at a time (bounds memory), each block overlapping the last by one
-            for i in range(0, len(t) - 1, step - 1):
-                s, o = self.make(t[i:i + step].expand(self.c, self.w, -1), _Pick())
-                lo_out &= ((s * lay.low + o).diff(dim=2) <= 0).all(dim=2)
-                hi_out &= ((s * lay.high + o).diff(dim=2) >= 0).all(dim=2)
-            self._outward = lo_out.double()[..., None], hi_out.double()[..., None]
+            lay = self.specs.layout
+            if self.scaled:
+                off = 0.5 if self.specs.style == "midrise" else 0.0
+                lo_out = (lay.low + off <= 0).expand(self.c, -1, -1)
+                hi_out = torch.ones_like(lo_out)
+            else:
+                t = sweep_fractions(self.device)
+                lo_out = torch.ones(self.c, self.w, 1, dtype=torch.bool, device=self.device)
+                hi_out = lo_out.clone()
+                step = 16  # fractions at a time (bounds memory), each block overlapping the last by one
+                for i in range(0, len(t) - 1, step - 1):
+                    s, o = self.make(t[i:i + step].expand(self.c, self.w, -1), _Pick())
+                    lo_out &= ((s * lay.low + o).diff(dim=2) <= 0).all(dim=2, keepdim=True)
+                    hi_out &= ((s * lay.high + o).diff(dim=2) >= 0).all(dim=2, keepdim=True)
+            self._outward = lo_out.double(), hi_out.double()
         return self._outward
 
     def _measured(self, measure, t: torch.Tensor, less=0.0) -> torch.Tensor:
@@ -285,7 +294,7 @@ def search_symmetric(rows: SortedRows | torch.Tensor, specs: GridSpecs, r_max: t
     def make(t, pick):
         return specs.symmetric_grid((t * pick.row(r_max)).clamp(min=tiny), pick.which())
 
-    return _Objective(rows, specs, make).search() * r_max[:, None]
+    return _Objective(rows, specs, make, scaled=True).search() * r_max[:, None]
 
 
 def search_asymmetric(rows: SortedRows | torch.Tensor, specs: GridSpecs, lo0: torch.Tensor, hi0: torch.Tensor):

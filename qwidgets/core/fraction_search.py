@@ -62,12 +62,6 @@ def _pruned_sweep(problem, t):
     err[:, last] = problem.error(t[last:].expand(n, 1))[:, 0]
     top = torch.full((n,), last, dtype=torch.int64, device=problem.device)
     k = _first_alive(problem.floor, t, err[:, last], torch.full_like(top, -1), top)
-    # one point halfway to the first candidate in play: a tighter bound for the rest
-    mid = (k + last) // 2
-    rows = (last - k > 2).nonzero().squeeze(1)
-    if rows.numel():
-        err[rows, mid[rows]] = problem.error_items(rows, t[mid[rows]])
-        k = _first_alive(problem.floor, t, err.min(dim=1).values, k - 1, top)
     # every row's candidates from its first one in play up to t = 1, less those measured
     count = last - k
     rows = torch.repeat_interleave(torch.arange(n, device=problem.device), count)
