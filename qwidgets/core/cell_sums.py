@@ -30,7 +30,7 @@ import torch
 __all__ = ["SortedRows", "Layout", "DIRECT_LEVELS_PER_VALUE"]
 
 _CHUNK_ELEMS = 1 << 20  # search values (rows x candidates x boundaries) per block: bounds memory
-_ROUND_ELEMS = 1 << 18  # values rounded per block (1 MiB of float32: stays in the core's cache)
+_ROUND_ELEMS = 1 << 19  # values rounded per block (2 MiB of float32: about a core's L2 cache)
 _ROW_SUM = 1 << 20  # a longer row's squared errors are summed in float32 pieces of this many values
 # a width is rounded directly when its levels exceed this fraction of the row's values: a run
 # costs a binary search (about 100 ns in torch) and a few float64 operations, a directly rounded
