@@ -123,3 +123,27 @@ def test_a_position_embedding_with_random_probes_is_unbiased(monkeypatch):
     r = torch.tensor(ratios, dtype=torch.float64)
     assert abs(float(r.mean()) - 1) <= 4 * float(r.std()) / len(r) ** 0.5, ratios
     assert float((r - 1).abs().max()) > 1e-3  # an estimate, not the exact figure by another road
+
+
+@pytest.mark.parametrize("kind", ["row", "row asymmetric", "tensor", "blocks in rows", "blocks across rows"])
+def test_an_embeddings_errors_from_its_looked_up_rows_equal_the_whole_table_quantized(kind):
+    # the probes quantize only the rows an embedding looked up; torch's own F.embedding on the
+    # whole table quantized is the reference (bit for bit: the same values, rounded alike)
+    from qwidgets.core.ranges import fit_range
+    from qwidgets.planning.gain_dots import looked_up_errors
+
+    torch.manual_seed(7)
+    emb = nn.Embedding(50, 16)
+    w = emb.weight.detach()
+    kw = {"row": dict(axis=0), "row asymmetric": dict(axis=0, symmetric=False), "tensor": {},
+          "blocks in rows": dict(axis=1, block_size=8), "blocks across rows": dict(axis=0, block_size=5)}[kind]
+    grids = [fit_range(w, b, "minmax", **kw) for b in (3, 8)]
+    ids = torch.randint(0, 50, (4, 7), generator=torch.Generator().manual_seed(3))
+    ref = F.embedding(ids, w)
+    got = looked_up_errors(emb, ids, w, ref, [(g, None) for g in grids] + [(None, None)])
+    if kind == "blocks across rows":  # the block parameters do not follow the rows: not taken
+        assert got is None
+        return
+    for g, e in zip(grids, got, strict=False):
+        assert torch.equal(e, F.embedding(ids, quantize(w, g)) - ref)
+    assert torch.equal(got[-1], torch.zeros_like(ref))  # the float weight: no error

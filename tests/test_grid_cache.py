@@ -100,7 +100,7 @@ def test_gain_estimate_holds_one_entrys_quantized_weights_at_a_time(monkeypatch)
     # counted: quantized copies of weights still alive (weak references) whenever one is made
     import weakref
 
-    from qwidgets.planning import gain_probes
+    from qwidgets.planning import gain_dots, gain_head, gain_probes
 
     net, x = _net(), torch.randn(20, 12, generator=torch.Generator().manual_seed(1))
     weights = {id(p) for p in net.parameters() if p.dim() == 2}
@@ -115,6 +115,7 @@ def test_gain_estimate_holds_one_entrys_quantized_weights_at_a_time(monkeypatch)
             most[0] = max(most[0], len(alive))
         return q
 
-    monkeypatch.setattr(gain_probes, "quantize_unchecked", tracked)
+    for module in (gain_probes, gain_dots, gain_head):  # every place the probes quantize a weight
+        monkeypatch.setattr(module, "quantize_unchecked", tracked)
     scan(net, x, bits=(2, 4, 8), progress=False, estimate="gain")
     assert 0 < most[0] <= 3  # one entry's three widths, never the three entries' nine

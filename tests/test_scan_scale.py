@@ -28,7 +28,7 @@ from torch import nn
 from qwidgets.core.ranges import fit_range
 from qwidgets.core.rounding import quantize
 from qwidgets.model.layers import layer_forward
-from qwidgets.planning import gain_probes
+from qwidgets.planning import gain_dots, gain_probes
 from qwidgets.planning.gain_probes import probe_count
 from qwidgets.planning.scanning import scan
 from qwidgets.planning.table import SensitivityTable
@@ -399,7 +399,7 @@ def test_probe_layer_errors_stacked_along_output_channels_equal_each_configs_dif
     configs = [(None, None)] + [(fit_range(w, b, "minmax", axis=0), None) for b in (2, 4)]
     with torch.no_grad():
         ref = layer(x)
-        got = gain_probes._layer_errors(layer, x, w, configs)
+        got = gain_dots.layer_errors(layer, x, w, configs)
         want = torch.stack([(layer_forward(layer, x, w if g is None else quantize(w, g)) - ref).reshape(shape[0], -1)
                             for g, _ in configs], dim=1)
     assert got.shape == want.shape

@@ -9,6 +9,8 @@ import torch.nn.functional as F
 from torch import nn
 from torch.overrides import TorchFunctionMode
 
+from ..core.grid import UniformGrid
+from ..core.rounding import quantize_unchecked
 from ..model import layers
 
 
@@ -22,6 +24,22 @@ def error_powers(errs: torch.Tensor) -> torch.Tensor:
     each row's values (short, accurate), float64 across the rows (the layer scope's arithmetic,
     :func:`.passes.layer_scope_powers`)."""
     return errs.square().sum(-1).double().sum(0)
+
+
+def layer_errors(module, x: torch.Tensor, w: torch.Tensor, configs) -> torch.Tensor:
+    """Each weight-only config's error of a layer's output, (rows, configs, values) float32.
+
+    The layer is linear in its weight, so the error of ``w_q`` is the layer's output for
+    ``w_q - w`` without bias, and every config's difference goes in one call (stacked along the
+    output channels: the input read, and for a convolution unfolded, once), which is also more
+    accurate than a difference of two outputs."""
+    deltas = torch.cat([torch.zeros_like(w) if wg is None else quantize_unchecked(w, wg) - w
+                        for wg, _ in configs])
+    y = layers.layer_forward(module, x, deltas, use_bias=False)
+    b = len(configs)
+    if isinstance(module, nn.Linear):  # (rows, ..., configs * out) -> (rows, configs, ... x out)
+        y = y.unflatten(-1, (b, -1)).movedim(-2, 1)
+    return y.reshape(y.shape[0], b, -1).float()
 
 
 def stacks_outputs(module, ref: torch.Tensor) -> bool:
@@ -69,6 +87,33 @@ def place_output(module: nn.Module, x: torch.Tensor, w: torch.Tensor) -> torch.T
     if isinstance(module, nn.Embedding):
         return F.embedding(x, w, module.padding_idx)
     return layers.layer_forward(module, x, w)
+
+
+def looked_up_errors(module: nn.Embedding, x: torch.Tensor, w: torch.Tensor, ref: torch.Tensor,
+                     configs) -> list | None:
+    """Each config's output error of a plain embedding, quantizing only the rows it looked up
+    (a 50257-row table read for 128 tokens: 128 rows, not the table, per config); None when a
+    grid's parameters do not follow the rows (blocks along the rows)."""
+    rows, inverse = torch.unique(x, return_inverse=True)
+    grids = [None if wg is None else rows_grid(wg, rows) for wg, _ in configs]
+    if any(g is None and wg is not None for g, (wg, _) in zip(grids, configs, strict=True)):
+        return None
+    part = w[rows]
+    return [(part if g is None else quantize_unchecked(part, g))[inverse] - ref for g in grids]
+
+
+def rows_grid(grid: UniformGrid, rows: torch.Tensor) -> UniformGrid | None:
+    """The grid of ``rows`` (axis 0) of the tensor ``grid`` was fitted to: per tensor, per
+    row, or blocks within rows; None for other layouts."""
+    if not isinstance(grid, UniformGrid):
+        return None
+    if grid.axis is None and not grid.blocked:
+        return grid
+    if grid.axis == 0 and not grid.blocked or grid.blocked and grid.axis == 1:
+        def pick(v):
+            return v[rows] if isinstance(v, torch.Tensor) and v.numel() > 1 else v
+        return grid.replace(scale=pick(grid.scale), offset=pick(grid.offset))
+    return None
 
 
 class Uses(TorchFunctionMode):

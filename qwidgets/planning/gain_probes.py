@@ -37,6 +37,11 @@ is sized from them, so no forward is begun that the cap would stop. The linearis
 makes it an estimate: at 2-3 bits, where the error is large enough to switch ReLUs and
 saturations, it departs from the exact model scope most.
 
+When the model's output is a wide final ``nn.Linear`` (a language model's output layer), the
+probes are drawn at its input instead, with the distribution a probe on the output has there,
+and the layer's own error is taken from Gram matrices (:mod:`.gain_head`): no backward pass
+through the output-wide product. An embedding's errors come from the rows it looked up.
+
 The same errors give the layer scope of every probed layer (its output's power and each
 config's error power, ``layer_powers=``): a scan with both scopes needs no second pass for them.
 """
@@ -61,12 +66,15 @@ from .gain_dots import (
     dots,
     error_powers,
     keeps_samples_apart,
+    layer_errors,
+    looked_up_errors,
     one_hot,
     place_output,
     power,
     stacked,
     stacks_outputs,
 )
+from .gain_head import HeadShortcut, head_candidate
 
 EXACT_VALUES = 64  # one-hot probes (exact) up to this many output values per sample
 _TARGET = 96  # random probes: about this many (probe, sample) pairs over all samples
@@ -150,6 +158,9 @@ def probe_noise(model: nn.Module, source, entries: dict, configs: dict, output, 
     probes = probe_count(n_samples)
     flags = [(m, m.training) for m in model.modules()]
     per_sample: list = [None]  # bytes of layer errors one sample keeps, once a sample was measured
+    # a wide final Linear may be passed by probes drawn at its input (gain_head.py): candidates
+    heads = {m: None for m in by_module if output is None
+             and head_candidate(m, [configs[entries[r].name] for r in by_module[m]])}
     try:
         model.eval()
         for index, batch in enumerate(source):
@@ -163,7 +174,8 @@ def probe_noise(model: nn.Module, source, entries: dict, configs: dict, output, 
                     continue
                 try:
                     kept = _one_batch(model, piece, (index, row0, piece is not batch), by_module, entries,
-                                      configs, output, probes, noise, lost, watched, powers, cap=n > 1)
+                                      configs, output, probes, noise, lost, watched, powers, heads,
+                                      cap=n > 1)
                 except _TooLarge:
                     # one sample first: what it keeps sizes the rest (halves once that is known,
                     # where a part without the sample axis made the estimate short)
@@ -185,16 +197,19 @@ class _TooLarge(Exception):
 
 
 def _one_batch(model, batch, where, by_module, entries, configs, output, probes, noise,
-               lost, watched, powers, *, cap: bool) -> int:
+               lost, watched, powers, heads, *, cap: bool) -> int:
     """Add this batch's estimates to ``noise`` and its layer powers to ``powers``; the bytes of
     layer errors it kept. ``where``: (batch index, its first row within the source's batch,
-    whether it is a part of that batch)."""
+    whether it is a part of that batch). ``heads``: candidate final layers -> their
+    :class:`.gain_head.HeadShortcut` (made here on first use)."""
     seen: dict = {row: [] for row in entries}  # row -> [(module, input, output, leaf)] per call
     kept = [0]
     weights = {m: m.weight.detach() for m in by_module}  # read here: the hooks run under Uses
+    graph_in: dict = {}  # candidate head -> (its input in the graph, what the hook returned, calls)
 
     def hook(module, args, kwargs, out):
-        x = (args[0] if args else next(iter(kwargs.values()))).detach()
+        x_in = args[0] if args else next(iter(kwargs.values()))
+        x = x_in.detach()
         ref = out.detach()
         z = torch.zeros_like(ref, requires_grad=True)
         for row in by_module[module]:
@@ -202,7 +217,10 @@ def _one_batch(model, batch, where, by_module, entries, configs, output, probes,
             kept[0] += ref.numel() * len(configs[entries[row].name]) * 4
             if cap and kept[0] > ERROR_BYTES:
                 raise _TooLarge
-        return out + z
+        result = out + z
+        if module in heads:
+            graph_in[module] = (x_in, result, graph_in.get(module, (None, None, 0))[2] + 1)
+        return result
 
     handles = [m.register_forward_hook(hook, with_kwargs=True, prepend=True) for m in by_module]
     uses = Uses(watched.values())
@@ -219,19 +237,15 @@ def _one_batch(model, batch, where, by_module, entries, configs, output, probes,
     for row, p in watched.items():  # one use per call of a place, none elsewhere
         if uses.count[id(p)] != len(seen[row]):
             lost.add(row)
-    calls = {row: _errors(items, configs[entries[row].name], weights) for row, items in seen.items()}
-    for row, acc in powers.items():  # the layer scope: the owner's output and its errors
-        for (_, _, ref, _), (_, errs) in zip(seen[row], calls[row], strict=True):
-            acc[0] += power(ref)
-            acc[1] += error_powers(errs).cpu().numpy()
     if output is not None:
         out = output(out)
     parts = [t for t in iter_tensors(out) if t.is_floating_point() and t.requires_grad]
-    leaves = [z for row in calls for z, _ in calls[row]]
+    # one leaf per call of a module
+    leaves = list({id(it[3]): it[3] for items in seen.values() for it in items}.values())
     if not parts or not leaves:
         lost.update(entries)
+        powers.clear()  # no errors computed: the layer scope is measured by its own pass
         return kept[0]
-    leaves = list({id(z): z for z in leaves}.values())  # one leaf per call of a module
     n = batch_rows(parts, leaves)
     # a module output without the sample axis (a position embedding added to every sample)
     # gets one dot product per random probe over the whole batch: sum_i r_i . J_i e, unbiased
@@ -241,9 +255,19 @@ def _one_batch(model, batch, where, by_module, entries, configs, output, probes,
     index, row0, part = where
     if part and not per_sample:  # samples that interact cannot be measured in parts: exactly
         lost.update(entries)
+        powers.clear()
         return kept[0]
     values = sum(p[0].numel() if per_sample else p.numel() for p in parts)
     exact = values <= EXACT_VALUES
+    head = _final_head(parts, graph_in, heads) if per_sample and not exact else None
+    short = heads[head] if head is not None else None
+    calls = {row: _calls(row, items, configs[entries[row].name], weights, head, short)
+             for row, items in seen.items()}
+    for row, acc in powers.items():  # the layer scope: the owner's output and its errors
+        for (module, x, ref, _), (_, errs) in zip(seen[row], calls[row], strict=True):
+            acc[0] += power(ref)
+            own = short.own_power(row, configs[entries[row].name], x) if module is head else error_powers(errs)
+            acc[1] += own.cpu().numpy()
     if exact and per_sample:  # one-hot directions are the same in every sample: a whole-batch
         # dot product would add the samples' terms before squaring, so such rows are measured
         for row, items in calls.items():
@@ -251,17 +275,32 @@ def _one_batch(model, batch, where, by_module, entries, configs, output, probes,
                 lost.add(row)
     directions = values if exact else (probes if per_sample else _MAX_PROBES)
     gen = torch.Generator(device=parts[0].device)
+    head_z = {id(it[3]) for items in seen.values() for it in items if it[0] is head}
+    # an entry whose only place is the final layer: its output error is its own, ||dW x||^2
+    alone = {row: bool(items) and all(it[0] is head for it in items) for row, items in seen.items()}
+    back = [z for z in leaves if id(z) not in head_z]  # the leaves the backward passes reach
+    h = graph_in[head][0] if head is not None else None
     # the gradients of several probes are kept and projected together: each layer's errors are
     # read once per group of probes (one matrix product), not once per probe
-    step = max(1, min(directions, ERROR_BYTES // max(1, 4 * sum(z.numel() for z in leaves))))
+    stored = sum(z.numel() for z in back) + (h.numel() if h is not None else 0)
+    step = max(1, min(directions, ERROR_BYTES // max(1, 4 * stored)))
     for k0 in range(0, directions, step):
         g_of: dict = {id(z): [] for z in leaves}
         for k in range(k0, min(directions, k0 + step)):
-            rs = one_hot(parts, k, per_sample) if exact else _random_probes(parts, gen, index, row0, k, per_sample)
-            grads = torch.autograd.grad(parts, leaves, grad_outputs=rs, retain_graph=True, allow_unused=True)
-            for z, g in zip(leaves, grads, strict=True):
+            if h is not None:  # drawn at the final layer's input (gain_head.py)
+                g_h = short.probe(_random_probes([h], gen, index, row0, k, True)[0])
+                grads = torch.autograd.grad([h], back, grad_outputs=[g_h], retain_graph=True, allow_unused=True) \
+                    if back and h.requires_grad else [None] * len(back)
+                for key in head_z:
+                    g_of[key].append(g_h)
+            else:
+                rs = one_hot(parts, k, per_sample) if exact else _random_probes(parts, gen, index, row0, k, per_sample)
+                grads = torch.autograd.grad(parts, back, grad_outputs=rs, retain_graph=True, allow_unused=True)
+            for z, g in zip(back, grads, strict=True):
                 g_of[id(z)].append(g)
         for row, items in calls.items():
+            if alone.get(row):  # its error is the final layer's own alone: exact below
+                continue
             if any(g is None for z, _ in items for g in g_of[id(z)]):
                 lost.add(row)
                 continue
@@ -271,7 +310,36 @@ def _one_batch(model, batch, where, by_module, entries, configs, output, probes,
                 ds = [d.sum(0, keepdim=True) for d in ds]
             total = sum(ds)
             noise[row] += (total * total).sum(dim=(0, 1)).cpu().numpy() / (1.0 if exact else directions)
+    for row, items in seen.items():  # the final layer's own error outside the probes' reach: exact
+        if row not in lost:
+            for module, x, _, _ in items:
+                if module is head:
+                    part_of = short.own_power if alone[row] else short.rest_power
+                    noise[row] += part_of(row, configs[entries[row].name], x).cpu().numpy()
     return kept[0]
+
+
+def _final_head(parts, graph_in, heads):
+    """The candidate layer whose one call's output is the model's whole output, with a
+    positive definite Gram matrix (its shortcut made on first use), else None."""
+    if len(parts) != 1:
+        return None
+    for module, (_, result, n_calls) in graph_in.items():
+        if result is parts[0] and n_calls == 1:
+            if heads[module] is None:
+                heads[module] = HeadShortcut(module)
+            return module if heads[module].ok else None
+    return None
+
+
+def _calls(row, items, configs, weights, head, short) -> list:
+    """[(leaf, errors)] of one entry's calls (:func:`_errors`), the final layer's own error as
+    its probes see it where the shortcut applies."""
+    if head is None or all(it[0] is not head for it in items):
+        return _errors(items, configs, weights)
+    rest = iter(_errors([it for it in items if it[0] is not head], configs, weights))
+    return [(z, short.projected_errors(row, configs, x)) if module is head else next(rest)
+            for module, x, _, z in items]
 
 
 def _errors(items, configs, weights) -> list:
@@ -284,7 +352,12 @@ def _errors(items, configs, weights) -> list:
     module, x, ref, z = items[0]
     if len(items) == 1 and all(ig is None for _, ig in configs) and stacks_outputs(module, ref):
         with torch.no_grad():
-            return [(z, _layer_errors(module, x, w, configs))]
+            return [(z, layer_errors(module, x, w, configs))]
+    if len(items) == 1 and isinstance(module, nn.Embedding):  # only the rows looked up
+        with torch.no_grad():
+            errs = looked_up_errors(module, x, w, ref, configs)
+        if errs is not None:
+            return [(z, stacked(errs))]
     errs: list = [[] for _ in items]
     with torch.no_grad():
         for wg, ig in configs:
@@ -318,19 +391,3 @@ def _seed(*keys: int) -> int:
     for v in keys:
         h = (h * 1_000_003 + v + 1) % (1 << 62)
     return h
-
-
-def _layer_errors(module, x: torch.Tensor, w: torch.Tensor, configs) -> torch.Tensor:
-    """Each weight-only config's error of a layer's output, (rows, configs, values) float32.
-
-    The layer is linear in its weight, so the error of ``w_q`` is the layer's output for
-    ``w_q - w`` without bias, and every config's difference goes in one call (stacked along the
-    output channels: the input read, and for a convolution unfolded, once), which is also more
-    accurate than a difference of two outputs."""
-    deltas = torch.cat([torch.zeros_like(w) if wg is None else quantize_unchecked(w, wg) - w
-                        for wg, _ in configs])
-    y = layers.layer_forward(module, x, deltas, use_bias=False)
-    b = len(configs)
-    if isinstance(module, nn.Linear):  # (rows, ..., configs * out) -> (rows, configs, ... x out)
-        y = y.unflatten(-1, (b, -1)).movedim(-2, 1)
-    return y.reshape(y.shape[0], b, -1).float()
