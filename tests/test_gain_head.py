@@ -109,3 +109,19 @@ def test_the_shortcut_gives_the_same_numbers_twice_and_in_pieces(monkeypatch):
     # (the position embedding has no sample axis: one dot product per piece, another estimate)
     rows = [a.layers.index(n) for n in ("tok", "mid")]
     np.testing.assert_allclose(parts.sqnr_array("model")[rows], a.sqnr_array("model")[rows], rtol=0, atol=1e-4)
+
+
+def test_a_tied_embeddings_weight_scope_comes_from_the_shortcuts_copies(monkeypatch):
+    # the same quantized copies and float64 sums as the layer-scope scan's: bit for bit; and
+    # the embedding's table is not quantized again for it
+    from qwidgets.planning import scanning
+
+    net, x = _model(tied=True), _ids()
+    layer = scan(net, x, bits=(3, 6), progress=False, scope="layer")
+    weighed = []
+    original = scanning.weight_scope_powers
+    monkeypatch.setattr(scanning, "weight_scope_powers", lambda w, c: weighed.append(w.shape) or original(w, c))
+    gain = scan(net, x, bits=(3, 6), progress=False, estimate="gain")
+    assert (VOCAB, WIDTH) not in weighed  # the tied table: from the shortcut, not weighed again
+    rows = [gain.layers.index("tok")]
+    assert np.array_equal(gain.sqnr_array("layer")[rows], layer.sqnr_array("layer")[rows])

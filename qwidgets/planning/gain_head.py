@@ -27,6 +27,7 @@ import torch
 from torch import nn
 
 from ..core.rounding import quantize_unchecked
+from .gain_dots import power
 
 WIDE = 2  # the shortcut applies when out_features >= WIDE x in_features
 
@@ -51,6 +52,7 @@ class HeadShortcut:
         self.ok = int(info) == 0  # G positive definite: W has full column rank
         self.draw = self.chol.to(self.w.dtype).t().contiguous()  # z @ L^T ~ N(0, G) per row
         self.rows: dict = {}
+        self.weight_powers: dict = {}  # row -> (||W||^2, each config's ||dW||^2), float64
 
     def probe(self, z: torch.Tensor) -> torch.Tensor:
         """The probe at the layer's input, ``g = L z`` per position, from standard normal ``z``."""
@@ -58,10 +60,11 @@ class HeadShortcut:
 
     def _matrices(self, row, configs):
         if row not in self.rows:
-            c_all, q_all, b_all = [], [], []
+            c_all, q_all, b_all, noise = [], [], [], []
             with torch.no_grad():
                 for wg, _ in configs:
                     d = torch.zeros_like(self.w) if wg is None else quantize_unchecked(self.w, wg) - self.w
+                    noise.append(0.0 if wg is None else power(d))  # the weight scope, while d is here
                     a = (self.w.t() @ d).double()
                     b = (d.t() @ d).double()
                     del d
@@ -72,6 +75,7 @@ class HeadShortcut:
             # x @ [C_1^T | C_2^T | ...]: every config's G^{-1} A x at once, float32 like the errors
             self.rows[row] = (torch.cat([c.t() for c in c_all], dim=1).to(self.w.dtype),
                               torch.stack(q_all), torch.stack(b_all))
+            self.weight_powers[row] = (power(self.w), noise)
         return self.rows[row]
 
     def projected_errors(self, row, configs, x: torch.Tensor) -> torch.Tensor:

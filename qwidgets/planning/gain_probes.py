@@ -135,10 +135,12 @@ def probe_noise(model: nn.Module, source, entries: dict, configs: dict, output, 
     integer path), or whose tensor is used outside its places' calls, is left out of the
     result; the caller measures it exactly.
 
-    ``layer_powers``: a dict to which ``row -> (signal power, each config's error power)`` of
-    the layer's own output is written (float64 sums over batches, as
-    :func:`.passes.layer_scope_powers` gives them) for every :func:`probeable` entry whose
-    layer runs its base forward: the layer scope from the errors the probes use.
+    ``layer_powers``: a dict to which ``row -> (scope, signal power, each config's error
+    power)`` is written: ``"layer"``, the layer's own output (float64 sums over batches, as
+    :func:`.passes.layer_scope_powers` gives them), for every :func:`probeable` entry whose
+    layer runs its base forward (the layer scope from the errors the probes use);
+    ``"weight"``, the weight's, for an entry at a final layer passed by :mod:`.gain_head` (the
+    weight scope of an embedding tied to it, from the quantized copies made there).
     """
     places = places or {row: (e.module,) for row, e in entries.items()}
     by_module: dict[nn.Module, list] = {}
@@ -188,7 +190,11 @@ def probe_noise(model: nn.Module, source, entries: dict, configs: dict, output, 
         for m, flag in flags:
             m.training = flag
     if layer_powers is not None:
-        layer_powers.update({row: (s, v) for row, (s, v) in powers.items()})
+        layer_powers.update({row: ("layer", s, v) for row, (s, v) in powers.items()})
+        for short in heads.values():
+            if short is not None:
+                layer_powers.update({row: ("weight", *v) for row, v in short.weight_powers.items()
+                                     if row not in powers})
     return {row: v for row, v in noise.items() if row not in lost}
 
 

@@ -316,8 +316,10 @@ def _layer_scope(model, source, facts, configs, given: dict, mine: set | None) -
     """Layer-scope SQNR of every entry: from each layer's inputs, streamed (one forward per batch
     with hooks that measure in place), or from the weight itself for weight-only entries.
 
-    ``given``: name -> (signal, noise per config) already measured on the same inputs (the gain
-    estimate's probe pass computes every probed layer's output errors): no pass for those.
+    ``given``: name -> (scope, signal, noise per config) already measured: ``"layer"`` on the
+    same inputs (the gain estimate's probe pass computes every probed layer's output errors),
+    ``"weight"`` from the same quantized weights (an embedding tied to a final layer whose
+    Gram matrices the probes made): no pass and no quantizing again for those.
     ``mine``: the names of one executor task's share (the other rows are NaN, merged later)."""
     signal = {f.entry.name: 0.0 for f in facts}
     noise = {f.entry.name: np.zeros(len(configs[f.entry.name])) for f in facts}
@@ -327,8 +329,10 @@ def _layer_scope(model, source, facts, configs, given: dict, mine: set | None) -
         e = f.entry
         if mine is not None and e.name not in mine:
             continue
-        if f.has_input and not tapped(e) and e.kind == "layer" and e.name in given:
-            signal[e.name], noise[e.name] = given[e.name][0], np.asarray(given[e.name][1])
+        scope = given[e.name][0] if e.name in given else None
+        if scope == "layer" and f.has_input and not tapped(e) and e.kind == "layer" \
+                or scope == "weight" and not f.has_input:
+            signal[e.name], noise[e.name] = given[e.name][1], np.asarray(given[e.name][2])
         elif f.has_input and tapped(e):
             through_taps.append(e)
         elif f.has_input:
