@@ -201,9 +201,10 @@ class _Objective:
             self._outward = lo_out.double(), hi_out.double()
         return self._outward
 
-    def _measured(self, measure, t: torch.Tensor, less=0.0) -> torch.Tensor:
+    def _measured(self, measure, t: torch.Tensor, less=None) -> torch.Tensor:
         s, o = self.make(t.reshape(self.c, self.w, -1), _Pick())
-        return (measure(self.specs.layout, s, o) - less).reshape(self.n, -1)
+        out = measure(self.specs.layout, s, o)
+        return (out if less is None else out - less).reshape(self.n, -1)
 
     def error_items(self, pairs: torch.Tensor, t: torch.Tensor) -> torch.Tensor:
         """The error of pair ``pairs[i]`` (row * widths + width) at fraction ``t[i]``, (N,)."""
