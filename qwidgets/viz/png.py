@@ -146,9 +146,14 @@ class FrameEncoder:
 
     def _wait(self) -> None:
         if self._pending is not None:
-            future, _ = self._pending
+            future, bands = self._pending
             self._pending = None
-            self.bands_encoded += future.result()
+            try:
+                self.bands_encoded += future.result()
+            except BaseException:
+                for i in bands:  # compressed again by the next encode
+                    self._bands[i] = None
+                raise
 
     def _compress(self, arr: np.ndarray, skip: tuple | None, submit=None) -> None:
         _check(arr, self.level)
