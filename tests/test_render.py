@@ -7,11 +7,14 @@ import io
 import zlib
 from concurrent.futures import ThreadPoolExecutor
 
+import matplotlib
 import numpy as np
 import pytest
+from matplotlib.image import AxesImage
 from PIL import Image
 
-from qwidgets.viz.canvas import encode_png
+from qwidgets.viz.canvas import BlitCanvas, encode_png
+from qwidgets.viz.pixel_image import PixelImage
 from qwidgets.viz.png import FrameEncoder, adler32_combine
 from qwidgets.widgets.events import Coalescer, MessageLine
 from qwidgets.widgets.image_canvas import PlotCanvas
@@ -330,3 +333,38 @@ def test_frame_encoder_prepared_on_another_thread_gives_the_same_png():
     with Image.open(io.BytesIO(png)) as im:
         np.testing.assert_array_equal(np.asarray(im.convert("RGB")), frame[..., :3])
     assert png == FrameEncoder(band_rows=16).encode(frame)
+
+
+def test_pixel_image_draws_what_matplotlib_draws_up_to_cell_edges():
+    """Reference: matplotlib's own AxesImage (nearest interpolation) on the same axes: every
+    pixel of the lookup-drawn image equals matplotlib's pixel there or one pixel away (ties at
+    cell edges), under 3% differ, and the pixels outside the axes are untouched. A
+    translucent image, or one a renderer without a pixel buffer draws (SVG), is drawn by
+    matplotlib itself."""
+    rng = np.random.default_rng(5)
+    data = matplotlib.colormaps["viridis"](rng.random((13, 47)), bytes=True)
+    frames = {}
+    for cls in (AxesImage, PixelImage):
+        canvas = BlitCanvas(300, 200)
+        ax = canvas.figure.add_axes([0.137, 0.211, 0.611, 0.543])
+        im = cls(ax, origin="lower", interpolation="nearest", extent=(0, 1, 0, 1))
+        im.set_data(data)
+        im.set_clip_path(ax.patch)
+        ax.add_image(im)
+        ax.set_xlim(0, 1)
+        ax.set_ylim(0, 1)
+        frames[cls] = canvas.draw().copy()
+    ours, theirs = frames[PixelImage], frames[AxesImage]
+    near = np.zeros(ours.shape[:2], bool)
+    for dr in (-1, 0, 1):
+        for dc in (-1, 0, 1):
+            near |= (ours == np.roll(theirs, (dr, dc), axis=(0, 1))).all(axis=2)
+    assert near.all()
+    assert (ours != theirs).any(axis=2).mean() < 0.03
+    svg = io.StringIO()
+    canvas.figure.savefig(svg, format="svg")  # no pixel buffer: matplotlib's own draw
+    assert "<image" in svg.getvalue()
+    im.set_alpha(0.5)
+    canvas.invalidate()
+    half = canvas.draw()
+    assert not np.array_equal(half, ours)  # blended with the white background by matplotlib

@@ -19,6 +19,7 @@ from matplotlib.path import Path
 from matplotlib.ticker import FuncFormatter, NullFormatter, NullLocator
 
 from .canvas import BlitCanvas
+from .pixel_image import PixelImage
 
 _RC = {
     "font.size": 8.5,
@@ -152,8 +153,14 @@ class ExplorerFigure:
         ax = self.ax_map
         # Fixed axes limits (0..1 both ways): the bins shown are stretched over the axes, so a
         # new bit width moves no tick and repaints no background; the readout names the codes.
-        self.map_img = ax.imshow(np.zeros((2, 2)), origin="lower", aspect="auto", cmap="viridis",
-                                 vmin=0.0, vmax=1.0, interpolation="nearest", extent=(0, 1, 0, 1))
+        # drawn by lookup into the pixels, not resampled (see PixelImage): ms less per new map
+        self.map_img = PixelImage(ax, origin="lower", cmap="viridis", interpolation="nearest",
+                                  extent=(0, 1, 0, 1))
+        self.map_img.set_data(np.zeros((2, 2)))
+        self.map_img.set_clim(0.0, 1.0)
+        self.map_img.set_clip_path(ax.patch)  # (a rectangle: becomes the clip box, as imshow's)
+        ax.add_image(self.map_img)
+        ax.set_aspect("auto")
         self._map_colours = matplotlib.colormaps["viridis"]  # probabilities 0..1 -> RGBA
         self.map_values = np.zeros((2, 2))
         self.probe_line = ax.axvline(0.0, color="white", lw=1.2, ls="--")
