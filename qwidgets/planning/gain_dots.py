@@ -33,8 +33,11 @@ def layer_errors(module, x: torch.Tensor, w: torch.Tensor, configs) -> torch.Ten
     ``w_q - w`` without bias, and every config's difference goes in one call (stacked along the
     output channels: the input read, and for a convolution unfolded, once), which is also more
     accurate than a difference of two outputs."""
-    deltas = torch.cat([torch.zeros_like(w) if wg is None else quantize_unchecked(w, wg) - w
-                        for wg, _ in configs])
+    n = w.shape[0]
+    deltas = w.new_zeros((len(configs) * n, *w.shape[1:]))  # each difference written in place
+    for i, (wg, _) in enumerate(configs):
+        if wg is not None:
+            torch.sub(quantize_unchecked(w, wg), w, out=deltas[i * n:(i + 1) * n])
     y = layers.layer_forward(module, x, deltas, use_bias=False)
     b = len(configs)
     if isinstance(module, nn.Linear):  # (rows, ..., configs * out) -> (rows, configs, ... x out)
