@@ -5,7 +5,6 @@ from __future__ import annotations
 import asyncio
 import io
 import zlib
-from concurrent.futures import ThreadPoolExecutor
 
 import matplotlib
 import numpy as np
@@ -306,33 +305,6 @@ def test_a_first_prepare_then_encode_of_the_same_pixels_encodes_every_band():
     png = enc.encode(frame)
     with Image.open(io.BytesIO(png)) as im:
         np.testing.assert_array_equal(np.asarray(im.convert("RGB")), frame[..., :3])
-
-
-def test_frame_encoder_prepared_on_another_thread_gives_the_same_png():
-    """``prepare(..., submit=)`` compresses on a worker thread from a copy of the pixels:
-    a frame drawn into the same buffer afterwards (inside the span, and once more inside a
-    band on its way) decodes (Pillow's decoder) to exactly that frame, byte for byte the PNG
-    of a fresh encoder, and every band is counted once."""
-    rng = np.random.default_rng(4)
-    frame = np.full((100, 61, 4), 255, np.uint8)
-    with ThreadPoolExecutor(1) as pool:
-        enc = FrameEncoder(band_rows=16)
-        enc.encode(frame)
-        frame[:, 2:30, :3] = rng.integers(0, 256, size=(100, 28, 3), dtype=np.uint8)
-        before = enc.bands_encoded
-        enc.prepare(frame, (40, 70), submit=pool.submit)  # bands 0, 1, 5, 6 elsewhere
-        frame[45:60, 40:50, :3] = 7  # inside the span, drawn meanwhile
-        png = enc.encode(frame)
-        assert enc.bands_encoded - before == 7
-        assert png == FrameEncoder(band_rows=16).encode(frame)
-        enc.prepare(frame, (40, 70), submit=pool.submit)  # nothing changed: nothing to do
-        frame[:, 2:30, :3] = rng.integers(0, 256, size=(100, 28, 3), dtype=np.uint8)
-        enc.prepare(frame, (40, 70), submit=pool.submit)
-        frame[3, 5:9, :3] = 1  # band 0 changes again while it may be on its way
-        png = enc.encode(frame)
-    with Image.open(io.BytesIO(png)) as im:
-        np.testing.assert_array_equal(np.asarray(im.convert("RGB")), frame[..., :3])
-    assert png == FrameEncoder(band_rows=16).encode(frame)
 
 
 def test_pixel_image_draws_what_matplotlib_draws_up_to_cell_edges():

@@ -9,9 +9,8 @@
                  is given) on the next render, after changing a title, ticks, a legend or other
                  non-animated artists; a change of an axes' limits is noticed by itself
                  and repaints only that axes (and any whose labels reach into it);
-    ``.encode_ahead(*axes, submit=None)``  draw, and compress the rows no given axes reaches
-                 (theirs wait for new data; ``submit``: on another thread); the next render
-                 compresses only the rest;
+    ``.encode_ahead(*axes)``  draw, and compress the rows no given axes reaches (theirs wait
+                 for new data); the next render compresses only the rest;
     ``.render()``  draw and return a PNG (also kept as ``.last_png``); only the bands of
                  rows that changed are compressed again (:class:`~qwidgets.viz.png.FrameEncoder`);
     ``.save(path)``  a full-quality PNG or SVG, by the file's extension;
@@ -350,11 +349,9 @@ class BlitCanvas:
         self._kept.move_to_end(key)
         return True
 
-    def encode_ahead(self, *axes, submit=None) -> None:
+    def encode_ahead(self, *axes) -> None:
         """Draw now and compress the rows of the frame that none of ``axes`` reaches: while
-        their artists wait for data, the next :meth:`render` compresses only their rows.
-        ``submit``: compress them on another thread (an executor's ``submit``; see
-        :meth:`~qwidgets.viz.png.FrameEncoder.prepare`), the next render waits for them."""
+        their artists wait for data, the next :meth:`render` compresses only their rows."""
         buf = self.draw(wait=axes)
         h = buf.shape[0]
         spans = []
@@ -362,7 +359,7 @@ class BlitCanvas:
             y0, y1 = ax.bbox.extents[1], ax.bbox.extents[3]
             spans.append((max(0, h - math.ceil(y1) - 1), min(h, h - math.floor(y0) + 1)))
         if spans:
-            self._encoder.prepare(buf, (min(a for a, _ in spans), max(b for _, b in spans)), submit)
+            self._encoder.prepare(buf, (min(a for a, _ in spans), max(b for _, b in spans)))
 
     def render(self) -> bytes:
         """Draw and encode as PNG; returns the PNG bytes (also kept in :attr:`last_png`)."""

@@ -10,12 +10,9 @@ bands of rows that changed since the previous frame.
     bands of ``band_rows`` rows, each compressed on its own (a raw deflate segment ended by a
     sync flush, so the segments join into one valid stream); a band whose pixels equal the
     previous frame's keeps its compressed bytes. A control that moves one plot re-encodes the
-    rows that plot spans, not the whole figure. ``.prepare(rgba, rows, submit=None)``
-    compresses the changed bands outside ``rows`` ahead (while the plots in those rows wait
-    for data); with ``submit`` (an executor's ``submit``) on another thread, from a copy of
-    their pixels (zlib releases Python's lock while it compresses, so the caller draws and
-    compresses the other rows meanwhile; the next ``.encode`` waits for it).
-    ``.bands_encoded`` counts the bands compressed (tests, benchmarks).
+    rows that plot spans, not the whole figure. ``.prepare(rgba, rows)`` compresses the changed bands outside ``rows`` ahead (while the
+    plots in those rows wait for data). ``.bands_encoded`` counts the bands compressed
+    (tests, benchmarks).
 
 >>> import numpy as np
 >>> enc = FrameEncoder()
@@ -122,12 +119,10 @@ class FrameEncoder:
         self._bands: list = []  # compressed bytes per band
         self._adlers: list = []  # Adler-32 of each band's scanlines
         self.bands_encoded = 0
-        self._pending = None  # (future, bands) of a prepare() running on another thread
 
     def encode(self, rgba: np.ndarray) -> bytes:
         arr = np.asarray(rgba)
         self._compress(arr, None)
-        self._wait()
         h, w = arr.shape[:2]
         b = self.band_rows
         adler = 1
@@ -136,32 +131,18 @@ class FrameEncoder:
         idat = b"".join((b"\x78\x01", *self._bands, _FINAL_BLOCK, struct.pack(">I", adler)))
         return _png(w, h, idat)
 
-    def prepare(self, rgba: np.ndarray, rows: tuple, submit=None) -> None:
+    def prepare(self, rgba: np.ndarray, rows: tuple) -> None:
         """Compress now the changed bands that lie wholly outside ``rows = (first, end)``
         (whose pixels are final): the next :meth:`encode` of a frame that differs from
-        ``rgba`` only inside those rows compresses just the bands they touch. ``submit``:
-        compress them with ``submit(fn, *args)`` (a future) instead, from a copy of their
-        pixels taken now."""
-        self._compress(np.asarray(rgba), rows, submit)
+        ``rgba`` only inside those rows compresses just the bands they touch."""
+        self._compress(np.asarray(rgba), rows)
 
-    def _wait(self) -> None:
-        if self._pending is not None:
-            future, bands = self._pending
-            self._pending = None
-            try:
-                self.bands_encoded += future.result()
-            except BaseException:
-                for i in bands:  # compressed again by the next encode
-                    self._bands[i] = None
-                raise
-
-    def _compress(self, arr: np.ndarray, skip: tuple | None, submit=None) -> None:
+    def _compress(self, arr: np.ndarray, skip: tuple | None) -> None:
         _check(arr, self.level)
         h, w = arr.shape[:2]
         b = self.band_rows
         n = -(-h // b)
         if self._last is None or self._last.shape != arr.shape:
-            self._wait()
             # zeros, not empty: a band a first prepare() skipped is compared with these pixels
             # by the next encode (uninitialised memory may hold this very frame: a band left
             # unencoded)
@@ -171,36 +152,19 @@ class FrameEncoder:
             self._adlers = [1] * n
             changed = np.ones(n, bool)
         else:  # and every band never encoded (one a first prepare() skipped)
-            changed = self._changed_bands(arr, n)
-            if self._pending is not None and changed[self._pending[1]].any():
-                self._wait()  # a band being compressed elsewhere changed again: after it
-            unencoded = np.array([x is None for x in self._bands])
-            if self._pending is not None:
-                unencoded[self._pending[1]] = False  # (on their way)
-            changed |= unencoded
+            changed = self._changed_bands(arr, n) | np.array([x is None for x in self._bands])
         if skip is not None:  # bands that reach into the rows still to be drawn wait
             first, end = skip
             starts = np.arange(n) * b
             changed &= (starts + b <= first) | (starts >= end)
-        todo = np.flatnonzero(changed)
-        for i in todo:  # the pixels compressed (and compared with the next frame's)
-            self._last[i * b : (i + 1) * b] = arr[i * b : (i + 1) * b]
-        if submit is None:
-            self.bands_encoded += self._encode_bands(todo, h, w)
-        elif todo.size:
-            self._wait()
-            self._pending = (submit(self._encode_bands, todo, h, w), todo)
-
-    def _encode_bands(self, todo: np.ndarray, h: int, w: int) -> int:
-        """Compress bands ``todo`` from the kept pixels; returns how many."""
-        b = self.band_rows
-        for i in todo:
+        for i in np.flatnonzero(changed):
             r0, r1 = i * b, min(h, (i + 1) * b)
-            rows = _rows(self._last[r0:r1], self._rows[r0:r1])
+            self._last[r0:r1] = arr[r0:r1]
+            rows = _rows(arr[r0:r1], self._rows[r0:r1])
             c = zlib.compressobj(self.level, zlib.DEFLATED, -15)
             self._bands[i] = c.compress(rows.data) + c.flush(zlib.Z_SYNC_FLUSH)
             self._adlers[i] = zlib.adler32(rows.data)
-        return len(todo)
+            self.bands_encoded += 1
 
     def _changed_bands(self, arr: np.ndarray, n: int) -> np.ndarray:
         h = arr.shape[0]

@@ -378,11 +378,11 @@ class GridExplorer(SnapshotDisplay, widgets.VBox):
             self.figure.update(self.numbers.plot_data(st, self.figure.view, self.axes.error_sample))
             self.numbers.tensor(st)  # the readout's other figures
             if job is not None and job.waiting:
-                self.canvas.encode_ahead(self.figure.ax_out, submit=job.submit)  # (compressed there)
-            if job is not None:  # (its error figures on the worker while the scatter is drawn)
-                self.figure.update_out(*job.sample())
+                self.canvas.encode_ahead(self.figure.ax_out)  # (and compressed) meanwhile
+            if (layer := None if job is None else job()) is not None:
+                self.figure.update_out(*layer[1])
+            self.readout.value = self._readout_html(layer)
             self.canvas.render()
-            self.readout.value = self._readout_html(None if job is None else job())
 
     def _rows(self, layer=None):
         st = self.state

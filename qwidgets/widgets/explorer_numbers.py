@@ -96,14 +96,12 @@ class ExplorerNumbers:
         """Start :meth:`layer` for the current state on a worker thread (``threads``: torch's
         intra-op threads there, None: torch's setting) and return a function that waits for
         it. The layer output is a matrix product that runs without Python's lock, so the plots
-        that do not need it are drawn meanwhile on the caller's thread; ``.sample()`` waits for
-        the output only and starts the error figures on the worker (the scatter is drawn and
-        encoded meanwhile)."""
+        that do not need it are drawn meanwhile on the caller's thread."""
         sub, src, g = self.subject, st.source, st.grid
         n = sub.inputs.shape[0]
         sampled = rows is not None and rows < n
         key = (src, st.version[src], id(g), rows if sampled else None)
-        hit = self._caches.setdefault("layer", {})
+        hit = self._caches.get("layer", {})
         if key in hit:
             return _Soon(lambda: hit[key], waiting=False)
         job = _LayerJob(sub, src, g, rows if sampled else None)
@@ -112,30 +110,14 @@ class ExplorerNumbers:
             self._caches["layer"] = {key: value}
             return _Soon(lambda: value, waiting=False)
         # a new thread starts from torch's default count: give it the caller's for None
-        n_threads = torch.get_num_threads() if threads is None else threads
-        output = _worker().submit(job.forward, n_threads)
-        started: list = []  # (the error figures' future, the scatter's points) once the output is there
-
-        def sample():
-            if not started:
-                out = output.result()
-                started.append((_worker().submit(job.errors, out, n_threads), job.scatter(out)))
-            return started[0][1]
+        future = _worker().submit(job.forward, torch.get_num_threads() if threads is None else threads)
 
         def result():
-            if key in self._caches["layer"]:
-                return self._caches["layer"][key]
-            if job.idx is not None:  # a sample of rows: figures and scatter here
-                value = job.measure(output.result())
-            else:
-                points = sample()
-                value = (started[0][0].result(), points)
+            value = job.measure(future.result())
             self._caches["layer"] = {key: value}
             return value
 
-        soon = _Soon(result, waiting=True, sample=None if sampled else sample)
-        soon.submit = _worker().submit  # more work for the worker, after the product
-        return soon
+        return _Soon(result, waiting=True)
 
     # ------------------------------------------------------------------ plot data
     def plot_data(self, st: ExplorerState, view: tuple, error_sample: torch.Tensor,
@@ -213,60 +195,44 @@ def _worker() -> ThreadPoolExecutor:
 
 
 class _Soon:
-    """A value on its way: call it to wait for it; ``waiting``: it is being computed;
-    ``sample()``: the scatter's points only (they may come before the error figures)."""
+    """A value on its way: call it to wait for it; ``waiting``: it is being computed."""
 
-    submit = None  # (where waiting) the worker's submit: tasks queued after this value's
-
-    def __init__(self, get: Callable[[], tuple], waiting: bool, sample: Callable | None = None):
-        self.get, self.waiting, self._sample = get, waiting, sample
+    def __init__(self, get: Callable[[], tuple], waiting: bool):
+        self.get, self.waiting = get, waiting
 
     def __call__(self) -> tuple:
         return self.get()
 
-    def sample(self) -> tuple:
-        return self._sample() if self._sample is not None and self.waiting else self.get()[1]
-
 
 class _LayerJob:
-    """The layer-output measurement of one grid in parts: the quantized operand (caller's
-    thread), the layer's forward (one call that runs without Python's lock, so a worker
-    thread needs the lock only to start and to finish: no hand-offs while the caller
-    draws), the scatter's points (caller's thread) and the error figures (a worker thread
-    while the caller draws the scatter: their operations release Python's lock, and so does
-    the caller's PNG compression). The arithmetic is layer_output's, in the same order, so
-    the figures equal :func:`qwidgets.layer_error`'s."""
+    """The layer-output measurement of one grid in three parts: the quantized operand
+    (caller's thread), the layer's forward (one call that runs without Python's lock, so a
+    worker thread needs the lock only to start and to finish: no hand-offs while the caller
+    draws) and the error figures (caller's thread). The arithmetic is layer_output's, in
+    the same order, so the figures equal :func:`qwidgets.layer_error`'s."""
 
     def __init__(self, subject: ExplorerSubject, source: str, grid: UniformGrid, rows: int | None):
         self.subject, self.rows = subject, rows
         n = subject.inputs.shape[0]
         self.idx = None if rows is None else torch.linspace(0, n - 1, rows).round().long().unique()
         x = subject.inputs if self.idx is None else subject.inputs[self.idx]
-        w = subject.values["weight"]  # the float32 copy (the layer's weight when float32)
+        w = subject.layer.weight.detach()
         with torch.no_grad():  # (the values were checked when the explorer was made)
             if source == "input":
                 x = quantize_unchecked(x, grid)
             else:
-                w = quantize_unchecked(w, grid)
+                w = quantize(w, grid)
         self.x, self.w = x, w
 
     def forward(self, n_threads: int | None) -> torch.Tensor:
         with threads(n_threads), torch.no_grad():
             return layer_forward(self.subject.layer, self.x, self.w)
 
-    def scatter(self, out: torch.Tensor) -> tuple:
-        """(float, quantized) output at the scatter's points (all rows measured)."""
-        sub = self.subject
-        return sub.scatter_x, out.reshape(-1)[sub.scatter_idx].double().numpy()
-
-    def errors(self, out: torch.Tensor, n_threads: int | None) -> ErrorStats:
-        with threads(n_threads), torch.no_grad():
-            return error_stats(self.subject.reference, out)
-
     def measure(self, out: torch.Tensor):
         sub = self.subject
         if self.idx is None:
-            return error_stats(sub.reference, out), self.scatter(out)
+            sample = out.reshape(-1)[sub.scatter_idx].double().numpy()
+            return error_stats(sub.reference, out), (sub.scatter_x, sample)
         n = sub.inputs.shape[0]
         ref = sub.reference[self.idx]
         stats = error_stats(ref, out)
