@@ -48,3 +48,26 @@ def _call(model: nn.Module, x):
     if isinstance(x, tuple):
         return model(*x)
     return model(**x) if isinstance(x, dict) else model(x)
+
+
+def golden_steps_by_hand(evaluate, t, best_i, best_e):
+    """The golden-section phase of the range search as first written (both inner points compared
+    after every step): 22 steps inside the bracket around each row's best sweep point ``best_i``
+    of the 48 fractions ``t``; the best fraction seen, starting from ``best_e``."""
+    gold = (math.sqrt(5.0) - 1.0) / 2.0
+    best_t = t[best_i]
+    a = torch.where(best_i == 0, 0.0, t[(best_i - 1).clamp(min=0)])
+    b = t[(best_i + 1).clamp(max=47)]
+    c, d = b - gold * (b - a), a + gold * (b - a)
+    fc, fd = evaluate(c[:, None]).squeeze(1), evaluate(d[:, None]).squeeze(1)
+    for _ in range(22):
+        left = fc <= fd
+        b, a = torch.where(left, d, b), torch.where(left, a, c)
+        new = torch.where(left, b - gold * (b - a), a + gold * (b - a))
+        fnew = evaluate(new[:, None]).squeeze(1)
+        c, d, fc, fd = (torch.where(left, new, d), torch.where(left, c, new),
+                        torch.where(left, fnew, fd), torch.where(left, fc, fnew))
+        for cand, f in ((c, fc), (d, fd)):
+            better = f < best_e
+            best_t, best_e = torch.where(better, cand, best_t), torch.where(better, f, best_e)
+    return best_t

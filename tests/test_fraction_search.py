@@ -14,6 +14,7 @@ import pytest
 import torch
 from hypothesis import example, given, settings
 from hypothesis import strategies as st
+from naive_loops import golden_steps_by_hand
 
 from qwidgets.core import cell_sums, clip_search, fraction_search
 from qwidgets.core.cell_sums import Layout, SortedRows
@@ -186,27 +187,6 @@ def test_long_rows_are_summed_in_pieces_the_same_way_in_both_measurements(monkey
     assert torch.allclose(got, ((q - x).double() ** 2).sum(dim=1), rtol=1e-5)
 
 
-def _golden_by_hand(evaluate, t, best_i, best_e):
-    """The golden-section phase as first written: both inner points compared after every step."""
-    gold = (5 ** 0.5 - 1) / 2
-    best_t = t[best_i]
-    a = torch.where(best_i == 0, 0.0, t[(best_i - 1).clamp(min=0)])
-    b = t[(best_i + 1).clamp(max=47)]
-    c, d = b - gold * (b - a), a + gold * (b - a)
-    fc, fd = evaluate(c[:, None]).squeeze(1), evaluate(d[:, None]).squeeze(1)
-    for _ in range(22):
-        left = fc <= fd
-        b, a = torch.where(left, d, b), torch.where(left, a, c)
-        new = torch.where(left, b - gold * (b - a), a + gold * (b - a))
-        fnew = evaluate(new[:, None]).squeeze(1)
-        c, d, fc, fd = (torch.where(left, new, d), torch.where(left, c, new),
-                        torch.where(left, fnew, fd), torch.where(left, fc, fnew))
-        for cand, f in ((c, fc), (d, fd)):
-            better = f < best_e
-            best_t, best_e = torch.where(better, cand, best_t), torch.where(better, f, best_e)
-    return best_t
-
-
 def test_golden_steps_pick_what_comparing_both_inner_points_picks():
     # staircase objectives (many exact ties, flat stretches) around each row's own minimum
     gen = torch.Generator().manual_seed(11)
@@ -221,4 +201,4 @@ def test_golden_steps_pick_what_comparing_both_inner_points_picks():
     best_i = 47 - err.flip(1).argmin(dim=1)
     best_e = err.gather(1, best_i[:, None]).squeeze(1)
     got = fraction_search._golden(evaluate, t, best_i, best_e)
-    assert torch.equal(got, _golden_by_hand(evaluate, t, best_i, best_e))
+    assert torch.equal(got, golden_steps_by_hand(evaluate, t, best_i, best_e))

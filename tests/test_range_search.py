@@ -12,13 +12,12 @@ import math
 
 import pytest
 import torch
+from naive_loops import golden_steps_by_hand
 
 from qwidgets import UniformGrid, fit_range, quantize
 from qwidgets.core import clip_search
 from qwidgets.core.clip_search import GridSpec
 from qwidgets.core.ranges import RangeFitter, fit_ranges, fit_together
-
-GOLD = (math.sqrt(5.0) - 1.0) / 2.0
 
 
 def _sse_by_quantizing(x, spec, scale, offset):  # x (C, M); scale, offset (C, K) -> (C, K)
@@ -32,22 +31,7 @@ def _reference_search(objective, rows):
     t = torch.logspace(-4.0, 0.0, 48, dtype=torch.float64)
     err = objective(t.expand(rows, -1))
     best_i = 47 - err.flip(1).argmin(dim=1)
-    best_t, best_e = t[best_i], err.gather(1, best_i[:, None]).squeeze(1)
-    a = torch.where(best_i == 0, 0.0, t[(best_i - 1).clamp(min=0)])
-    b = t[(best_i + 1).clamp(max=47)]
-    c, d = b - GOLD * (b - a), a + GOLD * (b - a)
-    fc, fd = objective(c[:, None]).squeeze(1), objective(d[:, None]).squeeze(1)
-    for _ in range(22):
-        left = fc <= fd
-        b, a = torch.where(left, d, b), torch.where(left, a, c)
-        new = torch.where(left, b - GOLD * (b - a), a + GOLD * (b - a))
-        fnew = objective(new[:, None]).squeeze(1)
-        c, d, fc, fd = (torch.where(left, new, d), torch.where(left, c, new),
-                        torch.where(left, fnew, fd), torch.where(left, fc, fnew))
-        for cand, f in ((c, fc), (d, fd)):
-            better = f < best_e
-            best_t, best_e = torch.where(better, cand, best_t), torch.where(better, f, best_e)
-    return best_t
+    return golden_steps_by_hand(objective, t, best_i, err.gather(1, best_i[:, None]).squeeze(1))
 
 
 def _reference_symmetric(x2d, bits, signed, style):
