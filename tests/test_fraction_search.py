@@ -50,6 +50,12 @@ def _fit(x, bits, search: str, **kw):
         clip_search.FLOOR_MIN_VALUES, clip_search.PRUNE_MIN_VALUES, clip_search.minimise_fraction = saved
 
 
+def _assert_same_grids(got, want):
+    for p, f in zip(got, want, strict=True):
+        assert torch.equal(p.scale_tensor(), f.scale_tensor())
+        assert torch.equal(p.offset_tensor(), f.offset_tensor())
+
+
 @settings(max_examples=60, deadline=None)
 @given(seed=st.integers(0, 10_000), c=st.integers(1, 6), m=st.sampled_from([8, 40, 300, 1100]),
        kind=st.sampled_from(["randn", "heavy", "relu", "shifted", "zero_row"]),
@@ -64,10 +70,7 @@ def test_pruned_search_equals_the_search_before(seed, c, m, kind, bits, symmetri
     # back to that search there
     x = _rows(seed, c, m, kind)
     pruned = _fit(x, bits, "pruned", symmetric=symmetric, style=style)
-    before = _fit(x, bits, "before", symmetric=symmetric, style=style)
-    for p, f in zip(pruned, before, strict=True):
-        assert torch.equal(p.scale_tensor(), f.scale_tensor())
-        assert torch.equal(p.offset_tensor(), f.offset_tensor())
+    _assert_same_grids(pruned, _fit(x, bits, "before", symmetric=symmetric, style=style))
 
 
 @settings(max_examples=40, deadline=None)
@@ -78,10 +81,7 @@ def test_pruned_search_equals_the_search_before(seed, c, m, kind, bits, symmetri
 def test_pruned_search_equals_measuring_every_candidate(seed, c, m, kind, bits, symmetric, style):
     x = _rows(seed, c, m, kind)
     pruned = _fit(x, bits, "pruned", symmetric=symmetric, style=style)
-    full = _fit(x, bits, "full", symmetric=symmetric, style=style)
-    for p, f in zip(pruned, full, strict=True):
-        assert torch.equal(p.scale_tensor(), f.scale_tensor())
-        assert torch.equal(p.offset_tensor(), f.offset_tensor())
+    _assert_same_grids(pruned, _fit(x, bits, "full", symmetric=symmetric, style=style))
 
 
 def _beyond_levels(x, lo_level, hi_level):

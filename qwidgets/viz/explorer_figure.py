@@ -100,7 +100,7 @@ class ExplorerFigure:
         fig = canvas.figure
         with matplotlib.rc_context(_RC):
             gs = GridSpec(2, 3, figure=fig, width_ratios=[1.0, 0.78, 0.22], height_ratios=[1, 1],
-                          left=0.085, right=0.985, bottom=0.085, top=0.905, wspace=0.42, hspace=0.42)
+                          left=0.105, right=0.985, bottom=0.085, top=0.905, wspace=0.42, hspace=0.42)
             self.ax_hist = fig.add_subplot(gs[0, 0])
             self.ax_map = fig.add_subplot(gs[0, 1])
             self.ax_bars = fig.add_subplot(gs[0, 2])  # same bins as the map; limits set together
