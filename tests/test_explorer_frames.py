@@ -126,3 +126,39 @@ def test_a_noise_move_redraws_only_the_axes_that_show_noise(subject):
     ex.refresh()
     assert canvas.blits - before == 5
     assert canvas.full_draws == 1
+
+
+BACK_AND_FORTH = [
+    ("bits", 5), ("bits", 4), ("scale", 1.1), ("bits", 5), ("bits", 4), ("signed", False),
+    ("bits", 5), ("signed", True), ("bits", 4), ("offset", 0.3), ("source", "input"), ("bits", 3),
+    ("source", "weight"), ("per_channel", True), ("channel", 2), ("bits", 5), ("per_channel", False),
+    ("scale", 1.1), ("noise", 0.5), ("bits", 5), ("noise", 0.3), ("bits", 4), ("scale", 1.0),
+]
+
+
+def test_figures_kept_per_grid_equal_a_fresh_measurement_after_moves_back_and_forth(subject):
+    """The explorer keeps the figures and plot parts of the grids it showed (moving back to
+    a width brings back its grid). After every move of a sequence that returns to grids shown
+    before, its readout and its PNG bytes equal those of a second explorer given the same
+    moves whose kept numbers are all dropped before each refresh (everything measured
+    afresh), and its layer readout equals qwidgets.layer_error for the grid."""
+    from qwidgets import layer_error
+
+    layer, x = subject
+    ex = GridExplorer(layer, x, bits=4)
+    ref = GridExplorer(layer, x, bits=4)
+    hits = 0
+    for name, value in BACK_AND_FORTH:
+        move(ex, name, value)
+        kept = len(ex.numbers._caches.get("layer", {}))
+        ex.refresh()
+        hits += len(ex.numbers._caches.get("layer", {})) == kept  # nothing new measured
+        move(ref, name, value)
+        ref.numbers._caches.clear()
+        ref.numbers._sorted.clear()
+        ref.refresh()
+        assert ex.readout.value == ref.readout.value, (name, value)
+        assert ex.canvas.last_png == ref.canvas.last_png, (name, value)
+        kw = {"weight_grid": ex.grid} if ex.source == "weight" else {"input_grid": ex.grid}
+        assert ex.layer_stats == layer_error(layer, x, **kw), (name, value)
+    assert hits >= 5  # the sequence did go back to grids measured before

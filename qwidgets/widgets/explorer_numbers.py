@@ -11,6 +11,10 @@ model functions and caches what does not depend on the control that moved:
   rows (``rows``), with the sampling error of the SQNR estimated from the per-row sums;
 - the bin-probability map, which in grid steps depends only on the bit width, signedness and
   noise.
+
+Figures and plot parts are kept for the last :data:`GRIDS_KEPT` grids shown, by what makes
+the grid (:func:`grid_key`: width, signedness, layout, exact scale and offset), so moving back
+to a width (its fitted, learned or edited grid comes back) measures nothing again.
 """
 
 from __future__ import annotations
@@ -33,7 +37,7 @@ from ..viz.explorer_figure import PlotData
 from .explorer_state import ExplorerState
 from .explorer_subject import ExplorerSubject
 
-__all__ = ["ExplorerNumbers", "SampledError"]
+__all__ = ["ExplorerNumbers", "SampledError", "grid_key"]
 
 FULL_MAP_LEVELS = 64  # up to this many levels the map shows every bin; beyond, 33 around the probe
 ZOOM_BINS = 33
@@ -41,6 +45,7 @@ CURVE_POINTS = 1200
 SAMPLE_POINTS = 300
 ERROR_SAMPLE = 20000
 MAPS_KEPT = 8  # bin maps remembered, for moves back and forth between widths or noise levels
+GRIDS_KEPT = 16  # figures and plot parts remembered per grid, for moves back to a grid shown before
 
 
 class SampledError:
@@ -58,11 +63,12 @@ class ExplorerNumbers:
         self._sorted: dict = {}
         self._caches: dict = {}
 
-    def _cached(self, name: str, key, compute, keep: int = 1):
-        """``compute()``'s value for ``key``, the last ``keep`` keys of ``name`` remembered."""
+    def _cached(self, name: str, key, compute, keep: int = GRIDS_KEPT):
+        """``compute()``'s value for ``key``, the ``keep`` keys of ``name`` used last remembered."""
         entries = self._caches.setdefault(name, {})
         if key in entries:
-            return entries[key]
+            entries[key] = value = entries.pop(key)  # used last: dropped last
+            return value
         value = entries[key] = compute()
         while len(entries) > keep:
             del entries[next(iter(entries))]
@@ -82,7 +88,7 @@ class ExplorerNumbers:
                 self._sorted[key] = SortedValues(self.subject.values[src], axis=g.axis)
             return self._sorted[key].measure(g)
 
-        return self._cached("tensor", (src, st.version[src], id(g)), compute)
+        return self._cached("tensor", (src, grid_key(g)), compute)
 
     def layer(self, st: ExplorerState, rows: int | None = None):
         """(ErrorStats or SampledError, (float, quantized) output sample for the scatter) with
@@ -100,22 +106,19 @@ class ExplorerNumbers:
         sub, src, g = self.subject, st.source, st.grid
         n = sub.inputs.shape[0]
         sampled = rows is not None and rows < n
-        key = (src, st.version[src], id(g), rows if sampled else None)
-        hit = self._caches.get("layer", {})
-        if key in hit:
-            return _Soon(lambda: hit[key], waiting=False)
+        key = (src, grid_key(g), rows if sampled else None)
+        if key in self._caches.get("layer", {}):  # a grid shown before: its figures
+            value = self._cached("layer", key, None)
+            return _Soon(lambda: value, waiting=False)
         job = _LayerJob(sub, src, g, rows if sampled else None)
         if not background:
-            value = job.measure(job.forward(threads))
-            self._caches["layer"] = {key: value}
+            value = self._cached("layer", key, lambda: job.measure(job.forward(threads)))
             return _Soon(lambda: value, waiting=False)
         # a new thread starts from torch's default count: give it the caller's for None
         future = _worker().submit(job.forward, torch.get_num_threads() if threads is None else threads)
 
         def result():
-            value = job.measure(future.result())
-            self._caches["layer"] = {key: value}
-            return value
+            return self._cached("layer", key, lambda: job.measure(future.result()))
 
         return _Soon(result, waiting=True)
 
@@ -245,6 +248,24 @@ class _LayerJob:
         pick = pick[: min(len(sub.scatter_x), flat.numel())]
         xs = ref.reshape(-1)[pick].double().numpy()
         return SampledError(stats, self.idx.numel(), n, se), (xs, flat[pick].double().numpy())
+
+
+def grid_key(g: UniformGrid) -> tuple:
+    """What makes a grid what it is, as a dictionary key: width, signedness, layout and the
+    exact values of scale and offset (a tensor by its dtype, shape and bytes). Two grids with
+    the same key quantize every value alike; the key holds no reference to the grid.
+
+    >>> grid_key(UniformGrid(4, 0.5)) == grid_key(UniformGrid(4, 0.5)) != grid_key(UniformGrid(5, 0.5))
+    True
+    """
+    return (g.bits, g.signed, g.axis, g.block_size, _param_key(g.scale), _param_key(g.offset))
+
+
+def _param_key(v) -> tuple:
+    if isinstance(v, torch.Tensor):
+        t = v.detach().cpu().contiguous()
+        return (str(t.dtype), tuple(t.shape), t.reshape(-1).view(torch.uint8).numpy().tobytes())
+    return ("float", float(v))
 
 
 def _probe_bars(g: UniformGrid, probe: float, noise: float, window, extent):
