@@ -340,3 +340,35 @@ def test_pixel_image_draws_what_matplotlib_draws_up_to_cell_edges():
     canvas.invalidate()
     half = canvas.draw()
     assert not np.array_equal(half, ours)  # blended with the white background by matplotlib
+
+
+def test_pixel_image_redrawn_after_a_new_shape_or_place_equals_a_fresh_one():
+    """The lookup of cells under pixels is kept between draws: after the image gets data of
+    another shape, another origin, or its axes move, the pixels equal those of a PixelImage
+    drawing that state for the first time (reference: a fresh canvas, same figure layout)."""
+    rng = np.random.default_rng(7)
+
+    def scene(pos, shape, origin, im=None, canvas=None):
+        canvas = canvas or BlitCanvas(240, 180)
+        if im is None:
+            ax = canvas.figure.add_axes(pos)
+            im = PixelImage(ax, interpolation="nearest", extent=(0, 1, 0, 1))
+            im.set_clip_path(ax.patch)
+            ax.add_image(im)
+            ax.set_xlim(0, 1)
+            ax.set_ylim(0, 1)
+        im.axes.set_position(pos)
+        im.origin = origin
+        im.set_data(matplotlib.colormaps["viridis"](rng_data[shape], bytes=True))
+        canvas.invalidate()
+        return canvas, im, canvas.draw().copy()
+
+    rng_data = {s: rng.random(s) for s in ((5, 9), (17, 3), (2, 40))}
+    states = [([0.1, 0.1, 0.6, 0.7], (5, 9), "lower"), ([0.1, 0.1, 0.6, 0.7], (17, 3), "lower"),
+              ([0.1, 0.1, 0.6, 0.7], (17, 3), "upper"), ([0.3, 0.2, 0.5, 0.4], (17, 3), "upper"),
+              ([0.3, 0.2, 0.5, 0.4], (2, 40), "lower"), ([0.1, 0.1, 0.6, 0.7], (5, 9), "lower")]
+    canvas, im, _ = scene(*states[0])
+    for state in states:
+        _, _, kept = scene(*state, im=im, canvas=canvas)
+        _, _, fresh = scene(*state)
+        np.testing.assert_array_equal(kept, fresh, err_msg=str(state))
