@@ -45,8 +45,9 @@ def test_frame_encoder_recompresses_changed_bands_and_decodes_to_the_same_pixels
             frame[rows[0]:rows[1], 3:40, :3] = rng.integers(0, 256, size=(rows[1] - rows[0], 37, 3))
         before = enc.bands_encoded
         png = enc.encode(frame)
-        with Image.open(io.BytesIO(png)) as im:
-            np.testing.assert_array_equal(np.asarray(im.convert("RGB")), frame[..., :3])
+        with Image.open(io.BytesIO(png)) as im:  # an RGBA frame is written as RGBA
+            assert im.mode == "RGBA"
+            np.testing.assert_array_equal(np.asarray(im), frame)
         expected = 7 if step == 0 else (0 if rows is None else len({r // 16 for r in range(*rows)}))
         assert enc.bands_encoded - before == expected
     assert enc.encode(frame[:50]) != png  # a new size starts afresh
@@ -372,3 +373,14 @@ def test_pixel_image_redrawn_after_a_new_shape_or_place_equals_a_fresh_one():
         _, _, kept = scene(*state, im=im, canvas=canvas)
         _, _, fresh = scene(*state)
         np.testing.assert_array_equal(kept, fresh, err_msg=str(state))
+
+
+def test_frame_encoder_writes_the_channels_it_is_given():
+    """Reference: Pillow's PNG decoder. An RGB frame comes back as RGB, an RGBA frame as
+    RGBA with its alpha (translucent pixels included), each byte exact."""
+    rng = np.random.default_rng(3)
+    for channels, mode in ((3, "RGB"), (4, "RGBA")):
+        frame = rng.integers(0, 256, size=(41, 29, channels), dtype=np.uint8)
+        with Image.open(io.BytesIO(FrameEncoder(band_rows=8).encode(frame))) as im:
+            assert im.mode == mode
+            np.testing.assert_array_equal(np.asarray(im), frame)

@@ -6,7 +6,10 @@ bands of rows that changed since the previous frame.
     notebook sizes several times faster than a general-purpose encoder at its default
     settings, for a few kilobytes more.
 ``FrameEncoder(compress_level=1, band_rows=16)``
-    ``.encode(rgba) -> bytes`` for a stream of frames of one size. The image data is cut into
+    ``.encode(rgba) -> bytes`` for a stream of frames of one size, written with the frame's
+    channels as they are (an RGBA frame as an RGBA PNG: copying the rows whole is 15x faster
+    than dropping every fourth byte, which costs more than the alpha channel's compression,
+    a constant 255 in the opaque figures). The image data is cut into
     bands of ``band_rows`` rows, each compressed on its own (a raw deflate segment ended by a
     sync flush, so the segments join into one valid stream); a band whose pixels equal the
     previous frame's keeps its compressed bytes. A control that moves one plot re-encodes the
@@ -43,14 +46,15 @@ def _check(arr: np.ndarray, compress_level: int) -> None:
         raise ValueError(f"compress_level must be in 0..9, got {compress_level}")
 
 
-def _rows(arr: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
-    """PNG scanlines ``(H, 1 + 3 W)``: filter byte 0 ("none"), then the RGB bytes."""
-    h, w = arr.shape[:2]
+def _rows(arr: np.ndarray, out: np.ndarray | None = None, keep_alpha: bool = False) -> np.ndarray:
+    """PNG scanlines ``(H, 1 + 3 W)``: filter byte 0 ("none"), then the RGB bytes (with
+    ``keep_alpha``, ``(H, 1 + 4 W)``: the RGBA bytes of an RGBA frame)."""
+    h, w, c = arr.shape
     if out is None:
-        out = np.empty((h, 1 + 3 * w), np.uint8)
+        out = np.empty((h, 1 + (c if keep_alpha else 3) * w), np.uint8)
     out[:, 0] = 0
-    if arr.shape[2] == 3:
-        out[:, 1:] = arr.reshape(h, 3 * w)
+    if c == 3 or keep_alpha:
+        out[:, 1:] = arr.reshape(h, c * w)
     else:  # a gather with a fixed index: faster than numpy's strided copy of [..., :3]
         out[:, 1:] = arr.reshape(h, 4 * w).take(_rgb_index(w), axis=1)
     return out
@@ -71,8 +75,8 @@ def _chunk(tag: bytes, data: bytes) -> bytes:
     return struct.pack(">I", len(data)) + tag + data + struct.pack(">I", crc)
 
 
-def _png(w: int, h: int, idat: bytes) -> bytes:
-    header = struct.pack(">IIBBBBB", w, h, 8, 2, 0, 0, 0)  # 8-bit RGB, no interlace
+def _png(w: int, h: int, idat: bytes, alpha: bool = False) -> bytes:
+    header = struct.pack(">IIBBBBB", w, h, 8, 6 if alpha else 2, 0, 0, 0)  # 8-bit RGB(A), no interlace
     return b"".join((_SIGNATURE, _chunk(b"IHDR", header), _chunk(b"IDAT", idat), _chunk(b"IEND", b"")))
 
 
@@ -123,13 +127,13 @@ class FrameEncoder:
     def encode(self, rgba: np.ndarray) -> bytes:
         arr = np.asarray(rgba)
         self._compress(arr, None)
-        h, w = arr.shape[:2]
+        h, w, c = arr.shape
         b = self.band_rows
         adler = 1
         for i, a in enumerate(self._adlers):
-            adler = adler32_combine(adler, a, (min(h, (i + 1) * b) - i * b) * (1 + 3 * w))
+            adler = adler32_combine(adler, a, (min(h, (i + 1) * b) - i * b) * (1 + c * w))
         idat = b"".join((b"\x78\x01", *self._bands, _FINAL_BLOCK, struct.pack(">I", adler)))
-        return _png(w, h, idat)
+        return _png(w, h, idat, alpha=c == 4)
 
     def prepare(self, rgba: np.ndarray, rows: tuple) -> None:
         """Compress now the changed bands that lie wholly outside ``rows = (first, end)``
@@ -139,7 +143,7 @@ class FrameEncoder:
 
     def _compress(self, arr: np.ndarray, skip: tuple | None) -> None:
         _check(arr, self.level)
-        h, w = arr.shape[:2]
+        h, w, c = arr.shape
         b = self.band_rows
         n = -(-h // b)
         if self._last is None or self._last.shape != arr.shape:
@@ -147,7 +151,7 @@ class FrameEncoder:
             # by the next encode (uninitialised memory may hold this very frame: a band left
             # unencoded)
             self._last = np.zeros_like(arr)
-            self._rows = np.empty((h, 1 + 3 * w), np.uint8)
+            self._rows = np.empty((h, 1 + c * w), np.uint8)
             self._bands = [None] * n
             self._adlers = [1] * n
             changed = np.ones(n, bool)
@@ -160,7 +164,7 @@ class FrameEncoder:
         for i in np.flatnonzero(changed):
             r0, r1 = i * b, min(h, (i + 1) * b)
             self._last[r0:r1] = arr[r0:r1]
-            rows = _rows(arr[r0:r1], self._rows[r0:r1])
+            rows = _rows(arr[r0:r1], self._rows[r0:r1], keep_alpha=True)
             c = zlib.compressobj(self.level, zlib.DEFLATED, -15)
             self._bands[i] = c.compress(rows.data) + c.flush(zlib.Z_SYNC_FLUSH)
             self._adlers[i] = zlib.adler32(rows.data)
