@@ -220,11 +220,11 @@ class _LayerJob:
         self.idx = None if rows is None else torch.linspace(0, n - 1, rows).round().long().unique()
         x = subject.inputs if self.idx is None else subject.inputs[self.idx]
         w = subject.layer.weight.detach()
-        with torch.no_grad():  # (the values were checked when the explorer was made)
+        with torch.no_grad():  # the float32 copies were checked when the explorer was made
             if source == "input":
                 x = quantize_unchecked(x, grid)
             else:
-                w = quantize(w, grid)
+                w = quantize_unchecked(subject.values["weight"], grid)
         self.x, self.w = x, w
 
     def forward(self, n_threads: int | None) -> torch.Tensor:
