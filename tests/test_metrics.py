@@ -9,8 +9,9 @@ import numpy as np
 import pytest
 import torch
 
+from qwidgets.core import metrics
 from qwidgets.core.grid import UniformGrid
-from qwidgets.core.metrics import ErrorStats, error_stats, grid_usage
+from qwidgets.core.metrics import ErrorStats, FixedReference, error_stats, grid_usage
 from qwidgets.core.rounding import quantize
 
 
@@ -158,3 +159,40 @@ def test_large_tensors_match_numpy_across_slice_boundaries(axis):
     else:
         per = np.moveaxis(codes, axis, 0).reshape(x.shape[axis], -1)
         assert u.bins_used == sum(np.unique(r).size for r in per)
+
+
+@pytest.mark.parametrize("keep", [True, False])
+@pytest.mark.parametrize("shape", [(7,), (256, 1031), (3, 65536)])
+def test_fixed_reference_gives_error_stats_bit_for_bit(shape, keep, monkeypatch):
+    """Reference: error_stats on the same pair (and numpy's definitions written out above, to
+    float64 rounding). FixedReference keeps the reference's float64 slices (or, past
+    KEEP_FLOAT64 values, converts them each call) and their powers; the figures are equal,
+    not just close: the same slices summed in the same order. Slices of 65536 values, so the
+    larger shapes span several, one ending short."""
+    if not keep:
+        monkeypatch.setattr(metrics, "KEEP_FLOAT64", 0)
+    gen = torch.Generator().manual_seed(sum(shape))
+    ref = torch.randn(shape, generator=gen)
+    fixed = FixedReference(ref)
+    for scale in (0.9, 1.0, 1.3):
+        for app in (ref * scale + 0.01 * torch.randn(shape, generator=gen), (ref * scale).double(),
+                    (ref * scale).half()):
+            assert fixed.stats(app) == error_stats(ref, app)
+    e = fixed.stats(ref * 1.1)
+    want = numpy_stats(ref.numpy(), (ref * 1.1).numpy())
+    assert e.sqnr_db == pytest.approx(want["sqnr_db"], abs=1e-9) and e.n == want["n"]
+
+
+def test_fixed_reference_refuses_what_error_stats_refuses():
+    ref = torch.randn(5, 4)
+    fixed = FixedReference(ref)
+    with pytest.raises(ValueError, match="same shape"):
+        fixed.stats(torch.zeros(4, 5))
+    bad = ref.clone()
+    bad[1, 2] = float("nan")
+    with pytest.raises(ValueError, match="approx holds 1 NaN"):
+        fixed.stats(bad)
+    with pytest.raises(ValueError, match="reference holds"):
+        FixedReference(bad)
+    with pytest.raises(ValueError, match="empty"):
+        FixedReference(torch.zeros(0))

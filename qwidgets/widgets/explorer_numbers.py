@@ -235,7 +235,7 @@ class _LayerJob:
         sub = self.subject
         if self.idx is None:
             sample = out.reshape(-1)[sub.scatter_idx].double().numpy()
-            return error_stats(sub.reference, out), (sub.scatter_x, sample)
+            return sub.fixed_reference.stats(out), (sub.scatter_x, sample)
         n = sub.inputs.shape[0]
         ref = sub.reference[self.idx]
         stats = error_stats(ref, out)

@@ -16,6 +16,7 @@ import torch
 from torch import nn
 
 from ..core.checks import as_input
+from ..core.metrics import FixedReference
 from ..model.capture import capture_inputs
 from ..model.layers import is_quantizable, layer_output
 from ..model.picking import check_picker, split_data
@@ -91,6 +92,7 @@ class ExplorerSubject:
         self.inputs = x.detach().float().clone()
         self.values = {"weight": module.weight.detach().float().clone(), "input": self.inputs}
         self.reference = layer_output(module, self.inputs)  # the float output, computed once
+        self.fixed_reference = FixedReference(self.reference)  # its float64 slices, kept
         ref = self.reference.reshape(-1)
         gen = torch.Generator().manual_seed(0)
         n = min(SCATTER_POINTS, ref.numel())
