@@ -62,6 +62,7 @@ class ExplorerNumbers:
         self.subject = subject
         self._sorted: dict = {}
         self._caches: dict = {}
+        self._keys: dict = {}  # id(grid) -> (grid, grid_key(grid))
 
     def _cached(self, name: str, key, compute, keep: int = GRIDS_KEPT):
         """``compute()``'s value for ``key``, the ``keep`` keys of ``name`` used last remembered."""
@@ -73,6 +74,18 @@ class ExplorerNumbers:
         while len(entries) > keep:
             del entries[next(iter(entries))]
         return value
+
+    def _key(self, g: UniformGrid) -> tuple:
+        """:func:`grid_key` of ``g``, worked out once per grid object (a block grid's scales
+        are megabytes): kept with the grid itself, so its id stays its own meanwhile."""
+        hit = self._keys.get(id(g))
+        if hit is not None and hit[0] is g:
+            return hit[1]
+        key = grid_key(g)
+        self._keys[id(g)] = (g, key)
+        while len(self._keys) > 4 * GRIDS_KEPT:
+            del self._keys[next(iter(self._keys))]
+        return key
 
     # ------------------------------------------------------------------ readout figures
     def tensor(self, st: ExplorerState):
@@ -88,7 +101,7 @@ class ExplorerNumbers:
                 self._sorted[key] = SortedValues(self.subject.values[src], axis=g.axis)
             return self._sorted[key].measure(g)
 
-        return self._cached("tensor", (src, grid_key(g)), compute)
+        return self._cached("tensor", (src, self._key(g)), compute)
 
     def layer(self, st: ExplorerState, rows: int | None = None):
         """(ErrorStats or SampledError, (float, quantized) output sample for the scatter) with
@@ -106,7 +119,7 @@ class ExplorerNumbers:
         sub, src, g = self.subject, st.source, st.grid
         n = sub.inputs.shape[0]
         sampled = rows is not None and rows < n
-        key = (src, grid_key(g), rows if sampled else None)
+        key = (src, self._key(g), rows if sampled else None)
         if key in self._caches.get("layer", {}):  # a grid shown before: its figures
             value = self._cached("layer", key, None)
             return _Soon(lambda: value, waiting=False)
