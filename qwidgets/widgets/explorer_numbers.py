@@ -27,6 +27,7 @@ import numpy as np
 import torch
 
 from ..core.grid import UniformGrid
+from ..core.grid_cache import tensor_digest
 from ..core.metrics import ErrorStats, error_stats, grid_usage
 from ..core.relaxed import bin_probabilities, expected_quantize, relaxed_quantize
 from ..core.rounding import quantize, quantize_unchecked
@@ -46,6 +47,7 @@ SAMPLE_POINTS = 300
 ERROR_SAMPLE = 20000
 MAPS_KEPT = 8  # bin maps remembered, for moves back and forth between widths or noise levels
 GRIDS_KEPT = 16  # figures and plot parts remembered per grid, for moves back to a grid shown before
+KEYS_KEPT = 4  # grids whose key is remembered (one refresh looks its grid up several times)
 
 
 class SampledError:
@@ -83,7 +85,7 @@ class ExplorerNumbers:
             return hit[1]
         key = grid_key(g)
         self._keys[id(g)] = (g, key)
-        while len(self._keys) > 4 * GRIDS_KEPT:
+        while len(self._keys) > KEYS_KEPT:
             del self._keys[next(iter(self._keys))]
         return key
 
@@ -265,8 +267,9 @@ class _LayerJob:
 
 def grid_key(g: UniformGrid) -> tuple:
     """What makes a grid what it is, as a dictionary key: width, signedness, layout and the
-    exact values of scale and offset (a tensor by its dtype, shape and bytes). Two grids with
-    the same key quantize every value alike; the key holds no reference to the grid.
+    exact values of scale and offset (a tensor by the digest of its dtype, shape and bytes:
+    :func:`~qwidgets.core.grid_cache.tensor_digest`, 128 bits). Two grids with the same key
+    quantize every value alike; the key holds no reference to the grid, and is small.
 
     >>> grid_key(UniformGrid(4, 0.5)) == grid_key(UniformGrid(4, 0.5)) != grid_key(UniformGrid(5, 0.5))
     True
@@ -276,8 +279,7 @@ def grid_key(g: UniformGrid) -> tuple:
 
 def _param_key(v) -> tuple:
     if isinstance(v, torch.Tensor):
-        t = v.detach().cpu().contiguous()
-        return (str(t.dtype), tuple(t.shape), t.reshape(-1).view(torch.uint8).numpy().tobytes())
+        return ("tensor", tensor_digest(v))
     return ("float", float(v))
 
 
