@@ -13,7 +13,7 @@ import weakref
 import pytest
 import torch
 
-from qwidgets.core import clip_search, ranges
+from qwidgets.core import clip_search, fit_groups, grid_cache, ranges
 from qwidgets.core.grid_cache import GridCache
 from qwidgets.core.ranges import fit_ranges
 from qwidgets.model.entries import find_entries
@@ -36,36 +36,51 @@ def test_row_chunks_give_the_grids_of_one_search(monkeypatch, symmetric):
         assert torch.equal(a.scale, b.scale) and torch.equal(a.offset_tensor(), b.offset_tensor())
 
 
-def test_weights_fitted_alone_keep_their_grids_and_drop_their_sorted_copies(monkeypatch):
-    """fit_options fits a weight of GROUP_VALUES values or more on its own and lets its fitter
-    (with the sorted copy) go before the next; the grids equal those of one call for all weights
-    (outside check: the same function with the threshold above every weight, torch.equal)."""
-    model = torch.nn.Sequential(torch.nn.Linear(64, 96), torch.nn.Linear(96, 64), torch.nn.Linear(64, 8))
+def _weights():
     torch.manual_seed(0)
-    entries = find_entries(model)
-    weights = [(e.parameter(model).detach(), e, None) for e in entries]
-    real_fit = granularity.fit_cached_together
-    monkeypatch.setattr(granularity, "fit_cached_together", lambda f, b: real_fit(f, b, GridCache()))
-    together = granularity.fit_options(weights, ("channel",), (2, 4, 8), "mse", None, [])
+    model = torch.nn.Sequential(torch.nn.Linear(64, 96), torch.nn.Linear(96, 64), torch.nn.Linear(64, 8))
+    return [(e.parameter(model).detach(), e, None) for e in find_entries(model)]
 
+
+def _fitted_alone_and_held(monkeypatch, workers):
+    """fit_options' grids with the first two weights searched alone, and per search begun the
+    number of other large fitters still holding their sorted copy."""
+    weights = _weights()
     alive, held = [], []
-    real_init = ranges.RangeFitter.__init__
+    real_init, real_group = ranges.RangeFitter.__init__, fit_groups.search_group
 
     def tracking_init(self, *a, **k):
         real_init(self, *a, **k)
         alive.append(weakref.ref(self))
 
-    def counting(f, b):  # large fitters still holding a sorted copy when a fit starts
+    def counting(group, bits):  # large fitters still holding a sorted copy when a search starts
         gc.collect()
-        held.append(sum(r() is not None and r()._parts[0].rows is not None and r().x.numel() >= 64 * 96
-                        for r in alive))
-        return real_fit(f, b, GridCache())
+        held.append(sum(r() is not None and r() not in group and r()._parts[0].rows is not None
+                        and r().x.numel() >= 64 * 96 for r in alive))
+        return real_group(group, bits)
 
     monkeypatch.setattr(ranges.RangeFitter, "__init__", tracking_init)
-    monkeypatch.setattr(granularity, "GROUP_VALUES", 64 * 96)  # the first two weights go alone
-    monkeypatch.setattr(granularity, "fit_cached_together", counting)
-    alone = granularity.fit_options(weights, ("channel",), (2, 4, 8), "mse", None, [])
-    assert held == [0, 0, 0]
-    for e in entries:
+    monkeypatch.setattr(fit_groups, "GROUP_VALUES", 64 * 96)  # the first two weights go alone
+    monkeypatch.setattr(fit_groups, "search_group", counting)
+    monkeypatch.setattr(granularity, "fit_cached_together",
+                        lambda f, b, **k: grid_cache.fit_cached_together(f, b, GridCache(), **k))
+    out = granularity.fit_options(weights, ("channel",), (2, 4, 8), "mse", None, [], workers=workers)
+    monkeypatch.undo()
+    return out, held
+
+
+@pytest.mark.parametrize("workers", [1, 2])
+def test_weights_fitted_alone_keep_their_grids_and_drop_their_sorted_copies(monkeypatch, workers):
+    """fit_options searches a weight of GROUP_VALUES values or more on its own and lets its
+    sorted copy go once fitted (at most one per worker held at a time); the grids equal those of
+    one search for all weights on one thread (outside check: the same function with the
+    threshold above every weight, torch.equal)."""
+    alone, held = _fitted_alone_and_held(monkeypatch, workers)
+    assert len(held) == 3 and max(held) <= workers - 1
+    weights = _weights()
+    monkeypatch.setattr(granularity, "fit_cached_together",
+                        lambda f, b, **k: grid_cache.fit_cached_together(f, b, GridCache()))
+    together = granularity.fit_options(weights, ("channel",), (2, 4, 8), "mse", None, [])
+    for _, e, _ in weights:
         for a, b in zip(together[e.name][0], alone[e.name][0], strict=True):
             assert torch.equal(a.scale, b.scale) and torch.equal(a.offset_tensor(), b.offset_tensor())

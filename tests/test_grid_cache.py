@@ -9,7 +9,7 @@ from __future__ import annotations
 import torch
 from torch import nn
 
-from qwidgets.core import grid_cache, ranges
+from qwidgets.core import fit_groups, grid_cache
 from qwidgets.core.grid_cache import GRID_CACHE, GridCache, fit_cached, tensor_digest
 from qwidgets.core.ranges import RangeFitter
 from qwidgets.planning.scanning import scan
@@ -17,11 +17,11 @@ from qwidgets.planning.scanning import scan
 
 def _count_fits(monkeypatch):
     calls = []
-    original = ranges.fit_together
+    original = fit_groups.fit_together
 
-    def counted(fitters, bits):
+    def counted(fitters, bits, **kw):
         calls.extend(tuple(bits) for _ in fitters)
-        return original(fitters, bits)
+        return original(fitters, bits, **kw)
 
     monkeypatch.setattr(grid_cache, "fit_together", counted)
     return calls

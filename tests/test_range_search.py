@@ -17,7 +17,8 @@ from naive_loops import golden_steps_by_hand
 from qwidgets import UniformGrid, fit_range, quantize
 from qwidgets.core import clip_search
 from qwidgets.core.clip_search import GridSpec
-from qwidgets.core.ranges import RangeFitter, fit_ranges, fit_together
+from qwidgets.core.fit_groups import fit_together
+from qwidgets.core.ranges import RangeFitter, fit_ranges
 
 
 def _sse_by_quantizing(x, spec, scale, offset):  # x (C, M); scale, offset (C, K) -> (C, K)

@@ -19,6 +19,7 @@ import torch
 
 from .cell_sums import Layout, SortedRows
 from .fraction_search import minimise_fraction, sweep_fractions
+from .workers import map_chunks
 
 _PRUNE_SLACK = 1e-9  # a candidate is skipped only when its bound beats the best by this x sum(x**2)
 # ... and by this fraction of itself: errors measured by rounding in float32 may sit about 1e-7
@@ -280,7 +281,8 @@ def row_chunks(sample: torch.Tensor) -> list[slice]:
     Each chunk is sorted and searched on its own: the grids are those of one search over all
     rows (every step reads its own row only, and the sweep's pruning skips only candidates
     that cannot win any row of the chunk), with the sorted copy, its prefix sums and the
-    sweep's bounds held for one chunk at a time (a 50257 x 768 embedding: 2.4 GiB at once)."""
+    sweep's bounds held for one chunk at a time (a 50257 x 768 embedding: 2.4 GiB at once), or
+    one per worker (:func:`qwidgets.core.workers.chunk_workers`)."""
     c, m = sample.shape
     step = max(1, ROW_CHUNK_VALUES // max(1, m))
     return [slice(i, min(c, i + step)) for i in range(0, c, step)]
@@ -297,7 +299,7 @@ def search_symmetric(rows: SortedRows | torch.Tensor, specs: GridSpecs, r_max: t
 
     ``rows``: the sorted rows, or the unsorted sample, then searched in :func:`row_chunks`."""
     if isinstance(rows, torch.Tensor):
-        return torch.cat([search_symmetric(SortedRows(rows[k]), specs, r_max[k]) for k in row_chunks(rows)])
+        return torch.cat(map_chunks(lambda k: search_symmetric(SortedRows(rows[k]), specs, r_max[k]), row_chunks(rows)))
     tiny = torch.finfo(torch.float32).tiny
 
     def make(t, pick):
@@ -314,7 +316,7 @@ def search_asymmetric(rows: SortedRows | torch.Tensor, specs: GridSpecs, lo0: to
     Returns (lo, hi), each (rows, widths). ``rows`` as in :func:`search_symmetric`.
     """
     if isinstance(rows, torch.Tensor):
-        parts = [search_asymmetric(SortedRows(rows[k]), specs, lo0[k], hi0[k]) for k in row_chunks(rows)]
+        parts = map_chunks(lambda k: search_asymmetric(SortedRows(rows[k]), specs, lo0[k], hi0[k]), row_chunks(rows))
         return torch.cat([p[0] for p in parts]), torch.cat([p[1] for p in parts])
     tiny = torch.finfo(torch.float32).tiny
 

@@ -2,7 +2,7 @@
 
 A row whose extent is zero (an all-zero channel) takes the widest extent of its tensor (1.0 when
 every value is zero), so every scale is > 0; rows of different tensors fitted together
-(:func:`qwidgets.core.ranges.fit_together`) take their extents from their own tensor.
+(:func:`qwidgets.core.fit_groups.fit_together`) take their extents from their own tensor.
 """
 
 from __future__ import annotations

@@ -28,8 +28,9 @@ from collections.abc import Sequence
 import torch
 
 from . import clip_search
+from .fit_groups import fit_together
 from .grid import UniformGrid
-from .ranges import RangeFitter, fit_together
+from .ranges import RangeFitter
 
 __all__ = ["GridCache", "GRID_CACHE", "fit_cached", "fit_cached_together", "tensor_digest"]
 
@@ -98,10 +99,12 @@ def fit_cached(fitter: RangeFitter, bits: Sequence[int], cache: GridCache | None
 
 
 def fit_cached_together(fitters: Sequence[RangeFitter], bits: Sequence[int],
-                        cache: GridCache | None = None) -> list[list[UniformGrid]]:
+                        cache: GridCache | None = None, *, workers: int = 1,
+                        release: bool = False) -> list[list[UniformGrid]]:
     """``[fit_cached(f, bits) for f in fitters]``; the widths missing from the cache are fitted
-    together (:func:`qwidgets.core.ranges.fit_together`: the same grids, one search for the
-    fitters of a model's weights that share a row length and options)."""
+    together (:func:`qwidgets.core.fit_groups.fit_together`: the same grids, one search for the
+    fitters of a model's weights that share a row length and options; ``workers`` and
+    ``release`` are passed to it)."""
     cache = GRID_CACHE if cache is None else cache
     bases = [(_digest(f), f.options_key(), clip_search.SEARCH_CAP) for f in fitters]
     out = [[cache.get(base + (int(b),)) for b in bits] for base in bases]
@@ -113,7 +116,8 @@ def fit_cached_together(fitters: Sequence[RangeFitter], bits: Sequence[int],
         if missing:
             todo.setdefault(missing, []).append(i)
     for missing, members in todo.items():
-        for i, grids in zip(members, fit_together([fitters[i] for i in members], missing), strict=True):
+        for i, grids in zip(members, fit_together([fitters[i] for i in members], missing,
+                                                              workers=workers, release=release), strict=True):
             fitted = dict(zip(missing, grids, strict=True))
             for b, g in fitted.items():
                 cache.put(bases[i] + (int(b),), g)

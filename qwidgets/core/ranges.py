@@ -39,7 +39,7 @@ from .device_rules import DeviceRules, check_rules, power_of_two_fit
 from .extents import asym_extent, sym_extent
 from .grid import UniformGrid
 
-__all__ = ["fit_range", "fit_ranges", "fit_ranges_unchecked", "fit_together", "RangeFitter", "METHODS",
+__all__ = ["fit_range", "fit_ranges", "fit_ranges_unchecked", "search_group", "RangeFitter", "METHODS",
            "STYLES"]
 
 METHODS = ("minmax", "percentile", "mse")
@@ -225,6 +225,11 @@ class RangeFitter:
             self._parts = [_RowSet(p.float(), method) for p in parts]
         self.digest: str | None = None  # of x's values, set by whoever needs it (grid_cache)
 
+    def drop_sorted(self) -> None:
+        """Let the sorted copies and prefix sums of the MSE search go (a later fit sorts again)."""
+        for p in self._parts:
+            p.rows = None
+
     def options_key(self) -> tuple:
         """Every option besides the values and the bit width that shapes this fitter's grids."""
         return (self.method, self.signed, self.symmetric, self.style, self.axis, self._pct,
@@ -278,46 +283,10 @@ class RangeFitter:
         return grids
 
 
-GROUP_VALUES = 1 << 22  # values searched together at most (bounds the sorted copy's memory)
-
-
-def fit_together(fitters: Sequence[RangeFitter], bits: Sequence[int]) -> list[list[UniformGrid]]:
-    """``[f.fit_many(bits) for f in fitters]``: the MSE searches of fitters with the same
-    :meth:`~RangeFitter.group_key` run as one search over all their rows.
-
-    The grids are the same (each row's search reads its own row only: candidates, errors and
-    the golden-section steps are per row, and the sweep's pruning skips only candidates that
-    cannot win any row), in far fewer tensor operations for a model's many small weights.
-
-    >>> import torch
-    >>> a, b = torch.randn(4, 50), torch.randn(7, 50)
-    >>> together = fit_together([RangeFitter(a, axis=0), RangeFitter(b, axis=0)], (3, 6))
-    >>> torch.equal(together[1][0].scale, RangeFitter(b, axis=0).fit(3).scale)
-    True
-    """
-    out: list = [None] * len(fitters)
-    groups: dict = {}
-    for i, f in enumerate(fitters):
-        key = f.group_key()
-        if key is None:
-            out[i] = f.fit_many(bits)
-        else:
-            groups.setdefault(key, []).append(i)
-    for members in groups.values():
-        chunk, size = [], 0
-        for i in members + [None]:
-            n = 0 if i is None else fitters[i].x.numel()
-            if chunk and (i is None or size + n > GROUP_VALUES):
-                for j, grids in zip(chunk, _fit_group([fitters[j] for j in chunk], bits), strict=True):
-                    out[j] = grids
-                chunk, size = [], 0
-            if i is not None:
-                chunk.append(i)
-                size += n
-    return out
-
-
-def _fit_group(fitters: list, bits) -> list[list[UniformGrid]]:
+def search_group(fitters: list, bits) -> list[list[UniformGrid]]:
+    """``[f.fit_many(bits) for f in fitters]`` for fitters of one
+    :meth:`~RangeFitter.group_key`, their MSE searches run as one over all their rows (the same
+    grids: each row's search reads its own row only)."""
     first = fitters[0]
     if len(fitters) == 1:
         return [first.fit_many(bits)]

@@ -22,7 +22,7 @@ import numpy as np
 
 from ..core.checks import check_int
 from ..core.grid_cache import fit_cached_together
-from ..core.ranges import GROUP_VALUES, RangeFitter
+from ..core.ranges import RangeFitter
 
 __all__ = ["check_granularity", "check_option", "input_axis", "option_label", "option_from_label",
            "block_skip_reason", "grid_options", "scan_granularity", "split_granularities",
@@ -176,12 +176,14 @@ def granularity_rows(rows, grans: tuple, layers: list, n_bits: int, sqnr: dict) 
     return out
 
 
-def fit_options(weights: list, options: tuple, bits, method, rules, notes: list) -> dict:
+def fit_options(weights: list, options: tuple, bits, method, rules, notes: list, workers: int = 1) -> dict:
     """Entry name -> the grids of each granularity option at every width (None where the entry
     skips the option, and why appended to ``notes``). ``weights``: (values checked by the caller,
     entry, grid-cache digest or None) per entry. Every missing grid is fitted in one call
     (:func:`~qwidgets.core.grid_cache.fit_cached_together`: the searches of weights that share
-    a row length run as one)."""
+    a row length run as one, on ``workers`` threads; a weight of
+    :data:`~qwidgets.core.fit_groups.GROUP_VALUES` values or more is searched alone and its sorted
+    copy dropped once fitted, so a large model's weights are not all held sorted at once)."""
     fitters, where, out = [], [], {}
     for w, e, digest in weights:
         out[e.name] = [None] * len(options)
@@ -194,15 +196,7 @@ def fit_options(weights: list, options: tuple, bits, method, rules, notes: list)
             fitter.digest = digest  # the scan's state digest: no second hash of the weight
             fitters.append(fitter)
             where.append((e.name, k))
-    # a weight of GROUP_VALUES values or more is searched alone in any case: fitted one at a
-    # time and dropped, so its sorted copy and prefix sums (20 bytes a value) go with it (a
-    # large model's weights are not all held sorted at once); the others together
-    alone = [i for i, f in enumerate(fitters) if f.x.numel() >= GROUP_VALUES]
-    together = sorted(set(range(len(fitters))) - set(alone))
-    grids_of = dict(zip(together, fit_cached_together([fitters[i] for i in together], bits), strict=True))
-    for i in alone:
-        grids_of[i] = fit_cached_together([fitters[i]], bits)[0]
-        fitters[i] = None
+    grids_of = fit_cached_together(fitters, bits, workers=workers, release=True)
     for i, (name, k) in enumerate(where):
         out[name][k] = grids_of[i]
     return out

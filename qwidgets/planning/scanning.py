@@ -265,10 +265,11 @@ def _scan_entries(model, source, first, entries, usage, options, progress, share
         for f in facts:  # the values checked once here (a NaN / inf names the weight)
             if qw and f.entry.name in weights:
                 finite_check(weights[f.entry.name], f"weight {f.entry.param!r}")
-        # per granularity option, every width of every weight together (None: the entry skips it)
+        # per granularity option, every width of every weight together (None: the entry skips it),
+        # on as many worker threads as the passes have torch threads (threads.py)
         fitted = fit_options([(weights[f.entry.name], f.entry, options["digests"].get(f.entry.param))
                               for f in facts if f.entry.name in weights], grans, bits, method, rules,
-                             skipped_opts) if qw else {}
+                             skipped_opts, workers=n_threads) if qw else {}
         for f in facts:
             e = f.entry
             act = e.kind == "activation"

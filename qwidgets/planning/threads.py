@@ -6,7 +6,9 @@ reproduce the float model bit for bit on the passes' threads).
 
 - Fitting ranges is many small tensor operations (one per candidate grid): a second thread only
   adds hand-offs and, when another process holds a core, stalls (measured 3-25x slower on two
-  shared cores), so fitting runs on one thread.
+  shared cores), so fitting runs on one torch thread; a scan whose passes run on more threads
+  fits that many weights at once instead, one per Python thread (``core/fit_groups.py``: the
+  same grids).
 - The passes run on torch's thread count (``torch.get_num_threads()``: the machine's cores
   unless the user set it), except for models under :data:`SMALL_MODEL_PARAMS` parameters, whose
   layers are too small to split (measured on two cores: a small residual net's scan 1.1 s on
