@@ -84,3 +84,34 @@ def test_weights_fitted_alone_keep_their_grids_and_drop_their_sorted_copies(monk
     for _, e, _ in weights:
         for a, b in zip(together[e.name][0], alone[e.name][0], strict=True):
             assert torch.equal(a.scale, b.scale) and torch.equal(a.offset_tensor(), b.offset_tensor())
+
+
+def test_a_scan_with_fit_workers_gives_the_same_table():
+    """set_fit_workers(2): the same grids and SQNR table, bit for bit, as the default one worker
+    (outside check: the same scan run twice, torch.equal / numpy equality)."""
+    import numpy as np
+
+    from qwidgets.core.grid_cache import GRID_CACHE
+    from qwidgets.planning.scanning import scan
+    from qwidgets.planning.threads import fit_workers, set_fit_workers
+
+    torch.manual_seed(1)
+    model = torch.nn.Sequential(torch.nn.Linear(40, 64), torch.nn.ReLU(), torch.nn.Linear(64, 48),
+                                torch.nn.ReLU(), torch.nn.Linear(48, 10))
+    x = torch.randn(16, 40)
+    GRID_CACHE.clear()
+    one = scan(model, x, bits=(2, 4, 8), progress=False)
+    set_fit_workers(2)
+    try:
+        assert fit_workers() == 2
+        GRID_CACHE.clear()
+        two = scan(model, x, bits=(2, 4, 8), progress=False)
+    finally:
+        set_fit_workers()
+    assert np.array_equal(one.sqnr_array("layer"), two.sqnr_array("layer"))
+    for name in one.layers:
+        for b in (2, 4, 8):
+            a, c = one.weight_grid(name, b), two.weight_grid(name, b)
+            assert torch.equal(a.scale_tensor(), c.scale_tensor())
+    with pytest.raises(ValueError, match="workers"):
+        set_fit_workers(0)

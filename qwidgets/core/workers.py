@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import contextlib
 import contextvars
+import ctypes
 from collections.abc import Callable, Sequence
 from concurrent.futures import ThreadPoolExecutor
 from numbers import Integral
@@ -46,6 +47,7 @@ def run_units(units: Sequence[tuple[int, Callable[[], object]]], workers: int) -
 
     order = sorted(range(len(units)), key=lambda k: -units[k][0])
     out: list = [None] * len(units)
+    _trim()  # what this thread freed before: the workers' heaps cannot reuse it
     try:
         with ThreadPoolExecutor(max_workers=min(workers, len(units)), thread_name_prefix="qwidgets-fit") as pool:
             futures = {k: pool.submit(one, units[k][1]) for k in order}
@@ -53,7 +55,18 @@ def run_units(units: Sequence[tuple[int, Callable[[], object]]], workers: int) -
                 out[k] = futures[k].result()
     finally:
         torch.set_num_threads(before)
+        _trim()
     return out
+
+
+def _trim() -> None:
+    """Hand freed memory back to the system (glibc keeps a heap per thread: what the main thread
+    freed is not reused by the workers, nor what they freed by the passes after them). No-op
+    where the C library has no ``malloc_trim``."""
+    try:
+        ctypes.CDLL(None).malloc_trim(0)
+    except (OSError, AttributeError):  # not glibc
+        pass
 
 
 def map_chunks(fn: Callable, chunks: Sequence) -> list:

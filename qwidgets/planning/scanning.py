@@ -68,7 +68,7 @@ from .survey import survey
 from .table import SensitivityTable
 from .table_schema import ESTIMATES, QUANTIZE_MODES, SCOPES
 from .tap_scope import TapScope
-from .threads import pass_threads, threads, torch_threads
+from .threads import fit_workers, pass_threads, threads, torch_threads
 
 
 def scan(model: nn.Module, data: Data, bits: Sequence[int] = (2, 3, 4, 5, 6, 8), *, quantize: str = "weight",
@@ -266,10 +266,10 @@ def _scan_entries(model, source, first, entries, usage, options, progress, share
             if qw and f.entry.name in weights:
                 finite_check(weights[f.entry.name], f"weight {f.entry.param!r}")
         # per granularity option, every width of every weight together (None: the entry skips it),
-        # on as many worker threads as the passes have torch threads (threads.py)
+        # on threads.fit_workers() threads
         fitted = fit_options([(weights[f.entry.name], f.entry, options["digests"].get(f.entry.param))
                               for f in facts if f.entry.name in weights], grans, bits, method, rules,
-                             skipped_opts, workers=n_threads) if qw else {}
+                             skipped_opts, workers=fit_workers()) if qw else {}
         for f in facts:
             e = f.entry
             act = e.kind == "activation"

@@ -6,9 +6,12 @@ reproduce the float model bit for bit on the passes' threads).
 
 - Fitting ranges is many small tensor operations (one per candidate grid): a second thread only
   adds hand-offs and, when another process holds a core, stalls (measured 3-25x slower on two
-  shared cores), so fitting runs on one torch thread; a scan whose passes run on more threads
-  fits that many weights at once instead, one per Python thread (``core/fit_groups.py``: the
-  same grids).
+  shared cores), so fitting runs on one torch thread. :func:`set_fit_workers` lets a scan fit
+  several weight groups at once instead, one per Python thread (``core/fit_groups.py``: the
+  same grids). Not the default: glibc gives each thread its own heap, and what the passes
+  allocate afterwards does not reuse what the workers freed (measured on the 124M decoder's gain
+  scan: fitting 24 s -> 16 s on two idle cores, the scan 83 s -> 76 s, but 1.1 -> 1.4-1.7 GiB
+  peak resident over the model).
 - The passes run on torch's thread count (``torch.get_num_threads()``: the machine's cores
   unless the user set it), except for models under :data:`SMALL_MODEL_PARAMS` parameters, whose
   layers are too small to split (measured on two cores: a small residual net's scan 1.1 s on
@@ -26,6 +29,7 @@ from torch import nn
 
 # kind of work -> thread count (None: chosen by pass_threads from the machine and the model)
 THREADS: dict[str, int | None] = {"fit": 1, "passes": None}
+FIT_WORKERS = {"workers": 1}  # weight groups fitted at once (set_fit_workers)
 SMALL_MODEL_PARAMS = 1 << 20  # below this many parameters the passes run on one thread
 
 
@@ -39,6 +43,25 @@ def set_scan_threads(passes: int | None) -> None:
     if passes is not None and (isinstance(passes, bool) or not isinstance(passes, Integral) or passes < 1):
         raise ValueError(f"passes must be None or an int >= 1, got {passes!r}")
     THREADS["passes"] = None if passes is None else int(passes)
+
+
+def set_fit_workers(workers: int = 1) -> None:
+    """Fit ``workers`` weight groups at once in every later scan, each on its own Python thread
+    with one torch thread (the same grids; faster on idle cores, more peak memory: see the
+    module docstring).
+
+    >>> set_fit_workers(2); fit_workers()
+    2
+    >>> set_fit_workers()
+    """
+    if isinstance(workers, bool) or not isinstance(workers, Integral) or workers < 1:
+        raise ValueError(f"workers must be an int >= 1, got {workers!r}")
+    FIT_WORKERS["workers"] = int(workers)
+
+
+def fit_workers() -> int:
+    """The number of weight groups a scan fits at once (:func:`set_fit_workers`; default 1)."""
+    return FIT_WORKERS["workers"]
 
 
 def pass_threads(model: nn.Module) -> int:
