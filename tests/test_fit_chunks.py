@@ -55,7 +55,8 @@ def _fitted_alone_and_held(monkeypatch, workers):
 
     def counting(group, bits):  # large fitters still holding a sorted copy when a search starts
         gc.collect()
-        held.append(sum(r() is not None and r() not in group and r()._parts[0].rows is not None
+        held.append(sum(r() is not None and r() not in group and r()._parts is not None
+                        and r()._parts[0].rows is not None
                         and r().x.numel() >= 64 * 96 for r in alive))
         return real_group(group, bits)
 
@@ -115,3 +116,11 @@ def test_a_scan_with_fit_workers_gives_the_same_table():
             assert torch.equal(a.scale_tensor(), c.scale_tensor())
     with pytest.raises(ValueError, match="workers"):
         set_fit_workers(0)
+
+
+def test_a_released_fitter_refuses_to_fit():
+    f = ranges.RangeFitter(torch.randn(8, 16, dtype=torch.bfloat16), axis=0)
+    f.fit_many((4,))
+    f.release()
+    with pytest.raises(RuntimeError, match="released"):
+        f.fit(4)

@@ -33,8 +33,9 @@ def fit_together(fitters: Sequence[RangeFitter], bits: Sequence[int], *, workers
 
     ``workers``: threads the work runs on (see the module docstring; the grids do not depend
     on it). ``release``: a fitter of :data:`GROUP_VALUES` values or more, searched alone, lets
-    its sorted copy and prefix sums (20 bytes a value) go once its grids are made, so a large
-    model's weights are not all held sorted at once (at most one per worker at a time).
+    its copies go once its grids are made (:meth:`~qwidgets.core.ranges.RangeFitter.release`:
+    the sorted copy and prefix sums, 20 bytes a value, and the float32 copy of a half-precision
+    weight), so a large model's weights are not all held at once (at most one per worker).
 
     >>> import torch
     >>> a, b = torch.randn(4, 50), torch.randn(7, 50)
@@ -71,7 +72,7 @@ def fit_together(fitters: Sequence[RangeFitter], bits: Sequence[int], *, workers
         for j, grids in zip(chunk, search_group(group, bits), strict=True):
             out[j] = grids
         if release and len(group) == 1 and group[0].x.numel() >= GROUP_VALUES:
-            group[0].drop_sorted()
+            group[0].release()
 
     run_units([(size, lambda c=chunk: unit(c)) for size, chunk in units], workers)
     with chunk_workers(workers):

@@ -225,10 +225,11 @@ class RangeFitter:
             self._parts = [_RowSet(p.float(), method) for p in parts]
         self.digest: str | None = None  # of x's values, set by whoever needs it (grid_cache)
 
-    def drop_sorted(self) -> None:
-        """Let the sorted copies and prefix sums of the MSE search go (a later fit sorts again)."""
-        for p in self._parts:
-            p.rows = None
+    def release(self) -> None:
+        """Let the search's copies go (the sorted copy and prefix sums, and the float32 copy of a
+        half-precision tensor): a fitter used once. A later fit raises."""
+        self._parts = None
+
 
     def options_key(self) -> tuple:
         """Every option besides the values and the bit width that shapes this fitter's grids."""
@@ -241,6 +242,8 @@ class RangeFitter:
 
     def fit_many(self, bits: Sequence[int]) -> list[UniformGrid]:
         """``[fit(b) for b in bits]``, the MSE searches of all widths run together (the same grids)."""
+        if self._parts is None:
+            raise RuntimeError("this RangeFitter was released (release()): make a new one to fit")
         specs = self._specs(bits)
         if specs is None:
             return []
