@@ -124,3 +124,16 @@ def test_a_released_fitter_refuses_to_fit():
     f.release()
     with pytest.raises(RuntimeError, match="released"):
         f.fit(4)
+
+
+def test_the_moved_names_still_work_from_their_old_module_and_warn():
+    """CHANGELOG.md's rule for a moved public name: the old spelling gives what the new one
+    gives and warns (DeprecationWarning naming the new place)."""
+    from qwidgets.core import renamed
+
+    renamed._warned.discard(("qwidgets.core.ranges", "qwidgets.core.ranges.fit_together"))
+    with pytest.warns(DeprecationWarning, match="fit_groups.fit_together"):
+        old = ranges.fit_together
+    assert old is fit_groups.fit_together
+    with pytest.raises(AttributeError, match="no_such_name"):
+        ranges.no_such_name  # noqa: B018

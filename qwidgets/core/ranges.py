@@ -369,3 +369,19 @@ def _channels_first(x: torch.Tensor, axis):
     if axis is None:
         return x.reshape(1, -1), None
     return x.movedim(axis, 0).reshape(x.shape[axis], -1), axis
+
+
+_MOVED = {"fit_together": "qwidgets.core.fit_groups", "GROUP_VALUES": "qwidgets.core.fit_groups"}
+
+
+def __getattr__(name: str):
+    """Names moved to :mod:`qwidgets.core.fit_groups`: the old place works for one release and
+    warns once (CHANGELOG.md)."""
+    if name not in _MOVED:
+        raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+    import importlib
+
+    from .renamed import warn_renamed
+
+    warn_renamed(f"qwidgets.core.ranges.{name}", f"{_MOVED[name]}.{name}", "qwidgets.core.ranges")
+    return getattr(importlib.import_module(_MOVED[name]), name)
