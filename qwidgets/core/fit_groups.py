@@ -13,9 +13,10 @@ from __future__ import annotations
 from collections.abc import Sequence
 
 from . import clip_search
+from .checks import check_int
 from .grid import UniformGrid
 from .ranges import RangeFitter, search_group
-from .workers import check_workers, chunk_workers, run_units
+from .workers import chunk_workers, run_units
 
 __all__ = ["GROUP_VALUES", "fit_together"]
 
@@ -43,7 +44,7 @@ def fit_together(fitters: Sequence[RangeFitter], bits: Sequence[int], *, workers
     >>> torch.equal(together[1][0].scale, RangeFitter(b, axis=0).fit(3).scale)
     True
     """
-    workers = check_workers(workers)
+    workers = check_int(workers, "workers", minimum=1)
     out: list = [None] * len(fitters)
     units: list = []  # (values, the fitters' indices)
     chunked: list = []  # fitters whose search runs in row chunks: one at a time, chunks on the workers

@@ -116,8 +116,8 @@ def fit_cached_together(fitters: Sequence[RangeFitter], bits: Sequence[int],
         if missing:
             todo.setdefault(missing, []).append(i)
     for missing, members in todo.items():
-        for i, grids in zip(members, fit_together([fitters[i] for i in members], missing,
-                                                              workers=workers, release=release), strict=True):
+        fitted_all = fit_together([fitters[i] for i in members], missing, workers=workers, release=release)
+        for i, grids in zip(members, fitted_all, strict=True):
             fitted = dict(zip(missing, grids, strict=True))
             for b, g in fitted.items():
                 cache.put(bases[i] + (int(b),), g)

@@ -230,7 +230,6 @@ class RangeFitter:
         half-precision tensor): a fitter used once. A later fit raises."""
         self._parts = None
 
-
     def options_key(self) -> tuple:
         """Every option besides the values and the bit width that shapes this fitter's grids."""
         return (self.method, self.signed, self.symmetric, self.style, self.axis, self._pct,

@@ -18,25 +18,20 @@ import contextvars
 import ctypes
 from collections.abc import Callable, Sequence
 from concurrent.futures import ThreadPoolExecutor
-from numbers import Integral
 
 import torch
 
-__all__ = ["run_units", "map_chunks", "chunk_workers", "check_workers"]
+from .checks import check_int
+
+__all__ = ["run_units", "map_chunks", "chunk_workers"]
 
 _CHUNK_WORKERS: contextvars.ContextVar[int] = contextvars.ContextVar("qwidgets_chunk_workers", default=1)
-
-
-def check_workers(workers) -> int:
-    if isinstance(workers, bool) or not isinstance(workers, Integral) or workers < 1:
-        raise ValueError(f"workers must be a positive integer, got {workers!r}")
-    return int(workers)
 
 
 def run_units(units: Sequence[tuple[int, Callable[[], object]]], workers: int) -> list:
     """The results of ``(size, call)`` units, in order: run in order on this thread for one
     worker, else the largest first on ``workers`` threads; the first error is raised."""
-    workers = check_workers(workers)
+    workers = check_int(workers, "workers", minimum=1)
     if workers == 1 or len(units) < 2:
         return [call() for _, call in units]
     before = torch.get_num_threads()
@@ -77,7 +72,7 @@ def map_chunks(fn: Callable, chunks: Sequence) -> list:
 @contextlib.contextmanager
 def chunk_workers(workers: int):
     """Searches over row chunks in the block map their chunks on ``workers`` threads."""
-    token = _CHUNK_WORKERS.set(check_workers(workers))
+    token = _CHUNK_WORKERS.set(check_int(workers, "workers", minimum=1))
     try:
         yield
     finally:

@@ -27,6 +27,8 @@ from numbers import Integral
 import torch
 from torch import nn
 
+from ..core.checks import check_int
+
 # kind of work -> thread count (None: chosen by pass_threads from the machine and the model)
 THREADS: dict[str, int | None] = {"fit": 1, "passes": None}
 FIT_WORKERS = {"workers": 1}  # weight groups fitted at once (set_fit_workers)
@@ -54,9 +56,7 @@ def set_fit_workers(workers: int = 1) -> None:
     2
     >>> set_fit_workers()
     """
-    if isinstance(workers, bool) or not isinstance(workers, Integral) or workers < 1:
-        raise ValueError(f"workers must be an int >= 1, got {workers!r}")
-    FIT_WORKERS["workers"] = int(workers)
+    FIT_WORKERS["workers"] = check_int(workers, "workers", minimum=1)
 
 
 def fit_workers() -> int:

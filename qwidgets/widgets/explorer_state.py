@@ -89,7 +89,6 @@ class ExplorerState(RulesOfState, ShownPart, traitlets.HasTraits):
         self.kept: dict = {}  # (source, bits) -> (grid, origin): learned or edited by hand
         self.origins: dict = {}  # source -> how its current grid came about (see origin())
         self.probes: dict = {}  # source -> probe value
-        self.version: dict = {}  # source -> edit counter
         self._fitted: dict = {}  # (source, bits, method, signed, granularity) -> grid
         self._fitters: dict = {}  # (source, method, signed, granularity) -> RangeFitter
         self._ranges: dict = {}  # (source, channel shown) -> (min, max); source -> share below 0
@@ -260,7 +259,6 @@ class ExplorerState(RulesOfState, ShownPart, traitlets.HasTraits):
             raise TypeError(f"grid must be a UniformGrid (a fixed grid to explore), got {type(grid).__name__}")
         self.grids[source] = grid
         self.origins[source] = origin
-        self.version[source] = self.version.get(source, 0) + 1
         if source == self.source:
             with self.hold_trait_notifications():  # observers see the new grid with its channel
                 if grid.axis is None or self.channel >= self.n_channels_of(grid, source):
@@ -322,7 +320,6 @@ class ExplorerState(RulesOfState, ShownPart, traitlets.HasTraits):
             pc = per_channel and self.can_per_channel(s)
             self.grids[s] = self.fitted(s, self.allowed_bits(s, bits), None, pc)
             self.origins[s] = ("fitted", self.method)
-            self.version.setdefault(s, 0)
             v = self.values[s]
             self.probes.setdefault(s, float(v.mean() + v.std()) if v.numel() > 1 else float(v.reshape(-1)[0]))
         self.grid = self.grids[self.source]
