@@ -9,13 +9,13 @@ bands of rows that changed since the previous frame.
     ``.encode(rgba) -> bytes`` for a stream of frames of one size, written with the frame's
     channels as they are (an RGBA frame as an RGBA PNG: copying the rows whole is 15x faster
     than dropping every fourth byte, which costs more than the alpha channel's compression,
-    a constant 255 in the opaque figures). The image data is cut into
-    bands of ``band_rows`` rows, each compressed on its own (a raw deflate segment ended by a
-    sync flush, so the segments join into one valid stream); a band whose pixels equal the
-    previous frame's keeps its compressed bytes. A control that moves one plot re-encodes the
-    rows that plot spans, not the whole figure. ``.prepare(rgba, rows)`` compresses the changed bands outside ``rows`` ahead (while the
-    plots in those rows wait for data). ``.bands_encoded`` counts the bands compressed
-    (tests, benchmarks).
+    a constant 255 in the opaque figures). The image data is cut into bands of ``band_rows``
+    rows, each compressed on its own (a raw deflate segment ended by a sync flush, so the
+    segments join into one valid stream); a band whose pixels equal the previous frame's keeps
+    its compressed bytes. A control that moves one plot re-encodes the rows that plot spans,
+    not the whole figure. ``.prepare(rgba, rows)`` compresses the changed bands outside
+    ``rows`` ahead (while the plots in those rows wait for data). ``.bands_encoded`` counts
+    the bands compressed (tests, benchmarks).
 
 >>> import numpy as np
 >>> enc = FrameEncoder()
