@@ -75,6 +75,22 @@ def test_frame_encoder_prepares_the_rows_outside_a_span_and_then_compresses_the_
     assert png == FrameEncoder(band_rows=16).encode(frame)
 
 
+def test_frame_encoder_split_across_two_threads_writes_the_same_bytes():
+    """Half of many changed bands compressed on a second thread: the PNG is byte for byte the
+    one-thread encoder's, and Pillow's decoder (reference) reads the frame back exactly."""
+    rng = np.random.default_rng(4)
+    frame = np.full((300, 61, 4), 255, np.uint8)
+    split, plain = FrameEncoder(band_rows=8, split=True), FrameEncoder(band_rows=8, split=False)
+    split.split = True  # (on a one-CPU machine too: the bytes are what is checked)
+    for rows in [(0, 300), (10, 200), (150, 152), (0, 300)]:  # 38, 24, 1 and 38 bands
+        frame[rows[0]:rows[1], 3:50, :3] = rng.integers(0, 256, size=(rows[1] - rows[0], 47, 3))
+        png = split.encode(frame)
+        assert png == plain.encode(frame)
+        with Image.open(io.BytesIO(png)) as im:
+            np.testing.assert_array_equal(np.asarray(im), frame)
+    assert split.bands_encoded == plain.bands_encoded == 38 + 24 + 1 + 38
+
+
 def test_adler32_combine_equals_zlib_on_the_joined_bytes():
     """Reference: zlib.adler32 of the joined bytes (lengths beyond the modulus 65521 too)."""
     rng = np.random.default_rng(2)

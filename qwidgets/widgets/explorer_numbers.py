@@ -130,10 +130,10 @@ class ExplorerNumbers:
             value = self._cached("layer", key, lambda: job.measure(job.forward(threads)))
             return _Soon(lambda: value, waiting=False)
         # a new thread starts from torch's default count: give it the caller's for None
-        future = _worker().submit(job.forward, torch.get_num_threads() if threads is None else threads)
+        future = _worker().submit(job.run, torch.get_num_threads() if threads is None else threads)
 
         def result():
-            return self._cached("layer", key, lambda: job.measure(future.result()))
+            return self._cached("layer", key, future.result)
 
         return _Soon(result, waiting=True)
 
@@ -224,10 +224,11 @@ class _Soon:
 
 class _LayerJob:
     """The layer-output measurement of one grid in three parts: the quantized operand
-    (caller's thread), the layer's forward (one call that runs without Python's lock, so a
-    worker thread needs the lock only to start and to finish: no hand-offs while the caller
-    draws) and the error figures (caller's thread). The arithmetic is layer_output's, in
-    the same order, so the figures equal :func:`qwidgets.layer_error`'s."""
+    (caller's thread), then on a worker thread the layer's forward (one call that runs without
+    Python's lock, so the caller draws meanwhile) and the error figures (a few calls; the
+    forward ends while the caller still draws). The arithmetic is layer_output's, in the same
+    order, so the figures equal :func:`qwidgets.layer_error`'s. (Quantizing on the worker too
+    was measured slower: its many small calls wait for the lock while the caller draws.)"""
 
     def __init__(self, subject: ExplorerSubject, source: str, grid: UniformGrid, rows: int | None):
         self.subject, self.rows = subject, rows
@@ -245,6 +246,10 @@ class _LayerJob:
     def forward(self, n_threads: int | None) -> torch.Tensor:
         with threads(n_threads), torch.no_grad():
             return layer_forward(self.subject.layer, self.x, self.w)
+
+    def run(self, n_threads: int | None):
+        """:meth:`forward` then :meth:`measure` (on a worker thread)."""
+        return self.measure(self.forward(n_threads))
 
     def measure(self, out: torch.Tensor):
         sub = self.subject
