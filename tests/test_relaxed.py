@@ -12,7 +12,12 @@ from hypothesis import strategies as st
 from scipy import stats
 
 from qwidgets.core.grid import UniformGrid
-from qwidgets.core.relaxed import bin_probabilities, expected_quantize, relaxed_quantize
+from qwidgets.core.relaxed import (
+    bin_probabilities,
+    expected_quantize,
+    relaxed_quantize,
+    relaxed_views,
+)
 from qwidgets.core.rounding import quantize, to_codes
 
 
@@ -421,3 +426,43 @@ def test_inputs_are_never_modified():
         relaxed_quantize(x, grid, n, 0.5, hard=True, window=w, generator=gen).sum().backward()
     for a, b in zip((x, s, o, n), keep, strict=True):
         assert torch.equal(a.detach(), b)
+
+
+# ------------------------------------------------------------------ one table for three views
+@settings(max_examples=40, deadline=None)
+@given(bits=st.integers(2, 8), signed=st.booleans(), window=st.sampled_from([None, 1, 3, 5]),
+       noise_steps=st.floats(0.05, 3.0), temperature=st.floats(0.05, 2.0), shift=st.floats(-0.6, 0.6),
+       seed=st.integers(0, 2**31 - 1))
+def test_relaxed_views_equal_the_three_calls(bits, signed, window, noise_steps, temperature, shift, seed):
+    """Reference: expected_quantize, relaxed_quantize (the same generator seed) and
+    bin_probabilities called on their own (whose tables are checked against SciPy above);
+    values beyond the clip range on both sides included. Joined inputs may round the last
+    bit of an elementwise function differently: compared to float32 resolution."""
+    grid = UniformGrid(bits, 0.05, shift * 0.05, signed=signed)
+    if window is not None and window > grid.n_levels:
+        window = None  # (a window wider than the grid is refused, tested above)
+    lo, hi = grid.clip_range
+    span = hi - lo
+    curve = torch.linspace(lo - 0.3 * span, hi + 0.3 * span, 257)
+    samples = torch.linspace(lo - 0.2 * span, hi + 0.2 * span, 41).expand(3, -1)
+    probe = torch.tensor([lo + 0.37 * span])
+    noise = noise_steps * 0.05
+    e, s, (p, k) = relaxed_views(curve, samples, probe, grid, noise, temperature, window=window,
+                                 generator=torch.Generator().manual_seed(seed))
+    tol = dict(rtol=1e-5, atol=1e-6)
+    torch.testing.assert_close(e, expected_quantize(curve, grid, noise, window=window), **tol)
+    torch.testing.assert_close(s, relaxed_quantize(samples, grid, noise, temperature, window=window,
+                                                   generator=torch.Generator().manual_seed(seed)), **tol)
+    p2, k2 = bin_probabilities(probe, grid, noise, window=window)
+    torch.testing.assert_close(p, p2, **tol)
+    assert torch.equal(k.expand(p.shape), k2.expand(p2.shape))
+
+
+def test_relaxed_views_refuses_channel_grids_and_mixed_dtypes():
+    x = torch.zeros(4)
+    with pytest.raises(ValueError, match="per-tensor grid"):
+        relaxed_views(x, x, x, UniformGrid(4, torch.ones(4), axis=0), 0.1, 0.5)
+    with pytest.raises(ValueError, match="share a dtype"):
+        relaxed_views(x, x.double(), x, UniformGrid(4, 0.1), 0.1, 0.5)
+    with pytest.raises(ValueError, match="temperature"):
+        relaxed_views(x, x, x, UniformGrid(4, 0.1), 0.1, 0.0)

@@ -42,7 +42,7 @@ from .grid import (
     zero_point_param,
 )
 
-__all__ = ["bin_probabilities", "expected_quantize", "relaxed_quantize"]
+__all__ = ["bin_probabilities", "expected_quantize", "relaxed_quantize", "relaxed_views"]
 
 _MAX_FULL_ELEMENTS = 1 << 28  # values x bins beyond this need a window (about 1 GiB a temporary)
 
@@ -133,6 +133,61 @@ def relaxed_quantize(
         k = b.start + logits.argmax(dim=0).to(logp.dtype)
         chosen = code_values(k, b.s.detach(), b.o.detach(), b.z)  # a member of grid.levels
     return (chosen + (soft - soft.detach())).to(b.out_dtype)
+
+
+def relaxed_views(curve: torch.Tensor, samples: torch.Tensor, probe: torch.Tensor, grid: UniformGrid,
+                  noise: float, temperature: float, window: int | None = None,
+                  generator: torch.Generator | None = None) -> tuple:
+    """``(expected_quantize(curve), relaxed_quantize(samples), bin_probabilities(probe))`` of
+    one per-tensor grid and noise, from one table of log bin probabilities (one pass over the
+    bins for the three inputs, where three calls make three): what a plot of the quantizer
+    shows after a change of the grid. ``samples`` draw their Gumbel noise as
+    ``relaxed_quantize(samples, ...)`` does with the same ``generator``; each result equals
+    its own call up to float rounding (the elementwise functions may round the last bit
+    differently where the inputs are joined).
+
+    >>> import torch
+    >>> g = UniformGrid(3, 0.5)
+    >>> e, s, (p, k) = relaxed_views(torch.tensor([0.2]), torch.tensor([0.2]), torch.tensor([0.2]), g, 0.1, 0.5)
+    >>> torch.allclose(e, expected_quantize(torch.tensor([0.2]), g, 0.1)), p.shape, k.shape
+    (True, torch.Size([1, 8]), torch.Size([8]))
+    """
+    if grid.axis is not None or grid.blocked:
+        raise ValueError("relaxed_views needs a per-tensor grid; call expected_quantize, relaxed_quantize "
+                         "and bin_probabilities for a per-channel or block grid")
+    temperature = check_positive(temperature, "temperature")
+    if generator is not None and not isinstance(generator, torch.Generator):
+        raise TypeError(f"generator must be a torch.Generator or None, got {type(generator).__name__}")
+    parts = [as_input(v, name) for v, name in ((curve, "curve"), (samples, "samples"), (probe, "probe"))]
+    dtypes = {x.dtype for x, _ in parts}
+    if len(dtypes) > 1:
+        raise ValueError(f"curve, samples and probe must share a dtype, got {sorted(map(str, dtypes))}")
+    sizes = [x.numel() for x, _ in parts]
+    b = _log_probs(torch.cat([x.reshape(-1) for x, _ in parts]), grid, noise, window)
+    logp = b.logp.split(sizes, dim=1)
+    starts = b.start.split(sizes) if b.start.dim() else (b.start,) * 3
+    (xc, dc), (xs, ds), (xp, dp) = parts
+    # the curve: the mean code under the noise
+    probs = _exp_probs(logp[0]) if b.window is None else _normalised(logp[0])
+    expected = b.grid_value(_code_mean(probs, starts[0])).to(dc).reshape(xc.shape)
+    # the samples: Gumbel noise drawn in relaxed_quantize's shape and order
+    ls = logp[1].reshape((-1,) + xs.shape)
+    u = torch.rand(ls.shape, dtype=ls.dtype, device=ls.device, generator=generator)
+    gumbel = u.clamp_min_(torch.finfo(ls.dtype).tiny).log_().neg_().log_().neg_()
+    z = torch.softmax((ls + gumbel) / temperature, dim=0)
+    start_s = starts[1].reshape(xs.shape) if starts[1].dim() else starts[1]
+    sampled = b.grid_value(_code_mean(z, start_s)).to(ds)
+    # the probe's bins, as bin_probabilities gives them
+    lp = logp[2]
+    if b.window is None:
+        p = _exp_probs(lp)
+        codes = torch.arange(grid.qmin, grid.qmax + 1, device=lp.device)
+    else:
+        p = _normalised(lp)
+        ks = torch.arange(b.window, device=lp.device).reshape(-1, 1)
+        codes = (starts[2].to(torch.int64) + ks).movedim(0, -1).contiguous().reshape(xp.shape + (-1,))
+    p = p.reshape((-1,) + xp.shape).movedim(0, -1).contiguous().to(dp)
+    return expected, sampled, (p, codes)
 
 
 # ---------------------------------------------------------------------------- internals

@@ -29,7 +29,7 @@ import torch
 from ..core.grid import UniformGrid
 from ..core.grid_cache import tensor_digest
 from ..core.metrics import ErrorStats, error_stats, grid_usage
-from ..core.relaxed import bin_probabilities, expected_quantize, relaxed_quantize
+from ..core.relaxed import bin_probabilities, expected_quantize, relaxed_quantize, relaxed_views
 from ..core.rounding import quantize, quantize_unchecked
 from ..core.sorted_values import SortedValues
 from ..model.layers import layer_forward
@@ -149,22 +149,32 @@ class ExplorerNumbers:
         shown = (g.bits, g.signed, step, offset)  # the shown grid, as a key
         probe_pos = (st.probe - offset) / step
         image, extent = self._map(g, probe_pos, st.noise_steps)
-        codes, probs = self._cached("bars", (shown, noise_w, st.probe, extent),
-                                    lambda: _probe_bars(g, st.probe, noise_w, window, extent))
         v0, v1 = view
-        hard_x, hard_y = self._cached("hard", (shown, view), lambda: _hard_curve(g, v0, v1))
         xs = torch.linspace(v0, v1, CURVE_POINTS)
-        expected = self._cached("soft", (shown, noise_w, view),
+        xs_few = torch.linspace(v0, v1, SAMPLE_POINTS)
+        keys = {"bars": (shown, noise_w, st.probe, extent), "soft": (shown, noise_w, view),
+                "samples": (shown, noise_w, st.temperature, view)}
+        if g.axis is None and not g.blocked and not any(k in self._caches.get(n, {}) for n, k in keys.items()):
+            # a new grid or noise: the three from one table of bin probabilities
+            expected, ys, bins = relaxed_views(xs, xs_few.expand(3, -1), torch.tensor([float(st.probe)]), g,
+                                               noise_w, st.temperature, window=window,
+                                               generator=torch.Generator().manual_seed(2))
+            self._cached("bars", keys["bars"], lambda: _probe_bars(g, st.probe, noise_w, window, extent, bins))
+            self._cached("soft", keys["soft"], expected.numpy)
+            self._cached("samples", keys["samples"], lambda: [(xs_few.numpy(), y) for y in ys.numpy()])
+        codes, probs = self._cached("bars", keys["bars"],
+                                    lambda: _probe_bars(g, st.probe, noise_w, window, extent))
+        hard_x, hard_y = self._cached("hard", (shown, view), lambda: _hard_curve(g, v0, v1))
+        expected = self._cached("soft", keys["soft"],
                                 lambda: expected_quantize(xs, g, noise_w, window=window).numpy())
 
         def draw_samples():
             gen = torch.Generator().manual_seed(2)
-            xs_few = torch.linspace(v0, v1, SAMPLE_POINTS)
             ys = relaxed_quantize(xs_few.expand(3, -1), g, noise_w, st.temperature, window=window,
                                   generator=gen).numpy()
             return [(xs_few.numpy(), y) for y in ys]
 
-        samples = self._cached("samples", (shown, noise_w, st.temperature, view), draw_samples)
+        samples = self._cached("samples", keys["samples"], draw_samples)
         if self.subject.has_layer:  # None: the scatter is updated on its own (update_out)
             out_x, out_y = layer_sample if layer_sample is not None else (None, None)
         else:
@@ -288,9 +298,10 @@ def _param_key(v) -> tuple:
     return ("float", float(v))
 
 
-def _probe_bars(g: UniformGrid, probe: float, noise: float, window, extent):
-    """(codes, probabilities) of the bins shown by the map, at the probe."""
-    pp, pk = bin_probabilities(torch.tensor([probe]), g, noise, window=window)
+def _probe_bars(g: UniformGrid, probe: float, noise: float, window, extent, bins=None):
+    """(codes, probabilities) of the bins shown by the map, at the probe (``bins``: its
+    ``bin_probabilities``, when known)."""
+    pp, pk = bins if bins is not None else bin_probabilities(torch.tensor([probe]), g, noise, window=window)
     pk = pk.reshape(-1).numpy()
     pp = pp.reshape(-1).double().numpy()
     k0, k1 = extent[2] + 0.5, extent[3] - 0.5
