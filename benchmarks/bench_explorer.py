@@ -11,8 +11,11 @@ the browser shows):
   round), with a scale, an offset and a noise move after each bit change, on a fresh explorer
   each round (no background drawn beforehand, no grid fitted beforehand).
 
-Between changes the explorer fits the neighbouring widths, as it does in a kernel while idle
-after a draw (``state.prefetch()``, not timed).
+Between changes the explorer does what it does in a kernel while idle after a draw
+(``explorer.prefetch()``, not timed): it fits the other widths up to 8 bits, then works out
+their figures (layer output, tensor, bin map) one width per idle step. So a bit-width change
+in the walk goes to a width fitted and measured ahead (its plots are still drawn and encoded);
+a scale, offset or noise move goes to a grid never seen.
 
 Baselines, in the same process on the same states: the hand-written cell one would write in a
 notebook (on every change compute the numbers with the public API, the layer output twice as
@@ -188,7 +191,7 @@ def run_walk(layer, x, rounds: int, sampled: bool, baselines=None) -> dict:
             apply(ex, ctl, value)
             ex.refresh(sampled=sampled)
             per[ctl].append(1e3 * (time.perf_counter() - t))
-            ex.state.prefetch()  # what a kernel does while idle after a draw (not timed)
+            ex.prefetch()  # what a kernel does while idle after a draw (not timed)
             if baselines is not None:
                 baselines(ex)
     return summary(per)
@@ -232,7 +235,7 @@ def main() -> dict:
             change(ex, ctl, i)
             ex.refresh()
             series[ctl].append(1e3 * (time.perf_counter() - t))
-            ex.state.prefetch()  # idle time after the draw (not timed)
+            ex.prefetch()  # idle time after the draw (not timed)
     results = {"controls": summary(series)}
     # the walk, with the baselines measured after every fourth change, on the same states
     count = [0]

@@ -24,8 +24,9 @@ from qwidgets import (
     layer_error,
     quantize,
 )
-from qwidgets.widgets import events, explorer_state
+from qwidgets.widgets import events, explorer_numbers, explorer_state
 from qwidgets.widgets.explorer import SETTLE_S
+from qwidgets.widgets.explorer_numbers import grid_key
 
 
 @pytest.fixture(scope="module")
@@ -123,7 +124,10 @@ def test_keep_clip_range_keeps_the_clip_range(subject):
     ex = GridExplorer(layer, x, bits=4, method="minmax")
     ex.controls["keep_clip"].value = True
     lo, hi = ex.grid.clip_range
+    predicted, origin = ex.state.grid_for_bits(8)  # what the change will show (idle steps use it)
     ex.controls["bits"].value = 8
+    assert ex.grid is predicted or grid_key(ex.grid) == grid_key(predicted)
+    assert ex.state.origin() == origin == ("clip range kept", 4)
     lo8, hi8 = ex.grid.clip_range
     assert ex.grid.bits == 8
     assert hi8 - lo8 == pytest.approx(hi - lo, rel=1e-6)  # clip_range is float32
@@ -258,6 +262,41 @@ def test_while_idle_after_a_draw_the_other_widths_are_fitted_one_step_at_a_time(
     assert len(fits) == 8 and ex.grid.bits == 7  # fitted ahead: no fit now
     assert not ex.state.prefetch(limit=1)  # one fit was left around 7 bits, and is done:
     assert [(b, signed) for _, b, signed in fits[8:]] == [(7, False)]  # 7 bits unsigned
+
+
+def test_idle_steps_work_out_the_other_widths_figures_and_a_bits_change_then_needs_no_layer_product(
+        subject, monkeypatch):
+    """Once the widths are fitted, each idle step works out one other width's figures (layer
+    output, tensor, bin map), nearest first. A change to such a width runs no layer forward,
+    and what it shows equals the core functions' results (layer_error, error_stats), as a
+    fresh computation does. A move back to a grid drawn before needs none either."""
+    layer, x = subject
+    ex = GridExplorer(layer, x, bits=4)
+    loop = FakeLoop()
+    monkeypatch.setattr(events, "_running_loop", lambda: loop)
+    forwards = []
+    real = explorer_numbers.layer_forward
+
+    def counting(*args, **kw):
+        forwards.append(round(loop.now, 4))
+        return real(*args, **kw)
+
+    monkeypatch.setattr(explorer_numbers, "layer_forward", counting)
+    ex.state.scale = ex.grid.scale * 1.1
+    loop.advance(0.03)
+    assert len(forwards) == 1  # the redraw's own
+    assert ex.state.widths_ahead()[:3] == (3, 4, 5)
+    loop.advance(SETTLE_S + events.IDLE_STEP_S * 8.5)  # 8 fits, then the first width's figures
+    assert len(forwards) == 2 and not ex.state.fits_left()
+    loop.advance(5.0)
+    assert len(forwards) == 1 + 7  # widths 3, 5, 2, 6, 1, 7, 8: one forward each
+    assert all(b - a >= events.IDLE_STEP_S - 1e-9 for a, b in zip(forwards[1:-1], forwards[2:], strict=True))
+    for bits in (5, 2, 8):
+        ex.state.bits = bits
+        ex.refresh()
+        assert len(forwards) == 8
+        _check_readouts_match_core(ex, layer, x)
+    assert not ex.prefetch()  # (nothing left that is not known: the other widths' too)
 
 
 def test_refresh_leaves_torch_thread_count_as_it_was(subject):

@@ -60,6 +60,7 @@ STATE_TRAITS = ["source", "bits", "signed", "per_channel", "channel", "block", "
 SAMPLED_ROWS = 32  # rows measured while a control of a large layer moves (exact when it stops)
 LARGE_LAYER_MACS = 100_000_000  # above this many multiply-adds per update, sample while moving
 SETTLE_S = 0.35  # after this long without a change, a sampled readout is made exact
+WARM_EXACT_MACS = 600_000_000  # up to this many, idle steps also work out other widths' exact figures
 
 
 class GridExplorer(SnapshotDisplay, widgets.VBox):
@@ -135,8 +136,7 @@ class GridExplorer(SnapshotDisplay, widgets.VBox):
         self._clock, self._moving, self._settle_handle = clock, False, None
         self._updater = Coalescer(self._interactive_redraw, delay=0.03,
                                   on_error=lambda e: self.message.error(e, "update"))
-        self._prefetch = IdleSteps(lambda: self.state.prefetch(limit=1), lambda: self._updater.pending,
-                                   SETTLE_S)
+        self._prefetch = IdleSteps(lambda: self.prefetch(limit=1), lambda: self._updater.pending, SETTLE_S)
         if grid is not None:
             self.show_setting(LayerSetting(weight=grid), note=False)
         self._build_widgets(width, height, output)
@@ -295,6 +295,33 @@ class GridExplorer(SnapshotDisplay, widgets.VBox):
             self.message.error(exc, "refresh")
             raise
         return self
+
+    def prefetch(self, limit: int | None = None) -> bool:
+        """Work ahead, as the explorer does while the kernel is idle after a draw (one step at a
+        time, a move arriving meanwhile waits for one step at most): fit the other widths
+        (:meth:`ExplorerState.prefetch`), then work out the figures a change to each of them
+        shows, nearest width first (the layer output's, the tensor's and the bin map), so a
+        change of bits to one of them computes no layer product. ``limit``: at most that many
+        steps. Returns whether any is left."""
+        st = self.state
+        fits = len(st.fits_left())
+        if limit is not None and fits:
+            st.prefetch(limit)
+            return True  # (the figures are worked out in the next steps)
+        st.prefetch()
+        if self.learner.running:
+            return False
+        # the rows a move measures the layer output on (a large layer's sample) and, where
+        # that is quick, all of them (the figures once the controls are still)
+        rows = (SAMPLED_ROWS,) * (self._work() > LARGE_LAYER_MACS) + (None,) * (self._work() <= WARM_EXACT_MACS)
+        done = 0
+        for bits in st.widths_ahead():
+            if bits == st.grid.bits:
+                continue
+            if limit is not None and done >= limit:
+                return True
+            done += self.numbers.warm(st.source, st.grid_for_bits(bits)[0], st.noise_steps, rows)
+        return False
 
     def snapshot(self) -> tuple[bytes, str]:
         """The current plots (PNG) and readout (HTML): the static copy in the display bundle."""

@@ -45,7 +45,7 @@ ZOOM_BINS = 33
 CURVE_POINTS = 1200
 SAMPLE_POINTS = 300
 ERROR_SAMPLE = 20000
-MAPS_KEPT = 8  # bin maps remembered, for moves back and forth between widths or noise levels
+MAPS_KEPT = 12  # bin maps remembered, for moves back and forth between widths or noise levels
 GRIDS_KEPT = 16  # figures and plot parts remembered per grid, for moves back to a grid shown before
 KEYS_KEPT = 4  # grids whose key is remembered (one refresh looks its grid up several times)
 
@@ -92,8 +92,9 @@ class ExplorerNumbers:
     # ------------------------------------------------------------------ readout figures
     def tensor(self, st: ExplorerState):
         """(ErrorStats, GridUsage) of the current source's tensor on the current grid."""
-        src, g = st.source, st.grid
+        return self._tensor(st.source, st.grid)
 
+    def _tensor(self, src: str, g: UniformGrid):
         def compute():
             if g.blocked:  # a block grid: the core's blocked quantize and usage, once per grid
                 v = self.subject.values[src]
@@ -118,7 +119,10 @@ class ExplorerNumbers:
         intra-op threads there, None: torch's setting) and return a function that waits for
         it. The layer output is a matrix product that runs without Python's lock, so the plots
         that do not need it are drawn meanwhile on the caller's thread."""
-        sub, src, g = self.subject, st.source, st.grid
+        return self._layer_soon(st.source, st.grid, rows, threads, background)
+
+    def _layer_soon(self, src: str, g: UniformGrid, rows, threads, background) -> _Soon:
+        sub = self.subject
         n = sub.inputs.shape[0]
         sampled = rows is not None and rows < n
         key = (src, self._key(g), rows if sampled else None)
@@ -136,6 +140,28 @@ class ExplorerNumbers:
             return self._cached("layer", key, future.result)
 
         return _Soon(result, waiting=True)
+
+    def warm(self, src: str, g: UniformGrid, noise_steps: float, rows: tuple = (None,)) -> bool:
+        """Work out ahead (while the kernel is idle) the figures a change to grid ``g`` of
+        ``src`` shows: the tensor's, the layer output's (on each of ``rows`` input rows, None:
+        all) and the bin map (for a grid whose map shows every bin). False: all were known."""
+        sub = self.subject
+        n = sub.inputs.shape[0] if sub.has_layer else 0
+        known = [(src, self._key(g)) in self._caches.get("tensor", {})]
+        if sub.has_layer:
+            known += [(src, self._key(g), r if r is not None and r < n else None) in self._caches.get("layer", {})
+                      for r in rows]
+        if g.n_levels <= FULL_MAP_LEVELS:
+            known.append((g.bits, g.signed, noise_steps, g.qmin) in self._caches.get("map", {}))
+        if all(known):
+            return False
+        self._tensor(src, g)
+        if sub.has_layer:
+            for r in rows:
+                self._layer_soon(src, g, r, None, False)
+        if g.n_levels <= FULL_MAP_LEVELS:
+            self._map(g, 0.0, noise_steps)
+        return True
 
     # ------------------------------------------------------------------ plot data
     def plot_data(self, st: ExplorerState, view: tuple, error_sample: torch.Tensor,

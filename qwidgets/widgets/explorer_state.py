@@ -186,18 +186,23 @@ class ExplorerState(RulesOfState, ShownPart, traitlets.HasTraits):
         bits = change["new"]
         if g is None or bits == g.bits:
             return
+        grid, origin = self.grid_for_bits(bits)
+        self.set_grid(grid, origin=origin)
+
+    def grid_for_bits(self, bits: int) -> tuple:
+        """(grid, origin) that a change of the current source to ``bits`` bits shows: a learned
+        or hand-edited grid kept for that width, else the same clip range cut into more (or
+        fewer) steps with :attr:`keep_clip`, else the fitted range. Nothing is changed."""
+        g = self.grid
         kept, origin = self.kept.get((self.source, bits), (None, None))
         if kept is not None and kept.signed == g.signed and kept.granularity == g.granularity:
-            self.set_grid(kept, origin=origin)  # a learned or hand-edited grid stays
-        elif self.keep_clip:  # the same clip range cut into more (or fewer) steps
+            return kept, origin  # a learned or hand-edited grid stays
+        if self.keep_clip:  # the same clip range cut into more (or fewer) steps
             new = g.replace(bits=bits)
             ratio = max(g.qmax - g.qmin, 1) / max(new.qmax - new.qmin, 1)
             scale = g.scale * ratio if isinstance(g.scale, torch.Tensor) else float(g.scale) * ratio
-            self.set_grid(self.obeying(g.replace(bits=bits, scale=scale), self.source),
-                          origin=("clip range kept", g.bits))
-        else:
-            self.set_grid(self.fitted(self.source, bits, g.signed, g.granularity),
-                          origin=("fitted", self.method))
+            return self.obeying(g.replace(bits=bits, scale=scale), self.source), ("clip range kept", g.bits)
+        return self.fitted(self.source, bits, g.signed, g.granularity), ("fitted", self.method)
 
     @traitlets.observe("scale", "offset")
     def _on_channel_param(self, change):
@@ -331,15 +336,25 @@ class ExplorerState(RulesOfState, ShownPart, traitlets.HasTraits):
         :data:`PREFETCH_UP_TO` bits, then (without device rules) the other signedness.
         ``limit``: at most that many fits (a kernel fits one at a time while idle, so a move
         arriving meanwhile waits for one fit at most). Returns whether any is left to fit."""
+        g, todo = self.grid, self.fits_left()
+        for bits, signed in todo[:limit]:
+            self.fitted(self.source, bits, signed, g.granularity)
+        return limit is not None and len(todo) > limit
+
+    def fits_left(self) -> list:
+        """(bits, signed) of the fits :meth:`prefetch` has still to make, in its order."""
+        g = self.grid
+        todo = [(b, g.signed) for b in self.widths_ahead()] + [(g.bits, not g.signed)] * (self.rules is None)
+        return [(b, sg) for b, sg in todo if (self.source, b, self.method, sg, g.granularity) not in self._fitted]
+
+    def widths_ahead(self) -> tuple:
+        """The widths worked on ahead, nearest first: those next to the current one, then the
+        others up to :data:`PREFETCH_UP_TO` bits (the current one included)."""
         g, menu = self.grid, self.bits_menu()
         i = menu.index(g.bits) if g.bits in menu else 0
         near = menu[max(i - 1, 0):i + 2]
         rest = sorted((b for b in menu if b <= PREFETCH_UP_TO and b not in near), key=lambda b: (abs(b - g.bits), b))
-        todo = [(b, g.signed) for b in (*near, *rest)] + [(g.bits, not g.signed)] * (self.rules is None)
-        todo = [(b, sg) for b, sg in todo if (self.source, b, self.method, sg, g.granularity) not in self._fitted]
-        for bits, signed in todo[:limit]:
-            self.fitted(self.source, bits, signed, g.granularity)
-        return limit is not None and len(todo) > limit
+        return (*near, *rest)
 
     def fitted_now(self) -> UniformGrid:
         """The fitted grid for the current source, bits, signedness and per-channel choice."""
