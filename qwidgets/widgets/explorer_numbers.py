@@ -46,7 +46,8 @@ CURVE_POINTS = 1200
 SAMPLE_POINTS = 300
 ERROR_SAMPLE = 20000
 MAPS_KEPT = 12  # bin maps remembered, for moves back and forth between widths or noise levels
-GRIDS_KEPT = 16  # figures and plot parts remembered per grid, for moves back to a grid shown before
+GRIDS_KEPT = 32  # figures and plot parts remembered per grid, for moves back to a grid shown before
+# (twice the widths worked out ahead while idle, so those do not push out the grids just shown)
 KEYS_KEPT = 4  # grids whose key is remembered (one refresh looks its grid up several times)
 
 
