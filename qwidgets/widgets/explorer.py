@@ -297,31 +297,18 @@ class GridExplorer(SnapshotDisplay, widgets.VBox):
         return self
 
     def prefetch(self, limit: int | None = None) -> bool:
-        """Work ahead, as the explorer does while the kernel is idle after a draw (one step at a
-        time, a move arriving meanwhile waits for one step at most): fit the other widths
-        (:meth:`ExplorerState.prefetch`), then work out the figures a change to each of them
-        shows, nearest width first (the layer output's, the tensor's and the bin map), so a
-        change of bits to one of them computes no layer product. ``limit``: at most that many
-        steps. Returns whether any is left."""
+        """The work done while the kernel is idle after a draw, one step at a time: fit the other
+        widths, then work out each one's figures, nearest first (``limit``: at most that many
+        steps); whether any is left. A change of bits then computes no layer product."""
         st = self.state
-        fits = len(st.fits_left())
-        if limit is not None and fits:
+        if limit is not None and st.fits_left():
             st.prefetch(limit)
             return True  # (the figures are worked out in the next steps)
         st.prefetch()
-        if self.learner.running:
-            return False
         # the rows a move measures the layer output on (a large layer's sample) and, where
         # that is quick, all of them (the figures once the controls are still)
         rows = (SAMPLED_ROWS,) * (self._work() > LARGE_LAYER_MACS) + (None,) * (self._work() <= WARM_EXACT_MACS)
-        done = 0
-        for bits in st.widths_ahead():
-            if bits == st.grid.bits:
-                continue
-            if limit is not None and done >= limit:
-                return True
-            done += self.numbers.warm(st.source, st.grid_for_bits(bits)[0], st.noise_steps, rows)
-        return False
+        return not self.learner.running and self.numbers.warm_widths(st, rows, limit)
 
     def snapshot(self) -> tuple[bytes, str]:
         """The current plots (PNG) and readout (HTML): the static copy in the display bundle."""
@@ -345,23 +332,9 @@ class GridExplorer(SnapshotDisplay, widgets.VBox):
             self.figure.set_caption("")
 
     def to_setting(self, sources: str | Sequence[str] | None = None) -> LayerSetting:
-        """The grids as a :class:`LayerSetting` for the plan.
-
-        ``sources``: which grids to include, ``"weight"``, ``"input"`` or both (the default for
-        a layer). A tensor explorer's grid is returned as the weight grid.
-        """
-        grids = self.state.grids
-        if not self.subject.has_layer:
-            return LayerSetting(weight=grids["values"])
-        if sources is None:
-            sources = ("weight", "input")
-        if isinstance(sources, str):
-            sources = (sources,)
-        bad = [s for s in sources if s not in ("weight", "input")]
-        if bad:
-            raise ValueError(f"sources must name 'weight' and / or 'input', got {bad}")
-        return LayerSetting(weight=grids["weight"] if "weight" in sources else None,
-                            input=grids["input"] if "input" in sources else None)
+        """The grids as a :class:`LayerSetting` for the plan. ``sources``: which grids to include,
+        ``"weight"``, ``"input"`` or both (the default for a layer); a tensor's is the weight's."""
+        return self.subject.setting(self.state.grids, sources)
 
     # ================================================================== drawing
     def _work(self) -> int:

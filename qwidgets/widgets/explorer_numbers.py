@@ -164,6 +164,17 @@ class ExplorerNumbers:
             self._map(g, 0.0, noise_steps)
         return True
 
+    def warm_widths(self, st: ExplorerState, rows: tuple, limit: int | None = None) -> bool:
+        """:meth:`warm` the grid each other width of :meth:`ExplorerState.widths_ahead` would
+        show, nearest first, at most ``limit`` of them; whether any is left."""
+        done = 0
+        for bits in st.widths_ahead():
+            if bits != st.grid.bits:
+                if limit is not None and done >= limit:
+                    return True
+                done += self.warm(st.source, st.grid_for_bits(bits)[0], st.noise_steps, rows)
+        return False
+
     # ------------------------------------------------------------------ plot data
     def plot_data(self, st: ExplorerState, view: tuple, error_sample: torch.Tensor,
                   layer_sample=None) -> PlotData:

@@ -17,6 +17,7 @@ from torch import nn
 
 from ..core.checks import as_input
 from ..core.metrics import FixedReference
+from ..core.setting import LayerSetting
 from ..model.capture import capture_inputs
 from ..model.layers import is_quantizable, layer_output
 from ..model.picking import check_picker, split_data
@@ -112,3 +113,19 @@ class ExplorerSubject:
     @property
     def sources(self) -> tuple:
         return tuple(self.values)
+
+    def setting(self, grids: dict, sources=None) -> LayerSetting:
+        """``grids`` (source -> grid) as a :class:`LayerSetting`: ``sources`` picks
+        ``"weight"``, ``"input"`` or both (the default for a layer); a tensor's grid is the
+        weight grid."""
+        if not self.has_layer:
+            return LayerSetting(weight=grids["values"])
+        if sources is None:
+            sources = ("weight", "input")
+        if isinstance(sources, str):
+            sources = (sources,)
+        bad = [s for s in sources if s not in ("weight", "input")]
+        if bad:
+            raise ValueError(f"sources must name 'weight' and / or 'input', got {bad}")
+        return LayerSetting(weight=grids["weight"] if "weight" in sources else None,
+                            input=grids["input"] if "input" in sources else None)
