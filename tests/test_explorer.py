@@ -229,22 +229,34 @@ def test_a_burst_of_200_changes_costs_a_few_renders_and_ends_in_the_last_value(s
     assert ex.readouts["tensor SQNR"] in ex.readout.value
 
 
+def _fake_loop(monkeypatch):
+    """A :class:`FakeLoop` the explorer's idle steps and coalesced redraws run on."""
+    loop = FakeLoop()
+    monkeypatch.setattr(events, "_running_loop", lambda: loop)
+    return loop
+
+
+def _calls(monkeypatch, module, name, note) -> list:
+    """Replace ``module.name`` by itself recording ``note(*args)`` of each call; the list."""
+    calls, real = [], getattr(module, name)
+
+    def recording(*args, **kw):
+        calls.append(note(*args))
+        return real(*args, **kw)
+
+    monkeypatch.setattr(module, name, recording)
+    return calls
+
+
 def test_while_idle_after_a_draw_the_other_widths_are_fitted_one_step_at_a_time(subject, monkeypatch):
     """After a draw the kernel fits ahead, one width per idle step, nearest first (3 and 5 next
     to 4, then 2, 6, 1, 7, 8, then 4 bits unsigned); a move waiting stops the steps, the next
     draw starts them again; a width fitted ahead costs no fit when it is chosen."""
     layer, x = subject
     ex = GridExplorer(layer, x, bits=4)
-    loop = FakeLoop()
-    monkeypatch.setattr(events, "_running_loop", lambda: loop)
-    fits = []
-    real = explorer_state.fit_cached
-
-    def counting(fitter, widths):
-        fits.append((round(loop.now, 4), widths[0], fitter.signed))
-        return real(fitter, widths)
-
-    monkeypatch.setattr(explorer_state, "fit_cached", counting)
+    loop = _fake_loop(monkeypatch)
+    fits = _calls(monkeypatch, explorer_state, "fit_cached",
+                  lambda fitter, widths: (round(loop.now, 4), widths[0], fitter.signed))
     ex.state.scale = ex.grid.scale * 1.1
     loop.advance(0.03)  # the coalesced redraw
     assert fits == []
@@ -272,16 +284,8 @@ def test_idle_steps_work_out_the_other_widths_figures_and_a_bits_change_then_nee
     fresh computation does. A move back to a grid drawn before needs none either."""
     layer, x = subject
     ex = GridExplorer(layer, x, bits=4)
-    loop = FakeLoop()
-    monkeypatch.setattr(events, "_running_loop", lambda: loop)
-    forwards = []
-    real = explorer_numbers.layer_forward
-
-    def counting(*args, **kw):
-        forwards.append(round(loop.now, 4))
-        return real(*args, **kw)
-
-    monkeypatch.setattr(explorer_numbers, "layer_forward", counting)
+    loop = _fake_loop(monkeypatch)
+    forwards = _calls(monkeypatch, explorer_numbers, "layer_forward", lambda *args: round(loop.now, 4))
     ex.state.scale = ex.grid.scale * 1.1
     loop.advance(0.03)
     assert len(forwards) == 1  # the redraw's own
@@ -291,7 +295,7 @@ def test_idle_steps_work_out_the_other_widths_figures_and_a_bits_change_then_nee
     loop.advance(5.0)
     assert len(forwards) == 1 + 7  # widths 3, 5, 2, 6, 1, 7, 8: one forward each
     assert all(b - a >= events.IDLE_STEP_S - 1e-9 for a, b in zip(forwards[1:-1], forwards[2:], strict=True))
-    for bits in (5, 2, 8):
+    for bits in (5, 2, 8, 5):  # (the last: back to a grid drawn before)
         ex.state.bits = bits
         ex.refresh()
         assert len(forwards) == 8

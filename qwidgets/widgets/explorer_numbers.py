@@ -124,13 +124,11 @@ class ExplorerNumbers:
 
     def _layer_soon(self, src: str, g: UniformGrid, rows, threads, background) -> _Soon:
         sub = self.subject
-        n = sub.inputs.shape[0]
-        sampled = rows is not None and rows < n
-        key = (src, self._key(g), rows if sampled else None)
+        key = self._layer_key(src, g, rows)
         if key in self._caches.get("layer", {}):  # a grid shown before: its figures
             value = self._cached("layer", key, None)
             return _Soon(lambda: value, waiting=False)
-        job = _LayerJob(sub, src, g, rows if sampled else None)
+        job = _LayerJob(sub, src, g, key[2])
         if not background:
             value = self._cached("layer", key, lambda: job.measure(job.forward(threads)))
             return _Soon(lambda: value, waiting=False)
@@ -142,18 +140,21 @@ class ExplorerNumbers:
 
         return _Soon(result, waiting=True)
 
+    def _layer_key(self, src: str, g: UniformGrid, rows: int | None) -> tuple:
+        """The layer figures' cache key: rows None when all the input rows are measured."""
+        sampled = rows is not None and rows < self.subject.inputs.shape[0]
+        return (src, self._key(g), rows if sampled else None)
+
     def warm(self, src: str, g: UniformGrid, noise_steps: float, rows: tuple = (None,)) -> bool:
         """Work out ahead (while the kernel is idle) the figures a change to grid ``g`` of
         ``src`` shows: the tensor's, the layer output's (on each of ``rows`` input rows, None:
         all) and the bin map (for a grid whose map shows every bin). False: all were known."""
         sub = self.subject
-        n = sub.inputs.shape[0] if sub.has_layer else 0
         known = [(src, self._key(g)) in self._caches.get("tensor", {})]
         if sub.has_layer:
-            known += [(src, self._key(g), r if r is not None and r < n else None) in self._caches.get("layer", {})
-                      for r in rows]
+            known += [self._layer_key(src, g, r) in self._caches.get("layer", {}) for r in rows]
         if g.n_levels <= FULL_MAP_LEVELS:
-            known.append((g.bits, g.signed, noise_steps, g.qmin) in self._caches.get("map", {}))
+            known.append(_map_place(g, 0.0, noise_steps)[0] in self._caches.get("map", {}))
         if all(known):
             return False
         self._tensor(src, g)
@@ -229,13 +230,7 @@ class ExplorerNumbers:
     def _map(self, g: UniformGrid, probe_pos: float, noise_steps: float):
         """Bin probabilities for positions across the grid (in steps): depends only on the bit
         width, signedness and noise (and, for big grids, the zoom), so it is cached on those."""
-        if g.n_levels <= FULL_MAP_LEVELS:
-            k0, k1 = g.qmin, g.qmax
-        else:
-            centre = int(round(min(max(probe_pos, g.qmin), g.qmax)))
-            k0 = min(max(centre - ZOOM_BINS // 2, g.qmin), g.qmax - ZOOM_BINS + 1)
-            k1 = k0 + ZOOM_BINS - 1
-        key = (g.bits, g.signed, noise_steps, k0)
+        key, k0, k1 = _map_place(g, probe_pos, noise_steps)
 
         def compute():
             positions = torch.linspace(k0 - 1.5, k1 + 1.5, 360, dtype=torch.float64)
@@ -249,6 +244,18 @@ class ExplorerNumbers:
             return image, (k0 - 1.5, k1 + 1.5, k0 - 0.5, k1 + 0.5)
 
         return self._cached("map", key, compute, keep=MAPS_KEPT)
+
+
+def _map_place(g: UniformGrid, probe_pos: float, noise_steps: float) -> tuple:
+    """(cache key, first code, last code) of the bin map: every bin up to
+    :data:`FULL_MAP_LEVELS` levels, else :data:`ZOOM_BINS` around the probe."""
+    if g.n_levels <= FULL_MAP_LEVELS:
+        k0, k1 = g.qmin, g.qmax
+    else:
+        centre = int(round(min(max(probe_pos, g.qmin), g.qmax)))
+        k0 = min(max(centre - ZOOM_BINS // 2, g.qmin), g.qmax - ZOOM_BINS + 1)
+        k1 = k0 + ZOOM_BINS - 1
+    return (g.bits, g.signed, noise_steps, k0), k0, k1
 
 
 _WORKER: list = []  # one thread for every explorer's layer outputs (updates run one at a time)
