@@ -4,8 +4,8 @@ plans with an input width per entry, apply / evaluate.
 Outside checks:
 - every scanned number equals the naive method written here: deep-copy the model, quantize
   that one entry's weight (overwrite it) or its input (a pre-hook), run the whole model and
-  compare with the float output (SQNR by hand), to 1e-4 dB; a conv net and an MLP, each
-  written here;
+  compare with the float output (SQNR by hand), to 1e-4 dB or float32's rounding bound where
+  that is larger (conftest.f32_sqnr_tol_db); a conv net and an MLP, each written here;
 - plan_budget on a "separate" table equals exhaustive enumeration of every (weight width,
   input width) per entry, costs counted here by hand (BOPs = MACs x weight bits x input bits,
   common practice);
@@ -22,6 +22,7 @@ import math
 import numpy as np
 import pytest
 import torch
+from conftest import f32_sqnr_tol_db
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from torch import nn
@@ -37,6 +38,13 @@ from qwidgets.planning.table import SensitivityTable
 def _sqnr(ref: torch.Tensor, out: torch.Tensor) -> float:
     ref, out = ref.double(), out.double()
     return 10 * math.log10(float(ref.pow(2).sum()) / float((out - ref).pow(2).sum()))
+
+
+def _tol(sqnr_db: float) -> float:
+    """1e-4 dB, or float32's rounding bound where that is larger: the scan runs the model under
+    other batch shapes than the naive copy, and at 8 bits (about 51 dB) the kernels' rounding
+    alone moves the SQNR by 1.5e-4 dB on some CPUs (seen on one with AVX-512 FP16 / AMX)."""
+    return max(1e-4, f32_sqnr_tol_db(sqnr_db))
 
 
 def _naive(model, x, name, wgrid=None, igrid=None):
@@ -74,13 +82,13 @@ def test_separate_scan_equals_naive_deep_copy(make):
     for name in t.layers:
         for b in t.bits:
             naive = _sqnr(ref, _naive(model, x, name, wgrid=t.weight_grid(name, b)))
-            assert t.sqnr_db(name, b, source="weight") == pytest.approx(naive, abs=1e-4)
+            assert t.sqnr_db(name, b, source="weight") == pytest.approx(naive, abs=_tol(naive))
             assert t.weight_grid(name, b).bits == b
         for b in t.input_bits:
             g = t.input_grid(name, b)
             assert g.bits == b
             naive = _sqnr(ref, _naive(model, x, name, igrid=g))
-            assert t.sqnr_db(name, b, source="input") == pytest.approx(naive, abs=1e-4)
+            assert t.sqnr_db(name, b, source="input") == pytest.approx(naive, abs=_tol(naive))
             # layer scope: the layer's output with its input quantized, by a hook written here
             lay = model.get_submodule(name)
             seen = []
@@ -89,7 +97,7 @@ def test_separate_scan_equals_naive_deep_copy(make):
             h.remove()
             xin = seen[0]
             naive_layer = _sqnr(lay(xin).detach(), lay(quantize(xin, g)).detach())
-            assert t.sqnr_db(name, b, scope="layer", source="input") == pytest.approx(naive_layer, abs=1e-4)
+            assert t.sqnr_db(name, b, scope="layer", source="input") == pytest.approx(naive_layer, abs=_tol(naive_layer))
         with pytest.raises(KeyError, match="not scanned for the input"):
             t.sqnr_db(name, 4, source="input")
     assert len(t.to_rows()) == len(t.layers) * (len(t.bits) + len(t.input_bits))
