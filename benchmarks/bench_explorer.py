@@ -17,7 +17,10 @@ their figures (layer output, tensor, bin map) one width per idle step. So a bit-
 in the walk goes to a width fitted and measured ahead (its plots are still drawn and encoded);
 a scale, offset or noise move goes to a grid never seen.
 
-Baselines, in the same process on the same states: the hand-written cell one would write in a
+Baselines, in the same process on the same states (those after every fourth change of the
+walk, drawn after it: drawn in between, their work evicted the explorer's data from the
+caches and slowed its next move by about 4 ms, which a kernel idle between moves does not
+see): the hand-written cell one would write in a
 notebook (on every change compute the numbers with the public API, the layer output twice as
 ``layer_error`` and the scatter each do, and re-create the four plots with pyplot), and a fair
 one that computes everything once per change (one quantization, one layer output) and still
@@ -185,18 +188,22 @@ def summary(per_control: dict) -> dict:
                             for c, v in per_control.items() if v}}
 
 
-def run_walk(layer, x, rounds: int, sampled: bool, baselines=None) -> dict:
+def run_walk(layer, x, rounds: int, sampled: bool, states: list | None = None) -> dict:
+    """The walk's timings; ``states``: a list that gets the (grid, noise steps, temperature)
+    after every fourth change, for the baselines to redraw afterwards (not in between: their
+    work would evict the explorer's data from the caches, which a kernel idle between a
+    person's moves does not)."""
     per = {c: [] for c in CONTROLS}
     for r in range(rounds):
         ex = GridExplorer(layer, x, bits=4)  # fresh: no background or fitted grid kept
-        for ctl, value in walk_changes(r):
+        for i, (ctl, value) in enumerate(walk_changes(r)):
             t = time.perf_counter()
             apply(ex, ctl, value)
             ex.refresh(sampled=sampled)
             per[ctl].append(1e3 * (time.perf_counter() - t))
             ex.prefetch()  # what a kernel does while idle after a draw (not timed)
-            if baselines is not None:
-                baselines(ex)
+            if states is not None and i % 4 == 0:
+                states.append((ex.grid, ex.noise_steps, ex.temperature))
     return summary(per)
 
 
@@ -217,12 +224,12 @@ def main() -> dict:
 
     base = {f"{kind}_{th}": [] for kind in ("cell", "fair_cell") for th in ("torch_threads", "one_thread")}
 
-    def baselines(e):
+    def baselines(grid, noise_steps, temperature):
         for kind, fair in (("cell", False), ("fair_cell", True)):
             for th, threads in (("torch_threads", None), ("one_thread", 1)):
                 t = time.perf_counter()
                 with torch_threads(threads):
-                    baseline_cell(layer, x, e.grid, e.noise_steps, e.temperature, 0.03, fair=fair)
+                    baseline_cell(layer, x, grid, noise_steps, temperature, 0.03, fair=fair)
                 base[f"{kind}_{th}"].append(1e3 * (time.perf_counter() - t))
 
     for i in range(2):  # warm up the code paths (imports, allocator), not the backgrounds
@@ -240,15 +247,11 @@ def main() -> dict:
             series[ctl].append(1e3 * (time.perf_counter() - t))
             ex.prefetch()  # idle time after the draw (not timed)
     results = {"controls": summary(series)}
-    # the walk, with the baselines measured after every fourth change, on the same states
-    count = [0]
-
-    def some_baselines(e):
-        count[0] += 1
-        if count[0] % 4 == 1:
-            baselines(e)
-
-    results["walk"] = run_walk(layer, x, args.rounds, False, some_baselines)
+    # the walk; then the baselines, on the states after every fourth change of it
+    states: list = []
+    results["walk"] = run_walk(layer, x, args.rounds, False, states)
+    for state in states:
+        baselines(*state)
     bases = {k: {"p50": percentile(v, 50), "p95": percentile(v, 95), "n": len(v)} for k, v in base.items()}
     cell = min(bases["cell_torch_threads"]["p50"], bases["cell_one_thread"]["p50"])
     fair = min(bases["fair_cell_torch_threads"]["p50"], bases["fair_cell_one_thread"]["p50"])
