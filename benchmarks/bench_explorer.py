@@ -29,7 +29,9 @@ compared. For context (the targets are judged on the exact refreshes above), the
 run once more as a kernel draws it while a control moves (``refresh(sampled=True)``: this
 layer's 268M multiply-adds are over the explorer's sampling threshold, so the layer output
 is measured on 32 evenly spread input rows and the SQNR shown with its +-dB; exact again
-once the controls are still). ``--big`` adds that walk on a 4096x4096 layer.
+once the controls are still). ``--big`` adds that walk on a 4096x4096 layer. Last, the
+explorer's PNG frames are encoded with each compressor the frame encoder can use (zlib, and
+ISA-L's where the ``isal`` package is installed): a whole frame and a scale move's bands.
 
 Run:  .venv/bin/python benchmarks/bench_explorer.py [--rounds 4] [--threads N] [--big]
 Writes benchmarks/results/explorer.json.
@@ -207,6 +209,34 @@ def run_walk(layer, x, rounds: int, sampled: bool, states: list | None = None) -
     return summary(per)
 
 
+def compare_encoders(ex: GridExplorer, rounds: int = 40) -> dict:
+    """The explorer's PNG frames with each compressor the encoder can use: a whole frame, and
+    the bands a scale move changes (two frames of the explorer, alternated), p50 ms and bytes."""
+    from qwidgets.viz.png import FrameEncoder, isal_zlib
+
+    ex.refresh()
+    a = np.asarray(ex.canvas.draw()).copy()
+    change(ex, "scale", 1)
+    ex.refresh()
+    b = np.asarray(ex.canvas.draw()).copy()
+    out = {}
+    for deflate in ("zlib", "isal") if isal_zlib is not None else ("zlib",):
+        whole, moves = [], []
+        for _ in range(rounds):
+            t = time.perf_counter()
+            png = FrameEncoder(deflate=deflate).encode(a)
+            whole.append(1e3 * (time.perf_counter() - t))
+        enc = FrameEncoder(deflate=deflate)
+        enc.encode(a)
+        for i in range(rounds):
+            t = time.perf_counter()
+            enc.encode(b if i % 2 == 0 else a)
+            moves.append(1e3 * (time.perf_counter() - t))
+        out[deflate] = {"whole_frame_ms": percentile(whole, 50), "scale_move_ms": percentile(moves, 50),
+                        "whole_frame_bytes": len(png), "size_px": list(a.shape[1::-1])}
+    return out
+
+
 def main() -> dict:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--rounds", type=int, default=4, help="rounds of each sequence")
@@ -262,6 +292,7 @@ def main() -> dict:
     # control moves, the layer output of this layer (268M multiply-adds, over the explorer's
     # LARGE_LAYER_MACS) measured on a sample of 32 input rows, exact once the controls are still
     moving = run_walk(layer, x, args.rounds, True)
+    encoders = compare_encoders(ex)
     big = None
     if args.big:
         blayer, bx = make_subject(1, 4096)
@@ -281,6 +312,10 @@ def main() -> dict:
     if big is not None:
         print(f"{'4096x4096 walk, sampled while moving':46s} {big['p50']:8.1f} {big['p95']:8.1f} "
               f"{big['n']:4d}")
+    for name, e in encoders.items():
+        print(f"{'PNG with ' + name + ': whole frame / scale move':46s} {e['whole_frame_ms']:8.2f} "
+              f"{e['scale_move_ms']:8.2f}       ({e['whole_frame_bytes'] / 1e3:.0f} kB a whole "
+              f"{e['size_px'][0]}x{e['size_px'][1]} frame)")
     print(f"speed-up over the fair cell: {ratios['fair_cell_p50_over_worst_sequence_p50']:.1f}x "
           f"(over the hand-written cell: {ratios['cell_p50_over_worst_sequence_p50']:.1f}x; "
           "baseline p50 / slowest sequence p50)")
@@ -296,6 +331,7 @@ def main() -> dict:
         "ratios": ratios,
         "big_walk_sampled_ms": big,
         "walk_sampled_while_moving_ms": moving,
+        "png_encoders_p50": encoders,
         "targets": {"p50_ms_per_control": 16.7, "p95_ms_per_control": 25, "speedup": 12,
                     "big_p50_ms": 150},
         "build_ms": build_s * 1e3,

@@ -14,9 +14,14 @@ from PIL import Image
 
 from qwidgets.viz.canvas import BlitCanvas, encode_png
 from qwidgets.viz.pixel_image import PixelImage
-from qwidgets.viz.png import FrameEncoder, adler32_combine
+from qwidgets.viz.png import FrameEncoder, adler32_combine, isal_zlib
 from qwidgets.widgets.events import Coalescer, MessageLine
 from qwidgets.widgets.image_canvas import PlotCanvas
+
+# both compressors the frame encoder can use (ISA-L's where the isal package is installed: it
+# is a dependency wherever it has wheels, so CI runs both)
+DEFLATES = ["zlib", pytest.param("isal", marks=pytest.mark.skipif(
+    isal_zlib is None, reason="the isal package has no wheel for this platform"))]
 
 
 def test_encode_png_decodes_to_the_same_pixels_with_pillow():
@@ -33,13 +38,15 @@ def test_encode_png_decodes_to_the_same_pixels_with_pillow():
         encode_png(rgba, 10)
 
 
-def test_frame_encoder_recompresses_changed_bands_and_decodes_to_the_same_pixels():
+@pytest.mark.parametrize("deflate", DEFLATES)
+def test_frame_encoder_recompresses_changed_bands_and_decodes_to_the_same_pixels(deflate):
     """Reference: Pillow's PNG decoder (and zlib's checks inside it) reads back every frame
     exactly; only the bands of rows that changed are compressed again."""
     rng = np.random.default_rng(1)
     frame = np.full((100, 61, 4), 255, np.uint8)
     frame[10:90, 5:50, :3] = rng.integers(0, 256, size=(80, 45, 3), dtype=np.uint8)
-    enc = FrameEncoder(band_rows=16)  # 7 bands, the last one 4 rows
+    enc = FrameEncoder(band_rows=16, deflate=deflate)  # 7 bands, the last one 4 rows
+    assert enc.deflate == deflate
     for step, rows in enumerate([None, (20, 21), (0, 1), (96, 100), (15, 17), None]):
         if rows is not None:
             frame[rows[0]:rows[1], 3:40, :3] = rng.integers(0, 256, size=(rows[1] - rows[0], 37, 3))
@@ -55,13 +62,14 @@ def test_frame_encoder_recompresses_changed_bands_and_decodes_to_the_same_pixels
         FrameEncoder(band_rows=0)
 
 
-def test_frame_encoder_prepares_the_rows_outside_a_span_and_then_compresses_the_rest():
+@pytest.mark.parametrize("deflate", DEFLATES)
+def test_frame_encoder_prepares_the_rows_outside_a_span_and_then_compresses_the_rest(deflate):
     """``prepare`` compresses the changed bands wholly outside the span given; the next frame,
     changed inside the span too, compresses only the bands the span touches, and decodes
     (Pillow's decoder, as above) to exactly that frame, as a fresh encoder's PNG does."""
     rng = np.random.default_rng(3)
     frame = np.full((100, 61, 4), 255, np.uint8)
-    enc = FrameEncoder(band_rows=16)
+    enc = FrameEncoder(band_rows=16, deflate=deflate)
     enc.encode(frame)
     frame[:, 2:30, :3] = rng.integers(0, 256, size=(100, 28, 3), dtype=np.uint8)  # every band
     before = enc.bands_encoded
@@ -72,15 +80,17 @@ def test_frame_encoder_prepares_the_rows_outside_a_span_and_then_compresses_the_
     assert enc.bands_encoded - before == 7
     with Image.open(io.BytesIO(png)) as im:
         np.testing.assert_array_equal(np.asarray(im.convert("RGB")), frame[..., :3])
-    assert png == FrameEncoder(band_rows=16).encode(frame)
+    assert png == FrameEncoder(band_rows=16, deflate=deflate).encode(frame)
 
 
-def test_frame_encoder_split_across_two_threads_writes_the_same_bytes():
+@pytest.mark.parametrize("deflate", DEFLATES)
+def test_frame_encoder_split_across_two_threads_writes_the_same_bytes(deflate):
     """Half of many changed bands compressed on a second thread: the PNG is byte for byte the
     one-thread encoder's, and Pillow's decoder (reference) reads the frame back exactly."""
     rng = np.random.default_rng(4)
     frame = np.full((300, 61, 4), 255, np.uint8)
-    split, plain = FrameEncoder(band_rows=8, split=True), FrameEncoder(band_rows=8, split=False)
+    split = FrameEncoder(band_rows=8, split=True, deflate=deflate)
+    plain = FrameEncoder(band_rows=8, split=False, deflate=deflate)
     split.split = True  # (on a one-CPU machine too: the bytes are what is checked)
     for rows in [(0, 300), (10, 200), (150, 152), (0, 300)]:  # 38, 24, 1 and 38 bands
         frame[rows[0]:rows[1], 3:50, :3] = rng.integers(0, 256, size=(rows[1] - rows[0], 47, 3))
@@ -89,6 +99,37 @@ def test_frame_encoder_split_across_two_threads_writes_the_same_bytes():
         with Image.open(io.BytesIO(png)) as im:
             np.testing.assert_array_equal(np.asarray(im), frame)
     assert split.bands_encoded == plain.bands_encoded == 38 + 24 + 1 + 38
+
+
+def test_frame_encoder_chooses_its_compressor_and_rejects_a_bad_one():
+    """``auto`` takes ISA-L at its levels 1 to 3 where the isal package is installed, zlib
+    otherwise (level 0 stores, levels 4 to 9 are zlib's); a compressor that cannot serve the
+    level, or an unknown one, is a clear error naming the parameter."""
+    have = isal_zlib is not None
+    assert FrameEncoder().deflate == ("isal" if have else "zlib")
+    assert FrameEncoder(compress_level=0).deflate == FrameEncoder(compress_level=6).deflate == "zlib"
+    assert FrameEncoder(deflate="zlib").deflate == "zlib"
+    with pytest.raises(ValueError, match="deflate must be one of"):
+        FrameEncoder(deflate="gzip")
+    with pytest.raises(ValueError, match="deflate='isal' needs the isal package"):
+        FrameEncoder(compress_level=0 if have else 1, deflate="isal")
+
+
+@pytest.mark.skipif(isal_zlib is None, reason="the isal package has no wheel for this platform")
+def test_frame_encoder_isal_and_zlib_frames_hold_the_same_pixels():
+    """The two compressors write different bytes of one image: Pillow's decoder (reference)
+    reads the same pixels from both, frame after frame, a figure-like frame at the real size."""
+    rng = np.random.default_rng(5)
+    frame = np.full((600, 720, 4), 255, np.uint8)
+    frame[40:560, 60:680:7, :3] = 30  # thin lines on white, as a plot has
+    fast, plain = FrameEncoder(deflate="isal"), FrameEncoder(deflate="zlib")
+    for rows in [(0, 600), (300, 331), (590, 600)]:
+        frame[rows[0]:rows[1], 100:400, :3] = rng.integers(0, 256, size=(rows[1] - rows[0], 300, 3))
+        a, b = fast.encode(frame), plain.encode(frame)
+        for png in (a, b):
+            with Image.open(io.BytesIO(png)) as im:
+                np.testing.assert_array_equal(np.asarray(im), frame)
+    assert fast.bands_encoded == plain.bands_encoded == 38 + 3 + 2  # rows 288..335, 576..599
 
 
 def test_adler32_combine_equals_zlib_on_the_joined_bytes():
