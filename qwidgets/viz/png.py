@@ -17,13 +17,12 @@ bands of rows that changed since the previous frame.
     ``rows`` ahead (while the plots in those rows wait for data). ``.bands_encoded`` counts
     the bands compressed (tests, benchmarks). With ``split`` (the default), :meth:`encode`
     compresses half of many changed bands on a second thread (zlib runs without Python's
-    lock), where the machine has two or more CPUs and the compressor is zlib (ISA-L's is
-    faster alone: a frame's 27 bands in 1.4 ms, 1.7 ms split); the bytes are the same either
-    way.
+    lock), where the machine has two or more CPUs and the compressor is zlib (ISA-L's was
+    measured faster alone than with the hand-off); the bytes are the same either way.
     ``deflate``: the compressor, ``"zlib"`` (Python's own) or ``"isal"`` (ISA-L's deflate, from
     the ``isal`` package); ``"auto"`` takes ISA-L where it is installed and the level is one
-    of its levels 1 to 3 (at level 1 a whole 720x600 frame compresses in 1.1 ms against
-    zlib's 2.9 ms, into 78 kB against 82 kB; ``benchmarks/bench_explorer.py``), else zlib.
+    of its levels 1 to 3, else zlib (at level 1 the explorer's whole 720x600 frame encodes in
+    1.7 ms against zlib's 3.4 ms, 78 kB against 82 kB: ``benchmarks/bench_explorer.py``).
     Either writes a standard deflate stream that any PNG decoder reads.
 
 >>> import numpy as np
