@@ -207,12 +207,11 @@ class FrameEncoder:
         self.bands_encoded += len(todo)
 
     def _compress_bands(self, arr: np.ndarray, bands: list) -> None:
-        h, b = arr.shape[0], self.band_rows
+        h, b, z = arr.shape[0], self.band_rows, self._zlib
         for i in bands:
             r0, r1 = i * b, min(h, (i + 1) * b)
             self._last[r0:r1] = arr[r0:r1]
             rows = _rows(arr[r0:r1], self._rows[r0:r1], keep_alpha=True)
-            z = self._zlib
             c = z.compressobj(self.level, z.DEFLATED, -15)
             self._bands[i] = c.compress(rows.data) + c.flush(z.Z_SYNC_FLUSH)
             self._adlers[i] = z.adler32(rows.data)
